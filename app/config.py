@@ -1,0 +1,35 @@
+"""Runtime settings: database location, upload limit, bind address."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+DEFAULT_DB_PATH = Path("helmshift.db")
+DEFAULT_UPLOAD_LIMIT = 50 * 1024 * 1024
+
+
+def database_url(db: str | None = None) -> str:
+    """Turn ``--db`` (a file path or a SQLAlchemy URL) or ``HELMSHIFT_DB`` into a SQLAlchemy URL."""
+    value = db or os.environ.get("HELMSHIFT_DB") or str(DEFAULT_DB_PATH)
+    if "://" in value:
+        return value
+    return f"sqlite:///{Path(value).expanduser().resolve()}"
+
+
+@dataclass(frozen=True)
+class Settings:
+    """What the web app needs to know at start-up."""
+
+    db_url: str
+    upload_limit: int = DEFAULT_UPLOAD_LIMIT
+    allowed_hosts: tuple[str, ...] = ("127.0.0.1", "localhost", "[::1]", "testserver")
+    job_workers: int = 1
+
+    @classmethod
+    def from_env(cls, db: str | None = None) -> Settings:
+        limit = int(os.environ.get("HELMSHIFT_UPLOAD_LIMIT", DEFAULT_UPLOAD_LIMIT))
+        extra = tuple(h for h in os.environ.get("HELMSHIFT_ALLOWED_HOSTS", "").split(",") if h)
+        return cls(db_url=database_url(db), upload_limit=limit,
+                   allowed_hosts=cls.allowed_hosts + extra)
