@@ -150,7 +150,7 @@ MIGRATIONS: list[str] = []
 SCHEMA_VERSION = 1 + len(MIGRATIONS)
 
 
-class StoreError(Exception):
+class StoreError(ValueError):
     """A request the store cannot satisfy (unknown roster, duplicate name, ...)."""
 
 

@@ -1,0 +1,310 @@
+"""The ``helmshift`` command line, over the same functions the dashboard uses.
+
+Every command takes ``--db`` (a file path or SQLAlchemy URL; ``HELMSHIFT_DB`` likewise). With ``--json`` it
+prints one JSON object on stdout. Errors are one clear sentence on stderr and a non-zero exit status.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+from app import __version__
+from app.config import database_url
+
+EXIT_USAGE = 2
+EXIT_FAILED = 1
+
+
+class CommandError(Exception):
+    """A failure worth one sentence to the analyst (bad input, unknown roster, ...)."""
+
+
+def _store(args: argparse.Namespace) -> Any:
+    from app.store import Store
+
+    return Store(database_url(args.db))
+
+
+def _emit(args: argparse.Namespace, payload: dict[str, Any], human: Callable[[dict[str, Any]], str]) -> None:
+    from app.web.rendering import jsonable
+
+    if args.json:
+        print(json.dumps(jsonable(payload)))
+    else:
+        print(human(payload))
+
+
+def _parse_years(value: str | None) -> tuple[int, int] | None:
+    if not value:
+        return None
+    try:
+        a, b = (int(x) for x in value.replace("..", "-").split("-", 1))
+    except ValueError:
+        raise CommandError(f"--years takes FROM-TO, e.g. 1998-2022; got {value!r}.") from None
+    if a > b:
+        raise CommandError(f"--years runs backwards ({value}); write the earlier year first.")
+    return a, b
+
+
+def _parse_columns(pairs: Sequence[str] | None) -> dict[str, str] | None:
+    from app.types import ROLES
+
+    if not pairs:
+        return None
+    roles: dict[str, str] = {}
+    for pair in pairs:
+        role, sep, header = pair.partition("=")
+        if not sep or role not in ROLES:
+            raise CommandError(f"--column takes ROLE=HEADER with ROLE one of {', '.join(ROLES)}; got {pair!r}.")
+        roles[role] = header
+    return roles
+
+
+# -- commands ----------------------------------------------------------------------------------
+def cmd_serve(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from app.config import Settings
+    from app.demo import load_demo
+    from app.store import Store
+    from app.web.app import create_app
+
+    db = args.db
+    if args.demo and not db:
+        path = Path("helmshift-demo.db").resolve()
+        for suffix in ("", "-wal", "-shm"):
+            Path(f"{path}{suffix}").unlink(missing_ok=True)
+        db = str(path)
+        print(f"Demo: a fresh database at {path}", file=sys.stderr)
+    settings = Settings.from_env(db)
+    store = Store(settings.db_url)
+    if args.demo:
+        roster = load_demo(store)
+        print(f"Demo roster {roster.name!r} loaded ({roster.accepted} departures).", file=sys.stderr)
+    if args.host not in ("127.0.0.1", "localhost", "::1"):
+        print(f"Warning: serving on {args.host} exposes rosters with personal data to other machines on "
+              "the network; Helmshift has no login.", file=sys.stderr)
+        settings = Settings(db_url=settings.db_url, upload_limit=settings.upload_limit,
+                            allowed_hosts=settings.allowed_hosts + (args.host,))
+    app = create_app(settings, store)
+    print(f"Helmshift {__version__} on http://{args.host}:{args.port}/", file=sys.stderr)
+    uvicorn.run(app, host=args.host, port=args.port, log_level="warning")
+    return 0
+
+
+def cmd_import(args: argparse.Namespace) -> int:
+    from app.ingest import import_roster
+
+    path = Path(args.file)
+    if not path.is_file():
+        raise CommandError(f"No file at {path}.")
+    report = import_roster(_store(args), path.read_bytes(), path.name, name=args.name,
+                           roles=_parse_columns(args.column), sheet=args.sheet, encoding=args.encoding)
+    payload = {"roster": report.roster.name, "id": report.roster.id, "rows": report.rows,
+               "accepted": report.accepted, "rejected": report.rejected, "duplicates": report.duplicates,
+               "columns": report.roles, "messages": list(report.messages)}
+    _emit(args, payload, lambda p: (
+        f"Imported roster {p['roster']!r}: {p['rows']} rows, {p['accepted']} accepted, "
+        f"{p['rejected']} rejected, {p['duplicates']} exact duplicates stored once."))
+    return 0
+
+
+def cmd_mapping_import(args: argparse.Namespace) -> int:
+    from app.analysis import import_mapping_file
+
+    path = Path(args.file)
+    if not path.is_file():
+        raise CommandError(f"No file at {path}.")
+    outcome = import_mapping_file(_store(args), path.read_bytes(), roster=args.roster, name=args.name)
+    _emit(args, outcome, lambda p: (
+        f"Saved mapping {p['mapping']!r} version {p['version']} with {p['codes']} codes"
+        + (f"; {len(p['not_in_roster'])} codes do not occur in the roster (kept for other rosters)"
+           if p["not_in_roster"] else "") + "."))
+    return 0
+
+
+def cmd_mapping_export(args: argparse.Namespace) -> int:
+    from app.analysis import export_mapping_csv
+
+    text = export_mapping_csv(_store(args), name=args.name, version=args.version)
+    if args.out:
+        Path(args.out).write_text(text, encoding="utf-8")
+    else:
+        sys.stdout.write(text)
+    return 0
+
+
+def cmd_coverage(args: argparse.Namespace) -> int:
+    from app.analysis import coverage_summary, load_input
+
+    inp = load_input(_store(args), args.roster, mapping=args.mapping, require_mapping=False)
+    payload = coverage_summary(inp, threshold=args.threshold)
+    _emit(args, payload, lambda p: "\n".join(
+        [f"{'year':>6} {'all':>5} {'forced':>7} {'volunt.':>7} {'excl.':>6} {'unmap.':>6}"]
+        + [f"{y['year']:>6} {y['departures']:>5} {y['forced']:>7} {y['voluntary']:>7} {y['excluded']:>6} "
+           f"{y['unmapped']:>6}" for y in p["years"]]
+        + [f"Suggested window: {p['suggested_window'][0]}-{p['suggested_window'][1]} ({p['rule']})"]))
+    return 0
+
+
+def cmd_fit(args: argparse.Namespace) -> int:
+    from app.analysis import fit_summary, load_input
+
+    store = _store(args)
+    inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
+    payload = fit_summary(store, inp, model=args.model, by_sector=args.by == "sector")
+    _emit(args, payload, lambda p: p["sentence"])
+    return 0
+
+
+def cmd_bootstrap(args: argparse.Namespace) -> int:
+    from app.analysis import load_input
+    from app.jobs import run_bootstrap_now
+
+    store = _store(args)
+    inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
+    payload = run_bootstrap_now(store, inp, unit=args.unit, resamples=args.resamples, seed=args.seed,
+                                model=args.model)
+    _emit(args, payload, lambda p: (
+        f"Bootstrap ({p['unit']} resampling, B={p['resamples']}, seed {p['seed']}): odds ratio per year "
+        f"{p['odds_ratio']:.4f}; BCa 95% {p['conf_int']['bca'][0]:.4f} to {p['conf_int']['bca'][1]:.4f}; "
+        f"{p['failed']} failed resamples; {p['seconds']:.2f} s."))
+    return 0
+
+
+def cmd_robustness(args: argparse.Namespace) -> int:
+    from app.analysis import load_input, robustness_summary
+
+    store = _store(args)
+    mappings = args.mapping or []
+    inp = load_input(store, args.roster, mapping=mappings[0] if mappings else None,
+                     window=_parse_years(args.years))
+    payload = robustness_summary(store, inp, extra_mappings=mappings[1:], vary=args.vary or [])
+    _emit(args, payload, lambda p: p["sentence"])
+    return 0
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    from app.analysis import load_input
+    from app.briefs import export_to_file
+
+    store = _store(args)
+    inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
+    path = export_to_file(store, inp, fmt=args.format, out=Path(args.out), chart=args.chart, run_id=args.run)
+    print(f"Wrote {path}", file=sys.stderr)
+    return 0
+
+
+# -- parser ------------------------------------------------------------------------------------
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="helmshift", description=__doc__.split("\n")[0])
+    parser.add_argument("--version", action="version", version=f"helmshift {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    def common(p: argparse.ArgumentParser, json_flag: bool = True) -> None:
+        p.add_argument("--db", help="database file or SQLAlchemy URL (default: HELMSHIFT_DB or ./helmshift.db)")
+        if json_flag:
+            p.add_argument("--json", action="store_true", help="print one JSON object")
+
+    p = sub.add_parser("serve", help="start the dashboard")
+    common(p, json_flag=False)
+    p.add_argument("--host", default="127.0.0.1")
+    p.add_argument("--port", type=int, default=8000)
+    p.add_argument("--demo", action="store_true", help="load the invented demo roster (fresh database)")
+    p.set_defaults(func=cmd_serve)
+
+    p = sub.add_parser("import", help="import a roster file (CSV or XLSX)")
+    p.add_argument("file")
+    common(p)
+    p.add_argument("--name", help="roster name (default: the file name)")
+    p.add_argument("--column", action="append", metavar="ROLE=HEADER", help="set a column role explicitly")
+    p.add_argument("--sheet", help="XLSX sheet (default: the first)")
+    p.add_argument("--encoding", help="text encoding (default: detect)")
+    p.set_defaults(func=cmd_import)
+
+    p = sub.add_parser("mapping", help="import or export a reason-code mapping")
+    msub = p.add_subparsers(dest="mapping_command", required=True)
+    q = msub.add_parser("import", help="save a CSV (code,category[,label]) as a new mapping version")
+    q.add_argument("file")
+    q.add_argument("--roster", required=True)
+    q.add_argument("--name", required=True)
+    common(q)
+    q.set_defaults(func=cmd_mapping_import)
+    q = msub.add_parser("export", help="write a mapping version as CSV")
+    q.add_argument("--roster", help="accepted for symmetry; mappings are shared across rosters")
+    q.add_argument("--name", required=True)
+    q.add_argument("--version", type=int)
+    q.add_argument("--out")
+    common(q, json_flag=False)
+    q.set_defaults(func=cmd_mapping_export)
+
+    p = sub.add_parser("coverage", help="departures per year and the suggested window")
+    p.add_argument("--roster", required=True)
+    p.add_argument("--mapping")
+    p.add_argument("--threshold", type=float, default=0.5, help="share of the median year (default 0.5)")
+    common(p)
+    p.set_defaults(func=cmd_coverage)
+
+    p = sub.add_parser("fit", help="fit the trend of the forced share")
+    p.add_argument("--roster", required=True)
+    p.add_argument("--mapping")
+    p.add_argument("--years", metavar="FROM-TO")
+    p.add_argument("--by", choices=["sector"])
+    p.add_argument("--model", choices=["linear", "sector", "spline"], default="linear")
+    common(p)
+    p.set_defaults(func=cmd_fit)
+
+    p = sub.add_parser("bootstrap", help="bootstrap the odds ratio per year")
+    p.add_argument("--roster", required=True)
+    p.add_argument("--mapping")
+    p.add_argument("--years", metavar="FROM-TO")
+    p.add_argument("--unit", choices=["firm", "departure"], default="firm")
+    p.add_argument("--resamples", type=int, default=2000)
+    p.add_argument("--seed", type=int, default=20261201)
+    p.add_argument("--model", choices=["linear", "sector"], default="linear")
+    common(p)
+    p.set_defaults(func=cmd_bootstrap)
+
+    p = sub.add_parser("robustness", help="the trend under several mappings and variants")
+    p.add_argument("--roster", required=True)
+    p.add_argument("--mapping", action="append", help="a mapping (repeat for several; NAME or NAME:VERSION)")
+    p.add_argument("--vary", action="append", metavar="CODE", help="move CODE to each other category")
+    p.add_argument("--years", metavar="FROM-TO")
+    common(p)
+    p.set_defaults(func=cmd_robustness)
+
+    p = sub.add_parser("export", help="export charts, a deck or the one-page brief")
+    p.add_argument("--roster", required=True)
+    p.add_argument("--mapping")
+    p.add_argument("--years", metavar="FROM-TO")
+    p.add_argument("--run", type=int, help="a stored bootstrap run to include")
+    p.add_argument("--format", required=True, choices=["png", "svg", "pdf", "pptx", "brief"])
+    p.add_argument("--chart", default="trend", help="coverage, trend, bootstrap, sectors or robustness")
+    p.add_argument("--out", required=True)
+    common(p, json_flag=False)
+    p.set_defaults(func=cmd_export)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args))
+    except CommandError as exc:
+        print(f"helmshift: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except (ValueError, LookupError, OSError) as exc:
+        # store, ingest and stats errors are ValueError/LookupError subclasses with clear messages
+        message = str(exc).strip() or exc.__class__.__name__
+        print(f"helmshift: {message}", file=sys.stderr)
+        return EXIT_FAILED
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,108 @@
+"""The FastAPI application: services on ``app.state``, routers per page, security middleware."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from pathlib import Path
+
+from fastapi import FastAPI, Request
+from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, RedirectResponse, Response
+from fastapi.staticfiles import StaticFiles
+
+from app import __version__
+from app.config import Settings
+from app.store import Store
+from app.web import briefing, coverage, reasons, resampling, rosters, sectors, trend
+from app.web.deps import BadRequest, NotFound
+from app.web.rendering import STATIC_DIR, render, templates
+from app.web.security import SecurityMiddleware
+from app.web.uploads import UploadStash
+
+#: per-roster pages shown in the navigation after Roster / Reason codes / Coverage, in order
+NAV_PAGES: list[tuple[str, str]] = [
+    ("trend_page", "Trend"),
+    ("resampling_page", "Resampling"),
+    ("sectors_page", "Sectors"),
+    ("robustness_page", "Robustness"),
+    ("briefing_page", "Briefing"),
+]
+
+
+def plotly_js_path() -> Path:
+    """plotly.js as shipped inside the plotly package, so the dashboard works offline."""
+    import plotly
+
+    return Path(plotly.__file__).parent / "package_data" / "plotly.min.js"
+
+
+def plotly_js_version() -> str:
+    from plotly.offline import get_plotlyjs_version
+
+    return str(get_plotlyjs_version())
+
+
+def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bool = True) -> FastAPI:
+    """Build the app over ``store`` (opened from ``settings.db_url`` when not given)."""
+    from app.jobs import JobRunner
+
+    store = store or Store(settings.db_url)
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        if start_jobs:
+            app.state.jobs.start()
+        yield
+        app.state.jobs.shutdown()
+
+    app = FastAPI(
+        title="Helmshift", version=__version__, lifespan=lifespan,
+        description="Local dashboard for forced chief-executive turnover: rosters, mappings, "
+                    "coverage, trend models and bootstrap runs. Every page has a JSON twin under /api.",
+    )
+    app.state.settings = settings
+    app.state.store = store
+    app.state.uploads = UploadStash()
+    app.state.jobs = JobRunner(store, workers=settings.job_workers)
+    interrupted = store.mark_interrupted()
+    app.state.interrupted_at_start = interrupted
+
+    app.add_middleware(SecurityMiddleware, allowed_hosts=settings.allowed_hosts,
+                       upload_limit=settings.upload_limit)
+    app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
+    templates.env.globals["nav_extra"] = NAV_PAGES
+    templates.env.globals["plotly_js_url"] = f"/vendor/plotly-{plotly_js_version()}.min.js"
+
+    @app.get(f"/vendor/plotly-{plotly_js_version()}.min.js", include_in_schema=False)
+    def plotly_bundle() -> FileResponse:
+        return FileResponse(plotly_js_path(), media_type="text/javascript",
+                            headers={"cache-control": "public, max-age=86400"})
+
+    @app.get("/", include_in_schema=False)
+    def home(request: Request) -> RedirectResponse:
+        return RedirectResponse(request.url_for("rosters_page"), status_code=303)
+
+    @app.get("/api/health", name="health")
+    def health() -> dict[str, object]:
+        return {"status": "ok", "version": __version__, "schema": store.schema_version()}
+
+    for module in (rosters, reasons, coverage, trend, resampling, sectors, briefing):
+        app.include_router(module.router)
+
+    @app.exception_handler(NotFound)
+    def not_found(request: Request, exc: NotFound) -> Response:
+        return _error(request, 404, str(exc))
+
+    @app.exception_handler(BadRequest)
+    def bad_request(request: Request, exc: BadRequest) -> Response:
+        return _error(request, 400, str(exc))
+
+    return app
+
+
+def _error(request: Request, status: int, message: str) -> Response:
+    if request.url.path.startswith("/api/") or "application/json" in request.headers.get("accept", ""):
+        return JSONResponse({"error": message}, status_code=status)
+    response: HTMLResponse = render(request, "error.html", {"status": status, "message": message},
+                                    status=status)
+    return response

@@ -1,0 +1,224 @@
+"""Rosters: list, upload with a confirm step for column roles, detail with rejected rows."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.datastructures import UploadFile
+
+from app.ingest import (
+    DuplicateRosterError, RosterFileError, RosterPreview, import_roster, preview_roster, rejected_rows_csv,
+)
+from app.store import RejectedRow, Roster, Store, StoreError
+from app.types import ROLES
+from app.web.deps import NotFound, app_settings, app_store, app_uploads
+from app.web.rendering import as_json, render
+
+router = APIRouter()
+
+REJECTED_SHOWN = 200
+
+
+@dataclass(frozen=True)
+class RostersPage:
+    """Every stored roster, newest last, and the upload limit the form states."""
+
+    rosters: list[Roster]
+    upload_limit_mb: float
+    message: str | None = None
+
+
+@dataclass(frozen=True)
+class RosterDetailPage:
+    """One roster: counts, years, sectors, settings and its rejected rows."""
+
+    roster: Roster
+    years: tuple[int, int] | None
+    firms: int
+    sectors: list[dict[str, Any]]
+    mapping_name: str | None
+    window: tuple[int, int] | None
+    rejected: list[RejectedRow]
+    rejected_total: int
+
+
+@dataclass(frozen=True)
+class ConfirmPage:
+    """The preview of an uploaded file with the detected column roles, waiting for confirmation."""
+
+    token: str
+    filename: str
+    preview: RosterPreview
+    roles: dict[str, str | None]
+    name: str
+    error: str | None = None
+    duplicate_of: Roster | None = None
+    role_names: tuple[str, ...] = field(default=ROLES)
+
+
+def rosters_data(store: Store, upload_limit: int, message: str | None = None) -> RostersPage:
+    return RostersPage(store.list_rosters(), upload_limit / (1024 * 1024), message)
+
+
+def roster_detail_data(store: Store, roster_id: int) -> RosterDetailPage:
+    roster = _roster_or_404(store, roster_id)
+    deps = store.departures(roster.id)
+    rejected = store.rejected(roster.id)
+    settings = store.settings(roster.id)
+    years = (int(deps["year"].min()), int(deps["year"].max())) if len(deps) else None
+    sectors = (
+        deps.assign(sector=deps["sector"].fillna("(none)"))
+        .groupby("sector").agg(departures=("id", "size"), firms=("firm_id", "nunique"))
+        .reset_index().sort_values("departures", ascending=False).to_dict("records")
+        if len(deps) else []
+    )
+    return RosterDetailPage(
+        roster=roster, years=years, firms=int(deps["firm_id"].nunique()) if len(deps) else 0,
+        sectors=sectors, mapping_name=settings.mapping_name, window=settings.window,
+        rejected=rejected[:REJECTED_SHOWN], rejected_total=len(rejected),
+    )
+
+
+def _roster_or_404(store: Store, roster_id: int) -> Roster:
+    try:
+        return store.get_roster(roster_id)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+
+
+@router.get("/rosters", response_class=HTMLResponse, name="rosters_page")
+def rosters_page(request: Request) -> HTMLResponse:
+    page = rosters_data(app_store(request), app_settings(request).upload_limit)
+    return render(request, "rosters.html", page, active="rosters")
+
+
+@router.get("/api/rosters", name="rosters_api")
+def rosters_api(request: Request) -> JSONResponse:
+    return as_json(rosters_data(app_store(request), app_settings(request).upload_limit))
+
+
+async def _read_upload(form: Any) -> tuple[str, bytes]:
+    upload = form.get("file")
+    if not isinstance(upload, UploadFile) or not upload.filename:
+        raise RosterFileError("Choose a CSV or XLSX file to upload.")
+    return upload.filename, await upload.read()
+
+
+@router.post("/rosters/upload", response_class=HTMLResponse, name="roster_upload")
+async def roster_upload(request: Request) -> HTMLResponse:
+    """First step: keep the file aside, show its first rows and the column roles we detected."""
+    store = app_store(request)
+    form = await request.form()
+    try:
+        filename, data = await _read_upload(form)
+        sheet = str(form.get("sheet") or "") or None
+        encoding = str(form.get("encoding") or "") or None
+        preview = preview_roster(data, filename, encoding=encoding, sheet=sheet)
+    except RosterFileError as exc:
+        page = rosters_data(store, app_settings(request).upload_limit, message=str(exc))
+        return render(request, "rosters.html", page, status=400, active="rosters")
+    pending = app_uploads(request).put(filename, data)
+    page = ConfirmPage(
+        token=pending.token, filename=filename, preview=preview,
+        roles={r: preview.roles.get(r) for r in ROLES}, name=_default_name(store, filename),
+        duplicate_of=_same_file(store, data),
+    )
+    return render(request, "roster_confirm.html", page, active="rosters")
+
+
+def _default_name(store: Store, filename: str) -> str:
+    stem = filename.rsplit("/", 1)[-1].rsplit("\\", 1)[-1].rsplit(".", 1)[0].strip() or "roster"
+    name, n = stem, 2
+    while store.roster_name_taken(name):
+        name, n = f"{stem} ({n})", n + 1
+    return name
+
+
+def _same_file(store: Store, data: bytes) -> Roster | None:
+    import hashlib
+
+    return store.find_roster_by_sha(hashlib.sha256(data).hexdigest())
+
+
+@router.post("/rosters/confirm", name="roster_confirm", response_model=None)
+async def roster_confirm(request: Request) -> Response:
+    """Second step: import with the roles the analyst confirmed; all rows land or none do."""
+    store = app_store(request)
+    form = await request.form()
+    token = str(form.get("token") or "")
+    pending = app_uploads(request).get(token)
+    if pending is None:
+        page = rosters_data(store, app_settings(request).upload_limit,
+                            message="That upload has expired or was already imported; choose the file again.")
+        return render(request, "rosters.html", page, status=400, active="rosters")
+    roles = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
+    name = str(form.get("name") or "").strip() or None
+    try:
+        report = import_roster(
+            store, pending.data, pending.filename, name=name, roles=roles,
+            encoding=str(form.get("encoding") or "") or None, sheet=str(form.get("sheet") or "") or None,
+            allow_same_file=form.get("allow_same_file") == "yes",
+        )
+    except (RosterFileError, DuplicateRosterError, StoreError) as exc:
+        preview = preview_roster(pending.data, pending.filename)
+        page = ConfirmPage(
+            token=token, filename=pending.filename, preview=preview,
+            roles={r: roles.get(r) for r in ROLES}, name=name or _default_name(store, pending.filename),
+            error=str(exc), duplicate_of=_same_file(store, pending.data),
+        )
+        return render(request, "roster_confirm.html", page, status=400, active="rosters")
+    app_uploads(request).drop(token)
+    return RedirectResponse(request.url_for("roster_detail", roster_id=report.roster.id), status_code=303)
+
+
+@router.post("/api/rosters", name="rosters_import_api")
+async def rosters_import_api(request: Request) -> JSONResponse:
+    """Import in one call: multipart ``file``, optional ``name``, ``sheet``, ``encoding`` and ``role_<ROLE>``."""
+    store = app_store(request)
+    form = await request.form()
+    try:
+        filename, data = await _read_upload(form)
+        roles = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
+        report = import_roster(
+            store, data, filename, name=str(form.get("name") or "").strip() or None, roles=roles or None,
+            encoding=str(form.get("encoding") or "") or None, sheet=str(form.get("sheet") or "") or None,
+        )
+    except DuplicateRosterError as exc:
+        return JSONResponse({"error": str(exc)}, status_code=409)
+    except (RosterFileError, StoreError) as exc:
+        return JSONResponse({"error": str(exc)}, status_code=400)
+    return JSONResponse({
+        "roster": report.roster.name, "id": report.roster.id, "rows": report.rows,
+        "accepted": report.accepted, "rejected": report.rejected, "duplicates": report.duplicates,
+    }, status_code=201)
+
+
+@router.get("/rosters/{roster_id}", response_class=HTMLResponse, name="roster_detail")
+def roster_detail(request: Request, roster_id: int) -> HTMLResponse:
+    page = roster_detail_data(app_store(request), roster_id)
+    return render(request, "roster_detail.html", page, roster=page.roster, active="roster")
+
+
+@router.get("/api/rosters/{roster_id}", name="roster_detail_api")
+def roster_detail_api(request: Request, roster_id: int) -> JSONResponse:
+    return as_json(roster_detail_data(app_store(request), roster_id))
+
+
+@router.get("/rosters/{roster_id}/rejected.csv", name="roster_rejected_csv")
+def roster_rejected_csv(request: Request, roster_id: int) -> Response:
+    store = app_store(request)
+    roster = _roster_or_404(store, roster_id)
+    body = rejected_rows_csv(store.rejected(roster.id))
+    return Response(body, media_type="text/csv; charset=utf-8", headers={
+        "content-disposition": f'attachment; filename="rejected-rows-{roster.id}.csv"'})
+
+
+@router.post("/rosters/{roster_id}/delete", name="roster_delete")
+def roster_delete(request: Request, roster_id: int) -> RedirectResponse:
+    store = app_store(request)
+    roster = _roster_or_404(store, roster_id)
+    store.delete_roster(roster.id)
+    return RedirectResponse(request.url_for("rosters_page"), status_code=303)
