@@ -571,6 +571,14 @@ class Store:
                 status=status, result=json.dumps(dict(result)), seconds=seconds, finished_at=now_iso(),
             ))
 
+    def update_run_params(self, run_id: int, params: Mapping[str, Any], *, status: RunStatus) -> None:
+        """Change a run's parameters (extending B) and its status, keeping its stored replicates."""
+        with self._tx() as conn:
+            conn.execute(update(runs).where(runs.c.id == run_id).values(
+                params=json.dumps(dict(params)), status=status, cancel_requested=False, error=None,
+                progress_total=int(params.get("resamples", 0)), finished_at=None,
+            ))
+
     def request_cancel(self, run_id: int) -> None:
         with self._tx() as conn:
             conn.execute(update(runs).where(runs.c.id == run_id).values(cancel_requested=True))
