@@ -1,0 +1,347 @@
+"""Grouped binomial logit fits and profile-likelihood intervals for one coefficient.
+
+Every model in Helmshift is a binomial GLM on grouped counts (forced out of departures per group).
+``fit_grouped_binomial`` wraps statsmodels' GLM so that separation, non-convergence and overflow
+warnings become user-facing messages instead of stray warnings; ``profile_interval`` inverts the
+likelihood-ratio test for one coefficient.
+
+statsmodels has no profile-likelihood interval for GLMs (only Wald ``conf_int``), which is why the
+root-finding below is written by hand.
+
+statsmodels is imported inside the functions: importing it costs over a second, and this module is
+imported at CLI and server start-up.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from scipy import optimize, stats
+
+#: fitted probabilities closer than this to 0 or 1 mean the MLE sits at infinity (separation)
+SEPARATION_EPS = 1e-8
+#: IRLS stops when the relative deviance change is below this; tight so profile roots are good to ~1e-7
+GLM_TOL = 1e-12
+GLM_MAXITER = 200
+#: the bracket search steps out this many Wald SEs before calling a side open
+_NEWTON_MAXITER = 100
+_BRACKET_STEPS = (0.5, 1.0, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0, 24.0, 32.0, 64.0)
+
+
+@dataclass(frozen=True)
+class GroupedFit:
+    """A fitted grouped binomial logit.
+
+    Attributes
+    ----------
+    params, bse : numpy.ndarray
+        Coefficients (logit scale) and their model-based (binomial, dispersion 1) standard errors.
+    cov : numpy.ndarray
+        Covariance of ``params`` with dispersion fixed at 1.
+    deviance : float
+        Residual deviance, 2 * sum of observed * log(observed / fitted) over both cells of each group.
+    pearson_chi2 : float
+        Pearson X^2 = sum (forced - n p)^2 / (n p (1 - p)).
+    df_resid : int
+        Groups with at least one departure minus the number of coefficients.
+    llf : float
+        Log-likelihood in statsmodels' convention, which *includes* the log binomial coefficient
+        log C(n, forced) (e.g. beetle mortality: -18.7151, where Dobson & Barnett print -186.235
+        without that term). Only differences of ``llf`` are meaningful across software.
+    mu : numpy.ndarray
+        Fitted probabilities per group.
+    converged : bool
+        IRLS met its tolerance.
+    separated : bool
+        Some fitted probability is within ``SEPARATION_EPS`` of 0 or 1 (or statsmodels flagged
+        perfect separation): at least one coefficient is infinite and must not be reported.
+    messages : tuple of str
+        User-facing notes about warnings met while fitting.
+    """
+
+    params: np.ndarray
+    bse: np.ndarray
+    cov: np.ndarray
+    deviance: float
+    pearson_chi2: float
+    df_resid: int
+    llf: float
+    mu: np.ndarray
+    converged: bool
+    separated: bool
+    messages: tuple[str, ...]
+
+    @property
+    def dispersion(self) -> float:
+        """Pearson dispersion X^2 / df_resid (NaN with no residual df).
+
+        Computed by hand: statsmodels' ``fit(scale="X2")`` is wrong for a two-column response
+        (REFERENCES.md, star98: 0.034 instead of 14.37).
+        """
+        return self.pearson_chi2 / self.df_resid if self.df_resid > 0 else math.nan
+
+
+@dataclass(frozen=True)
+class ProfileResult:
+    """Profile-likelihood interval for one coefficient, on the coefficient's own (logit) scale.
+
+    ``low`` / ``high`` are ``-inf`` / ``inf`` when the profile deviance never reaches the cut-off on
+    that side (separation or a likelihood that flattens out); ``message`` then says so.
+    """
+
+    low: float
+    high: float
+    message: str | None
+
+
+def _response(forced: np.ndarray, totals: np.ndarray) -> np.ndarray:
+    # The two-column (successes, failures) response keeps statsmodels' llf in the usual
+    # binomial convention; proportions with var_weights give the same estimates but another llf.
+    return np.column_stack([forced, totals - forced]).astype(float)
+
+
+def _check_counts(forced: np.ndarray, totals: np.ndarray, X: np.ndarray) -> None:
+    if forced.shape != totals.shape or forced.ndim != 1:
+        raise ValueError("forced and totals must be one-dimensional arrays of the same length.")
+    if X.ndim != 2 or X.shape[0] != len(forced):
+        raise ValueError("X must be a two-dimensional design matrix with one row per group.")
+    if np.any(totals <= 0):
+        raise ValueError("Every group needs at least one departure (totals > 0).")
+    if np.any(forced < 0) or np.any(forced > totals):
+        raise ValueError("Forced counts must lie between 0 and the group total.")
+
+
+def _warning_messages(caught: list[warnings.WarningMessage]) -> tuple[list[str], bool, bool]:
+    from statsmodels.tools.sm_exceptions import ConvergenceWarning, PerfectSeparationWarning
+
+    notes: list[str] = []
+    separated = False
+    failed = False
+    for w in caught:
+        if issubclass(w.category, PerfectSeparationWarning):
+            separated = True
+        elif issubclass(w.category, ConvergenceWarning):
+            failed = True
+        elif issubclass(w.category, RuntimeWarning):
+            notes.append("Numerical overflow occurred while fitting; the estimates may be unreliable.")
+        else:
+            notes.append(f"The fitting routine warned: {w.message}")
+    return sorted(set(notes)), separated, failed
+
+
+def _glm_fit(endog: np.ndarray, X: np.ndarray, offset: np.ndarray | None
+             ) -> tuple[dict[str, Any], list[warnings.WarningMessage]]:
+    import statsmodels.api as sm
+
+    # statsmodels computes results lazily, so every attribute we need is read inside the
+    # catch block; otherwise an overflow in a late ``mu`` evaluation escapes as a stray warning.
+    with warnings.catch_warnings(record=True) as caught, np.errstate(all="warn"):
+        warnings.simplefilter("always")
+        model = sm.GLM(endog, X, family=sm.families.Binomial(), offset=offset)
+        res = model.fit(tol=GLM_TOL, maxiter=GLM_MAXITER)
+        out: dict[str, Any] = {
+            "params": np.asarray(res.params, dtype=float),
+            "bse": np.asarray(res.bse, dtype=float),
+            "cov": np.asarray(res.cov_params(), dtype=float),
+            "deviance": float(res.deviance),
+            "pearson_chi2": float(res.pearson_chi2),
+            "df_resid": int(round(float(res.df_resid))),
+            "llf": float(res.llf),
+            "mu": np.asarray(res.mu, dtype=float),
+            "converged": bool(res.converged),
+        }
+    return out, list(caught)
+
+
+def fit_grouped_binomial(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, *,
+                         offset: np.ndarray | None = None) -> GroupedFit:
+    """Fit logit P(forced) = X b (+ offset) to grouped counts by maximum likelihood (IRLS).
+
+    Parameters
+    ----------
+    forced, totals : array_like of int, shape (n_groups,)
+        Forced departures and all counted departures per group; every total must be positive.
+    X : numpy.ndarray, shape (n_groups, n_params)
+        Design matrix (include a constant column yourself if the model needs one).
+    offset : numpy.ndarray, optional
+        Known part of the linear predictor.
+
+    Returns
+    -------
+    GroupedFit
+        Warnings from statsmodels are caught and returned as ``messages``; nothing is raised for
+        separation or non-convergence (check ``separated`` and ``converged``).
+    """
+    forced = np.asarray(forced, dtype=float)
+    totals = np.asarray(totals, dtype=float)
+    X = np.asarray(X, dtype=float)
+    _check_counts(forced, totals, X)
+    res, caught = _glm_fit(_response(forced, totals), X, offset)
+    notes, flagged, failed = _warning_messages(caught)
+    mu = res["mu"]
+    extreme = bool(np.any((mu < SEPARATION_EPS) | (mu > 1 - SEPARATION_EPS)))
+    separated = flagged or extreme
+    converged = res["converged"] and not failed
+    if separated:
+        notes.insert(0, "Some groups are perfectly predicted (separation): at least one coefficient "
+                        "is infinite, so its estimate and Wald interval are not meaningful.")
+    if not converged:
+        notes.insert(0, "The model fit did not converge; treat the estimates with caution.")
+    return GroupedFit(
+        params=res["params"], bse=res["bse"], cov=res["cov"], deviance=res["deviance"],
+        pearson_chi2=res["pearson_chi2"], df_resid=res["df_resid"], llf=res["llf"], mu=mu,
+        converged=converged, separated=separated, messages=tuple(notes),
+    )
+
+
+def _saturated_loglik(forced: np.ndarray, totals: np.ndarray) -> float:
+    share = forced / totals
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ll = np.where(forced > 0, forced * np.log(share), 0.0)
+        ll += np.where(totals > forced, (totals - forced) * np.log1p(-share), 0.0)
+    return float(np.sum(ll))
+
+
+def _loglik(forced: np.ndarray, totals: np.ndarray, eta: np.ndarray) -> float:
+    # log p = -log(1 + e^-eta), log(1 - p) = -log(1 + e^eta): logaddexp never overflows.
+    return float(np.sum(-forced * np.logaddexp(0.0, -eta) - (totals - forced) * np.logaddexp(0.0, eta)))
+
+
+def _refit_deviance(forced: np.ndarray, totals: np.ndarray, Z: np.ndarray, offset: np.ndarray,
+                    start: np.ndarray) -> tuple[float, np.ndarray]:
+    """Deviance minimised over the coefficients of ``Z`` with ``offset`` fixed.
+
+    A damped Newton ascent written here rather than statsmodels' IRLS: with the large offsets a
+    profile visits (tens of logits), statsmodels' IRLS can diverge to a huge deviance while still
+    reporting convergence. The binomial log-likelihood is concave, so step-halving makes every
+    step an improvement and the deviance converges (to its infimum when a nuisance coefficient
+    runs off to infinity). Returns the deviance and the maximiser (a warm start for the next call).
+    """
+    saturated = _saturated_loglik(forced, totals)
+    beta = start.copy()
+    ll = _loglik(forced, totals, offset + Z @ beta)
+    if Z.shape[1] == 0:
+        return 2.0 * (saturated - ll), beta
+
+    def value(b: np.ndarray) -> float:
+        return _loglik(forced, totals, offset + Z @ b)
+
+    for _ in range(_NEWTON_MAXITER):
+        p = 0.5 * (1.0 + np.tanh(0.5 * (offset + Z @ beta)))
+        grad = Z.T @ (forced - totals * p)
+        hess = (Z * (totals * p * (1.0 - p))[:, None]).T @ Z
+        step = np.linalg.lstsq(hess, grad, rcond=None)[0]
+        # A near-singular Hessian (fitted p near 0 or 1) gives huge Newton steps; halving up to
+        # 2^-150 turns them into a usable line search along the same direction.
+        trial, ll_trial, scale = beta, ll, 1.0
+        while scale > 2.0**-150:
+            if (candidate := value(beta + scale * step)) > ll:
+                trial, ll_trial = beta + scale * step, candidate
+                break
+            scale /= 2.0
+        if ll_trial <= ll:
+            norm = float(np.linalg.norm(grad))
+            if norm == 0.0 or not math.isfinite(norm):
+                break
+            # Far out in the tails the Hessian underflows to exactly zero and Newton stalls; walk
+            # uphill along the gradient with a step that doubles while it keeps improving.
+            radius = 1.0
+            while radius < 1e12 and (candidate := value(beta + radius * grad / norm)) > ll_trial:
+                trial, ll_trial = beta + radius * grad / norm, candidate
+                radius *= 2.0
+            if ll_trial <= ll:
+                break
+        gain = ll_trial - ll
+        move = float(np.max(np.abs(trial - beta)))
+        beta, ll = trial, ll_trial
+        if gain <= 1e-14 * (1.0 + abs(ll)) and move < 1e-10:
+            break
+    return 2.0 * (saturated - ll), beta
+
+
+def profile_interval(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, index: int,
+                     alpha: float = 0.05, *, offset: np.ndarray | None = None,
+                     dispersion: float = 1.0) -> ProfileResult:
+    """Profile-likelihood interval for coefficient ``index`` of a grouped binomial logit.
+
+    The interval is {b : (D(b) - D_min) / dispersion <= chi2_{1, 1 - alpha}}, where D(b) is the
+    deviance minimised over the other coefficients with b_index fixed at b (moved into the offset
+    and the rest refitted). Each end is found by ``scipy.optimize.brentq`` (xtol 1e-10) after
+    bracketing by stepping out in multiples of the Wald standard error.
+
+    Parameters
+    ----------
+    forced, totals : array_like of int, shape (n_groups,)
+    X : numpy.ndarray, shape (n_groups, n_params)
+    index : int
+        Column of ``X`` whose coefficient is profiled.
+    alpha : float
+        1 - confidence level.
+    offset : numpy.ndarray, optional
+        Known part of the linear predictor, kept throughout.
+    dispersion : float
+        Divide the deviance difference by this (quasi-binomial profile); 1 for the binomial model.
+
+    Returns
+    -------
+    ProfileResult
+        Bounds on the logit (coefficient) scale; an end the profile never reaches is +/- inf, with
+        a message, never an invented number.
+    """
+    forced = np.asarray(forced, dtype=float)
+    totals = np.asarray(totals, dtype=float)
+    X = np.asarray(X, dtype=float)
+    if not 0.0 < alpha < 1.0:
+        raise ValueError("alpha must lie strictly between 0 and 1.")
+    if not 0 <= index < X.shape[1]:
+        raise ValueError(f"index must be between 0 and {X.shape[1] - 1}; got {index}.")
+    if not (dispersion > 0 and math.isfinite(dispersion)):
+        raise ValueError("dispersion must be a positive finite number.")
+    off = np.zeros(len(forced)) if offset is None else np.asarray(offset, dtype=float)
+    full = fit_grouped_binomial(forced, totals, X, offset=off)
+    b_hat = float(full.params[index])
+    se = float(full.bse[index])
+    if not (math.isfinite(b_hat) and math.isfinite(se) and se > 0):
+        return ProfileResult(-math.inf, math.inf, "The coefficient could not be estimated, so no "
+                             "profile interval exists.")
+    cut = float(stats.chi2.ppf(1.0 - alpha, 1))
+    others = np.delete(X, index, axis=1)
+    column = X[:, index]
+
+    # Start each refit from the last one (or the full fit); the line search keeps this safe.
+    warm = [np.delete(full.params, index)]
+
+    def deviance_at(b: float) -> float:
+        dev, beta = _refit_deviance(forced, totals, others, off + b * column, warm[0])
+        if np.all(np.isfinite(beta)):
+            warm[0] = beta
+        return dev
+
+    def excess(b: float) -> float:
+        return (deviance_at(b) - full.deviance) / dispersion - cut
+
+    ends: list[float] = []
+    notes: list[str] = []
+    for sign, side in ((-1.0, "lower"), (1.0, "upper")):
+        inner = b_hat
+        root = None
+        for k in _BRACKET_STEPS:
+            outer = b_hat + sign * k * se
+            value = excess(outer)
+            if math.isfinite(value) and value > 0:
+                lo, hi = sorted((inner, outer))
+                root = optimize.brentq(excess, lo, hi, xtol=1e-10, rtol=4 * np.finfo(float).eps)
+                break
+            if math.isfinite(value):
+                inner = outer
+        if root is None:
+            ends.append(sign * math.inf)
+            notes.append(f"The profile likelihood never falls far enough on the {side} side "
+                         f"(the data cannot bound it), so the {side} end is open.")
+        else:
+            ends.append(float(root))
+    return ProfileResult(ends[0], ends[1], " ".join(notes) if notes else None)
