@@ -1,0 +1,448 @@
+"""The trend model: logit P(forced | departure in year t) = b0 + b1 (t - centre), on grouped counts.
+
+The headline is the odds ratio per year exp(b1), with Wald and profile-likelihood intervals. Options:
+one intercept per sector with a common slope (``"sector"``), and a natural cubic spline in year
+(``"spline"``) whose only role is to test for curvature against the straight trend; the straight
+trend's odds ratio stays the headline.
+
+statsmodels is imported lazily (inside the fitting helpers): it costs over a second to import and
+this module sits on the CLI and server start-up path.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Literal, get_args
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from app.stats.cells import Cells
+from app.stats.design import design_matrix, window_centre
+from app.stats.profile import GroupedFit, ProfileResult, fit_grouped_binomial, profile_interval
+from app.stats.proportions import share_intervals
+from app.types import check_choice
+
+TrendKind = Literal["linear", "sector", "spline"]
+TREND_KINDS: tuple[TrendKind, ...] = get_args(TrendKind)
+
+#: Quasi-binomial rule: refit when Pearson X^2/df exceeds this AND there are at least QUASI_MIN_DF
+#: residual df. 1.5 leaves room for chance (X^2/df has SD about sqrt(2/df), ~0.45 at df 10) while
+#: catching the overdispersion that clustered departures (one firm, many years) typically produce;
+#: with fewer than 5 df the dispersion estimate itself is too noisy to act on.
+QUASI_DISPERSION = 1.5
+QUASI_MIN_DF = 5
+SPLINE_DFS = (2, 3, 4)
+#: years with fewer counted departures than this get a note that their share is imprecise
+THIN_YEAR = 10
+
+__all__ = ["TREND_KINDS", "Curvature", "QuasiTrend", "TrendError", "TrendFit", "TrendKind", "fit_trend",
+           "fit_to_dict", "natural_spline_basis", "trend_sentence"]
+
+
+class TrendError(ValueError):
+    """The data cannot support a trend fit (no forced departures, too few years, ...)."""
+
+
+Interval = tuple[float, float]
+
+
+@dataclass(frozen=True)
+class QuasiTrend:
+    """Quasi-binomial version of the slope's intervals, used when dispersion is well above 1.
+
+    Wald intervals use the binomial SE times sqrt(dispersion); profile intervals divide the
+    deviance difference by the dispersion before comparing it with chi2_{1, 1-alpha}. Normal
+    quantiles are used for the Wald interval (as R's ``confint.default`` does).
+    """
+
+    dispersion: float
+    se: float
+    conf_int: dict[str, Interval]
+    decade_conf_int: dict[str, Interval]
+    message: str
+
+
+@dataclass(frozen=True)
+class Curvature:
+    """Likelihood-ratio test of a natural cubic spline in year against the straight trend.
+
+    ``statistic`` = deviance(straight) - deviance(spline) on ``df`` = spline_df - 1 degrees of
+    freedom; ``p`` from the chi-squared distribution (binomial variation assumed).
+    """
+
+    spline_df: int
+    knots: tuple[float, ...]
+    deviance: float
+    statistic: float
+    df: int
+    p: float
+
+
+@dataclass(frozen=True)
+class TrendFit:
+    """Result of :func:`fit_trend`.
+
+    Odds ratios and their intervals are on the odds-ratio scale; ``coefficients`` and ``log_or``
+    on the logit scale. When ``separated`` is true the slope is infinite: ``log_or`` is NaN and
+    ``odds_ratio``, ``decade_odds_ratio`` and every interval are None. A profile end the data
+    cannot bound is 0 or inf (with a message). ``llf`` follows statsmodels' convention: it includes
+    the log binomial coefficient log C(n, forced) (Dobson & Barnett print it without that term).
+    ``fitted`` holds, per year, the fitted share with a delta-method band (on the logit scale, then
+    transformed back), widened by sqrt(dispersion) when ``quasi`` is set. For ``"sector"`` it is
+    evaluated at the departure-weighted average of the sector intercepts (one curve for the
+    window, comparable with ``observed``); for ``"spline"`` it is the spline curve, while the
+    coefficients and odds ratios are those of the straight trend.
+    """
+
+    model: TrendKind
+    window: tuple[int, int]
+    centre: float
+    alpha: float
+    n_groups: int
+    n_years: int
+    departures: int
+    forced: int
+    coefficients: pd.DataFrame
+    covariance: pd.DataFrame
+    log_or: float
+    se: float
+    odds_ratio: float | None
+    conf_int: dict[str, Interval | None]
+    decade_odds_ratio: float | None
+    decade_conf_int: dict[str, Interval | None]
+    deviance: float
+    pearson_chi2: float
+    df_resid: int
+    dispersion: float
+    llf: float
+    converged: bool
+    separated: bool
+    quasi: QuasiTrend | None
+    curvature: Curvature | None
+    observed: pd.DataFrame
+    fitted: pd.DataFrame
+    messages: tuple[str, ...]
+
+
+def natural_spline_basis(x: np.ndarray, df: int) -> tuple[np.ndarray, tuple[float, ...]]:
+    """Natural cubic spline basis in ``x`` without the constant column.
+
+    Knots sit at the 0, 1/df, ..., 1 quantiles of the distinct values of ``x`` (boundary knots at
+    the ends). The basis is the truncated-power form of Hastie, Tibshirani & Friedman, *The
+    Elements of Statistical Learning*, eq. 5.4-5.5: column 1 is linear in ``x`` (rescaled to
+    [0, 1] for conditioning) so a model with a constant plus this basis nests the straight trend.
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        Covariate values (years).
+    df : int
+        Columns returned (2, 3 or 4); the spline has df + 1 knots.
+
+    Returns
+    -------
+    (numpy.ndarray of shape (len(x), df), tuple of float knots)
+    """
+    if df not in SPLINE_DFS:
+        raise ValueError(f"spline_df must be one of {', '.join(map(str, SPLINE_DFS))}; got {df!r}.")
+    x = np.asarray(x, dtype=float)
+    knots = np.quantile(np.unique(x), np.linspace(0.0, 1.0, df + 1))
+    if len(np.unique(knots)) < len(knots):
+        raise ValueError(f"A spline with {df} df needs at least {df + 1} distinct years.")
+    lo, span = knots[0], knots[-1] - knots[0]
+    u, k = (x - lo) / span, (knots - lo) / span
+
+    def d(j: int) -> np.ndarray:
+        return (np.clip(u - k[j], 0, None) ** 3 - np.clip(u - k[-1], 0, None) ** 3) / (k[-1] - k[j])
+
+    columns = [u] + [d(j) - d(len(k) - 2) for j in range(len(k) - 2)]
+    return np.column_stack(columns), tuple(float(v) for v in knots)
+
+
+def _year_groups(groups: pd.DataFrame) -> pd.DataFrame:
+    summed = groups.groupby("year", sort=True)[["forced", "voluntary"]].sum().reset_index()
+    summed["sector"] = ""
+    return summed[["year", "sector", "forced", "voluntary"]]
+
+
+def _check_data(groups: pd.DataFrame, window: tuple[int, int]) -> None:
+    span = f"{window[0]}-{window[1]}"
+    if int(groups["forced"].sum()) == 0:
+        raise TrendError(f"There are no forced departures in {span}, so there is no trend in the "
+                         "forced share to estimate.")
+    if int(groups["voluntary"].sum()) == 0:
+        raise TrendError(f"Every counted departure in {span} is forced, so there is no trend in the "
+                         "forced share to estimate.")
+    years = groups["year"].nunique()
+    if years < 3:
+        raise TrendError(f"A trend needs departures in at least 3 different years; {span} has "
+                         f"{years}.")
+
+
+def _band(rows: np.ndarray, params: np.ndarray, cov: np.ndarray, z: float) -> pd.DataFrame:
+    eta = rows @ params
+    se = np.sqrt(np.einsum("ij,jk,ik->i", rows, cov, rows))
+
+    def expit(v: np.ndarray) -> np.ndarray:
+        return 0.5 * (1.0 + np.tanh(0.5 * v))
+
+    return pd.DataFrame({"fit": expit(eta), "low": expit(eta - z * se), "high": expit(eta + z * se)})
+
+
+def _or_interval(bounds: tuple[float, float], per: float = 1.0) -> Interval:
+    return (math.exp(per * bounds[0]), math.exp(per * bounds[1]))
+
+
+def _profile_note(result: ProfileResult) -> list[str]:
+    return [result.message] if result.message else []
+
+
+def _curvature(forced: np.ndarray, totals: np.ndarray, years: np.ndarray, df: int,
+               straight: GroupedFit) -> tuple[Curvature | None, GroupedFit | None, np.ndarray | None,
+                                               list[str]]:
+    if len(np.unique(years)) < df + 2:
+        return None, None, None, [f"Too few years for a spline with {df} df; curvature was not tested."]
+    basis, knots = natural_spline_basis(years, df)
+    X = np.column_stack([np.ones(len(years)), basis])
+    spline = fit_grouped_binomial(forced, totals, X)
+    if spline.separated or not spline.converged:
+        return None, None, None, ["The spline fit failed (" + " ".join(spline.messages) + "); curvature "
+                                  "was not tested."]
+    statistic = max(straight.deviance - spline.deviance, 0.0)
+    test = Curvature(spline_df=df, knots=knots, deviance=spline.deviance, statistic=statistic,
+                     df=df - 1, p=float(stats.chi2.sf(statistic, df - 1)))
+    return test, spline, X, []
+
+
+def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
+              alpha: float = 0.05) -> TrendFit:
+    """Fit the logistic trend in the forced share over the window of ``cells``.
+
+    Parameters
+    ----------
+    cells : Cells
+        Grouped counts. For ``"linear"`` and ``"spline"`` sector-years are summed to years first
+        (same estimates, per-year deviance and dispersion); ``"sector"`` needs ``by_sector`` cells.
+    model : {"linear", "sector", "spline"}
+        ``linear``: logit p = b0 + b1 (year - centre), centre = window midpoint.
+        ``sector``: one intercept per sector plus the common slope b1.
+        ``spline``: the linear fit plus a natural cubic spline in year with ``spline_df`` df,
+        compared with it by a likelihood-ratio test (``curvature``).
+    spline_df : {2, 3, 4}
+    alpha : float
+        1 - confidence level of every interval.
+
+    Returns
+    -------
+    TrendFit
+
+    Raises
+    ------
+    TrendError
+        No forced (or no voluntary) departures in the window, or fewer than 3 distinct years.
+    """
+    check_choice(model, TREND_KINDS, "model")
+    if spline_df not in SPLINE_DFS:
+        raise ValueError(f"spline_df must be one of {', '.join(map(str, SPLINE_DFS))}; got {spline_df!r}.")
+    if not 0.0 < alpha < 1.0:
+        raise ValueError("alpha must lie strictly between 0 and 1.")
+    if model == "sector" and not cells.by_sector:
+        raise ValueError("The sector model needs cells built with by_sector=True.")
+    groups = cells.groups if model == "sector" else _year_groups(cells.groups)
+    if groups.empty:
+        raise TrendError(f"There are no forced or voluntary departures in {cells.window[0]}-"
+                         f"{cells.window[1]}.")
+    _check_data(groups, cells.window)
+    centre = window_centre(cells.window)
+    design = design_matrix(groups, "sector" if model == "sector" else "linear", centre)
+    forced = groups["forced"].to_numpy(dtype=float)
+    totals = forced + groups["voluntary"].to_numpy(dtype=float)
+    fit = fit_grouped_binomial(forced, totals, design.matrix)
+    z = float(stats.norm.ppf(1.0 - alpha / 2.0))
+    messages = list(fit.messages)
+    j = design.slope
+    b, se = float(fit.params[j]), float(fit.bse[j])
+    usable = not fit.separated and math.isfinite(b) and math.isfinite(se)
+
+    conf: dict[str, Interval | None] = {"wald": None, "profile": None}
+    decade: dict[str, Interval | None] = {"wald": None, "profile": None}
+    quasi: QuasiTrend | None = None
+    dispersion = fit.dispersion
+    if usable:
+        wald = (b - z * se, b + z * se)
+        prof = profile_interval(forced, totals, design.matrix, j, alpha)
+        messages += _profile_note(prof)
+        conf = {"wald": _or_interval(wald), "profile": _or_interval((prof.low, prof.high))}
+        decade = {"wald": _or_interval(wald, 10.0), "profile": _or_interval((prof.low, prof.high), 10.0)}
+        if dispersion > QUASI_DISPERSION and fit.df_resid >= QUASI_MIN_DF:
+            quasi = _quasi(forced, totals, design.matrix, j, b, se, dispersion, alpha, z)
+            messages.append(quasi.message)
+    else:
+        messages.append("The trend cannot be estimated: the forced share is perfectly separated over "
+                        "the years (or the fit failed), so no odds ratio is reported.")
+
+    observed = groups.groupby("year", sort=True)[["forced", "voluntary"]].sum().reset_index()
+    observed["total"] = observed["forced"] + observed["voluntary"]
+    shares = share_intervals(observed["forced"], observed["total"], alpha)
+    observed = pd.concat([observed, shares], axis=1)
+    thin = observed.loc[observed["total"] < THIN_YEAR, "year"].tolist()
+    if thin:
+        messages.append(f"{len(thin)} year(s) have fewer than {THIN_YEAR} counted departures "
+                        f"({', '.join(map(str, thin))}); their shares are imprecise.")
+
+    years = observed["year"].to_numpy(dtype=float)
+    t = years - centre
+    if model == "sector":
+        # One curve for the window: sector intercepts averaged with the departures' sector mix.
+        weights = groups.groupby("sector", sort=True)[["forced", "voluntary"]].sum().sum(axis=1)
+        mix = (weights / weights.sum()).to_numpy(dtype=float)
+        rows = np.column_stack([np.tile(mix, (len(t), 1)), t])
+    else:
+        rows = np.column_stack([np.ones_like(t), t])
+    params, cov = fit.params, fit.cov
+    curvature = None
+    if model == "spline":
+        curvature, spline, spline_x, notes = _curvature(forced, totals, groups["year"].to_numpy(dtype=float),
+                                                  spline_df, fit)
+        messages += notes
+        if spline is not None and spline_x is not None:
+            rows = spline_x  # groups are the observed years here, in the same order
+            params, cov = spline.params, spline.cov
+            if quasi is not None:
+                messages.append("The curvature test assumes binomial variation; with the overdispersion "
+                                "found here its p-value is too small.")
+    band_cov = cov * (dispersion if quasi is not None else 1.0)
+    band = _band(rows, params, band_cov, z)
+    if not usable:
+        band[["low", "high"]] = np.nan
+    fitted = pd.concat([observed[["year"]], band], axis=1)
+
+    coefficients = pd.DataFrame({"name": design.names, "estimate": fit.params, "se": fit.bse})
+    coefficients["z"] = coefficients["estimate"] / coefficients["se"]
+    coefficients["p"] = 2.0 * stats.norm.sf(np.abs(coefficients["z"]))
+    return TrendFit(
+        model=model, window=cells.window, centre=centre, alpha=alpha, n_groups=len(groups),
+        n_years=int(observed.shape[0]), departures=int(totals.sum()), forced=int(forced.sum()),
+        coefficients=coefficients,
+        covariance=pd.DataFrame(fit.cov, index=list(design.names), columns=list(design.names)),
+        log_or=b if usable else math.nan, se=se if usable else math.nan,
+        odds_ratio=math.exp(b) if usable else None, conf_int=conf,
+        decade_odds_ratio=math.exp(10.0 * b) if usable else None, decade_conf_int=decade,
+        deviance=fit.deviance, pearson_chi2=fit.pearson_chi2, df_resid=fit.df_resid,
+        dispersion=dispersion, llf=fit.llf, converged=fit.converged, separated=fit.separated,
+        quasi=quasi, curvature=curvature, observed=observed, fitted=fitted,
+        messages=tuple(dict.fromkeys(messages)),
+    )
+
+
+def _quasi(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, j: int, b: float, se: float,
+           dispersion: float, alpha: float, z: float) -> QuasiTrend:
+    se_q = se * math.sqrt(dispersion)
+    wald = (b - z * se_q, b + z * se_q)
+    prof = profile_interval(forced, totals, X, j, alpha, dispersion=dispersion)
+    bounds = (prof.low, prof.high)
+    message = (f"The counts vary more than a binomial model allows (Pearson dispersion "
+               f"{dispersion:.2f}), so quasi-binomial intervals are also given: Wald intervals widened "
+               f"by sqrt(dispersion) and profile intervals with the deviance difference divided by the "
+               f"dispersion.")
+    return QuasiTrend(dispersion=dispersion, se=se_q,
+                      conf_int={"wald": _or_interval(wald), "profile": _or_interval(bounds)},
+                      decade_conf_int={"wald": _or_interval(wald, 10.0),
+                                       "profile": _or_interval(bounds, 10.0)},
+                      message=message)
+
+
+def _pct(value: float) -> str:
+    if math.isinf(value):
+        return "an unbounded amount"
+    return f"{value:.1f}%" if abs(value) >= 0.1 else f"{value:.2g}%"
+
+
+def _change(ratio: float) -> str:
+    """Describe an odds ratio per year as a signed change, e.g. 'a rise of 2.1%'."""
+    if ratio >= 1.0:
+        return f"a rise of {_pct((ratio - 1.0) * 100.0)}"
+    return f"a fall of {_pct((1.0 - ratio) * 100.0)}"
+
+
+def trend_sentence(fit: TrendFit) -> str:
+    """One plain-language sentence on the yearly change in the odds of a forced departure.
+
+    Uses the profile interval (the quasi-binomial one when overdispersion triggered a refit).
+    Says "no clear change" whenever the interval includes an odds ratio of 1.
+    """
+    span = f"{fit.window[0]}-{fit.window[1]}"
+    level = f"{round((1.0 - fit.alpha) * 100):g}%"
+    interval = fit.quasi.conf_int["profile"] if fit.quasi is not None else fit.conf_int["profile"]
+    if fit.odds_ratio is None or interval is None:
+        return (f"Across {span}, the trend in the odds that a departure was forced cannot be estimated: "
+                "the forced share is perfectly separated by year, so any single number would mislead.")
+    low, high = interval
+    kind = f"{level} profile interval" + (", allowing for overdispersion," if fit.quasi is not None else "")
+    ratio = fit.odds_ratio
+    if low > 1.0:
+        ends = f"{_pct((low - 1.0) * 100.0)} to {_pct((high - 1.0) * 100.0)}"
+        return (f"Across {span}, the odds that a departure was forced rose by about "
+                f"{_pct((ratio - 1.0) * 100.0)} a year ({kind} {ends}).")
+    if high < 1.0:
+        ends = f"{_pct((1.0 - high) * 100.0)} to {_pct((1.0 - low) * 100.0)}"
+        return (f"Across {span}, the odds that a departure was forced fell by about "
+                f"{_pct((1.0 - ratio) * 100.0)} a year ({kind} {ends}).")
+    return (f"Across {span}, there was no clear change in the odds that a departure was forced: the "
+            f"estimate is {_change(ratio)} a year, but the {kind.replace(',', '').rstrip()} runs from "
+            f"{_change(low)} to {_change(high)}.")
+
+
+def _num(value: float | None) -> float | None:
+    """JSON cannot carry NaN or infinity; they become null (the messages say why)."""
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def _pair(bounds: Interval | None) -> list[float | None] | None:
+    return None if bounds is None else [_num(bounds[0]), _num(bounds[1])]
+
+
+def _records(frame: pd.DataFrame) -> list[dict[str, object]]:
+    out: list[dict[str, object]] = []
+    for row in frame.to_dict(orient="records"):
+        out.append({str(k): (int(v) if isinstance(v, (int, np.integer)) else
+                             _num(float(v)) if isinstance(v, (float, np.floating)) else v)
+                    for k, v in row.items()})
+    return out
+
+
+def fit_to_dict(fit: TrendFit) -> dict[str, object]:
+    """JSON-friendly view of a :class:`TrendFit` (the CLI's ``fit --json`` payload).
+
+    Keys include ``odds_ratio``, ``conf_int`` {``wald``, ``profile``: [low, high]}, ``window``,
+    ``departures``, ``forced`` and ``dispersion``; NaN and infinite values become null.
+    """
+    quasi = None
+    if fit.quasi is not None:
+        quasi = {"dispersion": _num(fit.quasi.dispersion), "se": _num(fit.quasi.se),
+                 "conf_int": {k: _pair(v) for k, v in fit.quasi.conf_int.items()},
+                 "decade_conf_int": {k: _pair(v) for k, v in fit.quasi.decade_conf_int.items()}}
+    curvature = None
+    if fit.curvature is not None:
+        c = fit.curvature
+        curvature = {"spline_df": c.spline_df, "knots": list(c.knots), "deviance": c.deviance,
+                     "statistic": c.statistic, "df": c.df, "p": c.p}
+    return {
+        "model": fit.model, "window": list(fit.window), "centre": fit.centre, "alpha": fit.alpha,
+        "departures": fit.departures, "forced": fit.forced, "n_years": fit.n_years,
+        "n_groups": fit.n_groups, "odds_ratio": _num(fit.odds_ratio), "log_or": _num(fit.log_or),
+        "se": _num(fit.se), "conf_int": {k: _pair(v) for k, v in fit.conf_int.items()},
+        "decade_odds_ratio": _num(fit.decade_odds_ratio),
+        "decade_conf_int": {k: _pair(v) for k, v in fit.decade_conf_int.items()},
+        "deviance": fit.deviance, "pearson_chi2": fit.pearson_chi2, "df_resid": fit.df_resid,
+        "dispersion": _num(fit.dispersion), "llf": fit.llf, "converged": fit.converged,
+        "separated": fit.separated, "quasi": quasi, "curvature": curvature,
+        "coefficients": _records(fit.coefficients), "observed": _records(fit.observed),
+        "fitted": _records(fit.fitted), "sentence": trend_sentence(fit), "messages": list(fit.messages),
+    }
