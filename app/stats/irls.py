@@ -1,0 +1,189 @@
+"""Batched iteratively reweighted least squares for many grouped binomial logit fits at once.
+
+Every bootstrap resample of a trend fit shares the same design matrix (one row per group) and
+differs only in its counts, so a whole stack of fits can run as a handful of matrix products per
+iteration instead of one statsmodels fit per resample.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal, get_args
+
+import numpy as np
+from scipy.special import expit, xlogy
+
+FailureReason = Literal[
+    "no_forced", "no_voluntary", "rank_deficient", "separation", "non_finite", "not_converged",
+]
+FAILURE_REASONS: tuple[FailureReason, ...] = get_args(FailureReason)
+
+#: a fitted p(1 - p) below this at a group with departures means the fit ran off to p = 0 or 1:
+#: real forced shares never get within 1e-9 of certainty, separated fits always do.
+SEPARATION_VARIANCE = 1e-9
+
+
+@dataclass(frozen=True)
+class BatchFit:
+    """Estimates of a stack of grouped binomial logit fits sharing one design matrix.
+
+    Attributes
+    ----------
+    beta : numpy.ndarray, shape (n_fits, n_params)
+        Coefficients; rows that failed hold NaN.
+    converged : numpy.ndarray of bool, shape (n_fits,)
+        True where the fit converged to a finite, non-separated estimate.
+    failure : numpy.ndarray of str, shape (n_fits,)
+        ``""`` for a good fit, otherwise one of ``FAILURE_REASONS``.
+    deviance : numpy.ndarray, shape (n_fits,)
+        Residual deviance at the last iteration (NaN where no iteration ran).
+    iterations : numpy.ndarray of int, shape (n_fits,)
+        IRLS iterations used.
+    """
+
+    beta: np.ndarray
+    converged: np.ndarray
+    failure: np.ndarray
+    deviance: np.ndarray
+    iterations: np.ndarray
+
+    def failure_counts(self) -> dict[str, int]:
+        """Number of failed fits by reason (reasons that did not occur are left out)."""
+        reasons, counts = np.unique(self.failure[self.failure != ""], return_counts=True)
+        return {str(r): int(c) for r, c in zip(reasons, counts, strict=True)}
+
+
+def binomial_deviance(forced: np.ndarray, totals: np.ndarray, mu: np.ndarray) -> np.ndarray:
+    """Residual deviance of grouped binomial counts, one value per row (0 log 0 taken as 0)."""
+    voluntary = totals - forced
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dev = xlogy(forced, forced / (totals * mu)) + xlogy(voluntary, voluntary / (totals * (1.0 - mu)))
+    return 2.0 * np.where(totals > 0, dev, 0.0).sum(axis=-1)
+
+
+def fit_batch(
+    X: np.ndarray,
+    forced: np.ndarray,
+    totals: np.ndarray,
+    *,
+    tol: float = 1e-10,
+    max_iter: int = 50,
+) -> BatchFit:
+    """Fit ``logit P(forced) = X beta`` to many sets of grouped counts at once.
+
+    The algorithm is statsmodels' IRLS (start at ``mu = (y + 0.5) / 2``, stop when the deviance
+    changes by at most ``tol``), applied to every row of ``forced`` at once, so each estimate
+    equals ``sm.GLM(np.column_stack([f, n - f]), X, family=Binomial()).fit()`` on the same counts.
+    Groups with no departures carry zero weight (statsmodels needs them dropped).
+
+    Parameters
+    ----------
+    X : numpy.ndarray, shape (n_groups, n_params)
+        Design matrix shared by all fits.
+    forced, totals : numpy.ndarray, shape (n_fits, n_groups) or (n_groups,)
+        Forced departures and forced + voluntary departures per group.
+    tol : float
+        Absolute change in deviance that ends the iterations.
+    max_iter : int
+        Iterations before a fit counts as ``not_converged``.
+
+    Returns
+    -------
+    BatchFit
+        Failed fits are never dropped: they keep their row, hold NaN and carry a reason:
+        ``no_forced`` / ``no_voluntary`` (the resample has no departure of one kind, so the
+        intercept runs to infinity), ``rank_deficient`` (a column of X has no departures under it,
+        e.g. a sector absent from the resample), ``separation`` (fitted shares run to 0 or 1),
+        ``non_finite`` (the arithmetic overflowed) or ``not_converged``.
+    """
+    X = np.asarray(X, dtype=float)
+    forced = np.atleast_2d(np.asarray(forced, dtype=float))
+    totals = np.atleast_2d(np.asarray(totals, dtype=float))
+    if X.ndim != 2 or forced.shape != totals.shape or forced.shape[1] != X.shape[0]:
+        raise ValueError("X must be (groups, params) and forced, totals (fits, groups) of matching shape.")
+    if np.any(forced < 0) or np.any(forced > totals):
+        raise ValueError("Counts must satisfy 0 <= forced <= totals.")
+    n_fits, n_groups = forced.shape
+    n_params = X.shape[1]
+    failure = np.full(n_fits, "", dtype="<U14")
+    failure[(forced.sum(axis=1) == totals.sum(axis=1))] = "no_voluntary"
+    failure[forced.sum(axis=1) == 0] = "no_forced"
+    unsupported = (totals @ (X != 0)) == 0  # a column with no departures under it is unidentified
+    failure[(failure == "") & unsupported.any(axis=1)] = "rank_deficient"
+
+    beta = np.full((n_fits, n_params), np.nan)
+    deviance = np.full(n_fits, np.nan)
+    iterations = np.zeros(n_fits, dtype=np.int64)
+    active = np.flatnonzero(failure == "")
+    converged = np.zeros(n_fits, dtype=bool)
+    if active.size:
+        _iterate(X, forced, totals, active, tol, max_iter, beta, deviance, iterations, converged, failure)
+    beta[failure != ""] = np.nan
+    return BatchFit(beta=beta, converged=failure == "", failure=failure, deviance=deviance,
+                    iterations=iterations)
+
+
+def _iterate(
+    X: np.ndarray, forced: np.ndarray, totals: np.ndarray, active: np.ndarray, tol: float,
+    max_iter: int, beta: np.ndarray, deviance: np.ndarray, iterations: np.ndarray,
+    converged: np.ndarray, failure: np.ndarray,
+) -> None:
+    """Run IRLS on the rows in ``active``, writing results into the output arrays in place."""
+    n_params = X.shape[1]
+    # X_i X_j per group, so that X' W X for every fit is one matrix product
+    outer = (X[:, :, None] * X[:, None, :]).reshape(X.shape[0], n_params * n_params)
+    f, n = forced[active], totals[active]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        y = np.where(n > 0, f / n, 0.0)
+    mu = (y + 0.5) / 2.0
+    eta = np.log(mu / (1.0 - mu))
+    dev = binomial_deviance(f, n, mu)
+    rows = active
+    for it in range(1, max_iter + 1):
+        var = mu * (1.0 - mu)
+        weights = n * var
+        z = eta + (y - mu) / var
+        xtwx = (weights @ outer).reshape(-1, n_params, n_params)
+        xtwz = (weights * z) @ X
+        step_ok = np.isfinite(xtwx).all(axis=(1, 2)) & np.isfinite(xtwz).all(axis=1)
+        new_beta = np.full_like(xtwz, np.nan)
+        new_beta[step_ok] = _solve_stack(xtwx[step_ok], xtwz[step_ok])
+        eta = new_beta @ X.T
+        mu = expit(eta)
+        new_dev = binomial_deviance(f, n, mu)
+        bad = ~np.isfinite(new_dev) | ~np.isfinite(new_beta).all(axis=1)
+        # fitted shares at 0 or 1 mean the coefficients are running off to infinity: stop there
+        # rather than let p(1 - p) underflow into a division by zero
+        edge = ~bad & ((n > 0) & (mu * (1.0 - mu) < SEPARATION_VARIANCE)).any(axis=1)
+        done = ~bad & ~edge & (np.abs(new_dev - dev) <= tol)
+        beta[rows] = new_beta
+        deviance[rows] = new_dev
+        iterations[rows] = it
+        failure[rows[bad]] = "non_finite"
+        failure[rows[edge]] = "separation"
+        finished = bad | edge | done
+        converged[rows[done]] = True
+        if finished.all():
+            rows = rows[:0]
+            break
+        keep = ~finished
+        rows, f, n, y, eta, mu, dev = rows[keep], f[keep], n[keep], y[keep], eta[keep], mu[keep], new_dev[keep]
+    # statsmodels would report these with huge coefficients and a warning at best; here they are
+    # named so that no such estimate passes as a bootstrap replicate
+    failure[rows] = "not_converged"
+
+
+def _solve_stack(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve each ``a[k] x = b[k]``; a singular system gives a NaN row instead of an exception."""
+    if a.shape[0] == 0:
+        return np.empty_like(b)
+    try:
+        return np.linalg.solve(a, b[:, :, None])[:, :, 0]
+    except np.linalg.LinAlgError:
+        out = np.full_like(b, np.nan)
+        for k in range(a.shape[0]):
+            try:
+                out[k] = np.linalg.solve(a[k], b[k])
+            except np.linalg.LinAlgError:
+                continue
+        return out
