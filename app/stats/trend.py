@@ -39,7 +39,7 @@ SPLINE_DFS = (2, 3, 4)
 THIN_YEAR = 10
 
 __all__ = ["TREND_KINDS", "Curvature", "QuasiTrend", "TrendError", "TrendFit", "TrendKind", "fit_trend",
-           "fit_to_dict", "natural_spline_basis", "trend_sentence"]
+           "fit_to_dict", "json_interval", "json_number", "natural_spline_basis", "trend_sentence"]
 
 
 class TrendError(ValueError):
@@ -396,7 +396,7 @@ def trend_sentence(fit: TrendFit) -> str:
             f"{_change(low)} to {_change(high)}.")
 
 
-def _num(value: float | None) -> float | None:
+def json_number(value: float | None) -> float | None:
     """JSON cannot carry NaN or infinity; they become null (the messages say why)."""
     if value is None:
         return None
@@ -404,15 +404,15 @@ def _num(value: float | None) -> float | None:
     return value if math.isfinite(value) else None
 
 
-def _pair(bounds: Interval | None) -> list[float | None] | None:
-    return None if bounds is None else [_num(bounds[0]), _num(bounds[1])]
+def json_interval(bounds: Interval | None) -> list[float | None] | None:
+    return None if bounds is None else [json_number(bounds[0]), json_number(bounds[1])]
 
 
 def _records(frame: pd.DataFrame) -> list[dict[str, object]]:
     out: list[dict[str, object]] = []
     for row in frame.to_dict(orient="records"):
         out.append({str(k): (int(v) if isinstance(v, (int, np.integer)) else
-                             _num(float(v)) if isinstance(v, (float, np.floating)) else v)
+                             json_number(float(v)) if isinstance(v, (float, np.floating)) else v)
                     for k, v in row.items()})
     return out
 
@@ -425,9 +425,9 @@ def fit_to_dict(fit: TrendFit) -> dict[str, object]:
     """
     quasi = None
     if fit.quasi is not None:
-        quasi = {"dispersion": _num(fit.quasi.dispersion), "se": _num(fit.quasi.se),
-                 "conf_int": {k: _pair(v) for k, v in fit.quasi.conf_int.items()},
-                 "decade_conf_int": {k: _pair(v) for k, v in fit.quasi.decade_conf_int.items()}}
+        quasi = {"dispersion": json_number(fit.quasi.dispersion), "se": json_number(fit.quasi.se),
+                 "conf_int": {k: json_interval(v) for k, v in fit.quasi.conf_int.items()},
+                 "decade_conf_int": {k: json_interval(v) for k, v in fit.quasi.decade_conf_int.items()}}
     curvature = None
     if fit.curvature is not None:
         c = fit.curvature
@@ -436,12 +436,12 @@ def fit_to_dict(fit: TrendFit) -> dict[str, object]:
     return {
         "model": fit.model, "window": list(fit.window), "centre": fit.centre, "alpha": fit.alpha,
         "departures": fit.departures, "forced": fit.forced, "n_years": fit.n_years,
-        "n_groups": fit.n_groups, "odds_ratio": _num(fit.odds_ratio), "log_or": _num(fit.log_or),
-        "se": _num(fit.se), "conf_int": {k: _pair(v) for k, v in fit.conf_int.items()},
-        "decade_odds_ratio": _num(fit.decade_odds_ratio),
-        "decade_conf_int": {k: _pair(v) for k, v in fit.decade_conf_int.items()},
+        "n_groups": fit.n_groups, "odds_ratio": json_number(fit.odds_ratio), "log_or": json_number(fit.log_or),
+        "se": json_number(fit.se), "conf_int": {k: json_interval(v) for k, v in fit.conf_int.items()},
+        "decade_odds_ratio": json_number(fit.decade_odds_ratio),
+        "decade_conf_int": {k: json_interval(v) for k, v in fit.decade_conf_int.items()},
         "deviance": fit.deviance, "pearson_chi2": fit.pearson_chi2, "df_resid": fit.df_resid,
-        "dispersion": _num(fit.dispersion), "llf": fit.llf, "converged": fit.converged,
+        "dispersion": json_number(fit.dispersion), "llf": fit.llf, "converged": fit.converged,
         "separated": fit.separated, "quasi": quasi, "curvature": curvature,
         "coefficients": _records(fit.coefficients), "observed": _records(fit.observed),
         "fitted": _records(fit.fitted), "sentence": trend_sentence(fit), "messages": list(fit.messages),
