@@ -36,7 +36,7 @@ from app.store import RejectedRow, Roster, Store
 from app.types import REQUIRED_ROLES, ROLES, check_choice
 
 __all__ = [
-    "DateOrder", "DuplicateRosterError", "ImportReport", "ReadLimits", "RosterFileError", "RosterPreview",
+    "DateOrder", "DuplicateRosterError", "ImportReport", "NoValidRowsError", "ReadLimits", "RosterFileError", "RosterPreview",
     "detect_roles", "import_roster", "is_still_in_post", "preview_roster", "rejected_rows_csv",
 ]
 
@@ -76,6 +76,7 @@ _STILL_IN_POST = re.compile(
     r"|currently\s+(?:ceo|in)",
     re.IGNORECASE,
 )
+_DATA_LIKE = re.compile(r"[-+]?\d[\d.,/: -]*")
 _INTERIM_VALUES = {"yes": True, "y": True, "true": True, "1": True, "no": False, "n": False,
                    "false": False, "0": False}
 
@@ -88,6 +89,18 @@ class DuplicateRosterError(RosterFileError):
         super().__init__(
             f"This file was already imported as roster {existing.name!r} on {existing.imported_at}; "
             "import it again only if you mean to keep two copies."
+        )
+
+
+class NoValidRowsError(RosterFileError):
+    """Every data row was rejected; nothing is stored, but the reasons travel with the error."""
+
+    def __init__(self, rejected: list[RejectedRow]) -> None:
+        self.rejected = rejected
+        first = rejected[0]
+        super().__init__(
+            f"All {len(rejected):,} data rows were rejected, so nothing was imported "
+            f"(first: line {first.line}: {first.reason})."
         )
 
 
@@ -247,6 +260,11 @@ def import_roster(
     table = read_table(data, filename, encoding=encoding, sheet=sheet, limits=limits)
     resolved, notes = _resolve_roles(table.headers, roles)
     missing = _missing(resolved)
+    if missing and not resolved and any(_DATA_LIKE.fullmatch(h) for h in table.headers):
+        raise RosterFileError(
+            f"The first row (line {table.header_line}) looks like data, not column names "
+            f"({', '.join(table.headers[:4])}, ...); add a header row naming each column."
+        )
     if missing:
         raise RosterFileError(
             f"No column was found for the {' and the '.join(missing)}; the headers are: "
@@ -256,6 +274,8 @@ def import_roster(
         raise RosterFileError(f"The file has a header row (line {table.header_line}) but no data rows.")
     records, rejected, duplicates, messages = validate(table, resolved, date_order=date_order,
                                                        limits=limits, today=today)
+    if records.empty and rejected:
+        raise NoValidRowsError(rejected)
     roster = store.save_import(
         name=name or _default_name(store, filename), source_name=filename, sha256=sha,
         rows_total=len(records) + len(rejected) + duplicates, duplicates=duplicates, columns=resolved,
@@ -322,8 +342,7 @@ def validate(
                          f"(limit {limits.max_cell_chars:,})"))
     stripped = {role: frame[h].str.strip() for role, h in roles.items()}
     header_norm = [h.strip().lower() for h in table.headers]
-    p.add((frame.apply(lambda c: c.str.strip().str.lower()) == header_norm).all(axis=1),
-          "repeats the header row (were two files joined together?)")
+    repeats_header = (frame.apply(lambda c: c.str.strip().str.lower()) == header_norm).all(axis=1)
     p.add(stripped["firm_id"] == "", f"missing firm id (column {roles['firm_id']!r} is empty)")
     reason = stripped["reason"]
     p.add(reason == "", f"missing reason code (column {roles['reason']!r} is empty)")
@@ -380,6 +399,8 @@ def validate(
         p.add((low != "") & interim.isna(), "interim flag " + stripped["interim"].map(repr)
               + " not recognised; use yes/no, true/false, 1/0, y/n or leave it blank")
 
+    for pos in repeats_header.to_numpy().nonzero()[0]:
+        p.by_row[int(pos)] = ["repeats the header row (were two files joined together?)"]
     raw = [json.dumps(dict(zip(table.headers, row, strict=True)), ensure_ascii=False)
            for row in frame.itertuples(index=False, name=None)]
     rejected = [RejectedRow(line=int(lines.iloc[i]), raw=raw[i], reason="; ".join(msgs))

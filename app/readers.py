@@ -119,6 +119,11 @@ def decode_text(data: bytes, encoding: str | None) -> tuple[str, str]:
         if data.startswith(sig):
             raise RosterFileError(f"The file is {what}.")
     sample = data[:65536]
+    if len(sample) >= 4 and sample[1::2].count(0) > 0.9 * (len(sample) // 2):
+        raise RosterFileError(
+            "The file looks like UTF-16 text without a byte-order mark; re-save it as UTF-8 CSV "
+            "or choose the encoding utf-16-le."
+        )
     if sum(sample.count(bytes([b])) for b in _CONTROL) > 0.05 * len(sample):
         raise RosterFileError(
             "The file does not look like text (it is full of binary control bytes); upload a CSV or XLSX file."
@@ -238,6 +243,12 @@ def _start_table(header: list[str], line: int, limits: ReadLimits) -> RawTable:
         raise RosterFileError(
             f"The header row (line {line}) has {len(header):,} columns; the limit is {limits.max_columns} "
             "(is this really a roster, and is the delimiter right?)."
+        )
+    longest = max((len(h) for h in header), default=0)
+    if longest > limits.max_cell_chars:
+        raise RosterFileError(
+            f"A header cell on line {line} is {longest:,} characters long (limit {limits.max_cell_chars:,}); "
+            "the first row should name the columns."
         )
     names = [h.strip() or f"(column {i})" for i, h in enumerate(header, start=1)]
     filled = [h for h in names if not h.startswith("(column ")]
