@@ -64,7 +64,7 @@ TITLE_SIZE = 21
 BASE_SIZE = 15
 NOTE_SIZE = 12
 _TITLE_WRAP = 80
-_NOTE_WRAP = 150
+_NOTE_WRAP = 112
 _LINE_PX = 1.3
 
 
@@ -322,6 +322,14 @@ def forest_figure(rows: pd.DataFrame, *, title: str, source: str, reference: flo
                      tickformat="~g", showgrid=True, gridcolor=GRID,
                      title_text="Odds ratio per year (log scale)")
     return fig
+
+
+def untitled(fig: go.Figure) -> go.Figure:
+    """A copy without the finding title, for places (a slide) where the title is set as text beside it."""
+    copy = go.Figure(fig)
+    legend = bool(copy.layout.showlegend is not False)
+    copy.update_layout(title_text="", margin_t=48 if legend else 20)
+    return copy
 
 
 def figure_json(fig: go.Figure) -> str:
