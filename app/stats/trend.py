@@ -127,7 +127,8 @@ class TrendFit:
     messages: tuple[str, ...]
 
 
-def natural_spline_basis(x: np.ndarray, df: int) -> tuple[np.ndarray, tuple[float, ...]]:
+def natural_spline_basis(x: np.ndarray, df: int, *, knots: tuple[float, ...] | None = None
+                         ) -> tuple[np.ndarray, tuple[float, ...]]:
     """Natural cubic spline basis in ``x`` without the constant column.
 
     Knots sit at the 0, 1/df, ..., 1 quantiles of the distinct values of ``x`` (boundary knots at
@@ -141,6 +142,8 @@ def natural_spline_basis(x: np.ndarray, df: int) -> tuple[np.ndarray, tuple[floa
         Covariate values (years).
     df : int
         Columns returned (2, 3 or 4); the spline has df + 1 knots.
+    knots : tuple of float, optional
+        Reuse the knots of an earlier call (e.g. to evaluate a fitted spline at new years).
 
     Returns
     -------
@@ -149,17 +152,19 @@ def natural_spline_basis(x: np.ndarray, df: int) -> tuple[np.ndarray, tuple[floa
     if df not in SPLINE_DFS:
         raise ValueError(f"spline_df must be one of {', '.join(map(str, SPLINE_DFS))}; got {df!r}.")
     x = np.asarray(x, dtype=float)
-    knots = np.quantile(np.unique(x), np.linspace(0.0, 1.0, df + 1))
-    if len(np.unique(knots)) < len(knots):
+    if knots is not None and len(knots) != df + 1:
+        raise ValueError(f"A spline with {df} df needs {df + 1} knots; got {len(knots)}.")
+    knots_ = np.quantile(np.unique(x), np.linspace(0.0, 1.0, df + 1)) if knots is None else np.asarray(knots)
+    if len(np.unique(knots_)) < len(knots_):
         raise ValueError(f"A spline with {df} df needs at least {df + 1} distinct years.")
-    lo, span = knots[0], knots[-1] - knots[0]
-    u, k = (x - lo) / span, (knots - lo) / span
+    lo, span = knots_[0], knots_[-1] - knots_[0]
+    u, k = (x - lo) / span, (knots_ - lo) / span
 
     def d(j: int) -> np.ndarray:
         return (np.clip(u - k[j], 0, None) ** 3 - np.clip(u - k[-1], 0, None) ** 3) / (k[-1] - k[j])
 
     columns = [u] + [d(j) - d(len(k) - 2) for j in range(len(k) - 2)]
-    return np.column_stack(columns), tuple(float(v) for v in knots)
+    return np.column_stack(columns), tuple(float(v) for v in knots_)
 
 
 def _year_groups(groups: pd.DataFrame) -> pd.DataFrame:
