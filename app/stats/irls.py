@@ -135,29 +135,30 @@ def _iterate(
     f, n = forced[active], totals[active]
     with np.errstate(divide="ignore", invalid="ignore"):
         y = np.where(n > 0, f / n, 0.0)
+    # deviance = saturated part - 2 loglik(eta), loglik = sum(f eta - n log(1 + e^eta)); only the
+    # log-likelihood changes between iterations, so convergence is judged on it alone
+    saturated = _saturated(f, n)
     mu = (y + 0.5) / 2.0
     eta = np.log(mu / (1.0 - mu))
-    dev = binomial_deviance(f, n, mu)
+    loglik = _loglik(f, n, eta)
     rows = active
     for it in range(1, max_iter + 1):
         var = mu * (1.0 - mu)
         weights = n * var
-        z = eta + (y - mu) / var
+        # X'W z with z = eta + (y - mu) / var, written without the division
+        xtwz = (weights * eta + (f - n * mu)) @ X
         xtwx = (weights @ outer).reshape(-1, n_params, n_params)
-        xtwz = (weights * z) @ X
-        step_ok = np.isfinite(xtwx).all(axis=(1, 2)) & np.isfinite(xtwz).all(axis=1)
-        new_beta = np.full_like(xtwz, np.nan)
-        new_beta[step_ok] = _solve_stack(xtwx[step_ok], xtwz[step_ok])
+        new_beta = solve_spd_stack(xtwx, xtwz)
         eta = new_beta @ X.T
         mu = expit(eta)
-        new_dev = binomial_deviance(f, n, mu)
-        bad = ~np.isfinite(new_dev) | ~np.isfinite(new_beta).all(axis=1)
+        new_loglik = _loglik(f, n, eta)
+        bad = ~np.isfinite(new_loglik) | ~np.isfinite(new_beta).all(axis=1)
         # fitted shares at 0 or 1 mean the coefficients are running off to infinity: stop there
         # rather than let p(1 - p) underflow into a division by zero
         edge = ~bad & ((n > 0) & (mu * (1.0 - mu) < SEPARATION_VARIANCE)).any(axis=1)
-        done = ~bad & ~edge & (np.abs(new_dev - dev) <= tol)
+        done = ~bad & ~edge & (2.0 * np.abs(new_loglik - loglik) <= tol)
         beta[rows] = new_beta
-        deviance[rows] = new_dev
+        deviance[rows] = saturated - 2.0 * new_loglik
         iterations[rows] = it
         failure[rows[bad]] = "non_finite"
         failure[rows[edge]] = "separation"
@@ -167,23 +168,45 @@ def _iterate(
             rows = rows[:0]
             break
         keep = ~finished
-        rows, f, n, y, eta, mu, dev = rows[keep], f[keep], n[keep], y[keep], eta[keep], mu[keep], new_dev[keep]
+        rows, f, n, y, eta, mu = rows[keep], f[keep], n[keep], y[keep], eta[keep], mu[keep]
+        loglik, saturated = new_loglik[keep], saturated[keep]
     # statsmodels would report these with huge coefficients and a warning at best; here they are
     # named so that no such estimate passes as a bootstrap replicate
     failure[rows] = "not_converged"
 
 
-def _solve_stack(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Solve each ``a[k] x = b[k]``; a singular system gives a NaN row instead of an exception."""
-    if a.shape[0] == 0:
-        return np.empty_like(b)
-    try:
-        return np.linalg.solve(a, b[:, :, None])[:, :, 0]
-    except np.linalg.LinAlgError:
-        out = np.full_like(b, np.nan)
-        for k in range(a.shape[0]):
-            try:
-                out[k] = np.linalg.solve(a[k], b[k])
-            except np.linalg.LinAlgError:
-                continue
-        return out
+def _loglik(forced: np.ndarray, totals: np.ndarray, eta: np.ndarray) -> np.ndarray:
+    """Binomial log-likelihood without the binomial coefficients, one value per row."""
+    return (forced * eta - totals * np.logaddexp(0.0, eta)).sum(axis=-1)
+
+
+def _saturated(forced: np.ndarray, totals: np.ndarray) -> np.ndarray:
+    """Twice the saturated log-likelihood (without binomial coefficients), one value per row."""
+    return 2.0 * (xlogy(forced, forced) + xlogy(totals - forced, totals - forced)
+                  - xlogy(totals, totals)).sum(axis=-1)
+
+
+def solve_spd_stack(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve each symmetric positive definite system ``a[k] x = b[k]``.
+
+    Gaussian elimination without pivoting (safe for positive definite matrices), vectorised over
+    the stack: a few numpy calls per column instead of one LAPACK call per system, and each
+    system's arithmetic does not depend on the others. A system that is not numerically
+    positive definite gives a NaN row.
+    """
+    m = np.concatenate([a, b[:, :, None]], axis=2)
+    p = a.shape[1]
+    scale = np.abs(np.diagonal(a, axis1=1, axis2=2)).max(axis=1)
+    singular = ~(scale > 0)
+    for k in range(p):
+        pivot = m[:, k, k]
+        singular |= ~(pivot > 1e-13 * scale)
+        pivot = np.where(singular, 1.0, pivot)
+        m[:, k, k:] /= pivot[:, None]
+        if k + 1 < p:
+            m[:, k + 1:, k:] -= m[:, k + 1:, k, None] * m[:, k, None, k:]
+    x = np.empty_like(b)
+    for k in range(p - 1, -1, -1):
+        x[:, k] = m[:, k, p] - (m[:, k, k + 1:p] * x[:, k + 1:]).sum(axis=1)
+    x[singular] = np.nan
+    return x
