@@ -476,3 +476,18 @@ def test_trend_modules_do_not_import_statsmodels_at_import_time() -> None:
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
                          cwd=Path(__file__).parent.parent)
     assert out.stdout.strip() == "False"
+
+
+def test_sector_model_leaves_out_one_sided_sectors() -> None:
+    # A sector with no forced departures has an intercept at -infinity and no information on the slope:
+    # the slope must equal the statsmodels fit without it, not be suppressed as "separated".
+    years = [2001, 2002, 2003, 2004] * 2 + [2001, 2003]
+    sectors = ["Amber"] * 4 + ["Birch"] * 4 + ["Cobalt"] * 2
+    forced = [2, 3, 5, 6, 1, 1, 3, 4, 0, 0]
+    voluntary = [8, 7, 6, 4, 9, 8, 8, 6, 4, 5]
+    fit = fit_trend(cells_from_counts(years, forced, voluntary, sectors=sectors), "sector")
+    assert not fit.separated and fit.odds_ratio is not None
+    assert any("Sector Cobalt has only voluntary departures" in m for m in fit.messages)
+    X = np.column_stack([[1.0] * 4 + [0.0] * 4, [0.0] * 4 + [1.0] * 4, np.array(years[:8]) - 2002.5])
+    ref = sm_glm(forced[:8], np.add(forced[:8], voluntary[:8]), X)
+    assert fit.log_or == pytest.approx(ref.params[2], rel=1e-8)

@@ -94,7 +94,9 @@ class TrendFit:
     transformed back), widened by sqrt(dispersion) when ``quasi`` is set. For ``"sector"`` it is
     evaluated at the departure-weighted average of the sector intercepts (one curve for the
     window, comparable with ``observed``); for ``"spline"`` it is the spline curve, while the
-    coefficients and odds ratios are those of the straight trend.
+    coefficients and odds ratios are those of the straight trend. ``departures`` and ``forced``
+    count what the model used (for ``"sector"``, sectors with only forced or only voluntary
+    departures are left out, with a message).
     """
 
     model: TrendKind
@@ -171,6 +173,23 @@ def _year_groups(groups: pd.DataFrame) -> pd.DataFrame:
     summed = groups.groupby("year", sort=True)[["forced", "voluntary"]].sum().reset_index()
     summed["sector"] = ""
     return summed[["year", "sector", "forced", "voluntary"]]
+
+
+def _drop_one_sided_sectors(groups: pd.DataFrame) -> tuple[pd.DataFrame, list[str]]:
+    """Leave out sectors whose departures are all forced or all voluntary.
+
+    Such a sector's intercept runs off to -/+ infinity and its likelihood contribution tends to 1
+    whatever the slope, so dropping it leaves the slope's MLE and profile unchanged while keeping
+    the separation check from condemning the whole fit.
+    """
+    sums = groups.groupby("sector", sort=True)[["forced", "voluntary"]].sum()
+    one_sided = sums.index[(sums["forced"] == 0) | (sums["voluntary"] == 0)].tolist()
+    if not one_sided or len(one_sided) == len(sums):
+        return groups, []
+    notes = [f"Sector {name} has only {'voluntary' if sums.loc[name, 'forced'] == 0 else 'forced'} "
+             "departures in the window; it says nothing about the trend and is left out of the sector "
+             "model." for name in one_sided]
+    return groups.loc[~groups["sector"].isin(one_sided)].reset_index(drop=True), notes
 
 
 def _check_data(groups: pd.DataFrame, window: tuple[int, int]) -> None:
@@ -261,13 +280,17 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
         raise TrendError(f"There are no forced or voluntary departures in {cells.window[0]}-"
                          f"{cells.window[1]}.")
     _check_data(groups, cells.window)
+    messages: list[str] = []
+    if model == "sector":
+        groups, messages = _drop_one_sided_sectors(groups)
+        _check_data(groups, cells.window)
     centre = window_centre(cells.window)
     design = design_matrix(groups, "sector" if model == "sector" else "linear", centre)
     forced = groups["forced"].to_numpy(dtype=float)
     totals = forced + groups["voluntary"].to_numpy(dtype=float)
     fit = fit_grouped_binomial(forced, totals, design.matrix)
     z = float(stats.norm.ppf(1.0 - alpha / 2.0))
-    messages = list(fit.messages)
+    messages += fit.messages
     j = design.slope
     b, se = float(fit.params[j]), float(fit.bse[j])
     usable = not fit.separated and math.isfinite(b) and math.isfinite(se)
