@@ -47,7 +47,7 @@ CATEGORY_COLOURS: dict[str, str] = {
 GROUP_STYLES: dict[str, tuple[str, str, str]] = {
     # group -> (legend name, colour, marker symbol)
     "common": ("All departures", OKABE_ITO["vermillion"], "diamond"),
-    "sector": ("Within one sector", OKABE_ITO["blue"], "circle"),
+    "sector": ("One sector", OKABE_ITO["blue"], "circle"),
     "mapping": ("Other mapping", OKABE_ITO["bluish_green"], "square"),
 }
 
@@ -66,6 +66,7 @@ NOTE_SIZE = 12
 _TITLE_WRAP = 80
 _NOTE_WRAP = 112
 _LINE_PX = 1.3
+_EDGE = 14
 
 
 def _house_template() -> go.layout.Template:
@@ -100,33 +101,39 @@ def _wrap(text: str, width: int) -> list[str]:
     return [html.escape(line, quote=False) for line in lines]
 
 
-def _base_figure(title: str, source: str, notes: Sequence[str] = (), *, right: int = 30,
+def _base_figure(title: str, source: str, notes: Sequence[str] = (), *, left: int = 78, right: int = 30,
                  legend: bool = True) -> go.Figure:
     """An empty figure with the house look, the finding as title and notes + source under the plot."""
     title_lines = _wrap(title, _TITLE_WRAP)
-    foot_lines = [line for note in notes for line in _wrap(note, _NOTE_WRAP)]
-    foot_lines += _wrap(source, _NOTE_WRAP)
+    note_lines = [line for note in notes for line in _wrap(note, _NOTE_WRAP)]
+    source_lines = _wrap(source, _NOTE_WRAP)
     title_px = len(title_lines) * TITLE_SIZE * _LINE_PX
     top = int(26 + title_px + (40 if legend else 14))
-    foot_px = len(foot_lines) * NOTE_SIZE * _LINE_PX
-    bottom = int(62 + foot_px)
+    source_px = int(len(source_lines) * NOTE_SIZE * _LINE_PX)
+    bottom = int(62 + len(note_lines) * NOTE_SIZE * _LINE_PX) + source_px
     fig = go.Figure()
     fig.update_layout(
         template=HOUSE_TEMPLATE,
         # plotly.js drops the 0.7em first-line offset once a title has several lines (each line gets
         # its own y), so a wrapped title needs its baseline pushed down by hand or its top is clipped
-        title={"text": "<br>".join(title_lines), "x": 0, "xref": "paper", "xanchor": "left",
+        title={"text": "<br>".join(title_lines), "x": 0, "xref": "container", "xanchor": "left",
                "y": 1, "yref": "container", "yanchor": "top",
-               "pad": {"t": 18 + (int(TITLE_SIZE * 0.8) if len(title_lines) > 1 else 0)},
+               "pad": {"t": 18 + (int(TITLE_SIZE * 0.8) if len(title_lines) > 1 else 0), "l": _EDGE},
                "font": {"size": TITLE_SIZE, "color": INK}},
-        margin={"t": top, "b": bottom, "l": 78, "r": right},
+        margin={"t": top, "b": bottom, "l": left, "r": right},
         showlegend=legend,
+        meta={"source_px": source_px},
     )
-    fig.add_annotation(
-        text="<br>".join(foot_lines), xref="paper", yref="paper", x=0, y=0, xanchor="left",
-        yanchor="bottom", yshift=-(bottom - 6), showarrow=False, align="left",
-        font={"size": NOTE_SIZE, "color": MUTED}, name="source",
-    )
+    # the source line sits at the very bottom; notes (if any) stack just above it
+    for name, lines, shift in (("source", source_lines, bottom - 6),
+                               ("notes", note_lines, bottom - 6 - source_px)):
+        if lines:
+            fig.add_annotation(
+                # shifted from the plot's left edge to the figure's, in line with the title
+                text="<br>".join(lines), xref="paper", yref="paper", x=0, y=0, xanchor="left",
+                xshift=-(left - _EDGE), yanchor="bottom", yshift=-shift, showarrow=False, align="left",
+                font={"size": NOTE_SIZE, "color": MUTED}, name=name,
+            )
     return fig
 
 
@@ -281,15 +288,20 @@ def forest_figure(rows: pd.DataFrame, *, title: str, source: str, reference: flo
     n = len(rows)
     if n == 0:
         raise ValueError("forest_figure needs at least one row.")
-    fig = _base_figure(title, source, right=190)
+    # a fixed left margin sized to the labels (not automargin) keeps the footer in line with the title
+    longest = max(len(str(s)) for s in rows["label"])
+    fig = _base_figure(title, source, left=int(min(360, 24 + 8.2 * longest)), right=190)
     data = rows.reset_index(drop=True).assign(pos=[float(n - 1 - i) for i in range(n)])
     estimable = data[np.isfinite(data["odds_ratio"].astype(float))]
     bounds = pd.concat([estimable["low"], estimable["high"], estimable["odds_ratio"]]).astype(float)
     bounds = bounds[np.isfinite(bounds) & (bounds > 0)]
     lo = min([reference, *bounds.tolist()]) / 1.04
     hi = max([reference, *bounds.tolist()]) * 1.04
-    fig.add_vline(x=reference, line={"color": INK, "dash": "dash", "width": 1.5}, showlegend=True,
-                  name=f"No change (OR = {reference:g})")
+    # labelled on the plot rather than in the legend, which must fit one row beside the value column
+    fig.add_vline(x=reference, line={"color": INK, "dash": "dash", "width": 1.5})
+    fig.add_annotation(x=math.log10(reference), y=n - 0.15, xref="x", yref="y", xanchor="left", yanchor="middle",
+                       xshift=4, text=f"no change (OR = {reference:g})", showarrow=False,
+                       font={"size": NOTE_SIZE, "color": MUTED})
     extra = iter(c for c in COLORWAY if c not in {s[1] for s in GROUP_STYLES.values()})
     for group in dict.fromkeys(data["group"].astype(str)):
         part = estimable[estimable["group"].astype(str) == group]
@@ -317,7 +329,7 @@ def forest_figure(rows: pd.DataFrame, *, title: str, source: str, reference: flo
                        text="<b>OR (95% CI)</b>", showarrow=False, font={"size": BASE_SIZE - 1})
     labels = [html.escape(str(s), quote=False) for s in data["label"]]
     fig.update_yaxes(tickmode="array", tickvals=data["pos"].tolist(), ticktext=labels, showgrid=False,
-                     range=[-0.7, n - 0.3], ticks="")
+                     range=[-0.7, n + 0.1], ticks="", automargin=False)
     fig.update_xaxes(type="log", range=[math.log10(lo), math.log10(hi)], tickvals=_log_ticks(lo, hi),
                      tickformat="~g", showgrid=True, gridcolor=GRID,
                      title_text="Odds ratio per year (log scale)")
@@ -329,6 +341,16 @@ def untitled(fig: go.Figure) -> go.Figure:
     copy = go.Figure(fig)
     legend = bool(copy.layout.showlegend is not False)
     copy.update_layout(title_text="", margin_t=48 if legend else 20)
+    return copy
+
+
+def without_source(fig: go.Figure) -> go.Figure:
+    """A copy without the source line, for a page (the brief) whose footer carries the full provenance."""
+    copy = go.Figure(fig)
+    source_px = int((copy.layout.meta or {}).get("source_px", 0))
+    # notes keep their offset from the figure's bottom edge, which moves up with the smaller margin
+    copy.layout.annotations = [a for a in copy.layout.annotations if a.name != "source"]
+    copy.update_layout(margin_b=(copy.layout.margin.b or 0) - source_px)
     return copy
 
 

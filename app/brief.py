@@ -1,0 +1,121 @@
+"""The one-page printable brief: HTML from templates/brief.html (autoescaped) to an A4 PDF with WeasyPrint.
+
+The two charts are inlined as SVG so they stay sharp in print. If the content runs past one page the
+brief is laid out again more compactly (shorter charts, smaller type, fewer table rows) until it fits.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+import plotly.graph_objects as go
+from jinja2 import Environment, FileSystemLoader, select_autoescape
+from markupsafe import Markup
+
+from app.charts import without_source
+from app.export import CAUTIONS, Provenance, figure_bytes
+
+TEMPLATE_DIR = Path(__file__).resolve().parents[1] / "templates"
+_env = Environment(loader=FileSystemLoader(str(TEMPLATE_DIR)), autoescape=select_autoescape(default=True))
+
+# wider than the page's 182 mm text block needs, so chart type prints at ~8-11 pt
+CHART_WIDTH_PX = 1000
+
+
+@dataclass(frozen=True)
+class _Layout:
+    chart_height_px: int
+    base_pt: float
+    max_rows: int
+
+
+# tried in order until the brief fits on one page
+_LAYOUTS: tuple[_Layout, ...] = (
+    _Layout(470, 9.0, 10),
+    _Layout(430, 8.5, 8),
+    _Layout(390, 8.0, 6),
+    _Layout(350, 7.5, 5),
+)
+
+
+@dataclass(frozen=True)
+class BriefRow:
+    """One table row, already formatted for print."""
+
+    label: str
+    odds_ratio: str
+    interval: str
+    method: str
+    estimable: bool
+
+
+def _rows(table: pd.DataFrame) -> list[BriefRow]:
+    missing = [c for c in ("label", "odds_ratio", "low", "high", "method") if c not in table.columns]
+    if missing:
+        raise ValueError(f"build_brief table needs columns label, odds_ratio, low, high, method; "
+                         f"missing {', '.join(missing)}.")
+    rows = []
+    for label, est, low, high, method in zip(table["label"], table["odds_ratio"].astype(float),
+                                             table["low"].astype(float), table["high"].astype(float),
+                                             table["method"], strict=True):
+        ok = math.isfinite(est)
+        rows.append(BriefRow(
+            label=str(label), odds_ratio=f"{est:.3f}" if ok else "",
+            interval=f"{low:.3f} to {high:.3f}" if ok and math.isfinite(low) and math.isfinite(high) else "n/a",
+            method=str(method), estimable=ok,
+        ))
+    return rows
+
+
+def _inline_svg(svg: bytes) -> Markup:
+    # kaleido's SVG is plotly.js's own serialisation, with user text already escaped by plotly
+    text = svg.decode("utf-8")
+    if text.startswith("<?xml"):
+        text = text[text.index("?>") + 2:]
+    return Markup(text.strip())
+
+
+def render_brief_html(*, headline: str, chart_svgs: Sequence[bytes], table: pd.DataFrame, method_text: str,
+                      provenance: Provenance, base_pt: float = 9.0, max_rows: int = 12) -> str:
+    """The brief's HTML (autoescaped), from already rendered SVG charts."""
+    rows = _rows(table)
+    return _env.get_template("brief.html").render(
+        headline=headline, charts=[_inline_svg(s) for s in chart_svgs], rows=rows[:max_rows],
+        hidden_rows=max(0, len(rows) - max_rows), method_text=method_text, cautions=CAUTIONS,
+        provenance=provenance, base_pt=base_pt,
+    )
+
+
+def pdf_page_count(html: str) -> int:
+    """How many pages WeasyPrint lays ``html`` out on."""
+    from weasyprint import HTML
+
+    return len(HTML(string=html, base_url=str(TEMPLATE_DIR)).render().pages)
+
+
+def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFrame, method_text: str,
+                provenance: Provenance) -> bytes:
+    """A one-page A4 PDF: headline, two charts, odds-ratio table, method, cautions, provenance footer.
+
+    Raises app.export.ExportUnavailable when charts cannot be rendered (no browser), ValueError when
+    ``charts`` is not two figures or the content cannot be fitted on one page.
+    """
+    from weasyprint import HTML
+
+    if len(charts) != 2:
+        raise ValueError(f"build_brief takes exactly two charts; got {len(charts)}.")
+    for layout in _LAYOUTS:
+        # the page footer carries the full provenance, so the charts drop their own source line
+        svgs = [figure_bytes(without_source(fig), "svg", width=CHART_WIDTH_PX, height=layout.chart_height_px)
+                for fig in charts]
+        html = render_brief_html(headline=headline, chart_svgs=svgs, table=table, method_text=method_text,
+                                 provenance=provenance, base_pt=layout.base_pt, max_rows=layout.max_rows)
+        document = HTML(string=html, base_url=str(TEMPLATE_DIR)).render()
+        if len(document.pages) == 1:
+            return bytes(document.write_pdf())
+    raise ValueError("The brief does not fit on one A4 page even in its most compact layout; "
+                     "shorten the headline or the method text.")
