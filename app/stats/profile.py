@@ -20,7 +20,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import optimize, stats
 
 #: fitted probabilities closer than this to 0 or 1 mean the MLE sits at infinity (separation)
 SEPARATION_EPS = 1e-8
@@ -292,6 +291,9 @@ def profile_interval(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, inde
         Bounds on the logit (coefficient) scale; an end the profile never reaches is +/- inf, with
         a message, never an invented number.
     """
+    # lazy: scipy.stats costs ~0.6 s to import, kept off start-up
+    from scipy import optimize, stats
+
     forced = np.asarray(forced, dtype=float)
     totals = np.asarray(totals, dtype=float)
     X = np.asarray(X, dtype=float)

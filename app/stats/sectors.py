@@ -13,7 +13,6 @@ from typing import Literal
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from app.stats.cells import Cells
 from app.stats.design import design_matrix, window_centre
@@ -91,6 +90,8 @@ def _skip_reason(groups: pd.DataFrame, min_departures: int) -> str | None:
 
 def _sector_trend(sector: str, groups: pd.DataFrame, centre: float, alpha: float,
                   min_departures: int) -> SectorTrend:
+    from scipy import stats  # lazy: scipy.stats costs ~0.6 s to import, kept off start-up
+
     forced = groups["forced"].to_numpy(dtype=float)
     totals = forced + groups["voluntary"].to_numpy(dtype=float)
 
@@ -131,6 +132,8 @@ def _subset(cells: Cells, keep: np.ndarray) -> Cells:
 
 
 def _heterogeneity(groups: pd.DataFrame, centre: float) -> tuple[Heterogeneity | None, list[str]]:
+    from scipy import stats  # lazy: scipy.stats costs ~0.6 s to import, kept off start-up
+
     additive = design_matrix(groups, "sector", centre)
     n_sectors = additive.slope
     dummies = additive.matrix[:, :n_sectors]

@@ -5,8 +5,8 @@ one intercept per sector with a common slope (``"sector"``), and a natural cubic
 (``"spline"``) whose only role is to test for curvature against the straight trend; the straight
 trend's odds ratio stays the headline.
 
-statsmodels is imported lazily (inside the fitting helpers): it costs over a second to import and
-this module sits on the CLI and server start-up path.
+statsmodels and scipy.stats are imported lazily (inside the functions): together they cost about two
+seconds to import and this module sits on the CLI and server start-up path.
 """
 
 from __future__ import annotations
@@ -17,7 +17,6 @@ from typing import Literal, get_args
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from app.stats.cells import Cells
 from app.stats.design import design_matrix, window_centre
@@ -227,6 +226,8 @@ def _profile_note(result: ProfileResult) -> list[str]:
 def _curvature(forced: np.ndarray, totals: np.ndarray, years: np.ndarray, df: int,
                straight: GroupedFit) -> tuple[Curvature | None, GroupedFit | None, np.ndarray | None,
                                                list[str]]:
+    from scipy import stats  # lazy: scipy.stats costs ~0.6 s to import, kept off start-up
+
     if len(np.unique(years)) < df + 2:
         return None, None, None, [f"Too few years for a spline with {df} df; curvature was not tested."]
     basis, knots = natural_spline_basis(years, df)
@@ -268,6 +269,8 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
     TrendError
         No forced (or no voluntary) departures in the window, or fewer than 3 distinct years.
     """
+    from scipy import stats  # lazy: scipy.stats costs ~0.6 s to import, kept off start-up
+
     check_choice(model, TREND_KINDS, "model")
     if spline_df not in SPLINE_DFS:
         raise ValueError(f"spline_df must be one of {', '.join(map(str, SPLINE_DFS))}; got {spline_df!r}.")
