@@ -18,9 +18,27 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from sqlalchemy import (
-    Boolean, Column, Connection, Engine, Float, ForeignKey, Integer, LargeBinary, MetaData,
-    String, Table, Text, UniqueConstraint, create_engine, delete, event, func, insert, select,
-    text, update,
+    Boolean,
+    Column,
+    Connection,
+    Engine,
+    Float,
+    ForeignKey,
+    Integer,
+    LargeBinary,
+    MetaData,
+    String,
+    Table,
+    Text,
+    UniqueConstraint,
+    create_engine,
+    delete,
+    event,
+    func,
+    insert,
+    select,
+    text,
+    update,
 )
 
 from app.types import CATEGORIES, Category, RunKind, RunStatus
@@ -140,7 +158,8 @@ run_replicates = Table(
     Column("run_id", Integer, ForeignKey("runs.id", ondelete="CASCADE"), nullable=False, index=True),
     Column("seq", Integer, nullable=False),
     Column("count", Integer, nullable=False),
-    Column("data", LargeBinary, nullable=False),  # zlib-compressed float64 replicates
+    Column("data", LargeBinary, nullable=False),  # zlib-compressed float64 replicates (NaN = failed)
+    Column("failures", LargeBinary, nullable=False),  # zlib-compressed, one reason per line ("" = ok)
     UniqueConstraint("run_id", "seq"),
 )
 
@@ -599,23 +618,38 @@ class Store:
                 ))
         return ids
 
-    def append_replicates(self, run_id: int, values: np.ndarray) -> None:
-        """Append a block of replicate estimates (float64) to a run, compressed."""
+    def append_replicates(self, run_id: int, values: np.ndarray, failures: Sequence[str] | None = None) -> None:
+        """Append a block of replicate estimates (float64) and their failure reasons to a run, compressed."""
         data = zlib.compress(np.ascontiguousarray(values, dtype="<f8").tobytes(), 6)
+        reasons = list(failures) if failures is not None else [""] * len(values)
+        if len(reasons) != len(values):
+            raise StoreError("one failure reason per replicate is needed")
+        packed = zlib.compress("\n".join(str(r) for r in reasons).encode(), 6)
         with self._tx() as conn:
             seq = conn.execute(
                 select(func.coalesce(func.max(run_replicates.c.seq), -1)).where(run_replicates.c.run_id == run_id)
             ).scalar_one() + 1
-            conn.execute(insert(run_replicates).values(run_id=run_id, seq=seq, count=len(values), data=data))
+            conn.execute(insert(run_replicates).values(run_id=run_id, seq=seq, count=len(values), data=data,
+                                                       failures=packed))
 
     def replicates(self, run_id: int) -> np.ndarray:
+        """All stored replicate estimates of a run, in resample order."""
+        return self.replicates_with_failures(run_id)[0]
+
+    def replicates_with_failures(self, run_id: int) -> tuple[np.ndarray, np.ndarray]:
+        """(estimates, failure reasons) of a run, in resample order; reason "" means the fit worked."""
         with self.engine.connect() as conn:
-            blobs = [r[0] for r in conn.execute(
-                select(run_replicates.c.data).where(run_replicates.c.run_id == run_id)
-                .order_by(run_replicates.c.seq))]
-        if not blobs:
-            return np.empty(0)
-        return np.concatenate([np.frombuffer(zlib.decompress(b), dtype="<f8") for b in blobs])
+            rows = conn.execute(
+                select(run_replicates.c.data, run_replicates.c.failures, run_replicates.c.count)
+                .where(run_replicates.c.run_id == run_id).order_by(run_replicates.c.seq)).fetchall()
+        if not rows:
+            return np.empty(0), np.empty(0, dtype=object)
+        values = np.concatenate([np.frombuffer(zlib.decompress(r[0]), dtype="<f8") for r in rows])
+        reasons: list[str] = []
+        for r in rows:
+            part = zlib.decompress(r[1]).decode().split("\n")
+            reasons.extend(part if r[2] else [])
+        return values, np.array(reasons, dtype=object)
 
     def counts(self) -> dict[str, int]:
         """Row counts of the main tables (for health checks and tests of all-or-nothing writes)."""

@@ -603,3 +603,32 @@ def bootstrap_to_dict(result: BootstrapResult) -> dict[str, Any]:
         "bias": num(result.bias),
         "standard_error": num(result.standard_error),
     }
+
+
+def summarise_replicates(
+    cells: Cells,
+    design: Design,
+    estimates: np.ndarray,
+    failures: np.ndarray,
+    *,
+    unit: Unit,
+    seed: int,
+    alpha: float = 0.05,
+    coefficient: int | None = None,
+    seconds: float = 0.0,
+) -> BootstrapResult:
+    """Intervals and failure counts from stored replicates (e.g. a run drawn in chunks by a job).
+
+    ``estimates`` and ``failures`` are the concatenated outputs of :func:`draw_replicates` for
+    resamples 0 .. B-1; the estimate and jackknife are recomputed from ``cells`` and ``design``.
+    """
+    check_choice(unit, UNITS, "unit")
+    alpha = _check_alpha(alpha)
+    coef = _coefficient_index(design, coefficient)
+    theta = np.asarray(estimates, dtype=float)
+    why = np.asarray(failures).astype(str)
+    if theta.shape != why.shape:
+        raise ValueError("estimates and failures must have one entry per resample.")
+    estimate = _original_estimate(cells, design, coef)
+    jk = jackknife_estimates(cells, design, unit=unit, coefficient=coef)
+    return _assemble(design, unit, int(seed), alpha, coef, estimate, theta, why, jk, float(seconds))

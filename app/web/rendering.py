@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
 from datetime import date, datetime
 from pathlib import Path
@@ -13,6 +14,7 @@ import pandas as pd
 from fastapi import Request
 from fastapi.responses import HTMLResponse, JSONResponse
 from fastapi.templating import Jinja2Templates
+from markupsafe import Markup
 
 from app import __version__
 
@@ -36,6 +38,16 @@ def _fmt_num(value: float | None, digits: int = 3) -> str:
     return f"{value:.{digits}f}"
 
 
+def _script_json(value: Any) -> Markup:
+    """JSON safe to place inside a <script type="application/json"> element (no tag can close it)."""
+    text = value if isinstance(value, str) else json.dumps(jsonable(value))
+    for raw, escaped in (("<", "\\u003c"), (">", "\\u003e"), ("&", "\\u0026"),
+                         ("\u2028", "\\u2028"), ("\u2029", "\\u2029")):
+        text = text.replace(raw, escaped)
+    return Markup(text)  # noqa: S704 - every character that could end the element is escaped above
+
+
+templates.env.filters["script_json"] = _script_json
 templates.env.filters["pct"] = _fmt_pct
 templates.env.filters["num"] = _fmt_num
 

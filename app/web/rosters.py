@@ -10,7 +10,12 @@ from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Resp
 from starlette.datastructures import UploadFile
 
 from app.ingest import (
-    DuplicateRosterError, RosterFileError, RosterPreview, import_roster, preview_roster, rejected_rows_csv,
+    DuplicateRosterError,
+    RosterFileError,
+    RosterPreview,
+    import_roster,
+    preview_roster,
+    rejected_rows_csv,
 )
 from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import ROLES

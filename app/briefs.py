@@ -1,0 +1,121 @@
+"""Board exports: chart files, the slide deck and the one-page brief, from the page's own figures."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import replace
+from pathlib import Path
+from typing import Literal, get_args
+
+import pandas as pd
+
+from app.analysis import AnalysisInput, run_trend
+from app.deck import Finding, build_deck
+from app.export import Provenance, figure_bytes
+from app.findings import CHART_NAMES, ChartFinding, build_finding, latest_bootstrap
+from app.stats.trend import trend_sentence
+from app.store import Store
+
+ExportFormat = Literal["png", "svg", "pdf", "pptx", "brief"]
+EXPORT_FORMATS: tuple[ExportFormat, ...] = get_args(ExportFormat)
+DEFAULT_DECK: tuple[str, ...] = ("coverage", "trend", "bootstrap", "sectors", "robustness")
+MEDIA_TYPES = {"png": "image/png", "svg": "image/svg+xml", "pdf": "application/pdf",
+               "pptx": "application/vnd.openxmlformats-officedocument.presentationml.presentation",
+               "brief": "application/pdf"}
+
+
+def chart_file(store: Store, inp: AnalysisInput, chart: str, fmt: str, *, run_id: int | None = None,
+               method: str = "bca", model: str = "linear") -> bytes:
+    """One chart as PNG (2x), SVG or PDF: the same figure the page draws."""
+    if fmt not in ("png", "svg", "pdf"):
+        raise ValueError(f"chart format must be png, svg or pdf; got {fmt!r}.")
+    finding = build_finding(store, inp, chart, run_id=run_id, method=method, model=model)
+    return figure_bytes(finding.figure, fmt)  # type: ignore[arg-type]
+
+
+def _findings(store: Store, inp: AnalysisInput, charts: Sequence[str], run_id: int | None) -> list[ChartFinding]:
+    out = []
+    for chart in charts:
+        if chart not in CHART_NAMES:
+            raise ValueError(f"chart must be one of {', '.join(CHART_NAMES)}; got {chart!r}.")
+        if chart == "bootstrap" and run_id is None and latest_bootstrap(store, inp) is None:
+            continue  # nothing to show yet; the methods slide says no resampling was used
+        out.append(build_finding(store, inp, chart, run_id=run_id))
+    return out
+
+
+def _deck_provenance(findings: Sequence[ChartFinding], fallback: Provenance) -> Provenance:
+    """The trend's provenance, carrying the bootstrap's B, seed and unit when one is included."""
+    base = next((f.provenance for f in findings if f.name == "trend"), fallback)
+    boot = next((f.provenance for f in findings if f.name == "bootstrap"), None)
+    if boot is not None:
+        base = replace(base, resamples=boot.resamples, seed=boot.seed, unit=boot.unit,
+                       interval_method=f"{base.interval_method}; {boot.interval_method}")
+    return base
+
+
+def deck_file(store: Store, inp: AnalysisInput, charts: Sequence[str] = DEFAULT_DECK, *,
+              run_id: int | None = None) -> bytes:
+    """A 16:9 deck: title, one slide per chosen finding, methods and cautions."""
+    findings = _findings(store, inp, charts, run_id)
+    if not findings:
+        raise ValueError("Choose at least one finding for the deck.")
+    provenance = _deck_provenance(findings, findings[0].provenance)
+    slides = [Finding(title=f.figure.layout.title.text or f.name, takeaway=f.takeaway, figure=f.figure)
+              for f in findings]
+    return build_deck(slides, provenance, title=f"Forced chief-executive departures: {inp.roster.name}",
+                      subtitle=f"Fiscal years {inp.window[0]}–{inp.window[1]} · mapping {inp.mapping_label}")
+
+
+def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None) -> bytes:
+    """The one-page brief: headline, trend and bootstrap (or coverage) charts, odds ratios, method."""
+    from app.brief import build_brief
+
+    fit = run_trend(store, inp).fit
+    trend = build_finding(store, inp, "trend")
+    run = store.get_run(run_id) if run_id is not None else latest_bootstrap(store, inp)
+    second = build_finding(store, inp, "bootstrap", run_id=run.id) if run is not None else build_finding(
+        store, inp, "coverage")
+    rows = []
+    for name, label in (("profile", "profile likelihood"), ("wald", "Wald")):
+        iv = fit.conf_int.get(name)
+        if fit.odds_ratio is not None and iv is not None:
+            rows.append({"label": "Odds ratio per year", "odds_ratio": fit.odds_ratio, "low": iv[0], "high": iv[1],
+                         "method": label})
+    if fit.decade_odds_ratio is not None and fit.decade_conf_int.get("profile"):
+        lo, hi = fit.decade_conf_int["profile"]  # type: ignore[misc]
+        rows.append({"label": "Odds ratio per decade", "odds_ratio": fit.decade_odds_ratio, "low": lo, "high": hi,
+                     "method": "profile likelihood"})
+    if run is not None and run.result is not None:
+        unit = run.params["unit"]
+        for m, label in (("bca", "BCa"), ("percentile", "percentile")):
+            lo, hi = run.result["conf_int"][m]
+            if lo is not None and hi is not None:
+                rows.append({"label": "Odds ratio per year", "odds_ratio": run.result["odds_ratio"], "low": lo,
+                             "high": hi, "method": f"{label}, {unit} bootstrap (B = {run.result['resamples']:,})"})
+    method = (f"Binomial GLM of the forced share of departures (forced vs voluntary; excluded and unmapped codes "
+              f"left out) on fiscal year, {inp.window[0]}–{inp.window[1]}, {fit.departures:,} departures of which "
+              f"{fit.forced:,} forced. Pearson dispersion {fit.dispersion:.2f}."
+              + (" Bootstrap intervals resample whole firms, keeping each firm's departures together."
+                 if run is not None and run.params.get("unit") == "firm" else ""))
+    provenance = _deck_provenance([trend, second], trend.provenance)
+    return build_brief(headline=trend_sentence(fit), charts=[trend.figure, second.figure],
+                       table=pd.DataFrame(rows), method_text=method, provenance=provenance)
+
+
+def export_to_file(store: Store, inp: AnalysisInput, *, fmt: str, out: Path, chart: str = "trend",
+                   run_id: int | None = None) -> Path:
+    """The command line's export: write the file and return its path."""
+    if fmt not in EXPORT_FORMATS:
+        raise ValueError(f"format must be one of {', '.join(EXPORT_FORMATS)}; got {fmt!r}.")
+    if fmt == "pptx":
+        data = deck_file(store, inp, run_id=run_id)
+    elif fmt == "brief":
+        data = brief_file(store, inp, run_id=run_id)
+    else:
+        data = chart_file(store, inp, chart, fmt, run_id=run_id)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(out.name + ".part")
+    tmp.write_bytes(data)
+    tmp.replace(out)  # never leave a half-written file under the final name
+    return out

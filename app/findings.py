@@ -1,0 +1,184 @@
+"""Each chart the product shows, built once from the analysis, for the page and for every export.
+
+A finding is a figure, the sentence that states what it shows, and the provenance of its numbers.
+Pages draw ``finding.figure``; the briefing exports the very same figure as PNG, SVG, PDF, a slide
+or part of the one-page brief.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal, get_args
+
+import numpy as np
+import pandas as pd
+import plotly.graph_objects as go
+
+from app.analysis import AnalysisInput, input_for_run, provenance_for, run_sectors, run_trend
+from app.charts import bootstrap_histogram, coverage_figure, forest_figure, trend_figure
+from app.export import Provenance
+from app.stats.sectors import SectorTrends
+from app.stats.trend import TrendFit, trend_sentence
+from app.store import Run, Store, StoreError
+
+ChartName = Literal["coverage", "trend", "bootstrap", "sectors", "robustness"]
+CHART_NAMES: tuple[ChartName, ...] = get_args(ChartName)
+METHOD_LABELS = {"percentile": "percentile", "basic": "basic", "bca": "BCa"}
+
+
+@dataclass(frozen=True)
+class ChartFinding:
+    """A chart with the one sentence it supports and where its numbers came from."""
+
+    name: ChartName
+    figure: go.Figure
+    takeaway: str
+    provenance: Provenance
+
+
+def coverage_finding(inp: AnalysisInput) -> ChartFinding:
+    lo, hi = inp.window
+    inside = inp.coverage[(inp.coverage["year"] >= lo) & (inp.coverage["year"] <= hi)]
+    counted = int(inside["forced"].sum() + inside["voluntary"].sum())
+    takeaway = (f"{counted:,} forced or voluntary departures are counted in the window {lo}–{hi}; "
+                f"{inp.suggestion.rule}.")
+    title = (f"{counted:,} departures counted in {lo}–{hi}; thinly covered years lie outside"
+             if inp.suggestion.below_cutoff else f"{counted:,} departures counted in {lo}–{hi}")
+    prov = provenance_for(inp, model="coverage count per fiscal year", interval_method="none")
+    fig = coverage_figure(inp.coverage, inp.window, sorted({f.year for f in inp.flags}), title=title,
+                          source=prov.short())
+    return ChartFinding("coverage", fig, takeaway, prov)
+
+
+def trend_finding_from_fit(inp: AnalysisInput, fit: TrendFit, model: str) -> ChartFinding:
+    prov = provenance_for(inp, model=model, interval_method="Wald and profile likelihood, 95%",
+                          by_sector=model == "sector")
+    observed = fit.observed.assign(low=fit.observed["wilson_low"], high=fit.observed["wilson_high"])
+    sentence = trend_sentence(fit)
+    fig = trend_figure(observed, fit.fitted, title=sentence, source=prov.short())
+    return ChartFinding("trend", fig, sentence, prov)
+
+
+def trend_finding(store: Store, inp: AnalysisInput, model: str = "linear") -> ChartFinding:
+    return trend_finding_from_fit(inp, run_trend(store, inp, model=model).fit, model)
+
+
+def bootstrap_run(store: Store, run_id: int) -> Run:
+    run = store.get_run(run_id)
+    if run.kind != "bootstrap":
+        raise StoreError(f"Run {run_id} is a {run.kind} run, not a bootstrap run.")
+    if run.status != "done" or run.result is None:
+        raise StoreError(f"Bootstrap run {run_id} has not finished (status {run.status}).")
+    return run
+
+
+def latest_bootstrap(store: Store, inp: AnalysisInput) -> Run | None:
+    """The newest finished bootstrap run on this roster's current mapping version and window."""
+    for run in store.list_runs(inp.roster.id, "bootstrap"):
+        if (run.status == "done" and run.window == inp.window and inp.mapping is not None
+                and run.mapping_name == inp.mapping.name and run.mapping_version == inp.mapping.version):
+            return run
+    return None
+
+
+def bootstrap_finding(store: Store, run_id: int, method: str = "bca") -> ChartFinding:
+    if method not in METHOD_LABELS:
+        raise ValueError(f"method must be one of {', '.join(METHOD_LABELS)}; got {method!r}.")
+    run = bootstrap_run(store, run_id)
+    assert run.result is not None
+    inp = input_for_run(store, run)
+    result = run.result
+    label = METHOD_LABELS[method]
+    prov = provenance_for(inp, model=run.params.get("model", "linear"), interval_method=f"bootstrap {label}, 95%",
+                          resamples=result["resamples"], seed=run.params["seed"], unit=run.params["unit"],
+                          by_sector=run.params.get("model") == "sector")
+    lo, hi = result["conf_int"][method]
+    estimate = float(result["odds_ratio"])
+    unit = "whole firms" if run.params["unit"] == "firm" else "departures"
+    if lo is not None and hi is not None:
+        takeaway = (f"Resampling {unit} {result['resamples']:,} times, the odds ratio per year is {estimate:.3f} "
+                    f"(95% {label} interval {lo:.3f} to {hi:.3f}).")
+    else:
+        takeaway = f"Resampling {unit}: the {label} interval could not be computed."
+    ors = np.exp(store.replicates(run.id))
+    fig = bootstrap_histogram(ors, estimate, (lo if lo is not None else np.nan, hi if hi is not None else np.nan),
+                              method_label=f"95% {label}", title=takeaway, source=prov.short())
+    return ChartFinding("bootstrap", fig, takeaway, prov)
+
+
+def _pair(p: tuple[float, float] | None) -> tuple[float, float]:
+    return (float(p[0]), float(p[1])) if p else (np.nan, np.nan)
+
+
+def sector_verdict(result: SectorTrends) -> str:
+    """The test of equal trends in words."""
+    het = result.heterogeneity
+    if het is None:
+        return "Too few sectors could be fitted to test whether their trends differ."
+    p = het.p
+    words = ("differ clearly" if p < 0.01 else "differ" if p < 0.05
+             else "may differ (weak evidence)" if p < 0.10 else "are consistent with one common trend")
+    text = (f"Across {len(het.sectors)} sectors the yearly trends {words} (likelihood-ratio test of equal "
+            f"trends: {het.statistic:.1f} on {het.df} df, p = {p:.3g}).")
+    fitted = [t for t in result.sectors if t.status == "fitted" and t.odds_ratio is not None]
+    if fitted and p < 0.05:
+        hi = max(fitted, key=lambda t: t.odds_ratio or 0.0)
+        lo = min(fitted, key=lambda t: t.odds_ratio or 0.0)
+        text += (f" Steepest: {hi.sector} (odds ratio {hi.odds_ratio:.3f} a year); "
+                 f"flattest: {lo.sector} ({lo.odds_ratio:.3f}).")
+    return text
+
+
+def sectors_finding_from(inp: AnalysisInput, result: SectorTrends) -> ChartFinding:
+    rows = []
+    if result.common is not None and result.common.odds_ratio is not None:
+        lo, hi = _pair(result.common.conf_int.get("profile"))
+        rows.append({"label": "All sectors (sector-adjusted)", "odds_ratio": result.common.odds_ratio,
+                     "low": lo, "high": hi, "group": "common"})
+    for t in result.sectors:
+        lo, hi = _pair(t.conf_int.get("profile")) if t.status == "fitted" else (np.nan, np.nan)
+        rows.append({"label": f"{t.sector} ({t.forced}/{t.departures})",
+                     "odds_ratio": t.odds_ratio if t.odds_ratio is not None else np.nan,
+                     "low": lo, "high": hi, "group": "sector"})
+    verdict = sector_verdict(result)
+    prov = provenance_for(inp, model="sector", by_sector=True, interval_method="profile likelihood, 95%")
+    fig = forest_figure(pd.DataFrame(rows), title=verdict.split(" (")[0], source=prov.short())
+    return ChartFinding("sectors", fig, verdict, prov)
+
+
+def sectors_finding(store: Store, inp: AnalysisInput, min_departures: int = 20) -> ChartFinding:
+    return sectors_finding_from(inp, run_sectors(store, inp, min_departures=min_departures)[0])
+
+
+def robustness_finding(store: Store, inp: AnalysisInput, extra: list[str] | None = None,
+                       vary: list[str] | None = None) -> ChartFinding:
+    from app.robustness import check_robustness, robustness_rows
+
+    if extra is None:
+        extra = [f"{n}:{v}" for n, v in store.list_mappings() if not (inp.mapping and n == inp.mapping.name)]
+    result = check_robustness(store, inp, extra_mappings=extra, vary=vary or [])
+    prov = provenance_for(inp, interval_method="profile likelihood, 95%")
+    fig = forest_figure(robustness_rows(result), title=result.sentence.split(";")[0], source=prov.short())
+    return ChartFinding("robustness", fig, result.sentence, prov)
+
+
+def build_finding(store: Store, inp: AnalysisInput, chart: str, *, run_id: int | None = None,
+                  method: str = "bca", model: str = "linear") -> ChartFinding:
+    """Any chart by name; ``bootstrap`` uses ``run_id`` or the newest matching finished run."""
+    if chart not in CHART_NAMES:
+        raise ValueError(f"chart must be one of {', '.join(CHART_NAMES)}; got {chart!r}.")
+    if chart == "coverage":
+        return coverage_finding(inp)
+    if chart == "trend":
+        return trend_finding(store, inp, model)
+    if chart == "bootstrap":
+        if run_id is None:
+            latest = latest_bootstrap(store, inp)
+            if latest is None:
+                raise StoreError("No finished bootstrap run matches this roster's mapping and window; "
+                                 "start one on the Resampling page or with `helmshift bootstrap`.")
+            run_id = latest.id
+        return bootstrap_finding(store, run_id, method)
+    if chart == "sectors":
+        return sectors_finding(store, inp)
+    return robustness_finding(store, inp)

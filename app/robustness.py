@@ -1,0 +1,190 @@
+"""Does the trend survive other readings of "forced"? The same model under alternative mappings.
+
+Variants: the roster's mapping (the reference), any other saved mapping versions the analyst names,
+one chosen code moved to each other category, and every ambiguous code treated as excluded.
+Each variant is fitted on the same window; the differences from the reference are spelled out.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from app.analysis import AnalysisInput, parse_mapping_ref
+from app.reasons import diff_mappings, suggest_categories
+from app.stats.cells import assign_categories, build_cells
+from app.stats.trend import TrendError, fit_trend
+from app.store import Store
+from app.types import CATEGORIES
+
+
+@dataclass(frozen=True)
+class Variant:
+    """One reading of the reason codes and the trend it gives."""
+
+    label: str
+    kind: str  # reference | mapping | moved | ambiguous-excluded
+    changes: tuple[str, ...]
+    departures: int
+    forced: int
+    odds_ratio: float | None
+    wald: tuple[float, float] | None
+    profile: tuple[float, float] | None
+    bootstrap: tuple[float, float] | None
+    bootstrap_note: str
+    error: str | None
+
+
+@dataclass(frozen=True)
+class Robustness:
+    """All variants, with a verdict on whether the direction of the trend holds in every one."""
+
+    window: tuple[int, int]
+    variants: list[Variant]
+    direction: str
+    holds: bool
+    sentence: str
+
+
+def _describe(base: dict[str, str], other: dict[str, str], roster_codes: set[str]) -> tuple[str, ...]:
+    diff = diff_mappings({k: v for k, v in base.items() if k in roster_codes},
+                         {k: v for k, v in other.items() if k in roster_codes})
+    parts = [f"{code}: {old} → {new}" for code, old, new in diff.moved]
+    parts += [f"{code}: unmapped → {cat}" for code, cat in diff.added]
+    parts += [f"{code}: {cat} → unmapped" for code, cat in diff.removed]
+    return tuple(parts) or ("no change for this roster's codes",)
+
+
+def _bootstrap_interval(store: Store, inp: AnalysisInput, name: str, version: int) -> tuple[tuple[float, float] | None, str]:
+    runs = sorted(store.list_runs(inp.roster.id, "bootstrap"), key=lambda r: r.params.get("unit") != "firm")
+    for run in runs:  # firm resampling first: it is the interval to quote when firms cluster
+        if (run.status == "done" and run.mapping_name == name and run.mapping_version == version
+                and run.window == inp.window and run.params.get("model") == "linear" and run.result):
+            bca = run.result["conf_int"]["bca"]
+            if bca[0] is not None and bca[1] is not None:
+                return (float(bca[0]), float(bca[1])), (
+                    f"BCa, {run.params['unit']} resampling, B={run.params['resamples']} (run {run.id})")
+    return None, "no stored bootstrap run for this mapping and window"
+
+
+def _fit_variant(inp: AnalysisInput, categories: dict[str, str], label: str, kind: str,
+                 changes: tuple[str, ...], boot: tuple[tuple[float, float] | None, str]) -> Variant:
+    records = inp.records.assign(category=assign_categories(inp.records["reason"], categories))
+    cells = build_cells(records, inp.window)
+    departures, forced = int(cells.totals.sum()), int(cells.forced.sum())
+    try:
+        fit = fit_trend(cells, "linear")
+    except TrendError as exc:
+        return Variant(label, kind, changes, departures, forced, None, None, None, None, boot[1], str(exc))
+    return Variant(label, kind, changes, departures, forced, fit.odds_ratio, fit.conf_int.get("wald"),
+                   fit.conf_int.get("profile"), boot[0], boot[1],
+                   "; ".join(fit.messages) if fit.separated else None)
+
+
+def _direction(v: Variant) -> int:
+    """+1 rising, -1 falling, 0 no clear change (the profile interval spans 1)."""
+    iv = v.profile or v.wald
+    if v.odds_ratio is None or iv is None:
+        return 0
+    if iv[0] > 1:
+        return 1
+    if iv[1] < 1:
+        return -1
+    return 0
+
+
+def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[str] | None = None,
+                     vary: list[str] | None = None, ambiguous_excluded: bool = True) -> Robustness:
+    """Fit the straight trend under each variant of the mapping (see module docstring)."""
+    if inp.mapping is None:
+        raise ValueError("Robustness needs a reference mapping; choose one on the Reason codes page.")
+    base = dict(inp.mapping.categories)
+    roster_codes = set(inp.records["reason"].astype(str))
+    variants = [_fit_variant(inp, base, inp.mapping_label, "reference", ("the roster's mapping",),
+                             _bootstrap_interval(store, inp, inp.mapping.name, inp.mapping.version))]
+    for ref in extra_mappings or []:
+        name, version = parse_mapping_ref(ref)
+        other = store.get_mapping(name, version)
+        if other.name == inp.mapping.name and other.version == inp.mapping.version:
+            continue
+        variants.append(_fit_variant(inp, dict(other.categories), f"{other.name} v{other.version}", "mapping",
+                                     _describe(base, dict(other.categories), roster_codes),
+                                     _bootstrap_interval(store, inp, other.name, other.version)))
+    no_boot = (None, "not bootstrapped (a generated variant)")
+    for code in vary or []:
+        if code not in roster_codes:
+            raise ValueError(f"Reason code {code!r} does not occur in roster {inp.roster.name!r}.")
+        current = base.get(code, "unmapped")
+        for target in CATEGORIES:
+            if target == current:
+                continue
+            moved = base | {code: target}
+            variants.append(_fit_variant(inp, moved, f"{code} as {target}", "moved",
+                                         (f"{code}: {current} → {target}",), no_boot))
+    if ambiguous_excluded:
+        ambiguous = sorted(c for c, s in suggest_categories(sorted(roster_codes)).items() if s.ambiguous)
+        changed = {c: "excluded" for c in ambiguous if base.get(c) != "excluded"}
+        if changed:
+            variants.append(_fit_variant(inp, base | changed, "ambiguous codes excluded", "ambiguous-excluded",
+                                         tuple(f"{c}: {base.get(c, 'unmapped')} → excluded" for c in changed),
+                                         no_boot))
+    return _verdict(inp, variants)
+
+
+def _verdict(inp: AnalysisInput, variants: list[Variant]) -> Robustness:
+    ref = variants[0]
+    ref_dir = _direction(ref)
+    dirs = [_direction(v) for v in variants]
+    point_up = [v.odds_ratio is not None and v.odds_ratio > 1 for v in variants]
+    n = len(variants)
+    span = f"{inp.window[0]}–{inp.window[1]}"
+    if ref_dir == 0:
+        same = sum(d == 0 for d in dirs)
+        holds = same == n
+        direction = "no clear change"
+        sentence = (f"Under the reference mapping the trend over {span} is not clearly different from no change; "
+                    f"{same} of {n} readings agree.")
+    else:
+        word = "rising" if ref_dir > 0 else "falling"
+        same = sum(d == ref_dir for d in dirs)
+        same_point = sum(p == (ref_dir > 0) for p in point_up)
+        holds = same == n
+        direction = word
+        sentence = (f"The forced share is {word} over {span} under the reference mapping; the interval excludes no "
+                    f"change under {same} of {n} readings, and the point estimate points the same way under "
+                    f"{same_point} of {n}.")
+    ors = [v.odds_ratio for v in variants if v.odds_ratio is not None]
+    if ors:
+        sentence += f" Odds ratios per year range from {min(ors):.3f} to {max(ors):.3f}."
+    return Robustness(inp.window, variants, direction, holds, sentence)
+
+
+def robustness_to_dict(result: Robustness) -> dict[str, Any]:
+    def pair(p: tuple[float, float] | None) -> list[float | None] | None:
+        if p is None:
+            return None
+        return [float(x) if np.isfinite(x) else None for x in p]
+
+    return {
+        "window": list(result.window), "direction": result.direction, "holds": result.holds,
+        "sentence": result.sentence,
+        "variants": [{
+            "label": v.label, "kind": v.kind, "changes": list(v.changes), "departures": v.departures,
+            "forced": v.forced, "odds_ratio": v.odds_ratio,
+            "conf_int": {"wald": pair(v.wald), "profile": pair(v.profile), "bootstrap": pair(v.bootstrap)},
+            "bootstrap_note": v.bootstrap_note, "error": v.error,
+        } for v in result.variants],
+    }
+
+
+def robustness_rows(result: Robustness) -> pd.DataFrame:
+    """Forest-plot rows: one per variant, the reference first and marked as the common row."""
+    rows = []
+    for v in result.variants:
+        lo, hi = v.profile if v.profile else (np.nan, np.nan)
+        rows.append({"label": v.label, "odds_ratio": v.odds_ratio if v.odds_ratio is not None else np.nan,
+                     "low": lo, "high": hi, "group": "common" if v.kind == "reference" else "mapping"})
+    return pd.DataFrame(rows)

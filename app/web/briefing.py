@@ -1,0 +1,159 @@
+"""Briefing: pick the findings for the board paper, preview them, download charts, deck and brief."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse, JSONResponse, Response
+
+from app.analysis import AnalysisInput, load_input
+from app.briefs import DEFAULT_DECK, MEDIA_TYPES, brief_file, chart_file, deck_file
+from app.export import ExportError, export_available
+from app.findings import CHART_NAMES, build_finding, latest_bootstrap
+from app.store import Roster, Run, Store, StoreError
+from app.web.deps import BadRequest, NotFound, app_store
+from app.web.figures import FigureSpec, figure_spec
+from app.web.rendering import as_json, render
+
+router = APIRouter()
+
+CHART_LABELS = {"coverage": "Coverage by year", "trend": "Trend in the forced share",
+                "bootstrap": "Bootstrap odds ratios", "sectors": "Sector trends", "robustness": "Other mappings"}
+
+
+@dataclass(frozen=True)
+class PreviewItem:
+    name: str
+    label: str
+    takeaway: str
+    error: str | None = None
+    figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
+
+
+@dataclass(frozen=True)
+class BriefingPage:
+    """The chosen findings with previews, the runs to choose from, and whether static export works."""
+
+    roster: Roster
+    mapping_label: str
+    window: tuple[int, int] | None
+    chosen: list[str]
+    run_id: int | None
+    runs: list[Run]
+    items: list[PreviewItem]
+    export_ok: bool
+    export_message: str
+    error: str | None = None
+    chart_labels: dict[str, str] = field(default_factory=lambda: dict(CHART_LABELS))
+
+
+def _roster(store: Store, roster_id: int) -> Roster:
+    try:
+        return store.get_roster(roster_id)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+
+
+def briefing_data(store: Store, roster_id: int, *, chosen: list[str], run_id: int | None) -> BriefingPage:
+    roster = _roster(store, roster_id)
+    ok, message = export_available()
+    runs = [r for r in store.list_runs(roster.id, "bootstrap") if r.status == "done"]
+    try:
+        inp = load_input(store, roster.id)
+    except StoreError as exc:
+        return BriefingPage(roster, "no mapping", None, chosen, run_id, runs, [], ok, message, str(exc))
+    if run_id is None:
+        latest = latest_bootstrap(store, inp)
+        run_id = latest.id if latest else None
+    items = []
+    for name in chosen:
+        try:
+            finding = build_finding(store, inp, name, run_id=run_id if name == "bootstrap" else None)
+        except (StoreError, ValueError) as exc:
+            items.append(PreviewItem(name, CHART_LABELS[name], "", error=str(exc)))
+            continue
+        items.append(PreviewItem(name, CHART_LABELS[name], finding.takeaway, figure=figure_spec(finding.figure)))
+    return BriefingPage(roster, inp.mapping_label, inp.window, chosen, run_id, runs, items, ok, message)
+
+
+def _chosen(request: Request) -> list[str]:
+    picked = [c for c in request.query_params.getlist("chart") if c]
+    bad = [c for c in picked if c not in CHART_NAMES]
+    if bad:
+        raise BadRequest(f"chart must be one of {', '.join(CHART_NAMES)}; got {', '.join(bad)}.")
+    return picked or list(DEFAULT_DECK)
+
+
+def _run_arg(request: Request) -> int | None:
+    raw = request.query_params.get("run")
+    if not raw:
+        return None
+    if not raw.isdigit():
+        raise BadRequest(f"run must be a run number; got {raw!r}.")
+    return int(raw)
+
+
+@router.get("/rosters/{roster_id}/briefing", response_class=HTMLResponse, name="briefing_page")
+def briefing_page(request: Request, roster_id: int) -> HTMLResponse:
+    page = briefing_data(app_store(request), roster_id, chosen=_chosen(request), run_id=_run_arg(request))
+    return render(request, "briefing.html", page, roster=page.roster, active="briefing_page")
+
+
+@router.get("/api/rosters/{roster_id}/briefing", name="briefing_api")
+def briefing_api(request: Request, roster_id: int) -> JSONResponse:
+    return as_json(briefing_data(app_store(request), roster_id, chosen=_chosen(request), run_id=_run_arg(request)))
+
+
+def _input(store: Store, roster_id: int, request: Request) -> AnalysisInput:
+    roster = _roster(store, roster_id)
+    lo, hi = request.query_params.get("from"), request.query_params.get("to")
+    window = (int(lo), int(hi)) if lo and hi and lo.isdigit() and hi.isdigit() else None
+    try:
+        return load_input(store, roster.id, window=window)
+    except StoreError as exc:
+        raise BadRequest(str(exc)) from exc
+
+
+def _download(data: bytes, fmt: str, filename: str) -> Response:
+    return Response(data, media_type=MEDIA_TYPES[fmt],
+                    headers={"content-disposition": f'attachment; filename="{filename}"'})
+
+
+def _export(make: Any) -> bytes:
+    try:
+        data: bytes = make()
+    except ExportError as exc:
+        raise BadRequest(f"Export is not available: {exc}") from exc
+    except (StoreError, ValueError) as exc:
+        raise BadRequest(str(exc)) from exc
+    return data
+
+
+@router.get("/rosters/{roster_id}/charts/{chart}.{fmt}", name="chart_export")
+def chart_export(request: Request, roster_id: int, chart: str, fmt: str) -> Response:
+    if chart not in CHART_NAMES or fmt not in ("png", "svg", "pdf"):
+        raise NotFound(f"No chart {chart}.{fmt}; charts: {', '.join(CHART_NAMES)}; formats: png, svg, pdf.")
+    store = app_store(request)
+    inp = _input(store, roster_id, request)
+    data = _export(lambda: chart_file(store, inp, chart, fmt, run_id=_run_arg(request),
+                                      method=request.query_params.get("method", "bca"),
+                                      model=request.query_params.get("model", "linear")))
+    return _download(data, fmt, f"helmshift-{chart}-{roster_id}.{fmt}")
+
+
+@router.get("/rosters/{roster_id}/briefing/deck.pptx", name="deck_export")
+def deck_export(request: Request, roster_id: int) -> Response:
+    store = app_store(request)
+    inp = _input(store, roster_id, request)
+    data = _export(lambda: deck_file(store, inp, _chosen(request), run_id=_run_arg(request)))
+    return _download(data, "pptx", f"helmshift-deck-{roster_id}.pptx")
+
+
+@router.get("/rosters/{roster_id}/briefing/brief.pdf", name="brief_export")
+def brief_export(request: Request, roster_id: int) -> Response:
+    store = app_store(request)
+    inp = _input(store, roster_id, request)
+    data = _export(lambda: brief_file(store, inp, run_id=_run_arg(request)))
+    return _download(data, "brief", f"helmshift-brief-{roster_id}.pdf")

@@ -1,0 +1,104 @@
+"""Coverage: departures per year by category, the suggested window, and the window control."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import pandas as pd
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
+
+from app.analysis import AnalysisInput, load_input
+from app.findings import coverage_finding
+from app.stats.coverage import WindowSuggestion, YearFlag
+from app.store import Roster, Store, StoreError
+from app.web.deps import BadRequest, NotFound, app_store
+from app.web.figures import FigureSpec, figure_spec
+from app.web.rendering import as_json, render
+
+router = APIRouter()
+
+
+@dataclass(frozen=True)
+class CoveragePage:
+    """The yearly table, the rule-based suggestion, flagged years and the window in use."""
+
+    roster: Roster
+    mapping_label: str
+    table: pd.DataFrame
+    suggestion: WindowSuggestion
+    flags: list[YearFlag]
+    window: tuple[int, int]
+    window_source: str
+    threshold: float
+    warnings: list[str]
+    figure: FigureSpec = field(metadata={"json_skip": True})
+
+
+def coverage_data(store: Store, roster_id: int, *, threshold: float = 0.5) -> CoveragePage:
+    try:
+        inp = load_input(store, roster_id, require_mapping=False, threshold=threshold)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+    return _page(inp, threshold)
+
+
+def _page(inp: AnalysisInput, threshold: float) -> CoveragePage:
+    fig = coverage_finding(inp).figure
+    return CoveragePage(
+        roster=inp.roster, mapping_label=inp.mapping_label, table=inp.coverage, suggestion=inp.suggestion,
+        flags=inp.flags, window=inp.window, window_source=inp.window_source, threshold=threshold,
+        warnings=inp.warnings(), figure=figure_spec(fig),
+    )
+
+
+def _threshold(request: Request) -> float:
+    raw = request.query_params.get("threshold", "0.5")
+    try:
+        value = float(raw)
+    except ValueError:
+        raise BadRequest(f"threshold must be a number between 0.05 and 1; got {raw!r}.") from None
+    if not 0.05 <= value <= 1:
+        raise BadRequest(f"threshold must be between 0.05 and 1; got {value}.")
+    return value
+
+
+@router.get("/rosters/{roster_id}/coverage", response_class=HTMLResponse, name="coverage_page")
+def coverage_page(request: Request, roster_id: int) -> HTMLResponse:
+    page = coverage_data(app_store(request), roster_id, threshold=_threshold(request))
+    return render(request, "coverage.html", page, roster=page.roster, active="coverage",
+                  context_line=f"mapping {page.mapping_label} · window {page.window[0]}–{page.window[1]}")
+
+
+@router.get("/api/rosters/{roster_id}/coverage", name="coverage_api")
+def coverage_api(request: Request, roster_id: int) -> JSONResponse:
+    return as_json(coverage_data(app_store(request), roster_id, threshold=_threshold(request)))
+
+
+def _year(form: Any, key: str) -> int:
+    raw = str(form.get(key) or "").strip()
+    if not raw.isdigit():
+        raise BadRequest(f"The window's {key.replace('window_', '')} year must be a year such as 1998; got {raw!r}.")
+    return int(raw)
+
+
+@router.post("/rosters/{roster_id}/window", name="window_save")
+async def window_save(request: Request, roster_id: int) -> RedirectResponse:
+    """Remember the analysis window for this roster; trend and resampling use it by default."""
+    store = app_store(request)
+    page = coverage_data(store, roster_id)
+    form = await request.form()
+    if form.get("reset"):
+        store.update_settings(page.roster.id, clear_window=True)
+    else:
+        lo, hi = _year(form, "window_from"), _year(form, "window_to")
+        years = page.table["year"]
+        if lo > hi:
+            raise BadRequest(f"The window starts ({lo}) after it ends ({hi}).")
+        if lo < int(years.min()) or hi > int(years.max()):
+            raise BadRequest(f"The window must lie within the roster's years {int(years.min())}–{int(years.max())}.")
+        if hi - lo < 2:
+            raise BadRequest("A trend needs a window of at least three years.")
+        store.update_settings(page.roster.id, window=(lo, hi))
+    return RedirectResponse(request.url_for("coverage_page", roster_id=page.roster.id), status_code=303)

@@ -1,0 +1,28 @@
+"""Hand-off of server-built plotly figures to the page (and the source line each chart carries)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from app.analysis import AnalysisInput, provenance_for
+from app.charts import PAGE_CONFIG, figure_json
+
+
+@dataclass(frozen=True)
+class FigureSpec:
+    """A figure as JSON text plus the plotly.js config, ready for ``_partials/figure.html``."""
+
+    json: str
+
+    def __str__(self) -> str:
+        return self.json
+
+
+def figure_spec(fig: object) -> FigureSpec:
+    import json
+
+    return FigureSpec('{"figure": ' + figure_json(fig) + ', "config": ' + json.dumps(PAGE_CONFIG) + "}")
+
+
+def source_line(inp: AnalysisInput, **extra: object) -> str:
+    return provenance_for(inp, **extra).short()

@@ -1,0 +1,206 @@
+"""Reason codes: every code of a roster with its category, editable in place and saved as a new version."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.datastructures import UploadFile
+
+from app.analysis import export_mapping_csv, import_mapping_file
+from app.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
+from app.store import MappingVersion, Roster, Store, StoreError
+from app.types import CATEGORIES
+from app.web.deps import BadRequest, NotFound, app_store
+from app.web.rendering import as_json, render
+
+router = APIRouter()
+
+
+@dataclass(frozen=True)
+class CodeRow:
+    """One reason code as the analyst sees it."""
+
+    code: str
+    count: int
+    count_in_window: int
+    first_year: int
+    last_year: int
+    category: str | None
+    label: str
+    suggested: str | None
+    suggestion_note: str
+    ambiguous: bool
+
+
+@dataclass(frozen=True)
+class ReasonsPage:
+    """Codes with counts and categories, the mapping's version history and an optional comparison."""
+
+    roster: Roster
+    mapping: MappingVersion | None
+    mapping_names: list[tuple[str, int]]
+    history: list[tuple[int, str, str, str]]
+    codes: list[CodeRow]
+    window: tuple[int, int] | None
+    unmapped_codes: int
+    unmapped_departures: int
+    using_suggestion: bool
+    compare: tuple[int, int] | None
+    diff: MappingDiff | None
+    categories: tuple[str, ...] = CATEGORIES
+    message: str | None = None
+
+
+def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | None = None,
+                 message: str | None = None) -> ReasonsPage:
+    try:
+        roster = store.get_roster(roster_id)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+    settings = store.settings(roster.id)
+    mapping = store.get_mapping(settings.mapping_name) if settings.mapping_name else None
+    counts = store.reason_counts(roster.id)
+    deps = store.departures(roster.id)
+    in_window = deps
+    if settings.window:
+        in_window = deps[(deps["year"] >= settings.window[0]) & (deps["year"] <= settings.window[1])]
+    window_counts = in_window["reason"].value_counts()
+    suggestions = suggest_categories(counts["code"].astype(str).tolist())
+    rows = []
+    for rec in counts.to_dict("records"):
+        code = str(rec["code"])
+        sug = suggestions[code]
+        category = mapping.categories.get(code) if mapping else sug.category
+        rows.append(CodeRow(
+            code=code, count=int(rec["count"]), count_in_window=int(window_counts.get(code, 0)),
+            first_year=int(rec["first_year"]), last_year=int(rec["last_year"]),
+            category=category, label=(mapping.labels.get(code, "") if mapping else ""),
+            suggested=sug.category, suggestion_note=sug.why, ambiguous=sug.ambiguous,
+        ))
+    unmapped = [r for r in rows if r.category is None]
+    diff = None
+    if compare and mapping:
+        old = store.get_mapping(mapping.name, compare[0])
+        new = store.get_mapping(mapping.name, compare[1])
+        diff = diff_mappings(old.categories, new.categories, old.labels, new.labels)
+    return ReasonsPage(
+        roster=roster, mapping=mapping, mapping_names=store.list_mappings(),
+        history=store.mapping_history(mapping.name) if mapping else [], codes=rows,
+        window=settings.window, unmapped_codes=len(unmapped),
+        unmapped_departures=sum(r.count for r in unmapped), using_suggestion=mapping is None,
+        compare=compare if diff else None, diff=diff, message=message,
+    )
+
+
+def _compare_arg(request: Request) -> tuple[int, int] | None:
+    a, b = request.query_params.get("a"), request.query_params.get("b")
+    if a and b and a.isdigit() and b.isdigit():
+        return int(a), int(b)
+    return None
+
+
+@router.get("/rosters/{roster_id}/reasons", response_class=HTMLResponse, name="reasons_page")
+def reasons_page(request: Request, roster_id: int) -> HTMLResponse:
+    page = reasons_data(app_store(request), roster_id, compare=_compare_arg(request),
+                        message=request.query_params.get("saved") and "Saved as a new version.")
+    return render(request, "reasons.html", page, roster=page.roster, active="reasons")
+
+
+@router.get("/api/rosters/{roster_id}/reasons", name="reasons_api")
+def reasons_api(request: Request, roster_id: int) -> JSONResponse:
+    return as_json(reasons_data(app_store(request), roster_id, compare=_compare_arg(request)))
+
+
+def _form_entries(form: Any) -> tuple[dict[str, str], dict[str, str]]:
+    categories: dict[str, str] = {}
+    labels: dict[str, str] = {}
+    for key in form:
+        if not key.startswith("code-"):
+            continue
+        idx = key.removeprefix("code-")
+        code = str(form.get(key))
+        category = str(form.get(f"cat-{idx}") or "")
+        if category and category not in CATEGORIES:
+            raise BadRequest(f"Category for {code!r} must be one of {', '.join(CATEGORIES)}; got {category!r}.")
+        if category:
+            categories[code] = category
+        label = str(form.get(f"label-{idx}") or "").strip()
+        if label:
+            labels[code] = label
+    return categories, labels
+
+
+@router.post("/rosters/{roster_id}/reasons", name="reasons_save")
+async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
+    """Save the categories in the form as the next version; codes of other rosters are carried over."""
+    store = app_store(request)
+    page = reasons_data(store, roster_id)
+    form = await request.form()
+    categories, labels = _form_entries(form)
+    name = str(form.get("mapping_name") or "").strip() or (
+        page.mapping.name if page.mapping else f"{page.roster.name} mapping")
+    if page.mapping and name == page.mapping.name:
+        roster_codes = {r.code for r in page.codes}
+        for code, cat in page.mapping.categories.items():
+            if code not in roster_codes:
+                categories.setdefault(code, cat)
+                if code in page.mapping.labels:
+                    labels.setdefault(code, page.mapping.labels[code])
+    note = str(form.get("note") or "").strip() or "edited on the Reason codes page"
+    author = str(form.get("author") or "").strip() or "analyst"
+    store.save_mapping_version(name, categories, labels, author=author[:80], note=note[:500])
+    store.update_settings(page.roster.id, mapping_name=name)
+    url = request.url_for("reasons_page", roster_id=page.roster.id).include_query_params(saved=1)
+    return RedirectResponse(url, status_code=303)
+
+
+@router.post("/rosters/{roster_id}/mapping/select", name="mapping_select")
+async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
+    store = app_store(request)
+    page = reasons_data(store, roster_id)
+    form = await request.form()
+    name = str(form.get("mapping_name") or "")
+    try:
+        store.get_mapping(name)
+    except StoreError as exc:
+        raise BadRequest(str(exc)) from exc
+    store.update_settings(page.roster.id, mapping_name=name)
+    return RedirectResponse(request.url_for("reasons_page", roster_id=page.roster.id), status_code=303)
+
+
+@router.post("/rosters/{roster_id}/mapping/import", name="mapping_import", response_model=None)
+async def mapping_import(request: Request, roster_id: int) -> Response:
+    store = app_store(request)
+    page = reasons_data(store, roster_id)
+    form = await request.form()
+    upload = form.get("file")
+    name = str(form.get("mapping_name") or "").strip()
+    if not isinstance(upload, UploadFile) or not name:
+        raise BadRequest("Choose a mapping CSV (code,category[,label]) and give the mapping a name.")
+    try:
+        outcome = import_mapping_file(store, await upload.read(), roster=page.roster.id, name=name)
+    except (MappingFileError, StoreError) as exc:
+        refreshed = reasons_data(store, roster_id, message=str(exc))
+        return render(request, "reasons.html", refreshed, roster=refreshed.roster, active="reasons", status=400)
+    store.update_settings(page.roster.id, mapping_name=name)
+    note = f"Imported {outcome['codes']} codes as {name} v{outcome['version']}."
+    if outcome["not_in_roster"]:
+        note += f" {len(outcome['not_in_roster'])} code(s) do not occur in this roster and were kept for others."
+    refreshed = reasons_data(store, roster_id, message=note)
+    return render(request, "reasons.html", refreshed, roster=refreshed.roster, active="reasons")
+
+
+@router.get("/mappings/{name}.csv", name="mapping_csv")
+def mapping_csv(request: Request, name: str) -> Response:
+    version = request.query_params.get("version")
+    try:
+        text = export_mapping_csv(app_store(request), name=name,
+                                  version=int(version) if version and version.isdigit() else None)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+    safe_name = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)[:60] or "mapping"
+    return Response(text, media_type="text/csv; charset=utf-8",
+                    headers={"content-disposition": f'attachment; filename="{safe_name}.csv"'})

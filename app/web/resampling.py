@@ -1,0 +1,220 @@
+"""Resampling: start bootstrap runs, watch their progress, read their intervals and histograms."""
+
+from __future__ import annotations
+
+import math
+import secrets
+from dataclasses import dataclass, field
+from typing import Any
+
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+
+from app.analysis import input_for_run, load_input, run_trend
+from app.findings import bootstrap_finding
+from app.jobs import MAX_RESAMPLES, bootstrap_params, create_bootstrap_run, extend_run
+from app.stats.trend import TrendError
+from app.store import Roster, Run, Store, StoreError
+from app.types import UNITS
+from app.web.deps import BadRequest, NotFound, app_jobs, app_store
+from app.web.figures import FigureSpec, figure_spec
+from app.web.rendering import as_json, render
+
+router = APIRouter()
+
+METHODS = ("percentile", "basic", "bca")
+METHOD_LABELS = {"percentile": "percentile", "basic": "basic", "bca": "BCa"}
+
+
+@dataclass(frozen=True)
+class ResamplingPage:
+    """The start form's defaults and every bootstrap run of the roster."""
+
+    roster: Roster
+    mapping_label: str
+    window: tuple[int, int] | None
+    runs: list[Run]
+    default_seed: int
+    error: str | None = None
+    max_resamples: int = MAX_RESAMPLES
+    units: tuple[str, ...] = UNITS
+
+
+@dataclass(frozen=True)
+class RunPage:
+    """One bootstrap run: its state, and when done its intervals, histogram and comparison."""
+
+    roster: Roster
+    run: Run
+    method: str
+    rows: list[dict[str, Any]] = field(default_factory=list)
+    comparison: str | None = None
+    figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
+    percent: int = 0
+
+
+def resampling_data(store: Store, roster_id: int, error: str | None = None) -> ResamplingPage:
+    roster = _roster(store, roster_id)
+    try:
+        inp = load_input(store, roster.id)
+        mapping_label, window = inp.mapping_label, inp.window
+    except StoreError as exc:
+        mapping_label, window, error = "no mapping", None, error or str(exc)
+    return ResamplingPage(roster, mapping_label, window, store.list_runs(roster.id, "bootstrap"),
+                          default_seed=secrets.randbelow(900_000) + 100_000, error=error)
+
+
+def _roster(store: Store, roster_id: int) -> Roster:
+    try:
+        return store.get_roster(roster_id)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+
+
+def _run(store: Store, run_id: int) -> Run:
+    try:
+        run = store.get_run(run_id)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+    if run.kind != "bootstrap":
+        raise NotFound(f"Run {run_id} is a {run.kind} run, not a bootstrap run.")
+    return run
+
+
+def _width(iv: Any) -> float | None:
+    if not iv or iv[0] is None or iv[1] is None or iv[0] <= 0:
+        return None
+    return math.log(iv[1]) - math.log(iv[0])
+
+
+def compare_units(store: Store, run: Run, method: str) -> str | None:
+    """Say whether firm resampling widened the interval against departure resampling, same settings."""
+    if run.result is None:
+        return None
+    other_unit = "departure" if run.params["unit"] == "firm" else "firm"
+    for other in store.list_runs(run.roster_id, "bootstrap"):
+        if (other.status == "done" and other.params.get("unit") == other_unit and other.result
+                and other.fingerprint == run.fingerprint and other.window == run.window
+                and other.mapping_version == run.mapping_version and other.mapping_name == run.mapping_name
+                and other.params.get("model") == run.params.get("model")):
+            firm, dep = (run, other) if run.params["unit"] == "firm" else (other, run)
+            wf = _width(firm.result["conf_int"][method]) if firm.result else None
+            wd = _width(dep.result["conf_int"][method]) if dep.result else None
+            if not wf or not wd:
+                return None
+            change = wf / wd - 1
+            verb = "widened" if change > 0.02 else "narrowed" if change < -0.02 else "barely changed"
+            amount = f" by {abs(change) * 100:.0f}%" if verb != "barely changed" else ""
+            note = (" Departures of one firm are not independent, so the firm interval is the one to quote."
+                    if change > 0.02 else "")
+            return (f"Resampling whole firms {verb} the 95% {METHOD_LABELS[method]} interval{amount} compared with "
+                    f"resampling departures (run {dep.id if firm is run else firm.id}, same data, mapping and "
+                    f"window; widths on the log scale).{note}")
+    return (f"No finished {other_unit}-resampling run with the same data, mapping and window yet; start one to see "
+            "whether firm clustering widens the interval.")
+
+
+def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
+    if method not in METHODS:
+        raise BadRequest(f"method must be one of {', '.join(METHODS)}; got {method!r}.")
+    run = _run(store, run_id)
+    roster = _roster(store, run.roster_id)
+    percent = int(100 * run.progress_done / run.progress_total) if run.progress_total else 0
+    if run.status != "done" or run.result is None:
+        return RunPage(roster, run, method, percent=percent)
+    result = run.result
+    rows = [{"method": METHOD_LABELS[m], "interval": result["conf_int"][m], "mc_error": result["mc_error"][m],
+             "source": f"bootstrap, B = {result['resamples']:,}"} for m in METHODS]
+    try:
+        inp = input_for_run(store, run)
+        fit = run_trend(store, inp, model=run.params.get("model", "linear")).fit
+        for name in ("wald", "profile"):
+            rows.append({"method": "Wald" if name == "wald" else "profile likelihood",
+                         "interval": fit.conf_int.get(name), "mc_error": None, "source": "trend fit (model-based)"})
+    except (StoreError, TrendError) as exc:
+        rows.append({"method": "model-based", "interval": None, "mc_error": None, "source": str(exc)})
+    fig = bootstrap_finding(store, run.id, method).figure
+    return RunPage(roster, run, method, rows, compare_units(store, run, method), figure_spec(fig), 100)
+
+
+@router.get("/rosters/{roster_id}/resampling", response_class=HTMLResponse, name="resampling_page")
+def resampling_page(request: Request, roster_id: int) -> HTMLResponse:
+    page = resampling_data(app_store(request), roster_id)
+    return render(request, "resampling.html", page, roster=page.roster, active="resampling_page")
+
+
+@router.get("/api/rosters/{roster_id}/runs", name="runs_api")
+def runs_api(request: Request, roster_id: int) -> JSONResponse:
+    return as_json(resampling_data(app_store(request), roster_id))
+
+
+def _int_field(form: Any, key: str, default: int) -> int:
+    raw = str(form.get(key) or default).strip().replace(",", "").replace("_", "")
+    if not raw.isdigit():
+        raise BadRequest(f"{key} must be a whole number; got {raw!r}.")
+    return int(raw)
+
+
+@router.post("/rosters/{roster_id}/resampling", name="resampling_start", response_model=None)
+async def resampling_start(request: Request, roster_id: int) -> Response:
+    """Store the run, hand it to a worker, and go to its page (which shows the progress)."""
+    store = app_store(request)
+    roster = _roster(store, roster_id)
+    form = await request.form()
+    try:
+        params = bootstrap_params(unit=str(form.get("unit") or "firm"), resamples=_int_field(form, "resamples", 2000),
+                                  seed=_int_field(form, "seed", 1), model=str(form.get("model") or "linear"))
+        inp = load_input(store, roster.id)
+        run_id = create_bootstrap_run(store, inp, params)
+    except (ValueError, BadRequest) as exc:
+        page = resampling_data(store, roster.id, error=str(exc))
+        return render(request, "resampling.html", page, roster=page.roster, active="resampling_page", status=400)
+    app_jobs(request).submit(run_id)
+    return RedirectResponse(request.url_for("run_page", run_id=run_id), status_code=303)
+
+
+@router.get("/runs/{run_id}", response_class=HTMLResponse, name="run_page")
+def run_page(request: Request, run_id: int) -> HTMLResponse:
+    page = run_data(app_store(request), run_id, request.query_params.get("method", "bca"))
+    return render(request, "run.html", page, roster=page.roster, active="resampling_page")
+
+
+@router.get("/api/runs/{run_id}", name="run_api")
+def run_api(request: Request, run_id: int) -> JSONResponse:
+    return as_json(run_data(app_store(request), run_id, request.query_params.get("method", "bca")))
+
+
+@router.get("/runs/{run_id}/progress", response_class=HTMLResponse, name="run_progress")
+def run_progress(request: Request, run_id: int) -> HTMLResponse:
+    """The progress partial, polled by the page; once the run has ended it asks the page to reload."""
+    page = run_data(app_store(request), run_id)
+    response = render(request, "_partials/run_progress.html", page)
+    if page.run.status not in ("queued", "running"):
+        response.headers["HX-Refresh"] = "true"
+    return response
+
+
+@router.post("/runs/{run_id}/cancel", name="run_cancel")
+def run_cancel(request: Request, run_id: int) -> RedirectResponse:
+    store = app_store(request)
+    run = _run(store, run_id)
+    if run.status in ("queued", "running"):
+        store.request_cancel(run.id)
+    return RedirectResponse(request.url_for("run_page", run_id=run.id), status_code=303)
+
+
+@router.post("/runs/{run_id}/extend", name="run_extend")
+async def run_extend(request: Request, run_id: int) -> RedirectResponse:
+    """Add resamples to a finished, cancelled or interrupted run; stored replicates are kept."""
+    store = app_store(request)
+    run = _run(store, run_id)
+    form = await request.form()
+    if run.status in ("queued", "running"):
+        raise BadRequest("This run is still going; wait for it to end before extending it.")
+    extra = _int_field(form, "extra", 0)
+    try:
+        extend_run(store, run.id, extra)
+    except ValueError as exc:
+        raise BadRequest(str(exc)) from exc
+    app_jobs(request).submit(run.id)
+    return RedirectResponse(request.url_for("run_page", run_id=run.id), status_code=303)

@@ -1,0 +1,117 @@
+"""Sectors (does the trend hold within each sector?) and Robustness (under other readings of "forced")."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse, JSONResponse
+
+from app.analysis import load_input, run_sectors
+from app.charts import forest_figure
+from app.findings import sectors_finding_from
+from app.robustness import Robustness, check_robustness, robustness_rows
+from app.stats.sectors import SectorTrends
+from app.store import Roster, Store, StoreError
+from app.web.deps import BadRequest, NotFound, app_store
+from app.web.figures import FigureSpec, figure_spec, source_line
+from app.web.rendering import as_json, render
+
+router = APIRouter()
+
+
+@dataclass(frozen=True)
+class SectorsPage:
+    """Per-sector trends, the sector-adjusted common trend and the test of equal trends."""
+
+    roster: Roster
+    mapping_label: str
+    window: tuple[int, int] | None
+    result: SectorTrends | None
+    verdict: str | None
+    error: str | None
+    figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
+
+
+@dataclass(frozen=True)
+class RobustnessPage:
+    """The trend under each variant of the mapping."""
+
+    roster: Roster
+    mapping_label: str
+    result: Robustness | None
+    mapping_names: list[tuple[str, int]]
+    chosen: list[str]
+    vary: list[str]
+    codes: list[str]
+    error: str | None
+    figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
+
+
+def _roster(store: Store, roster_id: int) -> Roster:
+    try:
+        return store.get_roster(roster_id)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+
+
+def sectors_data(store: Store, roster_id: int, *, min_departures: int = 20) -> SectorsPage:
+    roster = _roster(store, roster_id)
+    try:
+        inp = load_input(store, roster.id)
+        result, _ = run_sectors(store, inp, min_departures=min_departures)
+    except (StoreError, ValueError) as exc:
+        return SectorsPage(roster, "no mapping", None, None, None, str(exc))
+    finding = sectors_finding_from(inp, result)
+    return SectorsPage(roster, inp.mapping_label, inp.window, result, finding.takeaway, None,
+                       figure_spec(finding.figure))
+
+
+def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: list[str]) -> RobustnessPage:
+    roster = _roster(store, roster_id)
+    names = store.list_mappings()
+    codes = sorted(store.reason_counts(roster.id)["code"].astype(str))
+    try:
+        inp = load_input(store, roster.id)
+        if not extra:
+            extra = [f"{n}:{v}" for n, v in names if not (inp.mapping and n == inp.mapping.name)]
+        result = check_robustness(store, inp, extra_mappings=extra, vary=vary)
+    except (StoreError, ValueError) as exc:
+        return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc))
+    fig = forest_figure(robustness_rows(result), title=result.sentence.split(";")[0],
+                        source=source_line(inp, interval_method="profile likelihood, 95%"))
+    return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, figure_spec(fig))
+
+
+def _min_departures(request: Request) -> int:
+    raw = request.query_params.get("min_departures", "20")
+    if not raw.isdigit() or not 1 <= int(raw) <= 10_000:
+        raise BadRequest(f"min_departures must be a whole number from 1 to 10000; got {raw!r}.")
+    return int(raw)
+
+
+@router.get("/rosters/{roster_id}/sectors", response_class=HTMLResponse, name="sectors_page")
+def sectors_page(request: Request, roster_id: int) -> HTMLResponse:
+    page = sectors_data(app_store(request), roster_id, min_departures=_min_departures(request))
+    return render(request, "sectors.html", page, roster=page.roster, active="sectors_page")
+
+
+@router.get("/api/rosters/{roster_id}/sectors", name="sectors_api")
+def sectors_api(request: Request, roster_id: int) -> JSONResponse:
+    return as_json(sectors_data(app_store(request), roster_id, min_departures=_min_departures(request)))
+
+
+def _robustness_args(request: Request) -> dict[str, list[str]]:
+    return {"extra": [m for m in request.query_params.getlist("mapping") if m],
+            "vary": [c for c in request.query_params.getlist("vary") if c]}
+
+
+@router.get("/rosters/{roster_id}/robustness", response_class=HTMLResponse, name="robustness_page")
+def robustness_page(request: Request, roster_id: int) -> HTMLResponse:
+    page = robustness_data(app_store(request), roster_id, **_robustness_args(request))
+    return render(request, "robustness.html", page, roster=page.roster, active="robustness_page")
+
+
+@router.get("/api/rosters/{roster_id}/robustness", name="robustness_api")
+def robustness_api(request: Request, roster_id: int) -> JSONResponse:
+    return as_json(robustness_data(app_store(request), roster_id, **_robustness_args(request)))

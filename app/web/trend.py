@@ -1,0 +1,113 @@
+"""Trend: observed forced share per year, the fitted logistic trend, odds ratios with two intervals."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse, JSONResponse
+
+from app.analysis import load_input, run_trend
+from app.findings import trend_finding_from_fit
+from app.stats.trend import TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
+from app.store import Roster, Run, Store, StoreError
+from app.web.deps import BadRequest, NotFound, app_store
+from app.web.figures import FigureSpec, figure_spec
+from app.web.rendering import as_json, render
+
+router = APIRouter()
+
+
+@dataclass(frozen=True)
+class TrendPage:
+    """The fit (or the reason there is none), its sentence, chart and the list of stored fits."""
+
+    roster: Roster
+    mapping_label: str
+    window: tuple[int, int]
+    window_source: str
+    model: str
+    spline_df: int
+    fit: dict[str, Any] | None
+    sentence: str | None
+    error: str | None
+    warnings: list[str]
+    run_id: int | None
+    runs: list[Run]
+    figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
+    table: list[dict[str, Any]] = field(default_factory=list)
+
+
+def _years(request: Request) -> tuple[int, int] | None:
+    lo, hi = request.query_params.get("from"), request.query_params.get("to")
+    if not lo and not hi:
+        return None
+    if not (lo and hi and lo.isdigit() and hi.isdigit()) or int(lo) > int(hi):
+        raise BadRequest("The window needs a first and a last fiscal year, first before last (e.g. 1998 and 2022).")
+    return int(lo), int(hi)
+
+
+def _odds_table(fit: TrendFit) -> list[dict[str, Any]]:
+    rows = [{"what": "per year", "odds_ratio": fit.odds_ratio, "wald": fit.conf_int.get("wald"),
+             "profile": fit.conf_int.get("profile")},
+            {"what": "per decade", "odds_ratio": fit.decade_odds_ratio, "wald": fit.decade_conf_int.get("wald"),
+             "profile": fit.decade_conf_int.get("profile")}]
+    if fit.quasi is not None:
+        rows.append({"what": "per year, quasi-binomial", "odds_ratio": fit.odds_ratio,
+                     "wald": fit.quasi.conf_int.get("wald"), "profile": fit.quasi.conf_int.get("profile")})
+    return rows
+
+
+def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df: int = 3,
+               window: tuple[int, int] | None = None) -> TrendPage:
+    if model not in TREND_KINDS:
+        raise BadRequest(f"model must be one of {', '.join(TREND_KINDS)}; got {model!r}.")
+    if spline_df not in (2, 3, 4):
+        raise BadRequest(f"spline df must be 2, 3 or 4; got {spline_df}.")
+    try:
+        roster = store.get_roster(roster_id)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+    try:
+        inp = load_input(store, roster.id, window=window)
+    except StoreError as exc:
+        return _empty(store, roster, model, spline_df, str(exc))
+    runs = [r for r in store.list_runs(roster.id, "fit") if r.params.get("model") != "by_sector"][:10]
+    try:
+        outcome = run_trend(store, inp, model=model, spline_df=spline_df)
+    except TrendError as exc:
+        return TrendPage(roster, inp.mapping_label, inp.window, inp.window_source, model, spline_df, None, None,
+                         str(exc), inp.warnings(), None, runs)
+    fit = outcome.fit
+    fig = trend_finding_from_fit(inp, fit, model).figure
+    return TrendPage(
+        roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
+        model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
+        warnings=inp.warnings(), run_id=outcome.run_id, runs=store.list_runs(roster.id, "fit")[:10],
+        figure=figure_spec(fig), table=_odds_table(fit),
+    )
+
+
+def _empty(store: Store, roster: Roster, model: str, spline_df: int, error: str) -> TrendPage:
+    return TrendPage(roster, "no mapping", (0, 0), "none", model, spline_df, None, None, error, [], None,
+                     store.list_runs(roster.id, "fit")[:10])
+
+
+def _request_args(request: Request) -> dict[str, Any]:
+    df = request.query_params.get("spline_df", "3")
+    return {"model": request.query_params.get("model", "linear"),
+            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request)}
+
+
+@router.get("/rosters/{roster_id}/trend", response_class=HTMLResponse, name="trend_page")
+def trend_page(request: Request, roster_id: int) -> HTMLResponse:
+    page = trend_data(app_store(request), roster_id, **_request_args(request))
+    return render(request, "trend.html", page, roster=page.roster, active="trend_page",
+                  context_line=f"mapping {page.mapping_label} · window {page.window[0]}–{page.window[1]}")
+
+
+@router.get("/api/rosters/{roster_id}/trend", name="trend_api")
+def trend_api(request: Request, roster_id: int) -> JSONResponse:
+    page = trend_data(app_store(request), roster_id, **_request_args(request))
+    return as_json(page, status=200 if page.fit else 422)
