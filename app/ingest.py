@@ -16,10 +16,13 @@ from __future__ import annotations
 import hashlib
 import json
 import re
+from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import date
+from json.encoder import encode_basestring
 from typing import Any, Literal, get_args
 
+import numpy as np
 import pandas as pd
 
 from app.readers import (
@@ -294,17 +297,47 @@ def rejected_rows_csv(rows: list[RejectedRow]) -> str:
 
 
 # -- validation ----------------------------------------------------------------------------------
+# Speed: a 100,000-row roster has few distinct values per typed column (years, dates, ages, flags), so
+# each typed column is factorised once and parsed per distinct value; per-row Python work is limited
+# to stripping free text, building the raw JSON, and wording the (rare) rejections.
 class _Problems:
-    """Collects reasons per row index; masks are mostly false, so only hits cost Python time."""
+    """Reasons per row position; masks are mostly false, so only the hits cost Python time."""
 
     def __init__(self) -> None:
         self.by_row: dict[int, list[str]] = {}
 
-    def add(self, mask: pd.Series, message: str | pd.Series) -> None:
-        hits = mask.to_numpy(dtype=bool, na_value=False).nonzero()[0]
-        for pos in hits:
-            text = message if isinstance(message, str) else str(message.iloc[pos])
+    def add(self, mask: np.ndarray, message: str | Callable[[int], str]) -> None:
+        for pos in np.flatnonzero(mask):
+            text = message if isinstance(message, str) else message(int(pos))
             self.by_row.setdefault(int(pos), []).append(text)
+
+
+#: roles parsed per distinct value; the free-text roles are only stripped
+_TYPED_ROLES = ("year", "date", "reason", "age", "tenure", "interim")
+
+
+@dataclass(frozen=True)
+class _Column:
+    """One column as (codes, distinct values stripped): value of row i is ``uniq[codes[i]]``."""
+
+    codes: np.ndarray
+    uniq: pd.Series
+
+    @classmethod
+    def of(cls, values: np.ndarray) -> _Column:
+        codes, uniq = pd.factorize(values)
+        return cls(codes, pd.Series([str(u).strip() for u in uniq], dtype=object))
+
+    def take(self, per_value: pd.Series | np.ndarray) -> np.ndarray:
+        return np.asarray(per_value)[self.codes]
+
+    def value(self, pos: int) -> str:
+        return str(self.uniq.iloc[self.codes[pos]])
+
+
+def _worded(template: str, value: Callable[[int], object]) -> Callable[[int], str]:
+    """A rejection message for row ``i``: ``template`` filled with ``value(i)``."""
+    return lambda i: template.format(value(i))
 
 
 def _numbers(s: pd.Series) -> pd.Series:
@@ -314,113 +347,128 @@ def _numbers(s: pd.Series) -> pd.Series:
     return num.where(num.abs() != float("inf"))
 
 
+def _raw_json(headers: list[str], columns: list[tuple[str, ...]]) -> list[str]:
+    """``json.dumps(dict(zip(headers, row)), ensure_ascii=False)`` for every row, column-wise."""
+    template = "{" + ", ".join(json.dumps(h, ensure_ascii=False).replace("%", "%%") + ": %s"
+                               for h in headers) + "}"
+    encoded = [list(map(encode_basestring, col)) for col in columns]
+    return [template % r for r in zip(*encoded, strict=True)]
+
+
 def validate(
     table: RawTable, roles: dict[str, str], *, date_order: DateOrder = "auto",
     limits: ReadLimits = DEFAULT_LIMITS, today: date | None = None,
 ) -> tuple[pd.DataFrame, list[RejectedRow], int, list[str]]:
     """Split ``table`` into accepted records (``DEPARTURE_FIELDS``), rejected rows, a duplicate count
-    and messages."""
+    and messages. Exact duplicate rows are dropped before validation (counted, never rejected)."""
     max_year = (today or date.today()).year + 1
-    frame = pd.DataFrame(table.rows, columns=table.headers, dtype=object).astype(str)
-    lines = pd.Series(table.lines, dtype="int64")
-    dup = frame.duplicated(keep="first")
-    duplicates = int(dup.sum())
-    if duplicates:
-        frame, lines = frame[~dup].reset_index(drop=True), lines[~dup].reset_index(drop=True)
     messages: list[str] = []
+    rows, row_lines = table.rows, table.lines
+    # first occurrence of each distinct row: filling the dict from the end leaves the earliest index
+    first_seen = dict(zip(map(tuple, reversed(rows)), range(len(rows) - 1, -1, -1), strict=True))
+    duplicates = len(rows) - len(first_seen)
     if duplicates:
+        kept = sorted(first_seen.values())
+        rows, row_lines = [rows[i] for i in kept], [row_lines[i] for i in kept]
         messages.append(f"{duplicates:,} exact duplicate row(s) were counted and stored once.")
+    del first_seen
     if table.blank_rows:
         messages.append(f"{table.blank_rows:,} blank row(s) were skipped.")
+    n = len(rows)
+    columns: list[tuple[str, ...]] = list(zip(*rows, strict=True)) if n else [() for _ in table.headers]
+    by_header = dict(zip(table.headers, columns, strict=True))
     p = _Problems()
-    for col in frame.columns:
-        s = frame[col]
-        p.add(s.str.contains("\x00", regex=False), f"NUL byte in column {col!r}")
-        length = s.str.len()
-        p.add(length > limits.max_cell_chars,
-              length.map(lambda n, c=col: f"cell in column {c!r} has {n:,} characters "
-                         f"(limit {limits.max_cell_chars:,})"))
-    stripped = {role: frame[h].str.strip() for role, h in roles.items()}
-    header_norm = [h.strip().lower() for h in table.headers]
-    repeats_header = (frame.apply(lambda c: c.str.strip().str.lower()) == header_norm).all(axis=1)
-    p.add(stripped["firm_id"] == "", f"missing firm id (column {roles['firm_id']!r} is empty)")
-    reason = stripped["reason"]
-    p.add(reason == "", f"missing reason code (column {roles['reason']!r} is empty)")
+    for h, cells in by_header.items():
+        if "\x00" in "".join(cells):
+            p.add(np.array(["\x00" in c for c in cells]), f"NUL byte in column {h!r}")
+        if n and max(map(len, cells)) > limits.max_cell_chars:
+            lengths = np.fromiter(map(len, cells), dtype=np.int64, count=n)
+            p.add(lengths > limits.max_cell_chars, _worded(
+                f"cell in column {h!r} has {{:,}} characters (limit {limits.max_cell_chars:,})", lengths.__getitem__))
+    first = table.headers[0]
+    maybe_header = np.flatnonzero(np.array([c.strip() == first for c in by_header[first]], dtype=bool))
+    repeats_header = [int(i) for i in maybe_header
+                      if all(by_header[h][i].strip() == h for h in table.headers)]
 
-    year = pd.Series(float("nan"), index=frame.index)
+    col = {role: _Column.of(np.array(by_header[h], dtype=object))
+           for role, h in roles.items() if role in _TYPED_ROLES}
+    firm_id = np.array([c.strip() for c in by_header[roles["firm_id"]]], dtype=object)
+    p.add(firm_id == "", f"missing firm id (column {roles['firm_id']!r} is empty)")
+    reason = col["reason"]
+    p.add(reason.take(reason.uniq == ""), f"missing reason code (column {roles['reason']!r} is empty)")
+
+    year = np.full(n, np.nan)
     if "year" in roles:
-        ys = stripped["year"].str.replace(r"^FY\s*", "", case=False, regex=True)
+        c = col["year"]
+        ys = c.uniq.str.replace(r"^FY\s*", "", case=False, regex=True)
         ok = ys.str.fullmatch(r"\d{1,4}(?:\.0+)?")
-        year = pd.to_numeric(ys.where(ok), errors="coerce").astype("float64")
-        bad = (ys != "") & ~ok
-        p.add(bad, "year " + stripped["year"].map(repr) + " is not a whole number")
-        p.add((year < 1900) | (year > max_year),
-              "year " + year.map(lambda v: f"{v:.0f}") + f" is outside 1900..{max_year}")
-    iso = pd.Series(None, index=frame.index, dtype=object)
-    date_year = pd.Series(float("nan"), index=frame.index)
+        year = c.take(pd.to_numeric(ys.where(ok), errors="coerce").astype("float64"))
+        p.add(c.take((ys != "") & ~ok), lambda i: f"year {col['year'].value(i)!r} is not a whole number")
+        p.add((year < 1900) | (year > max_year), lambda i: f"year {year[i]:.0f} is outside 1900..{max_year}")
+    iso = np.full(n, None, dtype=object)
+    date_year = np.full(n, np.nan)
     if "date" in roles:
-        parsed = parse_dates(stripped["date"], date_order, max_year=max_year)
-        iso, date_year = parsed.iso, parsed.year
-        raw_date = stripped["date"].map(repr)
-        p.add(parsed.status == "unparseable",
-              "unparseable date " + raw_date + f"; expected {DATE_FORMATS}")
-        p.add(parsed.status == "impossible",
-              "impossible date " + raw_date + f" (no such day when read as {parsed.order_label})")
-        p.add(parsed.status == "out_of_range", "date " + raw_date + f" is outside 1900..{max_year}")
+        c = col["date"]
+        parsed = parse_dates(c.uniq, date_order, max_year=max_year)
+        iso, date_year, status = c.take(parsed.iso), c.take(parsed.year), c.take(parsed.status)
+        p.add(status == "unparseable",
+              lambda i: f"unparseable date {col['date'].value(i)!r}; expected {DATE_FORMATS}")
+        p.add(status == "impossible", lambda i: (
+            f"impossible date {col['date'].value(i)!r} (no such day when read as {parsed.order_label})"))
+        p.add(status == "out_of_range", lambda i: f"date {col['date'].value(i)!r} is outside 1900..{max_year}")
         if parsed.message:
             messages.append(f"Dates in column {roles['date']!r}: {parsed.message}")
-        both = year.notna() & date_year.notna()
-        p.add(both & ((year - date_year).abs() > 1),
-              "year " + year.map(lambda v: f"{v:.0f}") + " and date " + iso.astype(str)
-              + " disagree by more than one year")
-    no_when = (stripped["year"] == "" if "year" in roles else True) & (
-        stripped["date"] == "" if "date" in roles else True)
-    no_when = pd.Series(no_when, index=frame.index, dtype=bool)
-    serving = reason.map(is_still_in_post)
+        p.add(~np.isnan(year) & ~np.isnan(date_year) & (np.abs(year - date_year) > 1),
+              lambda i: f"year {year[i]:.0f} and date {iso[i]} disagree by more than one year")
+    no_when = np.ones(n, dtype=bool)
+    for role in ("year", "date"):
+        if role in roles:
+            no_when &= col[role].take(col[role].uniq == "")
+    serving = reason.take(reason.uniq.map(is_still_in_post).astype(bool))
     p.add(no_when & serving, "still-in-post record has no year (and no departure date to take it from)")
     p.add(no_when & ~serving, "missing year and date (a fiscal year or a departure date is needed)")
 
-    num: dict[str, pd.Series] = {}
+    num: dict[str, np.ndarray] = {}
     for role in ("age", "tenure"):
-        if role not in roles:
-            num[role] = pd.Series(float("nan"), index=frame.index)
-            continue
-        s = stripped[role]
-        num[role] = v = _numbers(s)
-        p.add((s != "") & v.isna(), f"{role} " + s.map(repr) + " is not a number")
-        p.add(v < 0, f"negative {role} " + s)
+        num[role] = np.full(n, np.nan)
+        if role in roles:
+            c = col[role]
+            values = _numbers(c.uniq)
+            num[role] = v = c.take(values)
+            p.add(c.take((c.uniq != "") & values.isna()), _worded(role + " {!r} is not a number", c.value))
+            p.add(v < 0, _worded(f"negative {role} {{}}", c.value))
     if "age" in roles:
         a = num["age"]
-        p.add((a >= 0) & ((a < 14) | (a > 110)), "age " + stripped["age"] + " is outside 14..110")
-    interim = pd.Series(None, index=frame.index, dtype=object)
+        p.add((a >= 0) & ((a < 14) | (a > 110)), lambda i: f"age {col['age'].value(i)} is outside 14..110")
+    interim = np.full(n, None, dtype=object)
     if "interim" in roles:
-        low = stripped["interim"].str.lower()
-        interim = low.map(_INTERIM_VALUES).astype(object)
-        p.add((low != "") & interim.isna(), "interim flag " + stripped["interim"].map(repr)
-              + " not recognised; use yes/no, true/false, 1/0, y/n or leave it blank")
+        c = col["interim"]
+        flags = c.uniq.str.lower().map(_INTERIM_VALUES)
+        interim = c.take(flags.astype(object).where(flags.notna(), None))
+        p.add(c.take((c.uniq != "") & flags.isna()), lambda i: (
+            f"interim flag {col['interim'].value(i)!r} not recognised; use yes/no, true/false, 1/0, y/n "
+            "or leave it blank"))
+    for pos in repeats_header:
+        p.by_row[pos] = ["repeats the header row (were two files joined together?)"]
 
-    for pos in repeats_header.to_numpy().nonzero()[0]:
-        p.by_row[int(pos)] = ["repeats the header row (were two files joined together?)"]
-    raw = [json.dumps(dict(zip(table.headers, row, strict=True)), ensure_ascii=False)
-           for row in frame.itertuples(index=False, name=None)]
-    rejected = [RejectedRow(line=int(lines.iloc[i]), raw=raw[i], reason="; ".join(msgs))
+    raw = _raw_json(table.headers, columns)
+    lines = np.array(row_lines, dtype=np.int64)
+    rejected = [RejectedRow(line=int(lines[i]), raw=raw[i], reason="; ".join(msgs))
                 for i, msgs in p.by_row.items()]
     rejected = sorted(table.bad_rows + rejected, key=lambda r: r.line)
-    keep = pd.Series(True, index=frame.index)
-    keep.iloc[list(p.by_row)] = False
+    keep = np.ones(n, dtype=bool)
+    keep[list(p.by_row)] = False
 
-    def text(role: str) -> pd.Series:
+    def text(role: str) -> np.ndarray:
         if role not in roles:
-            return pd.Series(None, index=frame.index, dtype=object)
-        s = stripped[role].astype(object)
-        return s.where(s != "", None)
+            return np.full(n, None, dtype=object)
+        return np.array([c.strip() or None for c in by_header[roles[role]]], dtype=object)
 
     records = pd.DataFrame({
-        "line": lines, "firm_id": stripped["firm_id"].astype(object), "firm_name": text("firm_name"),
-        "sector": text("sector"), "year": year.fillna(date_year), "date": iso,
-        "reason": reason.astype(object), "executive": text("executive"), "age": num["age"],
-        "tenure": num["tenure"], "interim": interim, "notes": text("notes"),
-        "raw": pd.Series(raw, index=frame.index, dtype=object),
+        "line": lines, "firm_id": firm_id, "firm_name": text("firm_name"), "sector": text("sector"),
+        "year": np.where(np.isnan(year), date_year, year), "date": iso, "reason": reason.take(reason.uniq),
+        "executive": text("executive"), "age": num["age"], "tenure": num["tenure"], "interim": interim,
+        "notes": text("notes"), "raw": np.array(raw, dtype=object),
     })[keep].reset_index(drop=True)
     records["year"] = records["year"].astype("int64")
     return records, rejected, duplicates, messages

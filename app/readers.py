@@ -170,11 +170,6 @@ def detect_delimiter(text: str) -> str:
     return tied[0]
 
 
-def _clean(cell: str) -> str:
-    # a stray BOM (two files pasted together, or a cell copied from one) is invisible junk
-    return cell.replace("\ufeff", "") if "\ufeff" in cell else cell
-
-
 def read_csv_text(
     text: str, *, delimiter: str | None = None, limits: ReadLimits = DEFAULT_LIMITS,
     max_rows: int | None = None,
@@ -182,6 +177,9 @@ def read_csv_text(
     """Parse decoded CSV text; line numbers are physical lines (a quoted cell may span several)."""
     if not text.strip(" \t\r\n\ufeff\x0b\x0c"):
         raise RosterFileError("The file contains only whitespace: there is no header row and no data.")
+    if "\ufeff" in text:
+        # a stray BOM (two files pasted together, a cell copied from another file) is invisible junk
+        text = text.replace("\ufeff", "")
     delim = delimiter or detect_delimiter(text)
     # the csv module's per-field limit (131,072) is process-wide; raise it so an oversized cell is
     # reported as one rejected row by our own max_cell_chars check instead of aborting the file
@@ -216,7 +214,7 @@ def read_csv_text(
         if table is None:
             if row is None or not any(c.strip() for c in row):
                 continue
-            table = _start_table([_clean(c) for c in row], line, limits)
+            table = _start_table(row, line, limits)
             table.delimiter = delim
             continue
         if row is None:
@@ -270,10 +268,10 @@ def _start_table(header: list[str], line: int, limits: ReadLimits) -> RawTable:
 
 def _add_row(table: RawTable, line: int, row: list[str]) -> None:
     width = len(table.headers)
-    if not any(c.strip() for c in row):
+    if not "".join(row).strip():
         table.blank_rows += 1
         return
-    if len(row) > width and not any(c.strip() for c in row[width:]):
+    if len(row) > width and not "".join(row[width:]).strip():
         row = row[:width]  # padding cells beyond the header carry nothing
     if len(row) != width:
         table.bad_rows.append(RejectedRow(
@@ -281,7 +279,7 @@ def _add_row(table: RawTable, line: int, row: list[str]) -> None:
             reason=f"wrong number of fields: {len(row):,} where the header has {width}",
         ))
         return
-    table.rows.append([_clean(c) for c in row])
+    table.rows.append(row)
     table.lines.append(line)
 
 
@@ -326,7 +324,7 @@ def _cell_text(value: object) -> str:
         return value.date().isoformat() if value.time() == time(0) else value.isoformat(sep=" ")
     if isinstance(value, date | time):
         return value.isoformat()
-    return str(value)
+    return str(value).replace("\ufeff", "")
 
 
 def read_xlsx(

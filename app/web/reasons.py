@@ -9,7 +9,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 from starlette.datastructures import UploadFile
 
-from app.analysis import export_mapping_csv, import_mapping_file
+from app.analysis import export_mapping_csv, import_mapping_file, load_input
 from app.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
 from app.store import MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES
@@ -63,11 +63,8 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
     settings = store.settings(roster.id)
     mapping = store.get_mapping(settings.mapping_name) if settings.mapping_name else None
     counts = store.reason_counts(roster.id)
-    deps = store.departures(roster.id)
-    in_window = deps
-    if settings.window:
-        in_window = deps[(deps["year"] >= settings.window[0]) & (deps["year"] <= settings.window[1])]
-    window_counts = in_window["reason"].value_counts()
+    inp = load_input(store, roster.id, require_mapping=False)
+    window_counts = inp.in_window()["reason"].value_counts()
     suggestions = suggest_categories(counts["code"].astype(str).tolist())
     rows = []
     for rec in counts.to_dict("records"):
@@ -89,7 +86,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
     return ReasonsPage(
         roster=roster, mapping=mapping, mapping_names=store.list_mappings(),
         history=store.mapping_history(mapping.name) if mapping else [], codes=rows,
-        window=settings.window, unmapped_codes=len(unmapped),
+        window=inp.window, unmapped_codes=len(unmapped),
         unmapped_departures=sum(r.count for r in unmapped), using_suggestion=mapping is None,
         compare=compare if diff else None, diff=diff, message=message,
     )

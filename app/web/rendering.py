@@ -47,6 +47,17 @@ def _script_json(value: Any) -> Markup:
     return Markup(text)  # noqa: S704 - every character that could end the element is escaped above
 
 
+def _fmt_when(value: str | None) -> str:
+    """Stored ISO timestamps (UTC) as '2026-12-01 22:19 UTC'."""
+    if not value:
+        return ""
+    try:
+        return datetime.fromisoformat(value).strftime("%Y-%m-%d %H:%M UTC")
+    except ValueError:
+        return value
+
+
+templates.env.filters["when"] = _fmt_when
 templates.env.filters["script_json"] = _script_json
 templates.env.filters["pct"] = _fmt_pct
 templates.env.filters["num"] = _fmt_num

@@ -73,7 +73,7 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         inp = load_input(store, roster.id, window=window)
     except StoreError as exc:
         return _empty(store, roster, model, spline_df, str(exc))
-    runs = [r for r in store.list_runs(roster.id, "fit") if r.params.get("model") != "by_sector"][:10]
+    runs = _trend_runs(store, roster.id)
     try:
         outcome = run_trend(store, inp, model=model, spline_df=spline_df)
     except TrendError as exc:
@@ -84,14 +84,18 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
-        warnings=inp.warnings(), run_id=outcome.run_id, runs=store.list_runs(roster.id, "fit")[:10],
+        warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
         figure=figure_spec(fig), table=_odds_table(fit),
     )
 
 
+def _trend_runs(store: Store, roster_id: int) -> list[Run]:
+    return [r for r in store.list_runs(roster_id, "fit") if r.params.get("model") != "by_sector"][:10]
+
+
 def _empty(store: Store, roster: Roster, model: str, spline_df: int, error: str) -> TrendPage:
     return TrendPage(roster, "no mapping", (0, 0), "none", model, spline_df, None, None, error, [], None,
-                     store.list_runs(roster.id, "fit")[:10])
+                     _trend_runs(store, roster.id))
 
 
 def _request_args(request: Request) -> dict[str, Any]:
