@@ -6,6 +6,7 @@ brief is laid out again more compactly (shorter charts, smaller type, fewer tabl
 
 from __future__ import annotations
 
+import base64
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -72,11 +73,11 @@ def _rows(table: pd.DataFrame) -> list[BriefRow]:
 
 
 def _inline_svg(svg: bytes) -> Markup:
-    # kaleido's SVG is plotly.js's own serialisation, with user text already escaped by plotly
-    text = svg.decode("utf-8")
-    if text.startswith("<?xml"):
-        text = text[text.index("?>") + 2:]
-    return Markup(text.strip())
+    # a data: URI keeps the SVG inside the one HTML file and sends it straight to WeasyPrint's SVG
+    # renderer; as inline <svg> markup its style attributes also pass through the HTML CSS parser,
+    # which logs a warning for every SVG-only property
+    encoded = base64.b64encode(svg).decode("ascii")
+    return Markup(f'<img alt="" src="data:image/svg+xml;base64,{encoded}">')
 
 
 def render_brief_html(*, headline: str, chart_svgs: Sequence[bytes], table: pd.DataFrame, method_text: str,
