@@ -379,7 +379,7 @@ def validate(
     by_header = dict(zip(table.headers, columns, strict=True))
     p = _Problems()
     for h, cells in by_header.items():
-        if "\x00" in "".join(cells):
+        if table.may_hold_nul and "\x00" in "".join(cells):
             p.add(np.array(["\x00" in c for c in cells]), f"NUL byte in column {h!r}")
         if n and max(map(len, cells)) > limits.max_cell_chars:
             lengths = np.fromiter(map(len, cells), dtype=np.int64, count=n)

@@ -59,6 +59,8 @@ class RawTable:
     lines: list[int] = field(default_factory=list)
     bad_rows: list[RejectedRow] = field(default_factory=list)
     blank_rows: int = 0
+    #: False when the source cannot hold NUL characters, which lets validation skip that scan
+    may_hold_nul: bool = True
     encoding: str | None = None
     delimiter: str | None = None
     sheet: str | None = None
@@ -398,6 +400,7 @@ def read_table(
     text, used = decode_text(data, encoding)
     table = read_csv_text(text, limits=limits, max_rows=max_rows)
     table.encoding = used
+    table.may_hold_nul = "\x00" in text
     return table
 
 
