@@ -182,6 +182,11 @@ def read_csv_text(
     if "\ufeff" in text:
         # a stray BOM (two files pasted together, a cell copied from another file) is invisible junk
         text = text.replace("\ufeff", "")
+    hint = re.match(r"sep=(.)\r?\n", text)
+    skipped_lines = 0
+    if hint and delimiter is None:
+        # Excel's "sep=;" first line names the delimiter; it is not the header
+        delimiter, text, skipped_lines = hint.group(1), text[hint.end():], 1
     delim = delimiter or detect_delimiter(text)
     # the csv module's per-field limit (131,072) is process-wide; raise it so an oversized cell is
     # reported as one rejected row by our own max_cell_chars check instead of aborting the file
@@ -191,10 +196,10 @@ def read_csv_text(
     physical: list[str] | None = None
     table: RawTable | None = None
 
-    def rows() -> Iterator[tuple[int, list[str] | None, str]]:
+    def rows() -> Iterator[tuple[int, list[str] | None, str, str]]:
         nonlocal physical
         while True:
-            start = reader.line_num + 1
+            start = reader.line_num + 1 + skipped_lines
             try:
                 row = next(reader)
             except StopIteration:
@@ -207,12 +212,13 @@ def read_csv_text(
                     ) from None
                 if physical is None:
                     physical = text.splitlines()
-                raw = physical[start - 1] if start - 1 < len(physical) else ""
-                yield start, None, f"malformed quoting ({exc})|{raw}"
+                at = start - 1 - skipped_lines
+                raw = physical[at] if at < len(physical) else ""
+                yield start, None, f"malformed quoting ({exc})", raw
                 continue
-            yield start, row, ""
+            yield start, row, "", ""
 
-    for line, row, err in rows():
+    for line, row, reason, raw in rows():
         if table is None:
             if row is None or not any(c.strip() for c in row):
                 continue
@@ -220,7 +226,6 @@ def read_csv_text(
             table.delimiter = delim
             continue
         if row is None:
-            reason, raw = err.split("|", 1)
             table.bad_rows.append(RejectedRow(line=line, raw=json.dumps([raw], ensure_ascii=False),
                                               reason=reason))
             continue

@@ -354,3 +354,27 @@ def test_rejected_rows_csv_is_safe_and_round_trips() -> None:
                       ["7", "missing firm id", '\'=HYPERLINK("http://x.invalid","hi")'],
                       ["9", "'@bad", '{"a": "multi\nline, \\"quoted\\""}']]
     assert safe_csv([[None, float("nan"), -4]], ["=h"]) == "'=h\r\n,,-4\r\n"
+
+
+def test_excel_sep_hint_and_malformed_quoting(store: Store) -> None:
+    body = make_csv([ROWS[0], ROWS[1]], delimiter=";")
+    bad = 'BQ9;"Bad "quote" Ltd;Tech;2011;;Retired;Ann;50;1;no;\r\n'
+    report = import_roster(store, ("sep=;\r\n" + body + bad).encode(), "hint.csv")
+    assert report.delimiter == ";" and report.accepted == 2
+    # the hint is line 1, the header line 2, so the malformed row is physical line 5
+    assert [(r.line, r.reason.split(" (")[0]) for r in report.rejected_rows] == [(5, "malformed quoting")]
+    assert json.loads(report.rejected_rows[0].raw) == [bad.rstrip("\r\n")]
+
+
+def test_validate_returns_the_store_fields() -> None:
+    from app.ingest import validate
+    from app.readers import read_table
+
+    table = read_table(make_csv(ROWS).encode(), "r.csv")
+    records, rejected, duplicates, _ = validate(table, detect_roles(table.headers)[0])
+    assert tuple(records.columns) == DEPARTURE_FIELDS
+    assert (rejected, duplicates) == ([], 0)
+    assert str(records["year"].dtype) == "int64" and str(records["age"].dtype) == "float64"
+    # the raw column is exactly what the json module writes for the original row
+    for raw, row in zip(records["raw"], ROWS, strict=True):
+        assert raw == json.dumps(dict(zip(DEMO_HEADER, row, strict=True)), ensure_ascii=False)
