@@ -7,7 +7,7 @@ Each variant is fitted on the same window; the differences from the reference ar
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -131,7 +131,20 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
             variants.append(_fit_variant(inp, base | changed, "ambiguous codes excluded", "ambiguous-excluded",
                                          tuple(f"{c}: {base.get(c, 'unmapped')} → excluded" for c in changed),
                                          no_boot))
-    return _verdict(inp, variants)
+    return _verdict(inp, _merge_identical(variants))
+
+
+def _merge_identical(variants: list[Variant]) -> list[Variant]:
+    """Readings that count exactly the same departures are shown once, with both names."""
+    kept: list[Variant] = []
+    for v in variants:
+        twin = next((k for k in kept if (k.departures, k.forced, k.odds_ratio) == (v.departures, v.forced, v.odds_ratio)
+                     and k.changes == v.changes), None)
+        if twin is None:
+            kept.append(v)
+        else:
+            kept[kept.index(twin)] = replace(twin, label=f"{twin.label} = {v.label}")
+    return kept
 
 
 def _verdict(inp: AnalysisInput, variants: list[Variant]) -> Robustness:
@@ -153,9 +166,14 @@ def _verdict(inp: AnalysisInput, variants: list[Variant]) -> Robustness:
         same_point = sum(p == (ref_dir > 0) for p in point_up)
         holds = same == n
         direction = word
-        sentence = (f"The forced share is {word} over {span} under the reference mapping; the interval excludes no "
-                    f"change under {same} of {n} readings, and the point estimate points the same way under "
-                    f"{same_point} of {n}.")
+        side = "above" if ref_dir > 0 else "below"
+        if holds:
+            sentence = (f"The forced share is {word} over {span} under every reading tried: all {n} "
+                        f"95% profile intervals lie {side} 1.")
+        else:
+            sentence = (f"The forced share is {word} over {span} under the reference mapping, but the 95% profile "
+                        f"interval lies {side} 1 under only {same} of {n} readings (the point estimate points the "
+                        f"same way under {same_point} of {n}).")
     ors = [v.odds_ratio for v in variants if v.odds_ratio is not None]
     if ors:
         sentence += f" Odds ratios per year range from {min(ors):.3f} to {max(ors):.3f}."
@@ -186,5 +204,5 @@ def robustness_rows(result: Robustness) -> pd.DataFrame:
     for v in result.variants:
         lo, hi = v.profile if v.profile else (np.nan, np.nan)
         rows.append({"label": v.label, "odds_ratio": v.odds_ratio if v.odds_ratio is not None else np.nan,
-                     "low": lo, "high": hi, "group": "common" if v.kind == "reference" else "mapping"})
+                     "low": lo, "high": hi, "group": "Reference mapping" if v.kind == "reference" else "Other reading"})
     return pd.DataFrame(rows)
