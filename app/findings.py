@@ -40,8 +40,12 @@ def coverage_finding(inp: AnalysisInput) -> ChartFinding:
     lo, hi = inp.window
     inside = inp.coverage[(inp.coverage["year"] >= lo) & (inp.coverage["year"] <= hi)]
     counted = int(inside["forced"].sum() + inside["voluntary"].sum())
-    takeaway = (f"{counted:,} forced or voluntary departures are counted in the window {lo}–{hi}; "
-                f"{inp.suggestion.rule}.")
+    if inp.window == inp.suggestion.window and inp.suggestion.below_cutoff:
+        takeaway = (f"{counted:,} forced or voluntary departures are counted in {lo}–{hi}, the longest run of years "
+                    f"with at least {inp.suggestion.threshold:.0%} of the median year's records; years outside it "
+                    "are thinly covered and left out.")
+    else:
+        takeaway = f"{counted:,} forced or voluntary departures are counted in the analysis window {lo}–{hi}."
     title = (f"{counted:,} departures counted in {lo}–{hi}; thinly covered years lie outside"
              if inp.suggestion.below_cutoff else f"{counted:,} departures counted in {lo}–{hi}")
     prov = provenance_for(inp, model="coverage count per fiscal year", interval_method="none")
@@ -73,8 +77,9 @@ def bootstrap_run(store: Store, run_id: int) -> Run:
 
 
 def latest_bootstrap(store: Store, inp: AnalysisInput) -> Run | None:
-    """The newest finished bootstrap run on this roster's current mapping version and window."""
-    for run in store.list_runs(inp.roster.id, "bootstrap"):
+    """The newest finished bootstrap run on this roster's mapping version and window, firm resampling first."""
+    runs = sorted(store.list_runs(inp.roster.id, "bootstrap"), key=lambda r: r.params.get("unit") != "firm")
+    for run in runs:
         if (run.status == "done" and run.window == inp.window and inp.mapping is not None
                 and run.mapping_name == inp.mapping.name and run.mapping_version == inp.mapping.version):
             return run
