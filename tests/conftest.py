@@ -16,3 +16,205 @@ def store(tmp_path: Path) -> Store:
     s = Store(f"sqlite:///{tmp_path / 'helmshift.db'}")
     yield s
     s.dispose()
+
+
+# -- live servers and demo databases (browser, security and reliability tests) ---------------------
+# A real `helmshift serve` subprocess on a free loopback port: closer to what the analyst runs than an
+# in-process app, and killable to test crash recovery.
+import os as _os  # noqa: E402
+import signal as _signal  # noqa: E402
+import socket as _socket  # noqa: E402
+import subprocess as _subprocess  # noqa: E402
+import sys as _sys  # noqa: E402
+import time as _time  # noqa: E402
+from collections.abc import Callable as _Callable  # noqa: E402
+from collections.abc import Iterator as _Iterator  # noqa: E402
+from dataclasses import dataclass as _dataclass  # noqa: E402
+
+
+def free_port() -> int:
+    with _socket.socket(_socket.AF_INET, _socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+@_dataclass
+class LiveServer:
+    """A `helmshift serve` subprocess; ``base_url`` is http://127.0.0.1:PORT."""
+
+    proc: _subprocess.Popen[bytes]
+    port: int
+    db: Path
+    log: Path
+
+    @property
+    def base_url(self) -> str:
+        return f"http://127.0.0.1:{self.port}"
+
+    def stop(self, sig: int = _signal.SIGTERM, timeout: float = 20) -> int:
+        if self.proc.poll() is None:
+            self.proc.send_signal(sig)
+        try:
+            return self.proc.wait(timeout)
+        except _subprocess.TimeoutExpired:
+            self.proc.kill()
+            return self.proc.wait(timeout)
+
+
+def start_server(db: Path, log: Path, *, timeout: float = 40) -> LiveServer:
+    """Start `helmshift serve --db DB` on a free port and wait until /api/health answers."""
+    import httpx
+
+    port = free_port()
+    env = {**_os.environ, "PYTHONUNBUFFERED": "1"}
+    with open(log, "ab") as out:
+        proc = _subprocess.Popen(
+            [_sys.executable, "-m", "app.cli", "serve", "--db", str(db), "--port", str(port)],
+            stdout=out, stderr=_subprocess.STDOUT, env=env, cwd=str(db.parent))
+    server = LiveServer(proc, port, db, log)
+    deadline = _time.monotonic() + timeout
+    while _time.monotonic() < deadline:
+        if proc.poll() is not None:
+            raise RuntimeError(f"server exited with {proc.returncode}: {log.read_text(errors='replace')[-2000:]}")
+        try:
+            if httpx.get(f"{server.base_url}/api/health", timeout=2).status_code == 200:
+                return server
+        except httpx.TransportError:
+            pass
+        _time.sleep(0.1)
+    server.stop(_signal.SIGKILL)
+    raise RuntimeError(f"server did not answer within {timeout} s: {log.read_text(errors='replace')[-2000:]}")
+
+
+@pytest.fixture
+def live_server(tmp_path: Path) -> _Iterator[_Callable[[Path], LiveServer]]:
+    """Factory: ``live_server(db_path)`` starts a server; every one started is stopped at teardown."""
+    started: list[LiveServer] = []
+
+    def start(db: Path) -> LiveServer:
+        server = start_server(db, tmp_path / f"server-{len(started)}.log")
+        started.append(server)
+        return server
+
+    yield start
+    for server in started:
+        server.stop(_signal.SIGTERM, timeout=10)
+
+
+@pytest.fixture
+def demo_db(tmp_path: Path) -> Path:
+    """A SQLite file holding the invented demo roster and its two mappings."""
+    from app.demo import load_demo
+
+    path = tmp_path / "demo.db"
+    s = Store(f"sqlite:///{path}")
+    load_demo(s)
+    s.dispose()
+    return path
+
+
+# -- the invented demo roster, shared by the page, job and command-line tests ---------------------
+import importlib.util  # noqa: E402
+import sqlite3  # noqa: E402
+from types import ModuleType  # noqa: E402
+from typing import Any  # noqa: E402
+
+import pandas as pd  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO_DIR = ROOT / "demo_data"
+DEMO_CSV = DEMO_DIR / "roster.csv"
+
+
+def _load_generator() -> ModuleType:
+    spec = importlib.util.spec_from_file_location("helmshift_demo_generate", DEMO_DIR / "generate.py")
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+@pytest.fixture(scope="session")
+def demo_truth() -> dict[str, Any]:
+    """The generator's own true parameters (demo_data/generate.py TRUTH, per demo_data/README.md)."""
+    return dict(_load_generator().TRUTH)
+
+
+@pytest.fixture(scope="session")
+def demo_frame() -> pd.DataFrame:
+    """demo_data/roster.csv as pandas reads it: every cell a string, one row per data line."""
+    frame = pd.read_csv(DEMO_CSV, dtype=str, keep_default_na=False)
+    frame["line"] = frame.index + 2  # the header is line 1 and no cell spans lines
+    return frame
+
+
+@pytest.fixture(scope="session")
+def demo_clean(demo_frame: pd.DataFrame) -> pd.DataFrame:
+    """The rows an importer should keep (README "Mess injected on purpose"), found with pandas alone."""
+    cols = [c for c in demo_frame.columns if c != "line"]
+    frame = demo_frame.loc[~demo_frame.duplicated(subset=cols)]
+    dates = pd.to_datetime(frame["Exit Date"], format="%d/%m/%Y", errors="coerce")
+    bad = (~frame["FY"].str.fullmatch(r"\d{4}") | (frame["Issuer Code"] == "") | (frame["Exit Reason"] == "")
+           | ((frame["Exit Date"] != "") & dates.isna()))
+    clean = frame.loc[~bad].copy()
+    clean["year"] = clean["FY"].astype(int)
+    return clean
+
+
+def read_mapping(name: str) -> dict[str, str]:
+    """code -> category of a shipped demo mapping CSV, read with pandas."""
+    table = pd.read_csv(DEMO_DIR / name, dtype=str, keep_default_na=False)
+    return dict(zip(table["code"], table["category"], strict=True))
+
+
+@pytest.fixture(scope="session")
+def demo_db(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A SQLite file with the demo roster and both demo mappings, built once per test session."""
+    from app.demo import load_demo
+
+    path = tmp_path_factory.mktemp("demo") / "demo.db"
+    s = Store(f"sqlite:///{path}")
+    load_demo(s)
+    s.dispose()
+    return path
+
+
+def copy_database(source: Path, target: Path) -> Path:
+    """Copy a SQLite database with sqlite3's backup API (safe whatever is left in a WAL file)."""
+    src, dst = sqlite3.connect(source), sqlite3.connect(target)
+    try:
+        src.backup(dst)
+    finally:
+        src.close()
+        dst.close()
+    return target
+
+
+@pytest.fixture
+def demo_store(demo_db: Path, tmp_path: Path) -> Store:
+    """A private copy of the demo database: tests may change it freely."""
+    s = Store(f"sqlite:///{copy_database(demo_db, tmp_path / 'demo-copy.db')}")
+    yield s
+    s.dispose()
+
+
+def make_client(store: Store) -> Any:
+    """A TestClient over the real app; jobs run synchronously in the request (no worker pool)."""
+    from fastapi.testclient import TestClient
+
+    from app.config import Settings
+    from app.web.app import create_app
+
+    return TestClient(create_app(Settings(db_url=store.url), store, start_jobs=False))
+
+
+@pytest.fixture
+def client(demo_store: Store) -> Any:
+    """The dashboard over a private copy of the demo database."""
+    return make_client(demo_store)
+
+
+@pytest.fixture
+def empty_client(store: Store) -> Any:
+    """The dashboard over an empty database."""
+    return make_client(store)
