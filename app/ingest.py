@@ -101,9 +101,9 @@ class NoValidRowsError(RosterFileError):
     def __init__(self, rejected: list[RejectedRow]) -> None:
         self.rejected = rejected
         first = rejected[0]
+        what = "The only data row was" if len(rejected) == 1 else f"All {len(rejected):,} data rows were"
         super().__init__(
-            f"All {len(rejected):,} data rows were rejected, so nothing was imported "
-            f"(first: line {first.line}: {first.reason})."
+            f"{what} rejected, so nothing was imported (first: line {first.line}: {first.reason})."
         )
 
 

@@ -1,7 +1,9 @@
 """Write the bad-input corpus for tests/test_ingest_bad_inputs.py into this folder.
 
-Run from the project root: ``python tests/data/bad/make_corpus.py``. Deterministic (fixed seed), so
-re-running reproduces the committed files. Every name, firm and code here is invented.
+Run from the project root: ``python tests/data/bad/make_corpus.py``. The content is fixed (seeded
+random bytes); only the timestamps openpyxl writes into the two workbooks built from a real
+workbook (truncated.xlsx, xml_entity_bomb.xlsx) change between runs. Every name, firm and code here
+is invented.
 """
 
 from __future__ import annotations
@@ -16,6 +18,7 @@ from pathlib import Path
 import openpyxl
 
 HERE = Path(__file__).parent
+STAMP = (2026, 1, 1, 0, 0, 0)
 HEADER = "Issuer Code,Issuer Name,Industry,FY,Exit Date,Exit Reason,Executive,Age at Exit,Years in Role,Interim?,Comment"
 GOOD = [
     "KV01,Kestrel Vane plc,Utilities,2011,31/03/2011,Retired,Ada Quill,61,7,no,",
@@ -42,7 +45,7 @@ def zip_of(entries: dict[str, bytes], compression: int = zipfile.ZIP_DEFLATED) -
     buf = io.BytesIO()
     with zipfile.ZipFile(buf, "w", compression) as zf:
         for name, data in entries.items():
-            zf.writestr(name, data)
+            zf.writestr(zipfile.ZipInfo(name, date_time=STAMP), data)
     return buf.getvalue()
 
 
@@ -50,15 +53,32 @@ def zip_bomb() -> bytes:
     """A workbook-shaped zip whose sheet inflates to 210 MB of zeros but is ~1 KB on disk (bzip2)."""
     buf = io.BytesIO()
     with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:
-        zf.writestr("[Content_Types].xml", "<Types/>")
-        zf.writestr("xl/workbook.xml", "<workbook/>")
-        info = zipfile.ZipInfo("xl/worksheets/sheet1.xml")
+        zf.writestr(zipfile.ZipInfo("[Content_Types].xml", date_time=STAMP), "<Types/>")
+        zf.writestr(zipfile.ZipInfo("xl/workbook.xml", date_time=STAMP), "<workbook/>")
+        info = zipfile.ZipInfo("xl/worksheets/sheet1.xml", date_time=STAMP)
         info.compress_type = zipfile.ZIP_BZIP2
         with zf.open(info, "w", force_zip64=True) as f:
             chunk = b"\0" * (1 << 20)
             for _ in range(210):
                 f.write(chunk)
     return buf.getvalue()
+
+
+def xml_entity_bomb() -> bytes:
+    """A real workbook whose sheet XML declares nested entities ("billion laughs")."""
+    src = zipfile.ZipFile(io.BytesIO(xlsx_bytes()))
+    dtd = ('<?xml version="1.0"?><!DOCTYPE lolz [<!ENTITY lol0 "lollollollollollollollollollol">'
+           + "".join(f'<!ENTITY lol{i} "' + f"&lol{i - 1};" * 10 + '">' for i in range(1, 10)) + "]>")
+    out = io.BytesIO()
+    with zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as zf:
+        for info in src.infolist():
+            data = src.read(info.filename)
+            if info.filename == "xl/worksheets/sheet1.xml":
+                sheet = data.decode()
+                data = (dtd + sheet[sheet.index("<worksheet"):].replace("</sheetData>", "", 1)
+                        .replace("<sheetData>", "<sheetData>&lol9;</sheetData>", 1)).encode()
+            zf.writestr(info, data)
+    return out.getvalue()
 
 
 def build() -> dict[str, bytes]:
@@ -81,6 +101,7 @@ def build() -> dict[str, bytes]:
                                          "PL04,Pell Loam,Farming,2013,,Retired,Cato Fenn,58,2,no,"),
         "zip_not_xlsx.xlsx": zip_of({"readme.txt": b"not a workbook", "data/table.csv": csv_file(*GOOD)}),
         "zip_bomb.xlsx": zip_bomb(),
+        "xml_entity_bomb.xlsx": xml_entity_bomb(),
         "damaged_workbook.xlsx": zip_of({"[Content_Types].xml": b"<Types/>", "xl/workbook.xml": b"<workbook><<<"}),
         "truncated.xlsx": xlsx_bytes()[:1500],
         "text_named_xlsx.xlsx": csv_file(*GOOD),
