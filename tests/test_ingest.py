@@ -115,6 +115,9 @@ def test_xlsx_named_sheet_with_date_cells(store: Store) -> None:
     })
     with pytest.raises(RosterFileError, match=r"no sheet named 'Nope'; its sheets are: 'Cover', 'Departures'"):
         import_roster(store, data, "book.xlsx", sheet="Nope")
+    preview = preview_roster(data, "book.xlsx", sheet="Departures", rows=2)
+    assert preview.sheets == ("Cover", "Departures") and preview.headers == tuple(header)
+    assert preview.rows[0][3] == "2011-03-31"  # a real date cell, shown as ISO text
     report = import_roster(store, data, "book.xlsx", sheet="Departures")
     assert (report.sheet, report.encoding, report.delimiter) == ("Departures", None, None)
     assert report.accepted == 3
