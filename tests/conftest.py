@@ -168,8 +168,9 @@ def read_mapping(name: str) -> dict[str, str]:
 
 
 @pytest.fixture(scope="session")
-def demo_db(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """A SQLite file with the demo roster and both demo mappings, built once per test session."""
+def shared_demo_db(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A SQLite file with the demo roster and both demo mappings, built once per session: never change it,
+    copy it (``demo_store``); ``demo_db`` above is the per-test file of the live-server tests."""
     from app.demo import load_demo
 
     path = tmp_path_factory.mktemp("demo") / "demo.db"
@@ -191,9 +192,9 @@ def copy_database(source: Path, target: Path) -> Path:
 
 
 @pytest.fixture
-def demo_store(demo_db: Path, tmp_path: Path) -> Store:
+def demo_store(shared_demo_db: Path, tmp_path: Path) -> Store:
     """A private copy of the demo database: tests may change it freely."""
-    s = Store(f"sqlite:///{copy_database(demo_db, tmp_path / 'demo-copy.db')}")
+    s = Store(f"sqlite:///{copy_database(shared_demo_db, tmp_path / 'demo-copy.db')}")
     yield s
     s.dispose()
 
@@ -218,3 +219,76 @@ def client(demo_store: Store) -> Any:
 def empty_client(store: Store) -> Any:
     """The dashboard over an empty database."""
     return make_client(store)
+
+
+def year_counts(clean: pd.DataFrame, categories: dict[str, str], window: tuple[int, int],
+                by: str | None = None) -> pd.DataFrame:
+    """Forced and total (forced + voluntary) departures per year (and per ``by`` column), with pandas."""
+    cat = clean["Exit Reason"].map(categories)
+    frame = clean.assign(category=cat).loc[cat.isin(["forced", "voluntary"])
+                                           & clean["year"].between(*window)]
+    keys = [by, "year"] if by else ["year"]
+    out = frame.groupby(keys)["category"].agg(forced=lambda s: int((s == "forced").sum()), total="size")
+    return out.reset_index()
+
+
+def statsmodels_trend(counts: pd.DataFrame, window: tuple[int, int], *, sectors: bool = False) -> Any:
+    """The reference fit: statsmodels GLM, Binomial(logit), two-column response, year centred on the window."""
+    import numpy as np
+    import statsmodels.api as sm
+
+    t = counts["year"].to_numpy(dtype=float) - (window[0] + window[1]) / 2
+    if sectors:
+        dummies = pd.get_dummies(counts["Industry"], dtype=float)
+        exog = np.column_stack([dummies.to_numpy(), t])
+    else:
+        exog = np.column_stack([np.ones_like(t), t])
+    endog = np.column_stack([counts["forced"], counts["total"] - counts["forced"]]).astype(float)
+    return sm.GLM(endog, exog, family=sm.families.Binomial()).fit()
+
+
+def profile_interval(counts: pd.DataFrame, window: tuple[int, int], level: float = 0.95) -> tuple[float, float]:
+    """Profile-likelihood interval of the odds ratio per year, found here independently of the product:
+    statsmodels refits the intercept with the slope fixed as an offset, scipy's brentq finds where the
+    deviance rises by the chi-square(1) quantile (the textbook definition; statsmodels has none for GLMs)."""
+    import math
+
+    import numpy as np
+    import statsmodels.api as sm
+    from scipy import optimize, stats
+
+    t = counts["year"].to_numpy(dtype=float) - (window[0] + window[1]) / 2
+    endog = np.column_stack([counts["forced"], counts["total"] - counts["forced"]]).astype(float)
+    full = statsmodels_trend(counts, window)
+    b, se = float(full.params[1]), float(full.bse[1])
+    cut = float(stats.chi2.ppf(level, 1))
+
+    def excess(beta: float) -> float:
+        fixed = sm.GLM(endog, np.ones((len(t), 1)), family=sm.families.Binomial(), offset=beta * t).fit()
+        return float(fixed.deviance - full.deviance - cut)
+
+    low = optimize.brentq(excess, b - 6 * se, b, xtol=1e-12)
+    high = optimize.brentq(excess, b, b + 6 * se, xtol=1e-12)
+    return math.exp(low), math.exp(high)
+
+
+def decode_plotly_array(value: Any) -> list[Any]:
+    """A plotly JSON array: a plain list, or plotly's typed-array form {"dtype", "bdata"} (base64)."""
+    import base64
+
+    import numpy as np
+
+    if isinstance(value, dict) and "bdata" in value:
+        return np.frombuffer(base64.b64decode(value["bdata"]), dtype=np.dtype(value["dtype"])).tolist()
+    return list(value)
+
+
+def figure_handoff(html: str, fig_id: str) -> dict[str, Any]:
+    """The JSON a page hands to charts.js for ``fig_id`` (the <script type="application/json"> element)."""
+    import json
+    import re
+
+    match = re.search(r'<script type="application/json" data-figure-for="' + re.escape(fig_id)
+                      + r'"[^>]*>(.*?)</script>', html, re.S)
+    assert match, f"no figure hand-off for {fig_id}"
+    return dict(json.loads(match.group(1)))
