@@ -347,7 +347,7 @@ def _numbers(s: pd.Series) -> pd.Series:
     return num.where(num.abs() != float("inf"))
 
 
-def _raw_json(headers: list[str], columns: list[tuple[str, ...]]) -> list[str]:
+def _raw_json(headers: list[str], columns: list[np.ndarray]) -> list[str]:
     """``json.dumps(dict(zip(headers, row)), ensure_ascii=False)`` for every row, column-wise."""
     template = "{" + ", ".join(json.dumps(h, ensure_ascii=False).replace("%", "%%") + ": %s"
                                for h in headers) + "}"
@@ -363,19 +363,27 @@ def validate(
     and messages. Exact duplicate rows are dropped before validation (counted, never rejected)."""
     max_year = (today or date.today()).year + 1
     messages: list[str] = []
-    rows, row_lines = table.rows, table.lines
+    total = len(table.rows)
+    columns = ([np.array(c, dtype=object) for c in zip(*table.rows, strict=True)] if total
+               else [np.empty(0, dtype=object) for _ in table.headers])
+    # the raw JSON is needed for every row anyway, and equal rows give equal JSON: hashing these
+    # strings finds exact duplicates more cheaply than hashing row tuples
+    raw_all = _raw_json(table.headers, columns)
     # first occurrence of each distinct row: filling the dict from the end leaves the earliest index
-    first_seen = dict(zip(map(tuple, reversed(rows)), range(len(rows) - 1, -1, -1), strict=True))
-    duplicates = len(rows) - len(first_seen)
+    first_seen = dict(zip(reversed(raw_all), range(total - 1, -1, -1), strict=True))
+    duplicates = total - len(first_seen)
+    lines = np.array(table.lines, dtype=np.int64)
     if duplicates:
-        kept = sorted(first_seen.values())
-        rows, row_lines = [rows[i] for i in kept], [row_lines[i] for i in kept]
+        kept = np.array(sorted(first_seen.values()), dtype=np.int64)
+        columns, lines = [c[kept] for c in columns], lines[kept]
+        raw = [raw_all[i] for i in kept]
         messages.append(f"{duplicates:,} exact duplicate row(s) were counted and stored once.")
-    del first_seen
+    else:
+        raw = raw_all
+    del first_seen, raw_all
     if table.blank_rows:
         messages.append(f"{table.blank_rows:,} blank row(s) were skipped.")
-    n = len(rows)
-    columns: list[tuple[str, ...]] = list(zip(*rows, strict=True)) if n else [() for _ in table.headers]
+    n = len(lines)
     by_header = dict(zip(table.headers, columns, strict=True))
     p = _Problems()
     for h, cells in by_header.items():
@@ -390,7 +398,7 @@ def validate(
     repeats_header = [int(i) for i in maybe_header
                       if all(by_header[h][i].strip() == h for h in table.headers)]
 
-    col = {role: _Column.of(np.array(by_header[h], dtype=object))
+    col = {role: _Column.of(by_header[h])
            for role, h in roles.items() if role in _TYPED_ROLES}
     firm_id = np.array([c.strip() for c in by_header[roles["firm_id"]]], dtype=object)
     p.add(firm_id == "", f"missing firm id (column {roles['firm_id']!r} is empty)")
@@ -451,8 +459,6 @@ def validate(
     for pos in repeats_header:
         p.by_row[pos] = ["repeats the header row (were two files joined together?)"]
 
-    raw = _raw_json(table.headers, columns)
-    lines = np.array(row_lines, dtype=np.int64)
     rejected = [RejectedRow(line=int(lines[i]), raw=raw[i], reason="; ".join(msgs))
                 for i, msgs in p.by_row.items()]
     rejected = sorted(table.bad_rows + rejected, key=lambda r: r.line)
