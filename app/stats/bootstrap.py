@@ -57,7 +57,7 @@ MC_RESAMPLES = 200
 MAX_RESAMPLES = 10_000_000
 #: dense float GEMM beats the sparse product while the dense matrix has at most this many
 #: entries per stored non-zero (measured in benchmarks/bench_bootstrap.py)
-DENSE_PER_NONZERO = 16
+DENSE_PER_NONZERO = 8
 
 Progress = Callable[[int, int], None]
 StopCheck = Callable[[], bool]
