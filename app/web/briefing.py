@@ -46,6 +46,7 @@ class BriefingPage:
     export_ok: bool
     export_message: str
     error: str | None = None
+    warnings: list[str] = field(default_factory=list)
     chart_labels: dict[str, str] = field(default_factory=lambda: dict(CHART_LABELS))
 
 
@@ -75,7 +76,8 @@ def briefing_data(store: Store, roster_id: int, *, chosen: list[str], run_id: in
             items.append(PreviewItem(name, CHART_LABELS[name], "", error=str(exc)))
             continue
         items.append(PreviewItem(name, CHART_LABELS[name], finding.takeaway, figure=figure_spec(finding.figure)))
-    return BriefingPage(roster, inp.mapping_label, inp.window, chosen, run_id, runs, items, ok, message)
+    return BriefingPage(roster, inp.mapping_label, inp.window, chosen, run_id, runs, items, ok, message,
+                        warnings=inp.warnings())
 
 
 def _chosen(request: Request) -> list[str]:

@@ -36,6 +36,7 @@ class ResamplingPage:
     runs: list[Run]
     default_seed: int
     error: str | None = None
+    warnings: list[str] = field(default_factory=list)
     max_resamples: int = MAX_RESAMPLES
     units: tuple[str, ...] = UNITS
 
@@ -55,13 +56,14 @@ class RunPage:
 
 def resampling_data(store: Store, roster_id: int, error: str | None = None) -> ResamplingPage:
     roster = _roster(store, roster_id)
+    warnings: list[str] = []
     try:
         inp = load_input(store, roster.id)
-        mapping_label, window = inp.mapping_label, inp.window
+        mapping_label, window, warnings = inp.mapping_label, inp.window, inp.warnings()
     except StoreError as exc:
         mapping_label, window, error = "no mapping", None, error or str(exc)
     return ResamplingPage(roster, mapping_label, window, store.list_runs(roster.id, "bootstrap"),
-                          default_seed=secrets.randbelow(900_000) + 100_000, error=error)
+                          default_seed=secrets.randbelow(900_000) + 100_000, error=error, warnings=warnings)
 
 
 def _roster(store: Store, roster_id: int) -> Roster:

@@ -31,6 +31,7 @@ class SectorsPage:
     verdict: str | None
     error: str | None
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
+    warnings: list[str] = field(default_factory=list)
 
 
 @dataclass(frozen=True)
@@ -46,6 +47,7 @@ class RobustnessPage:
     codes: list[str]
     error: str | None
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
+    warnings: list[str] = field(default_factory=list)
 
 
 def _roster(store: Store, roster_id: int) -> Roster:
@@ -64,7 +66,7 @@ def sectors_data(store: Store, roster_id: int, *, min_departures: int = 20) -> S
         return SectorsPage(roster, "no mapping", None, None, None, str(exc))
     finding = sectors_finding_from(inp, result)
     return SectorsPage(roster, inp.mapping_label, inp.window, result, finding.takeaway, None,
-                       figure_spec(finding.figure))
+                       figure_spec(finding.figure), inp.warnings())
 
 
 def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: list[str]) -> RobustnessPage:
@@ -80,7 +82,8 @@ def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: lis
         return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc))
     fig = forest_figure(robustness_rows(result), title=result.sentence.split(";")[0],
                         source=source_line(inp, interval_method="profile likelihood, 95%"))
-    return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, figure_spec(fig))
+    return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, figure_spec(fig),
+                          inp.warnings())
 
 
 def _min_departures(request: Request) -> int:
