@@ -13,7 +13,7 @@ from collections.abc import Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import pandas as pd
@@ -324,10 +324,8 @@ class Store:
             if len(records):
                 frame = records.loc[:, list(DEPARTURE_FIELDS)].astype(object)
                 frame = frame.where(pd.notna(frame), None)
-                rows = frame.to_dict("records")
-                for r in rows:
-                    r["roster_id"] = roster_id
-                conn.execute(insert(departures), rows)
+                frame.insert(0, "roster_id", roster_id)
+                self._bulk_insert(conn, departures, frame)
             if rejected:
                 conn.execute(
                     insert(rejected_rows),
@@ -336,6 +334,21 @@ class Store:
                 )
             conn.execute(insert(roster_settings).values(roster_id=roster_id))
         return self.get_roster(int(roster_id))
+
+    @staticmethod
+    def _bulk_insert(conn: Connection, table: Table, frame: pd.DataFrame) -> None:
+        """Insert many rows inside the caller's transaction.
+
+        SQLAlchemy's per-row parameter processing costs ~3x the insert itself on 100,000 rows, so for
+        positional DBAPI parameter styles the rows go to ``executemany`` as plain tuples.
+        """
+        marker = {"qmark": "?", "format": "%s", "pyformat": "%s"}.get(conn.dialect.paramstyle)
+        if marker is None:
+            conn.execute(insert(table), cast(list[dict[str, Any]], frame.to_dict("records")))
+            return
+        columns = ", ".join(frame.columns)
+        sql = f"INSERT INTO {table.name} ({columns}) VALUES ({', '.join([marker] * len(frame.columns))})"
+        conn.exec_driver_sql(sql, list(frame.itertuples(index=False, name=None)))
 
     def _roster_from_row(self, row: Any) -> Roster:
         m = row._mapping

@@ -61,6 +61,7 @@ class ConfirmPage:
     name: str
     error: str | None = None
     duplicate_of: Roster | None = None
+    rejected: list[RejectedRow] = field(default_factory=list)
     role_names: tuple[str, ...] = field(default=ROLES)
 
 
@@ -74,10 +75,10 @@ def roster_detail_data(store: Store, roster_id: int) -> RosterDetailPage:
     rejected = store.rejected(roster.id)
     settings = store.settings(roster.id)
     years = (int(deps["year"].min()), int(deps["year"].max())) if len(deps) else None
-    sectors = (
+    sectors: list[dict[str, Any]] = (
         deps.assign(sector=deps["sector"].fillna("(none)"))
         .groupby("sector").agg(departures=("id", "size"), firms=("firm_id", "nunique"))
-        .reset_index().sort_values("departures", ascending=False).to_dict("records")
+        .reset_index().sort_values("departures", ascending=False).to_dict("records")  # type: ignore[assignment]
         if len(deps) else []
     )
     return RosterDetailPage(
@@ -123,8 +124,8 @@ async def roster_upload(request: Request) -> HTMLResponse:
         encoding = str(form.get("encoding") or "") or None
         preview = preview_roster(data, filename, encoding=encoding, sheet=sheet)
     except RosterFileError as exc:
-        page = rosters_data(store, app_settings(request).upload_limit, message=str(exc))
-        return render(request, "rosters.html", page, status=400, active="rosters")
+        failed = rosters_data(store, app_settings(request).upload_limit, message=str(exc))
+        return render(request, "rosters.html", failed, status=400, active="rosters")
     pending = app_uploads(request).put(filename, data)
     page = ConfirmPage(
         token=pending.token, filename=filename, preview=preview,
@@ -156,10 +157,11 @@ async def roster_confirm(request: Request) -> Response:
     token = str(form.get("token") or "")
     pending = app_uploads(request).get(token)
     if pending is None:
-        page = rosters_data(store, app_settings(request).upload_limit,
-                            message="That upload has expired or was already imported; choose the file again.")
-        return render(request, "rosters.html", page, status=400, active="rosters")
-    roles = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
+        expired = rosters_data(store, app_settings(request).upload_limit,
+                               message="That upload has expired or was already imported; choose the file again.")
+        return render(request, "rosters.html", expired, status=400, active="rosters")
+    # a role set to "none" arrives as "" and stays empty (detection must not put it back)
+    roles: dict[str, str] = {r: str(form.get(f"role_{r}") or "") for r in ROLES if f"role_{r}" in form}
     name = str(form.get("name") or "").strip() or None
     try:
         report = import_roster(
@@ -171,8 +173,9 @@ async def roster_confirm(request: Request) -> Response:
         preview = preview_roster(pending.data, pending.filename)
         page = ConfirmPage(
             token=token, filename=pending.filename, preview=preview,
-            roles={r: roles.get(r) for r in ROLES}, name=name or _default_name(store, pending.filename),
+            roles={r: roles.get(r) or None for r in ROLES}, name=name or _default_name(store, pending.filename),
             error=str(exc), duplicate_of=_same_file(store, pending.data),
+            rejected=list(getattr(exc, "rejected", []))[:REJECTED_SHOWN],
         )
         return render(request, "roster_confirm.html", page, status=400, active="rosters")
     app_uploads(request).drop(token)
@@ -186,7 +189,7 @@ async def rosters_import_api(request: Request) -> JSONResponse:
     form = await request.form()
     try:
         filename, data = await _read_upload(form)
-        roles = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
+        roles: dict[str, str] = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
         report = import_roster(
             store, data, filename, name=str(form.get("name") or "").strip() or None, roles=roles or None,
             encoding=str(form.get("encoding") or "") or None, sheet=str(form.get("sheet") or "") or None,
