@@ -1,0 +1,198 @@
+"""Rosters pages: upload, confirm the column roles, detail counts, rejected rows, delete, JSON twins."""
+
+from __future__ import annotations
+
+import csv
+import io
+import re
+from typing import Any
+
+import pandas as pd
+import pytest
+from conftest import DEMO_CSV
+
+from app.store import Store
+
+# demo_data/README.md "Columns": which header holds which role
+DEMO_ROLES = {"firm_id": "Issuer Code", "firm_name": "Issuer Name", "sector": "Industry", "year": "FY",
+              "date": "Exit Date", "reason": "Exit Reason", "executive": "Executive", "age": "Age at Exit",
+              "tenure": "Years in Role", "interim": "Interim?", "notes": "Comment"}
+XSS = "<script>alert(1)</script>"
+
+
+def upload(client: Any, data: bytes, filename: str = "roster.csv") -> Any:
+    return client.post("/rosters/upload", files={"file": (filename, data, "text/csv")})
+
+
+def confirm(client: Any, page: Any, **extra: str) -> Any:
+    form = {"token": page.token, "name": page.name}
+    form |= {f"role_{r}": h for r, h in page.roles.items() if h}
+    form |= extra
+    return client.post("/rosters/confirm", data=form, follow_redirects=False)
+
+
+def expected_counts(frame: pd.DataFrame, clean: pd.DataFrame) -> dict[str, int]:
+    cols = [c for c in frame.columns if c != "line"]
+    duplicates = int(frame.duplicated(subset=cols).sum())
+    return {"rows_total": len(frame), "duplicates": duplicates,
+            "rejected": len(frame) - duplicates - len(clean), "accepted": len(clean)}
+
+
+def test_upload_shows_detected_roles_then_confirm_imports(empty_client: Any, store: Store,
+                                                          demo_frame: pd.DataFrame,
+                                                          demo_clean: pd.DataFrame) -> None:
+    preview = upload(empty_client, DEMO_CSV.read_bytes())
+    assert preview.status_code == 200
+    assert preview.template.name == "roster_confirm.html"
+    page = preview.context["page"]
+    assert page.roles == DEMO_ROLES
+    assert page.preview.missing_roles == ()
+    assert page.duplicate_of is None
+    assert len(page.preview.rows) == 10
+    assert re.search(r'<select id="role_firm_id"[^>]*>.*?<option value="Issuer Code" selected>', preview.text, re.S)
+    assert store.counts()["rosters"] == 0  # nothing is stored before the confirm step
+
+    done = confirm(empty_client, page)
+    assert done.status_code == 303
+    roster_id = int(done.headers["location"].rstrip("/").rsplit("/", 1)[1])
+    detail = empty_client.get(done.headers["location"])
+    assert detail.template.name == "roster_detail.html"
+    roster = detail.context["page"].roster
+    counts = expected_counts(demo_frame, demo_clean)
+    # demo_data/README.md: 10 exact duplicate rows and 4 rows an importer should reject
+    assert counts["duplicates"] == 10 and counts["rejected"] == 4
+    assert {k: getattr(roster, k) for k in counts} == counts
+    assert roster.columns == DEMO_ROLES and roster.id == roster_id
+    assert detail.context["page"].firms == demo_clean["Issuer Code"].nunique()
+    assert f'<div class="v">{counts["accepted"]}</div>' in detail.text
+    api = empty_client.get(f"/api/rosters/{roster_id}").json()
+    assert api["roster"]["accepted"] == counts["accepted"] and api["rejected_total"] == 4
+
+
+def test_role_override_through_the_form(empty_client: Any) -> None:
+    data = ("Company,Ticker,Year,Outcome\n" + "".join(
+        f"Quorvane Ltd,QV{i % 5},{2000 + i % 6},{'Dismissed' if i % 3 else 'Retired'}\n" for i in range(30))
+    ).encode()
+    page = upload(empty_client, data, "outcomes.csv").context["page"]
+    assert page.roles["reason"] is None and "reason code" in page.preview.missing_roles
+    refused = confirm(empty_client, page)
+    assert refused.status_code == 400 and "reason code" in refused.context["page"].error
+    done = confirm(empty_client, page, role_reason="Outcome")
+    assert done.status_code == 303
+    roster = empty_client.get(done.headers["location"]).context["page"].roster
+    assert roster.columns["reason"] == "Outcome" and roster.accepted == 30
+
+
+def test_choosing_none_for_a_detected_role_leaves_it_out(empty_client: Any) -> None:
+    page = upload(empty_client, DEMO_CSV.read_bytes()).context["page"]
+    form = {"token": page.token, "name": "no notes"} | {f"role_{r}": h for r, h in page.roles.items()}
+    form["role_notes"] = ""  # the select's "— none —" option
+    done = empty_client.post("/rosters/confirm", data=form, follow_redirects=False)
+    assert done.status_code == 303
+    roster = empty_client.get(done.headers["location"]).context["page"].roster
+    assert "notes" not in roster.columns
+
+
+def test_same_file_again_warns_and_needs_explicit_consent(client: Any, demo_store: Store) -> None:
+    before = demo_store.counts()
+    preview = upload(client, DEMO_CSV.read_bytes())
+    page = preview.context["page"]
+    assert page.duplicate_of is not None and page.duplicate_of.id == 1
+    assert "import it again anyway" in preview.text and "already imported" in preview.text
+    refused = confirm(client, page)
+    assert refused.status_code == 400
+    assert "already imported" in refused.context["page"].error
+    assert demo_store.counts() == before
+    again = confirm(client, page, allow_same_file="yes", name="Demo copy")
+    assert again.status_code == 303
+    assert demo_store.counts()["rosters"] == before["rosters"] + 1
+
+
+def test_rejected_rows_download_has_line_numbers_and_neutralised_formulas(empty_client: Any,
+                                                                           store: Store) -> None:
+    data = (b"Issuer Code,Issuer Name,FY,Exit Reason\n"
+            b"HX0001,Brixel plc,2001,Retired\n"
+            b"HX0002,=HYPERLINK(\"http://x\"),2002,\n"  # no reason: rejected, formula in a cell
+            b"HX0003,Ulvanor AG,20O3,Retired\n"  # letter O in the year: rejected
+            b"HX0004,Tamaric,2004,Dismissed\n")
+    result = empty_client.post("/api/rosters", files={"file": ("mess.csv", data, "text/csv")})
+    assert result.status_code == 201
+    roster_id = result.json()["id"]
+    response = empty_client.get(f"/rosters/{roster_id}/rejected.csv")
+    assert response.status_code == 200 and response.headers["content-type"].startswith("text/csv")
+    assert "attachment" in response.headers["content-disposition"]
+    rows = list(csv.DictReader(io.StringIO(response.text)))
+    assert [int(r["line"]) for r in rows] == [3, 4]  # header is line 1 (count them above)
+    assert all(r["reason"] for r in rows)
+    # OWASP CSV injection advice: a cell starting with = gets a leading apostrophe
+    assert not any(cell.startswith(("=", "+", "-", "@")) for r in rows for cell in r.values())
+    assert "HYPERLINK" in rows[0]["raw"]
+
+
+def test_import_api_keys_and_duplicate_conflict(empty_client: Any, demo_frame: pd.DataFrame,
+                                                demo_clean: pd.DataFrame) -> None:
+    files = {"file": ("roster.csv", DEMO_CSV.read_bytes(), "text/csv")}
+    created = empty_client.post("/api/rosters", files=files, data={"name": "Demo via API"})
+    assert created.status_code == 201
+    body = created.json()
+    assert set(body) == {"roster", "id", "rows", "accepted", "rejected", "duplicates"}
+    counts = expected_counts(demo_frame, demo_clean)
+    assert (body["roster"], body["rows"], body["accepted"], body["rejected"], body["duplicates"]) == (
+        "Demo via API", counts["rows_total"], counts["accepted"], counts["rejected"], counts["duplicates"])
+    again = empty_client.post("/api/rosters", files=files)
+    assert again.status_code == 409 and "already imported" in again.json()["error"]
+    listed = empty_client.get("/api/rosters").json()
+    assert [r["name"] for r in listed["rosters"]] == ["Demo via API"]
+
+
+def test_delete_roster(client: Any, demo_store: Store) -> None:
+    response = client.post("/rosters/1/delete", follow_redirects=False)
+    assert response.status_code == 303 and response.headers["location"].endswith("/rosters")
+    counts = demo_store.counts()
+    assert counts["rosters"] == 0 and counts["departures"] == 0 and counts["rejected_rows"] == 0
+    assert counts["mappings"] == 2  # mappings stay (roster_detail.html says so)
+    assert client.get("/rosters/1").status_code == 404
+
+
+@pytest.mark.parametrize("path", ["/rosters/999", "/rosters/999/rejected.csv", "/rosters/999/reasons"])
+def test_unknown_roster_is_404_in_html(empty_client: Any, path: str) -> None:
+    response = empty_client.get(path)
+    assert response.status_code == 404
+    assert response.template.name == "error.html"
+    assert "999" in response.context["page"]["message"]
+
+
+def test_unknown_roster_is_404_in_json(empty_client: Any) -> None:
+    response = empty_client.get("/api/rosters/999")
+    assert response.status_code == 404
+    assert "999" in response.json()["error"]
+    assert empty_client.post("/rosters/999/delete").status_code == 404
+
+
+@pytest.mark.parametrize(("data", "filename"), [
+    (b"\x89PNG\r\n\x1a\n" + bytes(range(256)) * 4, "picture.png"),
+    (b"%PDF-1.4\n%\xe2\xe3\xcf\xd3\n1 0 obj\n<<>>\nendobj\n", "report.pdf"),
+    (b"", "empty.csv"),
+])
+def test_non_roster_upload_gives_a_clear_message(empty_client: Any, store: Store, data: bytes,
+                                                 filename: str) -> None:
+    response = upload(empty_client, data, filename)
+    assert response.status_code == 400
+    assert response.template.name == "rosters.html"
+    message = response.context["page"].message
+    assert message and message.endswith(".")
+    assert message in response.text or message.replace("'", "&#39;") in response.text
+    assert store.counts()["rosters"] == 0
+
+
+def test_markup_in_a_roster_is_shown_escaped(empty_client: Any) -> None:
+    data = ("Issuer Code,Issuer Name,Industry,FY,Exit Reason\n"
+            + "".join(f"HX{i:04d},{XSS},{XSS},{2000 + i % 5},{XSS if i % 2 else 'Retired'}\n" for i in range(12))
+            + f"HX9999,{XSS},{XSS},not a year,Retired\n").encode()
+    result = empty_client.post("/api/rosters", files={"file": ("x.csv", data, "text/csv")}, data={"name": XSS})
+    assert result.status_code == 201
+    roster_id = result.json()["id"]
+    for path in (f"/rosters/{roster_id}", f"/rosters/{roster_id}/reasons", "/rosters"):
+        html = empty_client.get(path).text
+        assert XSS not in html, path
+        assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html, path
