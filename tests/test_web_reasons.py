@@ -1,0 +1,140 @@
+"""Reason codes page: suggestions, saving versions, comparing them, mapping CSV import and export."""
+
+from __future__ import annotations
+
+import io
+from typing import Any
+
+import pandas as pd
+import pytest
+from conftest import DEMO_CSV, DEMO_DIR, read_mapping
+
+from app.ingest import import_roster
+from app.store import Store
+
+ROSTER = 1
+WINDOW = (1998, 2022)  # demo_data/README.md: full coverage
+
+
+def form_for(page: Any, categories: dict[str, str]) -> dict[str, str]:
+    """The Reason codes form as the browser posts it: code-i, cat-i and label-i per row."""
+    data: dict[str, str] = {}
+    for i, row in enumerate(page.codes, start=1):
+        data[f"code-{i}"] = row.code
+        data[f"cat-{i}"] = categories.get(row.code, "")
+        data[f"label-{i}"] = row.label
+    return data
+
+
+def test_suggestions_when_no_mapping_is_chosen(empty_client: Any, store: Store,
+                                               demo_truth: dict[str, Any]) -> None:
+    roster_id = import_roster(store, DEMO_CSV.read_bytes(), "roster.csv").roster.id
+    response = empty_client.get(f"/rosters/{roster_id}/reasons")
+    assert response.status_code == 200
+    assert response.template.name == "reasons.html"
+    page = response.context["page"]
+    assert page.using_suggestion and page.mapping is None and page.history == []
+    assert "a <strong>suggestion</strong>" in response.text
+    by_code = {r.code: r for r in page.codes}
+    # common practice (demo_data/README.md's generator categories): the unambiguous codes
+    for code, category in demo_truth["code_categories"].items():
+        if code not in demo_truth["ambiguous_codes"]:
+            assert by_code[code].suggested == category, code
+            assert by_code[code].category == category, code
+    assert by_code["Merger - role eliminated"].ambiguous
+
+
+def test_saving_creates_versions_and_compare_shows_the_moved_code(client: Any, demo_store: Store) -> None:
+    standard = read_mapping("mapping-standard.csv")
+    page = client.get(f"/rosters/{ROSTER}/reasons").context["page"]
+    assert page.mapping.name == "demo standard" and page.mapping.version == 1
+    saved = client.post(f"/rosters/{ROSTER}/reasons",
+                        data=form_for(page, standard) | {"mapping_name": "desk view", "note": "first"},
+                        follow_redirects=False)
+    assert saved.status_code == 303 and "saved=1" in saved.headers["location"]
+    assert [v for v, *_ in demo_store.mapping_history("desk view")] == [1]
+    page = client.get(f"/rosters/{ROSTER}/reasons?saved=1").context["page"]
+    assert page.mapping.name == "desk view" and page.message == "Saved as a new version."
+    moved = standard | {"Retired": "excluded"}
+    client.post(f"/rosters/{ROSTER}/reasons", data=form_for(page, moved) | {"mapping_name": "desk view"})
+    assert [v for v, *_ in demo_store.mapping_history("desk view")] == [1, 2]
+    assert demo_store.get_mapping("desk view").categories["Retired"] == "excluded"
+    compare = client.get(f"/rosters/{ROSTER}/reasons?a=1&b=2")
+    page = compare.context["page"]
+    assert page.compare == (1, 2)
+    assert list(page.diff.moved) == [("Retired", "voluntary", "excluded")]
+    assert "moved <strong>Retired</strong> from voluntary to excluded" in compare.text
+    api = client.get(f"/api/rosters/{ROSTER}/reasons?a=1&b=2").json()
+    assert api["diff"]["moved"] == [["Retired", "voluntary", "excluded"]]
+
+
+def test_unknown_category_in_the_form_is_refused(client: Any, demo_store: Store) -> None:
+    page = client.get(f"/rosters/{ROSTER}/reasons").context["page"]
+    before = demo_store.counts()
+    response = client.post(f"/rosters/{ROSTER}/reasons", data=form_for(page, {"Retired": "gone"}))
+    assert response.status_code == 400 and "forced, voluntary, excluded" in response.context["page"]["message"]
+    assert demo_store.counts() == before
+
+
+def test_mapping_import_with_unknown_category_names_the_line_and_saves_nothing(client: Any,
+                                                                              demo_store: Store) -> None:
+    before = demo_store.counts()
+    data = b"code,category\nRetired,voluntary\nDismissed by board,sacked\n"
+    response = client.post(f"/rosters/{ROSTER}/mapping/import", data={"mapping_name": "bad one"},
+                           files={"file": ("bad.csv", data, "text/csv")})
+    assert response.status_code == 400
+    assert response.template.name == "reasons.html"
+    message = response.context["page"].message
+    assert "Line 3" in message and "sacked" in message
+    assert demo_store.counts() == before
+    assert "bad one" not in dict(demo_store.list_mappings())
+
+
+def test_mapping_import_keeps_and_reports_codes_not_in_the_roster(client: Any, demo_store: Store) -> None:
+    text = (DEMO_DIR / "mapping-strict.csv").read_text() + "Abducted by aliens,forced,not in this roster\n"
+    response = client.post(f"/rosters/{ROSTER}/mapping/import", data={"mapping_name": "strict plus"},
+                           files={"file": ("m.csv", text.encode(), "text/csv")})
+    assert response.status_code == 200
+    page = response.context["page"]
+    assert "1 code(s) do not occur in this roster" in page.message
+    assert page.mapping.name == "strict plus"
+    assert demo_store.get_mapping("strict plus").categories["Abducted by aliens"] == "forced"
+    assert demo_store.settings(ROSTER).mapping_name == "strict plus"
+
+
+def test_mapping_export_round_trips(client: Any, demo_store: Store) -> None:
+    response = client.get("/mappings/demo standard.csv")
+    assert response.status_code == 200 and response.headers["content-type"].startswith("text/csv")
+    exported = pd.read_csv(io.StringIO(response.text), dtype=str, keep_default_na=False)
+    shipped = pd.read_csv(DEMO_DIR / "mapping-standard.csv", dtype=str, keep_default_na=False)
+    key = ["code", "category", "label"]
+    assert exported.sort_values("code")[key].values.tolist() == shipped.sort_values("code")[key].values.tolist()
+    client.post(f"/rosters/{ROSTER}/mapping/import", data={"mapping_name": "round trip"},
+                files={"file": ("rt.csv", response.content, "text/csv")})
+    again = demo_store.get_mapping("round trip")
+    original = demo_store.get_mapping("demo standard")
+    assert (again.categories, again.labels) == (original.categories, original.labels)
+    assert client.get("/mappings/no such mapping.csv").status_code == 404
+
+
+@pytest.mark.parametrize("code", ["Health reasons"])
+def test_unmapped_codes_warn_and_are_left_out_of_the_fit(client: Any, demo_store: Store,
+                                                         demo_clean: pd.DataFrame, code: str) -> None:
+    full = client.get(f"/api/rosters/{ROSTER}/trend").json()["fit"]
+    without = {c: k for c, k in read_mapping("mapping-standard.csv").items() if c != code}
+    demo_store.save_mapping_version("demo standard", without, note="dropped one code")
+    coverage = client.get(f"/rosters/{ROSTER}/coverage").context["page"]
+    assert len(coverage.warnings) == 1 and "1 reason code(s)" in coverage.warnings[0]
+    trend = client.get(f"/rosters/{ROSTER}/trend")
+    assert trend.context["page"].warnings == coverage.warnings
+    assert coverage.warnings[0] in trend.text
+    # pandas on demo_data/roster.csv: departures with that code inside the window
+    in_window = int(((demo_clean["Exit Reason"] == code) & demo_clean["year"].between(*WINDOW)).sum())
+    assert in_window > 0
+    assert f"covering {in_window} departure(s)" in coverage.warnings[0]
+    fit = trend.context["page"].fit
+    assert fit["departures"] == full["departures"] - in_window
+    assert fit["forced"] == full["forced"]
+    reasons = client.get(f"/rosters/{ROSTER}/reasons").context["page"]
+    assert reasons.unmapped_codes == 1
+    assert [r.code for r in reasons.codes if r.category is None] == [code]
