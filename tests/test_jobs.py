@@ -1,0 +1,129 @@
+"""Bootstrap jobs: stored runs, chunked execution, extension, cancel, failure and crash recovery."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from app.analysis import load_input
+from app.jobs import (
+    CHUNK,
+    JobRunner,
+    bootstrap_params,
+    create_bootstrap_run,
+    execute_bootstrap,
+    extend_run,
+    replicate_odds_ratios,
+    run_bootstrap_now,
+)
+from app.stats.bootstrap import bootstrap_trend, draw_replicates
+from app.stats.design import design_matrix, window_centre
+from app.store import Store
+
+ROSTER = 1
+
+
+def engine_inputs(store: Store, model: str = "linear") -> tuple:
+    inp = load_input(store, ROSTER)
+    cells = inp.cells(by_sector=model == "sector")
+    return inp, cells, design_matrix(cells.groups, model, window_centre(inp.window))
+
+
+@pytest.mark.parametrize(("unit", "resamples"), [("firm", CHUNK + 250), ("departure", 300)])
+def test_job_intervals_equal_the_engine_with_the_same_seed(demo_store: Store, unit: str, resamples: int) -> None:
+    inp, cells, design = engine_inputs(demo_store)
+    result = run_bootstrap_now(demo_store, inp, unit=unit, resamples=resamples, seed=4321)
+    # the job draws in chunks of CHUNK and stores them; app.stats.bootstrap.bootstrap_trend draws at once
+    direct = bootstrap_trend(cells, design, unit=unit, resamples=resamples, seed=4321)
+    for method in ("percentile", "basic", "bca"):
+        assert result["conf_int"][method] == pytest.approx(list(direct.intervals[method]), rel=1e-12, abs=1e-12)
+    assert result["odds_ratio"] == pytest.approx(direct.odds_ratio, rel=1e-12)
+    assert (result["resamples"], result["failed"], result["unit"], result["seed"]) == (
+        resamples, direct.failed, unit, 4321)
+    run = demo_store.get_run(result["run"])
+    assert run.status == "done" and run.progress_done == resamples == run.progress_total
+    np.testing.assert_array_equal(demo_store.replicates(run.id), direct.replicates)
+    np.testing.assert_array_equal(replicate_odds_ratios(demo_store, run.id), np.exp(direct.replicates))
+
+
+def test_extend_keeps_the_first_replicates_and_equals_one_longer_run(demo_store: Store) -> None:
+    inp, cells, design = engine_inputs(demo_store)
+    run_id = run_bootstrap_now(demo_store, inp, unit="firm", resamples=300, seed=99)["run"]
+    first = demo_store.replicates(run_id).copy()
+    extend_run(demo_store, run_id, 200)
+    assert demo_store.get_run(run_id).status == "queued"
+    result = execute_bootstrap(demo_store, run_id)
+    after = demo_store.replicates(run_id)
+    assert len(after) == 500 and result["resamples"] == 500
+    np.testing.assert_array_equal(after[:300], first)
+    longer = draw_replicates(cells, design, unit="firm", resamples=500, seed=99)
+    np.testing.assert_array_equal(after, longer.estimates)
+    direct = bootstrap_trend(cells, design, unit="firm", resamples=500, seed=99)
+    assert result["conf_int"]["bca"] == pytest.approx(list(direct.intervals["bca"]), rel=1e-12)
+
+
+def test_a_run_whose_data_changed_fails_with_its_reason(demo_store: Store) -> None:
+    inp = load_input(demo_store, ROSTER)
+    run_id = demo_store.create_run(
+        kind="bootstrap", roster_id=ROSTER, params=bootstrap_params(unit="firm", resamples=200, seed=1),
+        fingerprint="0000000000000000", mapping_name=inp.mapping.name, mapping_version=inp.mapping.version,
+        window=inp.window, progress_total=200)
+    JobRunner(demo_store).submit(run_id)
+    run = demo_store.get_run(run_id)
+    assert run.status == "failed"
+    assert "fingerprint" in run.error
+    assert len(demo_store.replicates(run_id)) == 0
+
+
+def test_cancel_before_start_marks_the_run_cancelled(demo_store: Store) -> None:
+    inp = load_input(demo_store, ROSTER)
+    run_id = create_bootstrap_run(demo_store, inp, bootstrap_params(unit="firm", resamples=500, seed=3))
+    demo_store.request_cancel(run_id)
+    JobRunner(demo_store).submit(run_id)
+    run = demo_store.get_run(run_id)
+    assert run.status == "cancelled" and run.progress_done == 0
+    assert len(demo_store.replicates(run_id)) == 0
+
+
+def test_threaded_runner_finishes_and_shutdown_marks_leftovers(demo_store: Store) -> None:
+    inp = load_input(demo_store, ROSTER)
+    runner = JobRunner(demo_store, workers=1)
+    runner.start()
+    run_id = create_bootstrap_run(demo_store, inp, bootstrap_params(unit="departure", resamples=200, seed=5))
+    runner.submit(run_id)
+    runner.wait(run_id, timeout=60)
+    assert demo_store.get_run(run_id).status == "done"
+    left = create_bootstrap_run(demo_store, inp, bootstrap_params(unit="departure", resamples=200, seed=6))
+    runner.shutdown()  # never submitted: still queued, so marked interrupted
+    assert demo_store.get_run(left).status == "interrupted"
+
+
+def test_mark_interrupted_only_touches_unfinished_runs(demo_store: Store) -> None:
+    inp = load_input(demo_store, ROSTER)
+    params = bootstrap_params(unit="firm", resamples=200, seed=8)
+    queued = create_bootstrap_run(demo_store, inp, params)
+    running = create_bootstrap_run(demo_store, inp, params)
+    demo_store.set_run_status(running, "running")
+    done = run_bootstrap_now(demo_store, inp, unit="firm", resamples=200, seed=8)["run"]
+    assert sorted(demo_store.mark_interrupted()) == [queued, running]
+    assert [demo_store.get_run(i).status for i in (queued, running, done)] == ["interrupted", "interrupted", "done"]
+    assert "start it again" in demo_store.get_run(queued).error
+    assert demo_store.mark_interrupted() == []
+
+
+@pytest.mark.parametrize(("kwargs", "words"), [
+    ({"unit": "year", "resamples": 200, "seed": 1}, "unit must be one of departure, firm"),
+    ({"unit": "firm", "resamples": 50, "seed": 1}, "resamples must be between 100"),
+    ({"unit": "firm", "resamples": 200, "seed": -1}, "seed must be a non-negative"),
+    ({"unit": "firm", "resamples": 200, "seed": 1, "model": "spline"}, "model must be one of linear, sector"),
+])
+def test_bad_parameters_name_the_allowed_values(kwargs: dict, words: str) -> None:
+    with pytest.raises(ValueError, match=words):
+        bootstrap_params(**kwargs)
+
+
+def test_sector_model_bootstrap_runs(demo_store: Store) -> None:
+    inp, cells, design = engine_inputs(demo_store, "sector")
+    result = run_bootstrap_now(demo_store, inp, unit="firm", resamples=200, seed=12, model="sector")
+    direct = bootstrap_trend(cells, design, unit="firm", resamples=200, seed=12)
+    assert result["conf_int"]["percentile"] == pytest.approx(list(direct.intervals["percentile"]), rel=1e-12)
