@@ -1,0 +1,162 @@
+"""The command line, in-process through app.cli.main, against pandas counts of the demo files."""
+
+from __future__ import annotations
+
+import json
+import math
+import shutil
+import subprocess
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import pytest
+from conftest import DEMO_CSV, DEMO_DIR, copy_database, read_mapping, statsmodels_trend, year_counts
+
+from app.cli import build_parser, main
+
+ROSTER = "Demo index (invented)"
+CHROMIUM = Path("/usr/bin/chromium")
+
+
+@pytest.fixture
+def db(shared_demo_db: Path, tmp_path: Path) -> str:
+    return str(copy_database(shared_demo_db, tmp_path / "cli.db"))
+
+
+def run(capsys: pytest.CaptureFixture[str], *argv: str) -> tuple[int, Any, str]:
+    code = main(list(argv))
+    out, err = capsys.readouterr()
+    payload = json.loads(out) if "--json" in argv and code == 0 else out
+    return code, payload, err
+
+
+def test_import_json(capsys: pytest.CaptureFixture[str], tmp_path: Path, demo_frame: pd.DataFrame,
+                     demo_clean: pd.DataFrame) -> None:
+    code, payload, err = run(capsys, "import", str(DEMO_CSV), "--db", str(tmp_path / "new.db"), "--name",
+                             "Desk roster", "--json")
+    assert code == 0 and err == ""
+    assert {"roster", "rows", "accepted", "rejected", "duplicates"} <= set(payload)
+    cols = [c for c in demo_frame.columns if c != "line"]
+    duplicates = int(demo_frame.duplicated(subset=cols).sum())  # pandas; README: 10 duplicates, 4 rejected
+    assert (payload["roster"], payload["rows"], payload["accepted"], payload["duplicates"]) == (
+        "Desk roster", len(demo_frame), len(demo_clean), duplicates)
+    assert payload["rejected"] == len(demo_frame) - duplicates - len(demo_clean) == 4
+    code, _, err = run(capsys, "import", str(DEMO_CSV), "--db", str(tmp_path / "new.db"))
+    assert code != 0 and "already imported" in err
+
+
+@pytest.mark.parametrize("argv", [
+    ["import", "/no/such/roster.csv"],
+    ["import", str(DEMO_CSV), "--column", "boss=Executive"],
+    ["import", str(DEMO_CSV), "--column", "reason=No Such Header"],
+    ["fit", "--roster", "Nobody", "--json"],
+    ["fit", "--roster", ROSTER, "--years", "2010-2000"],
+    ["coverage", "--roster", ROSTER, "--mapping", "no such mapping"],
+])
+def test_errors_are_one_sentence_on_stderr(capsys: pytest.CaptureFixture[str], db: str, argv: list[str]) -> None:
+    code, out, err = run(capsys, *argv, "--db", db)
+    assert code != 0 and out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("helmshift: ") and lines[0].endswith(".")
+
+
+def test_mapping_import_and_export(capsys: pytest.CaptureFixture[str], db: str, tmp_path: Path) -> None:
+    code, payload, _ = run(capsys, "mapping", "import", str(DEMO_DIR / "mapping-strict.csv"), "--roster", ROSTER,
+                           "--name", "desk strict", "--db", db, "--json")
+    assert code == 0
+    shipped = read_mapping("mapping-strict.csv")
+    assert (payload["mapping"], payload["version"], payload["codes"]) == ("desk strict", 1, len(shipped))
+    out_file = tmp_path / "out.csv"
+    assert main(["mapping", "export", "--name", "desk strict", "--out", str(out_file), "--db", db]) == 0
+    exported = pd.read_csv(out_file, dtype=str, keep_default_na=False)
+    assert dict(zip(exported["code"], exported["category"], strict=True)) == shipped
+    code, text, _ = run(capsys, "mapping", "export", "--name", "desk strict", "--version", "1", "--db", db)
+    assert code == 0 and text.splitlines()[0] == "code,category,label"
+    bad = tmp_path / "bad.csv"
+    bad.write_text("code,category\nRetired,gone\n")
+    code, _, err = run(capsys, "mapping", "import", str(bad), "--roster", ROSTER, "--name", "x", "--db", db)
+    assert code != 0 and "Line 2" in err
+
+
+def test_coverage_json(capsys: pytest.CaptureFixture[str], db: str, demo_truth: dict[str, Any],
+                       demo_clean: pd.DataFrame) -> None:
+    code, payload, _ = run(capsys, "coverage", "--roster", ROSTER, "--db", db, "--json")
+    assert code == 0
+    assert payload["suggested_window"] == list(demo_truth["full_coverage"])
+    keys = {"year", "departures", "forced", "voluntary", "excluded", "unmapped"}
+    assert all(set(y) >= keys for y in payload["years"])
+    per_year = demo_clean.groupby("year").size()  # pandas
+    assert {y["year"]: y["departures"] for y in payload["years"]} == per_year.to_dict()
+
+
+def test_fit_json_and_by_sector(capsys: pytest.CaptureFixture[str], db: str, demo_clean: pd.DataFrame) -> None:
+    code, payload, _ = run(capsys, "fit", "--roster", ROSTER, "--years", "2000-2020", "--db", db, "--json")
+    assert code == 0
+    assert {"odds_ratio", "conf_int", "window", "departures", "forced", "dispersion"} <= set(payload)
+    assert set(payload["conf_int"]) >= {"wald", "profile"} and payload["window"] == [2000, 2020]
+    counts = year_counts(demo_clean, read_mapping("mapping-standard.csv"), (2000, 2020))
+    ref = statsmodels_trend(counts, (2000, 2020))  # statsmodels GLM on pandas counts
+    assert math.log(payload["odds_ratio"]) == pytest.approx(float(ref.params[1]), rel=1e-8)
+    assert payload["departures"] == int(counts["total"].sum())
+    code, sectors, _ = run(capsys, "fit", "--roster", ROSTER, "--by", "sector", "--db", db, "--json")
+    assert code == 0 and len(sectors["sectors"]) == 10
+    assert set(sectors["heterogeneity"]) >= {"statistic", "df", "p"} and sectors["heterogeneity"]["p"] < 0.05
+    code, text, _ = run(capsys, "fit", "--roster", ROSTER, "--db", db)
+    assert code == 0 and "odds that a departure was forced" in text
+
+
+def test_bootstrap_json(capsys: pytest.CaptureFixture[str], db: str) -> None:
+    code, payload, _ = run(capsys, "bootstrap", "--roster", ROSTER, "--resamples", "300", "--seed", "17",
+                           "--unit", "departure", "--db", db, "--json")
+    assert code == 0
+    assert {"odds_ratio", "conf_int", "resamples", "failed", "unit", "seed", "seconds"} <= set(payload)
+    assert set(payload["conf_int"]) >= {"percentile", "basic", "bca"}
+    assert (payload["resamples"], payload["unit"], payload["seed"]) == (300, "departure", 17)
+    lo, hi = payload["conf_int"]["bca"]
+    assert lo < payload["odds_ratio"] < hi
+    code, again, _ = run(capsys, "bootstrap", "--roster", ROSTER, "--resamples", "300", "--seed", "17",
+                         "--unit", "departure", "--db", db, "--json")
+    assert again["conf_int"] == payload["conf_int"]  # same seed, same numbers
+
+
+def test_robustness_json(capsys: pytest.CaptureFixture[str], db: str) -> None:
+    code, payload, _ = run(capsys, "robustness", "--roster", ROSTER, "--mapping", "demo standard",
+                           "--mapping", "demo strict", "--vary", "Retired", "--db", db, "--json")
+    assert code == 0
+    assert {"window", "direction", "holds", "sentence", "variants"} <= set(payload)
+    labels = [v["label"] for v in payload["variants"]]
+    assert labels[0].startswith("demo standard v1")
+    assert any(lbl.startswith("demo strict v1") for lbl in labels)
+    assert "Retired as forced" in labels
+
+
+def test_export_unknown_chart_is_a_clear_error(capsys: pytest.CaptureFixture[str], db: str, tmp_path: Path) -> None:
+    code, _, err = run(capsys, "export", "--roster", ROSTER, "--format", "svg", "--chart", "pie",
+                       "--out", str(tmp_path / "x.svg"), "--db", db)
+    assert code != 0 and "chart must be one of" in err
+    assert not (tmp_path / "x.svg").exists()
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not CHROMIUM.is_file(), reason="needs Debian's chromium at /usr/bin/chromium")
+def test_export_svg(capsys: pytest.CaptureFixture[str], db: str, tmp_path: Path,
+                    monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("HELMSHIFT_BROWSER", raising=False)
+    monkeypatch.setenv("BROWSER_PATH", str(CHROMIUM))
+    out = tmp_path / "charts" / "trend.svg"
+    code, _, err = run(capsys, "export", "--roster", ROSTER, "--format", "svg", "--out", str(out), "--db", db)
+    assert code == 0 and str(out) in err
+    text = out.read_text()
+    assert text.lstrip().startswith("<svg") and "Fiscal year" in text
+    assert not out.with_name("trend.svg.part").exists()
+
+
+def test_help_in_a_real_subprocess() -> None:
+    exe = shutil.which("helmshift")
+    assert exe, "the helmshift console script is installed by `pip install -e .`"
+    done = subprocess.run([exe, "--help"], capture_output=True, text=True, timeout=60, check=False)
+    assert done.returncode == 0
+    for command in ("serve", "import", "mapping", "coverage", "fit", "bootstrap", "robustness", "export"):
+        assert command in done.stdout
+    assert set(build_parser()._subparsers._group_actions[0].choices) >= {"serve", "import", "fit"}  # type: ignore[union-attr]
