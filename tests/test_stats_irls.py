@@ -10,7 +10,7 @@ import statsmodels.api as sm
 from app.stats.bootstrap import BLOCK_SIZE, draw_cells, draw_replicates
 from app.stats.cells import build_cells
 from app.stats.design import design_matrix, window_centre
-from app.stats.irls import fit_batch, solve_spd_stack
+from app.stats.irls import arrow_design, fit_batch, solve_arrow_stack, solve_spd_stack
 
 
 def clustered_roster(seed: int, firms: int = 120, years: int = 8, sectors: int = 3) -> pd.DataFrame:
@@ -126,3 +126,77 @@ def test_spd_solver_matches_numpy() -> None:
     np.testing.assert_allclose(solve_spd_stack(spd, b), np.linalg.solve(spd, b[:, :, None])[:, :, 0],
                                rtol=1e-10)
     assert np.isnan(solve_spd_stack(np.zeros((1, 2, 2)), np.ones((1, 2)))).all()
+
+
+# ---------------------------------------------------------------- arrow (sector) fast path
+
+def test_arrow_design_is_detected_only_for_indicators_plus_one_column() -> None:
+    cells = build_cells(clustered_roster(1), by_sector=True)
+    sector = design_matrix(cells.groups, "sector", window_centre(cells.window))
+    arrow = arrow_design(sector.matrix)
+    assert arrow is not None
+    # hand-derived: groups are sorted by (sector, year), so block k is sector k's rows
+    expected = cells.groups["sector"].map({s: k for k, s in enumerate(sorted(set(cells.groups["sector"])))})
+    np.testing.assert_array_equal(arrow.block, expected.to_numpy())
+    np.testing.assert_array_equal(arrow.covariate, sector.matrix[:, -1])
+    linear = design_matrix(cells.groups, "linear", window_centre(cells.window))
+    assert arrow_design(linear.matrix) is not None  # one block: the constant
+    t = sector.matrix[:, -1]
+    global_const = np.column_stack([np.ones_like(t), sector.matrix[:, 1:]])  # const + dummies: not one-hot
+    assert arrow_design(global_const) is None
+    assert arrow_design(np.column_stack([2 * sector.matrix[:, :-1], t])) is None  # not 0/1
+    assert arrow_design(np.column_stack([sector.matrix[:, :-1], t, t**2])) is None  # two dense columns
+
+
+def test_arrow_solver_matches_numpy_on_arrow_matrices() -> None:
+    # oracle: numpy.linalg.solve on the dense X' W X of a random arrow design
+    rng = np.random.default_rng(4)
+    block = np.repeat(np.arange(5), 7)
+    t = rng.normal(size=block.size)
+    X = np.column_stack([np.eye(5)[block], t])
+    arrow = arrow_design(X)
+    assert arrow is not None
+    weights = rng.uniform(0.1, 3.0, size=(40, block.size))
+    xtwx = np.einsum("kg,gi,gj->kij", weights, X, X)
+    rhs = rng.normal(size=(40, 6))
+    np.testing.assert_allclose(solve_arrow_stack(arrow, weights, rhs),
+                               np.linalg.solve(xtwx, rhs[:, :, None])[:, :, 0], rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(solve_arrow_stack(arrow, weights, rhs), solve_spd_stack(xtwx, rhs),
+                               rtol=1e-12, atol=1e-14)
+    weights[0, block == 2] = 0.0  # a block without weight: singular, like the general solver says
+    assert np.isnan(solve_arrow_stack(arrow, weights, rhs)[0]).all()
+    assert np.isfinite(solve_arrow_stack(arrow, weights, rhs)[1:]).all()
+    assert np.isnan(solve_spd_stack(xtwx[:1] * 0, rhs[:1])).all()
+
+
+@pytest.mark.parametrize("model", ["linear", "sector"])
+@pytest.mark.parametrize("unit", ["departure", "firm"])
+def test_arrow_path_equals_general_path_and_statsmodels(model: str, unit: str) -> None:
+    # oracles: the general elimination path on the same counts, and statsmodels GLM(Binomial) per fit
+    cells = build_cells(clustered_roster(1, firms=400, sectors=4), by_sector=(model == "sector"))
+    design = design_matrix(cells.groups, model, window_centre(cells.window))  # type: ignore[arg-type]
+    counts = draw_cells(cells, unit=unit, seed=7, block=0)  # type: ignore[arg-type]
+    g = cells.n_groups
+    forced, totals = counts[:, :g], counts[:, :g] + counts[:, g:]
+    fast = fit_batch(design.matrix, forced, totals)
+    general = fit_batch(design.matrix, forced, totals, solver="general")
+    np.testing.assert_array_equal(fast.failure, general.failure)
+    np.testing.assert_allclose(fast.beta, general.beta, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(fast.deviance, general.deviance, rtol=1e-10)
+    for i in np.flatnonzero(fast.converged)[:40]:
+        np.testing.assert_allclose(fast.beta[i], statsmodels_slope(design.matrix, forced[i], totals[i]),
+                                   rtol=1e-10, atol=1e-10)
+
+
+def test_arrow_path_names_the_same_failures_as_the_general_path() -> None:
+    # hand-built sector counts: a sector with no departures; a sector whose departures are all
+    # forced (its intercept runs to infinity); an ordinary fit
+    X = np.array([[1, 0, -1], [1, 0, 1], [0, 1, -1], [0, 1, 1]], dtype=float)
+    forced = np.array([[2, 3, 0, 0], [5, 6, 3, 2], [2, 3, 1, 4]], dtype=float)
+    totals = np.array([[5, 6, 0, 0], [5, 6, 6, 6], [5, 6, 6, 7]], dtype=float)
+    fast = fit_batch(X, forced, totals)
+    general = fit_batch(X, forced, totals, solver="general")
+    assert fast.failure.tolist() == general.failure.tolist() == ["rank_deficient", "separation", ""]
+    np.testing.assert_allclose(fast.beta[2], general.beta[2], rtol=1e-10)
+    with pytest.raises(ValueError, match="solver must be one of auto, general"):
+        fit_batch(X, forced, totals, solver="lapack")  # type: ignore[arg-type]

@@ -13,10 +13,14 @@ from typing import Literal, get_args
 import numpy as np
 from scipy.special import expit, xlogy
 
+from app.types import check_choice
+
 FailureReason = Literal[
     "no_forced", "no_voluntary", "rank_deficient", "separation", "non_finite", "not_converged",
 ]
 FAILURE_REASONS: tuple[FailureReason, ...] = get_args(FailureReason)
+Solver = Literal["auto", "general"]
+SOLVERS: tuple[Solver, ...] = get_args(Solver)
 
 #: a fitted p(1 - p) below this at a group with departures means the fit ran off to p = 0 or 1:
 #: real forced shares never get within 1e-9 of certainty, separated fits always do.
@@ -68,6 +72,7 @@ def fit_batch(
     *,
     tol: float = 1e-10,
     max_iter: int = 50,
+    solver: Solver = "auto",
 ) -> BatchFit:
     """Fit ``logit P(forced) = X beta`` to many sets of grouped counts at once.
 
@@ -86,6 +91,10 @@ def fit_batch(
         Absolute change in deviance that ends the iterations.
     max_iter : int
         Iterations before a fit counts as ``not_converged``.
+    solver : {"auto", "general"}
+        ``auto`` solves each step through the Schur complement when X is an arrow design (block
+        indicators plus one covariate, see :func:`arrow_design`) and by general elimination
+        otherwise; ``general`` always eliminates (the reference the fast path is tested against).
 
     Returns
     -------
@@ -96,6 +105,7 @@ def fit_batch(
         e.g. a sector absent from the resample), ``separation`` (fitted shares run to 0 or 1),
         ``non_finite`` (the arithmetic overflowed) or ``not_converged``.
     """
+    check_choice(solver, SOLVERS, "solver")
     X = np.asarray(X, dtype=float)
     forced = np.atleast_2d(np.asarray(forced, dtype=float))
     totals = np.atleast_2d(np.asarray(totals, dtype=float))
@@ -117,21 +127,90 @@ def fit_batch(
     active = np.flatnonzero(failure == "")
     converged = np.zeros(n_fits, dtype=bool)
     if active.size:
-        _iterate(X, forced, totals, active, tol, max_iter, beta, deviance, iterations, converged, failure)
+        arrow = arrow_design(X) if solver == "auto" else None
+        _iterate(X, forced, totals, active, tol, max_iter, beta, deviance, iterations, converged, failure,
+                 arrow)
     beta[failure != ""] = np.nan
     return BatchFit(beta=beta, converged=failure == "", failure=failure, deviance=deviance,
                     iterations=iterations)
 
 
+@dataclass(frozen=True)
+class ArrowDesign:
+    """A design of block indicators plus one last covariate column, e.g. one intercept per sector
+    and a common year slope (the linear trend is the one-block case).
+
+    Its ``X' W X`` is an arrow matrix: diagonal over the indicator columns plus a dense last row
+    and column, so every IRLS step is solved through the Schur complement of that diagonal in
+    O(n_params) instead of a general p x p elimination.
+
+    Attributes
+    ----------
+    block : numpy.ndarray of int, shape (n_groups,)
+        Indicator column that is 1 in each row.
+    covariate : numpy.ndarray, shape (n_groups,)
+        The last column of the design.
+    indicators : numpy.ndarray, shape (n_groups, n_params - 1)
+        The indicator columns, contiguous.
+    """
+
+    block: np.ndarray
+    covariate: np.ndarray
+    indicators: np.ndarray
+
+
+def arrow_design(X: np.ndarray) -> ArrowDesign | None:
+    """Detect an arrow design: columns ``0 .. p-2`` are 0/1 with exactly one 1 per row.
+
+    Returns None for any other design (which then takes the general solver).
+    """
+    X = np.asarray(X, dtype=float)
+    if X.ndim != 2 or X.shape[1] < 2 or X.shape[0] == 0:
+        return None
+    indicators = X[:, :-1]
+    if not (np.isin(indicators, (0.0, 1.0)).all() and (indicators.sum(axis=1) == 1.0).all()):
+        return None
+    return ArrowDesign(block=np.argmax(indicators, axis=1), covariate=np.ascontiguousarray(X[:, -1]),
+                       indicators=np.ascontiguousarray(indicators))
+
+
+def solve_arrow_stack(arrow: ArrowDesign, weights: np.ndarray, xtwz: np.ndarray) -> np.ndarray:
+    """Solve ``(X' W_k X) beta_k = xtwz_k`` for every row ``k`` of ``weights`` on an arrow design.
+
+    This is the elimination :func:`solve_spd_stack` performs on the same matrices (indicator
+    pivots first; their columns do not interact), written out: the last pivot is the Schur
+    complement ``c - sum_s b_s**2 / d_s`` with ``d_s`` the weight of block ``s``, ``b_s`` its
+    weighted covariate sum and ``c`` the weighted sum of squared covariates. Systems that are not
+    numerically positive definite (same pivot test as :func:`solve_spd_stack`) give a NaN row.
+    """
+    t = arrow.covariate
+    d = weights @ arrow.indicators
+    b = (weights * t) @ arrow.indicators
+    c = weights @ (t * t)
+    u, v = xtwz[:, :-1], xtwz[:, -1]
+    scale = np.maximum(d.max(axis=1), np.abs(c))
+    singular = ~(scale > 0) | ~(d > 1e-13 * scale[:, None]).all(axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = b / d
+        schur = c - (ratio * b).sum(axis=1)
+        singular |= ~(schur > 1e-13 * scale)
+        last = (v - (ratio * u).sum(axis=1)) / schur
+        out = np.empty_like(xtwz)
+        out[:, :-1] = u / d - ratio * last[:, None]
+    out[:, -1] = last
+    out[singular] = np.nan
+    return out
+
+
 def _iterate(
     X: np.ndarray, forced: np.ndarray, totals: np.ndarray, active: np.ndarray, tol: float,
     max_iter: int, beta: np.ndarray, deviance: np.ndarray, iterations: np.ndarray,
-    converged: np.ndarray, failure: np.ndarray,
+    converged: np.ndarray, failure: np.ndarray, arrow: ArrowDesign | None,
 ) -> None:
     """Run IRLS on the rows in ``active``, writing results into the output arrays in place."""
     n_params = X.shape[1]
     # X_i X_j per group, so that X' W X for every fit is one matrix product
-    outer = (X[:, :, None] * X[:, None, :]).reshape(X.shape[0], n_params * n_params)
+    outer = None if arrow is not None else (X[:, :, None] * X[:, None, :]).reshape(X.shape[0], n_params**2)
     f, n = forced[active], totals[active]
     with np.errstate(divide="ignore", invalid="ignore"):
         y = np.where(n > 0, f / n, 0.0)
@@ -147,9 +226,13 @@ def _iterate(
         weights = n * var
         # X'W z with z = eta + (y - mu) / var, written without the division
         xtwz = (weights * eta + (f - n * mu)) @ X
-        xtwx = (weights @ outer).reshape(-1, n_params, n_params)
-        new_beta = solve_spd_stack(xtwx, xtwz)
-        eta = new_beta @ X.T
+        if arrow is None:
+            assert outer is not None
+            new_beta = solve_spd_stack((weights @ outer).reshape(-1, n_params, n_params), xtwz)
+            eta = new_beta @ X.T
+        else:
+            new_beta = solve_arrow_stack(arrow, weights, xtwz)
+            eta = new_beta[:, arrow.block] + new_beta[:, -1:] * arrow.covariate
         mu = expit(eta)
         new_loglik = _loglik(f, n, eta)
         bad = ~np.isfinite(new_loglik) | ~np.isfinite(new_beta).all(axis=1)
