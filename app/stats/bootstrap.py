@@ -50,8 +50,12 @@ INTERVAL_METHODS: tuple[IntervalMethod, ...] = ("percentile", "basic", "bca")
 BLOCK_SIZE = 250
 #: share of failed resamples above which a result is flagged
 FAILURE_FLAG_SHARE = 0.01
-#: firm index draws held in memory at once per worker (8 bytes each)
+#: replicate values re-drawn at once when estimating Monte Carlo error (8 bytes each)
 PASS_ELEMENTS = 1_000_000
+#: firm multiplicities counted per pass of the firm draw (8 bytes each): 2 MiB stay in one core's
+#: L2 cache while bincount scatters into them; passes of 10**6 measured ~1.5x slower
+#: (benchmarks/bench_bootstrap.py). Pass sizes never change the draws.
+PASS_COUNTS = 2**18
 #: re-resamples of the replicates used to estimate Monte Carlo error
 MC_RESAMPLES = 200
 MAX_RESAMPLES = 10_000_000
@@ -214,19 +218,21 @@ class _CellSampler:
         if self.unit == "departure":
             return rng.multinomial(self.total, self.pvals, size=rows).astype(np.float64)
         out = np.empty((rows, self.counts.size))
-        per_pass = max(1, min(rows, PASS_ELEMENTS // self.n_firms))
+        per_pass = max(1, min(rows, PASS_COUNTS // self.n_firms))
+        offsets = np.arange(per_pass)[:, None]
         for lo in range(0, rows, per_pass):
             r = min(per_pass, rows - lo)
             # successive calls continue one stream, so pass sizes never change the draws
             idx = rng.integers(0, self.n_firms, size=(r, self.n_firms))
             if self.dense is not None:
-                idx += (np.arange(r) * self.n_firms)[:, None]
+                idx += offsets[:r] * self.n_firms
                 mult = np.bincount(idx.ravel(), minlength=r * self.n_firms).reshape(r, self.n_firms)
                 out[lo:lo + r] = mult.astype(self.dense.dtype) @ self.dense
             else:
                 assert self.sparse_t is not None
+                # firm-major counts, so the sparse product reads each firm's r counts together
                 idx *= r
-                idx += np.arange(r)[:, None]
+                idx += offsets[:r]
                 mult_t = np.bincount(idx.ravel(), minlength=r * self.n_firms).reshape(self.n_firms, r)
                 out[lo:lo + r] = (self.sparse_t @ mult_t.astype(np.float64)).T
         return out
