@@ -219,7 +219,7 @@ def _iterate(
     saturated = _saturated(f, n)
     mu = (y + 0.5) / 2.0
     eta = np.log(mu / (1.0 - mu))
-    loglik = _loglik(f, n, eta)
+    loglik = _loglik(f, n, eta, mu)
     rows = active
     for it in range(1, max_iter + 1):
         var = mu * (1.0 - mu)
@@ -234,7 +234,7 @@ def _iterate(
             new_beta = solve_arrow_stack(arrow, weights, xtwz)
             eta = new_beta[:, arrow.block] + new_beta[:, -1:] * arrow.covariate
         mu = expit(eta)
-        new_loglik = _loglik(f, n, eta)
+        new_loglik = _loglik(f, n, eta, mu)
         bad = ~np.isfinite(new_loglik) | ~np.isfinite(new_beta).all(axis=1)
         # fitted shares at 0 or 1 mean the coefficients are running off to infinity: stop there
         # rather than let p(1 - p) underflow into a division by zero
@@ -258,9 +258,15 @@ def _iterate(
     failure[rows] = "not_converged"
 
 
-def _loglik(forced: np.ndarray, totals: np.ndarray, eta: np.ndarray) -> np.ndarray:
-    """Binomial log-likelihood without the binomial coefficients, one value per row."""
-    return (forced * eta - totals * np.logaddexp(0.0, eta)).sum(axis=-1)
+def _loglik(forced: np.ndarray, totals: np.ndarray, eta: np.ndarray, mu: np.ndarray) -> np.ndarray:
+    """Binomial log-likelihood without the binomial coefficients, one value per row.
+
+    ``log(1 + e^eta)`` comes from ``mu = expit(eta)`` as ``max(eta, 0) - log(max(mu, 1 - mu))``:
+    the larger of ``mu`` and ``1 - mu`` is at least 1/2, so it carries no cancellation, and the
+    vectorised ``log`` costs a fraction of ``logaddexp``.
+    """
+    softplus = np.maximum(eta, 0.0) - np.log(np.where(eta > 0, mu, 1.0 - mu))
+    return (forced * eta - totals * softplus).sum(axis=-1)
 
 
 def _saturated(forced: np.ndarray, totals: np.ndarray) -> np.ndarray:
