@@ -31,7 +31,8 @@ def assign_categories(reasons: pd.Series, categories: Mapping[str, str]) -> pd.S
     -------
     pandas.Series of str, aligned with ``reasons``.
     """
-    return reasons.map(dict(categories)).fillna(UNMAPPED).astype(str)
+    # object dtype first: an empty mapping gives a float column, which must not be filled with text
+    return reasons.map(dict(categories)).astype(object).fillna(UNMAPPED).astype(str)
 
 
 @dataclass(frozen=True)

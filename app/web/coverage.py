@@ -15,6 +15,7 @@ from app.stats.coverage import WindowSuggestion, YearFlag
 from app.store import Roster, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
+from app.web.forms import read_form
 from app.web.rendering import as_json, render
 
 router = APIRouter()
@@ -88,7 +89,7 @@ async def window_save(request: Request, roster_id: int) -> RedirectResponse:
     """Remember the analysis window for this roster; trend and resampling use it by default."""
     store = app_store(request)
     page = coverage_data(store, roster_id)
-    form = await request.form()
+    form = await read_form(request)
     if form.get("reset"):
         store.update_settings(page.roster.id, clear_window=True)
     else:

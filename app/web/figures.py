@@ -24,5 +24,6 @@ def figure_spec(fig: object) -> FigureSpec:
     return FigureSpec('{"figure": ' + figure_json(fig) + ', "config": ' + json.dumps(PAGE_CONFIG) + "}")
 
 
-def source_line(inp: AnalysisInput, **extra: object) -> str:
-    return provenance_for(inp, **extra).short()
+def source_line(inp: AnalysisInput, *, interval_method: str) -> str:
+    """The one-line provenance printed under a chart."""
+    return provenance_for(inp, interval_method=interval_method).short()

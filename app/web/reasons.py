@@ -7,13 +7,13 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
-from starlette.datastructures import UploadFile
 
 from app.analysis import export_mapping_csv, import_mapping_file, load_input
 from app.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
 from app.store import MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES
 from app.web.deps import BadRequest, NotFound, app_store
+from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 
 router = APIRouter()
@@ -135,7 +135,7 @@ async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
     """Save the categories in the form as the next version; codes of other rosters are carried over."""
     store = app_store(request)
     page = reasons_data(store, roster_id)
-    form = await request.form()
+    form = await read_form(request)
     categories, labels = _form_entries(form)
     name = str(form.get("mapping_name") or "").strip() or (
         page.mapping.name if page.mapping else f"{page.roster.name} mapping")
@@ -158,7 +158,7 @@ async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
 async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
     store = app_store(request)
     page = reasons_data(store, roster_id)
-    form = await request.form()
+    form = await read_form(request)
     name = str(form.get("mapping_name") or "")
     try:
         store.get_mapping(name)
@@ -172,13 +172,13 @@ async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
 async def mapping_import(request: Request, roster_id: int) -> Response:
     store = app_store(request)
     page = reasons_data(store, roster_id)
-    form = await request.form()
+    form = await read_form(request)
     upload = form.get("file")
     name = str(form.get("mapping_name") or "").strip()
-    if not isinstance(upload, UploadFile) or not name:
+    if not isinstance(upload, Upload) or not name:
         raise BadRequest("Choose a mapping CSV (code,category[,label]) and give the mapping a name.")
     try:
-        outcome = import_mapping_file(store, await upload.read(), roster=page.roster.id, name=name)
+        outcome = import_mapping_file(store, upload.data, roster=page.roster.id, name=name)
     except (MappingFileError, StoreError) as exc:
         refreshed = reasons_data(store, roster_id, message=str(exc))
         return render(request, "reasons.html", refreshed, roster=refreshed.roster, active="reasons", status=400)
@@ -190,8 +190,9 @@ async def mapping_import(request: Request, roster_id: int) -> Response:
     return render(request, "reasons.html", refreshed, roster=refreshed.roster, active="reasons")
 
 
-@router.get("/mappings/{name}.csv", name="mapping_csv")
+@router.get("/mappings/{name:path}.csv", name="mapping_csv")
 def mapping_csv(request: Request, name: str) -> Response:
+    """A mapping version as CSV; ``name`` may hold any character, slashes included."""
     version = request.query_params.get("version")
     try:
         text = export_mapping_csv(app_store(request), name=name,

@@ -18,6 +18,7 @@ from app.store import Roster, Run, Store, StoreError
 from app.types import UNITS
 from app.web.deps import BadRequest, NotFound, app_jobs, app_store
 from app.web.figures import FigureSpec, figure_spec
+from app.web.forms import read_form
 from app.web.rendering import as_json, render
 
 router = APIRouter()
@@ -163,7 +164,7 @@ async def resampling_start(request: Request, roster_id: int) -> Response:
     """Store the run, hand it to a worker, and go to its page (which shows the progress)."""
     store = app_store(request)
     roster = _roster(store, roster_id)
-    form = await request.form()
+    form = await read_form(request)
     try:
         params = bootstrap_params(unit=str(form.get("unit") or "firm"), resamples=_int_field(form, "resamples", 2000),
                                   seed=_int_field(form, "seed", 1), model=str(form.get("model") or "linear"))
@@ -211,7 +212,7 @@ async def run_extend(request: Request, run_id: int) -> RedirectResponse:
     """Add resamples to a finished, cancelled or interrupted run; stored replicates are kept."""
     store = app_store(request)
     run = _run(store, run_id)
-    form = await request.form()
+    form = await read_form(request)
     if run.status in ("queued", "running"):
         raise BadRequest("This run is still going; wait for it to end before extending it.")
     extra = _int_field(form, "extra", 0)

@@ -7,7 +7,6 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
-from starlette.datastructures import UploadFile
 
 from app.ingest import (
     DuplicateRosterError,
@@ -20,6 +19,7 @@ from app.ingest import (
 from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import ROLES
 from app.web.deps import NotFound, app_settings, app_store, app_uploads
+from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 
 router = APIRouter()
@@ -106,20 +106,20 @@ def rosters_api(request: Request) -> JSONResponse:
     return as_json(rosters_data(app_store(request), app_settings(request).upload_limit))
 
 
-async def _read_upload(form: Any) -> tuple[str, bytes]:
+def _read_upload(form: dict[str, str | Upload]) -> tuple[str, bytes]:
     upload = form.get("file")
-    if not isinstance(upload, UploadFile) or not upload.filename:
+    if not isinstance(upload, Upload):
         raise RosterFileError("Choose a CSV or XLSX file to upload.")
-    return upload.filename, await upload.read()
+    return upload.filename, upload.data
 
 
 @router.post("/rosters/upload", response_class=HTMLResponse, name="roster_upload")
 async def roster_upload(request: Request) -> HTMLResponse:
     """First step: keep the file aside, show its first rows and the column roles we detected."""
     store = app_store(request)
-    form = await request.form()
+    form = await read_form(request)
     try:
-        filename, data = await _read_upload(form)
+        filename, data = _read_upload(form)
         sheet = str(form.get("sheet") or "") or None
         encoding = str(form.get("encoding") or "") or None
         preview = preview_roster(data, filename, encoding=encoding, sheet=sheet)
@@ -153,7 +153,7 @@ def _same_file(store: Store, data: bytes) -> Roster | None:
 async def roster_confirm(request: Request) -> Response:
     """Second step: import with the roles the analyst confirmed; all rows land or none do."""
     store = app_store(request)
-    form = await request.form()
+    form = await read_form(request)
     token = str(form.get("token") or "")
     pending = app_uploads(request).get(token)
     if pending is None:
@@ -186,9 +186,9 @@ async def roster_confirm(request: Request) -> Response:
 async def rosters_import_api(request: Request) -> JSONResponse:
     """Import in one call: multipart ``file``, optional ``name``, ``sheet``, ``encoding`` and ``role_<ROLE>``."""
     store = app_store(request)
-    form = await request.form()
+    form = await read_form(request)
     try:
-        filename, data = await _read_upload(form)
+        filename, data = _read_upload(form)
         roles: dict[str, str] = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
         report = import_roster(
             store, data, filename, name=str(form.get("name") or "").strip() or None, roles=roles or None,
