@@ -100,7 +100,8 @@ def _run_arg(request: Request) -> int | None:
 @router.get("/rosters/{roster_id}/briefing", response_class=HTMLResponse, name="briefing_page")
 def briefing_page(request: Request, roster_id: int) -> HTMLResponse:
     page = briefing_data(app_store(request), roster_id, chosen=_chosen(request), run_id=_run_arg(request))
-    return render(request, "briefing.html", page, roster=page.roster, active="briefing_page")
+    return render(request, "briefing.html", page, roster=page.roster, active="briefing_page",
+                  cautions_open=True)
 
 
 @router.get("/api/rosters/{roster_id}/briefing", name="briefing_api")

@@ -180,7 +180,7 @@ async def resampling_start(request: Request, roster_id: int) -> Response:
 @router.get("/runs/{run_id}", response_class=HTMLResponse, name="run_page")
 def run_page(request: Request, run_id: int) -> HTMLResponse:
     page = run_data(app_store(request), run_id, request.query_params.get("method", "bca"))
-    return render(request, "run.html", page, roster=page.roster, active="resampling_page")
+    return render(request, "run.html", page, roster=page.roster, active="resampling_page", cautions_open=True)
 
 
 @router.get("/api/runs/{run_id}", name="run_api")

@@ -96,7 +96,7 @@ def _min_departures(request: Request) -> int:
 @router.get("/rosters/{roster_id}/sectors", response_class=HTMLResponse, name="sectors_page")
 def sectors_page(request: Request, roster_id: int) -> HTMLResponse:
     page = sectors_data(app_store(request), roster_id, min_departures=_min_departures(request))
-    return render(request, "sectors.html", page, roster=page.roster, active="sectors_page")
+    return render(request, "sectors.html", page, roster=page.roster, active="sectors_page", cautions_open=True)
 
 
 @router.get("/api/rosters/{roster_id}/sectors", name="sectors_api")
@@ -112,7 +112,8 @@ def _robustness_args(request: Request) -> dict[str, list[str]]:
 @router.get("/rosters/{roster_id}/robustness", response_class=HTMLResponse, name="robustness_page")
 def robustness_page(request: Request, roster_id: int) -> HTMLResponse:
     page = robustness_data(app_store(request), roster_id, **_robustness_args(request))
-    return render(request, "robustness.html", page, roster=page.roster, active="robustness_page")
+    return render(request, "robustness.html", page, roster=page.roster, active="robustness_page",
+                  cautions_open=True)
 
 
 @router.get("/api/rosters/{roster_id}/robustness", name="robustness_api")

@@ -107,7 +107,7 @@ def _request_args(request: Request) -> dict[str, Any]:
 @router.get("/rosters/{roster_id}/trend", response_class=HTMLResponse, name="trend_page")
 def trend_page(request: Request, roster_id: int) -> HTMLResponse:
     page = trend_data(app_store(request), roster_id, **_request_args(request))
-    return render(request, "trend.html", page, roster=page.roster, active="trend_page",
+    return render(request, "trend.html", page, roster=page.roster, active="trend_page", cautions_open=True,
                   context_line=f"mapping {page.mapping_label} · window {page.window[0]}–{page.window[1]}")
 
 
