@@ -204,15 +204,17 @@ class _CellSampler:
         self.n_firms = matrix.shape[0]
         self.dense: np.ndarray | None = None
         self.sparse_t: sparse.csr_matrix | None = None
+        self.dtype: type[np.floating] = np.float64
         if unit == "firm":
             if self.n_firms == 0 or not np.array_equal(np.asarray(matrix.sum(axis=0)).ravel(), self.counts):
                 raise ValueError("cells.firm_matrix must add up, over firms, to the group counts.")
+            # float32 sums of whole numbers are exact below 2**24, and no resample can count more
+            # than n_firms times the largest entry in a cell; half the bytes to move per product
+            self.dtype = np.float32 if self.n_firms * float(matrix.max()) < 2**24 else np.float64
             if matrix.shape[0] * matrix.shape[1] <= DENSE_PER_NONZERO * max(matrix.nnz, 1):
-                # float32 sums of whole numbers are exact below 2**24
-                exact32 = self.n_firms * float(matrix.max()) < 2**24
-                self.dense = matrix.toarray().astype(np.float32 if exact32 else np.float64)
+                self.dense = matrix.toarray().astype(self.dtype)
             else:
-                self.sparse_t = matrix.T.tocsr()
+                self.sparse_t = matrix.T.tocsr().astype(self.dtype)
 
     def draw(self, rng: np.random.Generator, rows: int) -> np.ndarray:
         if self.unit == "departure":
@@ -227,14 +229,14 @@ class _CellSampler:
             if self.dense is not None:
                 idx += offsets[:r] * self.n_firms
                 mult = np.bincount(idx.ravel(), minlength=r * self.n_firms).reshape(r, self.n_firms)
-                out[lo:lo + r] = mult.astype(self.dense.dtype) @ self.dense
+                out[lo:lo + r] = mult.astype(self.dtype) @ self.dense
             else:
                 assert self.sparse_t is not None
                 # firm-major counts, so the sparse product reads each firm's r counts together
                 idx *= r
                 idx += offsets[:r]
                 mult_t = np.bincount(idx.ravel(), minlength=r * self.n_firms).reshape(self.n_firms, r)
-                out[lo:lo + r] = (self.sparse_t @ mult_t.astype(np.float64)).T
+                out[lo:lo + r] = (self.sparse_t @ mult_t.astype(self.dtype)).T
         return out
 
 
