@@ -32,6 +32,7 @@ ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "demo_data"
 SCREENS = ROOT / "docs" / "screens"
 WIDTH = 1300
+MAX_SCREEN_BYTES = 450 * 1024
 UNMAPPED_CODE = "Merger - role eliminated"  # the word rules cannot place it (demo_data/README.md)
 
 
@@ -87,7 +88,15 @@ class Screens:
         if not self.enabled:
             return
         page.wait_for_timeout(300)  # let plotly's transitions and htmx settle
-        page.screenshot(path=str(SCREENS / f"{self.n:02d}-{name}.png"), full_page=True)
+        target = SCREENS / f"{self.n:02d}-{name}.png"
+        page.screenshot(path=str(target), full_page=True)
+        if target.stat().st_size > MAX_SCREEN_BYTES:
+            # long pages: a 256-colour palette keeps the flat UI readable at a fraction of the size
+            from PIL import Image
+
+            with Image.open(target) as image:
+                image.convert("RGB").quantize(colors=256, method=Image.Quantize.FASTOCTREE).save(
+                    target, optimize=True)
 
 
 @pytest.fixture
