@@ -27,12 +27,6 @@ from app.demo import load_demo
 from app.store import Store
 from app.web.app import create_app
 
-pytestmark = pytest.mark.filterwarnings(
-    # upload routes leave Starlette's spooled files to the garbage collector (test_security pins that bug)
-    "ignore::pytest.PytestUnraisableExceptionWarning",
-)
-
-
 # The schema is loaded when the module is collected (schemathesis' lazy fixture loader does not work with
 # this pytest), so the app sits over an empty temporary database that the fixture below fills with the
 # demo roster before the first case runs, and removes afterwards.

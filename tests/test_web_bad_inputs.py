@@ -19,9 +19,6 @@ from app.config import Settings
 from app.store import Store
 from app.web.app import create_app
 
-# upload routes leave Starlette's spooled files to the garbage collector (test_security pins that bug)
-pytestmark = pytest.mark.filterwarnings("ignore::pytest.PytestUnraisableExceptionWarning")
-
 BAD = Path(__file__).parent / "data" / "bad"
 CORPUS = sorted(p.name for p in BAD.iterdir() if p.is_file() and p.suffix != ".py")
 SAME = {"origin": "http://testserver"}
@@ -97,8 +94,6 @@ def test_bad_file_through_the_upload_page(web: tuple[TestClient, Store], name: s
     assert store.counts() == before
 
 
-@pytest.mark.xfail(strict=True, reason="app bug: app/stats/cells.py:34 fillna('unmapped') on an all-NaN float "
-                   "column raises pandas' Pandas4Warning for a roster that has no mapping yet")
 def test_pages_of_a_fresh_roster_without_a_mapping(tmp_path: Path) -> None:
     """Right after an upload no mapping is chosen: every page must answer (warnings are errors here)."""
     store = Store(f"sqlite:///{tmp_path / 'fresh.db'}")
