@@ -7,6 +7,7 @@ Each variant is fitted on the same window; the differences from the reference ar
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -49,7 +50,7 @@ class Robustness:
     sentence: str
 
 
-def _describe(base: dict[str, str], other: dict[str, str], roster_codes: set[str]) -> tuple[str, ...]:
+def _describe(base: Mapping[str, str], other: Mapping[str, str], roster_codes: set[str]) -> tuple[str, ...]:
     diff = diff_mappings({k: v for k, v in base.items() if k in roster_codes},
                          {k: v for k, v in other.items() if k in roster_codes})
     parts = [f"{code}: {old} → {new}" for code, old, new in diff.moved]
@@ -70,7 +71,7 @@ def _bootstrap_interval(store: Store, inp: AnalysisInput, name: str, version: in
     return None, "no stored bootstrap run for this mapping and window"
 
 
-def _fit_variant(inp: AnalysisInput, categories: dict[str, str], label: str, kind: str,
+def _fit_variant(inp: AnalysisInput, categories: Mapping[str, str], label: str, kind: str,
                  changes: tuple[str, ...], boot: tuple[tuple[float, float] | None, str]) -> Variant:
     records = inp.records.assign(category=assign_categories(inp.records["reason"], categories))
     cells = build_cells(records, inp.window)
@@ -101,7 +102,7 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
     """Fit the straight trend under each variant of the mapping (see module docstring)."""
     if inp.mapping is None:
         raise ValueError("Robustness needs a reference mapping; choose one on the Reason codes page.")
-    base = dict(inp.mapping.categories)
+    base: dict[str, str] = dict(inp.mapping.categories)
     roster_codes = set(inp.records["reason"].astype(str))
     variants = [_fit_variant(inp, base, inp.mapping_label, "reference", ("the roster's mapping",),
                              _bootstrap_interval(store, inp, inp.mapping.name, inp.mapping.version))]
