@@ -112,7 +112,7 @@ def main() -> None:
         ("straight trend, firms", cells, linear, "firm", "linear", 1.5),
         ("sector-adjusted, firms", sector_cells, sector, "firm", "sector", 5.0),
     ]
-    rows = [(label, unit, model, *best_of(3, c, d, unit, B), target)
+    rows = [(label, unit, model, *best_of(5, c, d, unit, B), target)
             for label, c, d, unit, model, target in tasks]
 
     loop = {(unit, model): obvious_loop(records, unit, model, args.loop, seed=2)
