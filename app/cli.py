@@ -87,10 +87,9 @@ def cmd_serve(args: argparse.Namespace) -> int:
         roster = load_demo(store)
         print(f"Demo roster {roster.name!r} loaded ({roster.accepted} departures).", file=sys.stderr)
     if args.host not in ("127.0.0.1", "localhost", "::1"):
-        print(f"Warning: serving on {args.host} exposes rosters with personal data to other machines on "
-              "the network; Helmshift has no login.", file=sys.stderr)
-        settings = Settings(db_url=settings.db_url, upload_limit=settings.upload_limit,
-                            allowed_hosts=settings.allowed_hosts + (args.host,))
+        print(f"Warning: listening on {args.host} lets other machines reach rosters that hold personal data, "
+              "and Helmshift has no login. Requests are still refused unless their Host header is this "
+              "machine or a name listed in HELMSHIFT_ALLOWED_HOSTS (comma-separated).", file=sys.stderr)
     app = create_app(settings, store)
     print(f"Helmshift {__version__} on http://{args.host}:{args.port}/", file=sys.stderr)
     uvicorn.run(app, host=args.host, port=args.port, log_level="warning")

@@ -41,6 +41,8 @@ class ReadLimits:
     max_cell_chars: int = 10_000
     max_uncompressed: int = 200 * 1024 * 1024
     max_zip_entries: int = 10_000
+    #: far above any real roster; stops a small, highly compressed workbook from tying up the server
+    max_data_rows: int = 500_000
 
 
 DEFAULT_LIMITS = ReadLimits()
@@ -229,7 +231,7 @@ def read_csv_text(
             table.bad_rows.append(RejectedRow(line=line, raw=json.dumps([raw], ensure_ascii=False),
                                               reason=reason))
             continue
-        _add_row(table, line, row)
+        _add_row(table, line, row, limits)
         if max_rows is not None and len(table.rows) >= max_rows:
             break
     if table is None:
@@ -273,7 +275,12 @@ def _start_table(header: list[str], line: int, limits: ReadLimits) -> RawTable:
     return RawTable(headers=names, header_line=line)
 
 
-def _add_row(table: RawTable, line: int, row: list[str]) -> None:
+def _add_row(table: RawTable, line: int, row: list[str], limits: ReadLimits = DEFAULT_LIMITS) -> None:
+    if len(table.rows) + len(table.bad_rows) >= limits.max_data_rows:
+        raise RosterFileError(
+            f"The file has more than {limits.max_data_rows:,} data rows (line {line}); a roster that large is "
+            "almost certainly not a departures roster. Split it or filter it before importing."
+        )
     width = len(table.headers)
     if not "".join(row).strip():
         table.blank_rows += 1
@@ -371,7 +378,7 @@ def read_xlsx(
                     continue
                 if len(row) < len(table.headers):
                     row += [""] * (len(table.headers) - len(row))  # Excel omits trailing empty cells
-                _add_row(table, line, row)
+                _add_row(table, line, row, limits)
                 if max_rows is not None and len(table.rows) >= max_rows:
                     break
         except RosterFileError:

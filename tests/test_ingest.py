@@ -381,3 +381,15 @@ def test_validate_returns_the_store_fields() -> None:
     # the raw column is exactly what the json module writes for the original row
     for raw, row in zip(records["raw"], ROWS, strict=True):
         assert raw == json.dumps(dict(zip(DEMO_HEADER, row, strict=True)), ensure_ascii=False)
+
+
+def test_row_limit_refuses_oversized_files_before_storing(store) -> None:
+    # a hostile but small file (e.g. a highly compressed workbook) must not tie up the server:
+    # past ReadLimits.max_data_rows the whole file is refused with a sentence naming the line
+    from app.readers import ReadLimits
+
+    data = ("Company ID,Reason,Year\n" + "F1,Retired,2010\n" * 30).encode()
+    before = store.counts()
+    with pytest.raises(RosterFileError, match=r"more than 20 data rows \(line 22\)"):
+        import_roster(store, data, "big.csv", limits=ReadLimits(max_data_rows=20))
+    assert store.counts() == before

@@ -25,7 +25,7 @@ COUNT_COLUMNS: tuple[str, ...] = (*CATEGORIES, UNMAPPED)
 TABLE_COLUMNS: tuple[str, ...] = ("year", "departures", *COUNT_COLUMNS)
 
 _BASIS_WORDS: dict[str, str] = {
-    "not_excluded": "records not mapped to excluded",
+    "not_excluded": "counted records (all but excluded codes)",
     "departures": "records",
     "counted": "forced plus voluntary departures",
 }

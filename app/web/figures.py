@@ -4,8 +4,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import plotly.graph_objects as go
+
 from app.analysis import AnalysisInput, provenance_for
-from app.charts import PAGE_CONFIG, figure_json
+from app.charts import PAGE_CONFIG, figure_json, untitled
 
 
 @dataclass(frozen=True)
@@ -18,9 +20,12 @@ class FigureSpec:
         return self.json
 
 
-def figure_spec(fig: object) -> FigureSpec:
+def figure_spec(fig: go.Figure, *, titled: bool = True) -> FigureSpec:
+    """The hand-off; ``titled=False`` where the page already states the finding in text above the chart."""
     import json
 
+    if not titled:
+        fig = untitled(fig)
     return FigureSpec('{"figure": ' + figure_json(fig) + ', "config": ' + json.dumps(PAGE_CONFIG) + "}")
 
 

@@ -51,6 +51,7 @@ class RunPage:
     method: str
     rows: list[dict[str, Any]] = field(default_factory=list)
     comparison: str | None = None
+    comparison_found: bool = False
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     percent: int = 0
 
@@ -90,10 +91,13 @@ def _width(iv: Any) -> float | None:
     return math.log(iv[1]) - math.log(iv[0])
 
 
-def compare_units(store: Store, run: Run, method: str) -> str | None:
-    """Say whether firm resampling widened the interval against departure resampling, same settings."""
+def compare_units(store: Store, run: Run, method: str) -> tuple[str | None, bool]:
+    """Say whether firm resampling widened the interval against departure resampling, same settings.
+
+    Returns the sentence and whether a run to compare with was found.
+    """
     if run.result is None:
-        return None
+        return None, False
     other_unit = "departure" if run.params["unit"] == "firm" else "firm"
     for other in store.list_runs(run.roster_id, "bootstrap"):
         if (other.status == "done" and other.params.get("unit") == other_unit and other.result
@@ -104,7 +108,7 @@ def compare_units(store: Store, run: Run, method: str) -> str | None:
             wf = _width(firm.result["conf_int"][method]) if firm.result else None
             wd = _width(dep.result["conf_int"][method]) if dep.result else None
             if not wf or not wd:
-                return None
+                return None, False
             change = wf / wd - 1
             # below ~5% the difference is within the Monte Carlo noise of a few thousand resamples
             verb = "widened" if change > 0.05 else "narrowed" if change < -0.05 else "barely changed"
@@ -113,9 +117,9 @@ def compare_units(store: Store, run: Run, method: str) -> str | None:
                     if change > 0.05 else "")
             return (f"Resampling whole firms {verb} the 95% {METHOD_LABELS[method]} interval{amount} compared with "
                     f"resampling departures (run {dep.id if firm is run else firm.id}, same data, mapping and "
-                    f"window; widths on the log scale).{note}")
+                    f"window; widths on the log scale).{note}"), True
     return (f"No finished {other_unit}-resampling run with the same data, mapping and window yet; start one to see "
-            "whether firm clustering widens the interval.")
+            "whether firm clustering widens the interval."), False
 
 
 def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
@@ -138,7 +142,8 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
     except (StoreError, TrendError) as exc:
         rows.append({"method": "model-based", "interval": None, "mc_error": None, "source": str(exc)})
     fig = bootstrap_finding(store, run.id, method).figure
-    return RunPage(roster, run, method, rows, compare_units(store, run, method), figure_spec(fig), 100)
+    comparison, found = compare_units(store, run, method)
+    return RunPage(roster, run, method, rows, comparison, found, figure_spec(fig, titled=False), 100)
 
 
 @router.get("/rosters/{roster_id}/resampling", response_class=HTMLResponse, name="resampling_page")

@@ -66,7 +66,7 @@ def sectors_data(store: Store, roster_id: int, *, min_departures: int = 20) -> S
         return SectorsPage(roster, "no mapping", None, None, None, str(exc))
     finding = sectors_finding_from(inp, result)
     return SectorsPage(roster, inp.mapping_label, inp.window, result, finding.takeaway, None,
-                       figure_spec(finding.figure), inp.warnings())
+                       figure_spec(finding.figure, titled=False), inp.warnings())
 
 
 def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: list[str]) -> RobustnessPage:
@@ -82,7 +82,8 @@ def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: lis
         return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc))
     fig = forest_figure(robustness_rows(result), title=result.sentence.split(";")[0],
                         source=source_line(inp, interval_method="profile likelihood, 95%"))
-    return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, figure_spec(fig),
+    return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None,
+                          figure_spec(fig, titled=False),
                           inp.warnings())
 
 

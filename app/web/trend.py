@@ -85,7 +85,7 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
-        figure=figure_spec(fig), table=_odds_table(fit),
+        figure=figure_spec(fig, titled=False), table=_odds_table(fit),
     )
 
 
