@@ -173,6 +173,9 @@ class StoreError(ValueError):
     """A request the store cannot satisfy (unknown roster, duplicate name, ...)."""
 
 
+MAX_ID = 2**63 - 1  # SQLite INTEGER range; larger ids cannot exist and must not reach the driver
+
+
 def now_iso() -> str:
     return datetime.now(UTC).replace(microsecond=0).isoformat()
 
@@ -367,7 +370,8 @@ class Store:
         with self.engine.connect() as conn:
             row = None
             if isinstance(ref, int) or (isinstance(ref, str) and ref.isdigit()):
-                row = conn.execute(select(rosters).where(rosters.c.id == int(ref))).first()
+                if 0 < int(ref) <= MAX_ID:
+                    row = conn.execute(select(rosters).where(rosters.c.id == int(ref))).first()
             if row is None:
                 row = conn.execute(select(rosters).where(rosters.c.name == str(ref))).first()
         if row is None:
@@ -563,6 +567,8 @@ class Store:
         )
 
     def get_run(self, run_id: int) -> Run:
+        if not 0 < run_id <= MAX_ID:
+            raise StoreError(f"No run number {run_id} is stored.")
         with self.engine.connect() as conn:
             row = conn.execute(select(runs).where(runs.c.id == run_id)).first()
         if row is None:

@@ -218,7 +218,7 @@ def test_an_analysts_week_in_the_browser(browser_page: tuple[Any, Watch, Any], t
     wait_drawn(page, "fig-bootstrap")
     assert page.locator(".badge.running, .badge.queued").count() == 0
     assert page.get_by_text("95% intervals for the odds ratio per year").is_visible()
-    assert "B = 20000" in page.inner_text("main")
+    assert "B = 20,000" in page.inner_text("main")
     assert page.locator("table tbody tr", has_text="BCa").count() == 1
     shots.shoot(page, "run")
     png = download(page, ".chart-menu a:text-is('PNG')", tmp_path)
