@@ -647,7 +647,8 @@ def test_serve_on_all_interfaces_prints_a_warning(tmp_path: Path) -> None:
             if not line or b"Warning" in line:
                 break
         text = line.decode()
-        assert "Warning: serving on 0.0.0.0 exposes rosters with personal data" in text
+        assert "Warning: listening on 0.0.0.0 lets other machines reach rosters that hold personal data" in text
+        assert "HELMSHIFT_ALLOWED_HOSTS" in text
         assert "no login" in text
     finally:
         proc.send_signal(signal.SIGTERM)
