@@ -375,7 +375,9 @@ class Store:
             if row is None:
                 row = conn.execute(select(rosters).where(rosters.c.name == str(ref))).first()
         if row is None:
-            raise StoreError(f"No roster called {ref!r}; `helmshift import` lists what was stored.")
+            names = [r.name for r in self.list_rosters()]
+            known = f"stored rosters: {', '.join(repr(n) for n in names[:10])}" if names else "no roster is stored yet"
+            raise StoreError(f"No roster called {ref!r}; {known}.")
         return self._roster_from_row(row)
 
     def find_roster_by_sha(self, sha256: str) -> Roster | None:
