@@ -369,9 +369,9 @@ class Store:
         """Find a roster by id or by name; raise ``StoreError`` naming what was asked for."""
         with self.engine.connect() as conn:
             row = None
-            if isinstance(ref, int) or (isinstance(ref, str) and ref.isdigit()):
-                if 0 < int(ref) <= MAX_ID:
-                    row = conn.execute(select(rosters).where(rosters.c.id == int(ref))).first()
+            numeric = isinstance(ref, int) or (isinstance(ref, str) and ref.isdigit())
+            if numeric and 0 < int(ref) <= MAX_ID:
+                row = conn.execute(select(rosters).where(rosters.c.id == int(ref))).first()
             if row is None:
                 row = conn.execute(select(rosters).where(rosters.c.name == str(ref))).first()
         if row is None:
