@@ -521,6 +521,8 @@ class Store:
 
     def get_mapping(self, name: str, version: int | None = None) -> MappingVersion:
         """A version of a mapping (the latest when ``version`` is None)."""
+        if version is not None and not 0 < version <= MAX_ID:
+            raise StoreError(f"No version {version} of mapping {name!r} is stored.")
         with self.engine.connect() as conn:
             q = (select(mapping_versions).join(mappings, mapping_versions.c.mapping_id == mappings.c.id)
                  .where(mappings.c.name == name))
