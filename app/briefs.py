@@ -10,6 +10,7 @@ from typing import Literal, get_args
 import pandas as pd
 
 from app.analysis import AnalysisInput, run_trend
+from app.charts import untitled
 from app.deck import Finding, build_deck
 from app.export import Provenance, figure_bytes
 from app.findings import CHART_NAMES, ChartFinding, build_finding, latest_bootstrap
@@ -61,8 +62,7 @@ def deck_file(store: Store, inp: AnalysisInput, charts: Sequence[str] = DEFAULT_
     if not findings:
         raise ValueError("Choose at least one finding for the deck.")
     provenance = _deck_provenance(findings, findings[0].provenance)
-    slides = [Finding(title=f.figure.layout.title.text or f.name, takeaway=f.takeaway, figure=f.figure)
-              for f in findings]
+    slides = [Finding(title=f.title or f.name, takeaway=f.takeaway, figure=f.figure) for f in findings]
     return build_deck(slides, provenance, title=f"Forced chief-executive departures: {inp.roster.name}",
                       subtitle=f"Fiscal years {inp.window[0]}–{inp.window[1]} · mapping {inp.mapping_label}")
 
@@ -99,7 +99,8 @@ def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None) -
               + (" Bootstrap intervals resample whole firms, keeping each firm's departures together."
                  if run is not None and run.params.get("unit") == "firm" else ""))
     provenance = _deck_provenance([trend, second], trend.provenance)
-    return build_brief(headline=trend_sentence(fit), charts=[trend.figure, second.figure],
+    # the headline is the trend chart's own title, so that chart goes in without it
+    return build_brief(headline=trend_sentence(fit), charts=[untitled(trend.figure), second.figure],
                        table=pd.DataFrame(rows), method_text=method, provenance=provenance)
 
 

@@ -8,7 +8,7 @@ or part of the one-page brief.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Literal, get_args
+from typing import TYPE_CHECKING, Literal, get_args
 
 import numpy as np
 import pandas as pd
@@ -21,6 +21,9 @@ from app.stats.sectors import SectorTrends
 from app.stats.trend import TrendFit, trend_sentence
 from app.store import Run, Store, StoreError
 
+if TYPE_CHECKING:
+    from app.robustness import Robustness
+
 ChartName = Literal["coverage", "trend", "bootstrap", "sectors", "robustness"]
 CHART_NAMES: tuple[ChartName, ...] = get_args(ChartName)
 METHOD_LABELS = {"percentile": "percentile", "basic": "basic", "bca": "BCa"}
@@ -28,12 +31,13 @@ METHOD_LABELS = {"percentile": "percentile", "basic": "basic", "bca": "BCa"}
 
 @dataclass(frozen=True)
 class ChartFinding:
-    """A chart with the one sentence it supports and where its numbers came from."""
+    """A chart, its headline (the chart's title), the supporting sentence, and where its numbers came from."""
 
     name: ChartName
     figure: go.Figure
     takeaway: str
     provenance: Provenance
+    title: str = ""
 
 
 def coverage_finding(inp: AnalysisInput) -> ChartFinding:
@@ -51,7 +55,7 @@ def coverage_finding(inp: AnalysisInput) -> ChartFinding:
     prov = provenance_for(inp, model="coverage count per fiscal year", interval_method="none")
     fig = coverage_figure(inp.coverage, inp.window, sorted({f.year for f in inp.flags}), title=title,
                           source=prov.short())
-    return ChartFinding("coverage", fig, takeaway, prov)
+    return ChartFinding("coverage", fig, takeaway, prov, title)
 
 
 def trend_finding_from_fit(inp: AnalysisInput, fit: TrendFit, model: str) -> ChartFinding:
@@ -60,7 +64,11 @@ def trend_finding_from_fit(inp: AnalysisInput, fit: TrendFit, model: str) -> Cha
     observed = fit.observed.assign(low=fit.observed["wilson_low"], high=fit.observed["wilson_high"])
     sentence = trend_sentence(fit)
     fig = trend_figure(observed, fit.fitted, title=sentence, source=prov.short())
-    return ChartFinding("trend", fig, sentence, prov)
+    wald = fit.conf_int.get("wald")
+    detail = (f"Odds ratio per year {fit.odds_ratio:.3f} (95% Wald {wald[0]:.3f} to {wald[1]:.3f}), from "
+              f"{fit.departures:,} departures of which {fit.forced:,} were forced; Pearson dispersion "
+              f"{fit.dispersion:.2f}." if fit.odds_ratio is not None and wald is not None else sentence)
+    return ChartFinding("trend", fig, detail, prov, sentence)
 
 
 def trend_finding(store: Store, inp: AnalysisInput, model: str = "linear") -> ChartFinding:
@@ -108,7 +116,12 @@ def bootstrap_finding(store: Store, run_id: int, method: str = "bca") -> ChartFi
     ors = np.exp(store.replicates(run.id))
     fig = bootstrap_histogram(ors, estimate, (lo if lo is not None else np.nan, hi if hi is not None else np.nan),
                               method_label=f"95% {label}", title=takeaway, source=prov.short())
-    return ChartFinding("bootstrap", fig, takeaway, prov)
+    failed = int(result["failed"])
+    detail = (f"{'Whole firms were' if run.params['unit'] == 'firm' else 'Departures were'} drawn with replacement "
+              f"(seed {run.params['seed']}); {failed:,} resample(s) could not be fitted"
+              + (" and are reported, not redrawn." if failed else ".")
+              + " The dashed line marks no change (odds ratio 1).")
+    return ChartFinding("bootstrap", fig, detail, prov, takeaway)
 
 
 def _pair(p: tuple[float, float] | None) -> tuple[float, float]:
@@ -147,24 +160,31 @@ def sectors_finding_from(inp: AnalysisInput, result: SectorTrends) -> ChartFindi
                      "low": lo, "high": hi, "group": "sector"})
     verdict = sector_verdict(result)
     prov = provenance_for(inp, model="sector", by_sector=True, interval_method="profile likelihood, 95%")
-    fig = forest_figure(pd.DataFrame(rows), title=verdict.split(" (")[0], source=prov.short())
-    return ChartFinding("sectors", fig, verdict, prov)
+    title = verdict.split(" (")[0]
+    fig = forest_figure(pd.DataFrame(rows), title=title, source=prov.short())
+    return ChartFinding("sectors", fig, verdict, prov, title)
 
 
 def sectors_finding(store: Store, inp: AnalysisInput, min_departures: int = 20) -> ChartFinding:
     return sectors_finding_from(inp, run_sectors(store, inp, min_departures=min_departures)[0])
 
 
+def robustness_finding_from(inp: AnalysisInput, result: Robustness) -> ChartFinding:
+    from app.robustness import robustness_rows
+
+    prov = provenance_for(inp, interval_method="profile likelihood, 95%")
+    title = result.sentence.split(": ")[0].split(", but")[0]
+    fig = forest_figure(robustness_rows(result), title=title, source=prov.short())
+    return ChartFinding("robustness", fig, result.sentence, prov, title)
+
+
 def robustness_finding(store: Store, inp: AnalysisInput, extra: list[str] | None = None,
                        vary: list[str] | None = None) -> ChartFinding:
-    from app.robustness import check_robustness, robustness_rows
+    from app.robustness import check_robustness
 
     if extra is None:
         extra = [f"{n}:{v}" for n, v in store.list_mappings() if not (inp.mapping and n == inp.mapping.name)]
-    result = check_robustness(store, inp, extra_mappings=extra, vary=vary or [])
-    prov = provenance_for(inp, interval_method="profile likelihood, 95%")
-    fig = forest_figure(robustness_rows(result), title=result.sentence.split(";")[0], source=prov.short())
-    return ChartFinding("robustness", fig, result.sentence, prov)
+    return robustness_finding_from(inp, check_robustness(store, inp, extra_mappings=extra, vary=vary or []))
 
 
 def build_finding(store: Store, inp: AnalysisInput, chart: str, *, run_id: int | None = None,

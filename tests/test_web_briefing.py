@@ -41,7 +41,7 @@ def test_page_previews_every_finding(client: Any, demo_store: Store, no_browser:
     run = run_bootstrap_now(demo_store, load_input(demo_store, ROSTER), unit="firm", resamples=200, seed=3)
     page = client.get(f"/rosters/{ROSTER}/briefing?chart=bootstrap&chart=trend").context["page"]
     assert page.run_id == run["run"] and [i.name for i in page.items] == ["bootstrap", "trend"]
-    assert page.items[0].error is None and "200 times" in page.items[0].takeaway
+    assert page.items[0].error is None and "(seed 3)" in page.items[0].takeaway
     assert client.get(f"/rosters/{ROSTER}/briefing?chart=pie").status_code == 400
     assert client.get(f"/api/rosters/{ROSTER}/briefing?run=x").status_code == 400
 
@@ -102,3 +102,7 @@ def test_png_chart_and_deck_downloads_with_a_browser(client: Any, monkeypatch: p
     slides = Presentation(io.BytesIO(deck.content)).slides
     assert len(slides) >= 3  # title, two findings (and methods)
     assert zipfile.is_zipfile(io.BytesIO(deck.content))
+    # slide text is plain text: no chart markup (such as plotly's <br> line breaks) may leak into it
+    texts = [shape.text_frame.text for slide in slides for shape in slide.shapes if shape.has_text_frame]
+    assert texts and not any("<br>" in t or "<b>" in t for t in texts)
+    assert any(t.startswith("Across ") and "a year" in t for t in texts)  # the trend slide's headline
