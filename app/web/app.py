@@ -9,6 +9,7 @@ from pathlib import Path
 from fastapi import FastAPI, Request
 from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, RedirectResponse, Response
 from fastapi.staticfiles import StaticFiles
+from starlette.exceptions import HTTPException
 
 from app import __version__
 from app.config import Settings
@@ -16,6 +17,7 @@ from app.store import Store
 from app.web import briefing, coverage, reasons, resampling, rosters, sectors, trend
 from app.web.deps import BadRequest, NotFound
 from app.web.rendering import STATIC_DIR, render, templates
+from app.web.schemas import HealthBody
 from app.web.security import SecurityMiddleware
 from app.web.uploads import UploadStash
 
@@ -82,7 +84,8 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     def home(request: Request) -> RedirectResponse:
         return RedirectResponse(request.url_for("rosters_page"), status_code=303)
 
-    @app.get("/api/health", name="health")
+    @app.get("/api/health", name="health", response_model=None,
+             responses={200: {"model": HealthBody, "description": "The app answers; its version and schema"}})
     def health() -> dict[str, object]:
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
@@ -96,6 +99,15 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     @app.exception_handler(BadRequest)
     def bad_request(request: Request, exc: BadRequest) -> Response:
         return _error(request, 400, str(exc))
+
+    @app.exception_handler(HTTPException)
+    def framework_error(request: Request, exc: HTTPException) -> Response:
+        # an address no route matches (e.g. a mapping name with a line break), a wrong method: the same
+        # error page or {"error": ...} body as the app's own errors, not the framework's {"detail": ...}
+        message = f"There is no page at {request.url.path}." if exc.status_code == 404 else str(exc.detail)
+        response = _error(request, exc.status_code, message)
+        response.headers.update(exc.headers or {})
+        return response
 
     return app
 

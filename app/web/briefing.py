@@ -16,6 +16,8 @@ from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
 from app.web.rendering import as_json, render
+from app.web.route_docs import WINDOW_QUERY, api_errors, download, page_errors, query
+from app.web.schemas import BriefingBody
 
 router = APIRouter()
 
@@ -97,14 +99,22 @@ def _run_arg(request: Request) -> int | None:
     return int(raw)
 
 
-@router.get("/rosters/{roster_id}/briefing", response_class=HTMLResponse, name="briefing_page")
+_CHART = ("chart", {"type": "array", "items": {"type": "string", "enum": list(CHART_NAMES)}},
+          "findings to include (repeatable; default: the standard deck)")
+_RUN = ("run", {"type": "integer", "minimum": 0}, "bootstrap run to use (default: the latest that fits)")
+
+
+@router.get("/rosters/{roster_id}/briefing", response_class=HTMLResponse, name="briefing_page",
+            responses=page_errors(400, 404), openapi_extra=query(_CHART, _RUN))
 def briefing_page(request: Request, roster_id: int) -> HTMLResponse:
     page = briefing_data(app_store(request), roster_id, chosen=_chosen(request), run_id=_run_arg(request))
     return render(request, "briefing.html", page, roster=page.roster, active="briefing_page",
                   cautions_open=True)
 
 
-@router.get("/api/rosters/{roster_id}/briefing", name="briefing_api")
+@router.get("/api/rosters/{roster_id}/briefing", name="briefing_api", response_model=None,
+            responses={200: {"model": BriefingBody, "description": "The chosen findings with takeaways"},
+                       **api_errors(400, 404)}, openapi_extra=query(_CHART, _RUN))
 def briefing_api(request: Request, roster_id: int) -> JSONResponse:
     return as_json(briefing_data(app_store(request), roster_id, chosen=_chosen(request), run_id=_run_arg(request)))
 
@@ -134,7 +144,13 @@ def _export(make: Any) -> bytes:
     return data
 
 
-@router.get("/rosters/{roster_id}/charts/{chart}.{fmt}", name="chart_export")
+@router.get("/rosters/{roster_id}/charts/{chart}.{fmt}", name="chart_export", response_class=Response,
+            responses={**download("One chart as a file", *(MEDIA_TYPES[f] for f in ("png", "svg", "pdf"))),
+                       **page_errors(400, 404)},
+            openapi_extra=query(_RUN, *WINDOW_QUERY,
+                                ("method", {"type": "string", "enum": ["percentile", "basic", "bca"]},
+                                 "bootstrap interval marked"),
+                                ("model", {"type": "string", "enum": ["linear", "spline", "sector"]}, "trend model")))
 def chart_export(request: Request, roster_id: int, chart: str, fmt: str) -> Response:
     if chart not in CHART_NAMES or fmt not in ("png", "svg", "pdf"):
         raise NotFound(f"No chart {chart}.{fmt}; charts: {', '.join(CHART_NAMES)}; formats: png, svg, pdf.")
@@ -146,7 +162,9 @@ def chart_export(request: Request, roster_id: int, chart: str, fmt: str) -> Resp
     return _download(data, fmt, f"helmshift-{chart}-{roster_id}.{fmt}")
 
 
-@router.get("/rosters/{roster_id}/briefing/deck.pptx", name="deck_export")
+@router.get("/rosters/{roster_id}/briefing/deck.pptx", name="deck_export", response_class=Response,
+            responses={**download("The findings as a slide deck", MEDIA_TYPES["pptx"]), **page_errors(400, 404)},
+            openapi_extra=query(_CHART, _RUN, *WINDOW_QUERY))
 def deck_export(request: Request, roster_id: int) -> Response:
     store = app_store(request)
     inp = _input(store, roster_id, request)
@@ -154,7 +172,9 @@ def deck_export(request: Request, roster_id: int) -> Response:
     return _download(data, "pptx", f"helmshift-deck-{roster_id}.pptx")
 
 
-@router.get("/rosters/{roster_id}/briefing/brief.pdf", name="brief_export")
+@router.get("/rosters/{roster_id}/briefing/brief.pdf", name="brief_export", response_class=Response,
+            responses={**download("The two-page brief", MEDIA_TYPES["brief"]), **page_errors(400, 404)},
+            openapi_extra=query(_RUN, *WINDOW_QUERY))
 def brief_export(request: Request, roster_id: int) -> Response:
     store = app_store(request)
     inp = _input(store, roster_id, request)

@@ -17,6 +17,8 @@ from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
 from app.web.forms import read_form
 from app.web.rendering import as_json, render
+from app.web.route_docs import api_errors, form_body, page_errors, query, redirect
+from app.web.schemas import CoverageBody
 
 router = APIRouter()
 
@@ -65,14 +67,21 @@ def _threshold(request: Request) -> float:
     return value
 
 
-@router.get("/rosters/{roster_id}/coverage", response_class=HTMLResponse, name="coverage_page")
+_THRESHOLD = query(("threshold", {"type": "number", "minimum": 0.05, "maximum": 1, "default": 0.5},
+                    "a year is covered with at least this share of the median year's count"))
+
+
+@router.get("/rosters/{roster_id}/coverage", response_class=HTMLResponse, name="coverage_page",
+            responses=page_errors(400, 404), openapi_extra=_THRESHOLD)
 def coverage_page(request: Request, roster_id: int) -> HTMLResponse:
     page = coverage_data(app_store(request), roster_id, threshold=_threshold(request))
     return render(request, "coverage.html", page, roster=page.roster, active="coverage",
                   context_line=f"mapping {page.mapping_label} · window {page.window[0]}–{page.window[1]}")
 
 
-@router.get("/api/rosters/{roster_id}/coverage", name="coverage_api")
+@router.get("/api/rosters/{roster_id}/coverage", name="coverage_api", response_model=None,
+            responses={200: {"model": CoverageBody, "description": "Departures per year and the window"},
+                       **api_errors(400, 404)}, openapi_extra=_THRESHOLD)
 def coverage_api(request: Request, roster_id: int) -> JSONResponse:
     return as_json(coverage_data(app_store(request), roster_id, threshold=_threshold(request)))
 
@@ -84,7 +93,13 @@ def _year(form: Any, key: str) -> int:
     return int(raw)
 
 
-@router.post("/rosters/{roster_id}/window", name="window_save")
+@router.post("/rosters/{roster_id}/window", name="window_save", status_code=303,
+             response_class=RedirectResponse, responses=redirect("the Coverage page", page_errors(400, 404)),
+             openapi_extra=form_body({
+                 "window_from": {"type": "integer", "minimum": 0, "description": "first fiscal year"},
+                 "window_to": {"type": "integer", "minimum": 0, "description": "last fiscal year"},
+                 "reset": {"type": "string", "description": "any value: go back to the suggested window"},
+             }))
 async def window_save(request: Request, roster_id: int) -> RedirectResponse:
     """Remember the analysis window for this roster; trend and resampling use it by default."""
     store = app_store(request)

@@ -10,11 +10,23 @@ from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Resp
 
 from app.analysis import export_mapping_csv, import_mapping_file, load_input
 from app.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
-from app.store import MappingVersion, Roster, Store, StoreError
+from app.store import MAX_ID, MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
+from app.web.route_docs import (
+    FILE,
+    GUARDS,
+    api_errors,
+    download,
+    form_body,
+    merged,
+    page_errors,
+    query,
+    redirect,
+)
+from app.web.schemas import ReasonsBody
 
 router = APIRouter()
 
@@ -80,6 +92,10 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
     unmapped = [r for r in rows if r.category is None]
     diff = None
     if compare and mapping:
+        missing = [v for v in compare if not 1 <= v <= mapping.version]
+        if missing:  # a version typed into the address bar, or one from before a database reset
+            raise BadRequest(f"Mapping {mapping.name!r} has no version {missing[0]}; "
+                             f"its versions are 1 to {mapping.version}.")
         old = store.get_mapping(mapping.name, compare[0])
         new = store.get_mapping(mapping.name, compare[1])
         diff = diff_mappings(old.categories, new.categories, old.labels, new.labels)
@@ -99,14 +115,22 @@ def _compare_arg(request: Request) -> tuple[int, int] | None:
     return None
 
 
-@router.get("/rosters/{roster_id}/reasons", response_class=HTMLResponse, name="reasons_page")
+_COMPARE = query(("a", {"type": "integer", "minimum": 0}, "compare this mapping version ..."),
+                 ("b", {"type": "integer", "minimum": 0}, "... with this one (both needed)"))
+
+
+@router.get("/rosters/{roster_id}/reasons", response_class=HTMLResponse, name="reasons_page",
+            responses=page_errors(400, 404),
+            openapi_extra=merged(_COMPARE, query(("saved", {"type": "string"}, "say the mapping was saved"))))
 def reasons_page(request: Request, roster_id: int) -> HTMLResponse:
     page = reasons_data(app_store(request), roster_id, compare=_compare_arg(request),
                         message=request.query_params.get("saved") and "Saved as a new version.")
     return render(request, "reasons.html", page, roster=page.roster, active="reasons")
 
 
-@router.get("/api/rosters/{roster_id}/reasons", name="reasons_api")
+@router.get("/api/rosters/{roster_id}/reasons", name="reasons_api", response_model=None,
+            responses={200: {"model": ReasonsBody, "description": "The roster's codes and its mapping"},
+                       **api_errors(400, 404)}, openapi_extra=_COMPARE)
 def reasons_api(request: Request, roster_id: int) -> JSONResponse:
     return as_json(reasons_data(app_store(request), roster_id, compare=_compare_arg(request)))
 
@@ -130,7 +154,17 @@ def _form_entries(form: Any) -> tuple[dict[str, str], dict[str, str]]:
     return categories, labels
 
 
-@router.post("/rosters/{roster_id}/reasons", name="reasons_save")
+@router.post("/rosters/{roster_id}/reasons", name="reasons_save", status_code=303,
+             response_class=RedirectResponse, responses=redirect("the Reason codes page", page_errors(400, 404)),
+             openapi_extra=form_body({
+                 "mapping_name": {"type": "string", "description": "save as this mapping (default: the current)"},
+                 "author": {"type": "string", "maxLength": 80}, "note": {"type": "string", "maxLength": 500},
+             }, pattern_properties={
+                 "^code-[0-9]+$": {"type": "string", "description": "a reason code ..."},
+                 "^cat-[0-9]+$": {"type": "string", "enum": ["", *CATEGORIES],
+                                  "description": "... its category (same number; empty: unmapped)"},
+                 "^label-[0-9]+$": {"type": "string", "description": "... and its label"},
+             }))
 async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
     """Save the categories in the form as the next version; codes of other rosters are carried over."""
     store = app_store(request)
@@ -154,7 +188,9 @@ async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
     return RedirectResponse(url, status_code=303)
 
 
-@router.post("/rosters/{roster_id}/mapping/select", name="mapping_select")
+@router.post("/rosters/{roster_id}/mapping/select", name="mapping_select", status_code=303,
+             response_class=RedirectResponse, responses=redirect("the Reason codes page", page_errors(400, 404)),
+             openapi_extra=form_body({"mapping_name": {"type": "string"}}, required=("mapping_name",)))
 async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
     store = app_store(request)
     page = reasons_data(store, roster_id)
@@ -168,7 +204,10 @@ async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
     return RedirectResponse(request.url_for("reasons_page", roster_id=page.roster.id), status_code=303)
 
 
-@router.post("/rosters/{roster_id}/mapping/import", name="mapping_import", response_model=None)
+@router.post("/rosters/{roster_id}/mapping/import", name="mapping_import", response_model=None,
+             response_class=HTMLResponse, responses={**page_errors(400, 404), **GUARDS},
+             openapi_extra=form_body({"file": FILE, "mapping_name": {"type": "string"}},
+                                     required=("file", "mapping_name"), multipart=True))
 async def mapping_import(request: Request, roster_id: int) -> Response:
     store = app_store(request)
     page = reasons_data(store, roster_id)
@@ -190,13 +229,18 @@ async def mapping_import(request: Request, roster_id: int) -> Response:
     return render(request, "reasons.html", refreshed, roster=refreshed.roster, active="reasons")
 
 
-@router.get("/mappings/{name:path}.csv", name="mapping_csv")
+@router.get("/mappings/{name:path}.csv", name="mapping_csv", response_class=Response,
+            responses={**download("The mapping version as code,category,label", "text/csv"),
+                       **page_errors(404)},
+            openapi_extra=query(("version", {"type": "integer", "minimum": 1}, "default: the latest")))
 def mapping_csv(request: Request, name: str) -> Response:
     """A mapping version as CSV; ``name`` may hold any character, slashes included."""
-    version = request.query_params.get("version")
+    raw = request.query_params.get("version")
+    version = int(raw) if raw and raw.isdigit() else None
+    if version is not None and version > MAX_ID:  # SQLite cannot even look such a number up
+        raise NotFound(f"No version {version} of mapping {name!r} is stored.")
     try:
-        text = export_mapping_csv(app_store(request), name=name,
-                                  version=int(version) if version and version.isdigit() else None)
+        text = export_mapping_csv(app_store(request), name=name, version=version)
     except StoreError as exc:
         raise NotFound(str(exc)) from exc
     safe_name = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)[:60] or "mapping"

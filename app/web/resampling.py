@@ -20,6 +20,8 @@ from app.web.deps import BadRequest, NotFound, app_jobs, app_store
 from app.web.figures import FigureSpec, figure_spec
 from app.web.forms import read_form
 from app.web.rendering import as_json, render
+from app.web.route_docs import FORM_AGAIN, api_errors, form_body, page_errors, query, redirect
+from app.web.schemas import RunBody, RunsBody
 
 router = APIRouter()
 
@@ -146,13 +148,16 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
     return RunPage(roster, run, method, rows, comparison, found, figure_spec(fig, titled=False), 100)
 
 
-@router.get("/rosters/{roster_id}/resampling", response_class=HTMLResponse, name="resampling_page")
+@router.get("/rosters/{roster_id}/resampling", response_class=HTMLResponse, name="resampling_page",
+            responses=page_errors(404))
 def resampling_page(request: Request, roster_id: int) -> HTMLResponse:
     page = resampling_data(app_store(request), roster_id)
     return render(request, "resampling.html", page, roster=page.roster, active="resampling_page")
 
 
-@router.get("/api/rosters/{roster_id}/runs", name="runs_api")
+@router.get("/api/rosters/{roster_id}/runs", name="runs_api", response_model=None,
+            responses={200: {"model": RunsBody, "description": "The roster's bootstrap runs"},
+                       **api_errors(404)})
 def runs_api(request: Request, roster_id: int) -> JSONResponse:
     return as_json(resampling_data(app_store(request), roster_id))
 
@@ -164,7 +169,15 @@ def _int_field(form: Any, key: str, default: int) -> int:
     return int(raw)
 
 
-@router.post("/rosters/{roster_id}/resampling", name="resampling_start", response_model=None)
+@router.post("/rosters/{roster_id}/resampling", name="resampling_start", response_model=None, status_code=303,
+             response_class=RedirectResponse, responses=redirect("the run's page", FORM_AGAIN, page_errors(404)),
+             openapi_extra=form_body({
+                 "unit": {"type": "string", "enum": list(UNITS), "default": "firm", "description": "what to resample"},
+                 "resamples": {"type": "integer", "minimum": 100, "maximum": MAX_RESAMPLES, "default": 2000,
+                               "description": "B, the number of resamples (thousands separators allowed)"},
+                 "seed": {"type": "integer", "minimum": 0, "maximum": 2**63 - 1, "default": 1},
+                 "model": {"type": "string", "enum": ["linear", "sector"], "default": "linear"},
+             }))
 async def resampling_start(request: Request, roster_id: int) -> Response:
     """Store the run, hand it to a worker, and go to its page (which shows the progress)."""
     store = app_store(request)
@@ -182,18 +195,28 @@ async def resampling_start(request: Request, roster_id: int) -> Response:
     return RedirectResponse(request.url_for("run_page", run_id=run_id), status_code=303)
 
 
-@router.get("/runs/{run_id}", response_class=HTMLResponse, name="run_page")
+_METHOD = query(("method", {"type": "string", "enum": list(METHODS), "default": "bca"},
+                 "the interval marked on the histogram"))
+
+
+@router.get("/runs/{run_id}", response_class=HTMLResponse, name="run_page", responses=page_errors(400, 404),
+            openapi_extra=_METHOD)
 def run_page(request: Request, run_id: int) -> HTMLResponse:
     page = run_data(app_store(request), run_id, request.query_params.get("method", "bca"))
     return render(request, "run.html", page, roster=page.roster, active="resampling_page", cautions_open=True)
 
 
-@router.get("/api/runs/{run_id}", name="run_api")
+@router.get("/api/runs/{run_id}", name="run_api", response_model=None,
+            responses={200: {"model": RunBody, "description": "One bootstrap run; intervals once it is done"},
+                       **api_errors(400, 404)}, openapi_extra=_METHOD)
 def run_api(request: Request, run_id: int) -> JSONResponse:
     return as_json(run_data(app_store(request), run_id, request.query_params.get("method", "bca")))
 
 
-@router.get("/runs/{run_id}/progress", response_class=HTMLResponse, name="run_progress")
+@router.get("/runs/{run_id}/progress", response_class=HTMLResponse, name="run_progress",
+            responses={200: {"description": "The progress partial; HX-Refresh: true once the run has ended",
+                             "headers": {"HX-Refresh": {"schema": {"type": "string", "enum": ["true"]}}}},
+                       **page_errors(404)})
 def run_progress(request: Request, run_id: int) -> HTMLResponse:
     """The progress partial, polled by the page; once the run has ended it asks the page to reload."""
     page = run_data(app_store(request), run_id)
@@ -203,7 +226,8 @@ def run_progress(request: Request, run_id: int) -> HTMLResponse:
     return response
 
 
-@router.post("/runs/{run_id}/cancel", name="run_cancel")
+@router.post("/runs/{run_id}/cancel", name="run_cancel", status_code=303, response_class=RedirectResponse,
+             responses=redirect("the run's page", page_errors(404)))
 def run_cancel(request: Request, run_id: int) -> RedirectResponse:
     store = app_store(request)
     run = _run(store, run_id)
@@ -212,7 +236,12 @@ def run_cancel(request: Request, run_id: int) -> RedirectResponse:
     return RedirectResponse(request.url_for("run_page", run_id=run.id), status_code=303)
 
 
-@router.post("/runs/{run_id}/extend", name="run_extend")
+@router.post("/runs/{run_id}/extend", name="run_extend", status_code=303, response_class=RedirectResponse,
+             responses=redirect("the run's page", page_errors(400, 404)),
+             openapi_extra=form_body({"extra": {
+                 "type": "integer", "minimum": 0, "maximum": MAX_RESAMPLES,
+                 "description": f"resamples to add (0: finish the planned ones); the total stays <= {MAX_RESAMPLES}",
+             }}))
 async def run_extend(request: Request, run_id: int) -> RedirectResponse:
     """Add resamples to a finished, cancelled or interrupted run; stored replicates are kept."""
     store = app_store(request)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import codecs
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -21,6 +22,17 @@ from app.types import ROLES
 from app.web.deps import NotFound, app_settings, app_store, app_uploads
 from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
+from app.web.route_docs import (
+    FILE,
+    FORM_AGAIN,
+    GUARDS,
+    api_errors,
+    download,
+    form_body,
+    page_errors,
+    redirect,
+)
+from app.web.schemas import RosterDetailBody, RosterImportBody, RostersBody
 
 router = APIRouter()
 
@@ -101,7 +113,8 @@ def rosters_page(request: Request) -> HTMLResponse:
     return render(request, "rosters.html", page, active="rosters")
 
 
-@router.get("/api/rosters", name="rosters_api")
+@router.get("/api/rosters", name="rosters_api", response_model=None,
+            responses={200: {"model": RostersBody, "description": "Every stored roster"}})
 def rosters_api(request: Request) -> JSONResponse:
     return as_json(rosters_data(app_store(request), app_settings(request).upload_limit))
 
@@ -113,15 +126,24 @@ def _read_upload(form: dict[str, str | Upload]) -> tuple[str, bytes]:
     return upload.filename, upload.data
 
 
-@router.post("/rosters/upload", response_class=HTMLResponse, name="roster_upload")
+_FILE_OPTIONS = {
+    "sheet": {"type": "string", "description": "XLSX sheet name; the first sheet when empty"},
+    "encoding": {"type": "string", "description": "text encoding, e.g. utf-8 or cp1252; detected when empty"},
+}
+_ROLE_FIELDS = {f"role_{r}": {"type": "string", "description": f"column holding {r}; empty for none"}
+                for r in ROLES}
+
+
+@router.post("/rosters/upload", response_class=HTMLResponse, name="roster_upload",
+             responses={**FORM_AGAIN, **GUARDS},
+             openapi_extra=form_body({"file": FILE, **_FILE_OPTIONS}, required=("file",), multipart=True))
 async def roster_upload(request: Request) -> HTMLResponse:
     """First step: keep the file aside, show its first rows and the column roles we detected."""
     store = app_store(request)
     form = await read_form(request)
     try:
         filename, data = _read_upload(form)
-        sheet = str(form.get("sheet") or "") or None
-        encoding = str(form.get("encoding") or "") or None
+        encoding, sheet = _file_options(form)
         preview = preview_roster(data, filename, encoding=encoding, sheet=sheet)
     except RosterFileError as exc:
         failed = rosters_data(store, app_settings(request).upload_limit, message=str(exc))
@@ -133,6 +155,21 @@ async def roster_upload(request: Request) -> HTMLResponse:
         duplicate_of=_same_file(store, data),
     )
     return render(request, "roster_confirm.html", page, active="rosters")
+
+
+def _file_options(form: dict[str, str | Upload]) -> tuple[str | None, str | None]:
+    """(encoding, sheet) as the readers take them; an encoding Python cannot name is refused here.
+
+    codecs.lookup raises ValueError, not LookupError, for a name with a NUL character in it (the fuzz
+    test sent one), which the readers do not expect.
+    """
+    encoding = str(form.get("encoding") or "") or None
+    if encoding is not None:
+        try:
+            codecs.lookup(encoding)
+        except (LookupError, ValueError):
+            raise RosterFileError(f"Unknown text encoding {encoding!r}; try utf-8, cp1252 or latin-1.") from None
+    return encoding, str(form.get("sheet") or "") or None
 
 
 def _default_name(store: Store, filename: str) -> str:
@@ -149,7 +186,14 @@ def _same_file(store: Store, data: bytes) -> Roster | None:
     return store.find_roster_by_sha(hashlib.sha256(data).hexdigest())
 
 
-@router.post("/rosters/confirm", name="roster_confirm", response_model=None)
+@router.post("/rosters/confirm", name="roster_confirm", response_model=None, status_code=303,
+             response_class=RedirectResponse, responses=redirect("the new roster's page", FORM_AGAIN),
+             openapi_extra=form_body({
+                 "token": {"type": "string", "description": "the upload step's token"},
+                 "name": {"type": "string"}, **_FILE_OPTIONS, **_ROLE_FIELDS,
+                 "allow_same_file": {"type": "string", "enum": ["yes"],
+                                     "description": "import a file whose bytes were imported before"},
+             }, required=("token",)))
 async def roster_confirm(request: Request) -> Response:
     """Second step: import with the roles the analyst confirmed; all rows land or none do."""
     store = app_store(request)
@@ -164,9 +208,9 @@ async def roster_confirm(request: Request) -> Response:
     roles: dict[str, str] = {r: str(form.get(f"role_{r}") or "") for r in ROLES if f"role_{r}" in form}
     name = str(form.get("name") or "").strip() or None
     try:
+        encoding, sheet = _file_options(form)
         report = import_roster(
-            store, pending.data, pending.filename, name=name, roles=roles,
-            encoding=str(form.get("encoding") or "") or None, sheet=str(form.get("sheet") or "") or None,
+            store, pending.data, pending.filename, name=name, roles=roles, encoding=encoding, sheet=sheet,
             allow_same_file=form.get("allow_same_file") == "yes",
         )
     except (RosterFileError, DuplicateRosterError, StoreError) as exc:
@@ -182,7 +226,11 @@ async def roster_confirm(request: Request) -> Response:
     return RedirectResponse(request.url_for("roster_detail", roster_id=report.roster.id), status_code=303)
 
 
-@router.post("/api/rosters", name="rosters_import_api")
+@router.post("/api/rosters", name="rosters_import_api", response_model=None, status_code=201,
+             responses={201: {"model": RosterImportBody, "description": "Imported"}, **api_errors(400, 409),
+                        **GUARDS},
+             openapi_extra=form_body({"file": FILE, "name": {"type": "string"}, **_FILE_OPTIONS,
+                                      **_ROLE_FIELDS}, required=("file",), multipart=True))
 async def rosters_import_api(request: Request) -> JSONResponse:
     """Import in one call: multipart ``file``, optional ``name``, ``sheet``, ``encoding`` and ``role_<ROLE>``."""
     store = app_store(request)
@@ -190,9 +238,10 @@ async def rosters_import_api(request: Request) -> JSONResponse:
     try:
         filename, data = _read_upload(form)
         roles: dict[str, str] = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
+        encoding, sheet = _file_options(form)
         report = import_roster(
             store, data, filename, name=str(form.get("name") or "").strip() or None, roles=roles or None,
-            encoding=str(form.get("encoding") or "") or None, sheet=str(form.get("sheet") or "") or None,
+            encoding=encoding, sheet=sheet,
         )
     except DuplicateRosterError as exc:
         return JSONResponse({"error": str(exc)}, status_code=409)
@@ -204,18 +253,21 @@ async def rosters_import_api(request: Request) -> JSONResponse:
     }, status_code=201)
 
 
-@router.get("/rosters/{roster_id}", response_class=HTMLResponse, name="roster_detail")
+@router.get("/rosters/{roster_id}", response_class=HTMLResponse, name="roster_detail",
+            responses=page_errors(404))
 def roster_detail(request: Request, roster_id: int) -> HTMLResponse:
     page = roster_detail_data(app_store(request), roster_id)
     return render(request, "roster_detail.html", page, roster=page.roster, active="roster")
 
 
-@router.get("/api/rosters/{roster_id}", name="roster_detail_api")
+@router.get("/api/rosters/{roster_id}", name="roster_detail_api", response_model=None,
+            responses={200: {"model": RosterDetailBody, "description": "One roster"}, **api_errors(404)})
 def roster_detail_api(request: Request, roster_id: int) -> JSONResponse:
     return as_json(roster_detail_data(app_store(request), roster_id))
 
 
-@router.get("/rosters/{roster_id}/rejected.csv", name="roster_rejected_csv")
+@router.get("/rosters/{roster_id}/rejected.csv", name="roster_rejected_csv", response_class=Response,
+            responses={**download("The rejected rows with their reasons", "text/csv"), **page_errors(404)})
 def roster_rejected_csv(request: Request, roster_id: int) -> Response:
     store = app_store(request)
     roster = _roster_or_404(store, roster_id)
@@ -224,7 +276,8 @@ def roster_rejected_csv(request: Request, roster_id: int) -> Response:
         "content-disposition": f'attachment; filename="rejected-rows-{roster.id}.csv"'})
 
 
-@router.post("/rosters/{roster_id}/delete", name="roster_delete")
+@router.post("/rosters/{roster_id}/delete", name="roster_delete", status_code=303,
+            response_class=RedirectResponse, responses=redirect("the roster list", page_errors(404)))
 def roster_delete(request: Request, roster_id: int) -> RedirectResponse:
     store = app_store(request)
     roster = _roster_or_404(store, roster_id)

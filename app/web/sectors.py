@@ -16,6 +16,8 @@ from app.store import Roster, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, source_line
 from app.web.rendering import as_json, render
+from app.web.route_docs import api_errors, page_errors, query
+from app.web.schemas import RobustnessBody, SectorsBody
 
 router = APIRouter()
 
@@ -64,6 +66,10 @@ def sectors_data(store: Store, roster_id: int, *, min_departures: int = 20) -> S
         result, _ = run_sectors(store, inp, min_departures=min_departures)
     except (StoreError, ValueError) as exc:
         return SectorsPage(roster, "no mapping", None, None, None, str(exc))
+    if not any(t.status == "fitted" for t in result.sectors):  # nothing to draw: say why instead
+        return SectorsPage(roster, inp.mapping_label, inp.window, result, None,
+                           "No sector could be fitted on its own. " + " ".join(result.messages),
+                           warnings=inp.warnings())
     finding = sectors_finding_from(inp, result)
     return SectorsPage(roster, inp.mapping_label, inp.window, result, finding.takeaway, None,
                        figure_spec(finding.figure, titled=False), inp.warnings())
@@ -94,13 +100,25 @@ def _min_departures(request: Request) -> int:
     return int(raw)
 
 
-@router.get("/rosters/{roster_id}/sectors", response_class=HTMLResponse, name="sectors_page")
+_MIN_DEPARTURES = query(("min_departures", {"type": "integer", "minimum": 1, "maximum": 10_000, "default": 20},
+                         "fit a sector only with at least this many counted departures"))
+_ROBUSTNESS_QUERY = query(
+    ("mapping", {"type": "array", "items": {"type": "string"}},
+     "other mappings to compare, as name:version (repeatable; default: every other mapping)"),
+    ("vary", {"type": "array", "items": {"type": "string"}},
+     "reason codes whose category to move (repeatable)"))
+
+
+@router.get("/rosters/{roster_id}/sectors", response_class=HTMLResponse, name="sectors_page",
+            responses=page_errors(400, 404), openapi_extra=_MIN_DEPARTURES)
 def sectors_page(request: Request, roster_id: int) -> HTMLResponse:
     page = sectors_data(app_store(request), roster_id, min_departures=_min_departures(request))
     return render(request, "sectors.html", page, roster=page.roster, active="sectors_page", cautions_open=True)
 
 
-@router.get("/api/rosters/{roster_id}/sectors", name="sectors_api")
+@router.get("/api/rosters/{roster_id}/sectors", name="sectors_api", response_model=None,
+            responses={200: {"model": SectorsBody, "description": "The trend within each sector"},
+                       **api_errors(400, 404)}, openapi_extra=_MIN_DEPARTURES)
 def sectors_api(request: Request, roster_id: int) -> JSONResponse:
     return as_json(sectors_data(app_store(request), roster_id, min_departures=_min_departures(request)))
 
@@ -110,13 +128,16 @@ def _robustness_args(request: Request) -> dict[str, list[str]]:
             "vary": [c for c in request.query_params.getlist("vary") if c]}
 
 
-@router.get("/rosters/{roster_id}/robustness", response_class=HTMLResponse, name="robustness_page")
+@router.get("/rosters/{roster_id}/robustness", response_class=HTMLResponse, name="robustness_page",
+            responses=page_errors(404), openapi_extra=_ROBUSTNESS_QUERY)
 def robustness_page(request: Request, roster_id: int) -> HTMLResponse:
     page = robustness_data(app_store(request), roster_id, **_robustness_args(request))
     return render(request, "robustness.html", page, roster=page.roster, active="robustness_page",
                   cautions_open=True)
 
 
-@router.get("/api/rosters/{roster_id}/robustness", name="robustness_api")
+@router.get("/api/rosters/{roster_id}/robustness", name="robustness_api", response_model=None,
+            responses={200: {"model": RobustnessBody, "description": "The trend under other mappings"},
+                       **api_errors(404)}, openapi_extra=_ROBUSTNESS_QUERY)
 def robustness_api(request: Request, roster_id: int) -> JSONResponse:
     return as_json(robustness_data(app_store(request), roster_id, **_robustness_args(request)))

@@ -15,6 +15,8 @@ from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
 from app.web.rendering import as_json, render
+from app.web.route_docs import WINDOW_QUERY, api_errors, json_or_validation_error, page_errors, query
+from app.web.schemas import TrendBody, TrendUnfitBody
 
 router = APIRouter()
 
@@ -104,14 +106,25 @@ def _request_args(request: Request) -> dict[str, Any]:
             "spline_df": int(df) if df.isdigit() else -1, "window": _years(request)}
 
 
-@router.get("/rosters/{roster_id}/trend", response_class=HTMLResponse, name="trend_page")
+_TREND_QUERY = query(("model", {"type": "string", "enum": list(TREND_KINDS), "default": "linear"}, "trend model"),
+                     ("spline_df", {"type": "integer", "enum": [2, 3, 4], "default": 3},
+                      "degrees of freedom of the spline checked for curvature"),
+                     *WINDOW_QUERY)
+
+
+@router.get("/rosters/{roster_id}/trend", response_class=HTMLResponse, name="trend_page",
+            responses=page_errors(400, 404), openapi_extra=_TREND_QUERY)
 def trend_page(request: Request, roster_id: int) -> HTMLResponse:
     page = trend_data(app_store(request), roster_id, **_request_args(request))
     return render(request, "trend.html", page, roster=page.roster, active="trend_page", cautions_open=True,
                   context_line=f"mapping {page.mapping_label} · window {page.window[0]}–{page.window[1]}")
 
 
-@router.get("/api/rosters/{roster_id}/trend", name="trend_api")
+@router.get("/api/rosters/{roster_id}/trend", name="trend_api", response_model=None,
+            responses={200: {"model": TrendBody, "description": "The fitted trend"}, **api_errors(400, 404),
+                       422: json_or_validation_error(TrendUnfitBody, "No trend could be fitted (error says "
+                                                     "why), or the roster id is not a number")},
+            openapi_extra=_TREND_QUERY)
 def trend_api(request: Request, roster_id: int) -> JSONResponse:
     page = trend_data(app_store(request), roster_id, **_request_args(request))
     return as_json(page, status=200 if page.fit else 422)
