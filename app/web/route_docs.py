@@ -14,6 +14,9 @@ from app.web.schemas import ErrorBody, ValidationErrorBody
 Responses = dict[int | str, dict[str, Any]]
 
 _TEXT = {"schema": {"type": "string"}}
+# a reference, not "model": on an HTML route FastAPI would file a model's schema under text/html; the
+# /api routes' own "model": ErrorBody entries put the component in the schema
+_ERROR_BODY = {"schema": {"$ref": f"#/components/schemas/{ErrorBody.__name__}"}}
 
 
 def api_errors(*codes: int) -> Responses:
@@ -28,7 +31,7 @@ def page_errors(*codes: int) -> Responses:
     what = {400: "Input the analyst can correct", 404: "No such roster, mapping or run"}
     return {code: {"description": f"{what[code]}: an error page, or JSON when the request accepts "
                                   "application/json",
-                   "model": ErrorBody, "content": {"text/html": _TEXT}} for code in codes}
+                   "content": {"text/html": _TEXT, "application/json": _ERROR_BODY}} for code in codes}
 
 
 #: a form handler that shows its page again, with the message, instead of the page it would go to
