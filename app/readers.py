@@ -100,7 +100,7 @@ def decode_text(data: bytes, encoding: str | None) -> tuple[str, str]:
     if encoding:
         try:
             name = codecs.lookup(encoding).name
-        except LookupError:
+        except (LookupError, ValueError):  # ValueError: a NUL in the name
             raise RosterFileError(f"Unknown text encoding {encoding!r}; try utf-8, cp1252 or latin-1.") from None
         try:
             return data.decode(name), encoding

@@ -530,7 +530,7 @@ class Store:
                  else q.order_by(mapping_versions.c.version.desc()).limit(1))
             row = conn.execute(q).first()
             if row is None:
-                what = f"version {version} of mapping {name!r}" if version else f"mapping {name!r}"
+                what = f"version {version} of mapping {name!r}" if version is not None else f"mapping {name!r}"
                 raise StoreError(f"No {what} is stored.")
             entries = conn.execute(
                 select(mapping_entries.c.code, mapping_entries.c.category, mapping_entries.c.label)
