@@ -73,3 +73,18 @@ def test_robustness_vary_moves_a_code(client: Any, demo_clean: pd.DataFrame) -> 
     assert variants["Retired as forced"]["forced"] == reference["forced"] + retired
     bad = client.get(f"/rosters/{ROSTER}/robustness", params={"vary": "No such code"}).context["page"]
     assert bad.result is None and "does not occur" in bad.error
+
+
+def test_robustness_page_without_any_estimable_reading_explains_instead_of_drawing(client: Any,
+                                                                                      demo_store: Any) -> None:
+    # a mapping that calls nothing forced leaves no reading with a trend to estimate: the table must say
+    # why (the trend engine's message) and the page must not try to draw an empty forest plot
+    codes = demo_store.reason_counts(ROSTER)["code"].astype(str)
+    demo_store.save_mapping_version("nothing forced", {c: "voluntary" for c in codes})
+    demo_store.update_settings(ROSTER, mapping_name="nothing forced")
+    response = client.get(f"/rosters/{ROSTER}/robustness?mapping=nothing forced:1")
+    assert response.status_code == 200
+    page = response.context["page"]
+    assert page.error is None and page.figure is None
+    assert all(v.odds_ratio is None and v.error for v in page.result.variants)
+    assert "fig-robustness" not in response.text

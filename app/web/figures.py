@@ -6,7 +6,6 @@ from dataclasses import dataclass
 
 import plotly.graph_objects as go
 
-from app.analysis import AnalysisInput, provenance_for
 from app.charts import PAGE_CONFIG, figure_json, untitled
 
 
@@ -27,8 +26,3 @@ def figure_spec(fig: go.Figure, *, titled: bool = True) -> FigureSpec:
     if not titled:
         fig = untitled(fig)
     return FigureSpec('{"figure": ' + figure_json(fig) + ', "config": ' + json.dumps(PAGE_CONFIG) + "}")
-
-
-def source_line(inp: AnalysisInput, *, interval_method: str) -> str:
-    """The one-line provenance printed under a chart."""
-    return provenance_for(inp, interval_method=interval_method).short()

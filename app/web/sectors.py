@@ -8,13 +8,12 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
 from app.analysis import load_input, run_sectors
-from app.charts import forest_figure
-from app.findings import sectors_finding_from
-from app.robustness import Robustness, check_robustness, robustness_rows
+from app.findings import robustness_finding_from, sectors_finding_from
+from app.robustness import Robustness, check_robustness
 from app.stats.sectors import SectorTrends
 from app.store import Roster, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
-from app.web.figures import FigureSpec, figure_spec, source_line
+from app.web.figures import FigureSpec, figure_spec
 from app.web.rendering import as_json, render
 from app.web.route_docs import api_errors, page_errors, query
 from app.web.schemas import RobustnessBody, SectorsBody
@@ -86,11 +85,12 @@ def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: lis
         result = check_robustness(store, inp, extra_mappings=extra, vary=vary)
     except (StoreError, ValueError) as exc:
         return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc))
-    fig = forest_figure(robustness_rows(result), title=result.sentence.split(";")[0],
-                        source=source_line(inp, interval_method="profile likelihood, 95%"))
+    if all(v.odds_ratio is None for v in result.variants):  # nothing to draw: the table says why
+        return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, None,
+                              inp.warnings())
+    finding = robustness_finding_from(inp, result)
     return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None,
-                          figure_spec(fig, titled=False),
-                          inp.warnings())
+                          figure_spec(finding.figure, titled=False), inp.warnings())
 
 
 def _min_departures(request: Request) -> int:
