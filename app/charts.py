@@ -146,7 +146,9 @@ def _require(df: pd.DataFrame, columns: Sequence[str], what: str) -> None:
 def _year_ticks(years: Sequence[int]) -> dict[str, Any]:
     span = (max(years) - min(years)) if len(years) else 0
     step = 1 if span <= 16 else 2 if span <= 32 else 5
-    return {"tickmode": "linear", "dtick": step, "tick0": (min(years) if len(years) else 0)}
+    # explicit ticks: a linear tick rule would label a year past the data in the axis padding
+    ticks = list(range(min(years), max(years) + 1, step)) if len(years) else []
+    return {"tickmode": "array", "tickvals": ticks, "ticktext": [str(t) for t in ticks]}
 
 
 def coverage_figure(table: pd.DataFrame, window: tuple[int, int] | None, flagged: Sequence[int], *,

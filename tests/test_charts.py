@@ -191,3 +191,11 @@ def test_provenance_lines_short_form_and_frozen() -> None:
     with pytest.raises(dataclasses.FrozenInstanceError):
         prov.roster = "other"  # type: ignore[misc]
     assert len(CAUTIONS) == 4 and any("not a cause" in c for c in CAUTIONS)
+
+
+def test_year_axis_labels_only_years_inside_the_data() -> None:
+    # plotly pads a bar axis by half a bar; a linear tick rule then labels a year with no data
+    table = pd.DataFrame({"year": range(1995, 2025), "forced": 1, "voluntary": 2, "excluded": 0, "unmapped": 0})
+    fig = charts.coverage_figure(table, (1998, 2022), [], title="t", source="s")
+    ticks = list(fig.layout.xaxis.tickvals)
+    assert ticks[0] == 1995 and ticks[-1] <= 2024 and all(1995 <= t <= 2024 for t in ticks)
