@@ -10,8 +10,7 @@ from typing import TYPE_CHECKING, Any, Literal
 
 import pandas as pd
 
-from app import __version__
-from app.reasons import parse_mapping_csv, suggest_categories
+from app.reasons import parse_mapping_csv
 from app.spreadsheet_safety import safe_csv
 from app.stats.cells import Cells, assign_categories, build_cells
 from app.stats.coverage import WindowSuggestion, YearFlag, coverage_table, flag_years, suggest_window
@@ -179,16 +178,6 @@ def export_mapping_csv(store: Store, *, name: str, version: int | None = None) -
     mapping = store.get_mapping(name, version)
     rows = [[code, cat, mapping.labels.get(code, "")] for code, cat in sorted(mapping.categories.items())]
     return safe_csv(rows, ["code", "category", "label"])
-
-
-def suggested_mapping(store: Store, roster_id: int) -> dict[str, Any]:
-    """Word-based starting categories for every code of a roster (the analyst confirms them)."""
-    codes = store.reason_counts(roster_id)["code"].astype(str).tolist()
-    return dict(suggest_categories(codes))
-
-
-def tool_version() -> str:
-    return __version__
 
 
 def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method: str = "Wald and profile likelihood",

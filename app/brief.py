@@ -91,13 +91,6 @@ def render_brief_html(*, headline: str, chart_svgs: Sequence[bytes], table: pd.D
     )
 
 
-def pdf_page_count(html: str) -> int:
-    """How many pages WeasyPrint lays ``html`` out on."""
-    from weasyprint import HTML
-
-    return len(HTML(string=html, base_url=str(TEMPLATE_DIR)).render().pages)
-
-
 def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFrame, method_text: str,
                 provenance: Provenance) -> bytes:
     """A one-page A4 PDF: headline, two charts, odds-ratio table, method, cautions, provenance footer.

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from app.analysis import import_mapping_file
-from app.ingest import import_roster
+from app.ingest import import_roster, same_file_roster
 from app.store import Roster, Store
 
 DEMO_DIR = Path(__file__).resolve().parents[1] / "demo_data"
@@ -19,9 +19,7 @@ DEMO_NAME = "Demo index (invented)"
 def load_demo(store: Store) -> Roster:
     """Import the demo roster (once) and its mappings; the standard mapping becomes the default."""
     data = DEMO_ROSTER.read_bytes()
-    import hashlib
-
-    existing = store.find_roster_by_sha(hashlib.sha256(data).hexdigest())
+    existing = same_file_roster(store, data)
     if existing is not None:
         return existing
     report = import_roster(store, data, DEMO_ROSTER.name, name=DEMO_NAME)

@@ -17,6 +17,7 @@ import plotly.graph_objects as go
 from app.analysis import AnalysisInput, input_for_run, provenance_for, run_sectors, run_trend
 from app.charts import bootstrap_histogram, coverage_figure, forest_figure, trend_figure
 from app.export import Provenance
+from app.jobs import replicate_odds_ratios
 from app.stats.sectors import SectorTrends
 from app.stats.trend import TrendFit, trend_sentence
 from app.store import Run, Store, StoreError
@@ -113,7 +114,7 @@ def bootstrap_finding(store: Store, run_id: int, method: str = "bca") -> ChartFi
                     f"(95% {label} interval {lo:.3f} to {hi:.3f}).")
     else:
         takeaway = f"Resampling {unit}: the {label} interval could not be computed."
-    ors = np.exp(store.replicates(run.id))
+    ors = replicate_odds_ratios(store, run.id)
     fig = bootstrap_histogram(ors, estimate, (lo if lo is not None else np.nan, hi if hi is not None else np.nan),
                               method_label=f"95% {label}", title=takeaway, source=prov.short())
     failed = int(result["failed"])

@@ -230,7 +230,8 @@ def preview_roster(
     )
 
 
-def _default_name(store: Store, filename: str) -> str:
+def default_roster_name(store: Store, filename: str) -> str:
+    """The file's stem, cleaned of control characters and made unique ("name (2)"); a label, never a path."""
     base = re.split(r"[\\/]", filename)[-1]
     stem = base.rsplit(".", 1)[0] if "." in base.strip(".") else base
     stem = re.sub(r"[\x00-\x1f\x7f]", "", stem).strip()[:80] or "roster"
@@ -238,6 +239,16 @@ def _default_name(store: Store, filename: str) -> str:
     while store.roster_name_taken(name):
         name, n = f"{stem} ({n})", n + 1
     return name
+
+
+def file_fingerprint(data: bytes) -> str:
+    """sha256 of the uploaded bytes: how a re-import of the same file is recognised."""
+    return hashlib.sha256(data).hexdigest()
+
+
+def same_file_roster(store: Store, data: bytes) -> Roster | None:
+    """The roster already imported from exactly these bytes, if any."""
+    return store.find_roster_by_sha(file_fingerprint(data))
 
 
 def import_roster(
@@ -253,7 +264,7 @@ def import_roster(
     ``DuplicateRosterError`` when the same bytes were imported before (unless ``allow_same_file``).
     """
     check_choice(date_order, DATE_ORDERS, "date_order")
-    sha = hashlib.sha256(data).hexdigest()
+    sha = file_fingerprint(data)
     if not allow_same_file:
         existing = store.find_roster_by_sha(sha)
         if existing is not None:
@@ -280,7 +291,7 @@ def import_roster(
     if records.empty and rejected:
         raise NoValidRowsError(rejected)
     roster = store.save_import(
-        name=name or _default_name(store, filename), source_name=filename, sha256=sha,
+        name=name or default_roster_name(store, filename), source_name=filename, sha256=sha,
         rows_total=len(records) + len(rejected) + duplicates, duplicates=duplicates, columns=resolved,
         records=records, rejected=rejected,
     )

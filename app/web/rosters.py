@@ -13,9 +13,11 @@ from app.ingest import (
     DuplicateRosterError,
     RosterFileError,
     RosterPreview,
+    default_roster_name,
     import_roster,
     preview_roster,
     rejected_rows_csv,
+    same_file_roster,
 )
 from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import ROLES
@@ -151,8 +153,8 @@ async def roster_upload(request: Request) -> HTMLResponse:
     pending = app_uploads(request).put(filename, data)
     page = ConfirmPage(
         token=pending.token, filename=filename, preview=preview,
-        roles={r: preview.roles.get(r) for r in ROLES}, name=_default_name(store, filename),
-        duplicate_of=_same_file(store, data),
+        roles={r: preview.roles.get(r) for r in ROLES}, name=default_roster_name(store, filename),
+        duplicate_of=same_file_roster(store, data),
     )
     return render(request, "roster_confirm.html", page, active="rosters")
 
@@ -170,20 +172,6 @@ def _file_options(form: dict[str, str | Upload]) -> tuple[str | None, str | None
         except (LookupError, ValueError):
             raise RosterFileError(f"Unknown text encoding {encoding!r}; try utf-8, cp1252 or latin-1.") from None
     return encoding, str(form.get("sheet") or "") or None
-
-
-def _default_name(store: Store, filename: str) -> str:
-    stem = filename.rsplit("/", 1)[-1].rsplit("\\", 1)[-1].rsplit(".", 1)[0].strip() or "roster"
-    name, n = stem, 2
-    while store.roster_name_taken(name):
-        name, n = f"{stem} ({n})", n + 1
-    return name
-
-
-def _same_file(store: Store, data: bytes) -> Roster | None:
-    import hashlib
-
-    return store.find_roster_by_sha(hashlib.sha256(data).hexdigest())
 
 
 @router.post("/rosters/confirm", name="roster_confirm", response_model=None, status_code=303,
@@ -217,8 +205,8 @@ async def roster_confirm(request: Request) -> Response:
         preview = preview_roster(pending.data, pending.filename)
         page = ConfirmPage(
             token=token, filename=pending.filename, preview=preview,
-            roles={r: roles.get(r) or None for r in ROLES}, name=name or _default_name(store, pending.filename),
-            error=str(exc), duplicate_of=_same_file(store, pending.data),
+            roles={r: roles.get(r) or None for r in ROLES}, name=name or default_roster_name(store, pending.filename),
+            error=str(exc), duplicate_of=same_file_roster(store, pending.data),
             rejected=list(getattr(exc, "rejected", []))[:REJECTED_SHOWN],
         )
         return render(request, "roster_confirm.html", page, status=400, active="rosters")
