@@ -31,7 +31,7 @@ def _store(args: argparse.Namespace) -> Any:
 
 
 def _emit(args: argparse.Namespace, payload: dict[str, Any], human: Callable[[dict[str, Any]], str]) -> None:
-    from app.web.rendering import jsonable
+    from app.jsonable import jsonable
 
     if args.json:
         print(json.dumps(jsonable(payload)))
@@ -97,7 +97,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
 
 def cmd_import(args: argparse.Namespace) -> int:
-    from app.ingest import import_roster
+    from app.intake.ingest import import_roster
 
     path = Path(args.file)
     if not path.is_file():
@@ -114,7 +114,7 @@ def cmd_import(args: argparse.Namespace) -> int:
 
 
 def cmd_mapping_import(args: argparse.Namespace) -> int:
-    from app.analysis import import_mapping_file
+    from app.analysis.mapping_files import import_mapping_file
 
     path = Path(args.file)
     if not path.is_file():
@@ -128,7 +128,7 @@ def cmd_mapping_import(args: argparse.Namespace) -> int:
 
 
 def cmd_mapping_export(args: argparse.Namespace) -> int:
-    from app.analysis import export_mapping_csv
+    from app.analysis.mapping_files import export_mapping_csv
 
     text = export_mapping_csv(_store(args), name=args.name, version=args.version)
     if args.out:
@@ -139,7 +139,8 @@ def cmd_mapping_export(args: argparse.Namespace) -> int:
 
 
 def cmd_coverage(args: argparse.Namespace) -> int:
-    from app.analysis import coverage_summary, load_input
+    from app.analysis.inputs import load_input
+    from app.analysis.runs import coverage_summary
 
     inp = load_input(_store(args), args.roster, mapping=args.mapping, require_mapping=False)
     payload = coverage_summary(inp, threshold=args.threshold)
@@ -152,7 +153,8 @@ def cmd_coverage(args: argparse.Namespace) -> int:
 
 
 def cmd_fit(args: argparse.Namespace) -> int:
-    from app.analysis import fit_summary, load_input
+    from app.analysis.inputs import load_input
+    from app.analysis.runs import fit_summary
 
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
@@ -162,8 +164,8 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
 
 def cmd_bootstrap(args: argparse.Namespace) -> int:
-    from app.analysis import load_input
-    from app.jobs import run_bootstrap_now
+    from app.analysis.inputs import load_input
+    from app.analysis.jobs import run_bootstrap_now
 
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
@@ -177,7 +179,8 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
 
 
 def cmd_robustness(args: argparse.Namespace) -> int:
-    from app.analysis import load_input, robustness_summary
+    from app.analysis.inputs import load_input
+    from app.analysis.runs import robustness_summary
 
     store = _store(args)
     mappings = args.mapping or []
@@ -189,8 +192,8 @@ def cmd_robustness(args: argparse.Namespace) -> int:
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    from app.analysis import load_input
-    from app.briefs import export_to_file
+    from app.analysis.inputs import load_input
+    from app.briefing.exports import export_to_file
 
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from app.analysis import import_mapping_file
-from app.ingest import import_roster, same_file_roster
+from app.analysis.mapping_files import import_mapping_file
+from app.intake.ingest import import_roster, same_file_roster
 from app.store import Roster, Store
 
 DEMO_DIR = Path(__file__).resolve().parents[1] / "demo_data"

@@ -24,8 +24,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import pandas as pd  # noqa: E402
 from sqlalchemy import insert  # noqa: E402
 
-from app.ingest import import_roster, validate  # noqa: E402
-from app.readers import read_table  # noqa: E402
+from app.intake.ingest import import_roster, validate  # noqa: E402
+from app.intake.readers import read_table  # noqa: E402
 from app.store import DEPARTURE_FIELDS, Store, departures  # noqa: E402
 
 HEADER = ("Issuer Code,Issuer Name,Industry,FY,Exit Date,Exit Reason,Executive,Age at Exit,"

@@ -16,10 +16,10 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from app.analysis import load_input  # noqa: E402
-from app.briefs import brief_file, deck_file  # noqa: E402
+from app.analysis.inputs import load_input  # noqa: E402
+from app.analysis.jobs import run_bootstrap_now  # noqa: E402
+from app.briefing.exports import brief_file, deck_file  # noqa: E402
 from app.demo import load_demo  # noqa: E402
-from app.jobs import run_bootstrap_now  # noqa: E402
 from app.store import Store  # noqa: E402
 
 SLIDE = 3  # title, coverage, trend, ...: the trend slide

@@ -1,4 +1,4 @@
-"""app.analysis: reading a roster through a mapping and a window, recording fits, mapping files."""
+"""app.analysis (inputs, runs, mapping files): reading a roster through a mapping and a window, recording fits, mapping files."""
 
 from __future__ import annotations
 
@@ -10,19 +10,12 @@ import pandas as pd
 import pytest
 from conftest import DEMO_CSV, DEMO_DIR, read_mapping
 
-from app.analysis import (
-    coverage_summary,
-    export_mapping_csv,
-    fit_summary,
-    import_mapping_file,
-    load_input,
-    parse_mapping_ref,
-    provenance_for,
-    run_sectors,
-    run_trend,
-)
-from app.ingest import import_roster
-from app.reasons import MappingFileError
+from app.analysis.inputs import load_input, parse_mapping_ref
+from app.analysis.mapping_files import export_mapping_csv, import_mapping_file
+from app.analysis.provenance import provenance_for
+from app.analysis.runs import coverage_summary, fit_summary, run_sectors, run_trend
+from app.intake.ingest import import_roster
+from app.intake.reasons import MappingFileError
 from app.store import Store, StoreError
 
 ROSTER = 1

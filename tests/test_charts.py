@@ -14,8 +14,8 @@ import plotly.io as pio
 import pytest
 from statsmodels.stats.proportion import proportion_confint
 
-from app import charts
-from app.export import CAUTIONS, Provenance
+from app.analysis.provenance import CAUTIONS, Provenance
+from app.briefing import charts
 
 SOURCE = "Source: roster Demo [abc123] · mapping Standard v2"
 

@@ -20,17 +20,11 @@ import pytest
 from pptx import Presentation
 from pptx.util import Emu
 
-from app import charts
-from app.brief import build_brief, render_brief_html
-from app.deck import Finding, build_deck, fit_text, text_width_pt
-from app.export import (
-    CAUTIONS,
-    ExportTimeout,
-    ExportUnavailable,
-    Provenance,
-    export_available,
-    figure_bytes,
-)
+from app.analysis.provenance import CAUTIONS, Provenance
+from app.briefing import charts
+from app.briefing.brief import build_brief, render_brief_html
+from app.briefing.deck import Finding, build_deck, fit_text, text_width_pt
+from app.briefing.render import ExportTimeout, ExportUnavailable, export_available, figure_bytes
 
 AVAILABLE, WHY = export_available()
 needs_browser = pytest.mark.skipif(not AVAILABLE, reason=WHY)

@@ -18,7 +18,7 @@ import pytest
 from openpyxl.utils.datetime import from_excel, to_excel
 from sqlalchemy import text
 
-from app.ingest import (
+from app.intake.ingest import (
     DuplicateRosterError,
     RosterFileError,
     detect_roles,
@@ -27,8 +27,8 @@ from app.ingest import (
     preview_roster,
     rejected_rows_csv,
 )
-from app.readers import ReadLimits
-from app.spreadsheet_safety import neutralise_formula, safe_csv
+from app.intake.readers import ReadLimits
+from app.intake.spreadsheet_safety import neutralise_formula, safe_csv
 from app.store import DEPARTURE_FIELDS, RejectedRow, Store
 
 DEMO_HEADER = ["Issuer Code", "Issuer Name", "Industry", "FY", "Exit Date", "Exit Reason", "Executive",
@@ -370,8 +370,8 @@ def test_excel_sep_hint_and_malformed_quoting(store: Store) -> None:
 
 
 def test_validate_returns_the_store_fields() -> None:
-    from app.ingest import validate
-    from app.readers import read_table
+    from app.intake.ingest import validate
+    from app.intake.readers import read_table
 
     table = read_table(make_csv(ROWS).encode(), "r.csv")
     records, rejected, duplicates, _ = validate(table, detect_roles(table.headers)[0])
@@ -386,7 +386,7 @@ def test_validate_returns_the_store_fields() -> None:
 def test_row_limit_refuses_oversized_files_before_storing(store) -> None:
     # a hostile but small file (e.g. a highly compressed workbook) must not tie up the server:
     # past ReadLimits.max_data_rows the whole file is refused with a sentence naming the line
-    from app.readers import ReadLimits
+    from app.intake.readers import ReadLimits
 
     data = ("Company ID,Reason,Year\n" + "F1,Retired,2010\n" * 30).encode()
     before = store.counts()

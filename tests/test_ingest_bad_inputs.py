@@ -11,8 +11,8 @@ from typing import Any
 
 import pytest
 
-from app.ingest import RosterFileError, import_roster, rejected_rows_csv
-from app.spreadsheet_safety import FORMULA_TRIGGERS
+from app.intake.ingest import RosterFileError, import_roster, rejected_rows_csv
+from app.intake.spreadsheet_safety import FORMULA_TRIGGERS
 from app.store import Store
 
 BAD = Path(__file__).parent / "data" / "bad"

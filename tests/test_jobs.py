@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from app.analysis import load_input
-from app.jobs import (
+from app.analysis.inputs import load_input
+from app.analysis.jobs import (
     CHUNK,
     JobRunner,
     bootstrap_params,

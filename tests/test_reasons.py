@@ -1,4 +1,4 @@
-"""Tests for app.reasons: category suggestions, the mapping CSV format and version differences."""
+"""Tests for app.intake.reasons: category suggestions, the mapping CSV format and version differences."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 
-from app.reasons import (
+from app.intake.reasons import (
     AMBIGUITY_MARKERS,
     WORDS,
     MappingDiff,

@@ -1,4 +1,4 @@
-"""app.robustness: the trend under other readings of "forced", against direct fits."""
+"""app.analysis.robustness: the trend under other readings of "forced", against direct fits."""
 
 from __future__ import annotations
 
@@ -9,9 +9,9 @@ import pandas as pd
 import pytest
 from conftest import read_mapping, statsmodels_trend, year_counts
 
-from app.analysis import load_input
-from app.jobs import run_bootstrap_now
-from app.robustness import check_robustness, robustness_rows, robustness_to_dict
+from app.analysis.inputs import load_input
+from app.analysis.jobs import run_bootstrap_now
+from app.analysis.robustness import check_robustness, robustness_rows, robustness_to_dict
 from app.stats.cells import assign_categories, build_cells
 from app.stats.trend import fit_trend
 from app.store import Store
@@ -82,7 +82,7 @@ def test_a_stored_bootstrap_run_supplies_the_reference_interval(demo_store: Stor
 def test_robustness_needs_a_mapping(store: Store) -> None:
     from conftest import DEMO_CSV
 
-    from app.ingest import import_roster
+    from app.intake.ingest import import_roster
 
     roster = import_roster(store, DEMO_CSV.read_bytes(), "roster.csv").roster
     store.save_mapping_version("partial", {"Retired": "voluntary"})

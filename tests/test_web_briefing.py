@@ -10,10 +10,10 @@ from typing import Any
 
 import pytest
 
-from app.analysis import load_input
-from app.export import ENABLE_HINT
-from app.findings import CHART_NAMES, build_finding
-from app.jobs import run_bootstrap_now
+from app.analysis.inputs import load_input
+from app.analysis.jobs import run_bootstrap_now
+from app.briefing.findings import CHART_NAMES, build_finding
+from app.briefing.render import ENABLE_HINT
 from app.store import Store, StoreError
 
 ROSTER = 1
@@ -22,7 +22,7 @@ CHROMIUM = Path("/usr/bin/chromium")  # Debian's chromium package (installed by 
 
 @pytest.fixture
 def no_browser(monkeypatch: pytest.MonkeyPatch) -> None:
-    # app/export.py: HELMSHIFT_BROWSER=none switches static export off
+    # app/briefing/render.py: HELMSHIFT_BROWSER=none switches static export off
     monkeypatch.setenv("HELMSHIFT_BROWSER", "none")
 
 
@@ -94,7 +94,7 @@ def test_png_chart_and_deck_downloads_with_a_browser(client: Any, monkeypatch: p
     assert png.status_code == 200 and png.headers["content-type"] == "image/png"
     assert png.content[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (RFC 2083)
     width, height = struct.unpack(">II", png.content[16:24])  # IHDR
-    assert (width, height) == (2200, 1240)  # 1100 x 620 at scale 2 (app/export.py figure_bytes)
+    assert (width, height) == (2200, 1240)  # 1100 x 620 at scale 2 (app/briefing/render.py figure_bytes)
     deck = client.get(f"/rosters/{ROSTER}/briefing/deck.pptx?chart=trend&chart=coverage")
     assert deck.status_code == 200 and "attachment" in deck.headers["content-disposition"]
     from pptx import Presentation  # python-pptx reads what the tool wrote

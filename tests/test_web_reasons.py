@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 from conftest import DEMO_CSV, DEMO_DIR, read_mapping
 
-from app.ingest import import_roster
+from app.intake.ingest import import_roster
 from app.store import Store
 
 ROSTER = 1

@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from conftest import figure_handoff, make_client
 
-from app.analysis import load_input
-from app.jobs import bootstrap_params, create_bootstrap_run
+from app.analysis.inputs import load_input
+from app.analysis.jobs import bootstrap_params, create_bootstrap_run
 from app.stats.bootstrap import bootstrap_trend
 from app.stats.design import design_matrix, window_centre
 from app.store import Store

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 from conftest import profile_interval, read_mapping, statsmodels_trend, year_counts
 
-from app.analysis import load_input
+from app.analysis.inputs import load_input
 from app.stats.trend import fit_trend
 from app.store import Store
 
@@ -117,7 +117,7 @@ def test_reloading_does_not_store_the_run_twice(client: Any, demo_store: Store) 
 def test_roster_without_mapping_explains_what_to_do(empty_client: Any, store: Store) -> None:
     from conftest import DEMO_CSV
 
-    from app.ingest import import_roster
+    from app.intake.ingest import import_roster
 
     roster_id = import_roster(store, DEMO_CSV.read_bytes(), "roster.csv").roster.id
     page = empty_client.get(f"/rosters/{roster_id}/trend").context["page"]

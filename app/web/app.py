@@ -46,7 +46,7 @@ def plotly_js_version() -> str:
 
 def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bool = True) -> FastAPI:
     """Build the app over ``store`` (opened from ``settings.db_url`` when not given)."""
-    from app.jobs import JobRunner
+    from app.analysis.jobs import JobRunner
 
     store = store or Store(settings.db_url)
 

@@ -8,10 +8,10 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 
-from app.analysis import AnalysisInput, load_input
-from app.briefs import DEFAULT_DECK, MEDIA_TYPES, brief_file, chart_file, deck_file
-from app.export import ExportError, export_available
-from app.findings import CHART_NAMES, build_finding, latest_bootstrap
+from app.analysis.inputs import AnalysisInput, load_input
+from app.briefing.exports import DEFAULT_DECK, MEDIA_TYPES, brief_file, chart_file, deck_file
+from app.briefing.findings import CHART_NAMES, build_finding, latest_bootstrap
+from app.briefing.render import ExportError, export_available
 from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec

@@ -9,8 +9,8 @@ import pandas as pd
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
 
-from app.analysis import AnalysisInput, load_input
-from app.findings import coverage_finding
+from app.analysis.inputs import AnalysisInput, load_input
+from app.briefing.findings import coverage_finding
 from app.stats.coverage import WindowSuggestion, YearFlag
 from app.store import Roster, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store

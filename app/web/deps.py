@@ -11,7 +11,7 @@ from app.store import Store
 from app.web.uploads import UploadStash
 
 if TYPE_CHECKING:
-    from app.jobs import JobRunner
+    from app.analysis.jobs import JobRunner
 
 
 class NotFound(Exception):

@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 import plotly.graph_objects as go
 
-from app.charts import PAGE_CONFIG, figure_json, untitled
+from app.briefing.charts import PAGE_CONFIG, figure_json, untitled
 
 
 @dataclass(frozen=True)

@@ -8,8 +8,9 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
-from app.analysis import export_mapping_csv, import_mapping_file, load_input
-from app.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
+from app.analysis.inputs import load_input
+from app.analysis.mapping_files import export_mapping_csv, import_mapping_file
+from app.intake.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
 from app.store import MAX_ID, MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES
 from app.web.deps import BadRequest, NotFound, app_store

@@ -2,21 +2,19 @@
 
 from __future__ import annotations
 
-import dataclasses
 import json
 import math
-from datetime import date, datetime
+from datetime import datetime
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-import pandas as pd
 from fastapi import Request
 from fastapi.responses import HTMLResponse, JSONResponse
 from fastapi.templating import Jinja2Templates
 from markupsafe import Markup
 
 from app import __version__
+from app.jsonable import jsonable
 
 TEMPLATE_DIR = Path(__file__).resolve().parents[2] / "templates"
 STATIC_DIR = Path(__file__).resolve().parents[2] / "static"
@@ -61,32 +59,6 @@ templates.env.filters["when"] = _fmt_when
 templates.env.filters["script_json"] = _script_json
 templates.env.filters["pct"] = _fmt_pct
 templates.env.filters["num"] = _fmt_num
-
-
-def jsonable(value: Any) -> Any:
-    """Convert dataclasses, DataFrames, numpy scalars and non-finite floats into plain JSON values."""
-    if dataclasses.is_dataclass(value) and not isinstance(value, type):
-        return {f.name: jsonable(getattr(value, f.name)) for f in dataclasses.fields(value)
-                if not f.metadata.get("json_skip")}
-    if isinstance(value, pd.DataFrame):
-        return [jsonable(r) for r in value.to_dict("records")]
-    if isinstance(value, pd.Series):
-        return jsonable(value.tolist())
-    if isinstance(value, dict):
-        return {str(k): jsonable(v) for k, v in value.items()}
-    if isinstance(value, list | tuple | set | frozenset):
-        return [jsonable(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return [jsonable(v) for v in value.tolist()]
-    if isinstance(value, np.generic):
-        return jsonable(value.item())
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, datetime | date):
-        return value.isoformat()
-    if value is pd.NA or value is pd.NaT:
-        return None
-    return value
 
 
 def render(request: Request, template: str, page: Any, *, status: int = 200, **extra: Any) -> HTMLResponse:

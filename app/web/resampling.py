@@ -10,9 +10,10 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
-from app.analysis import input_for_run, load_input, run_trend
-from app.findings import bootstrap_finding
-from app.jobs import MAX_RESAMPLES, bootstrap_params, create_bootstrap_run, extend_run
+from app.analysis.inputs import input_for_run, load_input
+from app.analysis.jobs import MAX_RESAMPLES, bootstrap_params, create_bootstrap_run, extend_run
+from app.analysis.runs import run_trend
+from app.briefing.findings import bootstrap_finding
 from app.stats.trend import TrendError
 from app.store import Roster, Run, Store, StoreError
 from app.types import UNITS

@@ -9,7 +9,7 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
-from app.ingest import (
+from app.intake.ingest import (
     DuplicateRosterError,
     RosterFileError,
     RosterPreview,

@@ -7,9 +7,10 @@ from dataclasses import dataclass, field
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
-from app.analysis import load_input, run_sectors
-from app.findings import robustness_finding_from, sectors_finding_from
-from app.robustness import Robustness, check_robustness
+from app.analysis.inputs import load_input
+from app.analysis.robustness import Robustness, check_robustness
+from app.analysis.runs import run_sectors
+from app.briefing.findings import robustness_finding_from, sectors_finding_from
 from app.stats.sectors import SectorTrends
 from app.store import Roster, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store

@@ -8,8 +8,9 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
-from app.analysis import load_input, run_trend
-from app.findings import trend_finding_from_fit
+from app.analysis.inputs import load_input
+from app.analysis.runs import run_trend
+from app.briefing.findings import trend_finding_from_fit
 from app.stats.trend import TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
 from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store

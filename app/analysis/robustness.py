@@ -14,8 +14,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from app.analysis import AnalysisInput, parse_mapping_ref
-from app.reasons import diff_mappings, suggest_categories
+from app.analysis.inputs import AnalysisInput, parse_mapping_ref
+from app.intake.reasons import diff_mappings, suggest_categories
 from app.stats.cells import assign_categories, build_cells
 from app.stats.trend import TrendError, fit_trend
 from app.store import Store

@@ -12,7 +12,7 @@ import re
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 
-from app.spreadsheet_safety import FORMULA_TRIGGERS, neutralise_formula
+from app.intake.spreadsheet_safety import FORMULA_TRIGGERS, neutralise_formula
 from app.types import CATEGORIES, Category
 
 # Word lists: common practice in governance research, not a standard. Each entry is matched at the

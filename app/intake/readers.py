@@ -1,7 +1,7 @@
 """Turn uploaded bytes (CSV or XLSX) into a header and rows of text, refusing hostile files early.
 
 Everything a roster can contain is read as text here; typing and validation happen in
-``app.ingest``. Whole-file problems raise ``RosterFileError`` with one sentence saying what and
+``app.intake.ingest``. Whole-file problems raise ``RosterFileError`` with one sentence saying what and
 where; row-level problems met while reading (wrong number of fields, broken quoting) come back as
 ``RejectedRow`` entries so the rest of the file still imports.
 """

@@ -14,16 +14,17 @@ import numpy as np
 import pandas as pd
 import plotly.graph_objects as go
 
-from app.analysis import AnalysisInput, input_for_run, provenance_for, run_sectors, run_trend
-from app.charts import bootstrap_histogram, coverage_figure, forest_figure, trend_figure
-from app.export import Provenance
-from app.jobs import replicate_odds_ratios
+from app.analysis.inputs import AnalysisInput, input_for_run
+from app.analysis.jobs import replicate_odds_ratios
+from app.analysis.provenance import Provenance, provenance_for
+from app.analysis.runs import run_sectors, run_trend
+from app.briefing.charts import bootstrap_histogram, coverage_figure, forest_figure, trend_figure
 from app.stats.sectors import SectorTrends
 from app.stats.trend import TrendFit, trend_sentence
 from app.store import Run, Store, StoreError
 
 if TYPE_CHECKING:
-    from app.robustness import Robustness
+    from app.analysis.robustness import Robustness
 
 ChartName = Literal["coverage", "trend", "bootstrap", "sectors", "robustness"]
 CHART_NAMES: tuple[ChartName, ...] = get_args(ChartName)
@@ -171,7 +172,7 @@ def sectors_finding(store: Store, inp: AnalysisInput, min_departures: int = 20) 
 
 
 def robustness_finding_from(inp: AnalysisInput, result: Robustness) -> ChartFinding:
-    from app.robustness import robustness_rows
+    from app.analysis.robustness import robustness_rows
 
     prov = provenance_for(inp, interval_method="profile likelihood, 95%")
     title = result.sentence.split(": ")[0].split(", but")[0]
@@ -181,7 +182,7 @@ def robustness_finding_from(inp: AnalysisInput, result: Robustness) -> ChartFind
 
 def robustness_finding(store: Store, inp: AnalysisInput, extra: list[str] | None = None,
                        vary: list[str] | None = None) -> ChartFinding:
-    from app.robustness import check_robustness
+    from app.analysis.robustness import check_robustness
 
     if extra is None:
         extra = [f"{n}:{v}" for n, v in store.list_mappings() if not (inp.mapping and n == inp.mapping.name)]

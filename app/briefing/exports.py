@@ -9,11 +9,13 @@ from typing import Literal, get_args
 
 import pandas as pd
 
-from app.analysis import AnalysisInput, run_trend
-from app.charts import untitled
-from app.deck import Finding, build_deck
-from app.export import Provenance, figure_bytes
-from app.findings import CHART_NAMES, ChartFinding, build_finding, latest_bootstrap
+from app.analysis.inputs import AnalysisInput
+from app.analysis.provenance import Provenance
+from app.analysis.runs import run_trend
+from app.briefing.charts import untitled
+from app.briefing.deck import Finding, build_deck
+from app.briefing.findings import CHART_NAMES, ChartFinding, build_finding, latest_bootstrap
+from app.briefing.render import figure_bytes
 from app.stats.trend import trend_sentence
 from app.store import Store
 
@@ -69,7 +71,7 @@ def deck_file(store: Store, inp: AnalysisInput, charts: Sequence[str] = DEFAULT_
 
 def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None) -> bytes:
     """The one-page brief: headline, trend and bootstrap (or coverage) charts, odds ratios, method."""
-    from app.brief import build_brief
+    from app.briefing.brief import build_brief
 
     fit = run_trend(store, inp).fit
     trend = build_finding(store, inp, "trend")

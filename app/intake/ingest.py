@@ -25,7 +25,7 @@ from typing import Any, Literal, get_args
 import numpy as np
 import pandas as pd
 
-from app.readers import (
+from app.intake.readers import (
     DATE_FORMATS,
     DEFAULT_LIMITS,
     RawTable,
@@ -34,7 +34,7 @@ from app.readers import (
     parse_dates,
     read_table,
 )
-from app.spreadsheet_safety import safe_csv
+from app.intake.spreadsheet_safety import safe_csv
 from app.store import RejectedRow, Roster, Store
 from app.types import REQUIRED_ROLES, ROLES, check_choice
 

@@ -18,7 +18,7 @@ from typing import Any
 
 import numpy as np
 
-from app.analysis import AnalysisInput, input_for_run
+from app.analysis.inputs import AnalysisInput, input_for_run
 from app.stats.bootstrap import BLOCK_SIZE, bootstrap_to_dict, draw_replicates, summarise_replicates
 from app.stats.design import design_matrix, window_centre
 from app.store import Store

@@ -22,8 +22,9 @@ from pptx.enum.text import MSO_ANCHOR, MSO_AUTO_SIZE, PP_ALIGN
 from pptx.slide import Slide
 from pptx.util import Emu, Inches, Pt
 
-from app.charts import INK, MUTED, OKABE_ITO, untitled
-from app.export import CAUTIONS, Provenance, figure_bytes
+from app.analysis.provenance import CAUTIONS, Provenance
+from app.briefing.charts import INK, MUTED, OKABE_ITO, untitled
+from app.briefing.render import figure_bytes
 
 SLIDE_W_IN = 13.333
 SLIDE_H_IN = 7.5
@@ -280,7 +281,7 @@ def _cautions_slide(prs: object, provenance: Provenance, number: int) -> None:
 def build_deck(findings: Sequence[Finding], provenance: Provenance, *, title: str, subtitle: str) -> bytes:
     """A 16:9 deck: title slide, one slide per finding (chart + takeaway), methods, cautions.
 
-    Raises app.export.ExportUnavailable when charts cannot be rendered (no browser).
+    Raises app.briefing.render.ExportUnavailable when charts cannot be rendered (no browser).
     """
     prs = Presentation()
     prs.slide_width = Emu(Inches(SLIDE_W_IN))

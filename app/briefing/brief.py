@@ -17,10 +17,11 @@ import plotly.graph_objects as go
 from jinja2 import Environment, FileSystemLoader, select_autoescape
 from markupsafe import Markup
 
-from app.charts import without_source
-from app.export import CAUTIONS, Provenance, figure_bytes
+from app.analysis.provenance import CAUTIONS, Provenance
+from app.briefing.charts import without_source
+from app.briefing.render import figure_bytes
 
-TEMPLATE_DIR = Path(__file__).resolve().parents[1] / "templates"
+TEMPLATE_DIR = Path(__file__).resolve().parents[2] / "templates"
 _env = Environment(loader=FileSystemLoader(str(TEMPLATE_DIR)), autoescape=select_autoescape(default=True))
 
 # wider than the page's 182 mm text block needs, so chart type prints at ~8-11 pt
@@ -95,7 +96,7 @@ def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFra
                 provenance: Provenance) -> bytes:
     """A one-page A4 PDF: headline, two charts, odds-ratio table, method, cautions, provenance footer.
 
-    Raises app.export.ExportUnavailable when charts cannot be rendered (no browser), ValueError when
+    Raises app.briefing.render.ExportUnavailable when charts cannot be rendered (no browser), ValueError when
     ``charts`` is not two figures or the content cannot be fitted on one page.
     """
     from weasyprint import HTML

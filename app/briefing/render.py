@@ -1,4 +1,4 @@
-"""Static chart files (PNG, SVG, PDF) through one long-lived kaleido engine, plus export provenance.
+"""Static chart files (PNG, SVG, PDF) through one long-lived kaleido engine.
 
 kaleido 1.x renders in a headless Chrome/Chromium that choreographer finds and launches (it always
 passes --no-sandbox unless asked otherwise, which is what lets it run as root). Starting the browser costs
@@ -13,8 +13,8 @@ Where the browser is looked for, in order:
 3. choreographer's search: a browser downloaded by ``kaleido_get_chrome``, then chrome/chromium/edge/brave
    names on PATH and their usual install paths (e.g. /usr/bin/chromium).
 
-The deck and the brief live in :mod:`app.deck` and :mod:`app.brief`; ``build_deck``, ``Finding`` and
-``build_brief`` can also be imported from here.
+The deck and the brief that embed these files live in :mod:`app.briefing.deck` and
+:mod:`app.briefing.brief`; what every export says about its sources lives in :mod:`app.analysis.provenance`.
 """
 
 from __future__ import annotations
@@ -25,25 +25,13 @@ import concurrent.futures
 import os
 import threading
 import time
-from dataclasses import dataclass, field
-from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any, Literal
 
 import plotly.graph_objects as go
 
-from app import __version__
-
 Format = Literal["png", "svg", "pdf"]
 FORMATS: tuple[Format, ...] = ("png", "svg", "pdf")
-
-#: The standard cautions, shown on pages and in every export.
-CAUTIONS: tuple[str, ...] = (
-    "Observational data: a trend is not a cause.",
-    "\u201cForced\u201d is a judgement that the mapping makes explicit; see how results move under other mappings.",
-    "Years with few departures give wide intervals.",
-    "Rosters hold personal data about named people: keep these files local.",
-)
 
 ENABLE_HINT = (
     "To enable chart, deck and brief export, install Chromium (apt-get install chromium) or set "
@@ -61,69 +49,6 @@ class ExportUnavailable(ExportError):
 
 class ExportTimeout(ExportError):
     """The engine took longer than the caller's timeout."""
-
-
-@dataclass(frozen=True, kw_only=True)
-class Provenance:
-    """Everything a reader needs to reproduce an exported number."""
-
-    roster: str
-    roster_fingerprint: str
-    mapping_name: str
-    mapping_version: int
-    window: tuple[int, int]
-    model: str
-    interval_method: str
-    resamples: int | None = None
-    seed: int | None = None
-    unit: str | None = None
-    tool_version: str = __version__
-    created: datetime = field(default_factory=lambda: datetime.now(UTC))
-    #: (category, codes) pairs of the mapping version, for the deck's methods slide
-    categories: tuple[tuple[str, tuple[str, ...]], ...] = ()
-
-    def _created(self) -> str:
-        return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
-
-    def _resampling(self) -> str | None:
-        if self.resamples is None:
-            return None
-        parts = [f"B = {self.resamples:,} resamples"]
-        if self.unit:
-            parts.append(f"by {self.unit}")
-        if self.seed is not None:
-            parts.append(f"seed {self.seed}")
-        return ", ".join(parts)
-
-    def lines(self) -> list[str]:
-        """One labelled line per fact, for the methods slide and the brief's footer."""
-        out = [
-            f"Roster: {self.roster} (data fingerprint {self.roster_fingerprint})",
-            f"Mapping: {self.mapping_name}, version {self.mapping_version}",
-            f"Window: fiscal years {self.window[0]}\u2013{self.window[1]}",
-            f"Model: {self.model}",
-            f"Intervals: {self.interval_method}",
-        ]
-        if (resampling := self._resampling()) is not None:
-            out.append(f"Resampling: {resampling}")
-        out.append(f"Made with Helmshift {self.tool_version} on {self._created()}")
-        return out
-
-    def text(self) -> str:
-        return "\n".join(self.lines())
-
-    def short(self) -> str:
-        """The one-line form for a chart's source line."""
-        parts = [
-            f"Source: roster {self.roster} [{self.roster_fingerprint[:12]}]",
-            f"mapping {self.mapping_name} v{self.mapping_version}",
-            f"FY{self.window[0]}\u2013{self.window[1]}",
-            self.model,
-        ]
-        if (resampling := self._resampling()) is not None:
-            parts.append(resampling)
-        parts.append(f"Helmshift {self.tool_version}, {self.created:%Y-%m-%d}")
-        return " \u00b7 ".join(parts)
 
 
 def find_browser() -> tuple[str | None, str]:
@@ -258,16 +183,3 @@ def figure_bytes(fig: go.Figure, fmt: Format, *, width: int = 1100, height: int 
             raise ExportTimeout(f"Rendering the {fmt.upper()} took more than {timeout:g} s.") from None
     finally:
         _LOCK.release()
-
-
-def __getattr__(name: str) -> Any:
-    # app.deck and app.brief import this module, so their builders are re-exported lazily
-    if name in {"build_deck", "Finding"}:
-        import app.deck
-
-        return getattr(app.deck, name)
-    if name == "build_brief":
-        import app.brief
-
-        return app.brief.build_brief
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -1,0 +1,35 @@
+"""Mapping files for a roster: import a CSV as the next version of a mapping, export a version as CSV."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from app.intake.reasons import parse_mapping_csv
+from app.intake.spreadsheet_safety import safe_csv
+from app.store import Store
+
+
+def import_mapping_file(store: Store, data: bytes, *, roster: int | str, name: str,
+                        author: str = "analyst") -> dict[str, Any]:
+    """Save a mapping CSV as the next version of ``name``; report codes not in the roster.
+
+    Unknown categories and duplicate codes reject the whole file (nothing saved). Codes that do not
+    occur in this roster are kept (they serve other rosters) and reported.
+    """
+    target = store.get_roster(roster)
+    parsed = parse_mapping_csv(data)
+    roster_codes = set(store.reason_counts(target.id)["code"].astype(str))
+    saved = store.save_mapping_version(name, parsed.categories, parsed.labels, author=author,
+                                       note=f"imported from CSV for roster {target.name}")
+    if store.settings(target.id).mapping_name is None:
+        store.update_settings(target.id, mapping_name=name)
+    not_in_roster = sorted(set(parsed.categories) - roster_codes)
+    unmapped = sorted(roster_codes - set(parsed.categories))
+    return {"mapping": saved.name, "version": saved.version, "codes": len(saved.categories),
+            "not_in_roster": not_in_roster, "unmapped_in_roster": unmapped}
+
+
+def export_mapping_csv(store: Store, *, name: str, version: int | None = None) -> str:
+    mapping = store.get_mapping(name, version)
+    rows = [[code, cat, mapping.labels.get(code, "")] for code, cat in sorted(mapping.categories.items())]
+    return safe_csv(rows, ["code", "category", "label"])

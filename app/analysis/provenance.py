@@ -1,0 +1,105 @@
+"""What every chart, deck and brief states about where its numbers came from, and the standard cautions.
+
+This sits below the exporters (:mod:`app.briefing`) that print it, so they import it and never each other.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+
+from app import __version__
+from app.analysis.inputs import AnalysisInput
+from app.types import CATEGORIES
+
+#: The standard cautions, shown on pages and in every export.
+CAUTIONS: tuple[str, ...] = (
+    "Observational data: a trend is not a cause.",
+    "\u201cForced\u201d is a judgement that the mapping makes explicit; see how results move under other mappings.",
+    "Years with few departures give wide intervals.",
+    "Rosters hold personal data about named people: keep these files local.",
+)
+
+MODEL_LABELS = {
+    "linear": "binomial GLM, logit(forced share) linear in fiscal year",
+    "sector": "binomial GLM, sector intercepts + common linear trend in fiscal year",
+    "spline": "binomial GLM, linear trend compared with a natural cubic spline in fiscal year",
+}
+
+
+@dataclass(frozen=True, kw_only=True)
+class Provenance:
+    """Everything a reader needs to reproduce an exported number."""
+
+    roster: str
+    roster_fingerprint: str
+    mapping_name: str
+    mapping_version: int
+    window: tuple[int, int]
+    model: str
+    interval_method: str
+    resamples: int | None = None
+    seed: int | None = None
+    unit: str | None = None
+    tool_version: str = __version__
+    created: datetime = field(default_factory=lambda: datetime.now(UTC))
+    #: (category, codes) pairs of the mapping version, for the deck's methods slide
+    categories: tuple[tuple[str, tuple[str, ...]], ...] = ()
+
+    def _created(self) -> str:
+        return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
+
+    def _resampling(self) -> str | None:
+        if self.resamples is None:
+            return None
+        parts = [f"B = {self.resamples:,} resamples"]
+        if self.unit:
+            parts.append(f"by {self.unit}")
+        if self.seed is not None:
+            parts.append(f"seed {self.seed}")
+        return ", ".join(parts)
+
+    def lines(self) -> list[str]:
+        """One labelled line per fact, for the methods slide and the brief's footer."""
+        out = [
+            f"Roster: {self.roster} (data fingerprint {self.roster_fingerprint})",
+            f"Mapping: {self.mapping_name}, version {self.mapping_version}",
+            f"Window: fiscal years {self.window[0]}\u2013{self.window[1]}",
+            f"Model: {self.model}",
+            f"Intervals: {self.interval_method}",
+        ]
+        if (resampling := self._resampling()) is not None:
+            out.append(f"Resampling: {resampling}")
+        out.append(f"Made with Helmshift {self.tool_version} on {self._created()}")
+        return out
+
+    def text(self) -> str:
+        return "\n".join(self.lines())
+
+    def short(self) -> str:
+        """The one-line form for a chart's source line."""
+        parts = [
+            f"Source: roster {self.roster} [{self.roster_fingerprint[:12]}]",
+            f"mapping {self.mapping_name} v{self.mapping_version}",
+            f"FY{self.window[0]}\u2013{self.window[1]}",
+            self.model,
+        ]
+        if (resampling := self._resampling()) is not None:
+            parts.append(resampling)
+        parts.append(f"Helmshift {self.tool_version}, {self.created:%Y-%m-%d}")
+        return " \u00b7 ".join(parts)
+
+
+def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method: str = "Wald and profile likelihood",
+                   resamples: int | None = None, seed: int | None = None, unit: str | None = None,
+                   by_sector: bool = False) -> Provenance:
+    """What every chart, deck and brief states about where its numbers came from."""
+    cats = inp.mapping.categories if inp.mapping else {}
+    grouped = tuple((c, tuple(sorted(code for code, cat in cats.items() if cat == c))) for c in CATEGORIES)
+    return Provenance(
+        roster=inp.roster.name, roster_fingerprint=inp.cells(by_sector=by_sector).fingerprint(),
+        mapping_name=inp.mapping.name if inp.mapping else "none",
+        mapping_version=inp.mapping.version if inp.mapping else 0, window=inp.window,
+        model=MODEL_LABELS.get(model, model), interval_method=interval_method, resamples=resamples,
+        seed=seed, unit=unit, categories=grouped,
+    )

@@ -1,0 +1,98 @@
+"""Fits that pages and commands ask for, recorded as runs, and their plain-value summaries."""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from typing import Any
+
+from app.analysis.inputs import AnalysisInput
+from app.analysis.robustness import check_robustness, robustness_to_dict
+from app.stats.coverage import suggest_window
+from app.stats.sectors import SectorTrends, fit_sector_trends, sector_trends_to_dict
+from app.stats.trend import TrendFit, fit_to_dict, fit_trend, trend_sentence
+from app.store import Store
+
+
+@dataclass(frozen=True)
+class TrendOutcome:
+    """A trend fit and the id of the stored run that records it."""
+
+    fit: TrendFit
+    run_id: int
+
+
+def _record_run(store: Store, inp: AnalysisInput, params: dict[str, Any], fingerprint: str,
+                result: dict[str, Any], seconds: float) -> int:
+    """Store a finished fit as a run, unless an identical one (same data, mapping, window, options) exists."""
+    for run in store.list_runs(inp.roster.id, "fit"):
+        if (run.fingerprint == fingerprint and run.params == params and run.window == inp.window
+                and run.mapping_version == (inp.mapping.version if inp.mapping else None)
+                and run.mapping_name == (inp.mapping.name if inp.mapping else None)):
+            return run.id
+    run_id = store.create_run(
+        kind="fit", roster_id=inp.roster.id, params=params, fingerprint=fingerprint,
+        mapping_name=inp.mapping.name if inp.mapping else None,
+        mapping_version=inp.mapping.version if inp.mapping else None, window=inp.window, status="running",
+    )
+    store.finish_run(run_id, result, seconds=seconds)
+    return run_id
+
+
+def run_trend(store: Store, inp: AnalysisInput, *, model: str = "linear", spline_df: int = 3) -> TrendOutcome:
+    """Fit the trend over the window and record the run."""
+    started = time.perf_counter()
+    cells = inp.cells(by_sector=model == "sector")
+    fit = fit_trend(cells, model, spline_df=spline_df)  # type: ignore[arg-type]
+    params: dict[str, Any] = {"model": model} | ({"spline_df": spline_df} if model == "spline" else {})
+    run_id = _record_run(store, inp, params, cells.fingerprint(), fit_to_dict(fit),
+                         time.perf_counter() - started)
+    return TrendOutcome(fit, run_id)
+
+
+def run_sectors(store: Store, inp: AnalysisInput, *, min_departures: int = 20) -> tuple[SectorTrends, int]:
+    """Per-sector trends, the sector-adjusted common trend and the test of equal trends; recorded."""
+    started = time.perf_counter()
+    cells = inp.cells(by_sector=True)
+    result = fit_sector_trends(cells, min_departures=min_departures)
+    run_id = _record_run(store, inp, {"model": "by_sector", "min_departures": min_departures},
+                         cells.fingerprint(), dict(sector_trends_to_dict(result)), time.perf_counter() - started)
+    return result, run_id
+
+
+def fit_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", by_sector: bool = False) -> dict[str, Any]:
+    """The command line's ``fit --json`` object (and the trend page's JSON twin)."""
+    outcome = run_trend(store, inp, model=model)
+    payload: dict[str, Any] = dict(fit_to_dict(outcome.fit))
+    payload.update({"roster": inp.roster.name, "mapping": inp.mapping_label, "run": outcome.run_id,
+                    "sentence": trend_sentence(outcome.fit), "warnings": inp.warnings()})
+    if by_sector:
+        sectors, _ = run_sectors(store, inp)
+        view = sector_trends_to_dict(sectors)
+        payload["sectors"] = view["sectors"]
+        payload["heterogeneity"] = view["heterogeneity"]
+        payload["sector_messages"] = list(sectors.messages)
+    return payload
+
+
+def robustness_summary(store: Store, inp: AnalysisInput, *, extra_mappings: list[str],
+                       vary: list[str]) -> dict[str, Any]:
+    """The command line's ``robustness --json`` object."""
+    result = check_robustness(store, inp, extra_mappings=extra_mappings, vary=vary)
+    return {"roster": inp.roster.name, "mapping": inp.mapping_label, **robustness_to_dict(result)}
+
+
+def coverage_summary(inp: AnalysisInput, *, threshold: float = 0.5) -> dict[str, Any]:
+    """The coverage table and window suggestion as plain values (CLI ``--json`` and the API)."""
+    suggestion = suggest_window(inp.coverage, threshold=threshold)
+    years = [
+        {k: int(row[k]) for k in ("year", "departures", "forced", "voluntary", "excluded", "unmapped")}
+        for row in inp.coverage.to_dict("records")
+    ]
+    return {
+        "roster": inp.roster.name, "mapping": inp.mapping_label, "years": years,
+        "suggested_window": list(suggestion.window), "rule": suggestion.rule,
+        "window": list(inp.window), "window_source": inp.window_source,
+        "flags": [{"year": f.year, "kind": f.kind, "message": f.message} for f in inp.flags],
+        "warnings": inp.warnings(),
+    }

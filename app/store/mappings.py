@@ -1,0 +1,109 @@
+"""Named, versioned reason-code mappings: every save is a new version; old versions stay readable.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+from sqlalchemy import (
+    func,
+    insert,
+    select,
+)
+
+from app.store.engine import Gateway
+from app.store.records import (
+    MAX_ID,
+    MappingVersion,
+    StoreError,
+    now_iso,
+)
+from app.store.tables import (
+    mapping_entries,
+    mapping_versions,
+    mappings,
+)
+from app.types import CATEGORIES
+
+
+class MappingQueries(Gateway):
+    """Reads and writes of mappings and their versions."""
+
+    def save_mapping_version(
+        self,
+        name: str,
+        categories: Mapping[str, str],
+        labels: Mapping[str, str] | None = None,
+        *,
+        author: str = "analyst",
+        note: str = "",
+    ) -> MappingVersion:
+        """Save ``categories`` (code -> category) as the next version of mapping ``name``."""
+        bad = sorted({c for c in categories.values() if c not in CATEGORIES})
+        if bad:
+            raise StoreError(f"Unknown categories {bad}; allowed: {', '.join(CATEGORIES)}.")
+        labels = labels or {}
+        with self._tx() as conn:
+            row = conn.execute(select(mappings.c.id).where(mappings.c.name == name)).first()
+            mapping_id = row.id if row else conn.execute(
+                insert(mappings).values(name=name, created_at=now_iso())
+            ).inserted_primary_key[0]  # type: ignore[index]
+            last = conn.execute(
+                select(func.max(mapping_versions.c.version)).where(mapping_versions.c.mapping_id == mapping_id)
+            ).scalar()
+            version = (last or 0) + 1
+            version_id = conn.execute(
+                insert(mapping_versions).values(
+                    mapping_id=mapping_id, version=version, created_at=now_iso(), author=author, note=note,
+                )
+            ).inserted_primary_key[0]  # type: ignore[index]
+            if categories:
+                conn.execute(insert(mapping_entries), [
+                    {"version_id": version_id, "code": code, "category": cat, "label": labels.get(code, "")}
+                    for code, cat in categories.items()
+                ])
+        return self.get_mapping(name, version)
+
+    def list_mappings(self) -> list[tuple[str, int]]:
+        """Every mapping name with its latest version number."""
+        with self.engine.connect() as conn:
+            rows = conn.execute(
+                select(mappings.c.name, func.max(mapping_versions.c.version))
+                .join(mapping_versions, mapping_versions.c.mapping_id == mappings.c.id)
+                .group_by(mappings.c.name).order_by(mappings.c.name)
+            )
+            return [(r[0], int(r[1])) for r in rows]
+
+    def mapping_history(self, name: str) -> list[tuple[int, str, str, str]]:
+        """(version, created_at, author, note) for each version of a mapping, oldest first."""
+        with self.engine.connect() as conn:
+            rows = conn.execute(
+                select(mapping_versions.c.version, mapping_versions.c.created_at,
+                       mapping_versions.c.author, mapping_versions.c.note)
+                .join(mappings, mapping_versions.c.mapping_id == mappings.c.id)
+                .where(mappings.c.name == name).order_by(mapping_versions.c.version)
+            )
+            return [(int(r[0]), r[1], r[2], r[3]) for r in rows]
+
+    def get_mapping(self, name: str, version: int | None = None) -> MappingVersion:
+        """A version of a mapping (the latest when ``version`` is None)."""
+        if version is not None and not 0 < version <= MAX_ID:
+            raise StoreError(f"No version {version} of mapping {name!r} is stored.")
+        with self.engine.connect() as conn:
+            q = (select(mapping_versions).join(mappings, mapping_versions.c.mapping_id == mappings.c.id)
+                 .where(mappings.c.name == name))
+            q = (q.where(mapping_versions.c.version == version) if version is not None
+                 else q.order_by(mapping_versions.c.version.desc()).limit(1))
+            row = conn.execute(q).first()
+            if row is None:
+                what = f"version {version} of mapping {name!r}" if version is not None else f"mapping {name!r}"
+                raise StoreError(f"No {what} is stored.")
+            entries = conn.execute(
+                select(mapping_entries.c.code, mapping_entries.c.category, mapping_entries.c.label)
+                .where(mapping_entries.c.version_id == row.id).order_by(mapping_entries.c.code)
+            ).fetchall()
+        return MappingVersion(
+            name=name, version=int(row.version), created_at=row.created_at, author=row.author,
+            note=row.note, categories={e.code: e.category for e in entries},
+            labels={e.code: e.label for e in entries if e.label},
+        )

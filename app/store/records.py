@@ -1,0 +1,84 @@
+"""What the store hands out: frozen dataclasses of stored things, and the store's one error type.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from typing import Any
+
+from app.types import Category, RunKind, RunStatus
+
+
+class StoreError(ValueError):
+    """A request the store cannot satisfy (unknown roster, duplicate name, ...)."""
+
+
+MAX_ID = 2**63 - 1  # SQLite INTEGER range; larger ids cannot exist and must not reach the driver
+
+
+def now_iso() -> str:
+    return datetime.now(UTC).replace(microsecond=0).isoformat()
+
+
+@dataclass(frozen=True)
+class Roster:
+    id: int
+    name: str
+    source_name: str
+    sha256: str
+    imported_at: str
+    rows_total: int
+    accepted: int
+    rejected: int
+    duplicates: int
+    columns: dict[str, str]
+
+
+@dataclass(frozen=True)
+class RejectedRow:
+    line: int
+    raw: str
+    reason: str
+
+
+@dataclass(frozen=True)
+class MappingVersion:
+    """One saved version of a named mapping: code -> (category, label)."""
+
+    name: str
+    version: int
+    created_at: str
+    author: str
+    note: str
+    categories: dict[str, Category]
+    labels: dict[str, str]
+
+
+@dataclass(frozen=True)
+class RosterSettings:
+    roster_id: int
+    mapping_name: str | None
+    window: tuple[int, int] | None
+
+
+@dataclass(frozen=True)
+class Run:
+    id: int
+    kind: RunKind
+    roster_id: int
+    status: RunStatus
+    created_at: str
+    started_at: str | None
+    finished_at: str | None
+    mapping_name: str | None
+    mapping_version: int | None
+    window: tuple[int, int] | None
+    params: dict[str, Any]
+    fingerprint: str
+    progress_done: int
+    progress_total: int
+    cancel_requested: bool
+    result: dict[str, Any] | None
+    error: str | None
+    seconds: float | None

@@ -1,0 +1,146 @@
+"""Table definitions and the ordered schema migrations of the store (SQLAlchemy Core metadata).
+
+Version 1 is ``metadata.create_all``; each later change appends SQL to ``MIGRATIONS``; ``schema_version``
+records what a database has applied.
+"""
+
+from __future__ import annotations
+
+from sqlalchemy import (
+    Boolean,
+    Column,
+    Float,
+    ForeignKey,
+    Integer,
+    LargeBinary,
+    MetaData,
+    String,
+    Table,
+    Text,
+    UniqueConstraint,
+)
+
+metadata = MetaData()
+
+schema_version = Table("schema_version", metadata, Column("version", Integer, nullable=False))
+
+rosters = Table(
+    "rosters", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String, nullable=False, unique=True),
+    Column("source_name", String, nullable=False),
+    Column("sha256", String(64), nullable=False, index=True),
+    Column("imported_at", String, nullable=False),
+    Column("rows_total", Integer, nullable=False),
+    Column("accepted", Integer, nullable=False),
+    Column("rejected", Integer, nullable=False),
+    Column("duplicates", Integer, nullable=False),
+    Column("columns", Text, nullable=False),  # JSON: role -> header used
+)
+
+DEPARTURE_FIELDS = (
+    "line", "firm_id", "firm_name", "sector", "year", "date", "reason", "executive",
+    "age", "tenure", "interim", "notes", "raw",
+)
+
+departures = Table(
+    "departures", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("line", Integer, nullable=False),
+    Column("firm_id", String, nullable=False),
+    Column("firm_name", String),
+    Column("sector", String),
+    Column("year", Integer, nullable=False),
+    Column("date", String),  # ISO date or NULL
+    Column("reason", String, nullable=False),
+    Column("executive", String),
+    Column("age", Float),
+    Column("tenure", Float),
+    Column("interim", Boolean),
+    Column("notes", Text),
+    Column("raw", Text, nullable=False),  # the original row as JSON, for provenance
+)
+
+rejected_rows = Table(
+    "rejected_rows", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("line", Integer, nullable=False),
+    Column("raw", Text, nullable=False),
+    Column("reason", Text, nullable=False),
+)
+
+mappings = Table(
+    "mappings", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String, nullable=False, unique=True),
+    Column("created_at", String, nullable=False),
+)
+
+mapping_versions = Table(
+    "mapping_versions", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("mapping_id", Integer, ForeignKey("mappings.id", ondelete="CASCADE"), nullable=False),
+    Column("version", Integer, nullable=False),
+    Column("created_at", String, nullable=False),
+    Column("author", String, nullable=False),
+    Column("note", Text, nullable=False),
+    UniqueConstraint("mapping_id", "version"),
+)
+
+mapping_entries = Table(
+    "mapping_entries", metadata,
+    Column("version_id", Integer, ForeignKey("mapping_versions.id", ondelete="CASCADE"), nullable=False,
+           index=True),
+    Column("code", String, nullable=False),
+    Column("category", String, nullable=False),
+    Column("label", String, nullable=False, default=""),
+    UniqueConstraint("version_id", "code"),
+)
+
+roster_settings = Table(
+    "roster_settings", metadata,
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), primary_key=True),
+    Column("mapping_name", String),
+    Column("window_from", Integer),
+    Column("window_to", Integer),
+)
+
+runs = Table(
+    "runs", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("kind", String, nullable=False),
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("status", String, nullable=False),
+    Column("created_at", String, nullable=False),
+    Column("started_at", String),
+    Column("finished_at", String),
+    Column("mapping_name", String),
+    Column("mapping_version", Integer),
+    Column("window_from", Integer),
+    Column("window_to", Integer),
+    Column("params", Text, nullable=False),  # JSON: model, unit, B, seed, ...
+    Column("fingerprint", String, nullable=False),
+    Column("progress_done", Integer, nullable=False, default=0),
+    Column("progress_total", Integer, nullable=False, default=0),
+    Column("cancel_requested", Boolean, nullable=False, default=False),
+    Column("result", Text),  # JSON
+    Column("error", Text),
+    Column("seconds", Float),
+)
+
+run_replicates = Table(
+    "run_replicates", metadata,
+    Column("run_id", Integer, ForeignKey("runs.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("seq", Integer, nullable=False),
+    Column("count", Integer, nullable=False),
+    Column("data", LargeBinary, nullable=False),  # zlib-compressed float64 replicates (NaN = failed)
+    Column("failures", LargeBinary, nullable=False),  # zlib-compressed, one reason per line ("" = ok)
+    UniqueConstraint("run_id", "seq"),
+)
+
+#: ordered schema migrations; index i+1 is the version after applying MIGRATIONS[i].
+#: Version 1 is the ``metadata.create_all`` above; later changes append SQL here.
+MIGRATIONS: list[str] = []
+SCHEMA_VERSION = 1 + len(MIGRATIONS)
