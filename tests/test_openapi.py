@@ -1,26 +1,44 @@
 """The OpenAPI schema the app serves describes what the app really returns.
 
-Every JSON route is called on the demo roster and its body is checked twice: against the pydantic model in
-app/web/schemas.py and against the schema served at /openapi.json for that path, method and status
-(JSON Schema 2020-12, the dialect of OpenAPI 3.1, with jsonschema_rs, the validator schemathesis uses).
-Error bodies (400, 404, 409, 422) are held to the same. The last tests are regressions for what the
-schemathesis fuzz test (test_fuzz_api.py) found.
+Every JSON route is called on the demo roster and its body is checked twice: against its pydantic model
+(generated from the page dataclass, app/web/schema_gen.py) and against the schema served at /openapi.json for
+that path, method and status (JSON Schema 2020-12, the dialect of OpenAPI 3.1, with jsonschema_rs, the
+validator schemathesis uses). Error bodies (400, 404, 409, 422) are held to the same. Then the generator
+itself: a field added to a dataclass reaches the schema with no second declaration, and the models follow
+what ``jsonable`` writes. The last tests are regressions for what the schemathesis fuzz test
+(test_fuzz_api.py) found.
 """
 
 from __future__ import annotations
 
+import dataclasses
+import math
 from collections.abc import Iterator
+from dataclasses import dataclass, field
+from datetime import date
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import jsonschema_rs
+import numpy as np
+import pandas as pd
 import pytest
 from conftest import DEMO_CSV, copy_database, make_client
 from fastapi.testclient import TestClient
-from pydantic import BaseModel
+from pydantic import BaseModel, ValidationError
 
-from app.store import Store
+from app.jsonable import jsonable
+from app.stats.trend import TrendFit
+from app.store import Roster, Run, Store
 from app.web import schemas as S
+from app.web.briefing import BriefingBody, BriefingPage
+from app.web.coverage import CoverageBody, CoveragePage
+from app.web.reasons import ReasonsBody, ReasonsPage
+from app.web.resampling import ResamplingPage, RunBody, RunPage, RunsBody
+from app.web.rosters import RosterDetailBody, RosterDetailPage, RostersBody, RostersPage
+from app.web.schema_gen import ModelFactory
+from app.web.sectors import RobustnessBody, RobustnessPage, SectorsBody, SectorsPage
+from app.web.trend import TrendBody, TrendPage, TrendUnfitBody
 
 JSON = {"accept": "application/json"}
 
@@ -66,33 +84,33 @@ def assert_conforms(openapi: dict[str, Any], template: str, method: str, respons
 # (template, url, status, model): every JSON route, with its errors
 CASES: list[tuple[str, str, int, type[BaseModel]]] = [
     ("/api/health", "/api/health", 200, S.HealthBody),
-    ("/api/rosters", "/api/rosters", 200, S.RostersBody),
-    ("/api/rosters/{roster_id}", "/api/rosters/1", 200, S.RosterDetailBody),
+    ("/api/rosters", "/api/rosters", 200, RostersBody),
+    ("/api/rosters/{roster_id}", "/api/rosters/1", 200, RosterDetailBody),
     ("/api/rosters/{roster_id}", "/api/rosters/99", 404, S.ErrorBody),
     ("/api/rosters/{roster_id}", "/api/rosters/x", 422, S.ValidationErrorBody),
-    ("/api/rosters/{roster_id}/reasons", "/api/rosters/1/reasons", 200, S.ReasonsBody),
-    ("/api/rosters/{roster_id}/reasons", "/api/rosters/1/reasons?a=1&b=1", 200, S.ReasonsBody),
+    ("/api/rosters/{roster_id}/reasons", "/api/rosters/1/reasons", 200, ReasonsBody),
+    ("/api/rosters/{roster_id}/reasons", "/api/rosters/1/reasons?a=1&b=1", 200, ReasonsBody),
     ("/api/rosters/{roster_id}/reasons", "/api/rosters/1/reasons?a=1&b=7", 400, S.ErrorBody),
-    ("/api/rosters/{roster_id}/coverage", "/api/rosters/1/coverage", 200, S.CoverageBody),
-    ("/api/rosters/{roster_id}/coverage", "/api/rosters/1/coverage?threshold=0.9", 200, S.CoverageBody),
+    ("/api/rosters/{roster_id}/coverage", "/api/rosters/1/coverage", 200, CoverageBody),
+    ("/api/rosters/{roster_id}/coverage", "/api/rosters/1/coverage?threshold=0.9", 200, CoverageBody),
     ("/api/rosters/{roster_id}/coverage", "/api/rosters/1/coverage?threshold=x", 400, S.ErrorBody),
-    ("/api/rosters/{roster_id}/trend", "/api/rosters/1/trend", 200, S.TrendBody),
-    ("/api/rosters/{roster_id}/trend", "/api/rosters/1/trend?model=spline&spline_df=4", 200, S.TrendBody),
-    ("/api/rosters/{roster_id}/trend", "/api/rosters/1/trend?model=sector", 200, S.TrendBody),
+    ("/api/rosters/{roster_id}/trend", "/api/rosters/1/trend", 200, TrendBody),
+    ("/api/rosters/{roster_id}/trend", "/api/rosters/1/trend?model=spline&spline_df=4", 200, TrendBody),
+    ("/api/rosters/{roster_id}/trend", "/api/rosters/1/trend?model=sector", 200, TrendBody),
     ("/api/rosters/{roster_id}/trend", "/api/rosters/1/trend?model=quadratic", 400, S.ErrorBody),
-    ("/api/rosters/{roster_id}/trend", "/api/rosters/1/trend?from=1990&to=1991", 422, S.TrendUnfitBody),
+    ("/api/rosters/{roster_id}/trend", "/api/rosters/1/trend?from=1990&to=1991", 422, TrendUnfitBody),
     ("/api/rosters/{roster_id}/trend", "/api/rosters/x/trend", 422, S.ValidationErrorBody),
-    ("/api/rosters/{roster_id}/runs", "/api/rosters/1/runs", 200, S.RunsBody),
-    ("/api/runs/{run_id}", "/api/runs/{bootstrap}", 200, S.RunBody),
-    ("/api/runs/{run_id}", "/api/runs/{bootstrap}?method=basic", 200, S.RunBody),
+    ("/api/rosters/{roster_id}/runs", "/api/rosters/1/runs", 200, RunsBody),
+    ("/api/runs/{run_id}", "/api/runs/{bootstrap}", 200, RunBody),
+    ("/api/runs/{run_id}", "/api/runs/{bootstrap}?method=basic", 200, RunBody),
     ("/api/runs/{run_id}", "/api/runs/{bootstrap}?method=normal", 400, S.ErrorBody),
     ("/api/runs/{run_id}", "/api/runs/99999", 404, S.ErrorBody),
-    ("/api/rosters/{roster_id}/sectors", "/api/rosters/1/sectors", 200, S.SectorsBody),
+    ("/api/rosters/{roster_id}/sectors", "/api/rosters/1/sectors", 200, SectorsBody),
     ("/api/rosters/{roster_id}/sectors", "/api/rosters/1/sectors?min_departures=0", 400, S.ErrorBody),
-    ("/api/rosters/{roster_id}/robustness", "/api/rosters/1/robustness", 200, S.RobustnessBody),
-    ("/api/rosters/{roster_id}/robustness", "/api/rosters/1/robustness?vary=Retired", 200, S.RobustnessBody),
+    ("/api/rosters/{roster_id}/robustness", "/api/rosters/1/robustness", 200, RobustnessBody),
+    ("/api/rosters/{roster_id}/robustness", "/api/rosters/1/robustness?vary=Retired", 200, RobustnessBody),
     ("/api/rosters/{roster_id}/briefing", "/api/rosters/1/briefing?chart=coverage&chart=trend&chart=bootstrap"
-     "&chart=sectors&chart=robustness", 200, S.BriefingBody),
+     "&chart=sectors&chart=robustness", 200, BriefingBody),
     ("/api/rosters/{roster_id}/briefing", "/api/rosters/1/briefing?chart=pie", 400, S.ErrorBody),
 ]
 
@@ -113,7 +131,7 @@ def test_json_route_matches_its_model_and_the_served_schema(
 
 
 def test_finished_runs_carry_intervals_in_the_documented_shape(api: TestClient) -> None:
-    body = S.RunBody.model_validate(api.get(f"/api/runs/{_bootstrap_run(api)}").json())
+    body = RunBody.model_validate(api.get(f"/api/runs/{_bootstrap_run(api)}").json())
     assert body.run.status == "done" and body.run.result is not None
     assert set(body.run.result.conf_int) == {"percentile", "basic", "bca"}
     assert body.comparison_found  # one run per unit with the same settings
@@ -213,6 +231,149 @@ def test_exports_have_the_declared_media_types(api: TestClient, openapi: dict[st
         assert r.headers["content-type"] in openapi["paths"][template]["get"]["responses"]["200"]["content"]
 
 
+# -- the generator: one declaration per field -------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Part:
+    label: str
+    share: float
+
+
+@dataclass(frozen=True)
+class _Probe:
+    """A throwaway result with one field of each kind ``jsonable`` handles."""
+
+    name: str
+    count: int
+    share: float
+    window: tuple[int, int]
+    knots: tuple[float, ...]
+    kind: Literal["a", "b"]
+    by_code: dict[int, str]
+    parts: list[_Part]
+    maybe: _Part | None
+    table: pd.DataFrame
+    when: date
+    scalar: np.float64
+    figure: object = field(default=None, metadata={"json_skip": True})
+
+
+@dataclass(frozen=True)
+class _Odd:
+    handle: complex
+
+
+def _probe() -> _Probe:
+    return _Probe(name="n", count=3, share=math.nan, window=(1998, 2022), knots=(1.0, math.inf), kind="a",
+                  by_code={1: "x"}, parts=[_Part("p", -math.inf)], maybe=None,
+                  table=pd.DataFrame({"year": [2000, 2001], "share": [0.25, np.nan]}), when=date(2026, 1, 2),
+                  scalar=np.float64(0.5), figure=object())
+
+
+def _schema_errors(model: type[BaseModel], value: Any) -> list[str]:
+    """Errors of jsonschema_rs (outside the project) against the JSON schema pydantic writes for ``model``."""
+    validator = jsonschema_rs.Draft202012Validator(model.model_json_schema())
+    return [f"{e.instance_path}: {e.message}" for e in validator.iter_errors(value)]
+
+
+def json_fields(cls: type) -> set[str]:
+    return {f.name for f in dataclasses.fields(cls) if not f.metadata.get("json_skip")}
+
+
+def test_a_generated_model_accepts_what_jsonable_writes() -> None:
+    model = ModelFactory().define(_Probe, "Probe")
+    value = jsonable(_probe())
+    assert value["share"] is None and value["knots"] == [1.0, None] and value["table"][1]["share"] is None
+    model.model_validate(value)
+    assert _schema_errors(model, value) == []
+    assert set(model.model_fields) == json_fields(_Probe) == set(value)
+    assert set(model.model_json_schema()["required"]) == json_fields(_Probe)  # jsonable writes every field
+
+
+@pytest.mark.parametrize("change", [
+    {"extra": 1},  # a page body forbids unknown keys
+    {"window": [1998, 2010, 2022]},  # a pair is exactly two items
+    {"kind": "c"},  # a Literal keeps its words
+    {"count": "three"},
+    {"by_code": {"1": 2}},
+    {"parts": [{"label": "p"}]},  # a nested dataclass's fields are required too
+])
+def test_a_generated_model_refuses_what_jsonable_cannot_write(change: dict[str, Any]) -> None:
+    model = ModelFactory().define(_Probe, "Probe")
+    value = {**jsonable(_probe()), **change}
+    with pytest.raises(ValidationError):
+        model.model_validate(value)
+    assert _schema_errors(model, value)
+
+
+def test_a_result_nested_in_a_page_may_stay_open() -> None:
+    models = ModelFactory()
+    models.define(_Part, extra="allow")
+    model = models.define(_Probe, "Probe")
+    value = jsonable(_probe())
+    value["parts"][0]["more"] = 1
+    model.model_validate(value)
+    assert _schema_errors(model, value) == []
+    with pytest.raises(ValidationError):
+        model.model_validate({**value, "more": 1})
+
+
+def test_a_field_added_to_a_page_dataclass_reaches_its_model_without_schemas_py() -> None:
+    plus = dataclasses.make_dataclass("TrendPagePlus", [("note", str, field(default=""))], bases=(TrendPage,),
+                                      frozen=True)
+    model = ModelFactory().define(plus, "TrendPagePlus")
+    assert set(model.model_fields) == json_fields(TrendPage) | {"note"}
+    assert "note" in model.model_json_schema()["required"]
+    assert "figure" not in model.model_fields  # json_skip
+
+
+# every JSON body and the dataclass it is made from
+BODIES: list[tuple[type[BaseModel], type]] = [
+    (RostersBody, RostersPage), (RosterDetailBody, RosterDetailPage), (ReasonsBody, ReasonsPage),
+    (CoverageBody, CoveragePage), (TrendBody, TrendPage), (TrendUnfitBody, TrendPage), (RunsBody, ResamplingPage),
+    (RunBody, RunPage), (SectorsBody, SectorsPage), (RobustnessBody, RobustnessPage),
+    (BriefingBody, BriefingPage), (S.RosterOut, Roster), (S.RunOut, Run), (S.BootstrapRunOut, Run),
+    (S.TrendFitOut, TrendFit),
+]
+
+
+@pytest.mark.parametrize(("model", "cls"), BODIES, ids=[m.__name__ for m, _ in BODIES])
+def test_each_served_body_has_exactly_the_fields_of_its_dataclass(openapi: dict[str, Any], model: type[BaseModel],
+                                                                   cls: type) -> None:
+    assert set(model.model_fields) == json_fields(cls)
+    served = openapi["components"]["schemas"][model.__name__]
+    assert set(served["properties"]) == json_fields(cls)
+    exact = cls.__module__.startswith(("app.web", "app.store"))  # page bodies and stored records
+    assert served.get("additionalProperties") is (not exact)
+
+
+def test_the_fit_summary_is_the_fit_less_its_covariance_plus_its_sentence() -> None:
+    # fit_to_dict is written by hand; its model is derived from TrendFit, so a new TrendFit field shows here
+    assert set(S.TrendFitSummary.model_fields) == json_fields(TrendFit) - {"covariance"} | {"sentence"}
+
+
+def test_a_shape_must_name_fields_the_dataclass_has() -> None:
+    with pytest.raises(ValueError, match="typo"):
+        ModelFactory().define(_Part, fields={"typo": int})
+    with pytest.raises(ValueError, match="already has"):
+        ModelFactory().define(_Part, add={"label": str})
+
+
+def test_a_type_with_no_json_shape_is_refused_naming_the_field() -> None:
+    with pytest.raises(TypeError, match=r"_Odd\.handle"):
+        ModelFactory().define(_Odd)
+
+
+def test_a_dataclass_gets_one_model_and_names_are_unique() -> None:
+    models = ModelFactory()
+    models.define(_Part)
+    with pytest.raises(ValueError, match="already has a model"):
+        models.define(_Part)
+    with pytest.raises(ValueError, match="two models are named _PartOut"):
+        models.variant(_Part, "_PartOut")
+
+
 # -- what the fuzz test found ---------------------------------------------------------------------
 
 
@@ -229,7 +390,7 @@ def test_sectors_page_when_no_sector_can_be_fitted(api: TestClient, openapi: dic
     # was a 500: the forest chart had no row to draw
     r = api.get("/api/rosters/1/sectors?min_departures=10000")
     assert r.status_code == 200
-    body = S.SectorsBody.model_validate(r.json())
+    body = SectorsBody.model_validate(r.json())
     assert body.error and body.result is not None
     assert all(t.status == "skipped" for t in body.result.sectors)
     assert_conforms(openapi, "/api/rosters/{roster_id}/sectors", "get", r)
