@@ -3,31 +3,24 @@
 Every JSON route is called on the demo roster and its body is checked twice: against its pydantic model
 (generated from the page dataclass, app/web/schema_gen.py) and against the schema served at /openapi.json for
 that path, method and status (JSON Schema 2020-12, the dialect of OpenAPI 3.1, with jsonschema_rs, the
-validator schemathesis uses). Error bodies (400, 404, 409, 422) are held to the same. Then the generator
-itself: a field added to a dataclass reaches the schema with no second declaration, and the models follow
-what ``jsonable`` writes. The last tests are regressions for what the schemathesis fuzz test
+validator schemathesis uses). Error bodies (400, 404, 409, 422) are held to the same, and every served body
+has exactly the fields of its dataclass. The last tests are regressions for what the schemathesis fuzz test
 (test_fuzz_api.py) found.
 """
 
 from __future__ import annotations
 
 import dataclasses
-import math
 from collections.abc import Iterator
-from dataclasses import dataclass, field
-from datetime import date
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any
 
 import jsonschema_rs
-import numpy as np
-import pandas as pd
 import pytest
 from conftest import DEMO_CSV, copy_database, make_client
 from fastapi.testclient import TestClient
-from pydantic import BaseModel, ValidationError
+from pydantic import BaseModel
 
-from app.jsonable import jsonable
 from app.stats.trend import TrendFit
 from app.store import Roster, Run, Store
 from app.web import schemas as S
@@ -36,7 +29,6 @@ from app.web.coverage import CoverageBody, CoveragePage
 from app.web.reasons import ReasonsBody, ReasonsPage
 from app.web.resampling import ResamplingPage, RunBody, RunPage, RunsBody
 from app.web.rosters import RosterDetailBody, RosterDetailPage, RostersBody, RostersPage
-from app.web.schema_gen import ModelFactory
 from app.web.sectors import RobustnessBody, RobustnessPage, SectorsBody, SectorsPage
 from app.web.trend import TrendBody, TrendPage, TrendUnfitBody
 
@@ -231,116 +223,26 @@ def test_exports_have_the_declared_media_types(api: TestClient, openapi: dict[st
         assert r.headers["content-type"] in openapi["paths"][template]["get"]["responses"]["200"]["content"]
 
 
-# -- the generator: one declaration per field -------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class _Part:
-    label: str
-    share: float
-
-
-@dataclass(frozen=True)
-class _Probe:
-    """A throwaway result with one field of each kind ``jsonable`` handles."""
-
-    name: str
-    count: int
-    share: float
-    window: tuple[int, int]
-    knots: tuple[float, ...]
-    kind: Literal["a", "b"]
-    by_code: dict[int, str]
-    parts: list[_Part]
-    maybe: _Part | None
-    table: pd.DataFrame
-    when: date
-    scalar: np.float64
-    figure: object = field(default=None, metadata={"json_skip": True})
-
-
-@dataclass(frozen=True)
-class _Odd:
-    handle: complex
-
-
-def _probe() -> _Probe:
-    return _Probe(name="n", count=3, share=math.nan, window=(1998, 2022), knots=(1.0, math.inf), kind="a",
-                  by_code={1: "x"}, parts=[_Part("p", -math.inf)], maybe=None,
-                  table=pd.DataFrame({"year": [2000, 2001], "share": [0.25, np.nan]}), when=date(2026, 1, 2),
-                  scalar=np.float64(0.5), figure=object())
-
-
-def _schema_errors(model: type[BaseModel], value: Any) -> list[str]:
-    """Errors of jsonschema_rs (outside the project) against the JSON schema pydantic writes for ``model``."""
-    validator = jsonschema_rs.Draft202012Validator(model.model_json_schema())
-    return [f"{e.instance_path}: {e.message}" for e in validator.iter_errors(value)]
+# -- every body is made from its dataclass (the generator itself: test_schema_gen.py) ---------------
 
 
 def json_fields(cls: type) -> set[str]:
     return {f.name for f in dataclasses.fields(cls) if not f.metadata.get("json_skip")}
 
 
-def test_a_generated_model_accepts_what_jsonable_writes() -> None:
-    model = ModelFactory().define(_Probe, "Probe")
-    value = jsonable(_probe())
-    assert value["share"] is None and value["knots"] == [1.0, None] and value["table"][1]["share"] is None
-    model.model_validate(value)
-    assert _schema_errors(model, value) == []
-    assert set(model.model_fields) == json_fields(_Probe) == set(value)
-    assert set(model.model_json_schema()["required"]) == json_fields(_Probe)  # jsonable writes every field
-
-
-@pytest.mark.parametrize("change", [
-    {"extra": 1},  # a page body forbids unknown keys
-    {"window": [1998, 2010, 2022]},  # a pair is exactly two items
-    {"kind": "c"},  # a Literal keeps its words
-    {"count": "three"},
-    {"by_code": {"1": 2}},
-    {"parts": [{"label": "p"}]},  # a nested dataclass's fields are required too
-])
-def test_a_generated_model_refuses_what_jsonable_cannot_write(change: dict[str, Any]) -> None:
-    model = ModelFactory().define(_Probe, "Probe")
-    value = {**jsonable(_probe()), **change}
-    with pytest.raises(ValidationError):
-        model.model_validate(value)
-    assert _schema_errors(model, value)
-
-
-def test_a_result_nested_in_a_page_may_stay_open() -> None:
-    models = ModelFactory()
-    models.define(_Part, extra="allow")
-    model = models.define(_Probe, "Probe")
-    value = jsonable(_probe())
-    value["parts"][0]["more"] = 1
-    model.model_validate(value)
-    assert _schema_errors(model, value) == []
-    with pytest.raises(ValidationError):
-        model.model_validate({**value, "more": 1})
-
-
-def test_a_field_added_to_a_page_dataclass_reaches_its_model_without_schemas_py() -> None:
-    plus = dataclasses.make_dataclass("TrendPagePlus", [("note", str, field(default=""))], bases=(TrendPage,),
-                                      frozen=True)
-    model = ModelFactory().define(plus, "TrendPagePlus")
-    assert set(model.model_fields) == json_fields(TrendPage) | {"note"}
-    assert "note" in model.model_json_schema()["required"]
-    assert "figure" not in model.model_fields  # json_skip
-
-
 # every JSON body and the dataclass it is made from
 BODIES: list[tuple[type[BaseModel], type]] = [
     (RostersBody, RostersPage), (RosterDetailBody, RosterDetailPage), (ReasonsBody, ReasonsPage),
-    (CoverageBody, CoveragePage), (TrendBody, TrendPage), (TrendUnfitBody, TrendPage), (RunsBody, ResamplingPage),
-    (RunBody, RunPage), (SectorsBody, SectorsPage), (RobustnessBody, RobustnessPage),
-    (BriefingBody, BriefingPage), (S.RosterOut, Roster), (S.RunOut, Run), (S.BootstrapRunOut, Run),
-    (S.TrendFitOut, TrendFit),
+    (CoverageBody, CoveragePage), (TrendBody, TrendPage), (TrendUnfitBody, TrendPage),
+    (RunsBody, ResamplingPage), (RunBody, RunPage), (SectorsBody, SectorsPage),
+    (RobustnessBody, RobustnessPage), (BriefingBody, BriefingPage), (S.RosterOut, Roster), (S.RunOut, Run),
+    (S.BootstrapRunOut, Run), (S.TrendFitOut, TrendFit),
 ]
 
 
 @pytest.mark.parametrize(("model", "cls"), BODIES, ids=[m.__name__ for m, _ in BODIES])
-def test_each_served_body_has_exactly_the_fields_of_its_dataclass(openapi: dict[str, Any], model: type[BaseModel],
-                                                                   cls: type) -> None:
+def test_each_served_body_has_exactly_the_fields_of_its_dataclass(openapi: dict[str, Any],
+                                                                   model: type[BaseModel], cls: type) -> None:
     assert set(model.model_fields) == json_fields(cls)
     served = openapi["components"]["schemas"][model.__name__]
     assert set(served["properties"]) == json_fields(cls)
@@ -351,27 +253,6 @@ def test_each_served_body_has_exactly_the_fields_of_its_dataclass(openapi: dict[
 def test_the_fit_summary_is_the_fit_less_its_covariance_plus_its_sentence() -> None:
     # fit_to_dict is written by hand; its model is derived from TrendFit, so a new TrendFit field shows here
     assert set(S.TrendFitSummary.model_fields) == json_fields(TrendFit) - {"covariance"} | {"sentence"}
-
-
-def test_a_shape_must_name_fields_the_dataclass_has() -> None:
-    with pytest.raises(ValueError, match="typo"):
-        ModelFactory().define(_Part, fields={"typo": int})
-    with pytest.raises(ValueError, match="already has"):
-        ModelFactory().define(_Part, add={"label": str})
-
-
-def test_a_type_with_no_json_shape_is_refused_naming_the_field() -> None:
-    with pytest.raises(TypeError, match=r"_Odd\.handle"):
-        ModelFactory().define(_Odd)
-
-
-def test_a_dataclass_gets_one_model_and_names_are_unique() -> None:
-    models = ModelFactory()
-    models.define(_Part)
-    with pytest.raises(ValueError, match="already has a model"):
-        models.define(_Part)
-    with pytest.raises(ValueError, match="two models are named _PartOut"):
-        models.variant(_Part, "_PartOut")
 
 
 # -- what the fuzz test found ---------------------------------------------------------------------

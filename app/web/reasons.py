@@ -48,7 +48,7 @@ class CodeRow:
     ambiguous: bool
 
 
-define(CodeRow, fields={"category": Category | None, "suggested": Category | None})
+CodeRowOut = define(CodeRow, fields={"category": Category | None, "suggested": Category | None})
 
 
 @dataclass(frozen=True)

@@ -65,7 +65,7 @@ def one_of(values: Iterable[str]) -> Any:
 
 
 def list_of(item: Any) -> Any:
-    """``list[item]`` for a model made at run time (a variable, which a type checker will not take as a type)."""
+    """``list[item]`` for a model made at run time (a variable: a type checker will not take it as a type)."""
     return list.__class_getitem__(item)
 
 
@@ -97,9 +97,9 @@ class ModelFactory:
         if cls in self._shapes:
             raise ValueError(f"{cls.__qualname__} already has a model ({self._defaults[cls].__name__}); "
                              "define it before anything that nests it, and only once.")
-        self._shapes[cls] = Shape(name=name, **shape)
-        model = self._build(cls, self._shapes[cls])
-        self._defaults[cls] = model
+        chosen = Shape(name=name, **shape)
+        model = self._build(cls, chosen)
+        self._shapes[cls], self._defaults[cls] = chosen, model
         return model
 
     def variant(self, cls: type, name: str, **changes: Any) -> type[BaseModel]:
@@ -108,15 +108,17 @@ class ModelFactory:
         ``fields``, ``add`` and ``descriptions`` are merged into the shape's own; the rest replace.
         """
         base = self._shapes.get(cls, Shape())
-        merged: dict[str, Any] = {key: {**getattr(base, key), **changes[key]} if key in ("fields", "add", "descriptions")
-                  else changes[key] for key in changes}
+        merged: dict[str, Any] = {**changes}
+        for key in ("fields", "add", "descriptions"):
+            if key in changes:
+                merged[key] = {**getattr(base, key), **changes[key]}
         return self._build(cls, dataclasses.replace(base, name=name, **merged))
 
     def model(self, cls: type) -> type[BaseModel]:
         """The default model of ``cls``, made with the default shape on first use."""
         if cls not in self._defaults:
+            self._defaults[cls] = self._build(cls, Shape())
             self._shapes[cls] = Shape()
-            self._defaults[cls] = self._build(cls, self._shapes[cls])
         return self._defaults[cls]
 
     def annotation(self, tp: Any, where: str = "") -> Any:
@@ -150,12 +152,12 @@ class ModelFactory:
             return _union(self.annotation(a, where) for a in args)
         if origin is tuple:
             if len(args) == 2 and args[1] is Ellipsis:
-                return list[self.annotation(args[0], where)]  # type: ignore[misc]
+                return list_of(self.annotation(args[0], where))
             return tuple.__class_getitem__(tuple(self.annotation(a, where) for a in args))
         if origin in (list, set, frozenset, Sequence, AbstractSet):
-            return list[self.annotation(args[0], where)]  # type: ignore[misc]
+            return list_of(self.annotation(args[0], where))
         if origin in (dict, Mapping):
-            return dict[str, self.annotation(args[1], where)]  # type: ignore[misc]
+            return dict.__class_getitem__((str, self.annotation(args[1], where)))
         raise TypeError(f"{where or 'a field'}: no JSON shape for the type {tp!r}; give the field an "
                         "annotation in its Shape (fields=...).")
 
@@ -172,7 +174,8 @@ class ModelFactory:
                              "have (or skips in JSON); a field renamed or removed?")
         clash = sorted(set(shape.add) & names)
         if clash:
-            raise ValueError(f"the shape of {cls.__qualname__} adds {', '.join(clash)}, which it already has.")
+            raise ValueError(f"the shape of {cls.__qualname__} adds {', '.join(clash)}, "
+                             "which it has already.")
         try:
             hints = get_type_hints(cls, include_extras=True)
         except NameError as exc:
@@ -183,7 +186,8 @@ class ModelFactory:
             if f.name in shape.drop:
                 continue
             where = f"{cls.__qualname__}.{f.name}"
-            annotation = shape.fields[f.name] if f.name in shape.fields else self.annotation(hints[f.name], where)
+            given = f.name in shape.fields
+            annotation = shape.fields[f.name] if given else self.annotation(hints[f.name], where)
             text = shape.descriptions.get(f.name) or f.metadata.get("doc") or self.glossary.get(f.name)
             spec[f.name] = (annotation, Field(description=text) if text else ...)
         for name, annotation in shape.add.items():

@@ -160,7 +160,7 @@ CoverageYear = row_model("CoverageYear", dict.fromkeys(TABLE_COLUMNS, int),
 RosterOut = define(Roster)
 RejectedRowOut = define(RejectedRow)
 MappingVersionOut = define(MappingVersion)
-RunOut = define(Run, doc="A stored fit or bootstrap run; ``result`` is the run's JSON result once it is done.")
+RunOut = define(Run, doc="A stored fit or bootstrap run; ``result`` is its JSON result once it is done.")
 BootstrapRunOut = variant(Run, "BootstrapRunOut", doc="A stored bootstrap run and, once done, its summary.",
                           fields={"kind": Literal["bootstrap"], "result": BootstrapResultOut | None})
 
@@ -173,17 +173,22 @@ WindowSuggestionOut = define(WindowSuggestion)
 YearFlagOut = define(YearFlag)
 QuasiTrendOut = define(QuasiTrend, extra="allow")
 CurvatureOut = define(Curvature, extra="allow")
-TrendFitOut = define(TrendFit, extra="allow", fields={"observed": list_of(ObservedYear), "fitted": list_of(FittedYear)})
+TrendFitOut = define(TrendFit, extra="allow",
+                     fields={"observed": list_of(ObservedYear), "fitted": list_of(FittedYear)})
 #: ``fit_to_dict``: the fit without its covariance matrix, with its sentence (the CLI's ``fit --json``)
+QuasiTrendSummary = variant(QuasiTrend, "QuasiTrendSummary", drop=frozenset({"message"}))
 TrendFitSummary = variant(TrendFit, "TrendFitSummary", drop=frozenset({"covariance"}), add={"sentence": str},
-                          fields={"quasi": variant(QuasiTrend, "QuasiTrendSummary", drop=frozenset({"message"}))
-                                  | None})
+                          fields={"quasi": QuasiTrendSummary | None})
 SectorTrendOut = define(SectorTrend, extra="allow")
 HeterogeneityOut = define(Heterogeneity, extra="allow")
 SectorTrendsOut = define(SectorTrends, extra="allow")
 VariantOut = define(Variant, extra="allow")
 RobustnessOut = define(Robustness, extra="allow")
 
-__all__ = ["GLOSSARY", "MODELS", "BootstrapResultOut", "BootstrapRunOut", "CoverageYear", "ErrorBody",
-           "FittedYear", "HealthBody", "IntervalRow", "ObservedYear", "OddsRow", "Percent", "RosterImportBody",
-           "SectorCount", "TrendFitSummary", "ValidationErrorBody", "define", "list_of", "one_of", "variant"]
+__all__ = ["BootstrapResultOut", "BootstrapRunOut", "CoverageYear", "CurvatureOut", "ErrorBody",
+           "FittedYear", "GLOSSARY", "HealthBody", "HeterogeneityOut", "Interval", "IntervalRow", "MODELS",
+           "MappingDiffOut", "MappingVersionOut", "ObservedYear", "OddsRow", "Percent", "QuasiTrendOut",
+           "QuasiTrendSummary", "RejectedRowOut", "RobustnessOut", "RosterImportBody", "RosterOut",
+           "RunOut", "SectorCount", "SectorTrendOut", "SectorTrendsOut", "TrendFitOut", "TrendFitSummary",
+           "ValidationErrorBody", "ValidationIssue", "VariantOut", "WindowSuggestionOut", "YearFlagOut",
+           "define", "list_of", "one_of", "variant"]

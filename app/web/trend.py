@@ -43,7 +43,7 @@ class TrendPage:
 
 
 TrendBody = define(TrendPage, "TrendBody", fields={"fit": TrendFitSummary | None, "table": list_of(OddsRow)},
-                   doc="200: the fit. The same page with ``fit`` null and ``error`` set comes with status 422.")
+                   doc="200: the fit. The same page, ``fit`` null and ``error`` set, comes with status 422.")
 TrendUnfitBody = variant(TrendPage, "TrendUnfitBody", fields={"fit": None, "sentence": None, "error": str},
                          doc="No trend could be fitted: ``error`` says why.")
 
