@@ -17,7 +17,7 @@ from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
 from app.web.rendering import as_json, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, download, page_errors, query
-from app.web.schemas import BriefingBody
+from app.web.schemas import BootstrapRunOut, define, list_of
 
 router = APIRouter()
 
@@ -50,6 +50,9 @@ class BriefingPage:
     error: str | None = None
     warnings: list[str] = field(default_factory=list)
     chart_labels: dict[str, str] = field(default_factory=lambda: dict(CHART_LABELS))
+
+
+BriefingBody = define(BriefingPage, "BriefingBody", fields={"runs": list_of(BootstrapRunOut)})
 
 
 def _roster(store: Store, roster_id: int) -> Roster:

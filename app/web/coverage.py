@@ -18,7 +18,7 @@ from app.web.figures import FigureSpec, figure_spec
 from app.web.forms import read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import api_errors, form_body, page_errors, query, redirect
-from app.web.schemas import CoverageBody
+from app.web.schemas import CoverageYear, define, list_of
 
 router = APIRouter()
 
@@ -37,6 +37,9 @@ class CoveragePage:
     threshold: float
     warnings: list[str]
     figure: FigureSpec = field(metadata={"json_skip": True})
+
+
+CoverageBody = define(CoveragePage, "CoverageBody", fields={"table": list_of(CoverageYear)})
 
 
 def coverage_data(store: Store, roster_id: int, *, threshold: float = 0.5) -> CoveragePage:

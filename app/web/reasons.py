@@ -12,7 +12,7 @@ from app.analysis.inputs import load_input
 from app.analysis.mapping_files import export_mapping_csv, import_mapping_file
 from app.intake.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
 from app.store import MAX_ID, MappingVersion, Roster, Store, StoreError
-from app.types import CATEGORIES
+from app.types import CATEGORIES, Category
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
@@ -27,7 +27,7 @@ from app.web.route_docs import (
     query,
     redirect,
 )
-from app.web.schemas import ReasonsBody
+from app.web.schemas import define
 
 router = APIRouter()
 
@@ -48,6 +48,9 @@ class CodeRow:
     ambiguous: bool
 
 
+CodeRowOut = define(CodeRow, fields={"category": Category | None, "suggested": Category | None})
+
+
 @dataclass(frozen=True)
 class ReasonsPage:
     """Codes with counts and categories, the mapping's version history and an optional comparison."""
@@ -65,6 +68,11 @@ class ReasonsPage:
     diff: MappingDiff | None
     categories: tuple[str, ...] = CATEGORIES
     message: str | None = None
+
+
+ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
+    "history": "[version, created_at, author, note] per version",
+    "compare": "the two versions compared, when asked with ?a=&b="})
 
 
 def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | None = None,

@@ -22,7 +22,7 @@ from app.web.figures import FigureSpec, figure_spec
 from app.web.forms import read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import FORM_AGAIN, api_errors, form_body, page_errors, query, redirect
-from app.web.schemas import RunBody, RunsBody
+from app.web.schemas import BootstrapRunOut, IntervalRow, Percent, define, list_of, one_of
 
 router = APIRouter()
 
@@ -45,6 +45,9 @@ class ResamplingPage:
     units: tuple[str, ...] = UNITS
 
 
+RunsBody = define(ResamplingPage, "RunsBody", fields={"runs": list_of(BootstrapRunOut)})
+
+
 @dataclass(frozen=True)
 class RunPage:
     """One bootstrap run: its state, and when done its intervals, histogram and comparison."""
@@ -57,6 +60,10 @@ class RunPage:
     comparison_found: bool = False
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     percent: int = 0
+
+
+RunBody = define(RunPage, "RunBody", fields={"run": BootstrapRunOut, "method": one_of(METHODS),
+                                             "rows": list_of(IntervalRow), "percent": Percent})
 
 
 def resampling_data(store: Store, roster_id: int, error: str | None = None) -> ResamplingPage:

@@ -34,7 +34,7 @@ from app.web.route_docs import (
     page_errors,
     redirect,
 )
-from app.web.schemas import RosterDetailBody, RosterImportBody, RostersBody
+from app.web.schemas import RosterImportBody, SectorCount, define, list_of
 
 router = APIRouter()
 
@@ -50,6 +50,9 @@ class RostersPage:
     message: str | None = None
 
 
+RostersBody = define(RostersPage, "RostersBody")
+
+
 @dataclass(frozen=True)
 class RosterDetailPage:
     """One roster: counts, years, sectors, settings and its rejected rows."""
@@ -62,6 +65,10 @@ class RosterDetailPage:
     window: tuple[int, int] | None
     rejected: list[RejectedRow]
     rejected_total: int
+
+
+RosterDetailBody = define(RosterDetailPage, "RosterDetailBody", fields={"sectors": list_of(SectorCount)},
+                          descriptions={"rejected": f"the first {REJECTED_SHOWN} rejected rows"})
 
 
 @dataclass(frozen=True)

@@ -1,23 +1,51 @@
-"""Pydantic models of the JSON the API returns, for the OpenAPI schema only.
+"""Models of the JSON the API returns, for the OpenAPI schema only: generated from the dataclasses.
 
 Routes build their JSON from the page dataclasses (``rendering.as_json``) and return it directly, so these
 models never touch a response at run time: they document it, and the tests (``test_openapi``, the
-schemathesis fuzz test) hold real responses to them. Page bodies and stored records forbid unknown keys, so a
-new field on a page must be documented here too; analysis results nested inside them allow extra keys,
-where spelling out every statistic would only make the schema brittle. Numbers the app turns into null
-when they are not finite are ``float | None``.
+schemathesis fuzz test) hold real responses to them. The models of stored records and analysis results are
+made here from their dataclasses by ``schema_gen`` (a field is declared once, in its dataclass); each page
+module makes its own body model next to its page dataclass with :func:`define` (this module cannot import
+the page modules, which import it). Page bodies and stored records forbid unknown keys; analysis results
+nested inside them allow extra keys, where spelling out every statistic would only make the schema brittle.
+
+Written by hand here is only what no dataclass describes: error and health bodies, the import answer, the
+stored bootstrap summary (``bootstrap_to_dict``) and the rows of DataFrames and dicts built in place.
 """
 
 from __future__ import annotations
 
-from typing import Annotated, Any, Literal
+from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-Interval = Annotated[list[float | None], Field(min_length=2, max_length=2,
-                                               description="[low, high]; an end that is not finite is null")]
-YearSpan = Annotated[list[int], Field(min_length=2, max_length=2, description="[first, last] fiscal year")]
-NameVersion = Annotated[list[str | int], Field(min_length=2, max_length=2, description="[mapping name, version]")]
+from app.analysis.robustness import Robustness, Variant
+from app.intake.reasons import MappingDiff
+from app.stats.coverage import TABLE_COLUMNS, WindowSuggestion, YearFlag
+from app.stats.sectors import Heterogeneity, SectorTrend, SectorTrends
+from app.stats.trend import Curvature, QuasiTrend, TrendFit
+from app.store import MappingVersion, RejectedRow, Roster, Run
+from app.types import Unit
+from app.web.schema_gen import ModelFactory, list_of, one_of, row_model
+
+_INTERVAL = "[low, high]; an end that is not finite is null"
+_BY_METHOD = "interval name -> [low, high]; an end that is not finite is null"
+#: descriptions of fields that mean the same wherever they appear
+GLOSSARY = {
+    "window": "[first, last] fiscal year", "years": "[first, last] fiscal year",
+    "wald": _INTERVAL, "profile": _INTERVAL, "bootstrap": _INTERVAL, "interval": _INTERVAL,
+    "conf_int": _BY_METHOD, "decade_conf_int": _BY_METHOD, "mc_error": "Monte Carlo error of each end",
+    "mapping_names": "[mapping name, latest version] per mapping",
+    "columns": "role -> column name in the file",
+}
+
+MODELS = ModelFactory(glossary=GLOSSARY)
+#: the model of a dataclass wherever it appears (page modules make their bodies with it)
+define = MODELS.define
+#: another model of a dataclass, for one route (e.g. the same page when nothing could be fitted)
+variant = MODELS.variant
+
+Interval = Annotated[tuple[float | None, float | None], Field(description=_INTERVAL)]
+Percent = Annotated[int, Field(ge=0, le=100)]
 
 
 class _Exact(BaseModel):
@@ -26,6 +54,9 @@ class _Exact(BaseModel):
 
 class _Open(BaseModel):
     model_config = ConfigDict(extra="allow")
+
+
+# -- no dataclass: errors, health, the import answer ------------------------------------------------
 
 
 class ErrorBody(_Exact):
@@ -52,90 +83,6 @@ class HealthBody(_Exact):
     schema_version: int = Field(alias="schema", description="database schema version")
 
 
-# -- stored records --------------------------------------------------------------------------------
-
-
-class RosterOut(_Exact):
-    id: int
-    name: str
-    source_name: str
-    sha256: str
-    imported_at: str
-    rows_total: int
-    accepted: int
-    rejected: int
-    duplicates: int
-    columns: dict[str, str] = Field(description="role -> column name in the file")
-
-
-class RejectedRowOut(_Exact):
-    line: int
-    raw: str
-    reason: str
-
-
-class MappingVersionOut(_Exact):
-    name: str
-    version: int
-    created_at: str
-    author: str
-    note: str
-    categories: dict[str, Literal["forced", "voluntary", "excluded"]]
-    labels: dict[str, str]
-
-
-RunStatus = Literal["queued", "running", "done", "failed", "cancelled", "interrupted"]
-
-
-class RunOut(_Exact):
-    """A stored fit or bootstrap run; ``result`` is the run's JSON result once it is done."""
-
-    id: int
-    kind: Literal["fit", "bootstrap"]
-    roster_id: int
-    status: RunStatus
-    created_at: str
-    started_at: str | None
-    finished_at: str | None
-    mapping_name: str | None
-    mapping_version: int | None
-    window: YearSpan | None
-    params: dict[str, Any]
-    fingerprint: str
-    progress_done: int
-    progress_total: int
-    cancel_requested: bool
-    result: dict[str, Any] | None
-    error: str | None
-    seconds: float | None
-
-
-class BootstrapResultOut(_Open):
-    odds_ratio: float | None
-    conf_int: dict[str, Interval]
-    mc_error: dict[str, Interval]
-    resamples: int
-    failed: int
-    unit: Literal["departure", "firm"]
-    seed: int
-    failure_flag: bool
-    failed_by_reason: dict[str, int]
-
-
-class BootstrapRunOut(RunOut):
-    kind: Literal["bootstrap"]
-    result: BootstrapResultOut | None  # type: ignore[assignment]
-
-
-# -- rosters ---------------------------------------------------------------------------------------
-
-
-class RostersBody(_Exact):
-    rosters: list[RosterOut]
-    upload_limit_mb: float
-    message: str | None
-
-
 class RosterImportBody(_Exact):
     """What ``POST /api/rosters`` imported."""
 
@@ -147,151 +94,29 @@ class RosterImportBody(_Exact):
     duplicates: int
 
 
+# -- no dataclass: rows built in place ---------------------------------------------------------------
+
+
+class BootstrapResultOut(_Open):
+    """A finished bootstrap run's stored summary (``bootstrap_to_dict``)."""
+
+    odds_ratio: float | None
+    conf_int: dict[str, Interval] = Field(description=_BY_METHOD)
+    mc_error: dict[str, Interval] = Field(description="Monte Carlo error of each end, per interval")
+    resamples: int
+    failed: int
+    unit: Unit
+    seed: int
+    failure_flag: bool
+    failed_by_reason: dict[str, int]
+
+
 class SectorCount(_Exact):
+    """Departures and firms of one sector in the roster."""
+
     sector: str
     departures: int
     firms: int
-
-
-class RosterDetailBody(_Exact):
-    roster: RosterOut
-    years: YearSpan | None
-    firms: int
-    sectors: list[SectorCount]
-    mapping_name: str | None
-    window: YearSpan | None
-    rejected: list[RejectedRowOut] = Field(description="the first 200 rejected rows")
-    rejected_total: int
-
-
-# -- reason codes ----------------------------------------------------------------------------------
-
-
-class CodeRowOut(_Exact):
-    code: str
-    count: int
-    count_in_window: int
-    first_year: int
-    last_year: int
-    category: Literal["forced", "voluntary", "excluded"] | None
-    label: str
-    suggested: Literal["forced", "voluntary", "excluded"] | None
-    suggestion_note: str
-    ambiguous: bool
-
-
-class MappingDiffOut(_Exact):
-    added: list[list[str]] = Field(description="[code, category]")
-    removed: list[list[str]] = Field(description="[code, category]")
-    moved: list[list[str]] = Field(description="[code, from, to]")
-    relabelled: list[list[str]] = Field(description="[code, old label, new label]")
-
-
-class ReasonsBody(_Exact):
-    roster: RosterOut
-    mapping: MappingVersionOut | None
-    mapping_names: list[NameVersion]
-    history: list[list[int | str]] = Field(description="[version, created_at, author, note] per version")
-    codes: list[CodeRowOut]
-    window: YearSpan | None
-    unmapped_codes: int
-    unmapped_departures: int
-    using_suggestion: bool
-    compare: YearSpan | None = Field(description="the two versions compared, when asked with ?a=&b=")
-    diff: MappingDiffOut | None
-    categories: list[str]
-    message: str | None
-
-
-# -- coverage --------------------------------------------------------------------------------------
-
-
-class CoverageYear(_Open):
-    year: int
-    departures: int
-    forced: int
-    voluntary: int
-    excluded: int
-    unmapped: int
-
-
-class WindowSuggestionOut(_Exact):
-    window: YearSpan
-    median: float | None
-    cutoff: float | None
-    threshold: float
-    basis: Literal["not_excluded", "departures", "counted"]
-    rule: str
-    below_cutoff: list[int]
-
-
-class YearFlagOut(_Exact):
-    year: int
-    kind: Literal["drop", "spike", "repeat", "below_cutoff"]
-    message: str
-
-
-class CoverageBody(_Exact):
-    roster: RosterOut
-    mapping_label: str
-    table: list[CoverageYear]
-    suggestion: WindowSuggestionOut
-    flags: list[YearFlagOut]
-    window: YearSpan
-    window_source: str
-    threshold: float
-    warnings: list[str]
-
-
-# -- trend -----------------------------------------------------------------------------------------
-
-
-class ObservedYear(_Open):
-    year: int
-    forced: int
-    total: int
-    share: float | None
-
-
-class FittedYear(_Open):
-    year: int
-    fit: float | None
-    low: float | None
-    high: float | None
-
-
-class FitCore(_Open):
-    """The fields every trend fit carries, in ``fit_to_dict`` and in a fitted ``TrendFit`` alike."""
-
-    model: str
-    window: YearSpan
-    centre: float | None
-    alpha: float
-    departures: int
-    forced: int
-    n_years: int
-    n_groups: int
-    odds_ratio: float | None
-    log_or: float | None
-    se: float | None
-    conf_int: dict[str, Interval | None]
-    decade_odds_ratio: float | None
-    decade_conf_int: dict[str, Interval | None]
-    deviance: float | None
-    df_resid: int
-    dispersion: float | None
-    converged: bool
-    separated: bool
-    quasi: dict[str, Any] | None
-    curvature: dict[str, Any] | None
-    coefficients: list[dict[str, Any]]
-    observed: list[ObservedYear]
-    fitted: list[FittedYear]
-    messages: list[str]
-
-
-class TrendFitOut(FitCore):
-    sentence: str
 
 
 class OddsRow(_Exact):
@@ -301,45 +126,6 @@ class OddsRow(_Exact):
     profile: Interval | None
 
 
-class TrendBody(_Exact):
-    """200: the fit. The same page with ``fit`` null and ``error`` set comes with status 422."""
-
-    roster: RosterOut
-    mapping_label: str
-    window: YearSpan
-    window_source: str
-    model: str
-    spline_df: int
-    fit: TrendFitOut | None
-    sentence: str | None
-    error: str | None
-    warnings: list[str]
-    run_id: int | None
-    runs: list[RunOut]
-    table: list[OddsRow]
-
-
-class TrendUnfitBody(TrendBody):
-    fit: None
-    sentence: None
-    error: str
-
-
-# -- resampling ------------------------------------------------------------------------------------
-
-
-class RunsBody(_Exact):
-    roster: RosterOut
-    mapping_label: str
-    window: YearSpan | None
-    runs: list[BootstrapRunOut]
-    default_seed: int
-    error: str | None
-    warnings: list[str]
-    max_resamples: int
-    units: list[str]
-
-
 class IntervalRow(_Exact):
     method: str
     interval: Interval | None
@@ -347,115 +133,62 @@ class IntervalRow(_Exact):
     source: str
 
 
-class RunBody(_Exact):
-    roster: RosterOut
-    run: BootstrapRunOut
-    method: Literal["percentile", "basic", "bca"]
-    rows: list[IntervalRow]
-    comparison: str | None
-    comparison_found: bool
-    percent: int = Field(ge=0, le=100)
+class ObservedYear(_Open):
+    """A year's counted departures and observed forced share (with its intervals)."""
 
-
-# -- sectors and robustness ------------------------------------------------------------------------
-
-
-class SectorTrendOut(_Open):
-    sector: str
-    status: Literal["fitted", "skipped"]
-    reason: str | None
-    departures: int
+    year: int
     forced: int
-    n_years: int
-    log_or: float | None
-    se: float | None
-    odds_ratio: float | None
-    conf_int: dict[str, Interval | None]
-    messages: list[str]
+    total: int
+    share: float | None
 
 
-class HeterogeneityOut(_Open):
-    statistic: float | None
-    df: int
-    p: float | None
-    sectors: list[str]
+class FittedYear(_Open):
+    """The fitted forced share of a year, with its band."""
+
+    year: int
+    fit: float | None
+    low: float | None
+    high: float | None
 
 
-class SectorTrendsOut(_Open):
-    window: YearSpan
-    centre: float | None
-    alpha: float
-    min_departures: int
-    sectors: list[SectorTrendOut]
-    common: FitCore | None
-    heterogeneity: HeterogeneityOut | None
-    messages: list[str]
+CoverageYear = row_model("CoverageYear", dict.fromkeys(TABLE_COLUMNS, int),
+                         doc="Departures of one fiscal year, by category (gap years count zero).")
 
 
-class SectorsBody(_Exact):
-    roster: RosterOut
-    mapping_label: str
-    window: YearSpan | None
-    result: SectorTrendsOut | None
-    verdict: str | None
-    error: str | None
-    warnings: list[str]
+# -- stored records ----------------------------------------------------------------------------------
 
+RosterOut = define(Roster)
+RejectedRowOut = define(RejectedRow)
+MappingVersionOut = define(MappingVersion)
+RunOut = define(Run, doc="A stored fit or bootstrap run; ``result`` is its JSON result once it is done.")
+BootstrapRunOut = variant(Run, "BootstrapRunOut", doc="A stored bootstrap run and, once done, its summary.",
+                          fields={"kind": Literal["bootstrap"], "result": BootstrapResultOut | None})
 
-class VariantOut(_Open):
-    label: str
-    kind: str
-    changes: list[str]
-    departures: int
-    forced: int
-    odds_ratio: float | None
-    wald: Interval | None
-    profile: Interval | None
-    bootstrap: Interval | None
-    bootstrap_note: str
-    error: str | None
+# -- analysis results --------------------------------------------------------------------------------
 
+MappingDiffOut = define(MappingDiff, descriptions={
+    "added": "[code, category]", "removed": "[code, category]", "moved": "[code, from, to]",
+    "relabelled": "[code, old label, new label]"})
+WindowSuggestionOut = define(WindowSuggestion)
+YearFlagOut = define(YearFlag)
+QuasiTrendOut = define(QuasiTrend, extra="allow")
+CurvatureOut = define(Curvature, extra="allow")
+TrendFitOut = define(TrendFit, extra="allow",
+                     fields={"observed": list_of(ObservedYear), "fitted": list_of(FittedYear)})
+#: ``fit_to_dict``: the fit without its covariance matrix, with its sentence (the CLI's ``fit --json``)
+QuasiTrendSummary = variant(QuasiTrend, "QuasiTrendSummary", drop=frozenset({"message"}))
+TrendFitSummary = variant(TrendFit, "TrendFitSummary", drop=frozenset({"covariance"}), add={"sentence": str},
+                          fields={"quasi": QuasiTrendSummary | None})
+SectorTrendOut = define(SectorTrend, extra="allow")
+HeterogeneityOut = define(Heterogeneity, extra="allow")
+SectorTrendsOut = define(SectorTrends, extra="allow")
+VariantOut = define(Variant, extra="allow")
+RobustnessOut = define(Robustness, extra="allow")
 
-class RobustnessOut(_Open):
-    window: YearSpan
-    variants: list[VariantOut]
-    direction: str
-    holds: bool
-    sentence: str
-
-
-class RobustnessBody(_Exact):
-    roster: RosterOut
-    mapping_label: str
-    result: RobustnessOut | None
-    mapping_names: list[NameVersion]
-    chosen: list[str] = Field(description="the other mappings compared, as name:version")
-    vary: list[str]
-    codes: list[str]
-    error: str | None
-    warnings: list[str]
-
-
-# -- briefing --------------------------------------------------------------------------------------
-
-
-class PreviewItemOut(_Exact):
-    name: str
-    label: str
-    takeaway: str
-    error: str | None
-
-
-class BriefingBody(_Exact):
-    roster: RosterOut
-    mapping_label: str
-    window: YearSpan | None
-    chosen: list[str]
-    run_id: int | None
-    runs: list[BootstrapRunOut]
-    items: list[PreviewItemOut]
-    export_ok: bool
-    export_message: str
-    error: str | None
-    warnings: list[str]
-    chart_labels: dict[str, str]
+__all__ = ["BootstrapResultOut", "BootstrapRunOut", "CoverageYear", "CurvatureOut", "ErrorBody",
+           "FittedYear", "GLOSSARY", "HealthBody", "HeterogeneityOut", "Interval", "IntervalRow", "MODELS",
+           "MappingDiffOut", "MappingVersionOut", "ObservedYear", "OddsRow", "Percent", "QuasiTrendOut",
+           "QuasiTrendSummary", "RejectedRowOut", "RobustnessOut", "RosterImportBody", "RosterOut",
+           "RunOut", "SectorCount", "SectorTrendOut", "SectorTrendsOut", "TrendFitOut", "TrendFitSummary",
+           "ValidationErrorBody", "ValidationIssue", "VariantOut", "WindowSuggestionOut", "YearFlagOut",
+           "define", "list_of", "one_of", "variant"]

@@ -17,7 +17,7 @@ from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
 from app.web.rendering import as_json, render
 from app.web.route_docs import api_errors, page_errors, query
-from app.web.schemas import RobustnessBody, SectorsBody
+from app.web.schemas import define
 
 router = APIRouter()
 
@@ -36,6 +36,9 @@ class SectorsPage:
     warnings: list[str] = field(default_factory=list)
 
 
+SectorsBody = define(SectorsPage, "SectorsBody")
+
+
 @dataclass(frozen=True)
 class RobustnessPage:
     """The trend under each variant of the mapping."""
@@ -50,6 +53,10 @@ class RobustnessPage:
     error: str | None
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     warnings: list[str] = field(default_factory=list)
+
+
+RobustnessBody = define(RobustnessPage, "RobustnessBody",
+                        descriptions={"chosen": "the other mappings compared, as name:version"})
 
 
 def _roster(store: Store, roster_id: int) -> Roster:

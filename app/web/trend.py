@@ -17,7 +17,7 @@ from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
 from app.web.rendering import as_json, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, json_or_validation_error, page_errors, query
-from app.web.schemas import TrendBody, TrendUnfitBody
+from app.web.schemas import OddsRow, TrendFitSummary, define, list_of, variant
 
 router = APIRouter()
 
@@ -40,6 +40,12 @@ class TrendPage:
     runs: list[Run]
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     table: list[dict[str, Any]] = field(default_factory=list)
+
+
+TrendBody = define(TrendPage, "TrendBody", fields={"fit": TrendFitSummary | None, "table": list_of(OddsRow)},
+                   doc="200: the fit. The same page, ``fit`` null and ``error`` set, comes with status 422.")
+TrendUnfitBody = variant(TrendPage, "TrendUnfitBody", fields={"fit": None, "sentence": None, "error": str},
+                         doc="No trend could be fitted: ``error`` says why.")
 
 
 def _years(request: Request) -> tuple[int, int] | None:

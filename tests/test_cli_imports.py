@@ -1,0 +1,61 @@
+"""The command line's ``fit`` path loads no web framework.
+
+``helmshift fit --json`` runs in a fresh interpreter (a subprocess: this test process has loaded FastAPI
+already) on a copy of the demo database; at exit it writes the names in ``sys.modules``. FastAPI, Starlette,
+uvicorn and Jinja2 belong to the dashboard; the command line encodes its JSON with ``app.jsonable``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+from conftest import copy_database
+
+ROOT = Path(__file__).resolve().parents[1]
+WEB = ("fastapi", "starlette", "uvicorn", "jinja2")
+
+# runs app.cli.main as the console script does, then records every module loaded (also after SystemExit)
+PROGRAM = """
+import json, sys
+from app.cli import main
+try:
+    sys.exit(main(sys.argv[2:]))
+finally:
+    with open(sys.argv[1], "w", encoding="utf-8") as out:
+        json.dump(sorted(sys.modules), out)
+"""
+
+
+def _loaded(argv: list[str], tmp_path: Path) -> tuple[subprocess.CompletedProcess[str], set[str]]:
+    listing = tmp_path / "modules.json"
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    done = subprocess.run([sys.executable, "-c", PROGRAM, str(listing), *argv], cwd=tmp_path, env=env,
+                          capture_output=True, text=True, timeout=120, check=False)
+    return done, set(json.loads(listing.read_text(encoding="utf-8")))
+
+
+def test_fit_json_loads_no_web_framework(shared_demo_db: Path, tmp_path: Path) -> None:
+    db = copy_database(shared_demo_db, tmp_path / "cli.db")
+    done, modules = _loaded(["fit", "--roster", "Demo index (invented)", "--db", str(db), "--json"], tmp_path)
+    assert done.returncode == 0, done.stderr
+    payload = json.loads(done.stdout)
+    assert payload["departures"] > 0 and payload["odds_ratio"] is not None  # the fit really ran
+    assert {"app.cli", "app.jsonable", "app.stats.trend"} <= modules  # the listing sees what the path loads
+    web = sorted(m for m in modules if m.split(".")[0] in WEB)
+    assert web == [], f"helmshift fit --json imported {web[:5]}"
+
+
+def test_the_check_sees_a_web_import(tmp_path: Path) -> None:
+    """The same listing, for a program made to import FastAPI before ``helmshift --version``, names it."""
+    program_file = tmp_path / "probe.py"
+    program_file.write_text("import fastapi\n" + PROGRAM, encoding="utf-8")
+    listing = tmp_path / "modules.json"
+    done = subprocess.run([sys.executable, str(program_file), str(listing), "--version"], cwd=tmp_path,
+                          env={**os.environ, "PYTHONPATH": str(ROOT)}, capture_output=True, text=True,
+                          timeout=120, check=False)
+    assert done.returncode == 0, done.stderr
+    assert "fastapi" in json.loads(listing.read_text(encoding="utf-8"))
