@@ -71,8 +71,8 @@ def test_upload_shows_detected_roles_then_confirm_imports(empty_client: Any, sto
 
 def test_role_override_through_the_form(empty_client: Any) -> None:
     data = ("Company,Ticker,Year,Outcome\n" + "".join(
-        f"Quorvane Ltd,QV{i % 5},{2000 + i % 6},{'Dismissed' if i % 3 else 'Retired'}\n" for i in range(30))
-    ).encode()
+        f"Quorvane Ltd,QV{i % 5},{2000 + i % 6},{'C7' if i % 3 else 'C9'}\n" for i in range(30))
+    ).encode()  # codes without departure wording: neither the header nor the values name the reason
     page = upload(empty_client, data, "outcomes.csv").context["page"]
     assert page.roles["reason"] is None and "reason code" in page.preview.missing_roles
     refused = confirm(empty_client, page)

@@ -74,6 +74,12 @@ class RejectedRowOut(_Exact):
     reason: str
 
 
+class RejectGroupOut(_Exact):
+    reason: str = Field(description="the reason with its values left out")
+    count: int
+    examples: list[RejectedRowOut] = Field(description="the first two rows with this reason")
+
+
 class MappingVersionOut(_Exact):
     name: str
     version: int
@@ -160,8 +166,11 @@ class RosterDetailBody(_Exact):
     sectors: list[SectorCount]
     mapping_name: str | None
     window: YearSpan | None
-    rejected: list[RejectedRowOut] = Field(description="the first 200 rejected rows")
+    rejected: list[RejectedRowOut] = Field(description="one page (50) of the rejected rows")
     rejected_total: int
+    rejected_groups: list[RejectGroupOut] = Field(description="rejected rows grouped by reason, largest first")
+    rejected_page: int
+    rejected_pages: int
 
 
 # -- reason codes ----------------------------------------------------------------------------------
