@@ -245,3 +245,21 @@ def test_rejected_rows_page_groups_and_paginates(empty_client: Any) -> None:
     second = empty_client.get(location + "?page=2")
     assert len(second.context["page"].rejected) == 25 and "page 2 of 2" in second.text
     assert empty_client.get(location + "?page=99").context["page"].rejected_page == 2
+
+
+def test_coverage_and_trend_carry_the_row_count_forward(empty_client: Any) -> None:
+    rows = ["Ticker,Reason,FY"] + [f"F{i % 9},{'Retired' if i % 2 else 'Dismissed'},{2000 + i % 15}"
+                                   for i in range(60)] + [",Retired,2001", ",Retired,2002"]
+    page = upload(empty_client, ("\n".join(rows) + "\n").encode(), "few.csv").context["page"]
+    roster_url = confirm(empty_client, page).headers["location"]
+    coverage = empty_client.get(roster_url + "/coverage").text
+    assert "60 of 62 rows; 2 rejected" in coverage and "3.2% of the file's rows were rejected" in coverage
+    trend = empty_client.get(roster_url + "/trend").text
+    assert "60 of 62 rows; 2 rejected" in trend and "more than 2%" not in trend
+
+
+def test_no_rejection_warning_at_or_below_two_percent(empty_client: Any) -> None:
+    rows = ["Ticker,Reason,FY"] + [f"F{i % 9},Retired,{1950 + i}" for i in range(60)] + [",Retired,2001"]
+    page = upload(empty_client, ("\n".join(rows) + "\n").encode(), "ok.csv").context["page"]
+    coverage = empty_client.get(confirm(empty_client, page).headers["location"] + "/coverage").text
+    assert "60 of 61 rows; 1 rejected" in coverage and "more than 2%" not in coverage
