@@ -97,19 +97,32 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
 
 def cmd_import(args: argparse.Namespace) -> int:
-    from app.intake.ingest import import_roster
+    from app.intake.ingest import import_roster, review_roster
 
     path = Path(args.file)
     if not path.is_file():
         raise CommandError(f"No file at {path}.")
-    report = import_roster(_store(args), path.read_bytes(), path.name, name=args.name,
-                           roles=_parse_columns(args.column), sheet=args.sheet, encoding=args.encoding)
+    options: dict[str, Any] = {"roles": _parse_columns(args.column), "sheet": args.sheet, "encoding": args.encoding,
+                               "header_row": args.header_row, "date_order": args.date_order,
+                               "fy_end": args.fiscal_year_end}
+    if args.dry_run:
+        review = review_roster(path.read_bytes(), path.name, **options)
+        _emit(args, review.as_dict(), lambda p: "\n".join([
+            f"Dry run (nothing stored): header row {p['header_row']}; {p['rows']} rows, {p['accepted']} would be "
+            f"accepted, {p['rejected']} rejected, {p['duplicates']} exact duplicates, "
+            f"{p['still_in_post']} still in post.",
+            *(f"  rejected {g['count']}x: {g['reason']} (e.g. line "
+              f"{', '.join(str(e['line']) for e in g['examples'])})" for g in p["rejected_groups"]),
+            *(f"  fix: {f}" for f in p["fixes"]),
+        ]))
+        return 0
+    report = import_roster(_store(args), path.read_bytes(), path.name, name=args.name, **options)
     payload = {"roster": report.roster.name, "id": report.roster.id, "rows": report.rows,
                "accepted": report.accepted, "rejected": report.rejected, "duplicates": report.duplicates,
-               "columns": report.roles, "messages": list(report.messages)}
+               "header_row": report.header_row, "columns": report.roles, "messages": list(report.messages)}
     _emit(args, payload, lambda p: (
-        f"Imported roster {p['roster']!r}: {p['rows']} rows, {p['accepted']} accepted, "
-        f"{p['rejected']} rejected, {p['duplicates']} exact duplicates stored once."))
+        f"Imported roster {p['roster']!r} (header row {p['header_row']}): {p['rows']} rows, {p['accepted']} "
+        f"accepted, {p['rejected']} rejected, {p['duplicates']} exact duplicates stored once."))
     return 0
 
 
@@ -227,6 +240,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--column", action="append", metavar="ROLE=HEADER", help="set a column role explicitly")
     p.add_argument("--sheet", help="XLSX sheet (default: the first)")
     p.add_argument("--encoding", help="text encoding (default: detect)")
+    p.add_argument("--header-row", type=int, metavar="N", help="1-based line (or sheet row) of the header "
+                   "(default: found by scoring the first 30 rows)")
+    p.add_argument("--date-order", choices=("auto", "dmy", "mdy"), default="auto",
+                   help="day/month or month/day text dates (default: decided over the whole column)")
+    p.add_argument("--fiscal-year-end", type=int, default=12, metavar="MONTH", choices=range(1, 13),
+                   help="month in which fiscal years end, 1-12 (default 12); a fiscal year is named by the "
+                        "calendar year in which it ends")
+    p.add_argument("--dry-run", action="store_true", help="report what would be accepted and rejected; store nothing")
     p.set_defaults(func=cmd_import)
 
     p = sub.add_parser("mapping", help="import or export a reason-code mapping")

@@ -71,8 +71,8 @@ def test_upload_shows_detected_roles_then_confirm_imports(empty_client: Any, sto
 
 def test_role_override_through_the_form(empty_client: Any) -> None:
     data = ("Company,Ticker,Year,Outcome\n" + "".join(
-        f"Quorvane Ltd,QV{i % 5},{2000 + i % 6},{'Dismissed' if i % 3 else 'Retired'}\n" for i in range(30))
-    ).encode()
+        f"Quorvane Ltd,QV{i % 5},{2000 + i % 6},{'C7' if i % 3 else 'C9'}\n" for i in range(30))
+    ).encode()  # codes without departure wording: neither the header nor the values name the reason
     page = upload(empty_client, data, "outcomes.csv").context["page"]
     assert page.roles["reason"] is None and "reason code" in page.preview.missing_roles
     refused = confirm(empty_client, page)
@@ -196,3 +196,70 @@ def test_markup_in_a_roster_is_shown_escaped(empty_client: Any) -> None:
         html = empty_client.get(path).text
         assert XSS not in html, path
         assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html, path
+
+
+def _awkward_csv() -> bytes:
+    """A title block, month-first dates under an automatic day-first reading, and a source footer."""
+    rows = ["Departures export,,", "Generated on 2026-05-01,,", ",,", "Ticker,How left,Date left"]
+    rows += [f"F{i},Retired,{(i % 12) + 1:02d}/{13 + i % 10}/2015" for i in range(8)]  # month-first: 8 rows
+    rows += [f"G{i},Dismissed,{13 + i % 10}/03/2016" for i in range(3)]  # day-first: 3 rows
+    rows += [f"H{i},Still in post," for i in range(2)]
+    rows += ["Source: invented for the tests,,"]
+    return ("\n".join(rows) + "\n").encode()
+
+
+def test_review_step_before_import_and_its_choices(empty_client: Any, store: Store) -> None:
+    page = upload(empty_client, _awkward_csv(), "awkward.csv").context["page"]
+    assert page.header_row == 4 and page.roles["firm_id"] == "Ticker" and page.roles["reason"] == "How left"
+    review = page.review
+    # month-first wins the whole column (8 proofs against 3): the 3 day-first rows would be rejected
+    assert (review.accepted, review.rejected, review.still_in_post) == (10, 3, 2)
+    assert review.rejected_groups[0].count == 3 and len(review.rejected_groups[0].examples) == 2
+    assert review.footer_lines == (18,) and store.counts()["rosters"] == 0
+    form = {"token": page.token, "name": page.name, "header_row": "4", "date_order": "dmy", "fy_end": "3"}
+    form |= {f"role_{r}": h for r, h in page.roles.items() if h}
+    again = empty_client.post("/rosters/review", data=form)
+    assert again.status_code == 200
+    rv = again.context["page"].review
+    assert (rv.accepted, rv.rejected) == (5, 8) and "end in March" in rv.date_rule
+    assert "Check these choices" in again.text and "Review before import" in again.text
+    assert store.counts()["rosters"] == 0
+    bad = empty_client.post("/rosters/review", data=form | {"header_row": "x1"})
+    assert bad.status_code == 400 and "must be a line number" in bad.context["page"].error
+    done = empty_client.post("/rosters/confirm", data=form, follow_redirects=False)
+    assert done.status_code == 303
+    detail = empty_client.get(done.headers["location"]).context["page"]
+    assert (detail.roster.accepted, detail.roster.rejected) == (5, 8)
+    assert detail.rejected_groups[0].count == 8
+
+
+def test_rejected_rows_page_groups_and_paginates(empty_client: Any) -> None:
+    rows = ["Ticker,Reason,FY"] + [f"F{i},Retired,{2000 + i % 20}" for i in range(10)]
+    rows += [f",Retired,{1950 + i}" for i in range(70)] + [f"F{i},Retired,FY later" for i in range(5)]
+    page = upload(empty_client, ("\n".join(rows) + "\n").encode(), "many.csv").context["page"]
+    done = confirm(empty_client, page)
+    location = done.headers["location"]
+    first = empty_client.get(location).context["page"]
+    assert first.rejected_total == 75 and first.rejected_pages == 2 and len(first.rejected) == 50
+    assert [(g.count, g.reason[:15]) for g in first.rejected_groups] == [(70, "missing firm id"), (5, "year … is not a")]
+    second = empty_client.get(location + "?page=2")
+    assert len(second.context["page"].rejected) == 25 and "page 2 of 2" in second.text
+    assert empty_client.get(location + "?page=99").context["page"].rejected_page == 2
+
+
+def test_coverage_and_trend_carry_the_row_count_forward(empty_client: Any) -> None:
+    rows = ["Ticker,Reason,FY"] + [f"F{i % 9},{'Retired' if i % 2 else 'Dismissed'},{2000 + i % 15}"
+                                   for i in range(60)] + [",Retired,2001", ",Retired,2002"]
+    page = upload(empty_client, ("\n".join(rows) + "\n").encode(), "few.csv").context["page"]
+    roster_url = confirm(empty_client, page).headers["location"]
+    coverage = empty_client.get(roster_url + "/coverage").text
+    assert "60 of 62 rows; 2 rejected" in coverage and "3.2% of the file's rows were rejected" in coverage
+    trend = empty_client.get(roster_url + "/trend").text
+    assert "60 of 62 rows; 2 rejected" in trend and "more than 2%" not in trend
+
+
+def test_no_rejection_warning_at_or_below_two_percent(empty_client: Any) -> None:
+    rows = ["Ticker,Reason,FY"] + [f"F{i % 9},Retired,{1950 + i}" for i in range(60)] + [",Retired,2001"]
+    page = upload(empty_client, ("\n".join(rows) + "\n").encode(), "ok.csv").context["page"]
+    coverage = empty_client.get(confirm(empty_client, page).headers["location"] + "/coverage").text
+    assert "60 of 61 rows; 1 rejected" in coverage and "more than 2%" not in coverage

@@ -7,6 +7,8 @@ cells: forced and voluntary departures. Excluded and unmapped departures never e
 from __future__ import annotations
 
 import hashlib
+import re
+import unicodedata
 from collections.abc import Mapping
 from dataclasses import dataclass
 
@@ -16,9 +18,24 @@ from scipy import sparse
 
 from app.types import UNMAPPED
 
+# Dash and quote look-alikes that spreadsheets substitute as one types ("auto-correct"); folded to ASCII.
+_CODE_FOLD = str.maketrans({**dict.fromkeys("\u2010\u2011\u2012\u2013\u2014\u2015\u2212\ufe58\ufe63\uff0d", "-"),
+                            **dict.fromkeys("\u2018\u2019\u201a\u201b\u2032\u0060\u00b4\"\u201c\u201d\u201e\u201f\u2033",
+                                            "'")})
+_SPACES = re.compile(r"\s+")
+
+
+def code_key(code: str) -> str:
+    """The matching key of a reason code: codes differing only in case, surrounding or repeated spaces,
+    or dash and quote variants share one key ("RETIRED", "retired ", "Retired" -> "retired")."""
+    folded = unicodedata.normalize("NFKC", str(code)).translate(_CODE_FOLD)
+    return _SPACES.sub(" ", folded).strip().casefold()
+
 
 def assign_categories(reasons: pd.Series, categories: Mapping[str, str]) -> pd.Series:
     """Map each reason code to its category; codes the mapping lacks become ``"unmapped"``.
+
+    Codes match by :func:`code_key`, so a mapping naming "Retired" also covers "RETIRED " and "retired".
 
     Parameters
     ----------
@@ -31,8 +48,10 @@ def assign_categories(reasons: pd.Series, categories: Mapping[str, str]) -> pd.S
     -------
     pandas.Series of str, aligned with ``reasons``.
     """
-    # object dtype first: an empty mapping gives a float column, which must not be filled with text
-    return reasons.map(dict(categories)).astype(object).fillna(UNMAPPED).astype(str)
+    by_key = {code_key(c): cat for c, cat in categories.items()}
+    codes, uniq = pd.factorize(reasons, use_na_sentinel=True)
+    per_code = np.array([by_key.get(code_key(u), UNMAPPED) for u in uniq] + [UNMAPPED], dtype=object)
+    return pd.Series(per_code[codes], index=reasons.index, dtype=object).astype(str)
 
 
 @dataclass(frozen=True)

@@ -55,6 +55,8 @@ class RosterQueries(Gateway):
 
         ``records`` has the columns of ``DEPARTURE_FIELDS``. Either everything lands or nothing does.
         """
+        if "reason_raw" not in records.columns and "reason" in records.columns:
+            records = records.assign(reason_raw=records["reason"])
         missing = [c for c in DEPARTURE_FIELDS if c not in records.columns]
         if missing:
             raise StoreError(f"records lack columns {missing}")

@@ -39,7 +39,7 @@ rosters = Table(
 )
 
 DEPARTURE_FIELDS = (
-    "line", "firm_id", "firm_name", "sector", "year", "date", "reason", "executive",
+    "line", "firm_id", "firm_name", "sector", "year", "date", "reason", "reason_raw", "executive",
     "age", "tenure", "interim", "notes", "raw",
 )
 
@@ -53,7 +53,8 @@ departures = Table(
     Column("sector", String),
     Column("year", Integer, nullable=False),
     Column("date", String),  # ISO date or NULL
-    Column("reason", String, nullable=False),
+    Column("reason", String, nullable=False),  # the code as shown: its most frequent spelling in the roster
+    Column("reason_raw", String),  # this row's own spelling of the code, as in the file
     Column("executive", String),
     Column("age", Float),
     Column("tenure", Float),
@@ -142,5 +143,10 @@ run_replicates = Table(
 
 #: ordered schema migrations; index i+1 is the version after applying MIGRATIONS[i].
 #: Version 1 is the ``metadata.create_all`` above; later changes append SQL here.
-MIGRATIONS: list[str] = []
+MIGRATIONS: list[str] = [
+    # 2: each departure keeps its raw spelling of the reason code beside the shown code (one code per spelling)
+    "ALTER TABLE departures ADD COLUMN reason_raw VARCHAR",
+    # 3: rows stored before version 2 were imported spelling by spelling, so the raw spelling is the code
+    "UPDATE departures SET reason_raw = reason WHERE reason_raw IS NULL",
+]
 SCHEMA_VERSION = 1 + len(MIGRATIONS)

@@ -9,14 +9,21 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
+from app.intake.dates import month_name
 from app.intake.ingest import (
+    DATE_ORDERS,
+    DateOrder,
     DuplicateRosterError,
+    RejectGroup,
+    Review,
     RosterFileError,
     RosterPreview,
     default_roster_name,
+    group_rejections,
     import_roster,
     preview_roster,
     rejected_rows_csv,
+    review_roster,
     same_file_roster,
 )
 from app.store import RejectedRow, Roster, Store, StoreError
@@ -39,6 +46,8 @@ from app.web.schemas import RosterImportBody, SectorCount, define, list_of
 router = APIRouter()
 
 REJECTED_SHOWN = 200
+REJECTED_PAGE = 50
+MONTHS = tuple((m, month_name(m)) for m in range(1, 13))
 
 
 @dataclass(frozen=True)
@@ -65,10 +74,14 @@ class RosterDetailPage:
     window: tuple[int, int] | None
     rejected: list[RejectedRow]
     rejected_total: int
+    rejected_groups: list[RejectGroup] = field(default_factory=list)
+    rejected_page: int = 1
+    rejected_pages: int = 1
 
 
 RosterDetailBody = define(RosterDetailPage, "RosterDetailBody", fields={"sectors": list_of(SectorCount)},
-                          descriptions={"rejected": f"the first {REJECTED_SHOWN} rejected rows"})
+                          descriptions={"rejected": "one page of the rejected rows (rejected_page of rejected_pages)",
+                                        "rejected_groups": "rejected rows grouped by reason, largest first"})
 
 
 @dataclass(frozen=True)
@@ -84,18 +97,26 @@ class ConfirmPage:
     duplicate_of: Roster | None = None
     rejected: list[RejectedRow] = field(default_factory=list)
     role_names: tuple[str, ...] = field(default=ROLES)
+    header_row: int = 1
+    date_order: str = "auto"
+    fy_end: int = 12
+    review: Review | None = None
+    review_error: str | None = None
+    months: tuple[tuple[int, str], ...] = MONTHS
 
 
 def rosters_data(store: Store, upload_limit: int, message: str | None = None) -> RostersPage:
     return RostersPage(store.list_rosters(), upload_limit / (1024 * 1024), message)
 
 
-def roster_detail_data(store: Store, roster_id: int) -> RosterDetailPage:
+def roster_detail_data(store: Store, roster_id: int, page: int = 1) -> RosterDetailPage:
     roster = _roster_or_404(store, roster_id)
     deps = store.departures(roster.id)
     rejected = store.rejected(roster.id)
     settings = store.settings(roster.id)
     years = (int(deps["year"].min()), int(deps["year"].max())) if len(deps) else None
+    pages = max(1, -(-len(rejected) // REJECTED_PAGE))
+    at = min(max(page, 1), pages)
     sectors: list[dict[str, Any]] = (
         deps.assign(sector=deps["sector"].fillna("(none)"))
         .groupby("sector").agg(departures=("id", "size"), firms=("firm_id", "nunique"))
@@ -105,7 +126,8 @@ def roster_detail_data(store: Store, roster_id: int) -> RosterDetailPage:
     return RosterDetailPage(
         roster=roster, years=years, firms=int(deps["firm_id"].nunique()) if len(deps) else 0,
         sectors=sectors, mapping_name=settings.mapping_name, window=settings.window,
-        rejected=rejected[:REJECTED_SHOWN], rejected_total=len(rejected),
+        rejected=rejected[(at - 1) * REJECTED_PAGE:at * REJECTED_PAGE], rejected_total=len(rejected),
+        rejected_groups=group_rejections(rejected), rejected_page=at, rejected_pages=pages,
     )
 
 
@@ -158,12 +180,40 @@ async def roster_upload(request: Request) -> HTMLResponse:
         failed = rosters_data(store, app_settings(request).upload_limit, message=str(exc))
         return render(request, "rosters.html", failed, status=400, active="rosters")
     pending = app_uploads(request).put(filename, data)
+    review, review_error = _try_review(data, filename, roles=None, encoding=encoding, sheet=sheet,
+                                       header_row=None, date_order="auto", fy_end=12)
     page = ConfirmPage(
         token=pending.token, filename=filename, preview=preview,
         roles={r: preview.roles.get(r) for r in ROLES}, name=default_roster_name(store, filename),
-        duplicate_of=same_file_roster(store, data),
+        duplicate_of=same_file_roster(store, data), header_row=preview.header_row,
+        review=review, review_error=review_error,
     )
     return render(request, "roster_confirm.html", page, active="rosters")
+
+
+def _try_review(data: bytes, filename: str, **options: Any) -> tuple[Review | None, str | None]:
+    """The dry run for the confirm page; a file-level problem is shown beside the controls instead."""
+    try:
+        return review_roster(data, filename, **options), None
+    except RosterFileError as exc:
+        return None, str(exc)
+
+
+def _intake_options(form: dict[str, str | Upload]) -> tuple[int | None, DateOrder, int]:
+    """(header row, date reading, fiscal-year-end month) from the confirm form, refused with a clear message."""
+    raw_header = str(form.get("header_row") or "").strip()
+    header_row: int | None = None
+    if raw_header:
+        if not raw_header.isdigit() or not 1 <= int(raw_header) <= 1_000_000:
+            raise RosterFileError(f"The header row must be a line number (1, 2, ...); got {raw_header[:20]!r}.")
+        header_row = int(raw_header)
+    order = str(form.get("date_order") or "auto")
+    if order not in DATE_ORDERS:
+        raise RosterFileError(f"Date reading must be one of {', '.join(DATE_ORDERS)}; got {order[:20]!r}.")
+    raw_fy = str(form.get("fy_end") or "12")
+    if not raw_fy.isdigit() or not 1 <= int(raw_fy) <= 12:
+        raise RosterFileError(f"The fiscal-year end must be a month number 1..12; got {raw_fy[:20]!r}.")
+    return header_row, order, int(raw_fy)
 
 
 def _file_options(form: dict[str, str | Upload]) -> tuple[str | None, str | None]:
@@ -181,40 +231,97 @@ def _file_options(form: dict[str, str | Upload]) -> tuple[str | None, str | None
     return encoding, str(form.get("sheet") or "") or None
 
 
-@router.post("/rosters/confirm", name="roster_confirm", response_model=None, status_code=303,
-             response_class=RedirectResponse, responses=redirect("the new roster's page", FORM_AGAIN),
+_INTAKE_FIELDS = {
+    "header_row": {"type": "string", "description": "1-based line (or sheet row) of the header; found when empty"},
+    "date_order": {"type": "string", "enum": list(DATE_ORDERS), "description": "reading of d/m vs m/d dates"},
+    "fy_end": {"type": "string", "description": "month (1-12) in which fiscal years end; default 12"},
+}
+
+
+def _confirm_form(form: dict[str, str | Upload]) -> tuple[dict[str, str], str | None]:
+    # a role set to "none" arrives as "" and stays empty (detection must not put it back)
+    roles: dict[str, str] = {r: str(form.get(f"role_{r}") or "") for r in ROLES if f"role_{r}" in form}
+    return roles, str(form.get("name") or "").strip() or None
+
+
+def _expired(request: Request) -> HTMLResponse:
+    expired = rosters_data(app_store(request), app_settings(request).upload_limit,
+                           message="That upload has expired or was already imported; choose the file again.")
+    return render(request, "rosters.html", expired, status=400, active="rosters")
+
+
+@router.post("/rosters/review", response_class=HTMLResponse, name="roster_review", responses={**FORM_AGAIN, **GUARDS},
              openapi_extra=form_body({
                  "token": {"type": "string", "description": "the upload step's token"},
-                 "name": {"type": "string"}, **_FILE_OPTIONS, **_ROLE_FIELDS,
-                 "allow_same_file": {"type": "string", "enum": ["yes"],
-                                     "description": "import a file whose bytes were imported before"},
+                 "name": {"type": "string"}, **_FILE_OPTIONS, **_ROLE_FIELDS, **_INTAKE_FIELDS,
              }, required=("token",)))
-async def roster_confirm(request: Request) -> Response:
-    """Second step: import with the roles the analyst confirmed; all rows land or none do."""
+async def roster_review(request: Request) -> HTMLResponse:
+    """The dry run again with the analyst's choices (header row, roles, date reading, fiscal-year end); stores nothing."""
     store = app_store(request)
     form = await read_form(request)
     token = str(form.get("token") or "")
     pending = app_uploads(request).get(token)
     if pending is None:
-        expired = rosters_data(store, app_settings(request).upload_limit,
-                               message="That upload has expired or was already imported; choose the file again.")
-        return render(request, "rosters.html", expired, status=400, active="rosters")
-    # a role set to "none" arrives as "" and stays empty (detection must not put it back)
-    roles: dict[str, str] = {r: str(form.get(f"role_{r}") or "") for r in ROLES if f"role_{r}" in form}
-    name = str(form.get("name") or "").strip() or None
+        return _expired(request)
+    roles, name = _confirm_form(form)
+    error: str | None = None
     try:
         encoding, sheet = _file_options(form)
+        header_row, order, fy_end = _intake_options(form)
+        preview = preview_roster(pending.data, pending.filename, encoding=encoding, sheet=sheet, roles=roles,
+                                 header_row=header_row)
+    except RosterFileError as exc:
+        encoding, sheet, header_row, order, fy_end, error = None, None, None, "auto", 12, str(exc)
+        preview = preview_roster(pending.data, pending.filename)
+        roles = {}
+    review, review_error = _try_review(pending.data, pending.filename, roles=roles or None, encoding=encoding,
+                                       sheet=sheet, header_row=header_row, date_order=order, fy_end=fy_end)
+    page = ConfirmPage(
+        token=token, filename=pending.filename, preview=preview,
+        roles={r: preview.roles.get(r) for r in ROLES}, name=name or default_roster_name(store, pending.filename),
+        duplicate_of=same_file_roster(store, pending.data), error=error, header_row=preview.header_row,
+        date_order=order, fy_end=fy_end, review=review, review_error=review_error,
+    )
+    return render(request, "roster_confirm.html", page, status=400 if error else 200, active="rosters")
+
+
+@router.post("/rosters/confirm", name="roster_confirm", response_model=None, status_code=303,
+             response_class=RedirectResponse, responses=redirect("the new roster's page", FORM_AGAIN),
+             openapi_extra=form_body({
+                 "token": {"type": "string", "description": "the upload step's token"},
+                 "name": {"type": "string"}, **_FILE_OPTIONS, **_ROLE_FIELDS, **_INTAKE_FIELDS,
+                 "allow_same_file": {"type": "string", "enum": ["yes"],
+                                     "description": "import a file whose bytes were imported before"},
+             }, required=("token",)))
+async def roster_confirm(request: Request) -> Response:
+    """Last step: import with the choices the analyst reviewed; all rows land or none do."""
+    store = app_store(request)
+    form = await read_form(request)
+    token = str(form.get("token") or "")
+    pending = app_uploads(request).get(token)
+    if pending is None:
+        return _expired(request)
+    roles, name = _confirm_form(form)
+    header_row, order, fy_end = None, "auto", 12
+    try:
+        encoding, sheet = _file_options(form)
+        header_row, order, fy_end = _intake_options(form)
         report = import_roster(
             store, pending.data, pending.filename, name=name, roles=roles, encoding=encoding, sheet=sheet,
-            allow_same_file=form.get("allow_same_file") == "yes",
+            allow_same_file=form.get("allow_same_file") == "yes", header_row=header_row, date_order=order,
+            fy_end=fy_end,
         )
     except (RosterFileError, DuplicateRosterError, StoreError) as exc:
-        preview = preview_roster(pending.data, pending.filename)
+        try:
+            preview = preview_roster(pending.data, pending.filename, header_row=header_row)
+        except RosterFileError:
+            preview = preview_roster(pending.data, pending.filename)
         page = ConfirmPage(
             token=token, filename=pending.filename, preview=preview,
             roles={r: roles.get(r) or None for r in ROLES}, name=name or default_roster_name(store, pending.filename),
             error=str(exc), duplicate_of=same_file_roster(store, pending.data),
-            rejected=list(getattr(exc, "rejected", []))[:REJECTED_SHOWN],
+            rejected=list(getattr(exc, "rejected", []))[:REJECTED_SHOWN], header_row=preview.header_row,
+            date_order=order, fy_end=fy_end,
         )
         return render(request, "roster_confirm.html", page, status=400, active="rosters")
     app_uploads(request).drop(token)
@@ -250,15 +357,16 @@ async def rosters_import_api(request: Request) -> JSONResponse:
 
 @router.get("/rosters/{roster_id}", response_class=HTMLResponse, name="roster_detail",
             responses=page_errors(404))
-def roster_detail(request: Request, roster_id: int) -> HTMLResponse:
-    page = roster_detail_data(app_store(request), roster_id)
-    return render(request, "roster_detail.html", page, roster=page.roster, active="roster")
+def roster_detail(request: Request, roster_id: int, page: int = 1) -> HTMLResponse:
+    page_data = roster_detail_data(app_store(request), roster_id, page)
+    return render(request, "roster_detail.html", page_data, roster=page_data.roster, active="roster")
+
 
 
 @router.get("/api/rosters/{roster_id}", name="roster_detail_api", response_model=None,
             responses={200: {"model": RosterDetailBody, "description": "One roster"}, **api_errors(404)})
-def roster_detail_api(request: Request, roster_id: int) -> JSONResponse:
-    return as_json(roster_detail_data(app_store(request), roster_id))
+def roster_detail_api(request: Request, roster_id: int, page: int = 1) -> JSONResponse:
+    return as_json(roster_detail_data(app_store(request), roster_id, page))
 
 
 @router.get("/rosters/{roster_id}/rejected.csv", name="roster_rejected_csv", response_class=Response,
