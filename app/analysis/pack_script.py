@@ -131,8 +131,8 @@ def refit(folder: Path, params: dict[str, Any], results: dict[str, Any]) -> list
     model, kind = params["model"], params["kind"]
     if model == "by_sector":
         common = results.get("common")
-        out = refit(folder, {**params, "model": "sector"}, common) if common else []
-        return out + sector_checks(cells, params, results)
+        found = refit(folder, {**params, "model": "sector"}, common) if common else []
+        return found + sector_checks(cells, params, results)
     alpha = float(params["alpha"])
     groups = model_groups(cells, model, kind)
     X, j = design(groups, model, float(params["centre"]))
@@ -309,10 +309,10 @@ def jackknife_check(folder: Path, params: dict[str, Any]) -> list[tuple[str, flo
             firms["sector"] = ""
         firms = firms.groupby(["firm_id", "sector", "year"], sort=False)[["forced", "voluntary"]].sum()
         left: dict[str, tuple[np.ndarray, np.ndarray]] = {}
-        for (firm, sector, year), row in firms.iterrows():
-            f, v = left.setdefault(firm, (forced.copy(), voluntary.copy()))
-            f[position[(sector, year)]] -= row["forced"]
-            v[position[(sector, year)]] -= row["voluntary"]
+        for firm, sector, year, n_forced, n_voluntary in firms.reset_index().itertuples(index=False):
+            f, v = left.setdefault(str(firm), (forced.copy(), voluntary.copy()))
+            f[position[(sector, year)]] -= n_forced
+            v[position[(sector, year)]] -= n_voluntary
         cases = [left[str(u)] for u in jackknife["unit_id"]]
     else:
         cases = []
@@ -328,8 +328,8 @@ def jackknife_check(folder: Path, params: dict[str, Any]) -> list[tuple[str, flo
         if k not in memo:
             # a group (or a whole sector) the left-out unit emptied says nothing: fit without it
             rows = (f + v) > 0
-            kept = np.flatnonzero(np.abs(X[rows]).sum(axis=0) > 0)
-            memo[k] = float(glm(f[rows], (f + v)[rows], X[rows][:, kept]).params[list(kept).index(j)])
+            kept = [c for c in range(X.shape[1]) if np.abs(X[rows, c]).sum() > 0]
+            memo[k] = float(glm(f[rows], (f + v)[rows], X[rows][:, kept]).params[kept.index(j)])
         worst = max(worst, abs(memo[k] - reported)) if math.isfinite(reported) else math.inf
     return [("jackknife: largest difference over all units", worst, 0.0)]
 

@@ -28,7 +28,7 @@ from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, PASS_ELEMENTS, jackkni
 from app.stats.cells import Cells
 from app.stats.design import design_matrix, window_centre
 from app.stats.jackknife import cluster_cases, departure_cases
-from app.store import Run, Store, StoreError
+from app.store import Run, Store
 
 SCRIPT = Path(__file__).with_name("pack_script.py")
 #: a fixed timestamp for every member, so the same run always gives the same bytes (and sha256)
@@ -161,8 +161,9 @@ def _firm_cells(cells: Cells) -> str:
     frame["voluntary_count"] = np.where(frame["forced"], 0, frame["count"])
     per = frame.groupby(["firm", "group"], sort=True)[["forced_count", "voluntary_count"]].sum().reset_index()
     groups = cells.groups
-    rows = [[cells.firm_ids[f], groups["sector"].iat[g], int(groups["year"].iat[g]), int(a), int(b)]
-            for f, g, a, b in per.itertuples(index=False)]
+    years = groups["year"].to_numpy(dtype=np.int64)
+    sectors = groups["sector"].astype(str).to_numpy()
+    rows = [[cells.firm_ids[f], sectors[g], int(years[g]), int(a), int(b)] for f, g, a, b in per.itertuples(index=False)]
     return safe_csv(rows, ["firm_id", "sector", "year", "forced", "voluntary"])
 
 
@@ -237,11 +238,8 @@ def build_pack(store: Store, run_id: int, *, records: bool = False) -> Replicati
         mapping_sha = hashlib.sha256(members["mapping.csv"].encode()).hexdigest()
     members["params.json"] = json.dumps(run_params(run, inp, cells, mapping_sha), indent=1, sort_keys=True) + "\n"
     if run.kind == "bootstrap":
-        members["replicates.csv"] = _csv(replicate_rows(store, run),
-                                         ["index", "log_odds_ratio", "odds_ratio", "status", "reason"])
-        header = (["unit_id", "log_odds_ratio"] if run.params["unit"] == "firm"
-                  else ["unit_id", "year", "sector", "category", "log_odds_ratio"])
-        members["jackknife.csv"] = _csv(jackknife_rows(store, run), header)
+        members["replicates.csv"] = replicates_csv(store, run.id)
+        members["jackknife.csv"] = jackknife_csv(store, run.id)
     members["results.json"] = json.dumps(run.result, indent=1, sort_keys=True) + "\n"
     members["reproduce.py"] = SCRIPT.read_text(encoding="utf-8")
     names = ["README.txt", *members]
@@ -270,8 +268,22 @@ def replicates_payload(store: Store, run_id: int) -> dict[str, Any]:
     """A bootstrap run's replicates and jackknife values as plain JSON values."""
     run = finished_run(store, run_id)
     if run.kind != "bootstrap":
-        raise StoreError(f"Run {run_id} is a {run.kind} run; only bootstrap runs have replicates.")
+        raise ValueError(f"Run {run_id} is a {run.kind} run; only bootstrap runs have replicates.")
     assert run.result is not None
     return {"run": run.id, "unit": run.params["unit"], "seed": run.params["seed"], "block_size": BLOCK_SIZE,
             "log_odds_ratio": run.result.get("log_odds_ratio"), "replicates": replicate_rows(store, run),
             "jackknife": jackknife_rows(store, run)}
+
+
+def replicates_csv(store: Store, run_id: int) -> str:
+    """replicates.csv of a finished bootstrap run."""
+    payload = replicates_payload(store, run_id)
+    return _csv(payload["replicates"], ["index", "log_odds_ratio", "odds_ratio", "status", "reason"])
+
+
+def jackknife_csv(store: Store, run_id: int) -> str:
+    """jackknife.csv of a finished bootstrap run."""
+    payload = replicates_payload(store, run_id)
+    header = (["unit_id", "log_odds_ratio"] if payload["unit"] == "firm"
+              else ["unit_id", "year", "sector", "category", "log_odds_ratio"])
+    return _csv(payload["jackknife"], header)

@@ -317,6 +317,8 @@ class TrendBody(_Exact):
     run_id: int | None
     runs: list[RunOut]
     table: list[OddsRow]
+    quasi: bool
+    spline_dfs: list[int]
 
 
 class TrendUnfitBody(TrendBody):
@@ -355,6 +357,34 @@ class RunBody(_Exact):
     comparison: str | None
     comparison_found: bool
     percent: int = Field(ge=0, le=100)
+
+
+class ReplicateOut(_Exact):
+    index: int
+    log_odds_ratio: float | None
+    odds_ratio: float | None
+    status: Literal["ok", "failed"]
+    reason: str
+
+
+class JackknifeOut(_Exact):
+    """One resampling unit left out: a firm id, or a departure's roster line with its cell."""
+
+    unit_id: str
+    log_odds_ratio: float | None
+    year: int | None = None
+    sector: str | None = None
+    category: Literal["forced", "voluntary"] | None = None
+
+
+class ReplicatesBody(_Exact):
+    run: int
+    unit: Literal["departure", "firm"]
+    seed: int
+    block_size: int
+    log_odds_ratio: float | None
+    replicates: list[ReplicateOut]
+    jackknife: list[JackknifeOut]
 
 
 # -- sectors and robustness ------------------------------------------------------------------------
@@ -452,6 +482,7 @@ class BriefingBody(_Exact):
     window: YearSpan | None
     chosen: list[str]
     run_id: int | None
+    fit_run_id: int | None
     runs: list[BootstrapRunOut]
     items: list[PreviewItemOut]
     export_ok: bool
