@@ -15,6 +15,7 @@ import json
 import zipfile
 from collections.abc import Iterator
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
@@ -137,8 +138,7 @@ def _scipy_intervals(estimate: float, replicates: np.ndarray, jackknife: np.ndar
             return estimate
         return np.asarray(jackknife)[full - idx.sum(axis=axis)]
 
-    previous = stats._resampling.BootstrapResult(  # scipy's own result type (documented as `bootstrap_result`)
-        confidence_interval=None, bootstrap_distribution=replicates, standard_error=None)
+    previous = SimpleNamespace(bootstrap_distribution=replicates)  # all scipy reads of `bootstrap_result`
     result = stats.bootstrap((np.arange(n),), statistic, n_resamples=0, bootstrap_result=previous,
                              vectorized=True, method=method, confidence_level=0.95)
     return float(result.confidence_interval.low), float(result.confidence_interval.high)

@@ -285,7 +285,7 @@ def bootstrap_numbers(folder: Path, params: dict[str, Any], results: dict[str, A
         stacked = np.concatenate(again[method])
         sd = np.std(stacked, axis=0, ddof=1) if np.isfinite(stacked).all() else np.full(2, np.nan)
         for end, name in enumerate(("low", "high")):
-            odds = math.exp(float(found[method][0, end]))
+            odds = float(np.exp(found[method][0, end]))  # numpy's exp, as Helmshift's (math.exp may differ by 1 ulp)
             out.append((f"{method} {name}", odds, results["conf_int"][method][end]))
             out.append((f"{method} {name}: Monte Carlo error", odds * float(sd[end]),
                         results["mc_error"][method][end]))
