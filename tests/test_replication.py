@@ -283,3 +283,18 @@ def test_pages_offer_the_pack(web: Any, runs: tuple[Store, dict[str, int]]) -> N
     assert web.get("/rosters/1/trend?model=spline&spline_df=6").status_code == 200
     briefing = web.get(f"/rosters/1/briefing?run={ids['firm']}").text
     assert f"/runs/{ids['firm']}/pack.zip" in briefing and briefing.count("/pack.zip") == 2
+
+
+def test_brief_footer_names_each_packs_sha256(runs: tuple[Store, dict[str, int]], tmp_path: Path) -> None:
+    from test_export import AVAILABLE, WHY, pdf_text  # the export tests' browser check and PDF text reader
+
+    from app.briefing.exports import brief_file
+
+    if not AVAILABLE:
+        pytest.skip(WHY)
+    store, ids = runs
+    inp = load_input(store, 1)
+    text = " ".join(pdf_text(brief_file(store, inp, run_id=ids["firm"]), tmp_path).split())
+    for run_id in (run_trend(store, inp).run_id, ids["firm"]):
+        sha = build_pack(store, run_id).sha256
+        assert f"Replication pack of run {run_id}: sha256 {sha}" in text.replace("- ", "-")
