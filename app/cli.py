@@ -171,8 +171,18 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
-    payload = fit_summary(store, inp, model=args.model, by_sector=args.by == "sector")
+    payload = fit_summary(store, inp, model=args.model, by_sector=args.by == "sector", spline_df=args.spline_df,
+                          quasi=args.quasi)
     _emit(args, payload, lambda p: p["sentence"])
+    return 0
+
+
+def cmd_run_export(args: argparse.Namespace) -> int:
+    from app.analysis.replication import write_pack
+
+    pack = write_pack(_store(args), args.run_id, Path(args.out), records=args.records)
+    _emit(args, {"run": pack.run_id, "out": args.out, "sha256": pack.sha256, "files": list(pack.files)},
+          lambda p: f"Wrote {p['out']} (run {p['run']}, sha256 {p['sha256']}): {', '.join(p['files'])}")
     return 0
 
 
@@ -279,6 +289,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--years", metavar="FROM-TO")
     p.add_argument("--by", choices=["sector"])
     p.add_argument("--model", choices=["linear", "sector", "spline"], default="linear")
+    p.add_argument("--spline-df", type=int, choices=range(2, 7), default=3, metavar="2..6",
+                   help="degrees of freedom of the spline in the bend test (--model spline; default 3)")
+    p.add_argument("--quasi", action="store_true",
+                   help="also give quasi-binomial intervals whatever the dispersion (given anyway above 1.5)")
     common(p)
     p.set_defaults(func=cmd_fit)
 
@@ -292,6 +306,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--model", choices=["linear", "sector"], default="linear")
     common(p)
     p.set_defaults(func=cmd_bootstrap)
+
+    p = sub.add_parser("run", help="stored runs: export a replication pack")
+    rsub = p.add_subparsers(dest="run_command", required=True)
+    q = rsub.add_parser("export", help="write a run's replication pack (zip) for recomputing it without Helmshift")
+    q.add_argument("run_id", type=int, metavar="RUN_ID")
+    q.add_argument("--out", required=True, metavar="PACK.zip")
+    q.add_argument("--records", action="store_true",
+                   help="include records.csv, the departures behind the counts (personal data: keep it local)")
+    common(q)
+    q.set_defaults(func=cmd_run_export)
 
     p = sub.add_parser("robustness", help="the trend under several mappings and variants")
     p.add_argument("--roster", required=True)

@@ -97,6 +97,8 @@ CASES: list[tuple[str, str, int, type[BaseModel]]] = [
     ("/api/runs/{run_id}", "/api/runs/{bootstrap}?method=basic", 200, RunBody),
     ("/api/runs/{run_id}", "/api/runs/{bootstrap}?method=normal", 400, S.ErrorBody),
     ("/api/runs/{run_id}", "/api/runs/99999", 404, S.ErrorBody),
+    ("/api/runs/{run_id}/replicates", "/api/runs/{bootstrap}/replicates", 200, S.ReplicatesBody),
+    ("/api/runs/{run_id}/replicates", "/api/runs/99999/replicates", 404, S.ErrorBody),
     ("/api/rosters/{roster_id}/sectors", "/api/rosters/1/sectors", 200, SectorsBody),
     ("/api/rosters/{roster_id}/sectors", "/api/rosters/1/sectors?min_departures=0", 400, S.ErrorBody),
     ("/api/rosters/{roster_id}/robustness", "/api/rosters/1/robustness", 200, RobustnessBody),

@@ -45,6 +45,8 @@ class Provenance:
     created: datetime = field(default_factory=lambda: datetime.now(UTC))
     #: (category, codes) pairs of the mapping version, for the deck's methods slide
     categories: tuple[tuple[str, tuple[str, ...]], ...] = ()
+    #: (run id, sha256) of the replication pack behind each run quoted
+    packs: tuple[tuple[int, str], ...] = ()
 
     def _created(self) -> str:
         return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
@@ -70,6 +72,8 @@ class Provenance:
         ]
         if (resampling := self._resampling()) is not None:
             out.append(f"Resampling: {resampling}")
+        for run_id, sha in self.packs:
+            out.append(f"Replication pack of run {run_id}: sha256 {sha}")
         out.append(f"Made with Helmshift {self.tool_version} on {self._created()}")
         return out
 

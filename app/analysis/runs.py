@@ -39,12 +39,15 @@ def _record_run(store: Store, inp: AnalysisInput, params: dict[str, Any], finger
     return run_id
 
 
-def run_trend(store: Store, inp: AnalysisInput, *, model: str = "linear", spline_df: int = 3) -> TrendOutcome:
-    """Fit the trend over the window and record the run."""
+def run_trend(store: Store, inp: AnalysisInput, *, model: str = "linear", spline_df: int = 3,
+              quasi: bool = False) -> TrendOutcome:
+    """Fit the trend over the window and record the run (``quasi``: quasi-binomial intervals whatever the
+    dispersion)."""
     started = time.perf_counter()
     cells = inp.cells(by_sector=model == "sector")
-    fit = fit_trend(cells, model, spline_df=spline_df)  # type: ignore[arg-type]
-    params: dict[str, Any] = {"model": model} | ({"spline_df": spline_df} if model == "spline" else {})
+    fit = fit_trend(cells, model, spline_df=spline_df, quasi=quasi)  # type: ignore[arg-type]
+    params: dict[str, Any] = ({"model": model} | ({"spline_df": spline_df} if model == "spline" else {})
+                              | ({"quasi": True} if quasi else {}))
     run_id = _record_run(store, inp, params, cells.fingerprint(), fit_to_dict(fit),
                          time.perf_counter() - started)
     return TrendOutcome(fit, run_id)
@@ -60,9 +63,10 @@ def run_sectors(store: Store, inp: AnalysisInput, *, min_departures: int = 20) -
     return result, run_id
 
 
-def fit_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", by_sector: bool = False) -> dict[str, Any]:
+def fit_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", by_sector: bool = False,
+                spline_df: int = 3, quasi: bool = False) -> dict[str, Any]:
     """The command line's ``fit --json`` object (and the trend page's JSON twin)."""
-    outcome = run_trend(store, inp, model=model)
+    outcome = run_trend(store, inp, model=model, spline_df=spline_df, quasi=quasi)
     payload: dict[str, Any] = dict(fit_to_dict(outcome.fit))
     payload.update({"roster": inp.roster.name, "mapping": inp.mapping_label, "run": outcome.run_id,
                     "sentence": trend_sentence(outcome.fit), "warnings": inp.warnings()})

@@ -11,6 +11,7 @@ import pandas as pd
 
 from app.analysis.inputs import AnalysisInput
 from app.analysis.provenance import Provenance
+from app.analysis.replication import build_pack
 from app.analysis.runs import run_trend
 from app.briefing.charts import untitled
 from app.briefing.deck import Finding, build_deck
@@ -73,7 +74,8 @@ def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None) -
     """The one-page brief: headline, trend and bootstrap (or coverage) charts, odds ratios, method."""
     from app.briefing.brief import build_brief
 
-    fit = run_trend(store, inp).fit
+    outcome = run_trend(store, inp)
+    fit = outcome.fit
     trend = build_finding(store, inp, "trend")
     run = store.get_run(run_id) if run_id is not None else latest_bootstrap(store, inp)
     second = build_finding(store, inp, "bootstrap", run_id=run.id) if run is not None else build_finding(
@@ -101,6 +103,8 @@ def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None) -
               + (" Bootstrap intervals resample whole firms, keeping each firm's departures together."
                  if run is not None and run.params.get("unit") == "firm" else ""))
     provenance = _deck_provenance([trend, second], trend.provenance)
+    quoted = [outcome.run_id] + ([run.id] if run is not None and run.result is not None else [])
+    provenance = replace(provenance, packs=tuple((i, build_pack(store, i).sha256) for i in quoted))
     # the headline is the trend chart's own title, so that chart goes in without it
     return build_brief(headline=trend_sentence(fit), charts=[untitled(trend.figure), second.figure],
                        table=pd.DataFrame(rows), method_text=method, provenance=provenance)

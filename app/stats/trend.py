@@ -33,7 +33,8 @@ TREND_KINDS: tuple[TrendKind, ...] = get_args(TrendKind)
 #: with fewer than 5 df the dispersion estimate itself is too noisy to act on.
 QUASI_DISPERSION = 1.5
 QUASI_MIN_DF = 5
-SPLINE_DFS = (2, 3, 4)
+#: spline df the bend test accepts; more than 6 would chase year-to-year noise in a 20-30 year window
+SPLINE_DFS = (2, 3, 4, 5, 6)
 #: years with fewer counted departures than this get a note that their share is imprecise
 THIN_YEAR = 10
 
@@ -142,7 +143,7 @@ def natural_spline_basis(x: np.ndarray, df: int, *, knots: tuple[float, ...] | N
     x : numpy.ndarray
         Covariate values (years).
     df : int
-        Columns returned (2, 3 or 4); the spline has df + 1 knots.
+        Columns returned (2 to 6); the spline has df + 1 knots.
     knots : tuple of float, optional
         Reuse the knots of an earlier call (e.g. to evaluate a fitted spline at new years).
 
@@ -243,7 +244,7 @@ def _curvature(forced: np.ndarray, totals: np.ndarray, years: np.ndarray, df: in
 
 
 def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
-              alpha: float = 0.05) -> TrendFit:
+              alpha: float = 0.05, quasi: bool = False) -> TrendFit:
     """Fit the logistic trend in the forced share over the window of ``cells``.
 
     Parameters
@@ -256,9 +257,12 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
         ``sector``: one intercept per sector plus the common slope b1.
         ``spline``: the linear fit plus a natural cubic spline in year with ``spline_df`` df,
         compared with it by a likelihood-ratio test (``curvature``).
-    spline_df : {2, 3, 4}
+    spline_df : {2, 3, 4, 5, 6}
     alpha : float
         1 - confidence level of every interval.
+    quasi : bool
+        Give the quasi-binomial intervals whatever the dispersion (they are given anyway when the
+        dispersion exceeds ``QUASI_DISPERSION`` with at least ``QUASI_MIN_DF`` residual df).
 
     Returns
     -------
@@ -300,7 +304,7 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
 
     conf: dict[str, Interval | None] = {"wald": None, "profile": None}
     decade: dict[str, Interval | None] = {"wald": None, "profile": None}
-    quasi: QuasiTrend | None = None
+    refit: QuasiTrend | None = None
     dispersion = fit.dispersion
     if usable:
         wald = (b - z * se, b + z * se)
@@ -308,9 +312,13 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
         messages += _profile_note(prof)
         conf = {"wald": _or_interval(wald), "profile": _or_interval((prof.low, prof.high))}
         decade = {"wald": _or_interval(wald, 10.0), "profile": _or_interval((prof.low, prof.high), 10.0)}
-        if dispersion > QUASI_DISPERSION and fit.df_resid >= QUASI_MIN_DF:
-            quasi = _quasi(forced, totals, design.matrix, j, b, se, dispersion, alpha, z)
-            messages.append(quasi.message)
+        over = dispersion > QUASI_DISPERSION and fit.df_resid >= QUASI_MIN_DF
+        if quasi and not (math.isfinite(dispersion) and dispersion > 0):
+            messages.append("The quasi-binomial intervals need a positive dispersion estimate, which needs "
+                            "at least one residual degree of freedom and some residual variation; none is given.")
+        elif over or quasi:
+            refit = _quasi(forced, totals, design.matrix, j, b, se, dispersion, alpha, z, asked=not over)
+            messages.append(refit.message)
     else:
         messages.append("The trend cannot be estimated: the forced share is perfectly separated over "
                         "the years (or the fit failed), so no odds ratio is reported.")
@@ -342,10 +350,10 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
         if spline is not None and spline_x is not None:
             rows = spline_x  # groups are the observed years here, in the same order
             params, cov = spline.params, spline.cov
-            if quasi is not None:
+            if refit is not None and refit.dispersion > QUASI_DISPERSION:
                 messages.append("The curvature test assumes binomial variation; with the overdispersion "
                                 "found here its p-value is too small.")
-    band_cov = cov * (dispersion if quasi is not None else 1.0)
+    band_cov = cov * (dispersion if refit is not None else 1.0)
     band = _band(rows, params, band_cov, z)
     if not usable:
         band[["low", "high"]] = np.nan
@@ -364,21 +372,25 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
         decade_odds_ratio=math.exp(10.0 * b) if usable else None, decade_conf_int=decade,
         deviance=fit.deviance, pearson_chi2=fit.pearson_chi2, df_resid=fit.df_resid,
         dispersion=dispersion, llf=fit.llf, converged=fit.converged, separated=fit.separated,
-        quasi=quasi, curvature=curvature, observed=observed, fitted=fitted,
+        quasi=refit, curvature=curvature, observed=observed, fitted=fitted,
         messages=tuple(dict.fromkeys(messages)),
     )
 
 
 def _quasi(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, j: int, b: float, se: float,
-           dispersion: float, alpha: float, z: float) -> QuasiTrend:
+           dispersion: float, alpha: float, z: float, *, asked: bool = False) -> QuasiTrend:
     se_q = se * math.sqrt(dispersion)
     wald = (b - z * se_q, b + z * se_q)
     prof = profile_interval(forced, totals, X, j, alpha, dispersion=dispersion)
     bounds = (prof.low, prof.high)
-    message = (f"The counts vary more than a binomial model allows (Pearson dispersion "
-               f"{dispersion:.2f}), so quasi-binomial intervals are also given: Wald intervals widened "
-               f"by sqrt(dispersion) and profile intervals with the deviance difference divided by the "
-               f"dispersion.")
+    how = ("Wald intervals scaled by sqrt(dispersion) and profile intervals with the deviance difference "
+           "divided by the dispersion.")
+    if asked:
+        message = (f"Quasi-binomial intervals are given as asked (Pearson dispersion {dispersion:.2f}, below "
+                   f"the {QUASI_DISPERSION} at which they are given anyway): {how}")
+    else:
+        message = (f"The counts vary more than a binomial model allows (Pearson dispersion "
+                   f"{dispersion:.2f}), so quasi-binomial intervals are also given: {how}")
     return QuasiTrend(dispersion=dispersion, se=se_q,
                       conf_int={"wald": _or_interval(wald), "profile": _or_interval(bounds)},
                       decade_conf_int={"wald": _or_interval(wald, 10.0),

@@ -9,9 +9,11 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 
 from app.analysis.inputs import AnalysisInput, load_input
+from app.analysis.runs import run_trend
 from app.briefing.exports import DEFAULT_DECK, MEDIA_TYPES, brief_file, chart_file, deck_file
 from app.briefing.findings import CHART_NAMES, build_finding, latest_bootstrap
 from app.briefing.render import ExportError, export_available
+from app.stats.trend import TrendError
 from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
@@ -43,6 +45,7 @@ class BriefingPage:
     window: tuple[int, int] | None
     chosen: list[str]
     run_id: int | None
+    fit_run_id: int | None
     runs: list[Run]
     items: list[PreviewItem]
     export_ok: bool
@@ -69,7 +72,7 @@ def briefing_data(store: Store, roster_id: int, *, chosen: list[str], run_id: in
     try:
         inp = load_input(store, roster.id)
     except StoreError as exc:
-        return BriefingPage(roster, "no mapping", None, chosen, run_id, runs, [], ok, message, str(exc))
+        return BriefingPage(roster, "no mapping", None, chosen, run_id, None, runs, [], ok, message, str(exc))
     if run_id is None:
         latest = latest_bootstrap(store, inp)
         run_id = latest.id if latest else None
@@ -81,7 +84,11 @@ def briefing_data(store: Store, roster_id: int, *, chosen: list[str], run_id: in
             items.append(PreviewItem(name, CHART_LABELS[name], "", error=str(exc)))
             continue
         items.append(PreviewItem(name, CHART_LABELS[name], finding.takeaway, figure=figure_spec(finding.figure)))
-    return BriefingPage(roster, inp.mapping_label, inp.window, chosen, run_id, runs, items, ok, message,
+    try:
+        fit_run_id: int | None = run_trend(store, inp).run_id  # the fit the brief and deck quote
+    except TrendError:
+        fit_run_id = None
+    return BriefingPage(roster, inp.mapping_label, inp.window, chosen, run_id, fit_run_id, runs, items, ok, message,
                         warnings=inp.warnings())
 
 

@@ -192,3 +192,34 @@ __all__ = ["BootstrapResultOut", "BootstrapRunOut", "CoverageYear", "CurvatureOu
            "RunOut", "SectorCount", "SectorTrendOut", "SectorTrendsOut", "TrendFitOut", "TrendFitSummary",
            "ValidationErrorBody", "ValidationIssue", "VariantOut", "WindowSuggestionOut", "YearFlagOut",
            "define", "list_of", "one_of", "variant"]
+
+
+# -- a run's replicates and jackknife values, as data for other tools (built as dicts, not dataclasses) ---------
+
+
+class ReplicateOut(_Exact):
+    index: int
+    log_odds_ratio: float | None
+    odds_ratio: float | None
+    status: Literal["ok", "failed"]
+    reason: str
+
+
+class JackknifeOut(_Exact):
+    """One resampling unit left out: a firm id, or a departure's roster line with its cell."""
+
+    unit_id: str
+    log_odds_ratio: float | None
+    year: int | None = None
+    sector: str | None = None
+    category: Literal["forced", "voluntary"] | None = None
+
+
+class ReplicatesBody(_Exact):
+    run: int
+    unit: Literal["departure", "firm"]
+    seed: int
+    block_size: int
+    log_odds_ratio: float | None
+    replicates: list[ReplicateOut]
+    jackknife: list[JackknifeOut]

@@ -11,7 +11,7 @@ from fastapi.responses import HTMLResponse, JSONResponse
 from app.analysis.inputs import load_input
 from app.analysis.runs import run_trend
 from app.briefing.findings import trend_finding_from_fit
-from app.stats.trend import TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
+from app.stats.trend import SPLINE_DFS, TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
 from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
@@ -40,6 +40,8 @@ class TrendPage:
     runs: list[Run]
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     table: list[dict[str, Any]] = field(default_factory=list)
+    quasi: bool = False
+    spline_dfs: tuple[int, ...] = SPLINE_DFS
 
 
 TrendBody = define(TrendPage, "TrendBody", fields={"fit": TrendFitSummary | None, "table": list_of(OddsRow)},
@@ -69,11 +71,11 @@ def _odds_table(fit: TrendFit) -> list[dict[str, Any]]:
 
 
 def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df: int = 3,
-               window: tuple[int, int] | None = None) -> TrendPage:
+               window: tuple[int, int] | None = None, quasi: bool = False) -> TrendPage:
     if model not in TREND_KINDS:
         raise BadRequest(f"model must be one of {', '.join(TREND_KINDS)}; got {model!r}.")
-    if spline_df not in (2, 3, 4):
-        raise BadRequest(f"spline df must be 2, 3 or 4; got {spline_df}.")
+    if spline_df not in SPLINE_DFS:
+        raise BadRequest(f"spline df must be one of {', '.join(map(str, SPLINE_DFS))}; got {spline_df}.")
     try:
         roster = store.get_roster(roster_id)
     except StoreError as exc:
@@ -84,17 +86,17 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         return _empty(store, roster, model, spline_df, str(exc))
     runs = _trend_runs(store, roster.id)
     try:
-        outcome = run_trend(store, inp, model=model, spline_df=spline_df)
+        outcome = run_trend(store, inp, model=model, spline_df=spline_df, quasi=quasi)
     except TrendError as exc:
         return TrendPage(roster, inp.mapping_label, inp.window, inp.window_source, model, spline_df, None, None,
-                         str(exc), inp.warnings(), None, runs)
+                         str(exc), inp.warnings(), None, runs, quasi=quasi)
     fit = outcome.fit
     fig = trend_finding_from_fit(inp, fit, model).figure
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
-        figure=figure_spec(fig, titled=False), table=_odds_table(fit),
+        figure=figure_spec(fig, titled=False), table=_odds_table(fit), quasi=quasi,
     )
 
 
@@ -109,13 +111,18 @@ def _empty(store: Store, roster: Roster, model: str, spline_df: int, error: str)
 
 def _request_args(request: Request) -> dict[str, Any]:
     df = request.query_params.get("spline_df", "3")
+    quasi = request.query_params.get("quasi", "0")
+    if quasi not in ("0", "1"):
+        raise BadRequest(f"quasi must be 0 or 1; got {quasi!r}.")
     return {"model": request.query_params.get("model", "linear"),
-            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request)}
+            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request), "quasi": quasi == "1"}
 
 
 _TREND_QUERY = query(("model", {"type": "string", "enum": list(TREND_KINDS), "default": "linear"}, "trend model"),
-                     ("spline_df", {"type": "integer", "enum": [2, 3, 4], "default": 3},
+                     ("spline_df", {"type": "integer", "enum": list(SPLINE_DFS), "default": 3},
                       "degrees of freedom of the spline checked for curvature"),
+                     ("quasi", {"type": "string", "enum": ["0", "1"], "default": "0"},
+                      "1 gives the quasi-binomial intervals whatever the dispersion"),
                      *WINDOW_QUERY)
 
 
