@@ -1,4 +1,4 @@
-"""app.stats.rates: exact Poisson intervals, rate counting over a universe, the Poisson trend in a rate.
+"""app.stats.rates and app.stats.rate_trend: exact Poisson intervals, rate counting, the Poisson trend.
 
 Oracles: Garwood's chi-squared formula evaluated with scipy.stats.chi2 and statsmodels'
 ``confint_poisson(method='exact-c')`` (REFERENCES.md, "Exact Poisson interval, Garwood 1936"); statsmodels
@@ -17,17 +17,14 @@ import statsmodels.api as sm
 from scipy import optimize, stats
 from statsmodels.stats.rates import confint_poisson
 
-from app.stats.rates import (
+from app.stats.rate_trend import (
     RateError,
-    count_rates,
     decomposition_sentence,
-    expand_spans,
     fit_rate_trend,
-    garwood_interval,
     poisson_profile_interval,
     rate_trend_to_dict,
-    universe_fingerprint,
 )
+from app.stats.rates import count_rates, expand_spans, garwood_interval, universe_fingerprint
 
 
 def _universe(sizes: dict[int, int]) -> pd.DataFrame:

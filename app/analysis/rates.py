@@ -16,19 +16,19 @@ import pandas as pd
 from app.analysis.inputs import AnalysisInput
 from app.analysis.runs import _record_run
 from app.stats.cells import build_cells
-from app.stats.rates import (
+from app.stats.rate_trend import (
     RateError,
-    RateTable,
     RateTrend,
-    count_rates,
     decomposition_sentence,
     fit_rate_trend,
     rate_trend_to_dict,
 )
+from app.stats.rates import RateTable, count_rates
 from app.stats.trend import TrendError, fit_trend, json_interval, json_number
 from app.store import Store, StoreError, Universe
 
-__all__ = ["SHARE_VS_RATE", "RateAnalysis", "UniverseFlags", "rate_summary", "run_rates", "universe_flags",
+__all__ = ["SHARE_VS_RATE", "RateAnalysis", "RatesSection", "UniverseFlags", "rate_summary", "rates_section",
+           "run_rates", "universe_flags",
            "universe_or_error"]
 
 #: shown wherever a rate appears (pages, command output)
@@ -186,3 +186,53 @@ def rate_summary(store: Store, inp: AnalysisInput) -> dict[str, Any]:
                      "firms": u.firms, "firm_years": u.firm_years},
         "caution": SHARE_VS_RATE, "messages": list(a.messages),
     }
+
+
+@dataclass(frozen=True)
+class RatesSection:
+    """The Rates section of Coverage (table only) and Trend (table and both trends), as plain values.
+
+    ``error`` says why there is nothing to show (no universe yet, or no trend could be fitted).
+    """
+
+    universe_id: int | None
+    universe_label: str | None
+    approximate: bool
+    firm_years: int
+    years: list[dict[str, Any]]
+    forced: dict[str, Any] | None
+    voluntary: dict[str, Any] | None
+    sentence: str | None
+    error: str | None
+    messages: list[str]
+    caution: str = SHARE_VS_RATE
+
+
+def _label(u: Universe) -> str:
+    kind = "derived from the roster (approximation)" if u.approximate else f"imported from {u.source_name}"
+    return f"universe {u.id}, {kind}: {u.firms:,} firms, {u.firm_years:,} firm-years [{u.fingerprint}]"
+
+
+def rates_section(store: Store, inp: AnalysisInput, *, fit: bool) -> RatesSection:
+    """Rates per year over the roster's current universe; with ``fit``, both Poisson trends (recorded)."""
+    universe = store.current_universe(inp.roster.id)
+    if universe is None:
+        return RatesSection(None, None, False, 0, [], None, None, None,
+                            "No universe of firm-years yet: import one (or derive one) on the Universe page to "
+                            "see turnover rates per 100 firm-years.", [])
+    if fit:
+        a = run_rates(store, inp)
+        return RatesSection(
+            universe.id, _label(universe), universe.approximate, a.table.firm_years, a.years(),
+            rate_trend_to_dict(a.forced) if a.forced else None,
+            rate_trend_to_dict(a.voluntary) if a.voluntary else None, a.sentence, a.error, list(a.messages))
+    firm_years = store.universe_firm_years(universe.id)
+    table = count_rates(inp.records, firm_years, inp.window)
+    flags = universe_flags(inp.in_window(), firm_years.loc[firm_years["year"].between(*inp.window)])
+    view = RateAnalysis(universe, table, None, None, None, None, None, None, flags, (), None)
+    messages = ([APPROXIMATE] if universe.approximate else []) + flags.messages()
+    if table.outside:
+        messages.append(f"{table.outside:,} counted departure(s) in the window fall outside the universe's "
+                        "firm-years and are left out of the rates.")
+    return RatesSection(universe.id, _label(universe), universe.approximate, table.firm_years, view.years(),
+                        None, None, None, None, messages)

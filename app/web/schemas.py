@@ -231,6 +231,23 @@ class YearFlagOut(_Exact):
     message: str
 
 
+class RatesSectionOut(_Exact):
+    """Turnover per 100 firm-years over the roster's universe (Coverage: table; Trend: also both trends)."""
+
+    universe_id: int | None
+    universe_label: str | None
+    approximate: bool
+    firm_years: int
+    years: list[dict[str, Any]] = Field(description="per year: firm_years, forced, voluntary, "
+                                        "forced_rate_per_100, interval, voluntary_rate_per_100, voluntary_interval")
+    forced: dict[str, Any] | None = Field(description="Poisson trend in the forced rate (rate_ratio, conf_int, ...)")
+    voluntary: dict[str, Any] | None
+    sentence: str | None
+    error: str | None
+    messages: list[str]
+    caution: str
+
+
 class CoverageBody(_Exact):
     roster: RosterOut
     mapping_label: str
@@ -241,6 +258,7 @@ class CoverageBody(_Exact):
     window_source: str
     threshold: float
     warnings: list[str]
+    rates: RatesSectionOut | None
 
 
 # -- trend -----------------------------------------------------------------------------------------
@@ -317,6 +335,7 @@ class TrendBody(_Exact):
     run_id: int | None
     runs: list[RunOut]
     table: list[OddsRow]
+    rates: RatesSectionOut | None
 
 
 class TrendUnfitBody(TrendBody):
@@ -459,3 +478,48 @@ class BriefingBody(_Exact):
     error: str | None
     warnings: list[str]
     chart_labels: dict[str, str]
+
+
+# -- universe --------------------------------------------------------------------------------------
+
+
+class UniverseOut(_Exact):
+    id: int
+    roster_id: int
+    source: Literal["file", "derived"]
+    source_name: str
+    sha256: str
+    fingerprint: str
+    imported_at: str
+    shape: Literal["firm_years", "spans"]
+    rows_total: int
+    rejected: int
+    firms: int
+    firm_years: int
+    columns: dict[str, str]
+
+
+class UniverseFlagsOut(_Exact):
+    missing_firms: list[str]
+    missing_count: int
+    empty_years: list[int]
+
+
+class UniverseYear(_Exact):
+    year: int
+    firms: int
+    roster_rows: int
+
+
+class UniverseBody(_Exact):
+    roster: RosterOut
+    universe: UniverseOut | None
+    approximate_note: str | None
+    years: list[UniverseYear]
+    flags: UniverseFlagsOut | None
+    flag_messages: list[str]
+    rejected: list[RejectedRowOut]
+    history: list[UniverseOut]
+    roles: list[str]
+    caution: str
+    message: str | None

@@ -9,6 +9,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
 from app.analysis.inputs import load_input
+from app.analysis.rates import RatesSection, rates_section
 from app.analysis.runs import run_trend
 from app.briefing.findings import trend_finding_from_fit
 from app.stats.trend import TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
@@ -40,6 +41,8 @@ class TrendPage:
     runs: list[Run]
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     table: list[dict[str, Any]] = field(default_factory=list)
+    #: forced and voluntary turnover per 100 firm-years and their Poisson trends (None without a mapping)
+    rates: RatesSection | None = None
 
 
 def _years(request: Request) -> tuple[int, int] | None:
@@ -77,23 +80,24 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
     except StoreError as exc:
         return _empty(store, roster, model, spline_df, str(exc))
     runs = _trend_runs(store, roster.id)
+    rates = rates_section(store, inp, fit=True)
     try:
         outcome = run_trend(store, inp, model=model, spline_df=spline_df)
     except TrendError as exc:
         return TrendPage(roster, inp.mapping_label, inp.window, inp.window_source, model, spline_df, None, None,
-                         str(exc), inp.warnings(), None, runs)
+                         str(exc), inp.warnings(), None, runs, rates=rates)
     fit = outcome.fit
     fig = trend_finding_from_fit(inp, fit, model).figure
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
-        figure=figure_spec(fig, titled=False), table=_odds_table(fit),
+        figure=figure_spec(fig, titled=False), table=_odds_table(fit), rates=rates,
     )
 
 
 def _trend_runs(store: Store, roster_id: int) -> list[Run]:
-    return [r for r in store.list_runs(roster_id, "fit") if r.params.get("model") != "by_sector"][:10]
+    return [r for r in store.list_runs(roster_id, "fit") if r.params.get("model") not in ("by_sector", "rate")][:10]
 
 
 def _empty(store: Store, roster: Roster, model: str, spline_df: int, error: str) -> TrendPage:
