@@ -197,3 +197,9 @@ def test_cli_universe_import_and_fit_measure_rate(capsys: pytest.CaptureFixture[
     code, derived, _ = run(capsys, "universe", "derive", "--roster", roster, "--db", db, "--json")
     assert code == 0 and derived["approximate"] is True and derived["universe"] == payload["universe"] + 1
     assert math.isfinite(fit["voluntary_rate_ratio"]) and fit["voluntary_rate_ratio"] > 1
+
+
+def test_a_repeated_header_is_refused_by_the_shared_reader(store: Store, roster: str) -> None:
+    with pytest.raises(RosterFileError, match="repeats column names: 'year'"):
+        import_universe(store, roster, b"firm,year,year\nA,2001,x\n", "dup.csv")
+    assert store.universe_count() == 0

@@ -144,23 +144,26 @@ def import_universe(
     shape = _shape(resolved, table.headers)
     if not table.rows and not table.bad_rows:
         raise RosterFileError(f"The file has a header row (line {table.header_line}) but no data rows.")
-    frame = pd.DataFrame(table.rows, columns=table.headers, dtype=object) if table.rows else \
-        pd.DataFrame({h: pd.Series(dtype=object) for h in table.headers})
-    firm = frame[resolved["firm_id"]].astype(str).str.strip()
-    reasons: list[list[str]] = [[] for _ in range(len(frame))]
+    # by position: a header repeated in the file must not turn one role into two columns
+    def column(role: str) -> pd.Series:
+        i = table.headers.index(resolved[role])
+        return pd.Series([row[i] for row in table.rows], dtype=object)
+
+    firm = column("firm_id").astype(str).str.strip()
+    reasons: list[list[str]] = [[] for _ in range(len(table.rows))]
     for i, f in enumerate(firm):
         if f == "":
             reasons[i].append(f"missing firm id (column {resolved['firm_id']!r} is empty)")
     messages = list(table.messages)
     if shape == "firm_years":
-        year, why = _years(frame[resolved["year"]], "year", max_year)
+        year, why = _years(column("year"), "year", max_year)
         first, last = year, year
         for i, w in enumerate(why):
             if w:
                 reasons[i].append(w)
     else:
-        first, why_first = _years(frame[resolved["first_year"]], "first year", max_year)
-        last_text = frame[resolved["last_year"]].astype(str).str.strip()
+        first, why_first = _years(column("first_year"), "first year", max_year)
+        last_text = column("last_year").astype(str).str.strip()
         open_end = (last_text == "").to_numpy()
         roster_last = int(store.departures(roster.id)["year"].max()) if roster.accepted else max_year - 1
         last, why_last = _years(last_text.where(~open_end, str(roster_last)), "last year", max_year)
