@@ -54,13 +54,17 @@ def _parse_years(value: str | None) -> tuple[int, int] | None:
 def _parse_columns(pairs: Sequence[str] | None) -> dict[str, str] | None:
     from app.types import ROLES
 
+    return _parse_pairs(pairs, ROLES)
+
+
+def _parse_pairs(pairs: Sequence[str] | None, allowed: Sequence[str]) -> dict[str, str] | None:
     if not pairs:
         return None
     roles: dict[str, str] = {}
     for pair in pairs:
         role, sep, header = pair.partition("=")
-        if not sep or role not in ROLES:
-            raise CommandError(f"--column takes ROLE=HEADER with ROLE one of {', '.join(ROLES)}; got {pair!r}.")
+        if not sep or role not in allowed:
+            raise CommandError(f"--column takes ROLE=HEADER with ROLE one of {', '.join(allowed)}; got {pair!r}.")
         roles[role] = header
     return roles
 
@@ -171,6 +175,14 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
+    if args.measure == "rate":
+        from app.analysis.rates import rate_summary
+
+        if args.by or args.model != "linear":
+            raise CommandError("--measure rate fits the straight Poisson trend only; drop --by and --model.")
+        payload = rate_summary(store, inp)
+        _emit(args, payload, lambda p: f"{p['sentence']}\n{p['caution']}")
+        return 0
     payload = fit_summary(store, inp, model=args.model, by_sector=args.by == "sector", spline_df=args.spline_df,
                           quasi=args.quasi)
     _emit(args, payload, lambda p: p["sentence"])
@@ -183,6 +195,31 @@ def cmd_run_export(args: argparse.Namespace) -> int:
     pack = write_pack(_store(args), args.run_id, Path(args.out), records=args.records)
     _emit(args, {"run": pack.run_id, "out": args.out, "sha256": pack.sha256, "files": list(pack.files)},
           lambda p: f"Wrote {p['out']} (run {p['run']}, sha256 {p['sha256']}): {', '.join(p['files'])}")
+    return 0
+
+
+def cmd_universe_import(args: argparse.Namespace) -> int:
+    from app.intake.universe import import_universe
+
+    path = Path(args.file)
+    if not path.is_file():
+        raise CommandError(f"No file at {path}.")
+    roles = _parse_pairs(args.column, ("firm_id", "year", "first_year", "last_year"))
+    report = import_universe(_store(args), args.roster, path.read_bytes(), path.name, roles=roles,
+                             sheet=args.sheet, encoding=args.encoding)
+    _emit(args, report.as_dict(), lambda p: (
+        f"Imported universe {p['universe']} ({p['shape'].replace('_', '-')} rows): {p['firms']} firms, "
+        f"{p['firm_years']} firm-years, {p['years'][0]}-{p['years'][1]}; {p['rejected']} rows rejected."))
+    return 0
+
+
+def cmd_universe_derive(args: argparse.Namespace) -> int:
+    from app.intake.universe import derive_universe
+
+    report = derive_universe(_store(args), args.roster)
+    _emit(args, report.as_dict(), lambda p: (
+        f"Derived universe {p['universe']} from the roster (an approximation): {p['firms']} firms, "
+        f"{p['firm_years']} firm-years, {p['years'][0]}-{p['years'][1]}."))
     return 0
 
 
@@ -276,6 +313,23 @@ def build_parser() -> argparse.ArgumentParser:
     common(q, json_flag=False)
     q.set_defaults(func=cmd_mapping_export)
 
+    p = sub.add_parser("universe", help="import or derive the universe of firm-years behind rates")
+    usub = p.add_subparsers(dest="universe_command", required=True)
+    q = usub.add_parser("import", help="store a CSV/XLSX of firm-years (firm_id, year) or spans "
+                                       "(firm_id, first_year, last_year) for a roster")
+    q.add_argument("file")
+    q.add_argument("--roster", required=True)
+    q.add_argument("--column", action="append", metavar="ROLE=HEADER",
+                   help="set a column role explicitly (firm_id, year, first_year, last_year)")
+    q.add_argument("--sheet", help="XLSX sheet (default: the first)")
+    q.add_argument("--encoding", help="text encoding (default: detect)")
+    common(q)
+    q.set_defaults(func=cmd_universe_import)
+    q = usub.add_parser("derive", help="approximate the universe from the roster (first to last year per firm)")
+    q.add_argument("--roster", required=True)
+    common(q)
+    q.set_defaults(func=cmd_universe_derive)
+
     p = sub.add_parser("coverage", help="departures per year and the suggested window")
     p.add_argument("--roster", required=True)
     p.add_argument("--mapping")
@@ -293,6 +347,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="degrees of freedom of the spline in the bend test (--model spline; default 3)")
     p.add_argument("--quasi", action="store_true",
                    help="also give quasi-binomial intervals whatever the dispersion (given anyway above 1.5)")
+    p.add_argument("--measure", choices=["share", "rate"], default="share",
+                   help="share: forced share of departures (default); rate: turnover per 100 firm-years "
+                        "over the roster's universe")
     common(p)
     p.set_defaults(func=cmd_fit)
 

@@ -2,8 +2,8 @@
 
 SQLAlchemy 2.0 Core over SQLite by default (any SQLAlchemy URL works). Methods return frozen dataclasses or
 pandas DataFrames, never live ORM objects. The gateway is split by aggregate: ``rosters`` (rosters and
-their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), on top of ``engine``
-(connections and migrations) and ``tables`` (the schema).
+their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), ``universe`` (firm-years
+per roster), on top of ``engine`` (connections and migrations) and ``tables`` (the schema).
 """
 
 from __future__ import annotations
@@ -17,17 +17,19 @@ from app.store.records import (
     RosterSettings,
     Run,
     StoreError,
+    Universe,
     now_iso,
 )
 from app.store.rosters import RosterQueries
 from app.store.runs import RunQueries
 from app.store.tables import DEPARTURE_FIELDS, MIGRATIONS, SCHEMA_VERSION, departures, metadata
+from app.store.universe import UniverseQueries
 
 __all__ = [
     "DEPARTURE_FIELDS", "MAX_ID", "MIGRATIONS", "SCHEMA_VERSION", "MappingVersion", "RejectedRow", "Roster",
-    "RosterSettings", "Run", "Store", "StoreError", "departures", "metadata", "now_iso",
+    "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata", "now_iso",
 ]
 
 
-class Store(RosterQueries, MappingQueries, RunQueries):
+class Store(RosterQueries, MappingQueries, RunQueries, UniverseQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""

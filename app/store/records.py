@@ -82,3 +82,27 @@ class Run:
     result: dict[str, Any] | None
     error: str | None
     seconds: float | None
+
+
+@dataclass(frozen=True)
+class Universe:
+    """One stored universe of firm-years for a roster (imported from a file or derived from the roster)."""
+
+    id: int
+    roster_id: int
+    source: str  # "file" or "derived"
+    source_name: str
+    sha256: str
+    fingerprint: str
+    imported_at: str
+    shape: str  # "firm_years" or "spans"
+    rows_total: int
+    rejected: int
+    firms: int
+    firm_years: int
+    columns: dict[str, str]
+
+    @property
+    def approximate(self) -> bool:
+        """Derived from the roster's own years rather than from an index membership file."""
+        return self.source == "derived"

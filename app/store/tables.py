@@ -141,6 +141,42 @@ run_replicates = Table(
     UniqueConstraint("run_id", "seq"),
 )
 
+# A universe: which firms were in the index in which fiscal years (the denominator of a rate). Each import
+# (or derivation from the roster) is a new universe with a new id; a roster's current one is its latest.
+universes = Table(
+    "universes", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("source", String, nullable=False),  # "file" or "derived" (an approximation from the roster)
+    Column("source_name", String, nullable=False),
+    Column("sha256", String(64), nullable=False),
+    Column("fingerprint", String, nullable=False),  # sha256 of the sorted firm-years
+    Column("imported_at", String, nullable=False),
+    Column("shape", String, nullable=False),  # "firm_years" or "spans"
+    Column("rows_total", Integer, nullable=False),
+    Column("rejected", Integer, nullable=False),
+    Column("firms", Integer, nullable=False),
+    Column("firm_years", Integer, nullable=False),
+    Column("columns", Text, nullable=False),  # JSON: role -> header used
+)
+
+universe_firm_years = Table(
+    "universe_firm_years", metadata,
+    Column("universe_id", Integer, ForeignKey("universes.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("firm_id", String, nullable=False),
+    Column("year", Integer, nullable=False),
+    UniqueConstraint("universe_id", "firm_id", "year"),
+)
+
+universe_rejected = Table(
+    "universe_rejected", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("universe_id", Integer, ForeignKey("universes.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("line", Integer, nullable=False),
+    Column("raw", Text, nullable=False),
+    Column("reason", Text, nullable=False),
+)
+
 #: ordered schema migrations; index i+1 is the version after applying MIGRATIONS[i].
 #: Version 1 is the ``metadata.create_all`` above; later changes append SQL here.
 MIGRATIONS: list[str] = [
@@ -148,5 +184,19 @@ MIGRATIONS: list[str] = [
     "ALTER TABLE departures ADD COLUMN reason_raw VARCHAR",
     # 3: rows stored before version 2 were imported spelling by spelling, so the raw spelling is the code
     "UPDATE departures SET reason_raw = reason WHERE reason_raw IS NULL",
+    # 4-9: universes of firm-years
+    "CREATE TABLE IF NOT EXISTS universes (id INTEGER NOT NULL PRIMARY KEY, roster_id INTEGER NOT NULL "
+    "REFERENCES rosters (id) ON DELETE CASCADE, source VARCHAR NOT NULL, source_name VARCHAR NOT NULL, "
+    "sha256 VARCHAR(64) NOT NULL, fingerprint VARCHAR NOT NULL, imported_at VARCHAR NOT NULL, "
+    "shape VARCHAR NOT NULL, rows_total INTEGER NOT NULL, rejected INTEGER NOT NULL, firms INTEGER NOT NULL, "
+    "firm_years INTEGER NOT NULL, columns TEXT NOT NULL)",
+    "CREATE INDEX IF NOT EXISTS ix_universes_roster_id ON universes (roster_id)",
+    "CREATE TABLE IF NOT EXISTS universe_firm_years (universe_id INTEGER NOT NULL REFERENCES universes (id) "
+    "ON DELETE CASCADE, firm_id VARCHAR NOT NULL, year INTEGER NOT NULL, UNIQUE (universe_id, firm_id, year))",
+    "CREATE INDEX IF NOT EXISTS ix_universe_firm_years_universe_id ON universe_firm_years (universe_id)",
+    "CREATE TABLE IF NOT EXISTS universe_rejected (id INTEGER NOT NULL PRIMARY KEY, universe_id INTEGER NOT "
+    "NULL REFERENCES universes (id) ON DELETE CASCADE, line INTEGER NOT NULL, raw TEXT NOT NULL, "
+    "reason TEXT NOT NULL)",
+    "CREATE INDEX IF NOT EXISTS ix_universe_rejected_universe_id ON universe_rejected (universe_id)",
 ]
 SCHEMA_VERSION = 1 + len(MIGRATIONS)

@@ -14,7 +14,7 @@ from starlette.exceptions import HTTPException
 from app import __version__
 from app.config import Settings
 from app.store import Store
-from app.web import briefing, coverage, reasons, resampling, rosters, sectors, trend
+from app.web import briefing, coverage, reasons, resampling, rosters, sectors, trend, universe
 from app.web.deps import BadRequest, NotFound
 from app.web.rendering import STATIC_DIR, render, templates
 from app.web.schemas import HealthBody
@@ -28,6 +28,7 @@ NAV_PAGES: list[tuple[str, str]] = [
     ("sectors_page", "Sectors"),
     ("robustness_page", "Robustness"),
     ("briefing_page", "Briefing"),
+    ("universe_page", "Universe"),
 ]
 
 
@@ -89,7 +90,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     def health() -> dict[str, object]:
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (rosters, reasons, coverage, trend, resampling, sectors, briefing):
+    for module in (rosters, reasons, coverage, trend, resampling, sectors, briefing, universe):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)

@@ -10,6 +10,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
 
 from app.analysis.inputs import AnalysisInput, load_input
+from app.analysis.rates import RatesSection, rates_section
 from app.briefing.findings import coverage_finding
 from app.stats.coverage import WindowSuggestion, YearFlag
 from app.store import Roster, Store, StoreError
@@ -37,6 +38,8 @@ class CoveragePage:
     threshold: float
     warnings: list[str]
     figure: FigureSpec = field(metadata={"json_skip": True})
+    #: turnover per 100 firm-years over the roster's universe (no trend here; Trend fits it)
+    rates: RatesSection | None = None
 
 
 CoverageBody = define(CoveragePage, "CoverageBody", fields={"table": list_of(CoverageYear)})
@@ -47,15 +50,15 @@ def coverage_data(store: Store, roster_id: int, *, threshold: float = 0.5) -> Co
         inp = load_input(store, roster_id, require_mapping=False, threshold=threshold)
     except StoreError as exc:
         raise NotFound(str(exc)) from exc
-    return _page(inp, threshold)
+    return _page(inp, threshold, rates_section(store, inp, fit=False))
 
 
-def _page(inp: AnalysisInput, threshold: float) -> CoveragePage:
+def _page(inp: AnalysisInput, threshold: float, rates: RatesSection | None = None) -> CoveragePage:
     fig = coverage_finding(inp).figure
     return CoveragePage(
         roster=inp.roster, mapping_label=inp.mapping_label, table=inp.coverage, suggestion=inp.suggestion,
         flags=inp.flags, window=inp.window, window_source=inp.window_source, threshold=threshold,
-        warnings=inp.warnings(), figure=figure_spec(fig),
+        warnings=inp.warnings(), figure=figure_spec(fig), rates=rates,
     )
 
 

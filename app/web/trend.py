@@ -9,6 +9,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
 from app.analysis.inputs import load_input
+from app.analysis.rates import RatesSection, rates_section
 from app.analysis.runs import run_trend
 from app.briefing.findings import trend_finding_from_fit
 from app.stats.trend import SPLINE_DFS, TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
@@ -42,6 +43,8 @@ class TrendPage:
     table: list[dict[str, Any]] = field(default_factory=list)
     quasi: bool = False
     spline_dfs: tuple[int, ...] = SPLINE_DFS
+    #: forced and voluntary turnover per 100 firm-years and their Poisson trends (None without a mapping)
+    rates: RatesSection | None = None
 
 
 TrendBody = define(TrendPage, "TrendBody", fields={"fit": TrendFitSummary | None, "table": list_of(OddsRow)},
@@ -85,23 +88,24 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
     except StoreError as exc:
         return _empty(store, roster, model, spline_df, str(exc))
     runs = _trend_runs(store, roster.id)
+    rates = rates_section(store, inp, fit=True)
     try:
         outcome = run_trend(store, inp, model=model, spline_df=spline_df, quasi=quasi)
     except TrendError as exc:
         return TrendPage(roster, inp.mapping_label, inp.window, inp.window_source, model, spline_df, None, None,
-                         str(exc), inp.warnings(), None, runs, quasi=quasi)
+                         str(exc), inp.warnings(), None, runs, quasi=quasi, rates=rates)
     fit = outcome.fit
     fig = trend_finding_from_fit(inp, fit, model).figure
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
-        figure=figure_spec(fig, titled=False), table=_odds_table(fit), quasi=quasi,
+        figure=figure_spec(fig, titled=False), table=_odds_table(fit), quasi=quasi, rates=rates,
     )
 
 
 def _trend_runs(store: Store, roster_id: int) -> list[Run]:
-    return [r for r in store.list_runs(roster_id, "fit") if r.params.get("model") != "by_sector"][:10]
+    return [r for r in store.list_runs(roster_id, "fit") if r.params.get("model") not in ("by_sector", "rate")][:10]
 
 
 def _empty(store: Store, roster: Roster, model: str, spline_df: int, error: str) -> TrendPage:

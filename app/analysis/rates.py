@@ -1,0 +1,238 @@
+"""Turnover rates per 100 firm-years over a roster's universe, their Poisson trends and the decomposition.
+
+Joins the roster (through its mapping and window), its current universe of firm-years and ``app.stats.rates``;
+records each rate fit as a run whose parameters name the universe and its fingerprint.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import time
+from dataclasses import dataclass
+from typing import Any
+
+import pandas as pd
+
+from app.analysis.inputs import AnalysisInput
+from app.analysis.runs import _record_run
+from app.stats.cells import build_cells
+from app.stats.rate_trend import (
+    RateError,
+    RateTrend,
+    decomposition_sentence,
+    fit_rate_trend,
+    rate_trend_to_dict,
+)
+from app.stats.rates import RateTable, count_rates
+from app.stats.trend import TrendError, fit_trend, json_interval, json_number
+from app.store import Store, StoreError, Universe
+
+__all__ = ["SHARE_VS_RATE", "RateAnalysis", "RatesSection", "UniverseFlags", "rate_summary", "rates_section",
+           "run_rates", "universe_flags",
+           "universe_or_error"]
+
+#: shown wherever a rate appears (pages, command output)
+SHARE_VS_RATE = ("Share vs rate: the forced share (forced / counted departures) can rise while the forced rate "
+                 "per firm-year stays flat, if voluntary exits fall, and fall while it stays flat, if voluntary "
+                 "exits rise; read the share and the two rates together.")
+APPROXIMATE = ("This universe was derived from the roster (first to last year each firm appears), an "
+               "approximation: firms with no rows and years before a firm's first row are missing, so rates "
+               "are overstated where that matters.")
+
+
+@dataclass(frozen=True)
+class UniverseFlags:
+    """What does not line up between a roster and its universe.
+
+    ``missing_firms``: roster firms with a counted (forced or voluntary) departure that never appear in the
+    universe (first 20 listed, ``missing_count`` in all). ``empty_years``: universe years with no roster
+    record at all (a gap in the roster, or truly no turnover).
+    """
+
+    missing_firms: tuple[str, ...]
+    missing_count: int
+    empty_years: tuple[int, ...]
+
+    def messages(self) -> list[str]:
+        out = []
+        if self.missing_count:
+            shown = ", ".join(self.missing_firms[:5]) + (", ..." if self.missing_count > 5 else "")
+            out.append(f"{self.missing_count:,} roster firm(s) with counted departures are not in the universe "
+                       f"({shown}); their departures are left out of the rates.")
+        if self.empty_years:
+            out.append(f"{len(self.empty_years)} universe year(s) have no roster rows at all "
+                       f"({', '.join(map(str, self.empty_years[:10]))}{', ...' if len(self.empty_years) > 10 else ''})"
+                       "; check that the roster covers them before reading a rate of zero.")
+        return out
+
+
+def universe_flags(records: pd.DataFrame, firm_years: pd.DataFrame) -> UniverseFlags:
+    """Compare a roster's records (with ``category``) with a universe's firm-years."""
+    counted = records.loc[records["category"].isin(["forced", "voluntary"]), "firm_id"].astype(str)
+    missing = sorted(set(counted) - set(firm_years["firm_id"].astype(str)))
+    empty = sorted(set(firm_years["year"].astype(int)) - set(records["year"].astype(int)))
+    return UniverseFlags(tuple(missing[:20]), len(missing), tuple(int(y) for y in empty))
+
+
+def universe_or_error(store: Store, roster_id: int, roster_name: str) -> Universe:
+    universe = store.current_universe(roster_id)
+    if universe is None:
+        raise StoreError(f"Roster {roster_name!r} has no universe of firm-years yet; import one with "
+                         "`helmshift universe import FILE --roster ROSTER` or on the roster's Universe page "
+                         "(where it can also be derived from the roster, as an approximation).")
+    return universe
+
+
+@dataclass(frozen=True)
+class RateAnalysis:
+    """Rates per year, both Poisson trends, the share's direction and the sentence that joins them."""
+
+    universe: Universe
+    table: RateTable
+    forced: RateTrend | None
+    voluntary: RateTrend | None
+    share_odds_ratio: float | None
+    share_interval: tuple[float, float] | None
+    sentence: str | None
+    error: str | None
+    flags: UniverseFlags
+    messages: tuple[str, ...]
+    run_id: int | None
+
+    def years(self) -> list[dict[str, Any]]:
+        """Per-year rows with the interval of the forced rate (JSON-ready)."""
+        out = []
+        for r in self.table.years.to_dict("records"):
+            out.append({
+                "year": int(r["year"]), "firm_years": int(r["firm_years"]), "forced": int(r["forced"]),
+                "voluntary": int(r["voluntary"]), "forced_rate_per_100": float(r["forced_rate_per_100"]),
+                "interval": [float(r["forced_low"]), float(r["forced_high"])],
+                "voluntary_rate_per_100": float(r["voluntary_rate_per_100"]),
+                "voluntary_interval": [float(r["voluntary_low"]), float(r["voluntary_high"])],
+            })
+        return out
+
+
+def _inside_universe(records: pd.DataFrame, firm_years: pd.DataFrame) -> pd.DataFrame:
+    keys = pd.MultiIndex.from_frame(firm_years[["firm_id", "year"]].astype({"firm_id": str, "year": "int64"}))
+    mine = pd.MultiIndex.from_arrays([records["firm_id"].astype(str), records["year"].astype("int64")])
+    return records.loc[mine.isin(keys)]
+
+
+def run_rates(store: Store, inp: AnalysisInput, *, record: bool = True) -> RateAnalysis:
+    """Rates and trends over the window with the roster's current universe; recorded as a run when fitted.
+
+    Raises ``StoreError`` when the roster has no universe yet.
+    """
+    started = time.perf_counter()
+    universe = universe_or_error(store, inp.roster.id, inp.roster.name)
+    firm_years = store.universe_firm_years(universe.id)
+    table = count_rates(inp.records, firm_years, inp.window)
+    flags = universe_flags(inp.in_window(), firm_years.loc[firm_years["year"].between(*inp.window)])
+    messages = flags.messages()
+    if universe.approximate:
+        messages.insert(0, APPROXIMATE)
+    if table.outside:
+        messages.append(f"{table.outside:,} counted departure(s) in the window fall outside the universe's "
+                        "firm-years and are left out of the rates.")
+    if table.no_universe_years:
+        messages.append("The universe has no firm-years in " + ", ".join(map(str, table.no_universe_years))
+                        + "; those years have no rate.")
+    try:
+        forced, voluntary = fit_rate_trend(table, "forced"), fit_rate_trend(table, "voluntary")
+    except RateError as exc:
+        return RateAnalysis(universe, table, None, None, None, None, None, str(exc), flags, tuple(messages), None)
+    share_or: float | None = None
+    share_interval: tuple[float, float] | None = None
+    try:
+        share = fit_trend(build_cells(_inside_universe(inp.records, firm_years), inp.window))
+        share_or = share.odds_ratio
+        bounds = share.quasi.conf_int["profile"] if share.quasi is not None else share.conf_int["profile"]
+        share_interval = bounds
+    except TrendError as exc:
+        messages.append(f"The forced share's trend could not be fitted ({exc}); the sentence reads it as flat.")
+    sentence = decomposition_sentence(share_interval, forced, voluntary)
+    messages += list(forced.messages) + list(voluntary.messages)
+    run_id = None
+    if record:
+        params = {"model": "rate", "universe_id": universe.id, "universe_fingerprint": universe.fingerprint,
+                  "universe_source": universe.source}
+        fingerprint = hashlib.sha256(table.years.to_csv(index=False).encode()).hexdigest()[:16]
+        result = {"measure": "rate", "rate_ratio": forced.rate_ratio, "forced": rate_trend_to_dict(forced),
+                  "voluntary": rate_trend_to_dict(voluntary), "share_odds_ratio": json_number(share_or),
+                  "sentence": sentence, "universe_fingerprint": universe.fingerprint}
+        run_id = _record_run(store, inp, params, fingerprint, result, time.perf_counter() - started)
+    return RateAnalysis(universe, table, forced, voluntary, share_or, share_interval, sentence, None, flags,
+                        tuple(dict.fromkeys(messages)), run_id)
+
+
+def rate_summary(store: Store, inp: AnalysisInput) -> dict[str, Any]:
+    """The command line's ``fit --measure rate --json`` object."""
+    a = run_rates(store, inp)
+    if a.error is not None or a.forced is None or a.voluntary is None:
+        raise RateError(a.error or "The rate trend could not be fitted.")
+    u = a.universe
+    return {
+        "measure": "rate", "roster": inp.roster.name, "mapping": inp.mapping_label, "window": list(inp.window),
+        "rate_ratio": json_number(a.forced.rate_ratio),
+        "conf_int": {k: json_interval(v) for k, v in a.forced.conf_int.items()},
+        "quasi": rate_trend_to_dict(a.forced)["quasi"], "dispersion": json_number(a.forced.dispersion),
+        "voluntary_rate_ratio": json_number(a.voluntary.rate_ratio),
+        "voluntary_conf_int": {k: json_interval(v) for k, v in a.voluntary.conf_int.items()},
+        "share_odds_ratio": json_number(a.share_odds_ratio), "share_conf_int": json_interval(a.share_interval),
+        "firm_years": a.table.firm_years, "forced": a.forced.events, "voluntary": a.voluntary.events,
+        "years": a.years(), "sentence": a.sentence, "run": a.run_id,
+        "universe": {"id": u.id, "source": u.source, "approximate": u.approximate, "fingerprint": u.fingerprint,
+                     "firms": u.firms, "firm_years": u.firm_years},
+        "caution": SHARE_VS_RATE, "messages": list(a.messages),
+    }
+
+
+@dataclass(frozen=True)
+class RatesSection:
+    """The Rates section of Coverage (table only) and Trend (table and both trends), as plain values.
+
+    ``error`` says why there is nothing to show (no universe yet, or no trend could be fitted).
+    """
+
+    universe_id: int | None
+    universe_label: str | None
+    approximate: bool
+    firm_years: int
+    years: list[dict[str, Any]]
+    forced: dict[str, Any] | None
+    voluntary: dict[str, Any] | None
+    sentence: str | None
+    error: str | None
+    messages: list[str]
+    caution: str = SHARE_VS_RATE
+
+
+def _label(u: Universe) -> str:
+    kind = "derived from the roster (approximation)" if u.approximate else f"imported from {u.source_name}"
+    return f"universe {u.id}, {kind}: {u.firms:,} firms, {u.firm_years:,} firm-years [{u.fingerprint}]"
+
+
+def rates_section(store: Store, inp: AnalysisInput, *, fit: bool) -> RatesSection:
+    """Rates per year over the roster's current universe; with ``fit``, both Poisson trends (recorded)."""
+    universe = store.current_universe(inp.roster.id)
+    if universe is None:
+        return RatesSection(None, None, False, 0, [], None, None, None,
+                            "No universe of firm-years yet: import one (or derive one) on the Universe page to "
+                            "see turnover rates per 100 firm-years.", [])
+    if fit:
+        a = run_rates(store, inp)
+        return RatesSection(
+            universe.id, _label(universe), universe.approximate, a.table.firm_years, a.years(),
+            rate_trend_to_dict(a.forced) if a.forced else None,
+            rate_trend_to_dict(a.voluntary) if a.voluntary else None, a.sentence, a.error, list(a.messages))
+    firm_years = store.universe_firm_years(universe.id)
+    table = count_rates(inp.records, firm_years, inp.window)
+    flags = universe_flags(inp.in_window(), firm_years.loc[firm_years["year"].between(*inp.window)])
+    view = RateAnalysis(universe, table, None, None, None, None, None, None, flags, (), None)
+    messages = ([APPROXIMATE] if universe.approximate else []) + flags.messages()
+    if table.outside:
+        messages.append(f"{table.outside:,} counted departure(s) in the window fall outside the universe's "
+                        "firm-years and are left out of the rates.")
+    return RatesSection(universe.id, _label(universe), universe.approximate, table.firm_years, view.years(),
+                        None, None, None, None, messages)
