@@ -2,12 +2,14 @@
 
 SQLAlchemy 2.0 Core over SQLite by default (any SQLAlchemy URL works). Methods return frozen dataclasses or
 pandas DataFrames, never live ORM objects. The gateway is split by aggregate: ``rosters`` (rosters and
-their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), on top of ``engine``
+their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), ``cells`` (the
+counts pages read instead of the records), on top of ``engine``
 (connections and migrations) and ``tables`` (the schema).
 """
 
 from __future__ import annotations
 
+from app.store.cells import CellQueries
 from app.store.mappings import MappingQueries
 from app.store.records import (
     MAX_ID,
@@ -29,5 +31,5 @@ __all__ = [
 ]
 
 
-class Store(RosterQueries, MappingQueries, RunQueries):
+class Store(RosterQueries, MappingQueries, RunQueries, CellQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""
