@@ -70,8 +70,9 @@ def briefing_data(store: Store, roster_id: int, *, chosen: list[str], run_id: in
     if run_id is None:
         latest = latest_bootstrap(store, inp)
         run_id = latest.id if latest else None
-    # findings read the stored bootstrap runs (the chosen one, and robustness every finished one)
-    state = tuple((r.id, r.status, r.finished_at, r.progress_done) for r in store.list_runs(roster.id, "bootstrap"))
+    # findings read finished bootstrap runs only (the chosen one; robustness every one): a run in progress
+    # must not invalidate the memo at every chunk
+    state = tuple((r.id, r.finished_at, r.progress_done) for r in runs)
     items = [page_memo(store, ("briefing", *inp.key, name, run_id, state),
                        lambda name=name: _preview(store, inp, name, run_id)) for name in chosen]  # type: ignore[misc]
     return BriefingPage(roster, inp.mapping_label, inp.window, chosen, run_id, runs, items, ok, message,

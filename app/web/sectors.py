@@ -88,7 +88,8 @@ def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: lis
         if not extra:
             extra = [f"{n}:{v}" for n, v in names if not (inp.mapping and n == inp.mapping.name)]
         # the variants read stored bootstrap runs: their state is part of the key
-        runs = tuple((r.id, r.status, r.finished_at, r.progress_done) for r in store.list_runs(roster.id, "bootstrap"))
+        runs = tuple((r.id, r.finished_at, r.progress_done) for r in store.list_runs(roster.id, "bootstrap")
+                     if r.status == "done")
         key = (*inp.key, tuple(extra), tuple(vary), runs)
         result = page_memo(store, ("robustness", *key),
                            lambda: check_robustness(store, inp, extra_mappings=extra, vary=vary))
