@@ -6,15 +6,24 @@ commands call these functions rather than either layer directly.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-from typing import Literal
+from dataclasses import dataclass, field, replace
+from functools import cached_property
+from typing import Any, Literal
 
 import pandas as pd
 
-from app.stats.cells import Cells, assign_categories, build_cells
-from app.stats.coverage import WindowSuggestion, YearFlag, coverage_table, flag_years, suggest_window
+from app.analysis.cellstore import (
+    categorised_counts,
+    cells_from_counts,
+    coverage_from_counts,
+    mapping_key,
+    memoised,
+    roster_fingerprint,
+    unmapped_codes,
+)
+from app.stats.cells import Cells, assign_categories
+from app.stats.coverage import WindowSuggestion, YearFlag, flag_years, suggest_window
 from app.store import MappingVersion, Roster, Run, Store, StoreError
-from app.types import UNMAPPED
 
 WindowSource = Literal["given", "chosen", "suggested"]
 
@@ -23,35 +32,58 @@ WindowSource = Literal["given", "chosen", "suggested"]
 class AnalysisInput:
     """A roster read through one mapping version and one window: everything a model needs.
 
-    ``records`` holds every accepted departure with its ``category`` (forced, voluntary, excluded or
-    unmapped); models use only forced and voluntary departures inside ``window``.
+    ``counts`` holds the roster's departures counted by (year, sector, reason) with each code's
+    ``category`` (forced, voluntary, excluded or unmapped), from the cell store; models use only forced
+    and voluntary departures inside ``window``. ``records`` (every departure, one row each) is read from
+    the store only when asked for; no page asks on a normal request.
     """
 
     roster: Roster
     mapping: MappingVersion | None
-    records: pd.DataFrame = field(repr=False)
+    counts: pd.DataFrame = field(repr=False)
     window: tuple[int, int]
     window_source: WindowSource
     coverage: pd.DataFrame = field(repr=False)
     suggestion: WindowSuggestion
     flags: list[YearFlag]
+    store: Store = field(repr=False, compare=False)
 
     @property
     def mapping_label(self) -> str:
         return f"{self.mapping.name} v{self.mapping.version}" if self.mapping else "no mapping"
 
+    @property
+    def key(self) -> tuple[Any, ...]:
+        """What this input's values depend on: roster version, mapping version and window (memo keys)."""
+        return (self.roster.id, roster_fingerprint(self.roster), mapping_key(self.mapping), self.window)
+
+    @cached_property
+    def records(self) -> pd.DataFrame:
+        """Every accepted departure with its ``category`` (a full read of the roster: jobs and exports only)."""
+        records = self.store.departures(self.roster.id)
+        records["category"] = assign_categories(records["reason"],
+                                                self.mapping.categories if self.mapping else {})
+        return records
+
     def in_window(self) -> pd.DataFrame:
+        """The records inside the window (reads the whole roster; pages use ``counts`` instead)."""
         years = self.records["year"]
         return self.records.loc[(years >= self.window[0]) & (years <= self.window[1])]
 
     def unmapped_codes(self) -> pd.DataFrame:
         """Codes without a category that occur inside the window, with their counts, most common first."""
-        inside = self.in_window()
-        counts = inside.loc[inside["category"] == UNMAPPED, "reason"].value_counts()
-        return pd.DataFrame({"code": counts.index.astype(str), "count": counts.to_numpy()})
+        return unmapped_codes(self.counts, self.window)
+
+    def group_cells(self, *, by_sector: bool = False) -> Cells:
+        """The group counts of the window, without the firm matrix: for fits and fingerprints (memoised)."""
+        cells = memoised(self.store, ("cells", *self.key, by_sector), lambda: cells_from_counts(self.counts, self.window, by_sector=by_sector))
+        return replace(cells, groups=cells.groups.copy())
 
     def cells(self, *, by_sector: bool = False) -> Cells:
-        return build_cells(self.records, self.window, by_sector=by_sector)
+        """The group counts and the firm x cell matrix (reads the firm counts: for bootstrap jobs)."""
+        firms = self.store.firm_cell_counts(self.roster.id)
+        return cells_from_counts(firms, self.window, by_sector=by_sector,
+                                 categories=self.mapping.categories if self.mapping else {})
 
     def warnings(self) -> list[str]:
         notes: list[str] = []
@@ -100,15 +132,14 @@ def load_input(
             f"Roster {roster.name!r} has no reason-code mapping yet; confirm the suggested categories on "
             "the Reason codes page or run `helmshift mapping import`."
         )
-    records = store.departures(roster.id)
-    if records.empty:
+    counts = categorised_counts(store, roster, version)
+    if counts.empty:
         raise StoreError(f"Roster {roster.name!r} has no accepted departures.")
-    records["category"] = assign_categories(records["reason"], version.categories if version else {})
-    table = coverage_table(records["year"], records["category"])
-    suggestion = suggest_window(table, threshold=threshold)
+    key = ("coverage", roster.id, roster_fingerprint(roster), mapping_key(version), threshold)
+    table, suggestion, flags = memoised(store, key, lambda: _coverage(counts, threshold))
     source: WindowSource
     if window is not None:
-        first, last = int(records["year"].min()), int(records["year"].max())
+        first, last = int(counts["year"].min()), int(counts["year"].max())
         if window[0] > last or window[1] < first:
             raise StoreError(f"The window {window[0]}-{window[1]} lies outside the roster's years {first}-{last}.")
         source = "given"
@@ -116,8 +147,13 @@ def load_input(
         window, source = settings.window, "chosen"
     else:
         window, source = suggestion.window, "suggested"
-    return AnalysisInput(roster, version, records, window, source, table, suggestion,
-                         flag_years(table, threshold=threshold))
+    return AnalysisInput(roster, version, counts.copy(), window, source, table.copy(), suggestion, list(flags),
+                         store)
+
+
+def _coverage(counts: pd.DataFrame, threshold: float) -> tuple[pd.DataFrame, WindowSuggestion, list[YearFlag]]:
+    table = coverage_from_counts(counts)
+    return table, suggest_window(table, threshold=threshold), flag_years(table, threshold=threshold)
 
 
 def input_for_run(store: Store, run: Run) -> AnalysisInput:

@@ -45,7 +45,7 @@ def bootstrap_params(*, unit: str, resamples: int, seed: int, model: str = "line
 
 def create_bootstrap_run(store: Store, inp: AnalysisInput, params: dict[str, Any]) -> int:
     """Store a queued run with everything needed to reproduce it; return its id."""
-    cells = inp.cells(by_sector=params["model"] == "sector")
+    cells = inp.group_cells(by_sector=params["model"] == "sector")
     return store.create_run(
         kind="bootstrap", roster_id=inp.roster.id, params=params, fingerprint=cells.fingerprint(),
         mapping_name=inp.mapping.name if inp.mapping else None,

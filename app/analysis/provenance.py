@@ -101,7 +101,7 @@ def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method
     cats = inp.mapping.categories if inp.mapping else {}
     grouped = tuple((c, tuple(sorted(code for code, cat in cats.items() if cat == c))) for c in CATEGORIES)
     return Provenance(
-        roster=inp.roster.name, roster_fingerprint=inp.cells(by_sector=by_sector).fingerprint(),
+        roster=inp.roster.name, roster_fingerprint=inp.group_cells(by_sector=by_sector).fingerprint(),
         mapping_name=inp.mapping.name if inp.mapping else "none",
         mapping_version=inp.mapping.version if inp.mapping else 0, window=inp.window,
         model=MODEL_LABELS.get(model, model), interval_method=interval_method, resamples=resamples,

@@ -14,10 +14,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from app.analysis.cellstore import cells_from_counts, memoised
 from app.analysis.inputs import AnalysisInput, parse_mapping_ref
 from app.intake.reasons import diff_mappings, suggest_categories
-from app.stats.cells import assign_categories, build_cells
-from app.stats.trend import TrendError, fit_trend
+from app.stats.trend import TrendError, TrendFit, fit_trend
 from app.store import Store
 from app.types import CATEGORIES
 
@@ -73,13 +73,18 @@ def _bootstrap_interval(store: Store, inp: AnalysisInput, name: str, version: in
 
 def _fit_variant(inp: AnalysisInput, categories: Mapping[str, str], label: str, kind: str,
                  changes: tuple[str, ...], boot: tuple[tuple[float, float] | None, str]) -> Variant:
-    records = inp.records.assign(category=assign_categories(inp.records["reason"], categories))
-    cells = build_cells(records, inp.window)
-    departures, forced = int(cells.totals.sum()), int(cells.forced.sum())
-    try:
-        fit = fit_trend(cells, "linear")
-    except TrendError as exc:
-        return Variant(label, kind, changes, departures, forced, None, None, None, None, boot[1], str(exc))
+    def fit_variant() -> tuple[int, int, TrendFit | str]:
+        cells = cells_from_counts(inp.counts, inp.window, categories=categories)
+        try:
+            return int(cells.totals.sum()), int(cells.forced.sum()), fit_trend(cells, "linear")
+        except TrendError as exc:
+            return int(cells.totals.sum()), int(cells.forced.sum()), str(exc)
+
+    # the same reading of the codes on the same counts and window gives the same fit: memoised
+    departures, forced, fit = memoised(inp.store, ("variant", *inp.key, tuple(sorted(categories.items()))),
+                                       fit_variant)
+    if isinstance(fit, str):
+        return Variant(label, kind, changes, departures, forced, None, None, None, None, boot[1], fit)
     return Variant(label, kind, changes, departures, forced, fit.odds_ratio, fit.conf_int.get("wald"),
                    fit.conf_int.get("profile"), boot[0], boot[1],
                    "; ".join(fit.messages) if fit.separated else None)
@@ -103,7 +108,7 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
     if inp.mapping is None:
         raise ValueError("Robustness needs a reference mapping; choose one on the Reason codes page.")
     base: dict[str, str] = dict(inp.mapping.categories)
-    roster_codes = set(inp.records["reason"].astype(str))
+    roster_codes = set(inp.counts["reason"].astype(str))
     variants = [_fit_variant(inp, base, inp.mapping_label, "reference", ("the roster's mapping",),
                              _bootstrap_interval(store, inp, inp.mapping.name, inp.mapping.version))]
     for ref in extra_mappings or []:

@@ -6,6 +6,7 @@ import time
 from dataclasses import dataclass
 from typing import Any
 
+from app.analysis.cellstore import memoised
 from app.analysis.inputs import AnalysisInput
 from app.analysis.robustness import check_robustness, robustness_to_dict
 from app.stats.coverage import suggest_window
@@ -44,8 +45,10 @@ def run_trend(store: Store, inp: AnalysisInput, *, model: str = "linear", spline
     """Fit the trend over the window and record the run (``quasi``: quasi-binomial intervals whatever the
     dispersion)."""
     started = time.perf_counter()
-    cells = inp.cells(by_sector=model == "sector")
-    fit = fit_trend(cells, model, spline_df=spline_df, quasi=quasi)  # type: ignore[arg-type]
+    cells = inp.group_cells(by_sector=model == "sector")
+    # a fit depends only on the counts, window and options: memoised for repeated pages (the run is still recorded)
+    fit = memoised(inp.store, ("fit_trend", *inp.key, model, spline_df, quasi),
+                   lambda: fit_trend(cells, model, spline_df=spline_df, quasi=quasi))  # type: ignore[arg-type]
     params: dict[str, Any] = ({"model": model} | ({"spline_df": spline_df} if model == "spline" else {})
                               | ({"quasi": True} if quasi else {}))
     run_id = _record_run(store, inp, params, cells.fingerprint(), fit_to_dict(fit),
@@ -56,8 +59,9 @@ def run_trend(store: Store, inp: AnalysisInput, *, model: str = "linear", spline
 def run_sectors(store: Store, inp: AnalysisInput, *, min_departures: int = 20) -> tuple[SectorTrends, int]:
     """Per-sector trends, the sector-adjusted common trend and the test of equal trends; recorded."""
     started = time.perf_counter()
-    cells = inp.cells(by_sector=True)
-    result = fit_sector_trends(cells, min_departures=min_departures)
+    cells = inp.group_cells(by_sector=True)
+    result = memoised(inp.store, ("fit_sectors", *inp.key, min_departures),
+                      lambda: fit_sector_trends(cells, min_departures=min_departures))
     run_id = _record_run(store, inp, {"model": "by_sector", "min_departures": min_departures},
                          cells.fingerprint(), dict(sector_trends_to_dict(result)), time.perf_counter() - started)
     return result, run_id

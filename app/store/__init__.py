@@ -3,11 +3,13 @@
 SQLAlchemy 2.0 Core over SQLite by default (any SQLAlchemy URL works). Methods return frozen dataclasses or
 pandas DataFrames, never live ORM objects. The gateway is split by aggregate: ``rosters`` (rosters and
 their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), ``universe`` (firm-years
-per roster), on top of ``engine`` (connections and migrations) and ``tables`` (the schema).
+per roster), ``cells`` (the counts pages read instead of the records), on top of ``engine`` (connections and
+migrations) and ``tables`` (the schema).
 """
 
 from __future__ import annotations
 
+from app.store.cells import CellQueries
 from app.store.mappings import MappingQueries
 from app.store.records import (
     MAX_ID,
@@ -31,5 +33,5 @@ __all__ = [
 ]
 
 
-class Store(RosterQueries, MappingQueries, RunQueries, UniverseQueries):
+class Store(RosterQueries, MappingQueries, RunQueries, UniverseQueries, CellQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""

@@ -18,6 +18,7 @@ from sqlalchemy import (
     update,
 )
 
+from app.store.cells import fill_cells
 from app.store.engine import Gateway
 from app.store.records import (
     MAX_ID,
@@ -75,6 +76,7 @@ class RosterQueries(Gateway):
                 frame = frame.where(pd.notna(frame), None)
                 frame.insert(0, "roster_id", roster_id)
                 self._bulk_insert(conn, departures, frame)
+                fill_cells(conn, int(roster_id))
             if rejected:
                 conn.execute(
                     insert(rejected_rows),

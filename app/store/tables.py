@@ -177,8 +177,45 @@ universe_rejected = Table(
     Column("reason", Text, nullable=False),
 )
 
+# The cell store (issue 13). Counts per (year, sector, reason code) do not depend on the mapping (a mapping
+# only says which category a code counts as), so they are computed once when a roster is imported and every
+# page reads them instead of the records. ``sector`` keeps the record's value (NULL when missing).
+roster_cells = Table(
+    "roster_cells", metadata,
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("year", Integer, nullable=False),
+    Column("sector", String),
+    Column("reason", String, nullable=False),
+    Column("departures", Integer, nullable=False),
+)
+
+# The same counts per firm: what a firm bootstrap (and the roster's firm counts) needs; read by jobs, not pages.
+roster_firm_cells = Table(
+    "roster_firm_cells", metadata,
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("firm_id", String, nullable=False),
+    Column("year", Integer, nullable=False),
+    Column("sector", String),
+    Column("reason", String, nullable=False),
+    Column("departures", Integer, nullable=False),
+)
+
+#: fill both cell tables from ``departures`` for every roster that has none yet (used by the migration, by
+#: ``save_import`` for the roster it stores, and to repair a roster stored by an older version)
+FILL_ROSTER_CELLS = (
+    "INSERT INTO roster_cells (roster_id, year, sector, reason, departures) "
+    "SELECT roster_id, year, sector, reason, COUNT(*) FROM departures "
+    "WHERE roster_id NOT IN (SELECT DISTINCT roster_id FROM roster_cells) "
+    "GROUP BY roster_id, year, sector, reason"
+)
+FILL_ROSTER_FIRM_CELLS = (
+    "INSERT INTO roster_firm_cells (roster_id, firm_id, year, sector, reason, departures) "
+    "SELECT roster_id, firm_id, year, sector, reason, COUNT(*) FROM departures "
+    "WHERE roster_id NOT IN (SELECT DISTINCT roster_id FROM roster_firm_cells) "
+    "GROUP BY roster_id, firm_id, year, sector, reason"
+)
+
 #: ordered schema migrations; index i+1 is the version after applying MIGRATIONS[i].
-#: Version 1 is the ``metadata.create_all`` above; later changes append SQL here.
 MIGRATIONS: list[str] = [
     # 2: each departure keeps its raw spelling of the reason code beside the shown code (one code per spelling)
     "ALTER TABLE departures ADD COLUMN reason_raw VARCHAR",
@@ -198,5 +235,16 @@ MIGRATIONS: list[str] = [
     "NULL REFERENCES universes (id) ON DELETE CASCADE, line INTEGER NOT NULL, raw TEXT NOT NULL, "
     "reason TEXT NOT NULL)",
     "CREATE INDEX IF NOT EXISTS ix_universe_rejected_universe_id ON universe_rejected (universe_id)",
+    # 10-15: the cell store, filled for the rosters already stored
+    "CREATE TABLE IF NOT EXISTS roster_cells (roster_id INTEGER NOT NULL REFERENCES rosters (id) "
+    "ON DELETE CASCADE, year INTEGER NOT NULL, sector VARCHAR, reason VARCHAR NOT NULL, "
+    "departures INTEGER NOT NULL)",
+    "CREATE INDEX IF NOT EXISTS ix_roster_cells_roster_id ON roster_cells (roster_id)",
+    "CREATE TABLE IF NOT EXISTS roster_firm_cells (roster_id INTEGER NOT NULL REFERENCES rosters (id) "
+    "ON DELETE CASCADE, firm_id VARCHAR NOT NULL, year INTEGER NOT NULL, sector VARCHAR, "
+    "reason VARCHAR NOT NULL, departures INTEGER NOT NULL)",
+    "CREATE INDEX IF NOT EXISTS ix_roster_firm_cells_roster_id ON roster_firm_cells (roster_id)",
+    FILL_ROSTER_CELLS,
+    FILL_ROSTER_FIRM_CELLS,
 ]
 SCHEMA_VERSION = 1 + len(MIGRATIONS)

@@ -16,7 +16,7 @@ from app.briefing.render import ExportError, export_available
 from app.stats.trend import TrendError
 from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
-from app.web.figures import FigureSpec, figure_spec
+from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.rendering import as_json, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, download, page_errors, query
 from app.web.schemas import BootstrapRunOut, define, list_of
@@ -76,20 +76,25 @@ def briefing_data(store: Store, roster_id: int, *, chosen: list[str], run_id: in
     if run_id is None:
         latest = latest_bootstrap(store, inp)
         run_id = latest.id if latest else None
-    items = []
-    for name in chosen:
-        try:
-            finding = build_finding(store, inp, name, run_id=run_id if name == "bootstrap" else None)
-        except (StoreError, ValueError) as exc:
-            items.append(PreviewItem(name, CHART_LABELS[name], "", error=str(exc)))
-            continue
-        items.append(PreviewItem(name, CHART_LABELS[name], finding.takeaway, figure=figure_spec(finding.figure)))
+    # findings read finished bootstrap runs only (the chosen one; robustness every one): a run in progress
+    # must not invalidate the memo at every chunk
+    state = tuple((r.id, r.finished_at) for r in runs if r.status == "done")
+    items = [page_memo(store, ("briefing", *inp.key, name, run_id, state),
+                       lambda name=name: _preview(store, inp, name, run_id)) for name in chosen]  # type: ignore[misc]
     try:
         fit_run_id: int | None = run_trend(store, inp).run_id  # the fit the brief and deck quote
     except TrendError:
         fit_run_id = None
     return BriefingPage(roster, inp.mapping_label, inp.window, chosen, run_id, fit_run_id, runs, items, ok, message,
                         warnings=inp.warnings())
+
+
+def _preview(store: Store, inp: AnalysisInput, name: str, run_id: int | None) -> PreviewItem:
+    try:
+        finding = build_finding(store, inp, name, run_id=run_id if name == "bootstrap" else None)
+    except (StoreError, ValueError) as exc:
+        return PreviewItem(name, CHART_LABELS[name], "", error=str(exc))
+    return PreviewItem(name, CHART_LABELS[name], finding.takeaway, figure=figure_spec(finding.figure))
 
 
 def _chosen(request: Request) -> list[str]:

@@ -15,7 +15,7 @@ from app.briefing.findings import coverage_finding
 from app.stats.coverage import WindowSuggestion, YearFlag
 from app.store import Roster, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
-from app.web.figures import FigureSpec, figure_spec
+from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.forms import read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import api_errors, form_body, page_errors, query, redirect
@@ -54,11 +54,12 @@ def coverage_data(store: Store, roster_id: int, *, threshold: float = 0.5) -> Co
 
 
 def _page(inp: AnalysisInput, threshold: float, rates: RatesSection | None = None) -> CoveragePage:
-    fig = coverage_finding(inp).figure
+    figure = page_memo(inp.store, ("coverage", *inp.key, threshold, inp.window_source),
+                       lambda: figure_spec(coverage_finding(inp).figure))
     return CoveragePage(
         roster=inp.roster, mapping_label=inp.mapping_label, table=inp.coverage, suggestion=inp.suggestion,
         flags=inp.flags, window=inp.window, window_source=inp.window_source, threshold=threshold,
-        warnings=inp.warnings(), figure=figure_spec(fig), rates=rates,
+        warnings=inp.warnings(), figure=figure, rates=rates,
     )
 
 

@@ -8,6 +8,7 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
+from app.analysis.cellstore import code_counts, memoised, roster_fingerprint, window_code_counts
 from app.analysis.inputs import load_input
 from app.analysis.mapping_files import export_mapping_csv, import_mapping_file
 from app.intake.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
@@ -83,10 +84,14 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
         raise NotFound(str(exc)) from exc
     settings = store.settings(roster.id)
     mapping = store.get_mapping(settings.mapping_name) if settings.mapping_name else None
-    counts = store.reason_counts(roster.id)
     inp = load_input(store, roster.id, require_mapping=False)
-    window_counts = inp.in_window()["reason"].value_counts()
-    suggestions = suggest_categories(counts["code"].astype(str).tolist())
+    # all three depend on the roster's counts (and the window) only, not on the mapping: memoised
+    roster_key = (roster.id, roster_fingerprint(roster))
+    counts = memoised(store, ("code_counts", *roster_key), lambda: code_counts(inp.counts))
+    window_counts = memoised(store, ("window_code_counts", *roster_key, inp.window),
+                             lambda: window_code_counts(inp.counts, inp.window))
+    suggestions = memoised(store, ("suggestions", *roster_key),
+                           lambda: suggest_categories(counts["code"].astype(str).tolist()))
     rows = []
     for rec in counts.to_dict("records"):
         code = str(rec["code"])

@@ -9,6 +9,7 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
+from app.analysis.cellstore import memoised, roster_counts, roster_fingerprint
 from app.intake.dates import month_name
 from app.intake.ingest import (
     DATE_ORDERS,
@@ -111,20 +112,20 @@ def rosters_data(store: Store, upload_limit: int, message: str | None = None) ->
 
 def roster_detail_data(store: Store, roster_id: int, page: int = 1) -> RosterDetailPage:
     roster = _roster_or_404(store, roster_id)
-    deps = store.departures(roster.id)
+    counts = roster_counts(store, roster)  # the cell store: no read of the departures themselves
+    firms, by_sector = memoised(store, ("firm_counts", roster.id, roster_fingerprint(roster)),
+                                lambda: store.firm_counts(roster.id))
     rejected = store.rejected(roster.id)
     settings = store.settings(roster.id)
-    years = (int(deps["year"].min()), int(deps["year"].max())) if len(deps) else None
+    years = (int(counts["year"].min()), int(counts["year"].max())) if len(counts) else None
     pages = max(1, -(-len(rejected) // REJECTED_PAGE))
     at = min(max(page, 1), pages)
     sectors: list[dict[str, Any]] = (
-        deps.assign(sector=deps["sector"].fillna("(none)"))
-        .groupby("sector").agg(departures=("id", "size"), firms=("firm_id", "nunique"))
-        .reset_index().sort_values("departures", ascending=False).to_dict("records")  # type: ignore[assignment]
-        if len(deps) else []
+        by_sector.sort_values("departures", ascending=False).to_dict("records")  # type: ignore[assignment]
+        if len(by_sector) else []
     )
     return RosterDetailPage(
-        roster=roster, years=years, firms=int(deps["firm_id"].nunique()) if len(deps) else 0,
+        roster=roster, years=years, firms=firms,
         sectors=sectors, mapping_name=settings.mapping_name, window=settings.window,
         rejected=rejected[(at - 1) * REJECTED_PAGE:at * REJECTED_PAGE], rejected_total=len(rejected),
         rejected_groups=group_rejections(rejected), rejected_page=at, rejected_pages=pages,

@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
+from app.analysis.cellstore import roster_counts
 from app.analysis.inputs import load_input
 from app.analysis.robustness import Robustness, check_robustness
 from app.analysis.runs import run_sectors
@@ -14,7 +15,7 @@ from app.briefing.findings import robustness_finding_from, sectors_finding_from
 from app.stats.sectors import SectorTrends
 from app.store import Roster, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
-from app.web.figures import FigureSpec, figure_spec
+from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.rendering import as_json, render
 from app.web.route_docs import api_errors, page_errors, query
 from app.web.schemas import define
@@ -77,28 +78,37 @@ def sectors_data(store: Store, roster_id: int, *, min_departures: int = 20) -> S
         return SectorsPage(roster, inp.mapping_label, inp.window, result, None,
                            "No sector could be fitted on its own. " + " ".join(result.messages),
                            warnings=inp.warnings())
-    finding = sectors_finding_from(inp, result)
-    return SectorsPage(roster, inp.mapping_label, inp.window, result, finding.takeaway, None,
-                       figure_spec(finding.figure, titled=False), inp.warnings())
+    def draw() -> tuple[str, FigureSpec]:
+        finding = sectors_finding_from(inp, result)
+        return finding.takeaway, figure_spec(finding.figure, titled=False)
+
+    takeaway, figure = page_memo(store, ("sectors", *inp.key, min_departures), draw)
+    return SectorsPage(roster, inp.mapping_label, inp.window, result, takeaway, None, figure, inp.warnings())
 
 
 def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: list[str]) -> RobustnessPage:
     roster = _roster(store, roster_id)
     names = store.list_mappings()
-    codes = sorted(store.reason_counts(roster.id)["code"].astype(str))
+    codes = sorted(set(roster_counts(store, roster)["reason"].astype(str)))
     try:
         inp = load_input(store, roster.id)
         if not extra:
             extra = [f"{n}:{v}" for n, v in names if not (inp.mapping and n == inp.mapping.name)]
-        result = check_robustness(store, inp, extra_mappings=extra, vary=vary)
+        # the variants read stored bootstrap runs: their state is part of the key
+        runs = tuple((r.id, r.finished_at, r.progress_done) for r in store.list_runs(roster.id, "bootstrap")
+                     if r.status == "done")
+        key = (*inp.key, tuple(extra), tuple(vary), runs)
+        result = page_memo(store, ("robustness", *key),
+                           lambda: check_robustness(store, inp, extra_mappings=extra, vary=vary))
     except (StoreError, ValueError) as exc:
         return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc))
     if all(v.odds_ratio is None for v in result.variants):  # nothing to draw: the table says why
         return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, None,
                               inp.warnings())
-    finding = robustness_finding_from(inp, result)
-    return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None,
-                          figure_spec(finding.figure, titled=False), inp.warnings())
+    figure = page_memo(store, ("robustness-figure", *key),
+                       lambda: figure_spec(robustness_finding_from(inp, result).figure, titled=False))
+    return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, figure,
+                          inp.warnings())
 
 
 def _min_departures(request: Request) -> int:

@@ -15,7 +15,7 @@ from app.briefing.findings import trend_finding_from_fit
 from app.stats.trend import SPLINE_DFS, TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
 from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
-from app.web.figures import FigureSpec, figure_spec
+from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.rendering import as_json, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, json_or_validation_error, page_errors, query
 from app.web.schemas import OddsRow, TrendFitSummary, define, list_of, variant
@@ -95,12 +95,13 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         return TrendPage(roster, inp.mapping_label, inp.window, inp.window_source, model, spline_df, None, None,
                          str(exc), inp.warnings(), None, runs, quasi=quasi, rates=rates)
     fit = outcome.fit
-    fig = trend_finding_from_fit(inp, fit, model).figure
+    figure = page_memo(store, ("trend", *inp.key, model, spline_df, quasi),
+                       lambda: figure_spec(trend_finding_from_fit(inp, fit, model).figure, titled=False))
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
-        figure=figure_spec(fig, titled=False), table=_odds_table(fit), quasi=quasi, rates=rates,
+        figure=figure, table=_odds_table(fit), quasi=quasi, rates=rates,
     )
 
 

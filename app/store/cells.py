@@ -1,0 +1,105 @@
+"""The cell store: per-roster counts by (year, sector, reason code), and the same counts per firm.
+
+Filled once when a roster is imported (``fill_cells``, inside the import's transaction) and by the schema
+migration for rosters stored before the cell store existed. Pages read ``cell_counts`` (a few thousand rows
+whatever the roster's size); only jobs read ``firm_cell_counts``; nothing on a normal request reads the
+departures themselves.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import Connection, distinct, func, insert, select
+
+from app.store.engine import Gateway
+from app.store.tables import departures, roster_cells, roster_firm_cells
+
+CELL_COLUMNS = ("year", "sector", "reason", "departures")
+FIRM_CELL_COLUMNS = ("firm_id", "year", "sector", "reason", "departures")
+
+
+def fill_cells(conn: Connection, roster_id: int) -> None:
+    """Count one roster's departures into both cell tables, inside the caller's transaction."""
+    d = departures.c
+    keys = (d.year, d.sector, d.reason)
+    conn.execute(insert(roster_cells).from_select(
+        ["roster_id", *CELL_COLUMNS],
+        select(d.roster_id, *keys, func.count()).where(d.roster_id == roster_id)
+        .group_by(d.roster_id, *keys)))
+    conn.execute(insert(roster_firm_cells).from_select(
+        ["roster_id", *FIRM_CELL_COLUMNS],
+        select(d.roster_id, d.firm_id, *keys, func.count()).where(d.roster_id == roster_id)
+        .group_by(d.roster_id, d.firm_id, *keys)))
+
+
+def _frame(rows: Sequence[Any], columns: tuple[str, ...]) -> pd.DataFrame:
+    # plain tuples: pandas probes each SQLAlchemy Row for a ``dtype`` attribute, which costs a raised
+    # NoSuchColumnError per row (issue 13)
+    frame = pd.DataFrame.from_records([tuple(r) for r in rows], columns=list(columns))
+    frame["year"] = frame["year"].astype(np.int64)
+    frame["departures"] = frame["departures"].astype(np.int64)
+    for c in ("sector", "reason", "firm_id"):
+        if c in frame:
+            frame[c] = frame[c].astype(object)
+    return frame
+
+
+class CellQueries(Gateway):
+    """Reads of the cell store (writes happen in ``fill_cells``, with the import)."""
+
+    def cell_counts(self, roster_id: int) -> pd.DataFrame:
+        """Departures per (year, sector, reason) of one roster; ``sector`` is None where the record had none.
+
+        Sorted by year, sector (missing first), reason. Rebuilds the cells of a roster stored without them.
+        """
+        c = roster_cells.c
+        query = (select(c.year, c.sector, c.reason, c.departures).where(c.roster_id == roster_id)
+                 .order_by(c.year, c.sector, c.reason))
+        with self.engine.connect() as conn:
+            rows = conn.execute(query).all()
+        if not rows and self._repair_cells(roster_id):
+            with self.engine.connect() as conn:
+                rows = conn.execute(query).all()
+        return _frame(rows, CELL_COLUMNS)
+
+    def firm_cell_counts(self, roster_id: int) -> pd.DataFrame:
+        """Departures per (firm, year, sector, reason): what a firm bootstrap needs. Read by jobs only."""
+        c = roster_firm_cells.c
+        query = (select(c.firm_id, c.year, c.sector, c.reason, c.departures).where(c.roster_id == roster_id)
+                 .order_by(c.firm_id, c.year, c.sector, c.reason))
+        with self.engine.connect() as conn:
+            rows = conn.execute(query).all()
+        if not rows and self._repair_cells(roster_id):
+            with self.engine.connect() as conn:
+                rows = conn.execute(query).all()
+        return _frame(rows, FIRM_CELL_COLUMNS)
+
+    def firm_counts(self, roster_id: int, *, missing: str = "(none)") -> tuple[int, pd.DataFrame]:
+        """Distinct firms of a roster, and per sector (``missing`` stands for none): ``sector``, ``departures``,
+        ``firms``, sorted by sector."""
+        c = roster_firm_cells.c
+        sector = func.coalesce(c.sector, missing)
+        with self.engine.connect() as conn:
+            total = int(conn.execute(select(func.count(distinct(c.firm_id))).where(c.roster_id == roster_id))
+                        .scalar_one())
+            rows = conn.execute(select(sector, func.sum(c.departures), func.count(distinct(c.firm_id)))
+                                .where(c.roster_id == roster_id).group_by(sector).order_by(sector)).all()
+        frame = pd.DataFrame.from_records([tuple(r) for r in rows], columns=["sector", "departures", "firms"])
+        return total, frame.astype({"departures": np.int64, "firms": np.int64})
+
+    def _repair_cells(self, roster_id: int) -> bool:
+        """Fill the cells of a roster that has departures but no cells (written by an older version)."""
+        with self._tx() as conn:
+            if conn.execute(select(roster_cells.c.roster_id).where(roster_cells.c.roster_id == roster_id)
+                            .limit(1)).first() is not None:
+                return True
+            if conn.execute(select(departures.c.id).where(departures.c.roster_id == roster_id)
+                            .limit(1)).first() is None:
+                return False
+            conn.execute(roster_firm_cells.delete().where(roster_firm_cells.c.roster_id == roster_id))
+            fill_cells(conn, roster_id)
+        return True

@@ -1,0 +1,182 @@
+"""The cell store: pages read counts, never the records, and get exactly what counting the records gives.
+
+The reference throughout is the record path as it was before the cell store: ``Store.departures`` (every
+record) through ``app.stats.cells.build_cells`` and ``app.stats.coverage.coverage_table``, and
+``Store.reason_counts`` (SQL GROUP BY over the records); plus statsmodels through ``fit_trend``.
+"""
+
+from __future__ import annotations
+
+import re
+import sqlite3
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+from sqlalchemy import event
+
+from app.analysis.cellstore import (
+    cells_from_counts,
+    code_counts,
+    coverage_from_counts,
+    unmapped_codes,
+)
+from app.analysis.inputs import load_input
+from app.analysis.jobs import run_bootstrap_now
+from app.analysis.runs import run_trend
+from app.stats.cells import assign_categories, build_cells
+from app.stats.coverage import coverage_table
+from app.stats.trend import fit_to_dict, fit_trend
+from app.store import Store
+from tests.conftest import copy_database, make_client
+
+ROSTER = 1
+PAGES = ("", "/reasons", "/coverage", "/trend", "/resampling", "/sectors", "/robustness", "/briefing")
+
+
+def records_through(store: Store, categories: dict[str, str]) -> pd.DataFrame:
+    records = store.departures(ROSTER)
+    records["category"] = assign_categories(records["reason"], categories)
+    return records
+
+
+@pytest.mark.parametrize("mapping", ["demo standard:1", "demo strict:1"])
+@pytest.mark.parametrize("by_sector", [False, True])
+@pytest.mark.parametrize("window", [None, (2001, 2010)])
+def test_cells_equal_counting_the_records(demo_store: Store, mapping: str, by_sector: bool,
+                                          window: tuple[int, int] | None) -> None:
+    inp = load_input(demo_store, ROSTER, mapping=mapping, window=window)
+    assert inp.mapping is not None
+    records = records_through(demo_store, inp.mapping.categories)
+    expected = build_cells(records, inp.window, by_sector=by_sector)
+    for cells in (inp.group_cells(by_sector=by_sector), inp.cells(by_sector=by_sector)):
+        pd.testing.assert_frame_equal(cells.groups, expected.groups)
+        assert cells.fingerprint() == expected.fingerprint()
+        assert cells.window == expected.window
+    firm = inp.cells(by_sector=by_sector)
+    assert list(firm.firm_ids) == list(expected.firm_ids)
+    assert (firm.firm_matrix != expected.firm_matrix).nnz == 0 and firm.firm_matrix.shape == expected.firm_matrix.shape
+    assert inp.group_cells(by_sector=by_sector).firm_matrix.shape[0] == 0  # fits only: no firm rows
+
+
+def test_default_window_of_counts_is_build_cells_default(demo_store: Store) -> None:
+    inp = load_input(demo_store, ROSTER)
+    expected = build_cells(inp.records)  # every year with a counted departure
+    got = cells_from_counts(inp.counts)
+    assert got.window == expected.window and got.fingerprint() == expected.fingerprint()
+
+
+@pytest.mark.parametrize("mapping", ["demo standard:1", "demo strict:1", "partial"])
+def test_coverage_and_code_tables_equal_the_record_path(demo_store: Store, mapping: str) -> None:
+    if mapping == "partial":  # every other code of the standard mapping: the rest are unmapped
+        standard = sorted(demo_store.get_mapping("demo standard", 1).categories.items())
+        demo_store.save_mapping_version("partial", dict(standard[::2]), author="test")
+    inp = load_input(demo_store, ROSTER, mapping=mapping)
+    assert inp.mapping is not None
+    records = records_through(demo_store, inp.mapping.categories)
+    pd.testing.assert_frame_equal(inp.coverage, coverage_table(records["year"], records["category"]))
+    pd.testing.assert_frame_equal(coverage_from_counts(inp.counts), inp.coverage)
+    # Store.reason_counts: one SQL GROUP BY over the records, ordered by count then code
+    sql = demo_store.reason_counts(ROSTER).astype({"count": np.int64, "first_year": np.int64,
+                                                   "last_year": np.int64})
+    pd.testing.assert_frame_equal(code_counts(inp.counts), sql)
+    inside = inp.in_window()
+    from_records = inside.loc[inside["category"] == "unmapped", "reason"].value_counts()
+    got = unmapped_codes(inp.counts, inp.window)
+    assert dict(zip(got["code"], got["count"], strict=True)) == from_records.to_dict()
+    assert list(got["count"]) == sorted(got["count"], reverse=True)
+    if mapping == "partial":
+        assert len(got) > 1  # codes were left unmapped: the checks above compared something
+
+
+def test_trend_fit_and_run_fingerprint_equal_the_record_path(demo_store: Store) -> None:
+    inp = load_input(demo_store, ROSTER)
+    outcome = run_trend(demo_store, inp)
+    reference = build_cells(inp.records, inp.window)
+    assert demo_store.get_run(outcome.run_id).fingerprint == reference.fingerprint()
+    assert fit_to_dict(outcome.fit) == fit_to_dict(fit_trend(reference, "linear"))
+    # asked again: the memoised fit, and the same stored run
+    again = run_trend(demo_store, load_input(demo_store, ROSTER))
+    assert again.run_id == outcome.run_id and fit_to_dict(again.fit) == fit_to_dict(outcome.fit)
+
+
+def selects(store: Store) -> list[str]:
+    """Every SQL statement the store's engine runs from now on (observed, nothing replaced)."""
+    seen: list[str] = []
+    event.listen(store.engine, "before_cursor_execute",
+                 lambda conn, cursor, statement, *args: seen.append(" ".join(statement.split())))
+    return seen
+
+
+def reads(statements: list[str], table: str) -> int:
+    return sum(1 for s in statements if s.startswith("SELECT") and re.search(rf"\bFROM {table}\b", s))
+
+
+def test_no_page_reads_the_records(demo_store: Store) -> None:
+    client = make_client(demo_store)
+    seen = selects(demo_store)
+    for page in PAGES:
+        assert client.get(f"/rosters/{ROSTER}{page}").status_code == 200, page
+        assert client.get(f"/api/rosters/{ROSTER}{page}").status_code in (200, 404), page
+    assert reads(seen, "roster_cells") >= 1  # the pages did read the cell store
+    assert reads(seen, "departures") == 0
+    # the roster page's distinct firms (in all and per sector): two queries, once, then memoised
+    assert reads(seen, "roster_firm_cells") == 2
+
+
+def test_the_command_line_bootstrap_reads_the_firm_counts_once(demo_store: Store) -> None:
+    seen = selects(demo_store)
+    result = run_bootstrap_now(demo_store, load_input(demo_store, ROSTER), unit="firm", resamples=300, seed=5)
+    assert result["resamples"] == 300
+    assert reads(seen, "roster_firm_cells") == 1 and reads(seen, "departures") == 0
+    assert reads(seen, "roster_cells") == 1  # the second load_input (the stored run's) hits the memo
+
+
+def test_a_new_mapping_version_is_not_served_stale(demo_store: Store) -> None:
+    client = make_client(demo_store)
+    before = client.get(f"/api/rosters/{ROSTER}/coverage").json()
+    mapping = demo_store.get_mapping("demo standard")
+    moved = {code: ("excluded" if cat == "forced" else cat) for code, cat in mapping.categories.items()}
+    demo_store.save_mapping_version("demo standard", moved, author="test")
+    after = client.get(f"/api/rosters/{ROSTER}/coverage").json()
+    assert sum(y["forced"] for y in before["table"]) > 0
+    assert sum(y["forced"] for y in after["table"]) == 0
+    assert after["mapping_label"] == f"demo standard v{mapping.version + 1}"
+
+
+def test_the_migration_fills_the_cells_of_rosters_stored_before(demo_store: Store, tmp_path: Path) -> None:
+    expected = demo_store.cell_counts(ROSTER)
+    firms = demo_store.firm_cell_counts(ROSTER)
+    old = copy_database(Path(demo_store.url.removeprefix("sqlite:///")), tmp_path / "old.db")
+    with sqlite3.connect(old) as conn:  # the database as version 1 left it: no cell tables
+        conn.execute("DROP TABLE roster_cells")
+        conn.execute("DROP TABLE roster_firm_cells")
+        conn.execute("DELETE FROM schema_version")
+        conn.execute("INSERT INTO schema_version VALUES (1)")
+    store = Store(f"sqlite:///{old}")
+    try:
+        assert store.schema_version() == 1 + len(__import__("app.store", fromlist=["MIGRATIONS"]).MIGRATIONS)
+        pd.testing.assert_frame_equal(store.cell_counts(ROSTER), expected)
+        pd.testing.assert_frame_equal(store.firm_cell_counts(ROSTER), firms)
+        assert int(expected["departures"].sum()) == store.get_roster(ROSTER).accepted
+    finally:
+        store.dispose()
+
+
+def test_a_roster_without_cells_is_repaired_on_first_read(demo_store: Store) -> None:
+    expected = demo_store.cell_counts(ROSTER)
+    with demo_store.engine.begin() as conn:
+        conn.exec_driver_sql("DELETE FROM roster_cells")
+        conn.exec_driver_sql("DELETE FROM roster_firm_cells")
+    pd.testing.assert_frame_equal(demo_store.cell_counts(ROSTER), expected)
+    assert len(demo_store.firm_cell_counts(ROSTER)) > 0
+
+
+def test_deleting_a_roster_deletes_its_cells(demo_store: Store) -> None:
+    demo_store.delete_roster(ROSTER)
+    with demo_store.engine.connect() as conn:
+        left: Any = [conn.exec_driver_sql(f"SELECT COUNT(*) FROM {t}").scalar_one()
+                     for t in ("roster_cells", "roster_firm_cells")]
+    assert left == [0, 0]
