@@ -3,7 +3,7 @@
 SQLAlchemy 2.0 Core over SQLite by default (any SQLAlchemy URL works). Methods return frozen dataclasses or
 pandas DataFrames, never live ORM objects. The gateway is split by aggregate: ``rosters`` (rosters and
 their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), on top of ``engine``
-(connections and migrations) and ``tables`` (the schema).
+(connections and Alembic migrations, :mod:`app.store.migrations`) and ``tables`` (the schema).
 """
 
 from __future__ import annotations
@@ -21,10 +21,10 @@ from app.store.records import (
 )
 from app.store.rosters import RosterQueries
 from app.store.runs import RunQueries
-from app.store.tables import DEPARTURE_FIELDS, MIGRATIONS, SCHEMA_VERSION, departures, metadata
+from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
 
 __all__ = [
-    "DEPARTURE_FIELDS", "MAX_ID", "MIGRATIONS", "SCHEMA_VERSION", "MappingVersion", "RejectedRow", "Roster",
+    "DEPARTURE_FIELDS", "HEAD_REVISION", "MAX_ID", "MappingVersion", "RejectedRow", "Roster",
     "RosterSettings", "Run", "Store", "StoreError", "departures", "metadata", "now_iso",
 ]
 

@@ -1,7 +1,8 @@
-"""Table definitions and the ordered schema migrations of the store (SQLAlchemy Core metadata).
+"""Table definitions of the store (SQLAlchemy Core metadata) and the schema revision they correspond to.
 
-Version 1 is ``metadata.create_all``; each later change appends SQL to ``MIGRATIONS``; ``schema_version``
-records what a database has applied.
+A fresh database is created from these definitions and stamped ``HEAD_REVISION``; an existing database is
+brought up to it by the Alembic revisions in :mod:`app.store.migrations`. Change a table here and add a
+revision there, in the same commit.
 """
 
 from __future__ import annotations
@@ -22,7 +23,11 @@ from sqlalchemy import (
 
 metadata = MetaData()
 
-schema_version = Table("schema_version", metadata, Column("version", Integer, nullable=False))
+#: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
+HEAD_REVISION = "0001"
+
+#: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
+alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
 
 rosters = Table(
     "rosters", metadata,
@@ -139,8 +144,3 @@ run_replicates = Table(
     Column("failures", LargeBinary, nullable=False),  # zlib-compressed, one reason per line ("" = ok)
     UniqueConstraint("run_id", "seq"),
 )
-
-#: ordered schema migrations; index i+1 is the version after applying MIGRATIONS[i].
-#: Version 1 is the ``metadata.create_all`` above; later changes append SQL here.
-MIGRATIONS: list[str] = []
-SCHEMA_VERSION = 1 + len(MIGRATIONS)
