@@ -2,12 +2,14 @@
 
 SQLAlchemy 2.0 Core over SQLite by default (any SQLAlchemy URL works). Methods return frozen dataclasses or
 pandas DataFrames, never live ORM objects. The gateway is split by aggregate: ``rosters`` (rosters and
-their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), on top of ``engine``
+their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), ``accounts`` and ``audit`` (team mode), on top of ``engine``
 (connections and Alembic migrations, :mod:`app.store.migrations`) and ``tables`` (the schema).
 """
 
 from __future__ import annotations
 
+from app.store.accounts import Account, AccountQueries
+from app.store.audit import AuditEvent, AuditQueries
 from app.store.mappings import MappingQueries
 from app.store.records import (
     MAX_ID,
@@ -24,10 +26,10 @@ from app.store.runs import RunQueries
 from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
 
 __all__ = [
-    "DEPARTURE_FIELDS", "HEAD_REVISION", "MAX_ID", "MappingVersion", "RejectedRow", "Roster",
+    "Account", "AuditEvent", "DEPARTURE_FIELDS", "HEAD_REVISION", "MAX_ID", "MappingVersion", "RejectedRow", "Roster",
     "RosterSettings", "Run", "Store", "StoreError", "departures", "metadata", "now_iso",
 ]
 
 
-class Store(RosterQueries, MappingQueries, RunQueries):
+class Store(RosterQueries, MappingQueries, RunQueries, AccountQueries, AuditQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""

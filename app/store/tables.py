@@ -24,7 +24,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0001"
+HEAD_REVISION = "0002"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -133,6 +133,7 @@ runs = Table(
     Column("result", Text),  # JSON
     Column("error", Text),
     Column("seconds", Float),
+    Column("author", String),
 )
 
 run_replicates = Table(
@@ -143,4 +144,43 @@ run_replicates = Table(
     Column("data", LargeBinary, nullable=False),  # zlib-compressed float64 replicates (NaN = failed)
     Column("failures", LargeBinary, nullable=False),  # zlib-compressed, one reason per line ("" = ok)
     UniqueConstraint("run_id", "seq"),
+)
+
+# -- team mode: accounts, their API tokens, the audit trail, and secrets shared by every server process ------
+
+accounts = Table(
+    "accounts", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String, nullable=False, unique=True),
+    Column("role", String, nullable=False),
+    Column("password_hash", String, nullable=False),  # argon2id, never the password
+    Column("created_at", String, nullable=False),
+    Column("session_epoch", Integer, nullable=False, default=0),  # bumped to sign every session out
+    sqlite_autoincrement=True,
+)
+
+api_tokens = Table(
+    "api_tokens", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("account_id", Integer, ForeignKey("accounts.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("token_sha256", String(64), nullable=False, unique=True),  # the token itself is shown once
+    Column("created_at", String, nullable=False),
+    sqlite_autoincrement=True,
+)
+
+audit_events = Table(
+    "audit_events", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("at", String, nullable=False, index=True),
+    Column("actor", String, nullable=False, index=True),
+    Column("action", String, nullable=False),
+    Column("target", String, nullable=False),
+    Column("detail", Text, nullable=False),  # JSON
+    sqlite_autoincrement=True,
+)
+
+app_secrets = Table(
+    "app_secrets", metadata,
+    Column("name", String, primary_key=True),
+    Column("value", String, nullable=False),
 )

@@ -108,6 +108,7 @@ class RunOut(_Exact):
     result: dict[str, Any] | None
     error: str | None
     seconds: float | None
+    author: str | None
 
 
 class BootstrapResultOut(_Open):
