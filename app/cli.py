@@ -7,6 +7,7 @@ prints one JSON object on stdout. Errors are one clear sentence on stderr and a 
 from __future__ import annotations
 
 import argparse
+import getpass
 import json
 import sys
 from collections.abc import Callable, Sequence
@@ -392,15 +393,24 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True)
     common(p, json_flag=False)
     p.set_defaults(func=cmd_export)
+
+    from app.cli_team import register
+
+    register(sub, common, _store, _emit)
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    from app.cli_team import TeamCommandError
+    from app.store.audit import acting_as
+
     try:
-        return int(args.func(args))
-    except CommandError as exc:
+        # changes made from the command line are recorded as the operating-system user's
+        with acting_as(f"{getpass.getuser()} (command line)"):
+            return int(args.func(args))
+    except (CommandError, TeamCommandError) as exc:
         print(f"helmshift: {exc}", file=sys.stderr)
         return EXIT_USAGE
     except (ValueError, LookupError, OSError) as exc:

@@ -19,6 +19,10 @@ REQUIRED_ROLES: tuple[Role, ...] = ("firm_id", "reason")
 Unit = Literal["departure", "firm"]
 UNITS: tuple[Unit, ...] = get_args(Unit)
 
+AccountRole = Literal["viewer", "analyst", "admin"]
+#: in rising order of what a role may do: viewers read and export, analysts also change, admins also delete
+ACCOUNT_ROLES: tuple[AccountRole, ...] = get_args(AccountRole)
+
 RunKind = Literal["fit", "bootstrap"]
 RunStatus = Literal["queued", "running", "done", "failed", "cancelled", "interrupted"]
 RUN_STATUSES: tuple[RunStatus, ...] = get_args(RunStatus)

@@ -1,7 +1,17 @@
-"""Shared fixtures: a real SQLite store in a temporary folder."""
+"""Shared fixtures: a real store (SQLite in a temporary folder, or a fresh PostgreSQL database) per test.
+
+``--backend postgresql`` runs the tests that use a store fixture against the PostgreSQL server named by
+``HELMSHIFT_TEST_POSTGRES`` (a SQLAlchemy URL of a database the user may create databases from, e.g.
+``postgresql+psycopg://postgres@127.0.0.1:55432/postgres``); every test gets a database of its own, dropped
+afterwards. Tests that need SQLite itself (its files, WAL, PRAGMAs, server subprocesses on a file) carry
+``@pytest.mark.sqlite_only`` or use no store fixture, and are left out of that run.
+"""
 
 from __future__ import annotations
 
+import os
+import uuid
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -10,10 +20,99 @@ from app.store import Store
 
 REFERENCES = Path(__file__).parent / "data"
 
+#: fixtures whose store follows --backend; a test using none of them is SQLite-only by construction
+BACKEND_FIXTURES = frozenset({"store", "demo_store", "client", "empty_client", "db_url", "databases"})
+
+
+def pytest_addoption(parser: pytest.Parser) -> None:
+    parser.addoption("--backend", choices=("sqlite", "postgresql"), default="sqlite",
+                     help="database for the store fixtures (default sqlite; postgresql needs "
+                          "HELMSHIFT_TEST_POSTGRES)")
+
+
+def pytest_configure(config: pytest.Config) -> None:
+    config.addinivalue_line("markers", "sqlite_only: needs SQLite itself; left out of --backend postgresql")
+    if config.getoption("--backend") == "postgresql" and not os.environ.get("HELMSHIFT_TEST_POSTGRES"):
+        raise pytest.UsageError("--backend postgresql needs HELMSHIFT_TEST_POSTGRES, a SQLAlchemy URL of the "
+                                "server's maintenance database (see .ci/run).")
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    if config.getoption("--backend") != "postgresql":
+        return
+    keep: list[pytest.Item] = []
+    dropped: list[pytest.Item] = []
+    for item in items:
+        uses_store = BACKEND_FIXTURES & set(getattr(item, "fixturenames", ()))
+        (keep if uses_store and item.get_closest_marker("sqlite_only") is None else dropped).append(item)
+    config.hook.pytest_deselected(items=dropped)
+    items[:] = keep
+
+
+class Databases:
+    """Creates (and drops at the end) fresh databases on the chosen backend."""
+
+    def __init__(self, backend: str, root: Path) -> None:
+        self.backend = backend
+        self.root = root
+        self.created: list[str] = []
+        self._admin = None
+        if backend == "postgresql":
+            from sqlalchemy import create_engine
+
+            self._admin = create_engine(os.environ["HELMSHIFT_TEST_POSTGRES"], isolation_level="AUTOCOMMIT")
+
+    def new(self, *, template: str | None = None) -> str:
+        """The URL of a new empty database (or a copy of ``template``, a URL this object made)."""
+        if self._admin is None:
+            path = self.root / f"db-{uuid.uuid4().hex[:10]}.db"
+            if template is not None:
+                copy_database(Path(template.removeprefix("sqlite:///")), path)
+            return f"sqlite:///{path}"
+        from sqlalchemy import text
+
+        name = f"hs_{uuid.uuid4().hex[:16]}"
+        clause = f" TEMPLATE {template.rpartition('/')[2]}" if template else ""
+        with self._admin.connect() as conn:
+            conn.execute(text(f"CREATE DATABASE {name}{clause}"))
+        self.created.append(name)
+        return self._admin.url.set(database=name).render_as_string(hide_password=False)
+
+    def drop(self, url: str) -> None:
+        if self._admin is None:
+            return
+        from sqlalchemy import text
+
+        name = url.rpartition("/")[2]
+        with self._admin.connect() as conn:
+            conn.execute(text(f"DROP DATABASE IF EXISTS {name} WITH (FORCE)"))
+        self.created.remove(name)
+
+    def close(self) -> None:
+        for name in list(self.created):
+            self.drop(f"/{name}")
+        if self._admin is not None:
+            self._admin.dispose()
+
+
+@pytest.fixture(scope="session")
+def databases(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory) -> Iterator[Databases]:
+    dbs = Databases(request.config.getoption("--backend"), tmp_path_factory.mktemp("databases"))
+    yield dbs
+    dbs.close()
+
 
 @pytest.fixture
-def store(tmp_path: Path) -> Store:
-    s = Store(f"sqlite:///{tmp_path / 'helmshift.db'}")
+def db_url(databases: Databases) -> Iterator[str]:
+    """A fresh, empty database on the chosen backend."""
+    url = databases.new()
+    yield url
+    databases.drop(url)
+
+
+@pytest.fixture
+def store(db_url: str) -> Iterator[Store]:
+    s = Store(db_url)
     yield s
     s.dispose()
 
@@ -191,12 +290,27 @@ def copy_database(source: Path, target: Path) -> Path:
     return target
 
 
+@pytest.fixture(scope="session")
+def shared_demo_url(databases: Databases) -> str:
+    """The demo roster and both demo mappings in a database of the chosen backend, built once per session:
+    never change it; ``demo_store`` copies it."""
+    from app.demo import load_demo
+
+    url = databases.new()
+    s = Store(url)
+    load_demo(s)
+    s.dispose()
+    return url
+
+
 @pytest.fixture
-def demo_store(shared_demo_db: Path, tmp_path: Path) -> Store:
+def demo_store(shared_demo_url: str, databases: Databases) -> Iterator[Store]:
     """A private copy of the demo database: tests may change it freely."""
-    s = Store(f"sqlite:///{copy_database(shared_demo_db, tmp_path / 'demo-copy.db')}")
+    url = databases.new(template=shared_demo_url)
+    s = Store(url)
     yield s
     s.dispose()
+    databases.drop(url)
 
 
 def make_client(store: Store) -> Any:

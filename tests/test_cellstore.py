@@ -29,7 +29,7 @@ from app.analysis.runs import run_trend
 from app.stats.cells import assign_categories, build_cells
 from app.stats.coverage import coverage_table
 from app.stats.trend import fit_to_dict, fit_trend
-from app.store import Store
+from app.store import HEAD_REVISION, Store
 from tests.conftest import copy_database, make_client
 
 ROSTER = 1
@@ -150,14 +150,13 @@ def test_the_migration_fills_the_cells_of_rosters_stored_before(demo_store: Stor
     expected = demo_store.cell_counts(ROSTER)
     firms = demo_store.firm_cell_counts(ROSTER)
     old = copy_database(Path(demo_store.url.removeprefix("sqlite:///")), tmp_path / "old.db")
-    with sqlite3.connect(old) as conn:  # the database as version 1 left it: no cell tables
+    with sqlite3.connect(old) as conn:  # the database as revision 0004 left it: no cell tables
         conn.execute("DROP TABLE roster_cells")
         conn.execute("DROP TABLE roster_firm_cells")
-        conn.execute("DELETE FROM schema_version")
-        conn.execute("INSERT INTO schema_version VALUES (1)")
+        conn.execute("UPDATE alembic_version SET version_num = '0004'")
     store = Store(f"sqlite:///{old}")
     try:
-        assert store.schema_version() == 1 + len(__import__("app.store", fromlist=["MIGRATIONS"]).MIGRATIONS)
+        assert store.schema_version() == int(HEAD_REVISION)
         pd.testing.assert_frame_equal(store.cell_counts(ROSTER), expected)
         pd.testing.assert_frame_equal(store.firm_cell_counts(ROSTER), firms)
         assert int(expected["departures"].sum()) == store.get_roster(ROSTER).accepted

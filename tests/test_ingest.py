@@ -318,12 +318,21 @@ def test_filename_is_only_a_label(store: Store, tmp_path: object) -> None:
 def test_failure_half_way_leaves_database_unchanged(store: Store) -> None:
     import_roster(store, make_csv(ROWS).encode(), "earlier.csv")
     before = store.counts()
-    # a real SQLite failure inside the transaction, after some departures were already inserted
+    # a real database failure inside the transaction, after some departures were already inserted
     with store.engine.begin() as conn:
-        conn.execute(text(
-            "CREATE TRIGGER fail_late BEFORE INSERT ON departures "
-            "WHEN (SELECT count(*) FROM departures) >= 5 BEGIN SELECT RAISE(ABORT, 'disk says no'); END"
-        ))
+        if conn.dialect.name == "sqlite":
+            conn.execute(text(
+                "CREATE TRIGGER fail_late BEFORE INSERT ON departures "
+                "WHEN (SELECT count(*) FROM departures) >= 5 BEGIN SELECT RAISE(ABORT, 'disk says no'); END"
+            ))
+        else:
+            conn.execute(text(
+                "CREATE FUNCTION fail_late() RETURNS trigger LANGUAGE plpgsql AS $$ BEGIN "
+                "IF (SELECT count(*) FROM departures) >= 5 THEN RAISE EXCEPTION 'disk says no'; END IF; "
+                "RETURN NEW; END $$"
+            ))
+            conn.execute(text("CREATE TRIGGER fail_late BEFORE INSERT ON departures "
+                              "FOR EACH ROW EXECUTE FUNCTION fail_late()"))
     rows = [one_row(Issuer_Code=f"F{i}") for i in range(20)] + [one_row(Issuer_Code="")]
     with pytest.raises(Exception, match="disk says no"):
         import_roster(store, make_csv(rows).encode(), "later.csv")

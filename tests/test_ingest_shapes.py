@@ -24,7 +24,7 @@ from app.intake.dates import parse_dates
 from app.intake.ingest import RosterFileError, import_roster, preview_roster, review_roster
 from app.intake.reasons import suggest_category
 from app.stats.cells import assign_categories, code_key
-from app.store import Store
+from app.store import HEAD_REVISION, Store
 
 TODAY = date(2026, 6, 1)
 
@@ -285,12 +285,13 @@ def test_migration_adds_the_raw_spelling_to_an_old_database(tmp_path: Path) -> N
     url = f"sqlite:///{tmp_path / 'old.db'}"
     store = Store(url)
     report = import_roster(store, csv_bytes([DESK, *DATA]), "old.csv", today=TODAY)
-    with store.engine.begin() as conn:  # make it look like a version-1 database
+    with store.engine.begin() as conn:  # make it look like a database at revision 0002 (before raw spellings)
         conn.execute(text("ALTER TABLE departures DROP COLUMN reason_raw"))
-        conn.execute(text("DELETE FROM schema_version"))
-        conn.execute(text("INSERT INTO schema_version (version) VALUES (1)"))
+        for table in ("universe_rejected", "universe_firm_years", "universes", "roster_firm_cells", "roster_cells"):
+            conn.execute(text(f"DROP TABLE {table}"))
+        conn.execute(text("UPDATE alembic_version SET version_num = '0002'"))
     store.engine.dispose()
     upgraded = Store(url)
-    assert upgraded.schema_version() == 3
+    assert upgraded.schema_version() == int(HEAD_REVISION)
     deps = upgraded.departures(report.roster.id)
     assert list(deps["reason_raw"]) == list(deps["reason"])

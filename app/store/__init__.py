@@ -3,12 +3,15 @@
 SQLAlchemy 2.0 Core over SQLite by default (any SQLAlchemy URL works). Methods return frozen dataclasses or
 pandas DataFrames, never live ORM objects. The gateway is split by aggregate: ``rosters`` (rosters and
 their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), ``universe`` (firm-years
-per roster), ``cells`` (the counts pages read instead of the records), on top of ``engine`` (connections and
-migrations) and ``tables`` (the schema).
+per roster), ``cells`` (the counts pages read instead of the records), ``accounts`` and ``audit`` (team mode),
+on top of ``engine`` (connections and Alembic migrations, :mod:`app.store.migrations`) and ``tables`` (the
+schema).
 """
 
 from __future__ import annotations
 
+from app.store.accounts import Account, AccountQueries
+from app.store.audit import AuditEvent, AuditQueries
 from app.store.cells import CellQueries
 from app.store.mappings import MappingQueries
 from app.store.records import (
@@ -24,14 +27,14 @@ from app.store.records import (
 )
 from app.store.rosters import RosterQueries
 from app.store.runs import RunQueries
-from app.store.tables import DEPARTURE_FIELDS, MIGRATIONS, SCHEMA_VERSION, departures, metadata
+from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
 from app.store.universe import UniverseQueries
 
 __all__ = [
-    "DEPARTURE_FIELDS", "MAX_ID", "MIGRATIONS", "SCHEMA_VERSION", "MappingVersion", "RejectedRow", "Roster",
-    "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata", "now_iso",
+    "Account", "AuditEvent", "DEPARTURE_FIELDS", "HEAD_REVISION", "MAX_ID", "MappingVersion", "RejectedRow",
+    "Roster", "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata", "now_iso",
 ]
 
 
-class Store(RosterQueries, MappingQueries, RunQueries, UniverseQueries, CellQueries):
+class Store(RosterQueries, MappingQueries, RunQueries, UniverseQueries, CellQueries, AccountQueries, AuditQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
+from pathlib import Path
 from typing import Any
 
 from sqlalchemy import (
@@ -14,13 +15,15 @@ from sqlalchemy import (
     event,
     func,
     insert,
+    inspect,
     select,
     text,
 )
 
+from app.store.records import StoreError
 from app.store.tables import (
-    MIGRATIONS,
-    SCHEMA_VERSION,
+    HEAD_REVISION,
+    alembic_version,
     departures,
     mapping_versions,
     mappings,
@@ -28,8 +31,31 @@ from app.store.tables import (
     rejected_rows,
     rosters,
     runs,
-    schema_version,
 )
+
+MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
+
+
+def _adopt_legacy_schema(conn: Connection) -> str:
+    """A store made by Helmshift 0.1 (its own ``schema_version`` table) joins Alembic's history at 0001."""
+    legacy = conn.execute(text("SELECT max(version) FROM schema_version")).scalar()
+    if legacy != 1:
+        raise StoreError(f"This database has schema version {legacy}, which this Helmshift does not know.")
+    metadata.tables["alembic_version"].create(conn)
+    conn.execute(insert(alembic_version).values(version_num="0001"))
+    conn.execute(text("DROP TABLE schema_version"))
+    return "0001"
+
+
+def _upgrade(conn: Connection) -> None:
+    """Run Alembic's revisions up to head on this open connection, inside its transaction."""
+    from alembic import command
+    from alembic.config import Config
+
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS_DIR))
+    config.attributes["connection"] = conn
+    command.upgrade(config, "head")
 
 
 def _sqlite_pragmas(dbapi_conn: Any, _record: Any) -> None:
@@ -56,21 +82,36 @@ class Gateway:
         self._migrate()
 
     def _migrate(self) -> None:
+        """Create a fresh database at the head revision, or bring an existing one up to it (Alembic)."""
         with self.engine.begin() as conn:
-            metadata.create_all(conn)
-            current = conn.execute(select(func.max(schema_version.c.version))).scalar()
-            if current is None:
-                conn.execute(insert(schema_version).values(version=SCHEMA_VERSION))
+            if conn.dialect.name == "postgresql":
+                # several server processes may start at once on a shared store: one migrates, the rest wait
+                conn.execute(text("SELECT pg_advisory_xact_lock(7349201)"))
+            names = set(inspect(conn).get_table_names())
+            if "alembic_version" in names:
+                current = conn.execute(select(alembic_version.c.version_num)).scalar()
+            elif "schema_version" in names:
+                current = _adopt_legacy_schema(conn)
+            else:
+                metadata.create_all(conn)
+                conn.execute(insert(alembic_version).values(version_num=HEAD_REVISION))
                 return
-            for i in range(current - 1, len(MIGRATIONS)):
-                conn.execute(text(MIGRATIONS[i]))
-                conn.execute(insert(schema_version).values(version=i + 2))
+            if current != HEAD_REVISION:
+                _upgrade(conn)
 
     def schema_version(self) -> int:
+        """The database's schema revision as a number (revision ids are zero-padded counters)."""
         with self.engine.connect() as conn:
-            return int(conn.execute(select(func.max(schema_version.c.version))).scalar_one())
+            return int(conn.execute(select(alembic_version.c.version_num)).scalar_one())
+
+    @property
+    def dialect(self) -> str:
+        return self.engine.dialect.name
 
     def integrity_check(self) -> str:
+        """SQLite's own consistency check ("ok" when sound); a server database checks itself, so "ok" there."""
+        if self.dialect != "sqlite":
+            return "ok"
         with self.engine.connect() as conn:
             return str(conn.execute(text("PRAGMA integrity_check")).scalar_one())
 

@@ -11,6 +11,7 @@ from sqlalchemy import (
     select,
 )
 
+from app.store.audit import LOCAL_ACTOR, current_actor, record_event
 from app.store.engine import Gateway
 from app.store.records import (
     MAX_ID,
@@ -43,6 +44,8 @@ class MappingQueries(Gateway):
         if bad:
             raise StoreError(f"Unknown categories {bad}; allowed: {', '.join(CATEGORIES)}.")
         labels = labels or {}
+        if current_actor() != LOCAL_ACTOR:
+            author = current_actor()  # in team mode the signed-in account is the author, not a typed name
         with self._tx() as conn:
             row = conn.execute(select(mappings.c.id).where(mappings.c.name == name)).first()
             mapping_id = row.id if row else conn.execute(
@@ -62,6 +65,8 @@ class MappingQueries(Gateway):
                     {"version_id": version_id, "code": code, "category": cat, "label": labels.get(code, "")}
                     for code, cat in categories.items()
                 ])
+            record_event(conn, "mapping_version", f"mapping:{name}:{version}",
+                         {"codes": len(categories), "note": note})
         return self.get_mapping(name, version)
 
     def list_mappings(self) -> list[tuple[str, int]]:

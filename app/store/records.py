@@ -82,6 +82,8 @@ class Run:
     result: dict[str, Any] | None
     error: str | None
     seconds: float | None
+    #: who started it: the signed-in account in team mode, the local analyst otherwise
+    author: str | None = None
 
 
 @dataclass(frozen=True)

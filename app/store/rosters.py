@@ -18,6 +18,7 @@ from sqlalchemy import (
     update,
 )
 
+from app.store.audit import record_event
 from app.store.cells import fill_cells
 from app.store.engine import Gateway
 from app.store.records import (
@@ -71,6 +72,8 @@ class RosterQueries(Gateway):
                     duplicates=duplicates, columns=json.dumps(dict(columns)),
                 )
             ).inserted_primary_key[0]  # type: ignore[index]
+            record_event(conn, "import", f"roster:{roster_id}", {
+                "name": name, "source": source_name, "accepted": len(records), "rejected": len(rejected)})
             if len(records):
                 frame = records.loc[:, list(DEPARTURE_FIELDS)].astype(object)
                 frame = frame.where(pd.notna(frame), None)
@@ -139,7 +142,9 @@ class RosterQueries(Gateway):
 
     def delete_roster(self, roster_id: int) -> None:
         with self._tx() as conn:
+            name = conn.execute(select(rosters.c.name).where(rosters.c.id == roster_id)).scalar()
             conn.execute(delete(rosters).where(rosters.c.id == roster_id))
+            record_event(conn, "roster_delete", f"roster:{roster_id}", {"name": name})
 
     def departures(self, roster_id: int, *, with_raw: bool = False) -> pd.DataFrame:
         """All accepted departures of a roster, one row each, in source-line order."""
@@ -208,4 +213,6 @@ class RosterQueries(Gateway):
             elif values:
                 conn.execute(update(roster_settings).where(roster_settings.c.roster_id == roster_id)
                              .values(**values))
+            if values:
+                record_event(conn, "roster_settings", f"roster:{roster_id}", values)
         return self.settings(roster_id)

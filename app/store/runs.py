@@ -16,6 +16,7 @@ from sqlalchemy import (
     update,
 )
 
+from app.store.audit import current_actor, record_event
 from app.store.engine import Gateway
 from app.store.records import (
     MAX_ID,
@@ -39,13 +40,15 @@ class RunQueries(Gateway):
         status: RunStatus = "queued", progress_total: int = 0,
     ) -> int:
         with self._tx() as conn:
-            return int(conn.execute(insert(runs).values(
+            run_id = int(conn.execute(insert(runs).values(
                 kind=kind, roster_id=roster_id, status=status, created_at=now_iso(),
                 mapping_name=mapping_name, mapping_version=mapping_version,
                 window_from=window[0] if window else None, window_to=window[1] if window else None,
                 params=json.dumps(dict(params)), fingerprint=fingerprint, progress_done=0,
-                progress_total=progress_total, cancel_requested=False,
+                progress_total=progress_total, cancel_requested=False, author=current_actor(),
             )).inserted_primary_key[0])  # type: ignore[index]
+            record_event(conn, "run_start", f"run:{run_id}", {"kind": kind, "roster": roster_id, **params})
+            return run_id
 
     def _run_from_row(self, row: Any) -> Run:
         m = row._mapping
@@ -56,7 +59,7 @@ class RunQueries(Gateway):
             mapping_name=m["mapping_name"], mapping_version=m["mapping_version"], window=window,
             params=json.loads(m["params"]), fingerprint=m["fingerprint"],
             progress_done=m["progress_done"], progress_total=m["progress_total"],
-            cancel_requested=bool(m["cancel_requested"]),
+            cancel_requested=bool(m["cancel_requested"]), author=m["author"],
             result=json.loads(m["result"]) if m["result"] else None, error=m["error"], seconds=m["seconds"],
         )
 
@@ -110,10 +113,12 @@ class RunQueries(Gateway):
                 params=json.dumps(dict(params)), status=status, cancel_requested=False, error=None,
                 progress_total=int(params.get("resamples", 0)), finished_at=None,
             ))
+            record_event(conn, "run_extend", f"run:{run_id}", {"resamples": params.get("resamples")})
 
     def request_cancel(self, run_id: int) -> None:
         with self._tx() as conn:
             conn.execute(update(runs).where(runs.c.id == run_id).values(cancel_requested=True))
+            record_event(conn, "run_cancel", f"run:{run_id}")
 
     def cancel_requested(self, run_id: int) -> bool:
         with self.engine.connect() as conn:

@@ -1,7 +1,8 @@
-"""Table definitions and the ordered schema migrations of the store (SQLAlchemy Core metadata).
+"""Table definitions of the store (SQLAlchemy Core metadata) and the schema revision they correspond to.
 
-Version 1 is ``metadata.create_all``; each later change appends SQL to ``MIGRATIONS``; ``schema_version``
-records what a database has applied.
+A fresh database is created from these definitions and stamped ``HEAD_REVISION``; an existing database is
+brought up to it by the Alembic revisions in :mod:`app.store.migrations`. Change a table here and add a
+revision there, in the same commit.
 """
 
 from __future__ import annotations
@@ -22,7 +23,11 @@ from sqlalchemy import (
 
 metadata = MetaData()
 
-schema_version = Table("schema_version", metadata, Column("version", Integer, nullable=False))
+#: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
+HEAD_REVISION = "0005"
+
+#: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
+alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
 
 rosters = Table(
     "rosters", metadata,
@@ -129,6 +134,7 @@ runs = Table(
     Column("result", Text),  # JSON
     Column("error", Text),
     Column("seconds", Float),
+    Column("author", String),
 )
 
 run_replicates = Table(
@@ -215,36 +221,41 @@ FILL_ROSTER_FIRM_CELLS = (
     "GROUP BY roster_id, firm_id, year, sector, reason"
 )
 
-#: ordered schema migrations; index i+1 is the version after applying MIGRATIONS[i].
-MIGRATIONS: list[str] = [
-    # 2: each departure keeps its raw spelling of the reason code beside the shown code (one code per spelling)
-    "ALTER TABLE departures ADD COLUMN reason_raw VARCHAR",
-    # 3: rows stored before version 2 were imported spelling by spelling, so the raw spelling is the code
-    "UPDATE departures SET reason_raw = reason WHERE reason_raw IS NULL",
-    # 4-9: universes of firm-years
-    "CREATE TABLE IF NOT EXISTS universes (id INTEGER NOT NULL PRIMARY KEY, roster_id INTEGER NOT NULL "
-    "REFERENCES rosters (id) ON DELETE CASCADE, source VARCHAR NOT NULL, source_name VARCHAR NOT NULL, "
-    "sha256 VARCHAR(64) NOT NULL, fingerprint VARCHAR NOT NULL, imported_at VARCHAR NOT NULL, "
-    "shape VARCHAR NOT NULL, rows_total INTEGER NOT NULL, rejected INTEGER NOT NULL, firms INTEGER NOT NULL, "
-    "firm_years INTEGER NOT NULL, columns TEXT NOT NULL)",
-    "CREATE INDEX IF NOT EXISTS ix_universes_roster_id ON universes (roster_id)",
-    "CREATE TABLE IF NOT EXISTS universe_firm_years (universe_id INTEGER NOT NULL REFERENCES universes (id) "
-    "ON DELETE CASCADE, firm_id VARCHAR NOT NULL, year INTEGER NOT NULL, UNIQUE (universe_id, firm_id, year))",
-    "CREATE INDEX IF NOT EXISTS ix_universe_firm_years_universe_id ON universe_firm_years (universe_id)",
-    "CREATE TABLE IF NOT EXISTS universe_rejected (id INTEGER NOT NULL PRIMARY KEY, universe_id INTEGER NOT "
-    "NULL REFERENCES universes (id) ON DELETE CASCADE, line INTEGER NOT NULL, raw TEXT NOT NULL, "
-    "reason TEXT NOT NULL)",
-    "CREATE INDEX IF NOT EXISTS ix_universe_rejected_universe_id ON universe_rejected (universe_id)",
-    # 10-15: the cell store, filled for the rosters already stored
-    "CREATE TABLE IF NOT EXISTS roster_cells (roster_id INTEGER NOT NULL REFERENCES rosters (id) "
-    "ON DELETE CASCADE, year INTEGER NOT NULL, sector VARCHAR, reason VARCHAR NOT NULL, "
-    "departures INTEGER NOT NULL)",
-    "CREATE INDEX IF NOT EXISTS ix_roster_cells_roster_id ON roster_cells (roster_id)",
-    "CREATE TABLE IF NOT EXISTS roster_firm_cells (roster_id INTEGER NOT NULL REFERENCES rosters (id) "
-    "ON DELETE CASCADE, firm_id VARCHAR NOT NULL, year INTEGER NOT NULL, sector VARCHAR, "
-    "reason VARCHAR NOT NULL, departures INTEGER NOT NULL)",
-    "CREATE INDEX IF NOT EXISTS ix_roster_firm_cells_roster_id ON roster_firm_cells (roster_id)",
-    FILL_ROSTER_CELLS,
-    FILL_ROSTER_FIRM_CELLS,
-]
-SCHEMA_VERSION = 1 + len(MIGRATIONS)
+# -- team mode: accounts, their API tokens, the audit trail, and secrets shared by every server process ------
+
+accounts = Table(
+    "accounts", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String, nullable=False, unique=True),
+    Column("role", String, nullable=False),
+    Column("password_hash", String, nullable=False),  # argon2id, never the password
+    Column("created_at", String, nullable=False),
+    Column("session_epoch", Integer, nullable=False, default=0),  # bumped to sign every session out
+    sqlite_autoincrement=True,
+)
+
+api_tokens = Table(
+    "api_tokens", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("account_id", Integer, ForeignKey("accounts.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("token_sha256", String(64), nullable=False, unique=True),  # the token itself is shown once
+    Column("created_at", String, nullable=False),
+    sqlite_autoincrement=True,
+)
+
+audit_events = Table(
+    "audit_events", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("at", String, nullable=False, index=True),
+    Column("actor", String, nullable=False, index=True),
+    Column("action", String, nullable=False),
+    Column("target", String, nullable=False),
+    Column("detail", Text, nullable=False),  # JSON
+    sqlite_autoincrement=True,
+)
+
+app_secrets = Table(
+    "app_secrets", metadata,
+    Column("name", String, primary_key=True),
+    Column("value", String, nullable=False),
+)

@@ -14,7 +14,7 @@ from starlette.exceptions import HTTPException
 from app import __version__
 from app.config import Settings
 from app.store import Store
-from app.web import briefing, coverage, reasons, resampling, rosters, sectors, trend, universe
+from app.web import auth, briefing, coverage, reasons, resampling, rosters, sectors, trend, universe
 from app.web.deps import BadRequest, NotFound
 from app.web.rendering import STATIC_DIR, render, templates
 from app.web.schemas import HealthBody
@@ -70,6 +70,8 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     interrupted = store.mark_interrupted()
     app.state.interrupted_at_start = interrupted
 
+    # added first, so it runs inside the Host/Origin checks of SecurityMiddleware
+    app.add_middleware(auth.AuthMiddleware, store=store)
     app.add_middleware(SecurityMiddleware, allowed_hosts=settings.allowed_hosts,
                        upload_limit=settings.upload_limit)
     app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
@@ -90,7 +92,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     def health() -> dict[str, object]:
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (rosters, reasons, coverage, trend, resampling, sectors, briefing, universe):
+    for module in (auth, rosters, reasons, coverage, trend, resampling, sectors, briefing, universe):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)

@@ -1,0 +1,1 @@
+"""Revision files, one schema change each, applied in ``down_revision`` order."""

@@ -1,0 +1,228 @@
+"""Team mode: sign-in, roles and the audit page. On as soon as the store holds one account.
+
+With no account Helmshift stays the single analyst's loopback tool it always was. With accounts every page
+and API needs a signed-in session (a signed, expiring cookie) or an API token (``Authorization: Bearer``),
+and each request is checked against the role it needs:
+
+* viewer: read every page and API, download exports;
+* analyst: also import, map, set windows, start, stop and extend runs (every other POST);
+* admin: also delete (any path ending in ``/delete``) and read the audit trail.
+
+Plain ASGI middleware, like :mod:`app.web.security`, so that no route can be forgotten: the role a request
+needs follows from its method and path, and ``tests/test_roles.py`` walks the whole route table.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import time
+from collections.abc import Awaitable, Callable, MutableMapping
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from typing import Any
+from urllib.parse import quote
+
+from fastapi import APIRouter, Request
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from itsdangerous import BadSignature, URLSafeTimedSerializer
+
+from app.store import Account, AuditEvent, Store
+from app.store.accounts import FAILED_LOGIN_WINDOW, MAX_FAILED_LOGINS
+from app.store.audit import reset_actor, set_actor
+from app.types import AccountRole
+from app.web.rendering import as_json, render
+
+Scope = MutableMapping[str, Any]
+Message = MutableMapping[str, Any]
+Receive = Callable[[], Awaitable[Message]]
+Send = Callable[[Message], Awaitable[None]]
+ASGIApp = Callable[[Scope, Receive, Send], Awaitable[None]]
+
+COOKIE = "helmshift_session"
+SESSION_SECONDS = 12 * 3600
+SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
+PUBLIC_PREFIXES = ("/static/", "/vendor/")
+PUBLIC_PATHS = frozenset({"/login", "/api/health"})
+ADMIN_PATH = re.compile(r"(/delete$)|(^/(api/)?audit$)")
+#: how long the "is any account there?" answer is reused (team mode switches on within this time)
+_ACCOUNTS_TTL = 2.0
+
+
+def required_role(method: str, path: str) -> AccountRole | None:
+    """The least role a request needs in team mode; ``None`` for the sign-in page and static files."""
+    if path in PUBLIC_PATHS or path.startswith(PUBLIC_PREFIXES):
+        return None
+    if ADMIN_PATH.search(path):
+        return "admin"
+    if method.upper() in SAFE_METHODS or path == "/logout":
+        return "viewer"
+    return "analyst"
+
+
+def _serializer(store: Store) -> URLSafeTimedSerializer:
+    return URLSafeTimedSerializer(store.secret("session"), salt="helmshift-session")
+
+
+def session_cookie_value(store: Store, account: Account) -> str:
+    return _serializer(store).dumps({"a": account.id, "e": account.session_epoch})
+
+
+def account_from_cookie(store: Store, value: str) -> Account | None:
+    try:
+        data = _serializer(store).loads(value, max_age=SESSION_SECONDS)
+        account = store.get_account(int(data["a"]))
+    except (BadSignature, KeyError, TypeError, ValueError):
+        return None
+    return account if account.session_epoch == data.get("e") else None
+
+
+def _wants_html(method: str, path: str, headers: dict[str, str]) -> bool:
+    return (method in SAFE_METHODS and not path.startswith("/api/")
+            and "application/json" not in headers.get("accept", ""))
+
+
+class AuthMiddleware:
+    """Sign-in and role checks whenever the store holds an account."""
+
+    def __init__(self, app: ASGIApp, *, store: Store) -> None:
+        self.app = app
+        self.store = store
+        self._checked_at = -1e9
+        self._team_mode = False
+
+    def team_mode(self) -> bool:
+        now = time.monotonic()
+        if now - self._checked_at > _ACCOUNTS_TTL:
+            self._team_mode = self.store.has_accounts()
+            self._checked_at = now
+        return self._team_mode
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http" or not self.team_mode():
+            await self.app(scope, receive, send)
+            return
+        method = scope.get("method", "GET").upper()
+        path = scope.get("path", "/")
+        headers = {k.decode("latin-1").lower(): v.decode("latin-1") for k, v in scope.get("headers", [])}
+        account = self._identify(headers)
+        scope.setdefault("state", {})["account"] = account
+        needed = required_role(method, path)
+        if needed is not None:
+            if account is None:
+                if _wants_html(method, path, headers):
+                    target = path + (("?" + scope["query_string"].decode("latin-1")) if scope.get("query_string") else "")
+                    await _send(send, 303, b"", [(b"location", f"/login?next={quote(target)}".encode())])
+                else:
+                    await _json(send, 401, "Sign in first: this Helmshift has accounts (send a session cookie "
+                                           "or an API token as 'Authorization: Bearer ...').",
+                                [(b"www-authenticate", b'Bearer realm="helmshift"')])
+                return
+            if not account.may(needed):
+                await _json(send, 403, f"Your role ({account.role}) may not do this; it needs {needed}.")
+                return
+        token = set_actor(account.name) if account is not None else None
+        try:
+            await self.app(scope, receive, send)
+        finally:
+            if token is not None:
+                reset_actor(token)
+
+    def _identify(self, headers: dict[str, str]) -> Account | None:
+        auth = headers.get("authorization", "")
+        if auth.lower().startswith("bearer "):
+            return self.store.account_for_token(auth[7:].strip())
+        for part in headers.get("cookie", "").split(";"):
+            name, _, value = part.strip().partition("=")
+            if name == COOKIE and value:
+                return account_from_cookie(self.store, value)
+        return None
+
+
+async def _send(send: Send, status: int, body: bytes, headers: list[tuple[bytes, bytes]]) -> None:
+    await send({"type": "http.response.start", "status": status,
+                "headers": [(b"content-length", str(len(body)).encode()), *headers]})
+    await send({"type": "http.response.body", "body": body})
+
+
+async def _json(send: Send, status: int, message: str, headers: list[tuple[bytes, bytes]] | None = None) -> None:
+    body = json.dumps({"error": message}).encode()
+    await _send(send, status, body, [(b"content-type", b"application/json"), *(headers or [])])
+
+
+# -- pages: sign in, sign out, the audit trail ---------------------------------------------------------
+
+router = APIRouter()
+
+
+@dataclass(frozen=True)
+class LoginPage:
+    next: str
+    message: str | None
+    username: str
+
+
+@dataclass(frozen=True)
+class AuditPage:
+    events: list[AuditEvent]
+    user: str | None
+    action: str | None
+    since: str | None
+
+
+def _safe_next(value: str | None) -> str:
+    """Only a path on this server (never another site) may follow a sign-in."""
+    if value and value.startswith("/") and not value.startswith("//") and "\\" not in value:
+        return value
+    return "/"
+
+
+@router.get("/login", name="login_page", response_class=HTMLResponse, include_in_schema=False)
+def login_page(request: Request, next: str = "/") -> HTMLResponse:
+    return render(request, "login.html", LoginPage(_safe_next(next), None, ""))
+
+
+@router.post("/login", name="login_submit", include_in_schema=False)
+async def login_submit(request: Request) -> Response:
+    store: Store = request.app.state.store
+    form = await request.form()
+    username = str(form.get("username", "")).strip()
+    password = str(form.get("password", ""))
+    target = _safe_next(str(form.get("next", "/")))
+    failures, oldest = store.failed_logins_recently(username)
+    if failures >= MAX_FAILED_LOGINS and oldest is not None:
+        wait = FAILED_LOGIN_WINDOW - (datetime.now(UTC) - datetime.fromisoformat(oldest))
+        minutes = max(1, int(wait.total_seconds() // 60) + 1)
+        page = LoginPage(target, f"Too many failed sign-ins for {username!r}; try again in {minutes} minute(s).",
+                         username)
+        return render(request, "login.html", page, status=429)
+    account = store.check_password(username, password)
+    if account is None:
+        return render(request, "login.html", LoginPage(target, "Wrong name or password.", username), status=401)
+    response = RedirectResponse(target, status_code=303)
+    response.set_cookie(COOKIE, session_cookie_value(store, account), max_age=SESSION_SECONDS, httponly=True,
+                        samesite="strict", secure=request.url.scheme == "https", path="/")
+    return response
+
+
+@router.post("/logout", name="logout", include_in_schema=False)
+def logout(request: Request) -> Response:
+    response = RedirectResponse("/login", status_code=303)
+    response.delete_cookie(COOKIE, path="/", httponly=True, samesite="strict",
+                           secure=request.url.scheme == "https")
+    return response
+
+
+def audit_data(store: Store, *, user: str | None, action: str | None, since: str | None) -> AuditPage:
+    return AuditPage(store.audit_events(user=user or None, action=action or None, since=since or None, limit=500),
+                     user or None, action or None, since or None)
+
+
+@router.get("/audit", name="audit_page", response_class=HTMLResponse, include_in_schema=False)
+def audit_page(request: Request, user: str = "", action: str = "", since: str = "") -> HTMLResponse:
+    return render(request, "audit.html", audit_data(request.app.state.store, user=user, action=action, since=since))
+
+
+@router.get("/api/audit", name="audit_api", include_in_schema=False)
+def audit_api(request: Request, user: str = "", action: str = "", since: str = "") -> JSONResponse:
+    return as_json(audit_data(request.app.state.store, user=user, action=action, since=since))

@@ -1,0 +1,254 @@
+"""Team mode: accounts, sign-in, roles on every route, tokens, sessions and the audit trail.
+
+The role each request needs follows from its method and path (app/web/auth.py); these tests walk the app's
+whole route table, so a new route is covered the day it is added. Role names and the 401/403 split follow
+common practice for web APIs (RFC 9110 sections 15.5.2 and 15.5.4: 401 = not authenticated, 403 = not
+allowed).
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterator
+from typing import Any
+
+import pytest
+from fastapi.testclient import TestClient
+
+from app.config import Settings
+from app.store import Store
+from app.web.app import create_app
+from app.web.auth import COOKIE, required_role
+
+PASSWORD = "correct horse battery"
+ROLES = ("viewer", "analyst", "admin")
+RANK = {None: -1, "viewer": 0, "analyst": 1, "admin": 2}
+
+
+def every_route(app: Any) -> list[tuple[str, str]]:
+    """(method, path template) of every route the app serves, found by walking its routers."""
+    found: list[tuple[str, str]] = []
+
+    def walk(routes: Any) -> None:
+        for route in routes:
+            methods, path = getattr(route, "methods", None), getattr(route, "path", None)
+            if methods and path:
+                found.extend((m, path) for m in sorted(methods) if m != "HEAD")
+            elif hasattr(route, "original_router"):
+                walk(route.original_router.routes)
+            elif hasattr(route, "routes"):
+                walk(route.routes)
+
+    walk(app.routes)
+    return sorted(set(found))
+
+
+def fill(path: str, ids: dict[str, str]) -> str:
+    def one(match: re.Match[str]) -> str:
+        name = match.group(1).split(":")[0]
+        return ids.get(name, "1")
+    return re.sub(r"\{([^}]+)\}", one, path)
+
+
+@pytest.fixture
+def team(demo_store: Store) -> Iterator[tuple[TestClient, Store, dict[str, str]]]:
+    for role in ROLES:
+        demo_store.add_account(f"{role}1", role, PASSWORD)
+    app = create_app(Settings(db_url=demo_store.url), demo_store, start_jobs=False)
+    roster = demo_store.list_rosters()[0]
+    run_id = demo_store.create_run(kind="fit", roster_id=roster.id, params={"model": "linear"}, fingerprint="x",
+                                   mapping_name=None, mapping_version=None, window=None, status="done")
+    name, _ = demo_store.list_mappings()[0]
+    ids = {"roster_id": str(roster.id), "run_id": str(run_id), "name": name, "mapping": name, "version": "1",
+           "chart": "trend", "fmt": "png", "path": "css/helmshift.css"}
+    with TestClient(app) as client:
+        yield client, demo_store, ids
+
+
+def sign_in(client: TestClient, name: str, password: str = PASSWORD) -> Any:
+    return client.post("/login", data={"username": name, "password": password, "next": "/rosters"},
+                       follow_redirects=False)
+
+
+def test_the_role_rules() -> None:
+    assert required_role("GET", "/login") is None and required_role("GET", "/static/css/x.css") is None
+    assert required_role("GET", "/rosters/1/trend") == "viewer"
+    assert required_role("GET", "/api/runs/3") == "viewer"
+    assert required_role("POST", "/rosters/1/coverage") == "analyst"
+    assert required_role("POST", "/rosters/1/delete") == "admin"
+    assert required_role("GET", "/audit") == "admin" and required_role("GET", "/api/audit") == "admin"
+    assert required_role("POST", "/logout") == "viewer"
+
+
+def test_every_route_for_every_role(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    client, store, ids = team
+    routes = every_route(client.app)
+    assert len(routes) > 30
+    # signing out and deleting last, so that the session and the roster stay for every other request
+    routes.sort(key=lambda r: (r[1] == "/logout", r[1].endswith("/delete")))
+    checked = 0
+    for who in (None, *ROLES):
+        client.cookies.clear()
+        if who:
+            assert sign_in(client, f"{who}1").status_code == 303
+        for method, template in routes:
+            if who == "admin" and template.endswith("/delete"):
+                continue  # would remove the roster the later checks need; covered below
+            path = fill(template, ids)
+            needed = required_role(method, path)
+            r = client.request(method, path, follow_redirects=False, headers={"accept": "application/json"})
+            if needed is None:
+                # open to everyone (the sign-in form itself answers 401 to an empty name and password)
+                assert r.status_code != 403 and (r.status_code != 401 or path == "/login"), (who, method, path)
+            elif who is None:
+                assert r.status_code == 401, (method, path, r.status_code)
+            elif RANK[who] < RANK[needed]:
+                assert r.status_code == 403, (who, method, path, r.status_code)
+                assert needed in r.json()["error"]
+            else:
+                assert r.status_code not in (401, 403), (who, method, path, r.status_code, r.text[:200])
+            checked += 1
+    assert checked > 4 * 30
+    assert store.list_rosters(), "no delete may have passed for a role below admin"
+
+
+def test_an_admin_may_delete(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    client, store, ids = team
+    sign_in(client, "analyst1")
+    assert client.post(f"/rosters/{ids['roster_id']}/delete", data={"confirm": "yes"}).status_code == 403
+    client.cookies.clear()
+    sign_in(client, "admin1")
+    r = client.post(f"/rosters/{ids['roster_id']}/delete", data={"confirm": "yes"}, follow_redirects=False)
+    assert r.status_code in (200, 303)
+    assert store.list_rosters() == []
+    events = store.audit_events(action="roster_delete")
+    assert [e.user for e in events] == ["admin1"]
+
+
+def test_anonymous_pages_go_to_sign_in_and_back(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    client, _, ids = team
+    r = client.get(f"/rosters/{ids['roster_id']}/trend?years=2000-2010", follow_redirects=False)
+    assert r.status_code == 303 and r.headers["location"].startswith("/login?next=")
+    login = client.get(r.headers["location"])
+    assert login.status_code == 200 and 'name="password"' in login.text
+    assert 'value="/rosters/1/trend?years=2000-2010"' in login.text.replace(ids["roster_id"], "1", 1)
+    # health and static files stay open: they hold no roster data
+    assert client.get("/api/health").status_code == 200
+    assert client.get("/static/css/helmshift.css").status_code == 200
+
+
+def test_sign_in_sets_a_strict_session_cookie(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    client, _, _ = team
+    r = sign_in(client, "viewer1")
+    assert r.status_code == 303 and r.headers["location"] == "/rosters"
+    cookie = r.headers["set-cookie"]
+    assert cookie.startswith(f"{COOKIE}=")
+    assert "HttpOnly" in cookie and "SameSite=strict" in cookie.replace("Strict", "strict")
+    assert "Max-Age=43200" in cookie and "Secure" not in cookie  # plain http on loopback
+    assert client.get("/rosters").status_code == 200
+    client.post("/logout")
+    assert client.get("/api/rosters").status_code == 401
+
+
+def test_next_never_leaves_the_site(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    client, _, _ = team
+    for target in ("https://elsewhere.example/", "//elsewhere.example/x", "/\\elsewhere.example"):
+        r = client.post("/login", data={"username": "viewer1", "password": PASSWORD, "next": target},
+                        follow_redirects=False)
+        assert r.headers["location"] == "/"
+        client.cookies.clear()
+
+
+def test_wrong_passwords_are_refused_and_then_rate_limited(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    client, store, _ = team
+    for _ in range(5):
+        r = sign_in(client, "analyst1", "wrong password!")
+        assert r.status_code == 401 and "Wrong name or password" in r.text
+    r = sign_in(client, "analyst1")  # even the right password waits now
+    assert r.status_code == 429 and "Too many failed sign-ins" in r.text
+    assert COOKIE not in r.headers.get("set-cookie", "")
+    # an unknown name answers exactly like a wrong password
+    assert sign_in(client, "nobody", "whatever at all").status_code == 401
+    failed = store.audit_events(action="login_failed")
+    assert len(failed) == 6 and {e.user for e in failed} == {"analyst1", "nobody"}
+
+
+def test_expired_and_revoked_sessions(team: tuple[TestClient, Store, dict[str, str]],
+                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    import itsdangerous.timed
+
+    from app.web.auth import session_cookie_value
+
+    client, store, _ = team
+    account = store.get_account("viewer1")
+    real_time = itsdangerous.timed.time.time
+    monkeypatch.setattr(itsdangerous.timed.time, "time", lambda: real_time() - 13 * 3600)
+    old = session_cookie_value(store, account)
+    monkeypatch.setattr(itsdangerous.timed.time, "time", real_time)
+
+    def answer(cookie: str) -> int:
+        client.cookies.set(COOKIE, cookie)
+        return client.get("/api/rosters").status_code
+
+    assert answer(old) == 401
+    fresh = session_cookie_value(store, account)
+    assert answer(fresh) == 200
+    assert answer(fresh[:-2] + ("xx" if not fresh.endswith("xx") else "yy")) == 401
+    store.set_password("viewer1", "another long password")
+    assert answer(fresh) == 401
+
+
+def test_api_tokens_carry_the_accounts_role(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    client, store, ids = team
+    token = store.create_token("viewer1")
+    assert token.startswith("hs_") and len(token) > 40
+    auth = {"authorization": f"Bearer {token}"}
+    assert client.get("/api/rosters", headers=auth).status_code == 200
+    r = client.post(f"/rosters/{ids['roster_id']}/window", headers=auth, data={"window_from": "2000"})
+    assert r.status_code == 403
+    assert client.get("/api/rosters", headers={"authorization": "Bearer hs_not-a-token"}).status_code == 401
+    store.remove_account("viewer1")
+    assert client.get("/api/rosters", headers=auth).status_code == 401
+
+
+def test_cross_site_posts_are_still_refused_when_signed_in(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    client, store, ids = team
+    sign_in(client, "admin1")
+    r = client.post(f"/rosters/{ids['roster_id']}/delete", data={"confirm": "yes"},
+                    headers={"origin": "http://elsewhere.example"})
+    assert r.status_code == 403
+    assert store.list_rosters()
+
+
+def test_the_audit_trail_names_the_user_of_every_change(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    client, store, ids = team
+    sign_in(client, "analyst1")
+    roster = ids["roster_id"]
+    assert client.post(f"/rosters/{roster}/window", data={"window_from": "2000", "window_to": "2015"},
+                       follow_redirects=False).status_code in (200, 303)
+    r = client.post(f"/rosters/{roster}/resampling", data={"unit": "departure", "resamples": "100", "seed": "4"},
+                    follow_redirects=False)
+    assert r.status_code == 303
+    events = store.audit_events(user="analyst1")
+    actions = {e.action for e in events}
+    assert {"roster_settings", "run_start"} <= actions
+    run = max(store.list_runs(int(roster), "bootstrap"), key=lambda r: r.id)
+    assert run.author == "analyst1"
+    # the admin page shows them; an analyst may not read it
+    assert client.get("/audit").status_code == 403
+    client.cookies.clear()
+    sign_in(client, "admin1")
+    page = client.get("/api/audit", params={"user": "analyst1"})
+    assert page.status_code == 200
+    assert {e["action"] for e in page.json()["events"]} >= {"roster_settings", "run_start"}
+    assert "analyst1" in client.get("/audit").text
+
+
+def test_no_account_means_single_analyst_mode(demo_store: Store) -> None:
+    app = create_app(Settings(db_url=demo_store.url), demo_store, start_jobs=False)
+    with TestClient(app) as client:
+        assert client.get("/api/rosters").status_code == 200
+        assert client.get("/rosters").status_code == 200
+        roster = demo_store.list_rosters()[0]
+        client.post(f"/rosters/{roster.id}/window", data={"window_from": "2000", "window_to": "2015"})
+    assert demo_store.audit_events(action="roster_settings")[0].user == "local analyst"
