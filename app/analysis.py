@@ -15,7 +15,8 @@ from app.spreadsheet_safety import safe_csv
 from app.stats.cells import Cells, assign_categories, build_cells
 from app.stats.coverage import WindowSuggestion, YearFlag, coverage_table, flag_years, suggest_window
 from app.stats.sectors import SectorTrends, fit_sector_trends, sector_trends_to_dict
-from app.stats.trend import TrendFit, fit_to_dict, fit_trend, trend_sentence
+from app.stats.trend import TrendFit, fit_trend
+from app.stats.trend_report import fit_to_dict, trend_sentence
 from app.store import MappingVersion, Roster, Run, Store, StoreError
 from app.types import CATEGORIES, UNMAPPED
 

@@ -14,7 +14,7 @@ from app.charts import untitled
 from app.deck import Finding, build_deck
 from app.export import Provenance, figure_bytes
 from app.findings import CHART_NAMES, ChartFinding, build_finding, latest_bootstrap
-from app.stats.trend import trend_sentence
+from app.stats.trend_report import trend_sentence
 from app.store import Store
 
 ExportFormat = Literal["png", "svg", "pdf", "pptx", "brief"]

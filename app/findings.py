@@ -19,7 +19,8 @@ from app.charts import bootstrap_histogram, coverage_figure, forest_figure, tren
 from app.export import Provenance
 from app.jobs import replicate_odds_ratios
 from app.stats.sectors import SectorTrends
-from app.stats.trend import TrendFit, trend_sentence
+from app.stats.trend import TrendFit
+from app.stats.trend_report import trend_sentence
 from app.store import Run, Store, StoreError
 
 if TYPE_CHECKING:

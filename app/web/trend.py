@@ -10,7 +10,8 @@ from fastapi.responses import HTMLResponse, JSONResponse
 
 from app.analysis import load_input, run_trend
 from app.findings import trend_finding_from_fit
-from app.stats.trend import TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
+from app.stats.trend import TREND_KINDS, TrendError, TrendFit
+from app.stats.trend_report import fit_to_dict, trend_sentence
 from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
