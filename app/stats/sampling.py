@@ -19,7 +19,7 @@ Resamples come in blocks of ``BLOCK_SIZE``; block k draws from
 ``numpy.random.default_rng(SeedSequence(seed, spawn_key=(k,)))`` and is always drawn and fitted
 whole. Resample i is therefore the same number whatever the chunk size, the worker count, or
 whether it came from one run or from extending a shorter one. How draws are counted and multiplied
-(pass sizes, dense or sparse products) never changes them.
+(pass sizes, the product) never changes them.
 """
 
 from __future__ import annotations
@@ -48,9 +48,6 @@ PASS_COUNTS = 2**18
 #: 250,000 firms made the time grow faster than the firm count)
 MIN_PASS_ROWS = 4
 MAX_RESAMPLES = 10_000_000
-#: dense float GEMM beats the sparse product while the dense matrix has at most this many
-#: entries per stored non-zero (measured in benchmarks/bench_bootstrap.py)
-DENSE_PER_NONZERO = 8
 
 Progress = Callable[[int, int], None]
 StopCheck = Callable[[], bool]
@@ -109,8 +106,10 @@ class CellSampler:
     Firm draws are ``rng.integers(0, n_firms, size=(rows, n_firms))``, consumed in passes of at
     least ``MIN_PASS_ROWS`` resamples; each resample's draws are counted per firm by ``bincount``
     (a scatter into one cache-resident vector) into a reused multiplicity block, and the block goes
-    through one product with the firm x cell matrix (sparse, transposed to cell x firm CSR in the
-    cell order, or dense when that is smaller).
+    through one product with the firm x cell matrix, transposed to cell x firm CSR in the cell
+    order. (A dense float32 GEMM, used up to 2026-12 when the dense matrix had at most 8 entries
+    per non-zero, measured 7-20x slower than the sparse product on every roster shape tried, from
+    500 to 100,000 firms: benchmarks/README.md.)
     """
 
     def __init__(self, cells: Cells, unit: Unit) -> None:
@@ -120,7 +119,6 @@ class CellSampler:
         self.pvals = self.counts / self.total if self.total else self.counts.astype(float)
         matrix = sparse.csr_matrix(cells.firm_matrix, dtype=np.float64)
         self.n_firms = matrix.shape[0]
-        self.dense: np.ndarray | None = None
         self.sparse_t: sparse.csr_matrix | None = None
         self.dtype: type[np.floating] = np.float64
         if unit == "firm":
@@ -129,10 +127,7 @@ class CellSampler:
             # float32 sums of whole numbers are exact below 2**24, and no resample can count more
             # than n_firms times the largest entry in a cell; half the bytes to move per product
             self.dtype = np.float32 if self.n_firms * float(matrix.max()) < 2**24 else np.float64
-            if matrix.shape[0] * matrix.shape[1] <= DENSE_PER_NONZERO * max(matrix.nnz, 1):
-                self.dense = matrix.toarray().astype(self.dtype)
-            else:
-                self.sparse_t = matrix.T.tocsr().astype(self.dtype)
+            self.sparse_t = matrix.T.tocsr().astype(self.dtype)
 
     def pass_rows(self, rows: int) -> int:
         """Resamples drawn per pass for a request of ``rows``."""
@@ -145,25 +140,17 @@ class CellSampler:
         out = np.empty((rows, self.counts.size))
         per_pass = self.pass_rows(rows)
         n_firms = self.n_firms
-        if self.dense is not None:
-            block = np.empty((per_pass, n_firms), dtype=self.dtype)
-        else:
-            # firm-major, so that the sparse product reads each firm's counts together
-            block = np.empty((n_firms, per_pass), dtype=self.dtype)
+        assert self.sparse_t is not None
+        # firm-major, so that the sparse product reads each firm's counts together
+        block = np.empty((n_firms, per_pass), dtype=self.dtype)
         for lo in range(0, rows, per_pass):
             r = min(per_pass, rows - lo)
             # successive calls continue one stream, so pass sizes never change the draws
             idx = rng.integers(0, n_firms, size=(r, n_firms))
-            if self.dense is not None:
-                for j in range(r):
-                    block[j] = np.bincount(idx[j], minlength=n_firms)
-                out[lo:lo + r] = block[:r] @ self.dense
-            else:
-                assert self.sparse_t is not None
-                for j in range(r):
-                    block[:, j] = np.bincount(idx[j], minlength=n_firms)
-                mult = block if r == per_pass else np.ascontiguousarray(block[:, :r])
-                out[lo:lo + r] = (self.sparse_t @ mult).T
+            for j in range(r):
+                block[:, j] = np.bincount(idx[j], minlength=n_firms)
+            mult = block if r == per_pass else np.ascontiguousarray(block[:, :r])
+            out[lo:lo + r] = (self.sparse_t @ mult).T
         return out
 
 
