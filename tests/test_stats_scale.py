@@ -133,8 +133,10 @@ def test_firm_draws_are_the_counted_uniform_draws_whatever_the_pass_size(monkeyp
     idx = rng.integers(0, 3_000, size=(250, 3_000))
     dense = cells.firm_matrix.toarray()
     expected = np.stack([dense[row].sum(axis=0) for row in idx])
-    for pass_counts, min_rows in [(2**18, 4), (1, 1), (2**20, 16), (1, 3), (2**18, 250)]:
-        monkeypatch.setattr(sampling, "PASS_COUNTS", pass_counts)
+    for pass_rows, pass_values, min_rows in [(25, 2**23, 4), (1, 2**23, 1), (250, 2**23, 4), (7, 1, 3),
+                                             (250, 1, 250)]:
+        monkeypatch.setattr(sampling, "PASS_ROWS", pass_rows)
+        monkeypatch.setattr(sampling, "PASS_VALUES", pass_values)
         monkeypatch.setattr(sampling, "MIN_PASS_ROWS", min_rows)
         np.testing.assert_array_equal(draw_cells(cells, unit="firm", seed=6, block=1), expected)
 

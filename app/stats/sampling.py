@@ -40,12 +40,14 @@ from app.types import UNITS, Unit, check_choice
 
 #: resamples per independently seeded block; changing it changes every stored run's numbers
 BLOCK_SIZE = 250
-#: firm draws generated per pass (8 bytes each): a pass of 2**18 keeps the draws and the counts
-#: cache-sized at 25,000 firms (benchmarks/bench_bootstrap.py). Pass sizes never change the draws.
-PASS_COUNTS = 2**18
-#: ... but a pass always holds at least this many resamples, so that the firm x cell product runs
-#: on a block of multiplicity vectors whatever the number of firms (one vector per pass at
-#: 250,000 firms made the time grow faster than the firm count)
+#: resamples whose firm multiplicities go through one sparse product (a divisor of BLOCK_SIZE):
+#: at 25,000 firms the product costs about a third per resample at 25 columns of what it costs
+#: at 4 (benchmarks/README.md). Pass sizes never change the draws.
+PASS_ROWS = 25
+#: ... unless the multiplicity block would exceed this many values (4 bytes each: 8 MiB, which
+#: stays in the shared cache; at 250,000 firms 8 columns beat 25), but never fewer than
+#: MIN_PASS_ROWS resamples per pass
+PASS_VALUES = 2**21
 MIN_PASS_ROWS = 4
 MAX_RESAMPLES = 10_000_000
 
@@ -103,13 +105,14 @@ def coefficient_index(design: Design, coefficient: int | None) -> int:
 class CellSampler:
     """Draws resampled cell counts (forced cells, then voluntary cells) for one unit.
 
-    Firm draws are ``rng.integers(0, n_firms, size=(rows, n_firms))``, consumed in passes of at
-    least ``MIN_PASS_ROWS`` resamples; each resample's draws are counted per firm by ``bincount``
-    (a scatter into one cache-resident vector) into a reused multiplicity block, and the block goes
-    through one product with the firm x cell matrix, transposed to cell x firm CSR in the cell
-    order. (A dense float32 GEMM, used up to 2026-12 when the dense matrix had at most 8 entries
-    per non-zero, measured 7-20x slower than the sparse product on every roster shape tried, from
-    500 to 100,000 firms: benchmarks/README.md.)
+    Firm draws are ``rng.integers(0, n_firms, size=(rows, n_firms))``, taken one resample at a
+    time (successive calls continue one stream, so this is the same sequence); each resample's
+    draws are counted per firm by ``bincount`` into a column of a reused firm-major multiplicity
+    block of ``PASS_ROWS`` resamples, and the block goes through one sparse product whose loop
+    runs over firms (the firm x cell CSR matrix seen as cell x firm CSC), reading the block once,
+    in order. Looping over cells instead (cell x firm CSR) re-reads the block once per cell and
+    made 250,000 firms 15x slower than 25,000; a dense float32 GEMM measured 7-20x slower than
+    the sparse product from 500 to 100,000 firms (benchmarks/README.md).
     """
 
     def __init__(self, cells: Cells, unit: Unit) -> None:
@@ -119,7 +122,7 @@ class CellSampler:
         self.pvals = self.counts / self.total if self.total else self.counts.astype(float)
         matrix = sparse.csr_matrix(cells.firm_matrix, dtype=np.float64)
         self.n_firms = matrix.shape[0]
-        self.sparse_t: sparse.csr_matrix | None = None
+        self.firm_t: sparse.csc_matrix | None = None
         self.dtype: type[np.floating] = np.float64
         if unit == "firm":
             if self.n_firms == 0 or not np.array_equal(np.asarray(matrix.sum(axis=0)).ravel(), self.counts):
@@ -127,11 +130,11 @@ class CellSampler:
             # float32 sums of whole numbers are exact below 2**24, and no resample can count more
             # than n_firms times the largest entry in a cell; half the bytes to move per product
             self.dtype = np.float32 if self.n_firms * float(matrix.max()) < 2**24 else np.float64
-            self.sparse_t = matrix.T.tocsr().astype(self.dtype)
+            self.firm_t = sparse.csc_matrix(matrix.astype(self.dtype).T)
 
     def pass_rows(self, rows: int) -> int:
         """Resamples drawn per pass for a request of ``rows``."""
-        return max(1, min(rows, max(MIN_PASS_ROWS, PASS_COUNTS // max(self.n_firms, 1))))
+        return max(1, min(rows, PASS_ROWS, max(MIN_PASS_ROWS, PASS_VALUES // max(self.n_firms, 1))))
 
     def draw(self, rng: np.random.Generator, rows: int) -> np.ndarray:
         """``rows`` resamples of the cell counts, shape (rows, n_cells), from ``rng``."""
@@ -140,17 +143,14 @@ class CellSampler:
         out = np.empty((rows, self.counts.size))
         per_pass = self.pass_rows(rows)
         n_firms = self.n_firms
-        assert self.sparse_t is not None
-        # firm-major, so that the sparse product reads each firm's counts together
+        assert self.firm_t is not None
         block = np.empty((n_firms, per_pass), dtype=self.dtype)
         for lo in range(0, rows, per_pass):
             r = min(per_pass, rows - lo)
-            # successive calls continue one stream, so pass sizes never change the draws
-            idx = rng.integers(0, n_firms, size=(r, n_firms))
             for j in range(r):
-                block[:, j] = np.bincount(idx[j], minlength=n_firms)
+                block[:, j] = np.bincount(rng.integers(0, n_firms, size=n_firms), minlength=n_firms)
             mult = block if r == per_pass else np.ascontiguousarray(block[:, :r])
-            out[lo:lo + r] = (self.sparse_t @ mult).T
+            out[lo:lo + r] = (self.firm_t @ mult).T
         return out
 
 
