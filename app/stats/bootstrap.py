@@ -103,10 +103,26 @@ def jackknife_estimates(cells: Cells, design: Design, *, unit: Unit, coefficient
     default start, the same estimate to the convergence tolerance. Firms are processed in chunks
     of ``JACKKNIFE_CHUNK`` cases so that memory stays bounded.
 
+    Parameters
+    ----------
+    cells : Cells
+        Group counts and the firm matrix.
+    design : Design
+        Design matrix over ``cells.groups``.
+    unit : {"departure", "firm"}
+        What one case leaves out.
+    coefficient : int, optional
+        Column whose estimate is kept; ``design.slope`` by default.
+
     Returns
     -------
     (values, weights) : numpy.ndarray, numpy.ndarray
         NaN values mark leave-one-out fits that failed (the acceleration is then NaN).
+
+    Raises
+    ------
+    ValueError
+        When the model cannot be fitted to the original counts.
     """
     check_choice(unit, UNITS, "unit")
     coef = coefficient_index(design, coefficient)
@@ -202,7 +218,26 @@ def extend_bootstrap(
     """Add ``resamples`` more resamples to an earlier result, reusing its replicates.
 
     The combined result equals a single run with ``result.resamples + resamples`` resamples.
-    ``cells`` and ``design`` must be the ones the earlier run used (checked via the estimate).
+
+    Parameters
+    ----------
+    result : BootstrapResult
+        The earlier run.
+    cells, design : Cells, Design
+        The ones the earlier run used (checked via the estimate).
+    resamples : int
+        Resamples to add.
+    chunk_size, workers, progress, should_stop
+        As for :func:`draw_replicates`.
+
+    Returns
+    -------
+    BootstrapResult
+
+    Raises
+    ------
+    ValueError
+        When ``cells`` and ``design`` do not reproduce the earlier estimate.
     """
     coef = design.names.index(result.coefficient) if result.coefficient in design.names else -1
     if coef < 0 or _original_estimate(cells, design, coef) != result.estimate:
@@ -258,8 +293,26 @@ def summarise_replicates(
 ) -> BootstrapResult:
     """Intervals and failure counts from stored replicates (e.g. a run drawn in chunks by a job).
 
-    ``estimates`` and ``failures`` are the concatenated outputs of :func:`draw_replicates` for
-    resamples 0 .. B-1; the estimate and jackknife are recomputed from ``cells`` and ``design``.
+    Parameters
+    ----------
+    cells, design : Cells, Design
+        The data and model the replicates were drawn from; the estimate and jackknife are
+        recomputed from them.
+    estimates, failures : numpy.ndarray
+        The concatenated outputs of :func:`draw_replicates` for resamples 0 .. B-1.
+    unit : {"departure", "firm"}
+    seed : int
+        The run's seed (also seeds the Monte Carlo error).
+    alpha : float
+        Two-sided error rate of the intervals.
+    coefficient : int, optional
+        Column of the design; ``design.slope`` by default.
+    seconds : float
+        Time spent drawing, reported with the result.
+
+    Returns
+    -------
+    BootstrapResult
     """
     check_choice(unit, UNITS, "unit")
     alpha = check_alpha(alpha)

@@ -65,6 +65,18 @@ def binomial_deviance(forced: np.ndarray, totals: np.ndarray, mu: np.ndarray) ->
     one ulp per term (``f`` ulps after the multiplication, 1e-10 and more at a million departures),
     while ``log1p`` of the small difference keeps the relative precision of the term itself. This
     is what lets the relative convergence test below work at any sample size.
+
+    Parameters
+    ----------
+    forced, totals : numpy.ndarray, shape (..., n_groups)
+        Forced and all counted departures per group.
+    mu : numpy.ndarray, shape (..., n_groups)
+        Fitted forced shares.
+
+    Returns
+    -------
+    numpy.ndarray, shape (...,)
+        Deviance per row; groups with no departures add nothing.
     """
     forced = np.asarray(forced, dtype=float)
     totals = np.asarray(totals, dtype=float)
@@ -84,6 +96,17 @@ def converged_relative(old: np.ndarray, new: np.ndarray, tol: float) -> np.ndarr
     The deviance of a large roster is the small difference of two large log-likelihoods, so an
     absolute threshold either stops too early on small data or never on large data, where the
     rounding noise of the log-likelihood alone exceeds it.
+
+    Parameters
+    ----------
+    old, new : numpy.ndarray
+        Deviances of consecutive iterations.
+    tol : float
+        Relative tolerance (1e-10 here; R's default is 1e-8).
+
+    Returns
+    -------
+    numpy.ndarray of bool
     """
     return np.abs(new - old) < tol * (np.abs(new) + 0.1)
 
@@ -246,13 +269,18 @@ def _iterate(
     f, n = forced[active], totals[active]
     with np.errstate(divide="ignore", invalid="ignore"):
         y = np.where(n > 0, f / n, 0.0)
+    # the deviance is evaluated every iteration, so its group masks are folded in once here:
+    # a group without departures gets total 1 in the denominators, where its zero counts make
+    # every term 0 (``xlog1py(0, x) = 0``)
+    v = n - f
+    n_safe = np.where(n > 0, n, 1.0)
     mu = (y + 0.5) / 2.0
     eta = np.log(mu / (1.0 - mu))
     if start is not None:
         warm = np.isfinite(start).all(axis=1)
         eta[warm] = start[warm] @ X.T
         mu[warm] = expit(eta[warm])
-    dev = binomial_deviance(f, n, mu)
+    dev = _deviance(f, v, n_safe, mu)
     rows = active
     for it in range(1, max_iter + 1):
         var = mu * (1.0 - mu)
@@ -267,7 +295,7 @@ def _iterate(
             new_beta = solve_arrow_stack(arrow, weights, xtwz)
             eta = new_beta[:, arrow.block] + new_beta[:, -1:] * arrow.covariate
         mu = expit(eta)
-        new_dev = binomial_deviance(f, n, mu)
+        new_dev = _deviance(f, v, n_safe, mu)
         finite = np.isfinite(new_beta).all(axis=1)
         # fitted shares at 0 or 1 mean the coefficients are running off to infinity: stop there
         # rather than let p(1 - p) underflow into a division by zero
@@ -286,10 +314,21 @@ def _iterate(
             break
         keep = ~finished
         rows, f, n, y, eta, mu = rows[keep], f[keep], n[keep], y[keep], eta[keep], mu[keep]
+        v, n_safe = v[keep], n_safe[keep]
         dev = new_dev[keep]
     # statsmodels would report these with huge coefficients and a warning at best; here they are
     # named so that no such estimate passes as a bootstrap replicate
     failure[rows] = "not_converged"
+
+
+def _deviance(forced: np.ndarray, voluntary: np.ndarray, totals: np.ndarray, mu: np.ndarray) -> np.ndarray:
+    """:func:`binomial_deviance` for totals that are all positive (see ``_iterate``)."""
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        fitted = totals * mu
+        dev = xlog1py(forced, (forced - fitted) / fitted)
+        fitted = totals - fitted
+        dev += xlog1py(voluntary, (voluntary - fitted) / fitted)
+    return 2.0 * dev.sum(axis=-1)
 
 
 def solve_spd_stack(a: np.ndarray, b: np.ndarray) -> np.ndarray:

@@ -86,6 +86,18 @@ def cluster_case_chunks(unit_matrix: sparse.csr_matrix, chunk: int) -> Iterator[
 
     Each case is the column totals minus one distinct unit row, built only when its piece is
     needed, so that a quarter of a million firms never sit in one dense array.
+
+    Parameters
+    ----------
+    unit_matrix : scipy.sparse.csr_matrix, shape (n_units, n_cells)
+        Counts per unit and cell (``Cells.firm_matrix``).
+    chunk : int
+        Most cases per piece (at least 1).
+
+    Yields
+    ------
+    JackknifeCases
+        Consecutive pieces; concatenated they equal :func:`cluster_cases`.
     """
     if chunk < 1:
         raise ValueError(f"chunk must be at least 1; got {chunk!r}.")

@@ -87,6 +87,21 @@ class Replicates:
 
 
 def check_count(value: object, what: str, low: int, high: int | None = None) -> int:
+    """``value`` as an int in ``[low, high]``, or a ValueError naming ``what`` and the range.
+
+    Parameters
+    ----------
+    value : object
+        Must be a whole number (bools and floats are refused).
+    what : str
+        Name used in the message.
+    low, high : int
+        Inclusive bounds (``high`` None: no upper bound).
+
+    Returns
+    -------
+    int
+    """
     whole = isinstance(value, int | np.integer) and not isinstance(value, bool)
     number = int(value) if whole else low - 1  # type: ignore[call-overload]
     if number < low or (high is not None and number > high):
@@ -97,7 +112,17 @@ def check_count(value: object, what: str, low: int, high: int | None = None) -> 
 
 
 def coefficient_index(design: Design, coefficient: int | None) -> int:
-    """Column of ``design`` to keep (its year slope by default), checked against its width."""
+    """Column of ``design`` to keep (its year slope by default), checked against its width.
+
+    Parameters
+    ----------
+    design : Design
+    coefficient : int or None
+
+    Returns
+    -------
+    int
+    """
     index = design.slope if coefficient is None else coefficient
     return check_count(index, "coefficient", 0, design.matrix.shape[1] - 1)
 
@@ -158,7 +183,21 @@ def fit_cells(X: np.ndarray, cells: np.ndarray, coef: int, start: np.ndarray | N
               ) -> tuple[np.ndarray, np.ndarray]:
     """Fit every row of ``cells`` (forced cells, then voluntary cells); keep column ``coef``.
 
-    Returns the estimates (NaN where a fit failed) and the failure reasons (``""`` for success).
+    Parameters
+    ----------
+    X : numpy.ndarray, shape (n_groups, n_params)
+        Design matrix.
+    cells : numpy.ndarray, shape (n_fits, 2 * n_groups)
+        Forced counts per group, then voluntary counts per group.
+    coef : int
+        Column whose estimates are returned.
+    start : numpy.ndarray, optional
+        Warm start for :func:`app.stats.irls.fit_batch`.
+
+    Returns
+    -------
+    (estimates, failures) : numpy.ndarray, numpy.ndarray
+        NaN where a fit failed, and the failure reasons (``""`` for success).
     """
     n_groups = X.shape[0]
     forced = cells[:, :n_groups]
@@ -171,6 +210,21 @@ def original_fit(cells: Cells, design: Design) -> np.ndarray:
 
     Called before any resample is drawn, so that a run on counts the model cannot fit stops at
     once instead of after drawing and fitting every resample.
+
+    Parameters
+    ----------
+    cells : Cells
+    design : Design
+        Design matrix over ``cells.groups``.
+
+    Returns
+    -------
+    numpy.ndarray, shape (n_params,)
+
+    Raises
+    ------
+    ValueError
+        When the design does not match the cells, or the fit fails (the reason is named).
     """
     X = np.asarray(design.matrix, dtype=float)
     if X.shape[0] != cells.n_groups:
@@ -185,7 +239,17 @@ def original_fit(cells: Cells, design: Design) -> np.ndarray:
 
 
 def block_rng(seed: int, block: int) -> np.random.Generator:
-    """The generator of seeded block ``block`` (resamples ``block * BLOCK_SIZE`` onwards)."""
+    """The generator of seeded block ``block`` (resamples ``block * BLOCK_SIZE`` onwards).
+
+    Parameters
+    ----------
+    seed, block : int
+
+    Returns
+    -------
+    numpy.random.Generator
+        ``default_rng(SeedSequence(seed, spawn_key=(block,)))``.
+    """
     return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
 
 
@@ -254,6 +318,14 @@ def draw_replicates(
     Returns
     -------
     Replicates
+
+    Raises
+    ------
+    ValueError
+        On a bad argument, or when the model cannot be fitted to the original counts (checked
+        before anything is drawn).
+    BootstrapCancelled
+        When ``should_stop`` asked for it.
     """
     check_choice(unit, UNITS, "unit")
     n = check_count(resamples, "resamples", 1, MAX_RESAMPLES)
