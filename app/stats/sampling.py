@@ -110,7 +110,6 @@ def check_count(value: object, what: str, low: int, high: int | None = None) -> 
     return number
 
 
-
 def coefficient_index(design: Design, coefficient: int | None) -> int:
     """Column of ``design`` to keep (its year slope by default), checked against its width.
 
