@@ -22,10 +22,12 @@ Run: ``python benchmarks/bench_bootstrap.py [--resamples 10000] [--best 3] [--lo
 from __future__ import annotations
 
 import argparse
+import atexit
 import importlib
 import json
 import os
 import resource
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -64,7 +66,9 @@ def baseline_engine(commit: str) -> ModuleType:
     """
     names = subprocess.run(["git", "-C", str(ROOT), "ls-tree", "--name-only", commit, "app/stats/"],
                            check=True, capture_output=True, text=True).stdout.split()
-    target = Path(tempfile.mkdtemp(prefix="helmshift-baseline-")) / "baseline_stats"
+    scratch = tempfile.mkdtemp(prefix="helmshift-baseline-")
+    atexit.register(shutil.rmtree, scratch, True)
+    target = Path(scratch) / "baseline_stats"
     target.mkdir()
     for name in names:
         text = subprocess.run(["git", "-C", str(ROOT), "show", f"{commit}:{name}"], check=True,
