@@ -1,162 +1,241 @@
-"""Speed of the bootstrap engine against the obvious per-resample loop, measured in the same run.
+"""Speed and memory of the bootstrap engine against the previous engine, measured in the same run.
 
-Generated roster: 100,000 departures from 25,000 firms over 30 years in 10 sectors. Targets
-(2-core machine): 10,000 departure resamples < 0.1 s; 10,000 firm resamples < 1.5 s; sector-adjusted
-model with 10,000 firm resamples < 5 s; each >= 150x faster than the obvious loop; peak memory < 1 GB.
+The previous engine is the ``app/stats`` package as it stood at ``--baseline`` (default: the commit
+before the issue-13 work), checked out of git into a temporary directory and imported under another
+name, so both engines run on the same counts in the same process and the same minute of machine load.
 
-The obvious loop, per resample: draw departures (or firms) with replacement, gather their rows of
-a pandas DataFrame, count forced / voluntary per year (per sector-year for the sector model) with
-pandas, fit statsmodels' GLM. It is timed on a few hundred resamples and scaled to 10,000 (said so in
-the output). Wall and CPU seconds (all threads) are both printed, with the load average: on a shared
-machine the CPU ratio is the steadier comparison.
+Rosters are generated as counts (firm x cell matrices), never as rows: about 4 departures per firm
+over 30 years, 10 sectors, a firm effect on the forced share and a mild upward trend.
 
-Run: ``python benchmarks/bench_bootstrap.py [--resamples 10000] [--loop 200]``
+Targets (2-core machine, issue 13): 10,000 departure resamples < 0.1 s; 10,000 firm resamples
+< 1.0 s at 25,000 firms, growing no faster than the number of firms up to 250,000; peak memory of a
+10,000-resample firm bootstrap (``bootstrap_trend``: original fit, draws, jackknife, intervals) at
+1,000,000 departures < 600 MB. Wall and CPU seconds (all threads) are printed with the load average;
+on a shared machine the CPU column and the ratio in the same run are the steadier comparison.
+
+Optionally (``--loop N``) the obvious per-resample loop (gather DataFrame rows, ``pd.crosstab``,
+statsmodels ``GLM.fit``) is timed on N resamples and scaled to 10,000.
+
+Run: ``python benchmarks/bench_bootstrap.py [--resamples 10000] [--best 3] [--loop 0]``
 """
 
 from __future__ import annotations
 
 import argparse
-import functools
+import atexit
+import importlib
+import json
 import os
 import resource
+import shutil
+import subprocess
 import sys
+import tempfile
 import time
 import tracemalloc
 from pathlib import Path
+from types import ModuleType
+from typing import Any
 
 import numpy as np
 import pandas as pd
-import statsmodels.api as sm
+from scipy import sparse
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
 
-from app.stats import bootstrap  # noqa: E402
-from app.stats.bootstrap import draw_replicates  # noqa: E402
-from app.stats.cells import build_cells  # noqa: E402
+from app.stats.bootstrap import bootstrap_trend, draw_replicates  # noqa: E402
+from app.stats.cells import Cells  # noqa: E402
 from app.stats.design import design_matrix, window_centre  # noqa: E402
 
-
-def make_roster(seed: int = 1, departures: int = 100_000, firms: int = 25_000) -> pd.DataFrame:
-    """Invented roster with a firm effect and a mild upward trend."""
-    rng = np.random.default_rng(seed)
-    firm = rng.integers(0, firms, size=departures)
-    year = rng.integers(1995, 2025, size=departures)
-    logit = -1.0 + 0.02 * (year - 2009.5) + rng.normal(0, 0.7, size=firms)[firm]
-    forced = rng.random(departures) < 1 / (1 + np.exp(-logit))
-    return pd.DataFrame({
-        "firm_id": firm, "year": year, "category": np.where(forced, "forced", "voluntary"),
-        "sector": np.array([f"Sector {s}" for s in range(10)])[firm % 10],
-    })
-
-
-def obvious_loop(records: pd.DataFrame, unit: str, model: str, n: int, seed: int) -> tuple[float, float]:
-    """(wall, CPU) seconds per resample of the straightforward approach for one unit and model."""
-    rng = np.random.default_rng(seed)
-    years = np.arange(records["year"].min(), records["year"].max() + 1)
-    centre = (years[0] + years[-1]) / 2
-    by_firm = records.set_index("firm_id")
-    firm_ids = records["firm_id"].unique()
-    keys = ["sector", "year"] if model == "sector" else ["year"]
-    wall, cpu = time.perf_counter(), time.process_time()
-    for _ in range(n):
-        if unit == "departure":
-            sample = records.iloc[rng.integers(0, len(records), size=len(records))]
-        else:
-            sample = by_firm.loc[firm_ids[rng.integers(0, firm_ids.size, size=firm_ids.size)]]
-        table = pd.crosstab([sample[k] for k in keys], sample["category"])
-        table = table[table.sum(axis=1) > 0].reset_index()
-        t = table["year"].to_numpy(dtype=float) - centre
-        if model == "sector":
-            X = np.column_stack([pd.get_dummies(table["sector"]).to_numpy(dtype=float), t])
-        else:
-            X = sm.add_constant(t)
-        sm.GLM(table[["forced", "voluntary"]].to_numpy(), X, family=sm.families.Binomial()).fit()
-    return (time.perf_counter() - wall) / n, (time.process_time() - cpu) / n
-
-
-def timed(cells, design, unit: str, resamples: int, workers: int | None = None) -> tuple[float, float]:
-    """(wall seconds, CPU seconds of all threads) of one engine run."""
-    wall, cpu = time.perf_counter(), time.process_time()
-    draw_replicates(cells, design, unit=unit, resamples=resamples, seed=1, workers=workers)  # type: ignore[arg-type]
-    return time.perf_counter() - wall, time.process_time() - cpu
-
-
-def best_of(runs: int, *args, **kwargs) -> tuple[float, float]:
-    """The fastest of ``runs`` engine runs by wall clock, with its CPU time."""
-    return min((timed(*args, **kwargs) for _ in range(runs)), key=lambda t: t[0])
+#: the engine before the issue-13 work (relative IRLS rule, batched firm passes, module split)
+BASELINE = "4303222"
+YEARS = np.arange(1995, 2025)
+SECTORS = 10
 
 
 def load() -> str:
     return "/".join(f"{x:.2f}" for x in os.getloadavg())
 
 
+def baseline_engine(commit: str) -> ModuleType:
+    """``app.stats.bootstrap`` as of ``commit``, importable beside the current one.
+
+    The commit's ``app/stats`` files are written to a temporary package ``baseline_stats`` with
+    their ``app.stats.`` imports pointed at it; ``app.types`` (unchanged) comes from the tree.
+    """
+    names = subprocess.run(["git", "-C", str(ROOT), "ls-tree", "--name-only", commit, "app/stats/"],
+                           check=True, capture_output=True, text=True).stdout.split()
+    scratch = tempfile.mkdtemp(prefix="helmshift-baseline-")
+    atexit.register(shutil.rmtree, scratch, True)
+    target = Path(scratch) / "baseline_stats"
+    target.mkdir()
+    for name in names:
+        text = subprocess.run(["git", "-C", str(ROOT), "show", f"{commit}:{name}"], check=True,
+                              capture_output=True, text=True).stdout
+        (target / Path(name).name).write_text(text.replace("app.stats.", "baseline_stats."))
+    sys.path.insert(0, str(target.parent))
+    return importlib.import_module("baseline_stats.bootstrap")
+
+
+def make_cells(firms: int, seed: int = 1, *, by_sector: bool = False) -> Cells:
+    """Invented counts: Poisson(3) + 1 departures per firm, a firm effect, a mild upward trend."""
+    rng = np.random.default_rng(seed)
+    per_firm = 1 + rng.poisson(3.0, size=firms)
+    firm = np.repeat(np.arange(firms), per_firm)
+    year = rng.integers(0, YEARS.size, size=firm.size)
+    logit = -1.0 + 0.02 * (year - 14.5) + rng.normal(0, 0.7, size=firms)[firm]
+    forced = rng.random(firm.size) < 1 / (1 + np.exp(-logit))
+    sector = firm % SECTORS if by_sector else np.zeros(firm.size, dtype=np.int64)
+    n_groups = (SECTORS if by_sector else 1) * YEARS.size
+    group = sector * YEARS.size + year
+    col = np.where(forced, group, group + n_groups)
+    matrix = sparse.csr_matrix((np.ones(firm.size, dtype=np.int64), (firm, col)), shape=(firms, 2 * n_groups))
+    matrix.sum_duplicates()
+    totals = np.asarray(matrix.sum(axis=0)).ravel()
+    groups = pd.DataFrame({
+        "year": np.tile(YEARS, n_groups // YEARS.size),
+        "sector": np.repeat([f"Sector {s}" for s in range(n_groups // YEARS.size)], YEARS.size)
+        if by_sector else "",
+        "forced": totals[:n_groups], "voluntary": totals[n_groups:],
+    })
+    return Cells(groups=groups, firm_ids=np.arange(firms).astype(str), firm_matrix=matrix,
+                 window=(int(YEARS[0]), int(YEARS[-1])), by_sector=by_sector)
+
+
+def design_for(cells: Cells) -> Any:
+    return design_matrix(cells.groups, "sector" if cells.by_sector else "linear", window_centre(cells.window))
+
+
+def timed(draw: Any, cells: Cells, unit: str, resamples: int) -> tuple[float, float]:
+    """(wall seconds, CPU seconds of all threads) of one ``draw_replicates`` run."""
+    design = design_for(cells)
+    wall, cpu = time.perf_counter(), time.process_time()
+    draw(cells, design, unit=unit, resamples=resamples, seed=1)
+    return time.perf_counter() - wall, time.process_time() - cpu
+
+
+def best_of(runs: int, *args: Any) -> tuple[float, float]:
+    """The fastest of ``runs`` runs by wall clock, with its CPU time."""
+    return min((timed(*args) for _ in range(runs)), key=lambda t: t[0])
+
+
+def obvious_loop(cells: Cells, unit: str, n: int) -> float:
+    """CPU seconds per resample of draw / gather DataFrame rows / ``pd.crosstab`` / statsmodels."""
+    import statsmodels.api as sm
+
+    coo = cells.firm_matrix.tocoo()
+    g = cells.n_groups
+    rows = pd.DataFrame({"firm": np.repeat(coo.row, coo.data), "group": np.repeat(coo.col % g, coo.data),
+                         "forced": np.repeat(coo.col < g, coo.data)})
+    by_firm = rows.set_index("firm")
+    years = cells.groups["year"].to_numpy(dtype=float)
+    rng = np.random.default_rng(2)
+    cpu = time.process_time()
+    for _ in range(n):
+        if unit == "departure":
+            sample = rows.iloc[rng.integers(0, len(rows), size=len(rows))]
+        else:
+            sample = by_firm.loc[rng.integers(0, cells.firm_matrix.shape[0], size=cells.firm_matrix.shape[0])]
+        table = pd.crosstab(sample["group"], sample["forced"])
+        t = years[table.index.to_numpy()] - years.mean()
+        sm.GLM(table[[True, False]].to_numpy(), sm.add_constant(t), family=sm.families.Binomial()).fit()
+    return (time.process_time() - cpu) / n
+
+
+def memory_child(engine: str, firms: int, resamples: int, baseline: str) -> None:
+    """Run one firm bootstrap in this (fresh) process and print its memory as JSON."""
+    module = baseline_engine(baseline) if engine == "previous" else None
+    run = module.bootstrap_trend if module is not None else bootstrap_trend
+    cells = make_cells(firms)
+    design = design_for(cells)
+    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    tracemalloc.start()
+    wall = time.perf_counter()
+    run(cells, design, unit="firm", resamples=resamples, seed=1)
+    seconds = time.perf_counter() - wall
+    traced = tracemalloc.get_traced_memory()[1] / 2**20
+    tracemalloc.stop()
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(json.dumps({"departures": int(cells.totals.sum()), "before": before, "peak": peak,
+                      "traced": traced, "seconds": seconds}))
+
+
+def memory(engine: str, firms: int, resamples: int, baseline: str) -> dict[str, float]:
+    out = subprocess.run([sys.executable, __file__, "--memory-child", engine, "--firms", str(firms),
+                          "--resamples", str(resamples), "--baseline", baseline],
+                         check=True, capture_output=True, text=True).stdout
+    return json.loads(out.strip().splitlines()[-1])
+
+
 def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(description=(__doc__ or "").splitlines()[0])
     parser.add_argument("--resamples", type=int, default=10_000)
-    parser.add_argument("--loop", type=int, default=200, help="resamples timed for the obvious loop")
+    parser.add_argument("--best", type=int, default=3, help="runs per timing; the fastest is shown")
+    parser.add_argument("--loop", type=int, default=0, help="resamples timed for the obvious loop (0: skip)")
+    parser.add_argument("--scale", default="25000,100000,250000", help="firm counts for the scaling table")
+    parser.add_argument("--baseline", default=BASELINE, help="git commit of the previous engine")
+    parser.add_argument("--memory-child", choices=["current", "previous"], help=argparse.SUPPRESS)
+    parser.add_argument("--firms", type=int, default=250_000, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.memory_child:
+        memory_child(args.memory_child, args.firms, args.resamples, args.baseline)
+        return
     B = args.resamples
-    records = make_roster()
-    cells = build_cells(records)
-    linear = design_matrix(cells.groups, "linear", window_centre(cells.window))
-    sector_cells = build_cells(records, by_sector=True)
-    sector = design_matrix(sector_cells.groups, "sector", window_centre(sector_cells.window))
-    print(f"roster: {len(records):,} departures, {cells.firm_matrix.shape[0]:,} firms, "
-          f"{cells.n_groups} years, {sector_cells.n_groups} sector-years; {os.cpu_count()} CPUs; "
+    old = baseline_engine(args.baseline)
+    engines = {"current": draw_replicates, "previous": old.draw_replicates}
+    print(f"machine: {os.cpu_count()} CPUs; previous engine = app/stats at {args.baseline}; "
           f"load average (1/5/15 min) at start {load()}")
 
-    for unit in ("departure", "firm"):  # warm-up: thread pool, BLAS, page faults
-        timed(cells, linear, unit, 500)
-    tasks = [
-        ("straight trend, departures", cells, linear, "departure", "linear", 0.1),
-        ("straight trend, firms", cells, linear, "firm", "linear", 1.5),
-        ("sector-adjusted, firms", sector_cells, sector, "firm", "sector", 5.0),
-    ]
-    rows = [(label, unit, model, *best_of(5, c, d, unit, B), target)
-            for label, c, d, unit, model, target in tasks]
-
-    loop = {(unit, model): obvious_loop(records, unit, model, args.loop, seed=2)
-            for _, _, _, unit, model, _ in tasks}
-    print(f"\nobvious loop (draw, gather DataFrame rows, pd.crosstab, statsmodels GLM.fit) timed on "
-          f"{args.loop} resamples per task and scaled to {B:,}\n")
-    print(f"{'task (' + format(B, ',') + ' resamples)':<34} {'wall s':>7} {'CPU s':>7} {'target':>7}    "
-          f"{'loop wall s':>11} {'loop CPU s':>10} {'wall ratio':>10} {'CPU ratio':>9}")
-    for label, unit, model, wall, cpu, target in rows:
-        loop_wall, loop_cpu = (B * x for x in loop[(unit, model)])
+    small, sector = make_cells(25_000), make_cells(25_000, by_sector=True)
+    print(f"roster: {int(small.totals.sum()):,} departures, {small.firm_matrix.shape[0]:,} firms, "
+          f"{small.n_groups} years, {sector.n_groups} sector-years")
+    for draw in engines.values():  # warm-up: thread pool, BLAS, page faults
+        timed(draw, small, "firm", 500)
+    tasks = [("straight trend, departures", small, "departure", 0.1),
+             ("straight trend, firms", small, "firm", 1.0),
+             ("sector-adjusted, firms", sector, "firm", 5.0)]
+    print(f"\n{'task (' + format(B, ',') + ' resamples)':<30} {'wall s':>7} {'CPU s':>7} {'target':>7}    "
+          f"{'prev wall':>9} {'prev CPU':>8} {'wall ratio':>10} {'CPU ratio':>9}")
+    for label, cells, unit, target in tasks:
+        wall, cpu = best_of(args.best, engines["current"], cells, unit, B)
+        p_wall, p_cpu = best_of(args.best, engines["previous"], cells, unit, B)
         flag = "ok" if wall < target else "SLOW"
-        print(f"{label:<34} {wall:>7.3f} {cpu:>7.3f} {target:>6.1f} {flag:<4} {loop_wall:>11.0f} "
-              f"{loop_cpu:>10.0f} {loop_wall / wall:>9.0f}x {loop_cpu / cpu:>8.0f}x")
+        print(f"{label:<30} {wall:>7.3f} {cpu:>7.3f} {target:>6.1f} {flag:<4} {p_wall:>9.3f} {p_cpu:>8.3f} "
+              f"{p_wall / wall:>9.2f}x {p_cpu / cpu:>8.2f}x")
     print(f"load average after the table {load()}")
 
-    print("\nvariants (best of 3, wall / CPU seconds):")
-    for unit in ("departure", "firm"):
-        wall, cpu = best_of(3, cells, linear, unit, B, workers=1)
-        print(f"  straight trend, {unit}s, one worker: {wall:.3f} / {cpu:.3f}")
-    saved_pass = bootstrap.PASS_COUNTS
-    bootstrap.PASS_COUNTS = 10**6  # the earlier pass size: 40 resamples of 25,000 firms
-    wall, cpu = best_of(3, cells, linear, "firm", B)
-    print(f"  straight trend, firms, passes of 10**6 counts (earlier engine): {wall:.3f} / {cpu:.3f}")
-    bootstrap.PASS_COUNTS = saved_pass
-    saved_fit = bootstrap.fit_batch
-    bootstrap.fit_batch = functools.partial(saved_fit, solver="general")
-    wall, cpu = best_of(3, sector_cells, sector, "firm", B)
-    print(f"  sector-adjusted, firms, general p x p solver (earlier engine): {wall:.3f} / {cpu:.3f}")
-    bootstrap.fit_batch = saved_fit
-    saved_dense = bootstrap.DENSE_PER_NONZERO
-    for name, value in [("dense float GEMM", 10**9), ("sparse product", 0)]:
-        bootstrap.DENSE_PER_NONZERO = value
-        wall, cpu = best_of(3, cells, linear, "firm", B)
-        print(f"  straight trend, firms, counts via {name}: {wall:.3f} / {cpu:.3f}")
-    bootstrap.DENSE_PER_NONZERO = saved_dense
+    print(f"\nfirm resamples ({B:,}, straight trend) as the roster grows; best of {max(1, args.best - 1)}:")
+    print(f"{'firms':>8} {'departures':>11} {'wall s':>7} {'CPU s':>7} {'CPU/firm vs first':>18}    "
+          f"{'prev wall':>9} {'prev CPU':>8} {'prev CPU/firm vs first':>22}")
+    first: dict[str, float] = {}
+    for firms in (int(f) for f in args.scale.split(",")):
+        cells = make_cells(firms)
+        wall, cpu = best_of(max(1, args.best - 1), engines["current"], cells, "firm", B)
+        p_wall, p_cpu = best_of(max(1, args.best - 1), engines["previous"], cells, "firm", B)
+        first.setdefault("current", cpu / firms)
+        first.setdefault("previous", p_cpu / firms)
+        print(f"{firms:>8,} {int(cells.totals.sum()):>11,} {wall:>7.2f} {cpu:>7.2f} "
+              f"{cpu / firms / first['current']:>17.2f}x    {p_wall:>9.2f} {p_cpu:>8.2f} "
+              f"{p_cpu / firms / first['previous']:>21.2f}x")
+    print(f"load average after the scaling table {load()}")
 
-    tracemalloc.start()
-    draw_replicates(cells, linear, unit="firm", resamples=B, seed=1)
-    draw_replicates(sector_cells, sector, unit="firm", resamples=B, seed=1)
-    peak = tracemalloc.get_traced_memory()[1]
-    tracemalloc.stop()
-    rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(f"\npeak traced allocation during firm runs {peak / 2**20:.0f} MiB; "
-          f"peak resident size of the whole benchmark {rss:.0f} MiB (target < 1024); load average {load()}")
+    print(f"\nmemory of bootstrap_trend (unit firm, {B:,} resamples) at 250,000 firms, each engine in a "
+          f"fresh process (target < 600 MB peak resident):")
+    for engine in ("current", "previous"):
+        m = memory(engine, 250_000, B, args.baseline)
+        print(f"  {engine:<8} {m['departures']:,} departures: peak resident {m['peak']:.0f} MB "
+              f"(before the bootstrap {m['before']:.0f} MB), peak traced allocation {m['traced']:.0f} MiB, "
+              f"{m['seconds']:.1f} s")
+    print(f"load average at the end {load()}")
+
+    if args.loop:
+        print(f"\nobvious loop (gather rows, pd.crosstab, statsmodels GLM.fit), CPU timed on {args.loop} "
+              f"resamples and scaled to {B:,}:")
+        for label, cells, unit, _ in tasks[:2]:
+            per = obvious_loop(cells, unit, args.loop)
+            cpu = best_of(1, engines["current"], cells, unit, B)[1]
+            print(f"  {label:<30} {per * B:>8.0f} CPU s, {per * B / cpu:,.0f}x the current engine's CPU")
 
 
 if __name__ == "__main__":

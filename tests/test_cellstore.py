@@ -28,7 +28,8 @@ from app.analysis.jobs import run_bootstrap_now
 from app.analysis.runs import run_trend
 from app.stats.cells import assign_categories, build_cells
 from app.stats.coverage import coverage_table
-from app.stats.trend import fit_to_dict, fit_trend
+from app.stats.trend import fit_trend
+from app.stats.trend_report import fit_to_dict
 from app.store import HEAD_REVISION, Store
 from tests.conftest import copy_database, make_client
 

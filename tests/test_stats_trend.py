@@ -13,14 +13,8 @@ from scipy import sparse, special, stats
 
 from app.stats.cells import Cells, build_cells
 from app.stats.profile import fit_grouped_binomial, profile_interval
-from app.stats.trend import (
-    QUASI_DISPERSION,
-    TrendError,
-    fit_to_dict,
-    fit_trend,
-    natural_spline_basis,
-    trend_sentence,
-)
+from app.stats.trend import QUASI_DISPERSION, TrendError, fit_trend, natural_spline_basis
+from app.stats.trend_report import fit_to_dict, trend_sentence
 
 DATA = Path(__file__).parent / "data"
 CHI2_95 = stats.chi2.ppf(0.95, 1)

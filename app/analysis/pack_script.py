@@ -51,13 +51,20 @@ def counts(frame: pd.DataFrame) -> pd.DataFrame:
 
 
 def glm(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, offset: np.ndarray | None = None) -> Any:
-    """Binomial logit GLM on grouped counts (forced out of totals), fitted to a tight tolerance."""
+    """Binomial logit GLM on grouped counts (forced out of totals), fitted to a tight tolerance.
+
+    statsmodels reports standard errors from the weights of its last iteration's starting point; a second
+    fit started at the converged estimate gives them at the estimate itself, as Helmshift (and R's glm at
+    convergence) report them.
+    """
     endog = np.column_stack([forced, totals - forced])
+    model = sm.GLM(endog, X, family=sm.families.Binomial(), offset=offset)
     with warnings.catch_warnings():
         # far out on a profile the fitted shares come close to 0 or 1 and statsmodels says so; the
         # deviance it returns is still the one wanted
         warnings.simplefilter("ignore")
-        return sm.GLM(endog, X, family=sm.families.Binomial(), offset=offset).fit(tol=1e-12, maxiter=200)
+        first = model.fit(tol=1e-12, maxiter=200)
+        return model.fit(start_params=first.params, tol=1e-12, maxiter=200)
 
 
 def design(groups: pd.DataFrame, model: str, centre: float) -> tuple[np.ndarray, int]:

@@ -24,7 +24,8 @@ from app.stats.rate_trend import (
     rate_trend_to_dict,
 )
 from app.stats.rates import RateTable, count_rates
-from app.stats.trend import TrendError, fit_trend, json_interval, json_number
+from app.stats.trend import TrendError, fit_trend
+from app.stats.trend_report import json_interval, json_number
 from app.store import Store, StoreError, Universe
 
 __all__ = ["SHARE_VS_RATE", "RateAnalysis", "RatesSection", "UniverseFlags", "rate_summary", "rates_section",

@@ -24,9 +24,10 @@ from app import __version__
 from app.analysis.inputs import AnalysisInput, input_for_run
 from app.analysis.mapping_files import export_mapping_csv
 from app.intake.spreadsheet_safety import safe_csv
-from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, PASS_ELEMENTS, jackknife_estimates
+from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, jackknife_estimates
 from app.stats.cells import Cells
 from app.stats.design import design_matrix, window_centre
+from app.stats.intervals import PASS_ELEMENTS
 from app.stats.jackknife import cluster_cases, departure_cases
 from app.store import Run, Store
 

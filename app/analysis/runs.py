@@ -11,7 +11,8 @@ from app.analysis.inputs import AnalysisInput
 from app.analysis.robustness import check_robustness, robustness_to_dict
 from app.stats.coverage import suggest_window
 from app.stats.sectors import SectorTrends, fit_sector_trends, sector_trends_to_dict
-from app.stats.trend import TrendFit, fit_to_dict, fit_trend, trend_sentence
+from app.stats.trend import TrendFit, fit_trend
+from app.stats.trend_report import fit_to_dict, trend_sentence
 from app.store import Store
 
 

@@ -17,7 +17,7 @@ from app.briefing.charts import untitled
 from app.briefing.deck import Finding, build_deck
 from app.briefing.findings import CHART_NAMES, ChartFinding, build_finding, latest_bootstrap
 from app.briefing.render import figure_bytes
-from app.stats.trend import trend_sentence
+from app.stats.trend_report import trend_sentence
 from app.store import Store
 
 ExportFormat = Literal["png", "svg", "pdf", "pptx", "brief"]

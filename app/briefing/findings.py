@@ -20,7 +20,8 @@ from app.analysis.provenance import Provenance, provenance_for
 from app.analysis.runs import run_sectors, run_trend
 from app.briefing.charts import bootstrap_histogram, coverage_figure, forest_figure, trend_figure
 from app.stats.sectors import SectorTrends
-from app.stats.trend import TrendFit, trend_sentence
+from app.stats.trend import TrendFit
+from app.stats.trend_report import trend_sentence
 from app.store import Run, Store, StoreError
 
 if TYPE_CHECKING:

@@ -8,7 +8,7 @@ acceleration computed from weighted distinct cases equals the one from all n cas
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -46,14 +46,8 @@ def departure_cases(cells: np.ndarray) -> JackknifeCases:
     return JackknifeCases(cells=cases, weights=cells[occupied])
 
 
-def cluster_cases(unit_matrix: sparse.csr_matrix) -> JackknifeCases:
-    """Leave-one-cluster-out cases (a cluster is a firm): one per distinct count row.
-
-    Parameters
-    ----------
-    unit_matrix : scipy.sparse.csr_matrix, shape (n_units, n_cells)
-        Counts per unit and cell (``Cells.firm_matrix``).
-    """
+def _distinct_rows(unit_matrix: sparse.csr_matrix) -> tuple[sparse.csr_matrix, np.ndarray, np.ndarray]:
+    """The canonical integer matrix, the first row of each distinct count row, and its multiplicity."""
     matrix = sparse.csr_matrix(unit_matrix, dtype=np.int64)
     matrix.sum_duplicates()
     matrix.sort_indices()
@@ -71,9 +65,51 @@ def cluster_cases(unit_matrix: sparse.csr_matrix) -> JackknifeCases:
             weights.append(1)
         else:
             weights[slot] += 1
+    return matrix, np.asarray(first_row, dtype=np.int64), np.asarray(weights, dtype=np.int64)
+
+
+def cluster_cases(unit_matrix: sparse.csr_matrix) -> JackknifeCases:
+    """Leave-one-cluster-out cases (a cluster is a firm): one per distinct count row.
+
+    Parameters
+    ----------
+    unit_matrix : scipy.sparse.csr_matrix, shape (n_units, n_cells)
+        Counts per unit and cell (``Cells.firm_matrix``).
+    """
+    chunks = list(cluster_case_chunks(unit_matrix, max(unit_matrix.shape[0], 1)))
+    return JackknifeCases(cells=np.concatenate([c.cells for c in chunks]),
+                          weights=np.concatenate([c.weights for c in chunks]))
+
+
+def cluster_case_chunks(unit_matrix: sparse.csr_matrix, chunk: int) -> Iterator[JackknifeCases]:
+    """:func:`cluster_cases` in pieces of at most ``chunk`` cases, in the same order.
+
+    Each case is the column totals minus one distinct unit row, built only when its piece is
+    needed, so that a quarter of a million firms never sit in one dense array.
+
+    Parameters
+    ----------
+    unit_matrix : scipy.sparse.csr_matrix, shape (n_units, n_cells)
+        Counts per unit and cell (``Cells.firm_matrix``).
+    chunk : int
+        Most cases per piece (at least 1).
+
+    Yields
+    ------
+    JackknifeCases
+        Consecutive pieces; concatenated they equal :func:`cluster_cases`.
+    """
+    if chunk < 1:
+        raise ValueError(f"chunk must be at least 1; got {chunk!r}.")
+    matrix, first_row, weights = _distinct_rows(unit_matrix)
     total = np.asarray(matrix.sum(axis=0)).ravel()
-    removed = matrix[np.asarray(first_row, dtype=np.int64)].toarray()
-    return JackknifeCases(cells=total[None, :] - removed, weights=np.asarray(weights, dtype=np.int64))
+    if first_row.size == 0:
+        yield JackknifeCases(cells=np.empty((0, matrix.shape[1]), dtype=np.int64),
+                             weights=np.empty(0, dtype=np.int64))
+        return
+    for lo in range(0, first_row.size, chunk):
+        rows = first_row[lo:lo + chunk]
+        yield JackknifeCases(cells=total[None, :] - matrix[rows].toarray(), weights=weights[lo:lo + chunk])
 
 
 def jackknife_acceleration(

@@ -20,11 +20,17 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from scipy.special import expit, xlog1py
+
+from app.stats.irls import converged_relative
 
 #: fitted probabilities closer than this to 0 or 1 mean the MLE sits at infinity (separation)
 SEPARATION_EPS = 1e-8
-#: IRLS stops when the relative deviance change is below this; tight so profile roots are good to ~1e-7
-GLM_TOL = 1e-12
+#: IRLS stops when |deviance change| / (|deviance| + 0.1) is below this (R's ``glm.control`` rule,
+#: passed to statsmodels as ``atol = 0.1 tol, rtol = tol``). statsmodels' own default is an absolute
+#: change, which rounding noise alone exceeds at ten million departures (the fit then never
+#: "converges"); IRLS converges quadratically, so the estimate is far more precise than the rule.
+GLM_TOL = 1e-10
 GLM_MAXITER = 200
 #: the bracket search steps out this many Wald SEs before calling a side open
 _NEWTON_MAXITER = 100
@@ -141,7 +147,7 @@ def _glm_fit(endog: np.ndarray, X: np.ndarray, offset: np.ndarray | None
     with warnings.catch_warnings(record=True) as caught, np.errstate(all="warn"):
         warnings.simplefilter("always")
         model = sm.GLM(endog, X, family=sm.families.Binomial(), offset=offset)
-        res = model.fit(tol=GLM_TOL, maxiter=GLM_MAXITER)
+        res = model.fit(tol=GLM_TOL, atol=0.1 * GLM_TOL, rtol=GLM_TOL, maxiter=GLM_MAXITER)
         out: dict[str, Any] = {
             "params": np.asarray(res.params, dtype=float),
             "bse": np.asarray(res.bse, dtype=float),
@@ -154,6 +160,26 @@ def _glm_fit(endog: np.ndarray, X: np.ndarray, offset: np.ndarray | None
             "converged": bool(res.converged),
         }
     return out, list(caught)
+
+
+def _information_inverse(X: np.ndarray, totals: np.ndarray, mu: np.ndarray, fallback: np.ndarray
+                         ) -> tuple[np.ndarray, np.ndarray]:
+    """Covariance ``(X' W X)^-1`` with ``W = n mu (1 - mu)`` at the *final* fitted shares.
+
+    statsmodels reports the covariance of its last weighted least-squares step, whose weights come
+    from the shares one iteration earlier; under a relative stopping rule that step can still be
+    1e-7 away from the MLE. Evaluating the Fisher information at the estimate itself gives the
+    converged standard errors. Falls back to statsmodels' matrix when the information is singular.
+    """
+    info = (X * (totals * mu * (1.0 - mu))[:, None]).T @ X
+    try:
+        cov = np.linalg.inv(info)
+    except np.linalg.LinAlgError:
+        cov = fallback
+    if not np.isfinite(cov).all():
+        cov = fallback
+    with np.errstate(invalid="ignore"):
+        return cov, np.sqrt(np.diag(cov))
 
 
 def fit_grouped_binomial(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, *,
@@ -190,24 +216,35 @@ def fit_grouped_binomial(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, 
                         "is infinite, so its estimate and Wald interval are not meaningful.")
     if not converged:
         notes.insert(0, "The model fit did not converge; treat the estimates with caution.")
+    cov, bse = _information_inverse(X, totals, mu, res["cov"])
     return GroupedFit(
-        params=res["params"], bse=res["bse"], cov=res["cov"], deviance=res["deviance"],
+        params=res["params"], bse=bse, cov=cov, deviance=res["deviance"],
         pearson_chi2=res["pearson_chi2"], df_resid=res["df_resid"], llf=res["llf"], mu=mu,
         converged=converged, separated=separated, messages=tuple(notes),
     )
 
 
-def _saturated_loglik(forced: np.ndarray, totals: np.ndarray) -> float:
-    share = forced / totals
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ll = np.where(forced > 0, forced * np.log(share), 0.0)
-        ll += np.where(totals > forced, (totals - forced) * np.log1p(-share), 0.0)
-    return float(np.sum(ll))
+def _deviance(forced: np.ndarray, totals: np.ndarray, eta: np.ndarray) -> float:
+    """Residual deviance at linear predictor ``eta``, accurate at any number of departures.
 
-
-def _loglik(forced: np.ndarray, totals: np.ndarray, eta: np.ndarray) -> float:
-    # log p = -log(1 + e^-eta), log(1 - p) = -log(1 + e^eta): logaddexp never overflows.
-    return float(np.sum(-forced * np.logaddexp(0.0, -eta) - (totals - forced) * np.logaddexp(0.0, eta)))
+    Near the fit each term ``f log(f / (n p))`` is taken as ``f log1p((f - n p) / (n p))``, which
+    keeps the term's relative precision (the difference of a saturated and a fitted log-likelihood
+    of 1e6 departures would lose ten digits); far from it (tails the profile visits) as
+    ``f (log(f / n) - log p)`` with ``log p = -log(1 + e^-eta)``, which never overflows.
+    """
+    p = expit(eta)
+    q = expit(-eta)
+    total = 0.0
+    for count, share, log_share in ((forced, p, -np.logaddexp(0.0, -eta)),
+                                    (totals - forced, q, -np.logaddexp(0.0, eta))):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            fitted = totals * share
+            ratio = (count - fitted) / fitted
+            near = np.abs(ratio) < 0.5
+            far = count * (np.log(count / totals) - log_share)
+            term = np.where(near, xlog1py(count, np.where(near, ratio, 0.0)), far)
+        total += float(np.sum(np.where(count > 0, term, 0.0)))
+    return 2.0 * total
 
 
 def _refit_deviance(forced: np.ndarray, totals: np.ndarray, Z: np.ndarray, offset: np.ndarray,
@@ -220,46 +257,44 @@ def _refit_deviance(forced: np.ndarray, totals: np.ndarray, Z: np.ndarray, offse
     step an improvement and the deviance converges (to its infimum when a nuisance coefficient
     runs off to infinity). Returns the deviance and the maximiser (a warm start for the next call).
     """
-    saturated = _saturated_loglik(forced, totals)
     beta = start.copy()
-    ll = _loglik(forced, totals, offset + Z @ beta)
+    dev = _deviance(forced, totals, offset + Z @ beta)
     if Z.shape[1] == 0:
-        return 2.0 * (saturated - ll), beta
+        return dev, beta
 
     def value(b: np.ndarray) -> float:
-        return _loglik(forced, totals, offset + Z @ b)
+        return _deviance(forced, totals, offset + Z @ b)
 
     for _ in range(_NEWTON_MAXITER):
-        p = 0.5 * (1.0 + np.tanh(0.5 * (offset + Z @ beta)))
+        p = expit(offset + Z @ beta)
         grad = Z.T @ (forced - totals * p)
         hess = (Z * (totals * p * (1.0 - p))[:, None]).T @ Z
         step = np.linalg.lstsq(hess, grad, rcond=None)[0]
         # A near-singular Hessian (fitted p near 0 or 1) gives huge Newton steps; halving up to
         # 2^-150 turns them into a usable line search along the same direction.
-        trial, ll_trial, scale = beta, ll, 1.0
+        trial, dev_trial, scale = beta, dev, 1.0
         while scale > 2.0**-150:
-            if (candidate := value(beta + scale * step)) > ll:
-                trial, ll_trial = beta + scale * step, candidate
+            if (candidate := value(beta + scale * step)) < dev:
+                trial, dev_trial = beta + scale * step, candidate
                 break
             scale /= 2.0
-        if ll_trial <= ll:
+        if dev_trial >= dev:
             norm = float(np.linalg.norm(grad))
             if norm == 0.0 or not math.isfinite(norm):
                 break
             # Far out in the tails the Hessian underflows to exactly zero and Newton stalls; walk
             # uphill along the gradient with a step that doubles while it keeps improving.
             radius = 1.0
-            while radius < 1e12 and (candidate := value(beta + radius * grad / norm)) > ll_trial:
-                trial, ll_trial = beta + radius * grad / norm, candidate
+            while radius < 1e12 and (candidate := value(beta + radius * grad / norm)) < dev_trial:
+                trial, dev_trial = beta + radius * grad / norm, candidate
                 radius *= 2.0
-            if ll_trial <= ll:
+            if dev_trial >= dev:
                 break
-        gain = ll_trial - ll
-        move = float(np.max(np.abs(trial - beta)))
-        beta, ll = trial, ll_trial
-        if gain <= 1e-14 * (1.0 + abs(ll)) and move < 1e-10:
+        stop = bool(converged_relative(np.array(dev), np.array(dev_trial), GLM_TOL))
+        beta, dev = trial, dev_trial
+        if stop:
             break
-    return 2.0 * (saturated - ll), beta
+    return dev, beta
 
 
 def profile_interval(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, index: int,

@@ -21,7 +21,8 @@ import numpy as np
 
 from app.stats.design import window_centre
 from app.stats.rates import RateTable
-from app.stats.trend import QUASI_DISPERSION, QUASI_MIN_DF, json_interval, json_number
+from app.stats.trend import QUASI_DISPERSION, QUASI_MIN_DF
+from app.stats.trend_report import json_interval, json_number
 
 __all__ = ["QuasiRate", "RateError", "RateTrend", "decomposition_sentence", "fit_rate_trend",
            "poisson_profile_interval", "rate_trend_to_dict"]

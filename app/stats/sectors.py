@@ -17,7 +17,8 @@ import pandas as pd
 from app.stats.cells import Cells
 from app.stats.design import design_matrix, window_centre
 from app.stats.profile import fit_grouped_binomial, profile_interval
-from app.stats.trend import Interval, TrendError, TrendFit, fit_to_dict, fit_trend, json_interval, json_number
+from app.stats.trend import Interval, TrendError, TrendFit, fit_trend
+from app.stats.trend_report import fit_to_dict, json_interval, json_number
 
 SectorStatus = Literal["fitted", "skipped"]
 

@@ -3,7 +3,8 @@
 The headline is the odds ratio per year exp(b1), with Wald and profile-likelihood intervals. Options:
 one intercept per sector with a common slope (``"sector"``), and a natural cubic spline in year
 (``"spline"``) whose only role is to test for curvature against the straight trend; the straight
-trend's odds ratio stays the headline.
+trend's odds ratio stays the headline. Its plain-language sentence and JSON form live in
+:mod:`app.stats.trend_report`.
 
 statsmodels and scipy.stats are imported lazily (inside the functions): together they cost about two
 seconds to import and this module sits on the CLI and server start-up path.
@@ -38,8 +39,8 @@ SPLINE_DFS = (2, 3, 4, 5, 6)
 #: years with fewer counted departures than this get a note that their share is imprecise
 THIN_YEAR = 10
 
-__all__ = ["TREND_KINDS", "Curvature", "QuasiTrend", "TrendError", "TrendFit", "TrendKind", "fit_trend",
-           "fit_to_dict", "json_interval", "json_number", "natural_spline_basis", "trend_sentence"]
+__all__ = ["TREND_KINDS", "Curvature", "Interval", "QuasiTrend", "TrendError", "TrendFit", "TrendKind",
+           "fit_trend", "natural_spline_basis"]
 
 
 class TrendError(ValueError):
@@ -396,96 +397,3 @@ def _quasi(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, j: int, b: flo
                       decade_conf_int={"wald": _or_interval(wald, 10.0),
                                        "profile": _or_interval(bounds, 10.0)},
                       message=message)
-
-
-def _pct(value: float) -> str:
-    if math.isinf(value):
-        return "an unbounded amount"
-    return f"{value:.1f}%" if abs(value) >= 0.1 else f"{value:.2g}%"
-
-
-def _change(ratio: float) -> str:
-    """Describe an odds ratio per year as a signed change, e.g. 'a rise of 2.1%'."""
-    if ratio >= 1.0:
-        return f"a rise of {_pct((ratio - 1.0) * 100.0)}"
-    return f"a fall of {_pct((1.0 - ratio) * 100.0)}"
-
-
-def trend_sentence(fit: TrendFit) -> str:
-    """One plain-language sentence on the yearly change in the odds of a forced departure.
-
-    Uses the profile interval (the quasi-binomial one when overdispersion triggered a refit).
-    Says "no clear change" whenever the interval includes an odds ratio of 1.
-    """
-    span = f"{fit.window[0]}-{fit.window[1]}"
-    level = f"{round((1.0 - fit.alpha) * 100):g}%"
-    interval = fit.quasi.conf_int["profile"] if fit.quasi is not None else fit.conf_int["profile"]
-    if fit.odds_ratio is None or interval is None:
-        return (f"Across {span}, the trend in the odds that a departure was forced cannot be estimated: "
-                "the forced share is perfectly separated by year, so any single number would mislead.")
-    low, high = interval
-    kind = f"{level} profile interval" + (", allowing for overdispersion," if fit.quasi is not None else "")
-    ratio = fit.odds_ratio
-    if low > 1.0:
-        ends = f"{_pct((low - 1.0) * 100.0)} to {_pct((high - 1.0) * 100.0)}"
-        return (f"Across {span}, the odds that a departure was forced rose by about "
-                f"{_pct((ratio - 1.0) * 100.0)} a year ({kind} {ends}).")
-    if high < 1.0:
-        ends = f"{_pct((1.0 - high) * 100.0)} to {_pct((1.0 - low) * 100.0)}"
-        return (f"Across {span}, the odds that a departure was forced fell by about "
-                f"{_pct((1.0 - ratio) * 100.0)} a year ({kind} {ends}).")
-    return (f"Across {span}, there was no clear change in the odds that a departure was forced: the "
-            f"estimate is {_change(ratio)} a year, but the {kind.replace(',', '').rstrip()} runs from "
-            f"{_change(low)} to {_change(high)}.")
-
-
-def json_number(value: float | None) -> float | None:
-    """JSON cannot carry NaN or infinity; they become null (the messages say why)."""
-    if value is None:
-        return None
-    value = float(value)
-    return value if math.isfinite(value) else None
-
-
-def json_interval(bounds: Interval | None) -> list[float | None] | None:
-    return None if bounds is None else [json_number(bounds[0]), json_number(bounds[1])]
-
-
-def _records(frame: pd.DataFrame) -> list[dict[str, object]]:
-    out: list[dict[str, object]] = []
-    for row in frame.to_dict(orient="records"):
-        out.append({str(k): (int(v) if isinstance(v, (int, np.integer)) else
-                             json_number(float(v)) if isinstance(v, (float, np.floating)) else v)
-                    for k, v in row.items()})
-    return out
-
-
-def fit_to_dict(fit: TrendFit) -> dict[str, object]:
-    """JSON-friendly view of a :class:`TrendFit` (the CLI's ``fit --json`` payload).
-
-    Keys include ``odds_ratio``, ``conf_int`` {``wald``, ``profile``: [low, high]}, ``window``,
-    ``departures``, ``forced`` and ``dispersion``; NaN and infinite values become null.
-    """
-    quasi = None
-    if fit.quasi is not None:
-        quasi = {"dispersion": json_number(fit.quasi.dispersion), "se": json_number(fit.quasi.se),
-                 "conf_int": {k: json_interval(v) for k, v in fit.quasi.conf_int.items()},
-                 "decade_conf_int": {k: json_interval(v) for k, v in fit.quasi.decade_conf_int.items()}}
-    curvature = None
-    if fit.curvature is not None:
-        c = fit.curvature
-        curvature = {"spline_df": c.spline_df, "knots": list(c.knots), "deviance": c.deviance,
-                     "statistic": c.statistic, "df": c.df, "p": c.p}
-    return {
-        "model": fit.model, "window": list(fit.window), "centre": fit.centre, "alpha": fit.alpha,
-        "departures": fit.departures, "forced": fit.forced, "n_years": fit.n_years,
-        "n_groups": fit.n_groups, "odds_ratio": json_number(fit.odds_ratio), "log_or": json_number(fit.log_or),
-        "se": json_number(fit.se), "conf_int": {k: json_interval(v) for k, v in fit.conf_int.items()},
-        "decade_odds_ratio": json_number(fit.decade_odds_ratio),
-        "decade_conf_int": {k: json_interval(v) for k, v in fit.decade_conf_int.items()},
-        "deviance": fit.deviance, "pearson_chi2": fit.pearson_chi2, "df_resid": fit.df_resid,
-        "dispersion": json_number(fit.dispersion), "llf": fit.llf, "converged": fit.converged,
-        "separated": fit.separated, "quasi": quasi, "curvature": curvature,
-        "coefficients": _records(fit.coefficients), "observed": _records(fit.observed),
-        "fitted": _records(fit.fitted), "sentence": trend_sentence(fit), "messages": list(fit.messages),
-    }

@@ -12,7 +12,8 @@ from app.analysis.inputs import load_input
 from app.analysis.rates import RatesSection, rates_section
 from app.analysis.runs import run_trend
 from app.briefing.findings import trend_finding_from_fit
-from app.stats.trend import SPLINE_DFS, TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
+from app.stats.trend import SPLINE_DFS, TREND_KINDS, TrendError, TrendFit
+from app.stats.trend_report import fit_to_dict, trend_sentence
 from app.store import Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
