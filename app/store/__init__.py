@@ -8,6 +8,7 @@ their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates),
 
 from __future__ import annotations
 
+from app.store.departure_query import DepartureFilter, DepartureQueries
 from app.store.mappings import MappingQueries
 from app.store.records import (
     MAX_ID,
@@ -24,10 +25,10 @@ from app.store.runs import RunQueries
 from app.store.tables import DEPARTURE_FIELDS, MIGRATIONS, SCHEMA_VERSION, departures, metadata
 
 __all__ = [
-    "DEPARTURE_FIELDS", "MAX_ID", "MIGRATIONS", "SCHEMA_VERSION", "MappingVersion", "RejectedRow", "Roster",
+    "DEPARTURE_FIELDS", "DepartureFilter", "MAX_ID", "MIGRATIONS", "SCHEMA_VERSION", "MappingVersion", "RejectedRow", "Roster",
     "RosterSettings", "Run", "Store", "StoreError", "departures", "metadata", "now_iso",
 ]
 
 
-class Store(RosterQueries, MappingQueries, RunQueries):
+class Store(RosterQueries, DepartureQueries, MappingQueries, RunQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""

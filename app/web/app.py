@@ -14,7 +14,7 @@ from starlette.exceptions import HTTPException
 from app import __version__
 from app.config import Settings
 from app.store import Store
-from app.web import briefing, coverage, reasons, resampling, rosters, sectors, trend
+from app.web import briefing, coverage, departures, reasons, resampling, rosters, sectors, trend
 from app.web.deps import BadRequest, NotFound
 from app.web.rendering import STATIC_DIR, render, templates
 from app.web.schemas import HealthBody
@@ -23,6 +23,7 @@ from app.web.uploads import UploadStash
 
 #: per-roster pages shown in the navigation after Roster / Reason codes / Coverage, in order
 NAV_PAGES: list[tuple[str, str]] = [
+    ("departures_page", "Departures"),
     ("trend_page", "Trend"),
     ("resampling_page", "Resampling"),
     ("sectors_page", "Sectors"),
@@ -89,7 +90,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     def health() -> dict[str, object]:
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (rosters, reasons, coverage, trend, resampling, sectors, briefing):
+    for module in (rosters, reasons, coverage, departures, trend, resampling, sectors, briefing):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)

@@ -13,6 +13,7 @@ from app.analysis.inputs import AnalysisInput, load_input
 from app.briefing.findings import coverage_finding
 from app.stats.coverage import WindowSuggestion, YearFlag
 from app.store import Roster, Store, StoreError
+from app.web.departures import mapping_ref
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
 from app.web.forms import read_form
@@ -37,6 +38,7 @@ class CoveragePage:
     threshold: float
     warnings: list[str]
     figure: FigureSpec = field(metadata={"json_skip": True})
+    records_mapping: str | None = field(default=None, metadata={"json_skip": True})
 
 
 def coverage_data(store: Store, roster_id: int, *, threshold: float = 0.5) -> CoveragePage:
@@ -52,7 +54,7 @@ def _page(inp: AnalysisInput, threshold: float) -> CoveragePage:
     return CoveragePage(
         roster=inp.roster, mapping_label=inp.mapping_label, table=inp.coverage, suggestion=inp.suggestion,
         flags=inp.flags, window=inp.window, window_source=inp.window_source, threshold=threshold,
-        warnings=inp.warnings(), figure=figure_spec(fig),
+        warnings=inp.warnings(), figure=figure_spec(fig), records_mapping=mapping_ref(inp.mapping),
     )
 
 

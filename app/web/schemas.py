@@ -243,6 +243,44 @@ class CoverageBody(_Exact):
     warnings: list[str]
 
 
+# -- departures ------------------------------------------------------------------------------------
+
+
+class DepartureOut(_Exact):
+    line: int = Field(description="line of the departure in the imported file")
+    year: int
+    date: str | None
+    firm_id: str
+    firm_name: str | None
+    sector: str | None
+    executive: str | None
+    reason: str
+    category: Literal["forced", "voluntary", "excluded", "unmapped"]
+    age: float | None
+    tenure: float | None
+    interim: bool | None
+    notes: str | None
+
+
+class DeparturesBody(_Exact):
+    """One page of the departures matching the filters; ``total`` counts every match, not just this page."""
+
+    roster: RosterOut
+    mapping_label: str
+    filters: dict[str, str | int] = Field(description="the filters in effect, as query parameters")
+    sort: str
+    page: int
+    per_page: int
+    pages: int
+    total: int
+    departures: list[DepartureOut]
+    years: list[int]
+    sectors: list[str]
+    reasons: list[str]
+    categories: list[str]
+    query: str = Field(description="the filters and sort as a query string, for links and exports")
+
+
 # -- trend -----------------------------------------------------------------------------------------
 
 

@@ -13,6 +13,7 @@ from app.analysis.runs import run_trend
 from app.briefing.findings import trend_finding_from_fit
 from app.stats.trend import TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
 from app.store import Roster, Run, Store, StoreError
+from app.web.departures import mapping_ref
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
 from app.web.rendering import as_json, render
@@ -40,6 +41,7 @@ class TrendPage:
     runs: list[Run]
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     table: list[dict[str, Any]] = field(default_factory=list)
+    records_mapping: str | None = field(default=None, metadata={"json_skip": True})
 
 
 def _years(request: Request) -> tuple[int, int] | None:
@@ -88,7 +90,7 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
-        figure=figure_spec(fig, titled=False), table=_odds_table(fit),
+        figure=figure_spec(fig, titled=False), table=_odds_table(fit), records_mapping=mapping_ref(inp.mapping),
     )
 
 
