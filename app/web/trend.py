@@ -11,7 +11,8 @@ from fastapi.responses import HTMLResponse, JSONResponse
 from app.analysis.inputs import load_input
 from app.analysis.runs import run_trend
 from app.briefing.findings import trend_finding_from_fit
-from app.stats.trend import TREND_KINDS, TrendError, TrendFit, fit_to_dict, trend_sentence
+from app.stats.headline import headline_fields, headline_sentence
+from app.stats.trend import TREND_KINDS, TrendError, TrendFit, fit_to_dict
 from app.store import Roster, Run, Store, StoreError
 from app.web.departures import mapping_ref
 from app.web.deps import BadRequest, NotFound, app_store
@@ -88,7 +89,8 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
     fig = trend_finding_from_fit(inp, fit, model).figure
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
-        model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
+        model=model, spline_df=spline_df, fit={**fit_to_dict(fit), **headline_fields(fit)},
+        sentence=headline_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
         figure=figure_spec(fig, titled=False), table=_odds_table(fit), records_mapping=mapping_ref(inp.mapping),
     )
