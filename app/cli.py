@@ -158,8 +158,13 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
-    payload = fit_summary(store, inp, model=args.model, by_sector=args.by == "sector")
-    _emit(args, payload, lambda p: p["sentence"])
+    periods = None
+    if args.compare:
+        from app.stats.periods import parse_periods
+
+        periods = parse_periods(args.compare)
+    payload = fit_summary(store, inp, model=args.model, by_sector=args.by == "sector", periods=periods)
+    _emit(args, payload, lambda p: "\n".join([p["headline"], *([p["periods"]["sentence"]] if "periods" in p else [])]))
     return 0
 
 
@@ -258,6 +263,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--years", metavar="FROM-TO")
     p.add_argument("--by", choices=["sector"])
     p.add_argument("--model", choices=["linear", "sector", "spline"], default="linear")
+    p.add_argument("--compare", metavar="FROM-TO:FROM-TO",
+                   help="also compare the forced share of two periods, e.g. 1997-2009:2010-2022 (adds 'periods')")
     common(p)
     p.set_defaults(func=cmd_fit)
 

@@ -328,8 +328,18 @@ class FitCore(_Open):
     messages: list[str]
 
 
+class FittedShareOut(_Exact):
+    year: int
+    share: float
+    low: float | None
+    high: float | None
+
+
 class TrendFitOut(FitCore):
     sentence: str
+    headline: str = Field(description="the fitted share at both ends, the change in percentage points, then "
+                                      "the odds ratio with its profile-likelihood interval")
+    fitted_share: dict[Literal["first", "last"], FittedShareOut] | None
 
 
 class OddsRow(_Exact):
@@ -337,6 +347,29 @@ class OddsRow(_Exact):
     odds_ratio: float | None
     wald: Interval | None
     profile: Interval | None
+
+
+class PeriodOut(_Exact):
+    years: YearSpan
+    forced: int
+    total: int
+    share: float
+    conf_int: Interval = Field(description="Wilson score interval of the share")
+
+
+class PeriodsOut(_Exact):
+    """Two periods' forced shares; ``difference`` is second minus first (a proportion)."""
+
+    first: PeriodOut
+    second: PeriodOut
+    difference: float
+    conf_int: Interval = Field(description="Newcombe hybrid score interval of the difference")
+    difference_method: str
+    odds_ratio: float | None
+    odds_ratio_conf_int: Interval | None = Field(description="profile-likelihood interval")
+    odds_ratio_method: str
+    alpha: float
+    sentence: str
 
 
 class TrendBody(_Exact):
@@ -355,6 +388,8 @@ class TrendBody(_Exact):
     run_id: int | None
     runs: list[RunOut]
     table: list[OddsRow]
+    periods: PeriodsOut | None
+    periods_error: str | None
 
 
 class TrendUnfitBody(TrendBody):

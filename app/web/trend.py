@@ -8,10 +8,11 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
-from app.analysis.inputs import load_input
-from app.analysis.runs import run_trend
+from app.analysis.inputs import AnalysisInput, load_input
+from app.analysis.runs import period_comparison, run_trend
 from app.briefing.findings import trend_finding_from_fit
 from app.stats.headline import headline_fields, headline_sentence
+from app.stats.periods import PeriodError, Span, parse_periods
 from app.stats.trend import TREND_KINDS, TrendError, TrendFit, fit_to_dict
 from app.store import Roster, Run, Store, StoreError
 from app.web.departures import mapping_ref
@@ -43,6 +44,8 @@ class TrendPage:
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     table: list[dict[str, Any]] = field(default_factory=list)
     records_mapping: str | None = field(default=None, metadata={"json_skip": True})
+    periods: dict[str, Any] | None = None
+    periods_error: str | None = None
 
 
 def _years(request: Request) -> tuple[int, int] | None:
@@ -65,8 +68,16 @@ def _odds_table(fit: TrendFit) -> list[dict[str, Any]]:
     return rows
 
 
+def _periods(inp: AnalysisInput, periods: tuple[Span, Span] | None) -> tuple[dict[str, Any] | None, str | None]:
+    """The period comparison, or why there is none (periods outside the data, overlapping, ...)."""
+    try:
+        return period_comparison(inp, periods).as_dict(), None
+    except PeriodError as exc:
+        return None, str(exc)
+
+
 def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df: int = 3,
-               window: tuple[int, int] | None = None) -> TrendPage:
+               window: tuple[int, int] | None = None, periods: tuple[Span, Span] | None = None) -> TrendPage:
     if model not in TREND_KINDS:
         raise BadRequest(f"model must be one of {', '.join(TREND_KINDS)}; got {model!r}.")
     if spline_df not in (2, 3, 4):
@@ -87,12 +98,14 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
                          str(exc), inp.warnings(), None, runs)
     fit = outcome.fit
     fig = trend_finding_from_fit(inp, fit, model).figure
+    compared, compare_error = _periods(inp, periods)
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit={**fit_to_dict(fit), **headline_fields(fit)},
         sentence=headline_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
         figure=figure_spec(fig, titled=False), table=_odds_table(fit), records_mapping=mapping_ref(inp.mapping),
+        periods=compared, periods_error=compare_error,
     )
 
 
@@ -105,16 +118,32 @@ def _empty(store: Store, roster: Roster, model: str, spline_df: int, error: str)
                      _trend_runs(store, roster.id))
 
 
+def _period_args(request: Request) -> tuple[Span, Span] | None:
+    first, second = (request.query_params.get(k, "").strip() for k in ("first", "second"))
+    if not first and not second:
+        return None
+    try:
+        return parse_periods(f"{first}:{second}")
+    except PeriodError:
+        raise BadRequest("Compare two periods written like 1998-2014 (first) and 2015-2022 (second); "
+                         f"got {first!r} and {second!r}.") from None
+
+
 def _request_args(request: Request) -> dict[str, Any]:
     df = request.query_params.get("spline_df", "3")
     return {"model": request.query_params.get("model", "linear"),
-            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request)}
+            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request),
+            "periods": _period_args(request)}
 
 
 _TREND_QUERY = query(("model", {"type": "string", "enum": list(TREND_KINDS), "default": "linear"}, "trend model"),
                      ("spline_df", {"type": "integer", "enum": [2, 3, 4], "default": 3},
                       "degrees of freedom of the spline checked for curvature"),
-                     *WINDOW_QUERY)
+                     *WINDOW_QUERY,
+                     ("first", {"type": "string", "pattern": "^[0-9]{4}-[0-9]{4}$"},
+                      "first period to compare, e.g. 1998-2014 (default: the window before its last third)"),
+                     ("second", {"type": "string", "pattern": "^[0-9]{4}-[0-9]{4}$"},
+                      "second period, e.g. 2015-2022 (default: the window's last third)"))
 
 
 @router.get("/rosters/{roster_id}/trend", response_class=HTMLResponse, name="trend_page",
