@@ -8,12 +8,42 @@
       if (!target || target.dataset.drawn) { return; }
       var spec = JSON.parse(node.textContent);
       var config = spec.config || { displaylogo: false, responsive: true };
+      if (target.clientWidth < 600) { narrow(spec.figure.layout); }
       window.Plotly.newPlot(target, spec.figure.data, spec.figure.layout, config).then(function () {
         target.dataset.drawn = "1";
         if (target.dataset.recordsUrl) { linkBars(target); }
         target.setAttribute('data-state', 'drawn');
       });
     });
+  }
+  // On a phone the figure keeps its data but not its desktop layout: the legend goes in rows above the
+  // plot (instead of past the right edge), year ticks thin out so they do not overlap, the title shrinks.
+  function wrap(text, width) {
+    var lines = [], line = '';
+    String(text).split('<br>').forEach(function (part) {
+      part.split(' ').forEach(function (word) {
+        if (line && (line + ' ' + word).length > width) { lines.push(line); line = word; }
+        else { line = line ? line + ' ' + word : word; }
+      });
+      lines.push(line); line = '';
+    });
+    return lines.join('<br>');
+  }
+  function narrow(layout) {
+    layout.legend = Object.assign({}, layout.legend || {}, { orientation: 'h', x: 0, xanchor: 'left', y: 1.02,
+      yanchor: 'bottom', font: { size: 11 } });
+    layout.margin = Object.assign({}, layout.margin || {}, { r: 12, t: 120 });
+    if (layout.xaxis) { layout.xaxis = Object.assign({}, layout.xaxis, { nticks: 6, tickangle: 0, tickmode: 'auto' }); }
+    if (layout.title && layout.title.text) {
+      layout.title = Object.assign({}, layout.title, { text: wrap(layout.title.text, 40),
+        font: Object.assign({}, layout.title.font || {}, { size: 13 }) });
+    }
+    if (layout.annotations) {
+      layout.annotations = layout.annotations.map(function (a) {
+        // the source lines keep their line breaks (wrapping them would run them into each other)
+        return Object.assign({}, a, { font: Object.assign({}, a.font || {}, { size: 9 }) });
+      });
+    }
   }
   // A bar of a chart with data-records-url opens the departures behind it: its year, and its category when
   // the trace is one (trace names start with the category: "Forced", "Excluded (not counted)", ...).
