@@ -8,7 +8,7 @@
       if (!target || target.dataset.drawn) { return; }
       var spec = JSON.parse(node.textContent);
       var config = spec.config || { displaylogo: false, responsive: true };
-      if (target.clientWidth < 600) { narrow(spec.figure.layout); }
+      if (target.clientWidth < 600) { narrow(spec.figure.layout, spec.figure.data || []); }
       window.Plotly.newPlot(target, spec.figure.data, spec.figure.layout, config).then(function () {
         target.dataset.drawn = "1";
         if (target.dataset.recordsUrl) { linkBars(target); }
@@ -29,15 +29,25 @@
     });
     return lines.join('<br>');
   }
-  function narrow(layout) {
+  function narrow(layout, data) {
+    // legend rows (one per named trace: long names do not share a row at this width) and title lines
+    // decide how much room the top margin needs, so neither runs into the plot nor into each other
+    var legendRows = data.filter(function (t) { return t.showlegend !== false && t.name; }).length;
+    var titleLines = 0;
     layout.legend = Object.assign({}, layout.legend || {}, { orientation: 'h', x: 0, xanchor: 'left', y: 1.02,
       yanchor: 'bottom', font: { size: 11 } });
-    layout.margin = Object.assign({}, layout.margin || {}, { r: 12, t: 120 });
     if (layout.xaxis) { layout.xaxis = Object.assign({}, layout.xaxis, { nticks: 6, tickangle: 0, tickmode: 'auto' }); }
     if (layout.title && layout.title.text) {
-      layout.title = Object.assign({}, layout.title, { text: wrap(layout.title.text, 40),
+      var text = wrap(layout.title.text, 42);
+      titleLines = text.split('<br>').length;
+      layout.title = Object.assign({}, layout.title, { text: text, y: 0.99, yanchor: 'top', yref: 'container',
         font: Object.assign({}, layout.title.font || {}, { size: 13 }) });
     }
+    var top = 16 + 18 * titleLines + 21 * legendRows;
+    layout.margin = Object.assign({}, layout.margin || {}, { r: 12, t: top });
+    // the plot keeps about 260 px of its own however much the title and legend take
+    layout.height = Math.max(layout.height || 0, 360, top + 320);
+    layout.autosize = true;
     if (layout.annotations) {
       layout.annotations = layout.annotations.map(function (a) {
         // the source lines keep their line breaks (wrapping them would run them into each other)
