@@ -205,7 +205,7 @@ def build_finding(store: Store, inp: AnalysisInput, chart: str, *, run_id: int |
             latest = latest_bootstrap(store, inp)
             if latest is None:
                 raise StoreError("No finished bootstrap run matches this roster's mapping and window; "
-                                 "start one on the Resampling page or with `helmshift bootstrap`.")
+                                 "start one on the Resampling page or with the command helmshift bootstrap.")
             run_id = latest.id
         return bootstrap_finding(store, run_id, method)
     if chart == "sectors":
