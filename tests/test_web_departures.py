@@ -189,3 +189,15 @@ def test_xlsx_export_keeps_text_as_text(store: Store) -> None:
     assert (firm.data_type, firm.value) == ("s", '=HYPERLINK("http://x.invalid")')
     assert [r[header.index("Firm id")].value for r in rows[1:]] == ["F1", "F2"]
     assert rows[1][header.index("Fiscal year")].value == 2001
+
+
+def test_roster_without_a_mapping_lists_every_departure_as_unmapped(store: Store) -> None:
+    roster = import_roster(store, b"Issuer Code,FY,Exit Reason\nA1,2001,Retired\nA2,2002,Ousted\n", "r.csv").roster
+    client = make_client(store)
+    body = client.get(f"/api/rosters/{roster.id}/departures").json()
+    assert body["mapping_label"] == "no mapping" and body["total"] == 2
+    assert {d["category"] for d in body["departures"]} == {"unmapped"}
+    assert client.get(f"/api/rosters/{roster.id}/departures", params={"category": "forced"}).json()["total"] == 0
+    empty = client.get(f"/rosters/{roster.id}/departures", params={"category": "forced", "q": "<b>x</b>"})
+    assert empty.status_code == 200 and "No departure matches these filters." in empty.text
+    assert "<b>x</b>" not in empty.text and "&lt;b&gt;x&lt;/b&gt;" in empty.text  # the filter is shown escaped
