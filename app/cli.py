@@ -179,14 +179,19 @@ def cmd_fit(args: argparse.Namespace) -> int:
     if args.measure == "rate":
         from app.analysis.rates import rate_summary
 
-        if args.by or args.model != "linear":
-            raise CommandError("--measure rate fits the straight Poisson trend only; drop --by and --model.")
+        if args.by or args.model != "linear" or args.compare:
+            raise CommandError("--measure rate fits the straight Poisson trend only; drop --by, --model and --compare.")
         payload = rate_summary(store, inp)
         _emit(args, payload, lambda p: f"{p['sentence']}\n{p['caution']}")
         return 0
+    periods = None
+    if args.compare:
+        from app.stats.periods import parse_periods
+
+        periods = parse_periods(args.compare)
     payload = fit_summary(store, inp, model=args.model, by_sector=args.by == "sector", spline_df=args.spline_df,
-                          quasi=args.quasi)
-    _emit(args, payload, lambda p: p["sentence"])
+                          quasi=args.quasi, periods=periods)
+    _emit(args, payload, lambda p: "\n".join([p["headline"], *([p["periods"]["sentence"]] if "periods" in p else [])]))
     return 0
 
 
@@ -351,6 +356,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--measure", choices=["share", "rate"], default="share",
                    help="share: forced share of departures (default); rate: turnover per 100 firm-years "
                         "over the roster's universe")
+    p.add_argument("--compare", metavar="FROM-TO:FROM-TO",
+                   help="also compare the forced share of two periods, e.g. 1997-2009:2010-2022 (adds 'periods')")
     common(p)
     p.set_defaults(func=cmd_fit)
 

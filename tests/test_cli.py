@@ -103,7 +103,7 @@ def test_fit_json_and_by_sector(capsys: pytest.CaptureFixture[str], db: str, dem
     assert code == 0 and len(sectors["sectors"]) == 10
     assert set(sectors["heterogeneity"]) >= {"statistic", "df", "p"} and sectors["heterogeneity"]["p"] < 0.05
     code, text, _ = run(capsys, "fit", "--roster", ROSTER, "--db", db)
-    assert code == 0 and "odds that a departure was forced" in text
+    assert code == 0 and "the fitted share of departures that were forced" in text and "odds ratio per year" in text
 
 
 def test_bootstrap_json(capsys: pytest.CaptureFixture[str], db: str) -> None:

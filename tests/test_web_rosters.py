@@ -64,7 +64,7 @@ def test_upload_shows_detected_roles_then_confirm_imports(empty_client: Any, sto
     assert {k: getattr(roster, k) for k in counts} == counts
     assert roster.columns == DEMO_ROLES and roster.id == roster_id
     assert detail.context["page"].firms == demo_clean["Issuer Code"].nunique()
-    assert f'<div class="v">{counts["accepted"]}</div>' in detail.text
+    assert f'<div class="v">{counts["accepted"]:,}</div>' in detail.text  # with thousands separators
     api = empty_client.get(f"/api/rosters/{roster_id}").json()
     assert api["roster"]["accepted"] == counts["accepted"] and api["rejected_total"] == 4
 

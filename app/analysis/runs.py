@@ -6,10 +6,12 @@ import time
 from dataclasses import dataclass
 from typing import Any
 
-from app.analysis.cellstore import memoised
+from app.analysis.cellstore import cells_from_counts, memoised
 from app.analysis.inputs import AnalysisInput
 from app.analysis.robustness import check_robustness, robustness_to_dict
 from app.stats.coverage import suggest_window
+from app.stats.headline import headline_fields
+from app.stats.periods import PeriodComparison, compare_periods, default_periods
 from app.stats.sectors import SectorTrends, fit_sector_trends, sector_trends_to_dict
 from app.stats.trend import TrendFit, fit_trend
 from app.stats.trend_report import fit_to_dict, trend_sentence
@@ -68,13 +70,36 @@ def run_sectors(store: Store, inp: AnalysisInput, *, min_departures: int = 20) -
     return result, run_id
 
 
+def period_comparison(inp: AnalysisInput, periods: tuple[tuple[int, int], tuple[int, int]] | None = None,
+                      ) -> PeriodComparison:
+    """The forced share of two periods compared (default: the window's last third against the rest).
+
+    Periods may reach outside the analysis window: they count every forced and voluntary departure of
+    their years under the input's mapping. Raises ``PeriodError`` for periods that cannot be compared.
+    """
+    years = inp.counts["year"]
+    # every year of the roster, read from the cell store (no read of the records)
+    groups = cells_from_counts(inp.counts, (int(years.min()), int(years.max()))).groups
+    counts = groups.assign(total=groups["forced"] + groups["voluntary"])
+    first, second = periods if periods is not None else default_periods(inp.window)
+    return compare_periods(counts, first, second)
+
+
 def fit_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", by_sector: bool = False,
-                spline_df: int = 3, quasi: bool = False) -> dict[str, Any]:
-    """The command line's ``fit --json`` object (and the trend page's JSON twin)."""
+                spline_df: int = 3, quasi: bool = False,
+                periods: tuple[tuple[int, int], tuple[int, int]] | None = None) -> dict[str, Any]:
+    """The command line's ``fit --json`` object (and the trend page's JSON twin).
+
+    ``headline`` and ``fitted_share`` lead with the fitted share at both ends of the window; ``periods``
+    is there when ``periods`` are given.
+    """
     outcome = run_trend(store, inp, model=model, spline_df=spline_df, quasi=quasi)
     payload: dict[str, Any] = dict(fit_to_dict(outcome.fit))
     payload.update({"roster": inp.roster.name, "mapping": inp.mapping_label, "run": outcome.run_id,
-                    "sentence": trend_sentence(outcome.fit), "warnings": inp.warnings()})
+                    "sentence": trend_sentence(outcome.fit), "warnings": inp.warnings(),
+                    **headline_fields(outcome.fit)})
+    if periods is not None:
+        payload["periods"] = period_comparison(inp, periods).as_dict()
     if by_sector:
         sectors, _ = run_sectors(store, inp)
         view = sector_trends_to_dict(sectors)

@@ -17,7 +17,7 @@ from app.briefing.charts import untitled
 from app.briefing.deck import Finding, build_deck
 from app.briefing.findings import CHART_NAMES, ChartFinding, build_finding, latest_bootstrap
 from app.briefing.render import figure_bytes
-from app.stats.trend_report import trend_sentence
+from app.stats.headline import headline_sentence
 from app.store import Store
 
 ExportFormat = Literal["png", "svg", "pdf", "pptx", "brief"]
@@ -106,7 +106,7 @@ def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None) -
     quoted = [outcome.run_id] + ([run.id] if run is not None and run.result is not None else [])
     provenance = replace(provenance, packs=tuple((i, build_pack(store, i).sha256) for i in quoted))
     # the headline is the trend chart's own title, so that chart goes in without it
-    return build_brief(headline=trend_sentence(fit), charts=[untitled(trend.figure), second.figure],
+    return build_brief(headline=headline_sentence(fit), charts=[untitled(trend.figure), second.figure],
                        table=pd.DataFrame(rows), method_text=method, provenance=provenance)
 
 

@@ -19,9 +19,9 @@ from app.analysis.jobs import replicate_odds_ratios
 from app.analysis.provenance import Provenance, provenance_for
 from app.analysis.runs import run_sectors, run_trend
 from app.briefing.charts import bootstrap_histogram, coverage_figure, forest_figure, trend_figure
+from app.stats.headline import headline_sentence, interval_label, model_interval
 from app.stats.sectors import SectorTrends
 from app.stats.trend import TrendFit
-from app.stats.trend_report import trend_sentence
 from app.store import Run, Store, StoreError
 
 if TYPE_CHECKING:
@@ -62,15 +62,16 @@ def coverage_finding(inp: AnalysisInput) -> ChartFinding:
 
 
 def trend_finding_from_fit(inp: AnalysisInput, fit: TrendFit, model: str) -> ChartFinding:
-    prov = provenance_for(inp, model=model, interval_method="Wald and profile likelihood, 95%",
-                          by_sector=model == "sector")
+    prov = provenance_for(inp, model=model, interval_method=interval_label(fit), by_sector=model == "sector")
     observed = fit.observed.assign(low=fit.observed["wilson_low"], high=fit.observed["wilson_high"])
-    sentence = trend_sentence(fit)
+    sentence = headline_sentence(fit)
     fig = trend_figure(observed, fit.fitted, title=sentence, source=prov.short())
-    wald = fit.conf_int.get("wald")
-    detail = (f"Odds ratio per year {fit.odds_ratio:.3f} (95% Wald {wald[0]:.3f} to {wald[1]:.3f}), from "
-              f"{fit.departures:,} departures of which {fit.forced:,} were forced; Pearson dispersion "
-              f"{fit.dispersion:.2f}." if fit.odds_ratio is not None and wald is not None else sentence)
+    interval = model_interval(fit)
+    # the takeaway names the same interval as the headline (profile likelihood), never a second method
+    detail = (f"Odds ratio per year {fit.odds_ratio:.3f} ({interval_label(fit)} {interval[0]:.3f} to "
+              f"{interval[1]:.3f}), from {fit.departures:,} departures of which {fit.forced:,} were forced; "
+              f"Pearson dispersion {fit.dispersion:.2f}." if fit.odds_ratio is not None and interval is not None
+              else sentence)
     return ChartFinding("trend", fig, detail, prov, sentence)
 
 
@@ -204,7 +205,7 @@ def build_finding(store: Store, inp: AnalysisInput, chart: str, *, run_id: int |
             latest = latest_bootstrap(store, inp)
             if latest is None:
                 raise StoreError("No finished bootstrap run matches this roster's mapping and window; "
-                                 "start one on the Resampling page or with `helmshift bootstrap`.")
+                                 "start one on the Resampling page or with the command helmshift bootstrap.")
             run_id = latest.id
         return bootstrap_finding(store, run_id, method)
     if chart == "sectors":

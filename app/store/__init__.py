@@ -13,6 +13,7 @@ from __future__ import annotations
 from app.store.accounts import Account, AccountQueries
 from app.store.audit import AuditEvent, AuditQueries
 from app.store.cells import CellQueries
+from app.store.departure_query import DepartureFilter, DepartureQueries
 from app.store.mappings import MappingQueries
 from app.store.records import (
     MAX_ID,
@@ -31,10 +32,12 @@ from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metada
 from app.store.universe import UniverseQueries
 
 __all__ = [
-    "Account", "AuditEvent", "DEPARTURE_FIELDS", "HEAD_REVISION", "MAX_ID", "MappingVersion", "RejectedRow",
-    "Roster", "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata", "now_iso",
+    "Account", "AuditEvent", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION", "MAX_ID", "MappingVersion",
+    "RejectedRow", "Roster", "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata",
+    "now_iso",
 ]
 
 
-class Store(RosterQueries, MappingQueries, RunQueries, UniverseQueries, CellQueries, AccountQueries, AuditQueries):
+class Store(RosterQueries, DepartureQueries, MappingQueries, RunQueries, UniverseQueries, CellQueries,
+            AccountQueries, AuditQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""

@@ -14,7 +14,18 @@ from starlette.exceptions import HTTPException
 from app import __version__
 from app.config import Settings
 from app.store import Store
-from app.web import auth, briefing, coverage, reasons, resampling, rosters, sectors, trend, universe
+from app.web import (
+    auth,
+    briefing,
+    coverage,
+    departures,
+    reasons,
+    resampling,
+    rosters,
+    sectors,
+    trend,
+    universe,
+)
 from app.web.deps import BadRequest, NotFound
 from app.web.rendering import STATIC_DIR, render, templates
 from app.web.schemas import HealthBody
@@ -23,6 +34,7 @@ from app.web.uploads import UploadStash
 
 #: per-roster pages shown in the navigation after Roster / Reason codes / Coverage, in order
 NAV_PAGES: list[tuple[str, str]] = [
+    ("departures_page", "Departures"),
     ("trend_page", "Trend"),
     ("resampling_page", "Resampling"),
     ("sectors_page", "Sectors"),
@@ -92,7 +104,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     def health() -> dict[str, object]:
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (auth, rosters, reasons, coverage, trend, resampling, sectors, briefing, universe):
+    for module in (auth, rosters, reasons, coverage, departures, trend, resampling, sectors, briefing, universe):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)

@@ -14,6 +14,7 @@ from app.analysis.rates import RatesSection, rates_section
 from app.briefing.findings import coverage_finding
 from app.stats.coverage import WindowSuggestion, YearFlag
 from app.store import Roster, Store, StoreError
+from app.web.departures import mapping_ref
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.forms import read_form
@@ -40,6 +41,7 @@ class CoveragePage:
     figure: FigureSpec = field(metadata={"json_skip": True})
     #: turnover per 100 firm-years over the roster's universe (no trend here; Trend fits it)
     rates: RatesSection | None = None
+    records_mapping: str | None = field(default=None, metadata={"json_skip": True})
 
 
 CoverageBody = define(CoveragePage, "CoverageBody", fields={"table": list_of(CoverageYear)})
@@ -59,7 +61,7 @@ def _page(inp: AnalysisInput, threshold: float, rates: RatesSection | None = Non
     return CoveragePage(
         roster=inp.roster, mapping_label=inp.mapping_label, table=inp.coverage, suggestion=inp.suggestion,
         flags=inp.flags, window=inp.window, window_source=inp.window_source, threshold=threshold,
-        warnings=inp.warnings(), figure=figure, rates=rates,
+        warnings=inp.warnings(), figure=figure, rates=rates, records_mapping=mapping_ref(inp.mapping),
     )
 
 

@@ -55,7 +55,13 @@ def _fmt_when(value: str | None) -> str:
         return value
 
 
+def _fmt_count(value: int | None) -> str:
+    """A count with thousands separators (12,345), the one convention of every page."""
+    return "n/a" if value is None else f"{int(value):,}"
+
+
 templates.env.filters["when"] = _fmt_when
+templates.env.filters["count"] = _fmt_count
 templates.env.filters["script_json"] = _script_json
 templates.env.filters["pct"] = _fmt_pct
 templates.env.filters["num"] = _fmt_num

@@ -197,6 +197,24 @@ __all__ = ["BootstrapResultOut", "BootstrapRunOut", "CoverageYear", "CurvatureOu
 # -- a run's replicates and jackknife values, as data for other tools (built as dicts, not dataclasses) ---------
 
 
+class DepartureOut(_Exact):
+    """One departure in the record browser (rows are built from a SQL query, not a dataclass)."""
+
+    line: int = Field(description="line of the departure in the imported file")
+    year: int
+    date: str | None
+    firm_id: str
+    firm_name: str | None
+    sector: str | None
+    executive: str | None
+    reason: str
+    category: Literal["forced", "voluntary", "excluded", "unmapped"]
+    age: float | None
+    tenure: float | None
+    interim: bool | None
+    notes: str | None
+
+
 class ReplicateOut(_Exact):
     index: int
     log_odds_ratio: float | None

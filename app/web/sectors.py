@@ -14,6 +14,7 @@ from app.analysis.runs import run_sectors
 from app.briefing.findings import robustness_finding_from, sectors_finding_from
 from app.stats.sectors import SectorTrends
 from app.store import Roster, Store, StoreError
+from app.web.departures import mapping_ref
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.rendering import as_json, render
@@ -35,6 +36,7 @@ class SectorsPage:
     error: str | None
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     warnings: list[str] = field(default_factory=list)
+    records_mapping: str | None = field(default=None, metadata={"json_skip": True})
 
 
 SectorsBody = define(SectorsPage, "SectorsBody")
@@ -77,13 +79,15 @@ def sectors_data(store: Store, roster_id: int, *, min_departures: int = 20) -> S
     if not any(t.status == "fitted" for t in result.sectors):  # nothing to draw: say why instead
         return SectorsPage(roster, inp.mapping_label, inp.window, result, None,
                            "No sector could be fitted on its own. " + " ".join(result.messages),
-                           warnings=inp.warnings())
+                           warnings=inp.warnings(), records_mapping=mapping_ref(inp.mapping))
+
     def draw() -> tuple[str, FigureSpec]:
         finding = sectors_finding_from(inp, result)
         return finding.takeaway, figure_spec(finding.figure, titled=False)
 
     takeaway, figure = page_memo(store, ("sectors", *inp.key, min_departures), draw)
-    return SectorsPage(roster, inp.mapping_label, inp.window, result, takeaway, None, figure, inp.warnings())
+    return SectorsPage(roster, inp.mapping_label, inp.window, result, takeaway, None, figure, inp.warnings(),
+                       mapping_ref(inp.mapping))
 
 
 def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: list[str]) -> RobustnessPage:

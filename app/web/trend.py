@@ -8,13 +8,16 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
-from app.analysis.inputs import load_input
+from app.analysis.inputs import AnalysisInput, load_input
 from app.analysis.rates import RatesSection, rates_section
-from app.analysis.runs import run_trend
+from app.analysis.runs import period_comparison, run_trend
 from app.briefing.findings import trend_finding_from_fit
+from app.stats.headline import headline_fields, headline_sentence
+from app.stats.periods import PeriodError, Span, parse_periods
 from app.stats.trend import SPLINE_DFS, TREND_KINDS, TrendError, TrendFit
-from app.stats.trend_report import fit_to_dict, trend_sentence
+from app.stats.trend_report import fit_to_dict
 from app.store import Roster, Run, Store, StoreError
+from app.web.departures import mapping_ref
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.rendering import as_json, render
@@ -46,6 +49,9 @@ class TrendPage:
     spline_dfs: tuple[int, ...] = SPLINE_DFS
     #: forced and voluntary turnover per 100 firm-years and their Poisson trends (None without a mapping)
     rates: RatesSection | None = None
+    records_mapping: str | None = field(default=None, metadata={"json_skip": True})
+    periods: dict[str, Any] | None = None
+    periods_error: str | None = None
 
 
 TrendBody = define(TrendPage, "TrendBody", fields={"fit": TrendFitSummary | None, "table": list_of(OddsRow)},
@@ -74,8 +80,17 @@ def _odds_table(fit: TrendFit) -> list[dict[str, Any]]:
     return rows
 
 
+def _periods(inp: AnalysisInput, periods: tuple[Span, Span] | None) -> tuple[dict[str, Any] | None, str | None]:
+    """The period comparison, or why there is none (periods outside the data, overlapping, ...)."""
+    try:
+        return period_comparison(inp, periods).as_dict(), None
+    except PeriodError as exc:
+        return None, str(exc)
+
+
 def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df: int = 3,
-               window: tuple[int, int] | None = None, quasi: bool = False) -> TrendPage:
+               window: tuple[int, int] | None = None, quasi: bool = False,
+               periods: tuple[Span, Span] | None = None) -> TrendPage:
     if model not in TREND_KINDS:
         raise BadRequest(f"model must be one of {', '.join(TREND_KINDS)}; got {model!r}.")
     if spline_df not in SPLINE_DFS:
@@ -98,11 +113,14 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
     fit = outcome.fit
     figure = page_memo(store, ("trend", *inp.key, model, spline_df, quasi),
                        lambda: figure_spec(trend_finding_from_fit(inp, fit, model).figure, titled=False))
+    compared, compare_error = _periods(inp, periods)
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
-        model=model, spline_df=spline_df, fit=fit_to_dict(fit), sentence=trend_sentence(fit), error=None,
+        model=model, spline_df=spline_df, fit={**fit_to_dict(fit), **headline_fields(fit)},
+        sentence=headline_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
-        figure=figure, table=_odds_table(fit), quasi=quasi, rates=rates,
+        figure=figure, table=_odds_table(fit), quasi=quasi, rates=rates, records_mapping=mapping_ref(inp.mapping),
+        periods=compared, periods_error=compare_error,
     )
 
 
@@ -115,13 +133,25 @@ def _empty(store: Store, roster: Roster, model: str, spline_df: int, error: str)
                      _trend_runs(store, roster.id))
 
 
+def _period_args(request: Request) -> tuple[Span, Span] | None:
+    first, second = (request.query_params.get(k, "").strip() for k in ("first", "second"))
+    if not first and not second:
+        return None
+    try:
+        return parse_periods(f"{first}:{second}")
+    except PeriodError:
+        raise BadRequest("Compare two periods written like 1998-2014 (first) and 2015-2022 (second); "
+                         f"got {first!r} and {second!r}.") from None
+
+
 def _request_args(request: Request) -> dict[str, Any]:
     df = request.query_params.get("spline_df", "3")
     quasi = request.query_params.get("quasi", "0")
     if quasi not in ("0", "1"):
         raise BadRequest(f"quasi must be 0 or 1; got {quasi!r}.")
     return {"model": request.query_params.get("model", "linear"),
-            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request), "quasi": quasi == "1"}
+            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request), "quasi": quasi == "1",
+            "periods": _period_args(request)}
 
 
 _TREND_QUERY = query(("model", {"type": "string", "enum": list(TREND_KINDS), "default": "linear"}, "trend model"),
@@ -129,7 +159,11 @@ _TREND_QUERY = query(("model", {"type": "string", "enum": list(TREND_KINDS), "de
                       "degrees of freedom of the spline checked for curvature"),
                      ("quasi", {"type": "string", "enum": ["0", "1"], "default": "0"},
                       "1 gives the quasi-binomial intervals whatever the dispersion"),
-                     *WINDOW_QUERY)
+                     *WINDOW_QUERY,
+                     ("first", {"type": "string", "pattern": "^[0-9]{4}-[0-9]{4}$"},
+                      "first period to compare, e.g. 1998-2014 (default: the window before its last third)"),
+                     ("second", {"type": "string", "pattern": "^[0-9]{4}-[0-9]{4}$"},
+                      "second period, e.g. 2015-2022 (default: the window's last third)"))
 
 
 @router.get("/rosters/{roster_id}/trend", response_class=HTMLResponse, name="trend_page",

@@ -1,0 +1,174 @@
+"""Filtered, sorted, paged reads of a roster's departures: the record browser and its exports.
+
+Every filter, the category lookup through a mapping version, the sort and the page are done by the
+database (one LEFT JOIN on ``mapping_entries`` gives each departure its category), so a roster of
+100,000 departures is never read into Python to show 50 of them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Any
+
+from sqlalchemy import ColumnElement, Select, and_, func, literal, or_, select
+
+from app.store.engine import Gateway
+from app.store.records import MAX_ID, StoreError
+from app.store.tables import departures, mapping_entries, mapping_versions, mappings
+from app.types import CATEGORIES, UNMAPPED
+
+#: the category values a filter accepts: the mapping's categories, "unmapped", and "counted"
+#: (forced or voluntary: the departures every model counts)
+CATEGORY_FILTERS: tuple[str, ...] = (*CATEGORIES, UNMAPPED, "counted")
+
+#: the sector name the models give a departure without a sector (app.stats.cells)
+NO_SECTOR = "(none)"
+
+#: sort keys the browser offers -> columns; a leading "-" sorts descending
+SORT_KEYS: dict[str, str] = {
+    "line": "line", "year": "year", "date": "date", "firm": "firm_name", "firm_id": "firm_id",
+    "sector": "sector", "reason": "reason", "category": "category", "executive": "executive",
+}
+
+#: the columns a listed departure carries, in display and export order
+LISTED_FIELDS: tuple[str, ...] = (
+    "line", "year", "date", "firm_id", "firm_name", "sector", "executive", "reason", "category",
+    "age", "tenure", "interim", "notes",
+)
+
+MAX_PER_PAGE = 500
+
+
+@dataclass(frozen=True)
+class DepartureFilter:
+    """What the analyst asked for; ``None`` means "any".
+
+    ``mapping`` (name, version) gives each code its category; without it every departure is unmapped.
+    """
+
+    mapping: tuple[str, int] | None = None
+    year: int | None = None
+    year_from: int | None = None
+    year_to: int | None = None
+    sector: str | None = None
+    category: str | None = None
+    reason: str | None = None
+    firm: str | None = None
+    q: str | None = None
+
+    def __post_init__(self) -> None:
+        if self.category is not None and self.category not in CATEGORY_FILTERS:
+            raise StoreError(f"category must be one of {', '.join(CATEGORY_FILTERS)}; got {self.category!r}.")
+        for name in ("year", "year_from", "year_to"):
+            value = getattr(self, name)
+            if value is not None and not 0 <= value <= 9999:
+                raise StoreError(f"{name.replace('_', ' ')} must be a fiscal year such as 1998; got {value}.")
+
+
+@dataclass(frozen=True)
+class DeparturePage:
+    total: int
+    rows: list[dict[str, Any]]
+
+
+class DepartureQueries(Gateway):
+    """The record browser's reads."""
+
+    def _mapping_version_id(self, mapping: tuple[str, int] | None) -> int | None:
+        if mapping is None:
+            return None
+        name, version = mapping
+        if not 0 < version <= MAX_ID:
+            raise StoreError(f"No version {version} of mapping {name!r} is stored.")
+        with self.engine.connect() as conn:
+            row = conn.execute(
+                select(mapping_versions.c.id).join(mappings, mapping_versions.c.mapping_id == mappings.c.id)
+                .where(mappings.c.name == name, mapping_versions.c.version == version)
+            ).first()
+        if row is None:
+            raise StoreError(f"No version {version} of mapping {name!r} is stored.")
+        return int(row.id)
+
+    def _departure_select(self, roster_id: int, flt: DepartureFilter) -> Select[Any]:
+        version_id = self._mapping_version_id(flt.mapping)
+        entry = mapping_entries.alias("entry")
+        if version_id is None:
+            category: ColumnElement[Any] = literal(UNMAPPED)
+            source: Any = departures
+        else:
+            category = func.coalesce(entry.c.category, UNMAPPED)
+            source = departures.outerjoin(
+                entry, and_(entry.c.code == departures.c.reason, entry.c.version_id == version_id))
+        d = departures.c
+        conditions: list[ColumnElement[bool]] = [d.roster_id == roster_id]
+        if flt.year is not None:
+            conditions.append(d.year == flt.year)
+        if flt.year_from is not None:
+            conditions.append(d.year >= flt.year_from)
+        if flt.year_to is not None:
+            conditions.append(d.year <= flt.year_to)
+        if flt.sector is not None:
+            # the models put departures without a sector in "(none)"; the filter must find the same ones
+            conditions.append(or_(d.sector.is_(None), d.sector == NO_SECTOR) if flt.sector == NO_SECTOR
+                              else d.sector == flt.sector)
+        if flt.reason is not None:
+            conditions.append(d.reason == flt.reason)
+        if flt.firm is not None:
+            conditions.append(or_(d.firm_id == flt.firm, d.firm_name == flt.firm))
+        if flt.category == "counted":
+            conditions.append(category.in_(["forced", "voluntary"]))
+        elif flt.category is not None:
+            conditions.append(category == flt.category)
+        if flt.q:
+            needle = flt.q.strip().lower()
+            texts = (d.firm_id, d.firm_name, d.sector, d.executive, d.reason, d.notes)
+            conditions.append(or_(*(func.lower(c).contains(needle, autoescape=True) for c in texts)))
+        columns = [d[f] for f in LISTED_FIELDS if f != "category"]
+        return select(*columns, category.label("category")).select_from(source).where(*conditions)
+
+    def count_departures(self, roster_id: int, flt: DepartureFilter) -> int:
+        inner = self._departure_select(roster_id, flt).subquery()
+        with self.engine.connect() as conn:
+            return int(conn.execute(select(func.count()).select_from(inner)).scalar_one())
+
+    def _ordered(self, roster_id: int, flt: DepartureFilter, sort: str) -> Select[Any]:
+        key = sort.lstrip("-")
+        if key not in SORT_KEYS:
+            raise StoreError(f"sort must be one of {', '.join(SORT_KEYS)} (with '-' for descending); got {sort!r}.")
+        stmt = self._departure_select(roster_id, flt)
+        column = stmt.selected_columns[SORT_KEYS[key]]
+        first = column.desc() if sort.startswith("-") else column.asc()
+        # NULLs last whichever the direction, then source line: a stable order for paging
+        return stmt.order_by(column.is_(None), first, departures.c.line, departures.c.id)
+
+    def find_departures(self, roster_id: int, flt: DepartureFilter, *, sort: str = "line", page: int = 1,
+                        per_page: int = 50) -> DeparturePage:
+        """One page (1-based) of the departures matching ``flt``, with the total that match."""
+        if not 1 <= per_page <= MAX_PER_PAGE:
+            raise StoreError(f"per page must be between 1 and {MAX_PER_PAGE}; got {per_page}.")
+        if not 1 <= page <= MAX_ID // MAX_PER_PAGE:
+            raise StoreError(f"page must be 1 or more; got {page}.")
+        total = self.count_departures(roster_id, flt)
+        stmt = self._ordered(roster_id, flt, sort).limit(per_page).offset((page - 1) * per_page)
+        with self.engine.connect() as conn:
+            rows = [dict(r._mapping) for r in conn.execute(stmt)]
+        return DeparturePage(total=total, rows=rows)
+
+    def iter_departures(self, roster_id: int, flt: DepartureFilter, *, sort: str = "line",
+                        batch: int = 5000) -> Iterator[dict[str, Any]]:
+        """Every matching departure in order, fetched in batches (for exports)."""
+        stmt = self._ordered(roster_id, flt, sort)
+        with self.engine.connect() as conn:
+            result = conn.execution_options(yield_per=batch).execute(stmt)
+            for row in result:
+                yield dict(row._mapping)
+
+    def departure_facets(self, roster_id: int) -> dict[str, list[Any]]:
+        """The distinct years, sectors and reason codes of a roster, for the filter controls."""
+        d = departures.c
+        with self.engine.connect() as conn:
+            def distinct(col: Any) -> list[Any]:
+                return [r[0] for r in conn.execute(
+                    select(col).where(d.roster_id == roster_id, col.is_not(None)).distinct().order_by(col))]
+            return {"years": distinct(d.year), "sectors": distinct(d.sector), "reasons": distinct(d.reason)}

@@ -1,0 +1,65 @@
+"""Every page at a phone's width (390 px) and a desktop's (1440 px): nothing makes the page wider than the
+screen (wide tables and the navigation scroll inside their own boxes), charts are drawn, and a coverage bar
+opens the departures behind it. Drives Debian's Chromium through Playwright (never `playwright install`).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+from urllib.parse import parse_qs, urlsplit
+
+import pytest
+from test_e2e_browser import CHROMIUM, CHROMIUM_ARGS, _need_browser
+
+pytestmark = pytest.mark.browser
+
+PAGES = ("/rosters", "/rosters/1", "/rosters/1/reasons", "/rosters/1/coverage", "/rosters/1/departures",
+         "/rosters/1/departures?year=2010&category=forced", "/rosters/1/trend", "/rosters/1/resampling",
+         "/rosters/1/sectors", "/rosters/1/robustness", "/rosters/1/briefing")
+
+
+@pytest.mark.slow
+def test_every_page_fits_phone_and_desktop_widths(demo_db: Path, live_server: Any) -> None:
+    sync_playwright = _need_browser()
+    server = live_server(demo_db)
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)
+        try:
+            for width in (390, 1440):
+                context = browser.new_context(viewport={"width": width, "height": 900})
+                page = context.new_page()
+                for path in PAGES:
+                    page.goto(server.base_url + path)
+                    page.wait_for_load_state("networkidle")
+                    for chart in page.locator(".chart").all():
+                        chart_id = chart.get_attribute("id")
+                        page.wait_for_selector(f"#{chart_id}[data-state='drawn']", timeout=60_000)
+                    assert page.evaluate("document.documentElement.scrollWidth") <= width, (path, width)
+                    # the navigation is one row, not a column as tall as the screen
+                    assert page.locator("header.topbar").bounding_box()["height"] < 130, (path, width)
+                if width == 390:
+                    page.goto(server.base_url + "/rosters/1/trend")
+                    page.wait_for_selector("#fig-trend[data-state='drawn']")
+                    legend = page.evaluate("document.getElementById('fig-trend').layout.legend.orientation")
+                    assert legend == "h"
+                context.close()
+            # a coverage bar is a link too: clicking the forced bar of a year opens that year's forced list
+            context = browser.new_context(viewport={"width": 1440, "height": 900})
+            page = context.new_page()
+            page.goto(server.base_url + "/rosters/1/coverage")
+            page.wait_for_selector("#fig-coverage[data-state='drawn']")
+            bar = page.locator("#fig-coverage g.trace.bars").first.locator("path").nth(10)
+            with page.expect_navigation():
+                bar.click(force=True)
+            query = parse_qs(urlsplit(page.url).query)
+            assert urlsplit(page.url).path == "/rosters/1/departures"
+            assert query["category"] == ["forced"] and query["mapping"] == ["demo standard:1"]
+            year = int(query["year"][0])
+            shown = page.locator("#records-total strong").inner_text()
+            total = page.request.get(f"{server.base_url}/api/rosters/1/departures?year={year}&category=forced"
+                                     "&mapping=demo+standard:1").json()["total"]
+            assert int(shown.replace(",", "")) == total > 0
+            context.close()
+        finally:
+            browser.close()
