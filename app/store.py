@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import json
 import zlib
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -41,6 +41,8 @@ from sqlalchemy import (
     update,
 )
 
+from sqlalchemy.schema import CreateIndex, CreateTable
+
 from app.types import CATEGORIES, Category, RunKind, RunStatus
 
 metadata = MetaData()
@@ -59,6 +61,7 @@ rosters = Table(
     Column("rejected", Integer, nullable=False),
     Column("duplicates", Integer, nullable=False),
     Column("columns", Text, nullable=False),  # JSON: role -> header used
+    sqlite_autoincrement=True,  # ids a URL or export names are never handed out again (migration 2)
 )
 
 DEPARTURE_FIELDS = (
@@ -99,6 +102,7 @@ mappings = Table(
     Column("id", Integer, primary_key=True),
     Column("name", String, nullable=False, unique=True),
     Column("created_at", String, nullable=False),
+    sqlite_autoincrement=True,
 )
 
 mapping_versions = Table(
@@ -110,6 +114,7 @@ mapping_versions = Table(
     Column("author", String, nullable=False),
     Column("note", Text, nullable=False),
     UniqueConstraint("mapping_id", "version"),
+    sqlite_autoincrement=True,
 )
 
 mapping_entries = Table(
@@ -134,7 +139,8 @@ runs = Table(
     "runs", metadata,
     Column("id", Integer, primary_key=True),
     Column("kind", String, nullable=False),
-    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    # no foreign key: a deleted roster's runs stay readable ("roster deleted"); roster ids are never reused
+    Column("roster_id", Integer, nullable=False, index=True),
     Column("status", String, nullable=False),
     Column("created_at", String, nullable=False),
     Column("started_at", String),
@@ -151,6 +157,7 @@ runs = Table(
     Column("result", Text),  # JSON
     Column("error", Text),
     Column("seconds", Float),
+    sqlite_autoincrement=True,
 )
 
 run_replicates = Table(
@@ -163,9 +170,61 @@ run_replicates = Table(
     UniqueConstraint("run_id", "seq"),
 )
 
+#: tables whose ids a URL, a run or an export names (issue 11): never reuse an id
+NEVER_REUSED = (rosters, mappings, mapping_versions, runs)
+
+
+def _rebuild_with_unique_ids(engine: Engine, version: int) -> None:
+    """Migration 2: rebuild ``NEVER_REUSED`` with AUTOINCREMENT and runs without the cascade, keeping data.
+
+    SQLite cannot add AUTOINCREMENT or drop a foreign key in place, so each table is rebuilt the way the
+    SQLite manual prescribes ("Making Other Kinds Of Table Schema Changes"): foreign keys off (only possible
+    outside a transaction), then in one transaction create, copy, drop, rename, re-index, check the keys.
+    Other backends (PostgreSQL sequences never reuse ids) need nothing but the version record.
+    """
+    if engine.dialect.name != "sqlite":
+        with engine.begin() as conn:
+            conn.execute(insert(schema_version).values(version=version))
+        return
+    raw = engine.raw_connection()
+    dbapi: Any = raw.driver_connection
+    saved = dbapi.isolation_level
+    dbapi.isolation_level = None  # we issue BEGIN / COMMIT ourselves
+    cur = dbapi.cursor()
+    try:
+        cur.execute("PRAGMA foreign_keys=OFF")
+        cur.execute("BEGIN IMMEDIATE")
+        try:
+            if cur.execute("SELECT max(version) FROM schema_version").fetchone()[0] < version:
+                for table in NEVER_REUSED:
+                    ddl = str(CreateTable(table).compile(dialect=engine.dialect))
+                    cur.execute(ddl.replace(f"CREATE TABLE {table.name} ", f"CREATE TABLE _new_{table.name} ", 1))
+                    cols = ", ".join(f'"{c.name}"' for c in table.columns)
+                    cur.execute(f"INSERT INTO _new_{table.name} ({cols}) SELECT {cols} FROM {table.name}")
+                    cur.execute(f"DROP TABLE {table.name}")
+                    cur.execute(f"ALTER TABLE _new_{table.name} RENAME TO {table.name}")
+                    for index in table.indexes:
+                        cur.execute(str(CreateIndex(index).compile(dialect=engine.dialect)))
+                broken = cur.execute("PRAGMA foreign_key_check").fetchall()
+                if broken:
+                    raise StoreError(f"The database has rows pointing at missing rows ({broken[:3]}); "
+                                     "it was not upgraded.")
+                cur.execute("INSERT INTO schema_version (version) VALUES (?)", (version,))
+            cur.execute("COMMIT")
+        except BaseException:
+            cur.execute("ROLLBACK")
+            raise
+    finally:
+        cur.execute("PRAGMA foreign_keys=ON")
+        cur.close()
+        dbapi.isolation_level = saved
+        raw.close()
+
+
 #: ordered schema migrations; index i+1 is the version after applying MIGRATIONS[i].
-#: Version 1 is the ``metadata.create_all`` above; later changes append SQL here.
-MIGRATIONS: list[str] = []
+#: Version 1 is the ``metadata.create_all`` above; later changes append SQL here, or a function
+#: ``(engine, version)`` that applies the change and records ``version`` in one transaction.
+MIGRATIONS: list[str | Callable[[Engine, int], None]] = [_rebuild_with_unique_ids]
 SCHEMA_VERSION = 1 + len(MIGRATIONS)
 
 
@@ -274,8 +333,13 @@ class Store:
             if current is None:
                 conn.execute(insert(schema_version).values(version=SCHEMA_VERSION))
                 return
-            for i in range(current - 1, len(MIGRATIONS)):
-                conn.execute(text(MIGRATIONS[i]))
+        for i in range(current - 1, len(MIGRATIONS)):
+            step = MIGRATIONS[i]
+            if callable(step):
+                step(self.engine, i + 2)
+                continue
+            with self.engine.begin() as conn:
+                conn.execute(text(step))
                 conn.execute(insert(schema_version).values(version=i + 2))
 
     def schema_version(self) -> int:
@@ -390,7 +454,11 @@ class Store:
             return conn.execute(select(rosters.c.id).where(rosters.c.name == name)).first() is not None
 
     def delete_roster(self, roster_id: int) -> None:
+        """Delete a roster with its rows and settings; its runs stay (readable as "roster deleted"),
+        and the ones still queued or running are asked to stop."""
         with self._tx() as conn:
+            conn.execute(update(runs).where(runs.c.roster_id == roster_id, runs.c.status.in_(("queued", "running")))
+                         .values(cancel_requested=True))
             conn.execute(delete(rosters).where(rosters.c.id == roster_id))
 
     def departures(self, roster_id: int, *, with_raw: bool = False) -> pd.DataFrame:

@@ -153,7 +153,7 @@ def test_no_json_response_is_declared_without_a_schema(openapi: dict[str, Any]) 
 
 
 def test_every_form_post_declares_its_body_redirect_and_refusals(openapi: dict[str, Any]) -> None:
-    bodiless = {"/rosters/{roster_id}/delete", "/runs/{run_id}/cancel"}
+    bodiless = {"/runs/{run_id}/cancel"}
     for path, ops in openapi["paths"].items():
         op = ops.get("post")
         if op is None:
@@ -231,6 +231,7 @@ def test_sectors_page_when_no_sector_can_be_fitted(api: TestClient, openapi: dic
     assert r.status_code == 200
     body = S.SectorsBody.model_validate(r.json())
     assert body.error and body.result is not None
+    assert body.result.sectors, "no sector listed: the check below would pass on nothing"
     assert all(t.status == "skipped" for t in body.result.sectors)
     assert_conforms(openapi, "/api/rosters/{roster_id}/sectors", "get", r)
     page = api.get("/rosters/1/sectors?min_departures=10000")

@@ -351,6 +351,7 @@ def plausible_body(path: str) -> dict[str, Any]:
         "/rosters/{roster_id}/mapping/import": {"data": {"mapping_name": "evil"},
                                                 "files": {"file": ("m.csv", b"code,category\nRetired,forced\n")}},
         "/rosters/upload": {"files": {"file": ("r.csv", DEMO_ROSTER.read_bytes())}},
+        "/rosters/{roster_id}/delete": {"data": {"confirm": "yes"}},
         "/api/rosters": {"files": {"file": ("r.csv", DEMO_ROSTER.read_bytes())}, "data": {"name": "evil copy"}},
     }
     return forms.get(path, {"data": {"x": "1"}})
@@ -377,7 +378,16 @@ def test_post_routes_are_all_known(demo_app: tuple[TestClient, Store, int, int])
     {"origin": "http://127.0.0.1.evil.example"},
     {"origin": "http://localhost.evil.example:8000"},
     {"referer": FOREIGN + "/page"},
-], ids=["foreign-origin", "null-origin", "lookalike-origin", "lookalike-port", "foreign-referer"])
+    # same host, other port or scheme: another local program or dev server (issue 11, point 1)
+    {"origin": "http://testserver:9999"},
+    {"origin": "https://testserver"},
+    {"origin": "http://localhost:9999"},
+    {"origin": "https://127.0.0.1:4443"},
+    {"referer": "http://testserver:9999/rosters"},
+    {"referer": "https://testserver/rosters"},
+], ids=["foreign-origin", "null-origin", "lookalike-origin", "lookalike-port", "foreign-referer",
+        "foreign-port", "foreign-scheme", "localhost-other-port", "https-other-port", "referer-foreign-port",
+        "referer-foreign-scheme"])
 def test_cross_site_changes_are_refused_and_change_nothing(
         demo_app: tuple[TestClient, Store, int, int], headers: dict[str, str]) -> None:
     client, store, roster_id, run_id = demo_app
@@ -401,7 +411,9 @@ def test_same_origin_changes_pass(demo_app: tuple[TestClient, Store, int, int]) 
     client, store, roster_id, run_id = demo_app
     order = sorted(post_routes(client.app), key=lambda mp: mp[1].endswith("/delete"))  # delete last
     for method, path in order:
-        for headers in (SAME, {"referer": "http://testserver/rosters"}, {"origin": "http://localhost:8000"}):
+        for headers in (SAME, {"referer": "http://testserver/rosters"}, {"origin": "http://testserver:80"},
+                        # an allowed host on the server's own port and scheme
+                        {"origin": "http://localhost:8000", "host": "127.0.0.1:8000"}):
             url = fill(path, roster_id, run_id)
             r = client.request(method, url, headers=headers, follow_redirects=False, **plausible_body(path))
             assert r.status_code != 403, (method, url, headers, r.text[:200])

@@ -46,9 +46,12 @@ class ResamplingPage:
 
 @dataclass(frozen=True)
 class RunPage:
-    """One bootstrap run: its state, and when done its intervals, histogram and comparison."""
+    """One bootstrap run: its state, and when done its intervals, histogram and comparison.
 
-    roster: Roster
+    ``roster`` is None when the roster was deleted: the stored intervals stay readable, nothing is redrawn.
+    """
+
+    roster: Roster | None
     run: Run
     method: str
     rows: list[dict[str, Any]] = field(default_factory=list)
@@ -56,6 +59,7 @@ class RunPage:
     comparison_found: bool = False
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     percent: int = 0
+    roster_deleted: bool = False
 
 
 def resampling_data(store: Store, roster_id: int, error: str | None = None) -> ResamplingPage:
@@ -128,13 +132,18 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
     if method not in METHODS:
         raise BadRequest(f"method must be one of {', '.join(METHODS)}; got {method!r}.")
     run = _run(store, run_id)
-    roster = _roster(store, run.roster_id)
+    try:
+        roster: Roster | None = store.get_roster(run.roster_id)
+    except StoreError:
+        roster = None  # deleted; roster ids are never reused, so this run cannot point at other data
     percent = int(100 * run.progress_done / run.progress_total) if run.progress_total else 0
     if run.status != "done" or run.result is None:
-        return RunPage(roster, run, method, percent=percent)
+        return RunPage(roster, run, method, percent=percent, roster_deleted=roster is None)
     result = run.result
     rows = [{"method": METHOD_LABELS[m], "interval": result["conf_int"][m], "mc_error": result["mc_error"][m],
              "source": f"bootstrap, B = {result['resamples']:,}"} for m in METHODS]
+    if roster is None:
+        return RunPage(None, run, method, rows, percent=100, roster_deleted=True)
     try:
         inp = input_for_run(store, run)
         fit = run_trend(store, inp, model=run.params.get("model", "linear")).fit
@@ -249,6 +258,8 @@ async def run_extend(request: Request, run_id: int) -> RedirectResponse:
     form = await read_form(request)
     if run.status in ("queued", "running"):
         raise BadRequest("This run is still going; wait for it to end before extending it.")
+    if not any(r.id == run.roster_id for r in store.list_rosters()):
+        raise BadRequest("This run's roster was deleted, so the run cannot be extended; its results stay readable.")
     extra = _int_field(form, "extra", 0)
     try:
         extend_run(store, run.id, extra)

@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from fastapi import APIRouter, Request
+from starlette.concurrency import run_in_threadpool
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
 from app.ingest import (
@@ -21,7 +22,7 @@ from app.ingest import (
 )
 from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import ROLES
-from app.web.deps import NotFound, app_settings, app_store, app_uploads
+from app.web.deps import NotFound, app_settings, app_store, app_uploads, require_confirmation
 from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import (
@@ -62,6 +63,7 @@ class RosterDetailPage:
     window: tuple[int, int] | None
     rejected: list[RejectedRow]
     rejected_total: int
+    runs: int = 0
 
 
 @dataclass(frozen=True)
@@ -98,7 +100,7 @@ def roster_detail_data(store: Store, roster_id: int) -> RosterDetailPage:
     return RosterDetailPage(
         roster=roster, years=years, firms=int(deps["firm_id"].nunique()) if len(deps) else 0,
         sectors=sectors, mapping_name=settings.mapping_name, window=settings.window,
-        rejected=rejected[:REJECTED_SHOWN], rejected_total=len(rejected),
+        rejected=rejected[:REJECTED_SHOWN], rejected_total=len(rejected), runs=len(store.list_runs(roster.id)),
     )
 
 
@@ -265,9 +267,15 @@ def roster_rejected_csv(request: Request, roster_id: int) -> Response:
 
 
 @router.post("/rosters/{roster_id}/delete", name="roster_delete", status_code=303,
-            response_class=RedirectResponse, responses=redirect("the roster list", page_errors(404)))
-def roster_delete(request: Request, roster_id: int) -> RedirectResponse:
+             response_class=RedirectResponse, responses=redirect("the roster list", page_errors(400, 404)),
+             openapi_extra=form_body({"confirm": {
+                 "type": "string", "enum": ["yes"],
+                 "description": "must be yes: the server refuses a delete without it"}}, required=("confirm",)))
+async def roster_delete(request: Request, roster_id: int) -> RedirectResponse:
+    """Delete a roster, its departures, rejected rows and settings; its runs stay readable."""
     store = app_store(request)
     roster = _roster_or_404(store, roster_id)
-    store.delete_roster(roster.id)
+    form = await read_form(request)
+    require_confirmation(form, f"roster {roster.name!r}")
+    await run_in_threadpool(store.delete_roster, roster.id)
     return RedirectResponse(request.url_for("rosters_page"), status_code=303)

@@ -162,6 +162,7 @@ class RosterDetailBody(_Exact):
     window: YearSpan | None
     rejected: list[RejectedRowOut] = Field(description="the first 200 rejected rows")
     rejected_total: int
+    runs: int = Field(description="stored runs; they stay readable if the roster is deleted")
 
 
 # -- reason codes ----------------------------------------------------------------------------------
@@ -348,7 +349,8 @@ class IntervalRow(_Exact):
 
 
 class RunBody(_Exact):
-    roster: RosterOut
+    roster: RosterOut | None = Field(description="null when the roster was deleted (the run stays readable)")
+    roster_deleted: bool
     run: BootstrapRunOut
     method: Literal["percentile", "basic", "bca"]
     rows: list[IntervalRow]
