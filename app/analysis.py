@@ -65,8 +65,12 @@ class AnalysisInput:
     def cells(self, *, by_sector: bool = False) -> Cells:
         return build_cells(self.records, self.window, by_sector=by_sector)
 
+    def counts_nothing(self) -> bool:
+        """True when the mapping counts no departure as forced or voluntary (every code excluded)."""
+        return not self.records["category"].isin(["forced", "voluntary"]).any()
+
     def warnings(self) -> list[str]:
-        notes: list[str] = []
+        notes: list[str] = [NOTHING_COUNTED] if self.mapping is not None and self.counts_nothing() else []
         unmapped = self.unmapped_codes()
         if len(unmapped):
             total = int(unmapped["count"].sum())
@@ -117,7 +121,13 @@ def load_input(
         raise StoreError(f"Roster {roster.name!r} has no accepted departures.")
     records["category"] = assign_categories(records["reason"], version.categories if version else {})
     table = coverage_table(records["year"], records["category"])
-    suggestion = suggest_window(table, threshold=threshold)
+    try:
+        suggestion = suggest_window(table, threshold=threshold)
+        flags = flag_years(table, threshold=threshold)
+    except ValueError:
+        # a valid mapping that excludes every code: nothing to suggest from; every page shows the whole
+        # span and says why no trend can be fitted (NOTHING_COUNTED), instead of failing
+        suggestion, flags = _whole_span(table, threshold), []
     source: WindowSource
     if window is not None:
         first, last = int(records["year"].min()), int(records["year"].max())
@@ -128,8 +138,20 @@ def load_input(
         window, source = settings.window, "chosen"
     else:
         window, source = suggestion.window, "suggested"
-    return AnalysisInput(roster, version, records, window, source, table, suggestion,
-                         flag_years(table, threshold=threshold))
+    return AnalysisInput(roster, version, records, window, source, table, suggestion, flags)
+
+
+NOTHING_COUNTED = ("The mapping counts no departure as forced or voluntary (every code is excluded), so there is "
+                   "nothing to fit; change the categories on the Reason codes page.")
+
+
+def _whole_span(table: pd.DataFrame, threshold: float) -> WindowSuggestion:
+    years = table["year"].astype(int)
+    return WindowSuggestion(
+        window=(int(years.min()), int(years.max())), median=0.0, cutoff=0.0, threshold=float(threshold),
+        basis="not_excluded", rule="no year has any counted record (every code is excluded), so the whole span "
+        "of years is shown", below_cutoff=(),
+    )
 
 
 def input_for_run(store: Store, run: Run) -> AnalysisInput:
