@@ -10,9 +10,9 @@ A run found ``queued`` or ``running`` at start-up was cut short by a crash and i
 
 from __future__ import annotations
 
+import logging
 import threading
 import time
-import logging
 from concurrent.futures import Future, ThreadPoolExecutor
 from typing import Any
 

@@ -19,6 +19,7 @@ from collections import Counter
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from datetime import date, datetime, time
+from time import monotonic
 from typing import Literal
 
 import numpy as np
@@ -43,6 +44,10 @@ class ReadLimits:
     max_zip_entries: int = 10_000
     #: far above any real roster; stops a small, highly compressed workbook from tying up the server
     max_data_rows: int = 500_000
+    #: every sheet row openpyxl hands over, blank ones included (a sheet of empty rows is cheap to send)
+    max_sheet_rows: int = 1_000_000
+    #: wall-clock bound on parsing one workbook
+    max_seconds: float = 120.0
 
 
 DEFAULT_LIMITS = ReadLimits()
@@ -368,7 +373,16 @@ def read_xlsx(
             if not hasattr(ws, "iter_rows"):
                 raise RosterFileError(f"Sheet {name!r} is a chart, not a table; choose another sheet.")
             table: RawTable | None = None
+            deadline = monotonic() + limits.max_seconds
             for line, values in enumerate(ws.iter_rows(min_row=1, values_only=True), start=1):
+                if line > limits.max_sheet_rows:
+                    raise RosterFileError(
+                        f"Sheet {name!r} has more than {limits.max_sheet_rows:,} rows (blank ones included); "
+                        "delete the unused rows or save the roster as CSV.")
+                if line % 1000 == 0 and monotonic() > deadline:
+                    raise RosterFileError(
+                        f"Reading sheet {name!r} took longer than {limits.max_seconds:g} s (stopped at row "
+                        f"{line:,}); save the roster as CSV, which reads much faster.")
                 row = [_cell_text(v) for v in values]
                 while row and row[-1] == "":
                     row.pop()

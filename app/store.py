@@ -40,7 +40,6 @@ from sqlalchemy import (
     text,
     update,
 )
-
 from sqlalchemy.schema import CreateIndex, CreateTable
 
 from app.types import CATEGORIES, Category, RunKind, RunStatus

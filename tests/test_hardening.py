@@ -8,6 +8,7 @@ errors in test_cli.py; the live-server schema fuzzing in test_fuzz_live.py.
 
 from __future__ import annotations
 
+import contextlib
 import sqlite3
 import threading
 import time
@@ -282,3 +283,109 @@ def test_job_failure_is_not_printed_as_a_traceback(demo_store: Store, capsys: py
     assert run.status == "failed" and run.error
     captured = capsys.readouterr()
     assert "Traceback" not in captured.err + captured.out
+
+
+# -- 4. workbook parsing bounded by rows and time, oversized chunked uploads refused early ---------------
+def blank_rows_xlsx(blank: int, data_rows: int) -> bytes:
+    """A real workbook whose sheet has ``blank`` empty rows before a header and ``data_rows`` rows."""
+    import io
+    import zipfile
+
+    from openpyxl import Workbook
+
+    wb = Workbook()
+    wb.active.append(["x"])
+    real = io.BytesIO()
+    wb.save(real)
+    src = zipfile.ZipFile(io.BytesIO(real.getvalue()))
+    out = io.BytesIO()
+    with zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as zf:
+        for info in src.infolist():
+            if not info.filename.endswith("sheet1.xml"):
+                zf.writestr(info, src.read(info.filename))
+                continue
+            parts = [b'<?xml version="1.0"?><worksheet xmlns="http://schemas.openxmlformats.org/spreadsheetml/'
+                     b'2006/main"><sheetData>']
+            parts += [b'<row r="%d"/>' % (i + 1) for i in range(blank)]
+            head = blank + 1
+            parts.append(b'<row r="%d"><c t="inlineStr"><is><t>Issuer Code</t></is></c><c t="inlineStr"><is><t>FY'
+                         b'</t></is></c><c t="inlineStr"><is><t>Exit Reason</t></is></c></row>' % head)
+            parts += [b'<row r="%d"><c t="inlineStr"><is><t>A1</t></is></c><c><v>2001</v></c><c t="inlineStr">'
+                      b'<is><t>Retired</t></is></c></row>' % (head + 1 + i) for i in range(data_rows)]
+            parts.append(b"</sheetData></worksheet>")
+            zf.writestr(info.filename, b"".join(parts))
+    return out.getvalue()
+
+
+def test_workbook_parsing_is_bounded_by_rows_blank_ones_included() -> None:
+    from app.readers import ReadLimits, RosterFileError, read_xlsx
+
+    data = blank_rows_xlsx(3000, 10)
+    assert len(read_xlsx(data).rows) == 10  # within the default bounds it reads
+    with pytest.raises(RosterFileError, match="more than 2,000 rows"):
+        read_xlsx(data, limits=ReadLimits(max_sheet_rows=2000))
+
+
+def test_workbook_parsing_is_bounded_by_time() -> None:
+    from app.readers import ReadLimits, RosterFileError, read_xlsx
+
+    data = blank_rows_xlsx(0, 5000)
+    with pytest.raises(RosterFileError, match="took longer than"):
+        read_xlsx(data, limits=ReadLimits(max_seconds=0.0))
+
+
+def test_oversized_chunked_upload_is_refused_before_it_ends(tmp_path: Path) -> None:
+    """A live server with a 1 MB limit answers 413 while a 64 MB chunked upload is still being sent."""
+    import os
+    import socket
+    import subprocess
+    import sys
+
+    from conftest import free_port
+
+    port = free_port()
+    env = {**os.environ, "HELMSHIFT_UPLOAD_LIMIT": str(1024 * 1024)}
+    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", "--db", str(tmp_path / "u.db"),
+                             "--port", str(port)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
+    try:
+        deadline = time.monotonic() + 40
+        while time.monotonic() < deadline:
+            try:
+                if httpx.get(f"http://127.0.0.1:{port}/api/health", timeout=2).status_code == 200:
+                    break
+            except httpx.TransportError:
+                time.sleep(0.1)
+        boundary = "b0undary"
+        head = (f"--{boundary}\r\nContent-Disposition: form-data; name=\"file\"; filename=\"big.csv\"\r\n"
+                "Content-Type: text/csv\r\n\r\nIssuer Code,FY,Exit Reason\r\n").encode()
+        sent, total, answer = 0, 64 * 1024 * 1024, b""
+        with socket.create_connection(("127.0.0.1", port), timeout=30) as sock:
+            sock.sendall(f"POST /api/rosters HTTP/1.1\r\nHost: 127.0.0.1:{port}\r\nTransfer-Encoding: chunked\r\n"
+                         f"Content-Type: multipart/form-data; boundary={boundary}\r\n\r\n".encode())
+            piece = head + b"A1,2001,Retired\r\n" * 4000
+            sock.settimeout(0.0)
+            while sent < total:
+                with contextlib.suppress(BlockingIOError):
+                    answer += sock.recv(4096)
+                if answer:
+                    break
+                chunk = b"%x\r\n%s\r\n" % (len(piece), piece)
+                try:
+                    sock.settimeout(5)
+                    sock.sendall(chunk)
+                    sock.settimeout(0.0)
+                except OSError:  # the server closed the connection after answering
+                    break
+                sent += len(piece)
+                piece = b"A1,2001,Retired\r\n" * 4000
+            sock.settimeout(10)
+            while b"\r\n\r\n" not in answer:
+                more = sock.recv(4096)
+                if not more:
+                    break
+                answer += more
+        assert answer.startswith(b"HTTP/1.1 413"), answer[:200]
+        assert sent < total // 4, f"the server let {sent:,} bytes through before refusing"
+    finally:
+        proc.terminate()
+        proc.wait(20)

@@ -8,6 +8,7 @@ from typing import Any
 import pandas as pd
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis import AnalysisInput, load_input
 from app.findings import coverage_finding
@@ -15,7 +16,7 @@ from app.stats.coverage import WindowSuggestion, YearFlag
 from app.store import Roster, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec
-from app.web.forms import read_form
+from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import api_errors, form_body, page_errors, query, redirect
 from app.web.schemas import CoverageBody
@@ -102,9 +103,13 @@ def _year(form: Any, key: str) -> int:
              }))
 async def window_save(request: Request, roster_id: int) -> RedirectResponse:
     """Remember the analysis window for this roster; trend and resampling use it by default."""
+    form = await read_form(request)
+    return await run_in_threadpool(_window_save, request, roster_id, form)
+
+
+def _window_save(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     page = coverage_data(store, roster_id)
-    form = await read_form(request)
     if form.get("reset"):
         store.update_settings(page.roster.id, clear_window=True)
     else:

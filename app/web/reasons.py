@@ -7,6 +7,7 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis import export_mapping_csv, import_mapping_file, load_input
 from app.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
@@ -167,9 +168,13 @@ def _form_entries(form: Any) -> tuple[dict[str, str], dict[str, str]]:
              }))
 async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
     """Save the categories in the form as the next version; codes of other rosters are carried over."""
+    form = await read_form(request)
+    return await run_in_threadpool(_reasons_save, request, roster_id, form)
+
+
+def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     page = reasons_data(store, roster_id)
-    form = await read_form(request)
     categories, labels = _form_entries(form)
     name = str(form.get("mapping_name") or "").strip() or (
         page.mapping.name if page.mapping else f"{page.roster.name} mapping")
@@ -192,9 +197,13 @@ async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
              response_class=RedirectResponse, responses=redirect("the Reason codes page", page_errors(400, 404)),
              openapi_extra=form_body({"mapping_name": {"type": "string"}}, required=("mapping_name",)))
 async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
+    form = await read_form(request)
+    return await run_in_threadpool(_mapping_select, request, roster_id, form)
+
+
+def _mapping_select(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     page = reasons_data(store, roster_id)
-    form = await read_form(request)
     name = str(form.get("mapping_name") or "")
     try:
         store.get_mapping(name)
@@ -209,9 +218,13 @@ async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
              openapi_extra=form_body({"file": FILE, "mapping_name": {"type": "string"}},
                                      required=("file", "mapping_name"), multipart=True))
 async def mapping_import(request: Request, roster_id: int) -> Response:
+    form = await read_form(request)
+    return await run_in_threadpool(_mapping_import, request, roster_id, form)
+
+
+def _mapping_import(request: Request, roster_id: int, form: dict[str, str | Upload]) -> Response:
     store = app_store(request)
     page = reasons_data(store, roster_id)
-    form = await read_form(request)
     upload = form.get("file")
     name = str(form.get("mapping_name") or "").strip()
     if not isinstance(upload, Upload) or not name:

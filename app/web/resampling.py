@@ -9,6 +9,7 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis import input_for_run, load_input, run_trend
 from app.findings import bootstrap_finding
@@ -18,7 +19,7 @@ from app.store import Roster, Run, Store, StoreError
 from app.types import UNITS
 from app.web.deps import BadRequest, NotFound, app_jobs, app_store
 from app.web.figures import FigureSpec, figure_spec
-from app.web.forms import read_form
+from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import FORM_AGAIN, api_errors, form_body, page_errors, query, redirect
 from app.web.schemas import RunBody, RunsBody
@@ -189,9 +190,13 @@ def _int_field(form: Any, key: str, default: int) -> int:
              }))
 async def resampling_start(request: Request, roster_id: int) -> Response:
     """Store the run, hand it to a worker, and go to its page (which shows the progress)."""
+    form = await read_form(request)
+    return await run_in_threadpool(_resampling_start, request, roster_id, form)
+
+
+def _resampling_start(request: Request, roster_id: int, form: dict[str, str | Upload]) -> Response:
     store = app_store(request)
     roster = _roster(store, roster_id)
-    form = await read_form(request)
     try:
         params = bootstrap_params(unit=str(form.get("unit") or "firm"), resamples=_int_field(form, "resamples", 2000),
                                   seed=_int_field(form, "seed", 1), model=str(form.get("model") or "linear"))
@@ -253,9 +258,13 @@ def run_cancel(request: Request, run_id: int) -> RedirectResponse:
              }}))
 async def run_extend(request: Request, run_id: int) -> RedirectResponse:
     """Add resamples to a finished, cancelled or interrupted run; stored replicates are kept."""
+    form = await read_form(request)
+    return await run_in_threadpool(_run_extend, request, run_id, form)
+
+
+def _run_extend(request: Request, run_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     run = _run(store, run_id)
-    form = await read_form(request)
     if run.status in ("queued", "running"):
         raise BadRequest("This run is still going; wait for it to end before extending it.")
     if not any(r.id == run.roster_id for r in store.list_rosters()):

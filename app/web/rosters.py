@@ -7,8 +7,8 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from fastapi import APIRouter, Request
-from starlette.concurrency import run_in_threadpool
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.concurrency import run_in_threadpool
 
 from app.ingest import (
     DuplicateRosterError,
@@ -143,8 +143,12 @@ _ROLE_FIELDS = {f"role_{r}": {"type": "string", "description": f"column holding 
              openapi_extra=form_body({"file": FILE, **_FILE_OPTIONS}, required=("file",), multipart=True))
 async def roster_upload(request: Request) -> HTMLResponse:
     """First step: keep the file aside, show its first rows and the column roles we detected."""
-    store = app_store(request)
     form = await read_form(request)
+    return await run_in_threadpool(_roster_upload, request, form)
+
+
+def _roster_upload(request: Request, form: dict[str, str | Upload]) -> HTMLResponse:
+    store = app_store(request)
     try:
         filename, data = _read_upload(form)
         encoding, sheet = _file_options(form)
@@ -186,8 +190,12 @@ def _file_options(form: dict[str, str | Upload]) -> tuple[str | None, str | None
              }, required=("token",)))
 async def roster_confirm(request: Request) -> Response:
     """Second step: import with the roles the analyst confirmed; all rows land or none do."""
-    store = app_store(request)
     form = await read_form(request)
+    return await run_in_threadpool(_roster_confirm, request, form)
+
+
+def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response:
+    store = app_store(request)
     token = str(form.get("token") or "")
     pending = app_uploads(request).get(token)
     if pending is None:
@@ -223,8 +231,12 @@ async def roster_confirm(request: Request) -> Response:
                                       **_ROLE_FIELDS}, required=("file",), multipart=True))
 async def rosters_import_api(request: Request) -> JSONResponse:
     """Import in one call: multipart ``file``, optional ``name``, ``sheet``, ``encoding`` and ``role_<ROLE>``."""
-    store = app_store(request)
     form = await read_form(request)
+    return await run_in_threadpool(_rosters_import_api, request, form)
+
+
+def _rosters_import_api(request: Request, form: dict[str, str | Upload]) -> JSONResponse:
+    store = app_store(request)
     try:
         filename, data = _read_upload(form)
         roles: dict[str, str] = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
@@ -273,9 +285,13 @@ def roster_rejected_csv(request: Request, roster_id: int) -> Response:
                  "description": "must be yes: the server refuses a delete without it"}}, required=("confirm",)))
 async def roster_delete(request: Request, roster_id: int) -> RedirectResponse:
     """Delete a roster, its departures, rejected rows and settings; its runs stay readable."""
+    form = await read_form(request)
+    return await run_in_threadpool(_roster_delete, request, roster_id, form)
+
+
+def _roster_delete(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     roster = _roster_or_404(store, roster_id)
-    form = await read_form(request)
     require_confirmation(form, f"roster {roster.name!r}")
-    await run_in_threadpool(store.delete_roster, roster.id)
+    store.delete_roster(roster.id)
     return RedirectResponse(request.url_for("rosters_page"), status_code=303)
