@@ -389,3 +389,33 @@ def test_oversized_chunked_upload_is_refused_before_it_ends(tmp_path: Path) -> N
     finally:
         proc.terminate()
         proc.wait(20)
+
+
+# -- 5. what the live-server fuzzer found (tests/test_fuzz_live.py), pinned ------------------------------
+@pytest.mark.parametrize(("method", "path", "allowed"), [
+    ("OPTIONS", "/api/rosters", {"GET", "POST"}),
+    ("OPTIONS", "/rosters/1/reasons", {"GET", "POST"}),
+    ("OPTIONS", "/rosters/1/resampling", {"GET", "POST"}),
+    ("GET", "/rosters/upload", {"POST"}),
+    ("GET", "/rosters/confirm", {"POST"}),
+])
+def test_wrong_method_is_a_405_naming_every_allowed_method(client: Any, method: str, path: str,
+                                                           allowed: set[str]) -> None:
+    r = client.request(method, path)
+    assert r.status_code == 405, (method, path, r.status_code)
+    assert {m.strip() for m in r.headers["allow"].split(",")} >= allowed
+
+
+@pytest.mark.parametrize(("url", "data", "status"), [
+    ("/rosters/1/reasons", {"note": "n" * 501}, 400),
+    ("/rosters/1/reasons", {"author": "a" * 81}, 400),
+    ("/rosters/1/reasons", {"cat-0": "AAA"}, 400),
+    ("/rosters/1/mapping/select", {"mapping_name": "no such mapping"}, 404),
+    ("/rosters/1/window", {"reset": "1", "window_from": "-3"}, 400),
+])
+def test_schema_violations_and_unknown_names_are_refused(client: Any, demo_store: Store, url: str,
+                                                         data: dict[str, str], status: int) -> None:
+    before = (demo_store.counts(), demo_store.settings(1))
+    r = client.post(url, data=data, follow_redirects=False)
+    assert r.status_code == status, (url, data, r.status_code)
+    assert (demo_store.counts(), demo_store.settings(1)) == before

@@ -111,6 +111,9 @@ def _window_save(request: Request, roster_id: int, form: dict[str, str | Upload]
     store = app_store(request)
     page = coverage_data(store, roster_id)
     if form.get("reset"):
+        for key in ("window_from", "window_to"):
+            if form.get(key):
+                _year(form, key)  # a malformed year is refused even beside reset, as the schema says
         store.update_settings(page.roster.id, clear_window=True)
     else:
         lo, hi = _year(form, "window_from"), _year(form, "window_to")

@@ -95,7 +95,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
     if compare and mapping:
         missing = [v for v in compare if not 1 <= v <= mapping.version]
         if missing:  # a version typed into the address bar, or one from before a database reset
-            raise BadRequest(f"Mapping {mapping.name!r} has no version {missing[0]}; "
+            raise NotFound(f"Mapping {mapping.name!r} has no version {missing[0]}; "
                              f"its versions are 1 to {mapping.version}.")
         old = store.get_mapping(mapping.name, compare[0])
         new = store.get_mapping(mapping.name, compare[1])
@@ -110,14 +110,18 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
 
 
 def _compare_arg(request: Request) -> tuple[int, int] | None:
+    """Versions ``a`` and ``b`` to compare; a value that is not a version number is refused, not ignored."""
     a, b = request.query_params.get("a"), request.query_params.get("b")
-    if a and b and a.isdigit() and b.isdigit():
+    for key, raw in (("a", a), ("b", b)):
+        if raw and not (raw.isdigit() and int(raw) >= 1):
+            raise BadRequest(f"{key} must be a mapping version number (1 or more); got {raw!r}.")
+    if a and b:
         return int(a), int(b)
     return None
 
 
-_COMPARE = query(("a", {"type": "integer", "minimum": 0}, "compare this mapping version ..."),
-                 ("b", {"type": "integer", "minimum": 0}, "... with this one (both needed)"))
+_COMPARE = query(("a", {"type": "integer", "minimum": 1}, "compare this mapping version ..."),
+                 ("b", {"type": "integer", "minimum": 1}, "... with this one (both needed)"))
 
 
 @router.get("/rosters/{roster_id}/reasons", response_class=HTMLResponse, name="reasons_page",
@@ -139,6 +143,10 @@ def reasons_api(request: Request, roster_id: int) -> JSONResponse:
 def _form_entries(form: Any) -> tuple[dict[str, str], dict[str, str]]:
     categories: dict[str, str] = {}
     labels: dict[str, str] = {}
+    for key in form:  # a category with no code beside it is still checked: the form is wrong either way
+        value = str(form.get(key) or "")
+        if key.startswith("cat-") and value and value not in CATEGORIES:
+            raise BadRequest(f"{key} must be one of {', '.join(CATEGORIES)}; got {value!r}.")
     for key in form:
         if not key.startswith("code-"):
             continue
@@ -185,9 +193,12 @@ def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload
                 categories.setdefault(code, cat)
                 if code in page.mapping.labels:
                     labels.setdefault(code, page.mapping.labels[code])
+    for key, most in (("author", 80), ("note", 500)):
+        if len(str(form.get(key) or "")) > most:
+            raise BadRequest(f"The {key} is longer than {most} characters; shorten it. Nothing was saved.")
     note = str(form.get("note") or "").strip() or "edited on the Reason codes page"
     author = str(form.get("author") or "").strip() or "analyst"
-    store.save_mapping_version(name, categories, labels, author=author[:80], note=note[:500])
+    store.save_mapping_version(name, categories, labels, author=author, note=note)
     store.update_settings(page.roster.id, mapping_name=name)
     url = request.url_for("reasons_page", roster_id=page.roster.id).include_query_params(saved=1)
     return RedirectResponse(url, status_code=303)
@@ -208,7 +219,7 @@ def _mapping_select(request: Request, roster_id: int, form: dict[str, str | Uplo
     try:
         store.get_mapping(name)
     except StoreError as exc:
-        raise BadRequest(str(exc)) from exc
+        raise NotFound(str(exc)) from exc
     store.update_settings(page.roster.id, mapping_name=name)
     return RedirectResponse(request.url_for("reasons_page", roster_id=page.roster.id), status_code=303)
 

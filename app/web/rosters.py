@@ -255,7 +255,8 @@ def _rosters_import_api(request: Request, form: dict[str, str | Upload]) -> JSON
     }, status_code=201)
 
 
-@router.get("/rosters/{roster_id}", response_class=HTMLResponse, name="roster_detail",
+# ":int" so that GET /rosters/upload and /rosters/confirm answer 405 (POST only), not a 422 about the id
+@router.get("/rosters/{roster_id:int}", response_class=HTMLResponse, name="roster_detail",
             responses=page_errors(404))
 def roster_detail(request: Request, roster_id: int) -> HTMLResponse:
     page = roster_detail_data(app_store(request), roster_id)
