@@ -419,3 +419,32 @@ def test_schema_violations_and_unknown_names_are_refused(client: Any, demo_store
     r = client.post(url, data=data, follow_redirects=False)
     assert r.status_code == status, (url, data, r.status_code)
     assert (demo_store.counts(), demo_store.settings(1)) == before
+
+
+# -- 7. smaller ones ---------------------------------------------------------------------------------------
+def test_failed_mapping_import_is_shown_as_an_error(client: Any) -> None:
+    r = client.post("/rosters/1/mapping/import", data={"mapping_name": "broken"},
+                    files={"file": ("m.csv", b"code,category\nRetired,sometimes\n")})
+    assert r.status_code == 400
+    assert 'class="notice error" role="alert"' in r.text and "sometimes" in r.text
+    assert 'class="notice ok"' not in r.text
+    ok = client.post("/rosters/1/mapping/import", data={"mapping_name": "fine"},
+                     files={"file": ("m.csv", b"code,category\nRetired,voluntary\n")})
+    assert ok.status_code == 200 and 'class="notice ok"' in ok.text and 'class="notice error"' not in ok.text
+
+
+@pytest.mark.parametrize("cell", ["\u200b=1+1", "\ufeff=HYPERLINK(\"http://x.invalid\")", "\u200b\u200b@SUM(1)",
+                                  "\ufeff\u200b+cmd|' /C calc'!A0", "\u00a0=1+1", "\u2060-2+3"])
+def test_invisible_prefixes_do_not_hide_a_formula(cell: str) -> None:
+    # OWASP "CSV injection": spreadsheets skip some invisible characters before looking for a formula, so a
+    # zero-width space or byte-order mark in front of "=" must not slip past the check
+    from app.spreadsheet_safety import neutralise_formula
+
+    assert neutralise_formula(cell).startswith("'")
+
+
+def test_plain_text_and_numbers_after_invisible_characters_stay_as_they_are() -> None:
+    from app.spreadsheet_safety import neutralise_formula
+
+    assert neutralise_formula("\u200bRetired") == "\u200bRetired"
+    assert neutralise_formula("-3") == "-3"

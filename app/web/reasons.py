@@ -65,10 +65,11 @@ class ReasonsPage:
     diff: MappingDiff | None
     categories: tuple[str, ...] = CATEGORIES
     message: str | None = None
+    error: str | None = None
 
 
 def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | None = None,
-                 message: str | None = None) -> ReasonsPage:
+                 message: str | None = None, error: str | None = None) -> ReasonsPage:
     try:
         roster = store.get_roster(roster_id)
     except StoreError as exc:
@@ -105,7 +106,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
         history=store.mapping_history(mapping.name) if mapping else [], codes=rows,
         window=inp.window, unmapped_codes=len(unmapped),
         unmapped_departures=sum(r.count for r in unmapped), using_suggestion=mapping is None,
-        compare=compare if diff else None, diff=diff, message=message,
+        compare=compare if diff else None, diff=diff, message=message, error=error,
     )
 
 
@@ -243,7 +244,7 @@ def _mapping_import(request: Request, roster_id: int, form: dict[str, str | Uplo
     try:
         outcome = import_mapping_file(store, upload.data, roster=page.roster.id, name=name)
     except (MappingFileError, StoreError) as exc:
-        refreshed = reasons_data(store, roster_id, message=str(exc))
+        refreshed = reasons_data(store, roster_id, error=str(exc))
         return render(request, "reasons.html", refreshed, roster=refreshed.roster, active="reasons", status=400)
     store.update_settings(page.roster.id, mapping_name=name)
     note = f"Imported {outcome['codes']} codes as {name} v{outcome['version']}."

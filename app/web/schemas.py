@@ -202,6 +202,7 @@ class ReasonsBody(_Exact):
     diff: MappingDiffOut | None
     categories: list[str]
     message: str | None
+    error: str | None = Field(description="why the last mapping import failed")
 
 
 # -- coverage --------------------------------------------------------------------------------------
