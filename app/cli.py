@@ -58,7 +58,7 @@ def open_store(url: str, *, create: bool) -> Any:
             f"The database URL needs the driver {driver!r}, which is not installed; install it into this "
             "environment (for PostgreSQL: pip install psycopg2-binary) or use a SQLite file.") from None
     except SQLAlchemyError as exc:
-        reason = " ".join(str(getattr(exc, "orig", None) or exc).split()).rstrip(".")
+        reason = " ".join(str(getattr(exc, "orig", None) or exc).split()).rstrip(".?! ")
         raise CommandError(f"Could not open the database {parsed.render_as_string(hide_password=True)}: "
                            f"{reason}.") from None
 
