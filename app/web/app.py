@@ -86,7 +86,8 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
 
     @app.get("/api/health", name="health", response_model=None,
              responses={200: {"model": HealthBody, "description": "The app answers; its version and schema"}})
-    def health() -> dict[str, object]:
+    async def health() -> dict[str, object]:
+        # async: answered on the event loop without waiting for a worker thread (a one-row read)
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
     for module in (rosters, reasons, coverage, trend, resampling, sectors, briefing):
