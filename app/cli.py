@@ -7,8 +7,10 @@ prints one JSON object on stdout. Errors are one clear sentence on stderr and a 
 from __future__ import annotations
 
 import argparse
+import errno
 import getpass
 import json
+import socket
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -25,10 +27,60 @@ class CommandError(Exception):
     """A failure worth one sentence to the analyst (bad input, unknown roster, ...)."""
 
 
-def _store(args: argparse.Namespace) -> Any:
+def _store(args: argparse.Namespace, *, create: bool = False) -> Any:
+    """Open the database ``--db`` names; only ``create`` commands (serve, import) may make a new file."""
+    return open_store(database_url(args.db), create=create)
+
+
+def open_store(url: str, *, create: bool) -> Any:
+    """The store at ``url``, or a one-sentence ``CommandError`` saying why it cannot be opened."""
+    from sqlalchemy.engine import make_url
+    from sqlalchemy.exc import ArgumentError, NoSuchModuleError, SQLAlchemyError
+
     from app.store import Store
 
-    return Store(database_url(args.db))
+    try:
+        parsed = make_url(url)
+    except ArgumentError:
+        raise CommandError(f"--db {url!r} is neither a file path nor a database URL.") from None
+    if parsed.get_backend_name() == "sqlite" and parsed.database not in (None, "", ":memory:"):
+        path = Path(parsed.database)
+        if not path.parent.is_dir():
+            raise CommandError(f"The folder {path.parent} for the database does not exist; create it or check --db.")
+        if path.is_dir():
+            raise CommandError(f"--db names the folder {path}; give a database file inside it.")
+        if not create and not path.exists():
+            raise CommandError(f"The database {path} does not exist; check --db (importing a roster creates one).")
+    try:
+        return Store(url)
+    except (ModuleNotFoundError, NoSuchModuleError) as exc:
+        driver = getattr(exc, "name", None) or str(exc).rsplit(":", 1)[-1].strip()
+        raise CommandError(
+            f"The database URL needs the driver {driver!r}, which is not installed; install it into this "
+            "environment (for PostgreSQL: pip install psycopg2-binary) or use a SQLite file.") from None
+    except SQLAlchemyError as exc:
+        reason = " ".join(str(getattr(exc, "orig", None) or exc).split()).rstrip(".?! ")
+        raise CommandError(f"Could not open the database {parsed.render_as_string(hide_password=True)}: "
+                           f"{reason}.") from None
+
+
+def _out_path(value: str) -> Path:
+    """An output file whose folder must already exist (we never create folders on a typo)."""
+    out = Path(value).expanduser()
+    if out.is_dir():
+        raise CommandError(f"--out names the folder {out}; give a file name inside it.")
+    if not out.parent.is_dir():
+        raise CommandError(f"The folder {out.parent} for --out does not exist; create it first or check the path.")
+    return out
+
+
+def _input_file(value: str) -> Path:
+    path = Path(value)
+    if path.is_dir():
+        raise CommandError(f"{path} is a folder; give the roster or mapping file inside it.")
+    if not path.is_file():
+        raise CommandError(f"No file at {path}.")
+    return path
 
 
 def _emit(args: argparse.Namespace, payload: dict[str, Any], human: Callable[[dict[str, Any]], str]) -> None:
@@ -76,7 +128,6 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
     from app.config import Settings
     from app.demo import load_demo
-    from app.store import Store
     from app.web.app import create_app
 
     db = args.db
@@ -87,26 +138,57 @@ def cmd_serve(args: argparse.Namespace) -> int:
         db = str(path)
         print(f"Demo: a fresh database at {path}", file=sys.stderr)
     settings = Settings.from_env(db)
-    store = Store(settings.db_url)
+    sock = _bind(args.host, args.port)  # before any slow start-up work, so a taken port fails at once
+    store = open_store(settings.db_url, create=True)
     if args.demo:
         roster = load_demo(store)
         print(f"Demo roster {roster.name!r} loaded ({roster.accepted} departures).", file=sys.stderr)
     if args.host not in ("127.0.0.1", "localhost", "::1"):
-        print(f"Warning: listening on {args.host} lets other machines reach rosters that hold personal data, "
-              "and Helmshift has no login. Requests are still refused unless their Host header is this "
-              "machine or a name listed in HELMSHIFT_ALLOWED_HOSTS (comma-separated).", file=sys.stderr)
+        if not store.has_accounts():
+            sock.close()
+            raise CommandError(
+                f"Serving on {args.host} would let other machines read rosters that hold personal data, and this "
+                "store has no accounts; add one first (HELMSHIFT_PASSWORD=... helmshift user add NAME --role admin "
+                "--db ...) or serve on 127.0.0.1.")
+        print(f"Team mode on {args.host}: every page needs a signed-in account. Requests are still refused "
+              "unless their Host header is this machine or a name listed in HELMSHIFT_ALLOWED_HOSTS "
+              "(comma-separated); put HTTPS in front of it on a network.", file=sys.stderr)
     app = create_app(settings, store)
-    print(f"Helmshift {__version__} on http://{args.host}:{args.port}/", file=sys.stderr)
-    uvicorn.run(app, host=args.host, port=args.port, log_level="warning")
+    # imports and runs work in threads next to the request handlers; a shorter GIL switch interval than
+    # CPython's 5 ms lets a short request get its turn sooner (bench_responsiveness.py measures it)
+    sys.setswitchinterval(0.001)
+    server = uvicorn.Server(uvicorn.Config(app, log_level="warning"))
+    shown = f"[{args.host}]" if ":" in args.host else args.host
+    print(f"Helmshift {__version__} on http://{shown}:{args.port}/", file=sys.stderr)  # bound: announce
+    server.run(sockets=[sock])
     return 0
+
+
+def _bind(host: str, port: int) -> socket.socket:
+    """The listening socket, bound here so the address is announced only once it is ours."""
+    try:
+        family, kind, proto, _, address = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)[0]
+    except socket.gaierror:
+        raise CommandError(f"--host {host!r} is not an address this machine can listen on.") from None
+    sock = socket.socket(family, kind, proto)
+    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+    try:
+        sock.bind(address)
+    except OSError as exc:
+        sock.close()
+        if exc.errno == errno.EADDRINUSE:
+            raise CommandError(f"Another program is already using port {port} on {host}; "
+                               "stop it or choose another port with --port.") from None
+        raise CommandError(f"Cannot listen on {host} port {port} ({exc.strerror or exc}).") from None
+    sock.listen(2048)
+    sock.set_inheritable(True)
+    return sock
 
 
 def cmd_import(args: argparse.Namespace) -> int:
     from app.intake.ingest import import_roster, review_roster
 
-    path = Path(args.file)
-    if not path.is_file():
-        raise CommandError(f"No file at {path}.")
+    path = _input_file(args.file)
     options: dict[str, Any] = {"roles": _parse_columns(args.column), "sheet": args.sheet, "encoding": args.encoding,
                                "header_row": args.header_row, "date_order": args.date_order,
                                "fy_end": args.fiscal_year_end}
@@ -121,7 +203,7 @@ def cmd_import(args: argparse.Namespace) -> int:
             *(f"  fix: {f}" for f in p["fixes"]),
         ]))
         return 0
-    report = import_roster(_store(args), path.read_bytes(), path.name, name=args.name, **options)
+    report = import_roster(_store(args, create=True), path.read_bytes(), path.name, name=args.name, **options)
     payload = {"roster": report.roster.name, "id": report.roster.id, "rows": report.rows,
                "accepted": report.accepted, "rejected": report.rejected, "duplicates": report.duplicates,
                "header_row": report.header_row, "columns": report.roles, "messages": list(report.messages)}
@@ -134,9 +216,7 @@ def cmd_import(args: argparse.Namespace) -> int:
 def cmd_mapping_import(args: argparse.Namespace) -> int:
     from app.analysis.mapping_files import import_mapping_file
 
-    path = Path(args.file)
-    if not path.is_file():
-        raise CommandError(f"No file at {path}.")
+    path = _input_file(args.file)
     outcome = import_mapping_file(_store(args), path.read_bytes(), roster=args.roster, name=args.name)
     _emit(args, outcome, lambda p: (
         f"Saved mapping {p['mapping']!r} version {p['version']} with {p['codes']} codes"
@@ -148,9 +228,10 @@ def cmd_mapping_import(args: argparse.Namespace) -> int:
 def cmd_mapping_export(args: argparse.Namespace) -> int:
     from app.analysis.mapping_files import export_mapping_csv
 
+    out = _out_path(args.out) if args.out else None
     text = export_mapping_csv(_store(args), name=args.name, version=args.version)
-    if args.out:
-        Path(args.out).write_text(text, encoding="utf-8")
+    if out:
+        out.write_text(text, encoding="utf-8")
     else:
         sys.stdout.write(text)
     return 0
@@ -261,9 +342,10 @@ def cmd_export(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
     from app.briefing.exports import export_to_file
 
+    out = _out_path(args.out)
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
-    path = export_to_file(store, inp, fmt=args.format, out=Path(args.out), chart=args.chart, run_id=args.run)
+    path = export_to_file(store, inp, fmt=args.format, out=out, chart=args.chart, run_id=args.run)
     print(f"Wrote {path}", file=sys.stderr)
     return 0
 

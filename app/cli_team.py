@@ -16,7 +16,7 @@ from typing import Any
 from app.types import ACCOUNT_ROLES
 
 Emit = Callable[[argparse.Namespace, dict[str, Any], Callable[[dict[str, Any]], str]], None]
-StoreOf = Callable[[argparse.Namespace], Any]
+StoreOf = Callable[..., Any]
 
 
 class TeamCommandError(Exception):
@@ -43,7 +43,7 @@ def register(sub: Any, common: Callable[..., None], store_of: StoreOf, emit: Emi
     """Add ``user`` and ``audit`` to the command line's subparsers."""
 
     def user_add(args: argparse.Namespace) -> int:
-        store = store_of(args)
+        store = store_of(args, create=True)  # a desk's first step on a new store
         account = store.add_account(args.name, args.role, _password(args.name))
         emit(args, _account_row(account), lambda p: f"Added {p['name']} ({p['role']}).")
         return 0

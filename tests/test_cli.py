@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import importlib.util
 import json
 import math
 import shutil
@@ -145,6 +146,7 @@ def test_export_svg(capsys: pytest.CaptureFixture[str], db: str, tmp_path: Path,
     monkeypatch.delenv("HELMSHIFT_BROWSER", raising=False)
     monkeypatch.setenv("BROWSER_PATH", str(CHROMIUM))
     out = tmp_path / "charts" / "trend.svg"
+    out.parent.mkdir()  # export refuses to create folders (issue 11)
     code, _, err = run(capsys, "export", "--roster", ROSTER, "--format", "svg", "--out", str(out), "--db", db)
     assert code == 0 and str(out) in err
     text = out.read_text()
@@ -160,3 +162,87 @@ def test_help_in_a_real_subprocess() -> None:
     for command in ("serve", "import", "mapping", "coverage", "fit", "bootstrap", "robustness", "export"):
         assert command in done.stdout
     assert set(build_parser()._subparsers._group_actions[0].choices) >= {"serve", "import", "fit"}  # type: ignore[union-attr]
+
+
+# -- issue 11, point 6: every command-line error is one sentence ----------------------------------------
+def one_sentence(err: str) -> str:
+    lines = err.strip().splitlines()
+    assert len(lines) == 1, err
+    assert lines[0].startswith("helmshift: ") and lines[0].endswith("."), lines[0]
+    assert "Traceback" not in err
+    return lines[0]
+
+
+def test_db_in_a_missing_folder(capsys: pytest.CaptureFixture[str], tmp_path: Path) -> None:
+    missing = tmp_path / "no-such-folder" / "x.db"
+    code, _, err = run(capsys, "import", str(DEMO_CSV), "--db", str(missing))
+    assert code != 0
+    assert "folder" in one_sentence(err) and "does not exist" in err
+    assert not missing.parent.exists()
+
+
+def test_postgresql_url_without_its_driver(capsys: pytest.CaptureFixture[str]) -> None:
+    # pg8000 is a PostgreSQL driver this project does not install (psycopg may be present in a shared venv)
+    assert importlib.util.find_spec("pg8000") is None
+    code, _, err = run(capsys, "coverage", "--roster", ROSTER, "--db",
+                       "postgresql+pg8000://someone@127.0.0.1:1/helmshift")
+    assert code != 0
+    assert "driver" in one_sentence(err) and "not installed" in err
+
+
+def test_database_that_cannot_be_reached_is_one_sentence(capsys: pytest.CaptureFixture[str]) -> None:
+    if importlib.util.find_spec("psycopg2") is None and importlib.util.find_spec("psycopg") is None:
+        pytest.skip("needs a PostgreSQL driver (psycopg or psycopg2) to get as far as connecting")
+    code, _, err = run(capsys, "coverage", "--roster", ROSTER, "--db", "postgresql://someone@127.0.0.1:1/helmshift")
+    assert code != 0
+    assert "Could not open the database" in one_sentence(err)
+
+
+@pytest.mark.parametrize("argv", [
+    ["coverage", "--roster", ROSTER], ["fit", "--roster", ROSTER], ["bootstrap", "--roster", ROSTER],
+    ["robustness", "--roster", ROSTER], ["mapping", "export", "--name", "demo strict"],
+    ["export", "--roster", ROSTER, "--format", "svg", "--out", "x.svg"],
+])
+def test_read_only_commands_refuse_a_missing_database(capsys: pytest.CaptureFixture[str], tmp_path: Path,
+                                                      argv: list[str]) -> None:
+    typo = tmp_path / "cli-typo.db"
+    code, _, err = run(capsys, *argv, "--db", str(typo))
+    assert code != 0
+    assert "does not exist" in one_sentence(err) and str(typo) in err
+    assert not typo.exists(), "a mistyped --db must not create a new empty database"
+
+
+@pytest.mark.parametrize("argv", [
+    ["export", "--roster", ROSTER, "--format", "svg", "--chart", "trend"],
+    ["mapping", "export", "--name", "demo strict"],
+])
+def test_out_into_a_missing_folder_is_refused(capsys: pytest.CaptureFixture[str], db: str, tmp_path: Path,
+                                              argv: list[str]) -> None:
+    out = tmp_path / "nowhere" / "file.out"
+    code, _, err = run(capsys, *argv, "--out", str(out), "--db", db)
+    assert code != 0
+    assert "folder" in one_sentence(err) and "does not exist" in err
+    assert not out.parent.exists()
+
+
+def test_import_of_a_folder(capsys: pytest.CaptureFixture[str], tmp_path: Path) -> None:
+    code, _, err = run(capsys, "import", str(tmp_path), "--db", str(tmp_path / "x.db"))
+    assert code != 0
+    assert "is a folder" in one_sentence(err)
+
+
+def test_serve_on_a_taken_port_is_one_sentence(tmp_path: Path) -> None:
+    import socket
+    import sys
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        port = taken.getsockname()[1]
+        done = subprocess.run([sys.executable, "-m", "app.cli", "serve", "--db", str(tmp_path / "s.db"),
+                               "--port", str(port)], capture_output=True, text=True, timeout=60, check=False,
+                              cwd=tmp_path)
+    assert done.returncode != 0
+    line = one_sentence(done.stderr)
+    assert f"port {port}" in line and "already using" in line
+    assert "Helmshift" not in done.stderr, "the address was announced before the port was bound"

@@ -52,8 +52,42 @@ def test_readme_has_exactly_two_set_up_commands() -> None:
     assert match, "no section whose heading contains 'Set up'"
     blocks = re.findall(r"^```(\w*)\n(.*?)^```", match.group(1), re.S | re.M)
     assert len(blocks) == 2
-    assert all(lang in ("sh", "bash") for lang, _ in blocks)
+    assert [lang for lang, _ in blocks] == ["sh", "sh"]
     assert "helmshift serve" in blocks[0][1] and "pytest" in blocks[1][1]
+
+
+def test_set_up_commands_work_without_python3_venv() -> None:
+    """A bare Debian has no python3-venv: each command installs it (as root) before it makes the venv."""
+    text = _text(README)
+    section = re.search(r"^##+ [^\n]*Set up[^\n]*\n(.*?)(?=^##? )", text, re.S | re.M | re.I)
+    assert section
+    blocks = [body for _, body in re.findall(r"^```(\w*)\n(.*?)^```", section.group(1), re.S | re.M)]
+    assert len(blocks) == 2
+    for body in blocks:
+        install = re.search(r"apt-get update && apt-get install -y [^&]*\bpython3-venv\b", body)
+        assert install, body
+        assert install.start() < body.index("python3 -m venv"), body
+
+
+def test_readme_states_the_upload_limits() -> None:
+    from app.intake.readers import ReadLimits
+
+    limits = ReadLimits()
+    text = re.sub(r"\s+", " ", _text(README))
+    assert f"{limits.max_data_rows:,} data rows" in text
+    assert f"{limits.max_zip_entries:,} entries" in text
+    assert f"{limits.max_sheet_rows:,} rows" in text
+
+
+def test_tests_cite_only_files_in_the_repository() -> None:
+    """Check values are cited from tests/data/README.md, which is in the repository (not a shared file)."""
+    tests = ROOT / "tests"
+    offenders = [f.name for f in tests.glob("test_*.py") if "REFERENCES.md" in f.read_text(encoding="utf-8")
+                 and f.name != "test_docs.py"]
+    assert not offenders, offenders
+    cited = _text(tests / "data" / "README.md")
+    for source in ("Dobson", "Venables", "Newcombe", "Arbuthnot", "Crowder", "Efron", "test_bootstrap_against_R"):
+        assert source in cited, source
 
 
 @pytest.mark.parametrize("command", _commands(build_parser()))

@@ -351,6 +351,7 @@ def plausible_body(path: str) -> dict[str, Any]:
         "/rosters/{roster_id}/mapping/import": {"data": {"mapping_name": "evil"},
                                                 "files": {"file": ("m.csv", b"code,category\nRetired,forced\n")}},
         "/rosters/upload": {"files": {"file": ("r.csv", DEMO_ROSTER.read_bytes())}},
+        "/rosters/{roster_id}/delete": {"data": {"confirm": "yes"}},
         "/api/rosters": {"files": {"file": ("r.csv", DEMO_ROSTER.read_bytes())}, "data": {"name": "evil copy"}},
     }
     return forms.get(path, {"data": {"x": "1"}})
@@ -377,7 +378,16 @@ def test_post_routes_are_all_known(demo_app: tuple[TestClient, Store, int, int])
     {"origin": "http://127.0.0.1.evil.example"},
     {"origin": "http://localhost.evil.example:8000"},
     {"referer": FOREIGN + "/page"},
-], ids=["foreign-origin", "null-origin", "lookalike-origin", "lookalike-port", "foreign-referer"])
+    # same host, other port or scheme: another local program or dev server (issue 11, point 1)
+    {"origin": "http://testserver:9999"},
+    {"origin": "https://testserver"},
+    {"origin": "http://localhost:9999"},
+    {"origin": "https://127.0.0.1:4443"},
+    {"referer": "http://testserver:9999/rosters"},
+    {"referer": "https://testserver/rosters"},
+], ids=["foreign-origin", "null-origin", "lookalike-origin", "lookalike-port", "foreign-referer",
+        "foreign-port", "foreign-scheme", "localhost-other-port", "https-other-port", "referer-foreign-port",
+        "referer-foreign-scheme"])
 def test_cross_site_changes_are_refused_and_change_nothing(
         demo_app: tuple[TestClient, Store, int, int], headers: dict[str, str]) -> None:
     client, store, roster_id, run_id = demo_app
@@ -401,7 +411,9 @@ def test_same_origin_changes_pass(demo_app: tuple[TestClient, Store, int, int]) 
     client, store, roster_id, run_id = demo_app
     order = sorted(post_routes(client.app), key=lambda mp: mp[1].endswith("/delete"))  # delete last
     for method, path in order:
-        for headers in (SAME, {"referer": "http://testserver/rosters"}, {"origin": "http://localhost:8000"}):
+        for headers in (SAME, {"referer": "http://testserver/rosters"}, {"origin": "http://testserver:80"},
+                        # an allowed host on the server's own port and scheme
+                        {"origin": "http://localhost:8000", "host": "127.0.0.1:8000"}):
             url = fill(path, roster_id, run_id)
             r = client.request(method, url, headers=headers, follow_redirects=False, **plausible_body(path))
             assert r.status_code != 403, (method, url, headers, r.text[:200])
@@ -628,15 +640,31 @@ def test_running_server_listens_on_loopback_only(demo_db: Path, live_server: Any
     assert f"on http://127.0.0.1:{server.port}/" in server.log.read_text()
 
 
-def test_serve_on_all_interfaces_prints_a_warning(tmp_path: Path) -> None:
-    """Start with --host 0.0.0.0 and stop as soon as the warning is printed (before any request)."""
+def test_serve_on_all_interfaces_without_accounts_is_refused(tmp_path: Path) -> None:
+    """A network address with no account would expose personal data with no login: refused in one sentence."""
+    db = tmp_path / "w.db"
+    Store(f"sqlite:///{db}").dispose()
+    done = subprocess.run([sys.executable, "-m", "app.cli", "serve", "--db", str(db), "--host", "0.0.0.0",
+                           "--port", "0"], capture_output=True, text=True, timeout=60, cwd=tmp_path)
+    assert done.returncode != 0
+    assert done.stderr.count("\n") == 1
+    assert "Serving on 0.0.0.0 would let other machines read rosters that hold personal data" in done.stderr
+    assert "helmshift user add NAME --role admin" in done.stderr
+
+
+def test_serve_on_all_interfaces_with_accounts_says_team_mode(tmp_path: Path) -> None:
+    """With an account, --host 0.0.0.0 serves in team mode; stop as soon as the notice is printed."""
     import socket
 
+    db = tmp_path / "w.db"
+    store = Store(f"sqlite:///{db}")
+    store.add_account("admin1", "admin", "a long enough password")
+    store.dispose()
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
     proc = subprocess.Popen(
-        [sys.executable, "-m", "app.cli", "serve", "--db", str(tmp_path / "w.db"), "--host", "0.0.0.0",
+        [sys.executable, "-m", "app.cli", "serve", "--db", str(db), "--host", "0.0.0.0",
          "--port", str(port)], stderr=subprocess.PIPE, stdout=subprocess.DEVNULL, cwd=tmp_path)
     try:
         assert proc.stderr is not None
@@ -644,12 +672,11 @@ def test_serve_on_all_interfaces_prints_a_warning(tmp_path: Path) -> None:
         deadline = time.monotonic() + 30
         while time.monotonic() < deadline:
             line = proc.stderr.readline()
-            if not line or b"Warning" in line:
+            if not line or b"Team mode" in line:
                 break
         text = line.decode()
-        assert "Warning: listening on 0.0.0.0 lets other machines reach rosters that hold personal data" in text
+        assert "Team mode on 0.0.0.0: every page needs a signed-in account" in text
         assert "HELMSHIFT_ALLOWED_HOSTS" in text
-        assert "no login" in text
     finally:
         proc.send_signal(signal.SIGTERM)
         try:

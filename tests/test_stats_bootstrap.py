@@ -102,7 +102,7 @@ def _leave_one_out(x: np.ndarray, statistic) -> np.ndarray:
 
 
 def test_acceleration_spatial_data_plug_in_variance() -> None:
-    # Efron & Tibshirani 1993 ch. 14 (published, per REFERENCES.md): a = 0.061 (exact 0.061240)
+    # Efron & Tibshirani 1993 ch. 14 (published, per tests/data/README.md): a = 0.061 (exact 0.061240)
     a = jackknife_acceleration([_leave_one_out(SPATIAL_A, np.var)])
     assert a == pytest.approx(0.061240, abs=5e-7)
 
@@ -169,7 +169,7 @@ def _seed_plates() -> tuple[Cells, Design]:
 
 
 def test_plate_bootstrap_is_wider_than_record_bootstrap_on_seed_germination() -> None:
-    # Crowder 1978 data, seed + extract model (computed, per REFERENCES.md): SE of the cucumber log-OR
+    # Crowder 1978 data, seed + extract model (computed, per tests/data/README.md): SE of the cucumber log-OR
     # ~0.145 resampling seeds (records), ~0.24 resampling plates (clusters)
     cells, design = _seed_plates()
     by_record = bootstrap_trend(cells, design, unit="departure", resamples=2000, seed=5)

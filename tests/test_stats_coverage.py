@@ -125,7 +125,7 @@ def test_table_must_have_the_coverage_columns() -> None:
 
 
 def arbuthnot_table() -> pd.DataFrame:
-    # Arbuthnot (1710), Philosophical Transactions 27, 186-190, via R HistData (REFERENCES.md);
+    # Arbuthnot (1710), Philosophical Transactions 27, 186-190, via R HistData (tests/data/README.md);
     # males and females stand in for two categories.
     raw = pd.read_csv(DATA / "arbuthnot_christenings.csv")
     return pd.DataFrame({
@@ -135,7 +135,7 @@ def arbuthnot_table() -> pd.DataFrame:
 
 
 def test_repeat_flag_finds_arbuthnot_1704_copying_1674() -> None:
-    # Known quirk of the published table (REFERENCES.md): 1704 repeats 1674's counts exactly.
+    # Known quirk of the published table (tests/data/README.md): 1704 repeats 1674's counts exactly.
     flags = flag_years(arbuthnot_table(), basis="departures")
     repeats = [f for f in flags if f.kind == "repeat"]
     assert sorted(f.year for f in repeats) == [1674, 1704]

@@ -67,7 +67,7 @@ def test_original_fit_and_deviance_equal_statsmodels() -> None:
 
 
 def test_beetle_mortality_published_estimates() -> None:
-    # Dobson & Barnett 3rd ed. §7.3 (memory, per REFERENCES.md): b0 -60.72, b1 34.27, deviance 11.23
+    # Dobson & Barnett 3rd ed. §7.3 (memory, per tests/data/README.md): b0 -60.72, b1 34.27, deviance 11.23
     beetle = pd.DataFrame({
         "dose": [1.6907, 1.7242, 1.7552, 1.7842, 1.8113, 1.8369, 1.8610, 1.8839],
         "n": [59, 60, 62, 56, 63, 59, 62, 60], "killed": [6, 13, 18, 28, 52, 53, 61, 60],

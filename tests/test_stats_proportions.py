@@ -1,4 +1,4 @@
-"""Per-year share intervals against published values (Newcombe 1998; Arbuthnot 1629 per REFERENCES.md)."""
+"""Per-year share intervals against published values (Newcombe 1998; Arbuthnot 1629 per tests/data/README.md)."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ from scipy import stats
 
 from app.stats.proportions import share_intervals
 
-# Newcombe, R. G. (1998), Statistics in Medicine 17, 857-872, Table I (memory, per REFERENCES.md):
+# Newcombe, R. G. (1998), Statistics in Medicine 17, 857-872, Table I (memory, per tests/data/README.md):
 # (x, n, Wilson low, Wilson high, Clopper-Pearson low, Clopper-Pearson high), printed to 4 dp.
 NEWCOMBE = [
     (81, 263, 0.2553, 0.3662, 0.2527, 0.3676),
@@ -32,7 +32,7 @@ def test_newcombe_1998_cases(x: int, n: int, wl: float, wh: float, cl: float, ch
 
 def test_arbuthnot_1629() -> None:
     # Arbuthnot (1710) via HistData; 1629: 5218 males of 9901 christenings. Wilson (0.517175, 0.536839),
-    # Clopper-Pearson (0.517126, 0.536893) (computed, per REFERENCES.md), printed to 6 dp.
+    # Clopper-Pearson (0.517126, 0.536893) (computed, per tests/data/README.md), printed to 6 dp.
     row = share_intervals(np.array([5218]), np.array([9901])).iloc[0]
     assert row["wilson_low"] == pytest.approx(0.517175, abs=5e-7)
     assert row["wilson_high"] == pytest.approx(0.536839, abs=5e-7)
@@ -63,7 +63,7 @@ def test_wilson_matches_score_formula() -> None:
 
 
 def test_edge_rules() -> None:
-    # REFERENCES.md edge rules: x = 0 gives CP lower exactly 0, x = n gives CP upper exactly 1;
+    # tests/data/README.md edge rules: x = 0 gives CP lower exactly 0, x = n gives CP upper exactly 1;
     # Wilson bounds stay inside [0, 1]; a 0/n year's Wilson interval is not zero-width.
     out = share_intervals([0, 5, 0, 1], [5, 5, 1, 1])
     assert out.loc[0, "cp_low"] == 0.0

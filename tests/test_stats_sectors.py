@@ -46,7 +46,7 @@ def test_budworm_heterogeneity_lr_test(budworm: pd.DataFrame) -> None:
     result = fit_sector_trends(sector_cells(budworm, (0, 5)), centre=0.0)
     h = result.heterogeneity
     assert h is not None and h.sectors == ("F", "M")
-    # Venables & Ripley MASS 4th ed. §7.2 (memory, per REFERENCES.md): additive D 6.757 on 9 df,
+    # Venables & Ripley MASS 4th ed. §7.2 (memory, per tests/data/README.md): additive D 6.757 on 9 df,
     # with interaction 4.9937 on 8 df
     assert h.deviance_additive == pytest.approx(6.757, abs=5e-4)
     assert h.deviance_interaction == pytest.approx(4.9937, abs=5e-5)
@@ -66,10 +66,10 @@ def test_budworm_common_trend_is_the_additive_model(budworm: pd.DataFrame) -> No
     result = fit_sector_trends(sector_cells(budworm, (0, 5)), centre=0.0)
     common = result.common
     assert common is not None and common.model == "sector"
-    # OR per doubling 2.898560, Wald (2.241862, 3.747621) (per REFERENCES.md)
+    # OR per doubling 2.898560, Wald (2.241862, 3.747621) (per tests/data/README.md)
     assert common.odds_ratio == pytest.approx(2.898560, abs=5e-7)
     np.testing.assert_allclose(common.conf_int["wald"], [2.241862, 3.747621], atol=5e-7)
-    # profile: exact deviance roots (0.8228545, 1.3390388) on the log scale (per REFERENCES.md)
+    # profile: exact deviance roots (0.8228545, 1.3390388) on the log scale (per tests/data/README.md)
     np.testing.assert_allclose(np.log(common.conf_int["profile"]), [0.8228545, 1.3390388], atol=1e-6)
     assert common.deviance == pytest.approx(6.757, abs=5e-4) and common.df_resid == 9
 

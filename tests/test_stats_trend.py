@@ -52,16 +52,16 @@ def beetle():
 def test_beetle_coefficients_and_deviance(beetle) -> None:
     killed, exposed, X = beetle
     fit = fit_grouped_binomial(killed, exposed, X)
-    # Dobson & Barnett 3rd ed. §7.3 (memory, per REFERENCES.md): b0 -60.72 (5.18), b1 34.27 (2.91), D 11.23 on 6 df
+    # Dobson & Barnett 3rd ed. §7.3 (memory, per tests/data/README.md): b0 -60.72 (5.18), b1 34.27 (2.91), D 11.23 on 6 df
     np.testing.assert_allclose(fit.params, [-60.72, 34.27], atol=0.005)
     np.testing.assert_allclose(fit.bse, [5.18, 2.91], atol=0.005)
     assert fit.deviance == pytest.approx(11.23, abs=0.005)
     assert fit.df_resid == 6
-    # statsmodels to more digits (computed, per REFERENCES.md)
+    # statsmodels to more digits (computed, per tests/data/README.md)
     np.testing.assert_allclose(fit.params, [-60.717455, 34.270326], atol=5e-7)
     np.testing.assert_allclose(fit.bse, [5.180711, 2.912140], atol=5e-7)
     assert fit.deviance == pytest.approx(11.232231, abs=5e-7)
-    # Pearson X^2 10.026818 (computed, per REFERENCES.md)
+    # Pearson X^2 10.026818 (computed, per tests/data/README.md)
     assert fit.pearson_chi2 == pytest.approx(10.026818, abs=5e-7)
     assert fit.converged and not fit.separated and fit.messages == ()
 
@@ -69,9 +69,9 @@ def test_beetle_coefficients_and_deviance(beetle) -> None:
 def test_beetle_log_likelihood_conventions(beetle) -> None:
     killed, exposed, X = beetle
     fit = fit_grouped_binomial(killed, exposed, X)
-    # statsmodels' llf -18.7151 includes log C(n, y) (per REFERENCES.md) ...
+    # statsmodels' llf -18.7151 includes log C(n, y) (per tests/data/README.md) ...
     assert fit.llf == pytest.approx(-18.7151, abs=5e-5)
-    # ... and without it is Dobson & Barnett's -186.235 (§7.3, memory, per REFERENCES.md)
+    # ... and without it is Dobson & Barnett's -186.235 (§7.3, memory, per tests/data/README.md)
     log_binom = np.sum(special.gammaln(exposed + 1) - special.gammaln(killed + 1)
                        - special.gammaln(exposed - killed + 1))
     assert fit.llf - log_binom == pytest.approx(-186.235, abs=5e-4)
@@ -80,11 +80,11 @@ def test_beetle_log_likelihood_conventions(beetle) -> None:
 def test_beetle_profile_and_wald_intervals(beetle) -> None:
     killed, exposed, X = beetle
     prof = profile_interval(killed, exposed, X, 1)
-    # profile 95% CI of b1 (28.853907, 40.300527) (computed, per REFERENCES.md)
+    # profile 95% CI of b1 (28.853907, 40.300527) (computed, per tests/data/README.md)
     assert prof.low == pytest.approx(28.853907, abs=1e-6)
     assert prof.high == pytest.approx(40.300527, abs=1e-6)
     assert prof.message is None
-    # Wald (28.562636, 39.978015) is statsmodels' conf_int (computed, per REFERENCES.md)
+    # Wald (28.562636, 39.978015) is statsmodels' conf_int (computed, per tests/data/README.md)
     fit = fit_grouped_binomial(killed, exposed, X)
     z = stats.norm.ppf(0.975)
     wald = (fit.params[1] - z * fit.bse[1], fit.params[1] + z * fit.bse[1])
@@ -113,12 +113,12 @@ def budworm():
 def test_budworm_additive_model(budworm) -> None:
     dead, exposed, X = budworm
     fit = fit_grouped_binomial(dead, exposed, X)
-    # Venables & Ripley MASS 4th ed. §7.2 (memory, per REFERENCES.md): log2_dose 1.0642 (0.1311), D 6.757 on 9 df
+    # Venables & Ripley MASS 4th ed. §7.2 (memory, per tests/data/README.md): log2_dose 1.0642 (0.1311), D 6.757 on 9 df
     assert fit.params[2] == pytest.approx(1.0642, abs=5e-5)
     assert fit.bse[2] == pytest.approx(0.1311, abs=5e-5)
     assert fit.deviance == pytest.approx(6.757, abs=5e-4)
     assert fit.df_resid == 9
-    # OR per doubling exp(1.064214) = 2.898560, Wald (2.241862, 3.747621) (per REFERENCES.md)
+    # OR per doubling exp(1.064214) = 2.898560, Wald (2.241862, 3.747621) (per tests/data/README.md)
     z = stats.norm.ppf(0.975)
     assert math.exp(fit.params[2]) == pytest.approx(2.898560, abs=5e-7)
     np.testing.assert_allclose(np.exp(fit.params[2] + np.array([-z, z]) * fit.bse[2]),
@@ -128,10 +128,10 @@ def test_budworm_additive_model(budworm) -> None:
 def test_budworm_profile_interval(budworm) -> None:
     dead, exposed, X = budworm
     prof = profile_interval(dead, exposed, X, 2)
-    # R confint (MASS profile) (0.8228708, 1.3390581) (published, per REFERENCES.md); R interpolates, atol 1e-4
+    # R confint (MASS profile) (0.8228708, 1.3390581) (published, per tests/data/README.md); R interpolates, atol 1e-4
     assert prof.low == pytest.approx(0.8228708, abs=1e-4)
     assert prof.high == pytest.approx(1.3390581, abs=1e-4)
-    # exact deviance roots (0.8228545, 1.3390388) (per REFERENCES.md), atol 1e-6
+    # exact deviance roots (0.8228545, 1.3390388) (per tests/data/README.md), atol 1e-6
     assert prof.low == pytest.approx(0.8228545, abs=1e-6)
     assert prof.high == pytest.approx(1.3390388, abs=1e-6)
 
@@ -155,14 +155,14 @@ def test_star98_general_glm_and_dispersion() -> None:
     above = data.endog["NABOVE"].to_numpy()
     totals = above + data.endog["NBELOW"].to_numpy()
     fit = fit_grouped_binomial(above, totals, X)
-    # statsmodels' own R/Stata reference results (per REFERENCES.md)
+    # statsmodels' own R/Stata reference results (per tests/data/README.md)
     assert fit.params[0] == pytest.approx(-0.0168150366, abs=1e-9)  # LOWINC
     assert fit.bse[0] == pytest.approx(4.339467e-4, abs=1e-9)
     assert fit.deviance == pytest.approx(4078.76541772, abs=1e-6)
     assert fit.df_resid == 282
     # the R/Stata figure stops at R's convergence tolerance; statsmodels' own test_glm.py allows rtol 1e-6
     assert fit.pearson_chi2 == pytest.approx(4051.921614, rel=1e-6)
-    # X^2/df = 14.3685 (per REFERENCES.md); equals statsmodels' proportions + var_weights fit with scale="X2"
+    # X^2/df = 14.3685 (per tests/data/README.md); equals statsmodels' proportions + var_weights fit with scale="X2"
     assert fit.dispersion == pytest.approx(14.3685, abs=5e-5)
     vw = sm.GLM(above / totals, X, family=sm.families.Binomial(), var_weights=totals).fit(scale="X2")
     assert fit.dispersion == pytest.approx(vw.scale, rel=1e-9)
@@ -178,13 +178,13 @@ def test_seed_germination_dispersion_and_quasi_ses() -> None:
     X = np.column_stack([np.ones(len(d)), o73, cucumber, o73 * cucumber])
     y, n = d["germinated"].to_numpy(), d["seeds"].to_numpy()
     fit = fit_grouped_binomial(y, n, X)
-    # Crowder (1978) / Collett (memory, per REFERENCES.md): -0.558 (0.126), 0.146 (0.223), 1.318 (0.177),
+    # Crowder (1978) / Collett (memory, per tests/data/README.md): -0.558 (0.126), 0.146 (0.223), 1.318 (0.177),
     # -0.778 (0.306); deviance 33.28 on 17 df
     np.testing.assert_allclose(fit.params, [-0.558, 0.146, 1.318, -0.778], atol=5e-4)
     np.testing.assert_allclose(fit.bse, [0.126, 0.223, 0.177, 0.306], atol=5e-4)
     assert fit.deviance == pytest.approx(33.28, abs=5e-3)
     assert fit.df_resid == 17
-    # Pearson X^2 31.651145, X^2/df 1.861832 (computed; R's quasibinomial dispersion, per REFERENCES.md)
+    # Pearson X^2 31.651145, X^2/df 1.861832 (computed; R's quasibinomial dispersion, per tests/data/README.md)
     assert fit.pearson_chi2 == pytest.approx(31.651145, abs=5e-6)
     assert fit.dispersion == pytest.approx(1.861832, abs=5e-7)
     # quasi refit: SEs widened by sqrt(1.861832), the same as statsmodels' var_weights fit with scale="X2"
@@ -192,7 +192,7 @@ def test_seed_germination_dispersion_and_quasi_ses() -> None:
     np.testing.assert_allclose(quasi_se, fit.bse * math.sqrt(1.861832), rtol=1e-6)
     vw = sm.GLM(y / n, X, family=sm.families.Binomial(), var_weights=n).fit(scale="X2")
     np.testing.assert_allclose(quasi_se, vw.bse, rtol=1e-8)
-    # additive model deviance 39.6859 (per REFERENCES.md)
+    # additive model deviance 39.6859 (per tests/data/README.md)
     assert fit_grouped_binomial(y, n, X[:, :3]).deviance == pytest.approx(39.6859, abs=5e-5)
 
 
@@ -208,7 +208,7 @@ def test_arbuthnot_trend(arbuthnot) -> None:
     fit, d = arbuthnot
     assert fit.centre == 1669.5 and fit.window == (1629, 1710)
     coef = fit.coefficients.set_index("name")
-    # Arbuthnot via HistData, logit(male share) = a + b (year - 1629) (computed, per REFERENCES.md):
+    # Arbuthnot via HistData, logit(male share) = a + b (year - 1629) (computed, per tests/data/README.md):
     # b = -2.52953798e-4 (SE 8.72807621e-5); the slope does not depend on centring
     assert coef.loc["year", "estimate"] == pytest.approx(-2.52953798e-4, rel=1e-7)
     assert coef.loc["year", "se"] == pytest.approx(8.72807621e-5, rel=1e-7)
@@ -235,7 +235,7 @@ def test_arbuthnot_trend(arbuthnot) -> None:
 def test_arbuthnot_observed_and_fitted(arbuthnot) -> None:
     fit, _ = arbuthnot
     first = fit.observed.iloc[0]
-    # 1629: 5218 of 9901, Wilson (0.517175, 0.536839), CP (0.517126, 0.536893) (per REFERENCES.md)
+    # 1629: 5218 of 9901, Wilson (0.517175, 0.536839), CP (0.517126, 0.536893) (per tests/data/README.md)
     assert (first["year"], first["forced"], first["total"]) == (1629, 5218, 9901)
     assert first["wilson_low"] == pytest.approx(0.517175, abs=5e-7)
     assert first["cp_high"] == pytest.approx(0.536893, abs=5e-7)

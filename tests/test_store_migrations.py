@@ -58,7 +58,14 @@ def shape(url: str) -> dict[str, object]:
             indexed = sorted(tuple(sorted(i["column_names"])) for i in insp.get_indexes(table)
                              if not i.get("unique"))
             pk = tuple(sorted(insp.get_pk_constraint(table)["constrained_columns"]))
-            out[table] = (cols, uniques, indexed, pk)
+            fks = sorted((tuple(fk["constrained_columns"]), fk["referred_table"], fk.get("options", {}).get("ondelete"))
+                         for fk in insp.get_foreign_keys(table))
+            auto = None
+            if engine.dialect.name == "sqlite":
+                with engine.connect() as conn:
+                    ddl = conn.exec_driver_sql("SELECT sql FROM sqlite_master WHERE name = ?", (table,)).scalar()
+                auto = "AUTOINCREMENT" in str(ddl).upper()
+            out[table] = (cols, uniques, indexed, pk, fks, auto)
         return out
     finally:
         engine.dispose()

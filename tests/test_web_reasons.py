@@ -84,8 +84,9 @@ def test_mapping_import_with_unknown_category_names_the_line_and_saves_nothing(c
                            files={"file": ("bad.csv", data, "text/csv")})
     assert response.status_code == 400
     assert response.template.name == "reasons.html"
-    message = response.context["page"].message
+    message = response.context["page"].error  # shown as an error, not a success notice (issue 11)
     assert "Line 3" in message and "sacked" in message
+    assert response.context["page"].message is None
     assert demo_store.counts() == before
     assert "bad one" not in dict(demo_store.list_mappings())
 

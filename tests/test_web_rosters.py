@@ -146,7 +146,7 @@ def test_import_api_keys_and_duplicate_conflict(empty_client: Any, demo_frame: p
 
 
 def test_delete_roster(client: Any, demo_store: Store) -> None:
-    response = client.post("/rosters/1/delete", follow_redirects=False)
+    response = client.post("/rosters/1/delete", data={"confirm": "yes"}, follow_redirects=False)
     assert response.status_code == 303 and response.headers["location"].endswith("/rosters")
     counts = demo_store.counts()
     assert counts["rosters"] == 0 and counts["departures"] == 0 and counts["rejected_rows"] == 0

@@ -41,6 +41,7 @@ def test_sectors_page_finds_the_steep_and_falling_sectors(client: Any, demo_trut
 def test_sectors_min_departures_skips_small_sectors(client: Any) -> None:
     page = client.get(f"/rosters/{ROSTER}/sectors?min_departures=10000").context["page"]
     assert page.result.heterogeneity is None
+    assert page.result.sectors, "no sector listed: the check below would pass on nothing"
     assert all(t.status != "fitted" for t in page.result.sectors)
     assert client.get(f"/rosters/{ROSTER}/sectors?min_departures=zero").status_code == 400
 
@@ -86,5 +87,6 @@ def test_robustness_page_without_any_estimable_reading_explains_instead_of_drawi
     assert response.status_code == 200
     page = response.context["page"]
     assert page.error is None and page.figure is None
+    assert page.result.variants, "no variant listed: the check below would pass on nothing"
     assert all(v.odds_ratio is None and v.error for v in page.result.variants)
     assert "fig-robustness" not in response.text

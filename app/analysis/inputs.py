@@ -85,8 +85,12 @@ class AnalysisInput:
         return cells_from_counts(firms, self.window, by_sector=by_sector,
                                  categories=self.mapping.categories if self.mapping else {})
 
+    def counts_nothing(self) -> bool:
+        """True when the mapping counts no departure as forced or voluntary (every code excluded)."""
+        return not self.counts["category"].isin(["forced", "voluntary"]).any()
+
     def warnings(self) -> list[str]:
-        notes: list[str] = []
+        notes: list[str] = [NOTHING_COUNTED] if self.mapping is not None and self.counts_nothing() else []
         unmapped = self.unmapped_codes()
         if len(unmapped):
             total = int(unmapped["count"].sum())
@@ -153,7 +157,25 @@ def load_input(
 
 def _coverage(counts: pd.DataFrame, threshold: float) -> tuple[pd.DataFrame, WindowSuggestion, list[YearFlag]]:
     table = coverage_from_counts(counts)
-    return table, suggest_window(table, threshold=threshold), flag_years(table, threshold=threshold)
+    try:
+        return table, suggest_window(table, threshold=threshold), flag_years(table, threshold=threshold)
+    except ValueError:
+        # a valid mapping that excludes every code: nothing to suggest from; every page shows the whole
+        # span and says why no trend can be fitted (NOTHING_COUNTED), instead of failing
+        return table, _whole_span(table, threshold), []
+
+
+NOTHING_COUNTED = ("The mapping counts no departure as forced or voluntary (every code is excluded), so there is "
+                   "nothing to fit; change the categories on the Reason codes page.")
+
+
+def _whole_span(table: pd.DataFrame, threshold: float) -> WindowSuggestion:
+    years = table["year"].astype(int)
+    return WindowSuggestion(
+        window=(int(years.min()), int(years.max())), median=0.0, cutoff=0.0, threshold=float(threshold),
+        basis="not_excluded", rule="no year has any counted record (every code is excluded), so the whole span "
+        "of years is shown", below_cutoff=(),
+    )
 
 
 def input_for_run(store: Store, run: Run) -> AnalysisInput:

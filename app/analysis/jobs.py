@@ -10,9 +10,9 @@ A run found ``queued`` or ``running`` at start-up was cut short by a crash and i
 
 from __future__ import annotations
 
+import logging
 import threading
 import time
-import traceback
 from concurrent.futures import Future, ThreadPoolExecutor
 from typing import Any
 
@@ -29,8 +29,20 @@ CHUNK = 4 * BLOCK_SIZE
 MAX_RESAMPLES = 200_000
 
 
+logger = logging.getLogger("helmshift.jobs")
+
+
 class RunCancelled(Exception):
     pass
+
+
+def failure_message(exc: Exception) -> str:
+    """What a failed run says: our own errors (ValueError and subclasses) carry a sentence for the analyst;
+    anything else is named as an internal error, still in one sentence."""
+    text = " ".join(str(exc).split()) or exc.__class__.__name__
+    if isinstance(exc, ValueError | LookupError):
+        return text
+    return f"The run stopped on an internal error ({exc.__class__.__name__}: {text}); start it again or report it."
 
 
 def bootstrap_params(*, unit: str, resamples: int, seed: int, model: str = "linear") -> dict[str, Any]:
@@ -134,9 +146,9 @@ class JobRunner:
         except RunCancelled:
             self.store.set_run_status(run_id, "cancelled", error="Stopped at the analyst's request.")
         except Exception as exc:  # a crashed run is marked with its reason, never dropped silently
-            message = str(exc).strip() or exc.__class__.__name__
-            self.store.set_run_status(run_id, "failed", error=message)
-            traceback.print_exc()
+            self.store.set_run_status(run_id, "failed", error=failure_message(exc))
+            # one line for the server log, no traceback: the run page carries the message
+            logger.warning("bootstrap run %s failed: %s", run_id, failure_message(exc))
 
     def shutdown(self) -> None:
         with self._lock:
@@ -157,7 +169,7 @@ def run_bootstrap_now(store: Store, inp: AnalysisInput, *, unit: str, resamples:
     try:
         result = execute_bootstrap(store, run_id)
     except Exception as exc:
-        store.set_run_status(run_id, "failed", error=str(exc))
+        store.set_run_status(run_id, "failed", error=failure_message(exc))
         raise
     result["run"] = run_id
     return result

@@ -31,6 +31,10 @@ class ReadLimits:
     max_zip_entries: int = 10_000
     #: far above any real roster; stops a small, highly compressed workbook from tying up the server
     max_data_rows: int = 500_000
+    #: every sheet row openpyxl hands over, blank ones included (a sheet of empty rows is cheap to send)
+    max_sheet_rows: int = 1_000_000
+    #: wall-clock bound on parsing one workbook
+    max_seconds: float = 120.0
 
 
 DEFAULT_LIMITS = ReadLimits()

@@ -1,7 +1,8 @@
 """Neutralise spreadsheet formula injection in every CSV the tool writes.
 
 A cell that starts with ``=``, ``+``, ``-`` or ``@`` (or a tab, carriage return or line feed, which
-some spreadsheet programs skip before looking for those) is run as a formula when the CSV is opened
+some spreadsheet programs skip before looking for those, also after invisible characters such as a
+zero-width space or a byte-order mark) is run as a formula when the CSV is opened
 in Excel, LibreOffice or Google Sheets. Rosters come from outside, so any text cell may carry such a
 payload (``=HYPERLINK(...)``, ``@SUM(...)``, DDE strings). The defence here is common practice
 (the OWASP "CSV injection" advice): prefix the cell with an apostrophe, which spreadsheets show as
@@ -26,14 +27,22 @@ FORMULA_TRIGGERS = ("=", "+", "-", "@", "\t", "\r", "\n")
 _PLAIN_NUMBER = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?")
 
 
+#: invisible or blank characters a spreadsheet (or a person reading the cell) may pass over before the
+#: trigger: zero-width space/joiners, word joiner, byte-order mark, no-break and other Unicode spaces
+INVISIBLE_PREFIX = " \u00a0\u180e\u200b\u200c\u200d\u2060\ufeff\u202f\u205f\u3000" + "".join(
+    chr(c) for c in range(0x2000, 0x200B))
+
+
 def neutralise_formula(text: str) -> str:
     """Return ``text`` with a leading apostrophe if a spreadsheet would run it as a formula.
 
-    Plain decimal numbers such as ``-3`` are returned unchanged (see the module docstring).
+    Invisible prefixes (``INVISIBLE_PREFIX``, e.g. a zero-width space or a byte-order mark) do not hide a
+    trigger behind them. Plain decimal numbers such as ``-3`` are returned unchanged (see the module docstring).
     """
-    if not text or not text.startswith(FORMULA_TRIGGERS):
+    visible = text.lstrip(INVISIBLE_PREFIX)
+    if not visible or not visible.startswith(FORMULA_TRIGGERS):
         return text
-    if _PLAIN_NUMBER.fullmatch(text):
+    if visible == text and _PLAIN_NUMBER.fullmatch(text):
         return text
     return "'" + text
 

@@ -11,6 +11,7 @@ import warnings
 import zipfile
 from collections.abc import Iterator
 from datetime import date, datetime, time
+from time import monotonic
 
 from app.intake.headers import SourceRow, assemble
 from app.intake.rawtable import DEFAULT_LIMITS, RawTable, ReadLimits, RosterFileError
@@ -91,7 +92,16 @@ def read_xlsx(
                 raise RosterFileError(f"Sheet {name!r} is a chart, not a table; choose another sheet.")
 
             def rows() -> Iterator[SourceRow]:
+                deadline = monotonic() + limits.max_seconds
                 for line, values in enumerate(ws.iter_rows(min_row=1, values_only=True), start=1):
+                    if line > limits.max_sheet_rows:
+                        raise RosterFileError(
+                            f"Sheet {name!r} has more than {limits.max_sheet_rows:,} rows (blank ones included); "
+                            "delete the unused rows or save the roster as CSV.")
+                    if line % 1000 == 0 and monotonic() > deadline:
+                        raise RosterFileError(
+                            f"Reading sheet {name!r} took longer than {limits.max_seconds:g} s (stopped at row "
+                            f"{line:,}); save the roster as CSV, which reads much faster.")
                     row = [_cell_text(v) for v in values]
                     while row and row[-1] == "":
                         row.pop()

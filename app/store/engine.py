@@ -83,21 +83,43 @@ class Gateway:
 
     def _migrate(self) -> None:
         """Create a fresh database at the head revision, or bring an existing one up to it (Alembic)."""
-        with self.engine.begin() as conn:
-            if conn.dialect.name == "postgresql":
-                # several server processes may start at once on a shared store: one migrates, the rest wait
-                conn.execute(text("SELECT pg_advisory_xact_lock(7349201)"))
-            names = set(inspect(conn).get_table_names())
-            if "alembic_version" in names:
-                current = conn.execute(select(alembic_version.c.version_num)).scalar()
-            elif "schema_version" in names:
-                current = _adopt_legacy_schema(conn)
-            else:
-                metadata.create_all(conn)
-                conn.execute(insert(alembic_version).values(version_num=HEAD_REVISION))
-                return
-            if current != HEAD_REVISION:
-                _upgrade(conn)
+        sqlite = self.engine.dialect.name == "sqlite"
+        with self.engine.connect() as conn:
+            if sqlite:
+                # Rebuilding a table in SQLite (the only way to change a key) must run with foreign keys off,
+                # or dropping the old table would cascade into its children; the pragma only takes effect
+                # outside a transaction, and the check after the upgrade makes sure no row was orphaned.
+                conn.exec_driver_sql("PRAGMA foreign_keys=OFF")
+                conn.commit()
+            try:
+                with conn.begin():
+                    self._migrate_in(conn)
+                    if sqlite:
+                        broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+                        if broken:
+                            raise StoreError(f"The database has rows pointing at missing rows ({broken[:3]}); "
+                                             "it was not upgraded.")
+            finally:
+                if sqlite:
+                    conn.exec_driver_sql("PRAGMA foreign_keys=ON")
+                    conn.commit()
+
+    @staticmethod
+    def _migrate_in(conn: Connection) -> None:
+        if conn.dialect.name == "postgresql":
+            # several server processes may start at once on a shared store: one migrates, the rest wait
+            conn.execute(text("SELECT pg_advisory_xact_lock(7349201)"))
+        names = set(inspect(conn).get_table_names())
+        if "alembic_version" in names:
+            current = conn.execute(select(alembic_version.c.version_num)).scalar()
+        elif "schema_version" in names:
+            current = _adopt_legacy_schema(conn)
+        else:
+            metadata.create_all(conn)
+            conn.execute(insert(alembic_version).values(version_num=HEAD_REVISION))
+            return
+        if current != HEAD_REVISION:
+            _upgrade(conn)
 
     def schema_version(self) -> int:
         """The database's schema revision as a number (revision ids are zero-padded counters)."""

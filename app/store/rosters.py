@@ -35,6 +35,7 @@ from app.store.tables import (
     rejected_rows,
     roster_settings,
     rosters,
+    runs,
 )
 
 
@@ -141,7 +142,11 @@ class RosterQueries(Gateway):
             return conn.execute(select(rosters.c.id).where(rosters.c.name == name)).first() is not None
 
     def delete_roster(self, roster_id: int) -> None:
+        """Delete a roster with its rows and settings; its runs stay (readable as "roster deleted"),
+        and the ones still queued or running are asked to stop."""
         with self._tx() as conn:
+            conn.execute(update(runs).where(runs.c.roster_id == roster_id, runs.c.status.in_(("queued", "running")))
+                         .values(cancel_requested=True))
             name = conn.execute(select(rosters.c.name).where(rosters.c.id == roster_id)).scalar()
             conn.execute(delete(rosters).where(rosters.c.id == roster_id))
             record_event(conn, "roster_delete", f"roster:{roster_id}", {"name": name})

@@ -24,7 +24,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0005"
+HEAD_REVISION = "0006"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -41,6 +41,7 @@ rosters = Table(
     Column("rejected", Integer, nullable=False),
     Column("duplicates", Integer, nullable=False),
     Column("columns", Text, nullable=False),  # JSON: role -> header used
+    sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
 )
 
 DEPARTURE_FIELDS = (
@@ -82,6 +83,7 @@ mappings = Table(
     Column("id", Integer, primary_key=True),
     Column("name", String, nullable=False, unique=True),
     Column("created_at", String, nullable=False),
+    sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
 )
 
 mapping_versions = Table(
@@ -93,6 +95,7 @@ mapping_versions = Table(
     Column("author", String, nullable=False),
     Column("note", Text, nullable=False),
     UniqueConstraint("mapping_id", "version"),
+    sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
 )
 
 mapping_entries = Table(
@@ -117,7 +120,8 @@ runs = Table(
     "runs", metadata,
     Column("id", Integer, primary_key=True),
     Column("kind", String, nullable=False),
-    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    # no foreign key: a deleted roster's runs stay readable ("roster deleted"); roster ids are never reused
+    Column("roster_id", Integer, nullable=False, index=True),
     Column("status", String, nullable=False),
     Column("created_at", String, nullable=False),
     Column("started_at", String),
@@ -135,6 +139,7 @@ runs = Table(
     Column("error", Text),
     Column("seconds", Float),
     Column("author", String),
+    sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
 )
 
 run_replicates = Table(

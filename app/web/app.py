@@ -101,7 +101,8 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
 
     @app.get("/api/health", name="health", response_model=None,
              responses={200: {"model": HealthBody, "description": "The app answers; its version and schema"}})
-    def health() -> dict[str, object]:
+    async def health() -> dict[str, object]:
+        # async: answered on the event loop without waiting for a worker thread (a one-row read)
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
     for module in (auth, rosters, reasons, coverage, departures, trend, resampling, sectors, briefing, universe):
@@ -122,9 +123,33 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
         message = f"There is no page at {request.url.path}." if exc.status_code == 404 else str(exc.detail)
         response = _error(request, exc.status_code, message)
         response.headers.update(exc.headers or {})
+        if exc.status_code == 405:
+            # Starlette names only the first route matching the path; GET and POST of one path are two routes
+            response.headers["allow"] = ", ".join(_allowed_methods(app, request))
         return response
 
     return app
+
+
+def _allowed_methods(app: FastAPI, request: Request) -> list[str]:
+    """Every method some route accepts at this request's path (our routers are included without a prefix)."""
+    from starlette.routing import BaseRoute, Match
+
+    methods: set[str] = set()
+    probe = {**request.scope, "method": "GET"}
+
+    def walk(routes: list[BaseRoute]) -> None:
+        for route in routes:
+            included = getattr(route, "original_router", None)
+            if included is not None:
+                walk(included.routes)
+                continue
+            accepted: set[str] | None = getattr(route, "methods", None)
+            if accepted and route.matches(probe)[0] != Match.NONE:
+                methods.update(accepted)
+
+    walk(app.router.routes)
+    return sorted(methods)
 
 
 def _error(request: Request, status: int, message: str) -> Response:

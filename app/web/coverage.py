@@ -8,6 +8,7 @@ from typing import Any
 import pandas as pd
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis.inputs import AnalysisInput, load_input
 from app.analysis.rates import RatesSection, rates_section
@@ -17,7 +18,7 @@ from app.store import Roster, Store, StoreError
 from app.web.departures import mapping_ref
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
-from app.web.forms import read_form
+from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import api_errors, form_body, page_errors, query, redirect
 from app.web.schemas import CoverageYear, define, list_of
@@ -111,10 +112,17 @@ def _year(form: Any, key: str) -> int:
              }))
 async def window_save(request: Request, roster_id: int) -> RedirectResponse:
     """Remember the analysis window for this roster; trend and resampling use it by default."""
+    form = await read_form(request)
+    return await run_in_threadpool(_window_save, request, roster_id, form)
+
+
+def _window_save(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     page = coverage_data(store, roster_id)
-    form = await read_form(request)
     if form.get("reset"):
+        for key in ("window_from", "window_to"):
+            if form.get(key):
+                _year(form, key)  # a malformed year is refused even beside reset, as the schema says
         store.update_settings(page.roster.id, clear_window=True)
     else:
         lo, hi = _year(form, "window_from"), _year(form, "window_to")

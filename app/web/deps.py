@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
 from fastapi import Request
@@ -20,6 +21,14 @@ class NotFound(Exception):
 
 class BadRequest(Exception):
     """Input the analyst can correct; rendered as a 400 with the message."""
+
+
+def require_confirmation(form: Mapping[str, object], what: str) -> None:
+    """Destructive routes act only when the form carries ``confirm=yes`` (the page's checkbox); the browser's
+    ``required`` attribute alone is no guard against a bare POST."""
+    if form.get("confirm") != "yes":
+        raise BadRequest(f"Nothing was deleted: to delete {what}, tick the confirmation box "
+                         "(send confirm=yes with the form).")
 
 
 def app_store(request: Request) -> Store:

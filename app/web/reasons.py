@@ -7,6 +7,7 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis.cellstore import code_counts, memoised, roster_fingerprint, window_code_counts
 from app.analysis.inputs import load_input
@@ -69,6 +70,7 @@ class ReasonsPage:
     diff: MappingDiff | None
     categories: tuple[str, ...] = CATEGORIES
     message: str | None = None
+    error: str | None = None
 
 
 ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
@@ -77,7 +79,7 @@ ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
 
 
 def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | None = None,
-                 message: str | None = None) -> ReasonsPage:
+                 message: str | None = None, error: str | None = None) -> ReasonsPage:
     try:
         roster = store.get_roster(roster_id)
     except StoreError as exc:
@@ -108,7 +110,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
     if compare and mapping:
         missing = [v for v in compare if not 1 <= v <= mapping.version]
         if missing:  # a version typed into the address bar, or one from before a database reset
-            raise BadRequest(f"Mapping {mapping.name!r} has no version {missing[0]}; "
+            raise NotFound(f"Mapping {mapping.name!r} has no version {missing[0]}; "
                              f"its versions are 1 to {mapping.version}.")
         old = store.get_mapping(mapping.name, compare[0])
         new = store.get_mapping(mapping.name, compare[1])
@@ -118,19 +120,23 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
         history=store.mapping_history(mapping.name) if mapping else [], codes=rows,
         window=inp.window, unmapped_codes=len(unmapped),
         unmapped_departures=sum(r.count for r in unmapped), using_suggestion=mapping is None,
-        compare=compare if diff else None, diff=diff, message=message,
+        compare=compare if diff else None, diff=diff, message=message, error=error,
     )
 
 
 def _compare_arg(request: Request) -> tuple[int, int] | None:
+    """Versions ``a`` and ``b`` to compare; a value that is not a version number is refused, not ignored."""
     a, b = request.query_params.get("a"), request.query_params.get("b")
-    if a and b and a.isdigit() and b.isdigit():
+    for key, raw in (("a", a), ("b", b)):
+        if raw and not (raw.isdigit() and int(raw) >= 1):
+            raise BadRequest(f"{key} must be a mapping version number (1 or more); got {raw!r}.")
+    if a and b:
         return int(a), int(b)
     return None
 
 
-_COMPARE = query(("a", {"type": "integer", "minimum": 0}, "compare this mapping version ..."),
-                 ("b", {"type": "integer", "minimum": 0}, "... with this one (both needed)"))
+_COMPARE = query(("a", {"type": "integer", "minimum": 1}, "compare this mapping version ..."),
+                 ("b", {"type": "integer", "minimum": 1}, "... with this one (both needed)"))
 
 
 @router.get("/rosters/{roster_id}/reasons", response_class=HTMLResponse, name="reasons_page",
@@ -152,6 +158,10 @@ def reasons_api(request: Request, roster_id: int) -> JSONResponse:
 def _form_entries(form: Any) -> tuple[dict[str, str], dict[str, str]]:
     categories: dict[str, str] = {}
     labels: dict[str, str] = {}
+    for key in form:  # a category with no code beside it is still checked: the form is wrong either way
+        value = str(form.get(key) or "")
+        if key.startswith("cat-") and value and value not in CATEGORIES:
+            raise BadRequest(f"{key} must be one of {', '.join(CATEGORIES)}; got {value!r}.")
     for key in form:
         if not key.startswith("code-"):
             continue
@@ -181,9 +191,13 @@ def _form_entries(form: Any) -> tuple[dict[str, str], dict[str, str]]:
              }))
 async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
     """Save the categories in the form as the next version; codes of other rosters are carried over."""
+    form = await read_form(request)
+    return await run_in_threadpool(_reasons_save, request, roster_id, form)
+
+
+def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     page = reasons_data(store, roster_id)
-    form = await read_form(request)
     categories, labels = _form_entries(form)
     name = str(form.get("mapping_name") or "").strip() or (
         page.mapping.name if page.mapping else f"{page.roster.name} mapping")
@@ -194,9 +208,12 @@ async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
                 categories.setdefault(code, cat)
                 if code in page.mapping.labels:
                     labels.setdefault(code, page.mapping.labels[code])
+    for key, most in (("author", 80), ("note", 500)):
+        if len(str(form.get(key) or "")) > most:
+            raise BadRequest(f"The {key} is longer than {most} characters; shorten it. Nothing was saved.")
     note = str(form.get("note") or "").strip() or "edited on the Reason codes page"
     author = str(form.get("author") or "").strip() or "analyst"
-    store.save_mapping_version(name, categories, labels, author=author[:80], note=note[:500])
+    store.save_mapping_version(name, categories, labels, author=author, note=note)
     store.update_settings(page.roster.id, mapping_name=name)
     url = request.url_for("reasons_page", roster_id=page.roster.id).include_query_params(saved=1)
     return RedirectResponse(url, status_code=303)
@@ -206,14 +223,18 @@ async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
              response_class=RedirectResponse, responses=redirect("the Reason codes page", page_errors(400, 404)),
              openapi_extra=form_body({"mapping_name": {"type": "string"}}, required=("mapping_name",)))
 async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
+    form = await read_form(request)
+    return await run_in_threadpool(_mapping_select, request, roster_id, form)
+
+
+def _mapping_select(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     page = reasons_data(store, roster_id)
-    form = await read_form(request)
     name = str(form.get("mapping_name") or "")
     try:
         store.get_mapping(name)
     except StoreError as exc:
-        raise BadRequest(str(exc)) from exc
+        raise NotFound(str(exc)) from exc
     store.update_settings(page.roster.id, mapping_name=name)
     return RedirectResponse(request.url_for("reasons_page", roster_id=page.roster.id), status_code=303)
 
@@ -223,9 +244,13 @@ async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
              openapi_extra=form_body({"file": FILE, "mapping_name": {"type": "string"}},
                                      required=("file", "mapping_name"), multipart=True))
 async def mapping_import(request: Request, roster_id: int) -> Response:
+    form = await read_form(request)
+    return await run_in_threadpool(_mapping_import, request, roster_id, form)
+
+
+def _mapping_import(request: Request, roster_id: int, form: dict[str, str | Upload]) -> Response:
     store = app_store(request)
     page = reasons_data(store, roster_id)
-    form = await read_form(request)
     upload = form.get("file")
     name = str(form.get("mapping_name") or "").strip()
     if not isinstance(upload, Upload) or not name:
@@ -233,7 +258,7 @@ async def mapping_import(request: Request, roster_id: int) -> Response:
     try:
         outcome = import_mapping_file(store, upload.data, roster=page.roster.id, name=name)
     except (MappingFileError, StoreError) as exc:
-        refreshed = reasons_data(store, roster_id, message=str(exc))
+        refreshed = reasons_data(store, roster_id, error=str(exc))
         return render(request, "reasons.html", refreshed, roster=refreshed.roster, active="reasons", status=400)
     store.update_settings(page.roster.id, mapping_name=name)
     note = f"Imported {outcome['codes']} codes as {name} v{outcome['version']}."

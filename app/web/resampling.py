@@ -9,6 +9,7 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis.inputs import input_for_run, load_input
 from app.analysis.jobs import MAX_RESAMPLES, bootstrap_params, create_bootstrap_run, extend_run
@@ -20,7 +21,7 @@ from app.store import Roster, Run, Store, StoreError
 from app.types import UNITS
 from app.web.deps import BadRequest, NotFound, app_jobs, app_store
 from app.web.figures import FigureSpec, figure_spec
-from app.web.forms import read_form
+from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import FORM_AGAIN, api_errors, download, form_body, page_errors, query, redirect
 from app.web.schemas import BootstrapRunOut, IntervalRow, Percent, ReplicatesBody, define, list_of, one_of
@@ -51,9 +52,12 @@ RunsBody = define(ResamplingPage, "RunsBody", fields={"runs": list_of(BootstrapR
 
 @dataclass(frozen=True)
 class RunPage:
-    """One bootstrap run: its state, and when done its intervals, histogram and comparison."""
+    """One bootstrap run: its state, and when done its intervals, histogram and comparison.
 
-    roster: Roster
+    ``roster`` is None when the roster was deleted: the stored intervals stay readable, nothing is redrawn.
+    """
+
+    roster: Roster | None
     run: Run
     method: str
     rows: list[dict[str, Any]] = field(default_factory=list)
@@ -61,6 +65,7 @@ class RunPage:
     comparison_found: bool = False
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     percent: int = 0
+    roster_deleted: bool = False
 
 
 RunBody = define(RunPage, "RunBody", fields={"run": BootstrapRunOut, "method": one_of(METHODS),
@@ -137,13 +142,18 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
     if method not in METHODS:
         raise BadRequest(f"method must be one of {', '.join(METHODS)}; got {method!r}.")
     run = _run(store, run_id)
-    roster = _roster(store, run.roster_id)
+    try:
+        roster: Roster | None = store.get_roster(run.roster_id)
+    except StoreError:
+        roster = None  # deleted; roster ids are never reused, so this run cannot point at other data
     percent = int(100 * run.progress_done / run.progress_total) if run.progress_total else 0
     if run.status != "done" or run.result is None:
-        return RunPage(roster, run, method, percent=percent)
+        return RunPage(roster, run, method, percent=percent, roster_deleted=roster is None)
     result = run.result
     rows = [{"method": METHOD_LABELS[m], "interval": result["conf_int"][m], "mc_error": result["mc_error"][m],
              "source": f"bootstrap, B = {result['resamples']:,}"} for m in METHODS]
+    if roster is None:
+        return RunPage(None, run, method, rows, percent=100, roster_deleted=True)
     try:
         inp = input_for_run(store, run)
         fit = run_trend(store, inp, model=run.params.get("model", "linear")).fit
@@ -189,9 +199,13 @@ def _int_field(form: Any, key: str, default: int) -> int:
              }))
 async def resampling_start(request: Request, roster_id: int) -> Response:
     """Store the run, hand it to a worker, and go to its page (which shows the progress)."""
+    form = await read_form(request)
+    return await run_in_threadpool(_resampling_start, request, roster_id, form)
+
+
+def _resampling_start(request: Request, roster_id: int, form: dict[str, str | Upload]) -> Response:
     store = app_store(request)
     roster = _roster(store, roster_id)
-    form = await read_form(request)
     try:
         params = bootstrap_params(unit=str(form.get("unit") or "firm"), resamples=_int_field(form, "resamples", 2000),
                                   seed=_int_field(form, "seed", 1), model=str(form.get("model") or "linear"))
@@ -253,11 +267,17 @@ def run_cancel(request: Request, run_id: int) -> RedirectResponse:
              }}))
 async def run_extend(request: Request, run_id: int) -> RedirectResponse:
     """Add resamples to a finished, cancelled or interrupted run; stored replicates are kept."""
+    form = await read_form(request)
+    return await run_in_threadpool(_run_extend, request, run_id, form)
+
+
+def _run_extend(request: Request, run_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     run = _run(store, run_id)
-    form = await read_form(request)
     if run.status in ("queued", "running"):
         raise BadRequest("This run is still going; wait for it to end before extending it.")
+    if not any(r.id == run.roster_id for r in store.list_rosters()):
+        raise BadRequest("This run's roster was deleted, so the run cannot be extended; its results stay readable.")
     extra = _int_field(form, "extra", 0)
     try:
         extend_run(store, run.id, extra)

@@ -8,6 +8,7 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis.cellstore import memoised, roster_counts, roster_fingerprint
 from app.intake.dates import month_name
@@ -29,7 +30,7 @@ from app.intake.ingest import (
 )
 from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import ROLES
-from app.web.deps import NotFound, app_settings, app_store, app_uploads
+from app.web.deps import NotFound, app_settings, app_store, app_uploads, require_confirmation
 from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import (
@@ -78,6 +79,7 @@ class RosterDetailPage:
     rejected_groups: list[RejectGroup] = field(default_factory=list)
     rejected_page: int = 1
     rejected_pages: int = 1
+    runs: int = 0
 
 
 RosterDetailBody = define(RosterDetailPage, "RosterDetailBody", fields={"sectors": list_of(SectorCount)},
@@ -129,6 +131,7 @@ def roster_detail_data(store: Store, roster_id: int, page: int = 1) -> RosterDet
         sectors=sectors, mapping_name=settings.mapping_name, window=settings.window,
         rejected=rejected[(at - 1) * REJECTED_PAGE:at * REJECTED_PAGE], rejected_total=len(rejected),
         rejected_groups=group_rejections(rejected), rejected_page=at, rejected_pages=pages,
+        runs=len(store.list_runs(roster.id)),
     )
 
 
@@ -171,8 +174,12 @@ _ROLE_FIELDS = {f"role_{r}": {"type": "string", "description": f"column holding 
              openapi_extra=form_body({"file": FILE, **_FILE_OPTIONS}, required=("file",), multipart=True))
 async def roster_upload(request: Request) -> HTMLResponse:
     """First step: keep the file aside, show its first rows and the column roles we detected."""
-    store = app_store(request)
     form = await read_form(request)
+    return await run_in_threadpool(_roster_upload, request, form)
+
+
+def _roster_upload(request: Request, form: dict[str, str | Upload]) -> HTMLResponse:
+    store = app_store(request)
     try:
         filename, data = _read_upload(form)
         encoding, sheet = _file_options(form)
@@ -256,10 +263,14 @@ def _expired(request: Request) -> HTMLResponse:
                  "token": {"type": "string", "description": "the upload step's token"},
                  "name": {"type": "string"}, **_FILE_OPTIONS, **_ROLE_FIELDS, **_INTAKE_FIELDS,
              }, required=("token",)))
-async def roster_review(request: Request) -> HTMLResponse:
+async def roster_review(request: Request) -> Response:
     """The dry run again with the analyst's choices (header row, roles, date reading, fiscal-year end); stores nothing."""
-    store = app_store(request)
     form = await read_form(request)
+    return await run_in_threadpool(_roster_review, request, form)
+
+
+def _roster_review(request: Request, form: dict[str, str | Upload]) -> Response:
+    store = app_store(request)
     token = str(form.get("token") or "")
     pending = app_uploads(request).get(token)
     if pending is None:
@@ -296,8 +307,12 @@ async def roster_review(request: Request) -> HTMLResponse:
              }, required=("token",)))
 async def roster_confirm(request: Request) -> Response:
     """Last step: import with the choices the analyst reviewed; all rows land or none do."""
-    store = app_store(request)
     form = await read_form(request)
+    return await run_in_threadpool(_roster_confirm, request, form)
+
+
+def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response:
+    store = app_store(request)
     token = str(form.get("token") or "")
     pending = app_uploads(request).get(token)
     if pending is None:
@@ -336,8 +351,12 @@ async def roster_confirm(request: Request) -> Response:
                                       **_ROLE_FIELDS}, required=("file",), multipart=True))
 async def rosters_import_api(request: Request) -> JSONResponse:
     """Import in one call: multipart ``file``, optional ``name``, ``sheet``, ``encoding`` and ``role_<ROLE>``."""
-    store = app_store(request)
     form = await read_form(request)
+    return await run_in_threadpool(_rosters_import_api, request, form)
+
+
+def _rosters_import_api(request: Request, form: dict[str, str | Upload]) -> JSONResponse:
+    store = app_store(request)
     try:
         filename, data = _read_upload(form)
         roles: dict[str, str] = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
@@ -356,7 +375,8 @@ async def rosters_import_api(request: Request) -> JSONResponse:
     }, status_code=201)
 
 
-@router.get("/rosters/{roster_id}", response_class=HTMLResponse, name="roster_detail",
+# ":int" so that GET /rosters/upload and /rosters/confirm answer 405 (POST only), not a 422 about the id
+@router.get("/rosters/{roster_id:int}", response_class=HTMLResponse, name="roster_detail",
             responses=page_errors(404))
 def roster_detail(request: Request, roster_id: int, page: int = 1) -> HTMLResponse:
     page_data = roster_detail_data(app_store(request), roster_id, page)
@@ -381,9 +401,19 @@ def roster_rejected_csv(request: Request, roster_id: int) -> Response:
 
 
 @router.post("/rosters/{roster_id}/delete", name="roster_delete", status_code=303,
-            response_class=RedirectResponse, responses=redirect("the roster list", page_errors(404)))
-def roster_delete(request: Request, roster_id: int) -> RedirectResponse:
+             response_class=RedirectResponse, responses=redirect("the roster list", page_errors(400, 404)),
+             openapi_extra=form_body({"confirm": {
+                 "type": "string", "enum": ["yes"],
+                 "description": "must be yes: the server refuses a delete without it"}}, required=("confirm",)))
+async def roster_delete(request: Request, roster_id: int) -> RedirectResponse:
+    """Delete a roster, its departures, rejected rows and settings; its runs stay readable."""
+    form = await read_form(request)
+    return await run_in_threadpool(_roster_delete, request, roster_id, form)
+
+
+def _roster_delete(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     roster = _roster_or_404(store, roster_id)
+    require_confirmation(form, f"roster {roster.name!r}")
     store.delete_roster(roster.id)
     return RedirectResponse(request.url_for("rosters_page"), status_code=303)

@@ -81,7 +81,8 @@ def form_body(properties: dict[str, Any], *, required: tuple[str, ...] = (), mul
     if pattern_properties:
         schema["patternProperties"] = pattern_properties
     media = "multipart/form-data" if multipart else "application/x-www-form-urlencoded"
-    return {"requestBody": {"required": True, "content": {media: {"schema": schema}}}}
+    # a form whose every field is optional may be left out altogether (the handler then uses its defaults)
+    return {"requestBody": {"required": bool(required), "content": {media: {"schema": schema}}}}
 
 
 def query(*params: tuple[str, dict[str, Any], str]) -> dict[str, Any]:

@@ -2,7 +2,10 @@
 
 * Host allow-list: refuses requests whose Host header is not this machine (DNS rebinding).
 * Origin check on every state-changing request: a page from another site open in the same browser
-  cannot upload, remap, start jobs or delete (browsers always send Origin on cross-site POSTs).
+  cannot upload, remap, start jobs or delete (browsers always send Origin on cross-site POSTs). The
+  Origin (or Referer) must match this server's own scheme and port exactly, on an allowed host: a page
+  served by another local program (``http://localhost:9999``, ``https://127.0.0.1:4443``) is another
+  site too.
 * A strict Content-Security-Policy with a per-request nonce, and the usual hardening headers.
 * An upload size limit enforced on the declared length and on the bytes actually received.
 
@@ -40,11 +43,28 @@ def content_security_policy(nonce: str) -> str:
 
 
 def _host_only(value: str) -> str:
+    return _host_port(value)[0]
+
+
+DEFAULT_PORTS = {"http": 80, "https": 443}
+
+
+def _host_port(value: str, scheme: str = "http") -> tuple[str, int | None]:
+    """(host, port) of a Host header or URL netloc; the scheme's default port when none is written.
+
+    The port is None when it is not a number (such a value never matches).
+    """
     value = value.strip().lower()
     if value.startswith("["):
         end = value.find("]")
-        return value[: end + 1]
-    return value.split(":", 1)[0]
+        host, rest = value[: end + 1], value[end + 1:]
+    else:
+        host, colon, port_text = value.partition(":")
+        rest = colon + port_text
+    if not rest:
+        return host, DEFAULT_PORTS.get(scheme)
+    port_text = rest.removeprefix(":")
+    return host, int(port_text) if rest.startswith(":") and port_text.isdigit() else None
 
 
 class SecurityMiddleware:
@@ -66,7 +86,7 @@ class SecurityMiddleware:
             return
         method = scope.get("method", "GET").upper()
         if method in UNSAFE_METHODS:
-            problem = self._cross_site(headers)
+            problem = self._cross_site(headers, scope.get("scheme", "http"))
             if problem:
                 await _plain(send, 403, problem)
                 return
@@ -101,14 +121,28 @@ class SecurityMiddleware:
         return (f"The upload is larger than the limit of {mb:g} MB; split the roster or raise "
                 "HELMSHIFT_UPLOAD_LIMIT (bytes).")
 
-    def _cross_site(self, headers: dict[str, str]) -> str | None:
+    def _cross_site(self, headers: dict[str, str], scheme: str) -> str | None:
+        """Why a state-changing request must be refused, or None when it comes from this server's pages.
+
+        Same origin means same scheme, same port and an allowed host (the analyst may use 127.0.0.1 or
+        localhost for the same server); Origin is checked when sent, otherwise Referer.
+        """
+        own_port = _host_port(headers.get("host", ""), scheme)[1]
+
+        def foreign(url: str) -> bool:
+            parts = urlsplit(url)
+            if parts.scheme != scheme:
+                return True
+            host, port = _host_port(parts.netloc.rpartition("@")[2], parts.scheme)
+            return host not in self.allowed_hosts or port is None or port != own_port
+
         origin = headers.get("origin")
         if origin is not None:
-            if origin == "null" or _host_only(urlsplit(origin).netloc) not in self.allowed_hosts:
+            if origin == "null" or foreign(origin):
                 return f"Refused a change requested from another site ({origin})."
             return None
         referer = headers.get("referer")
-        if referer and _host_only(urlsplit(referer).netloc) not in self.allowed_hosts:
+        if referer and foreign(referer):
             return "Refused a change requested from another site."
         return None
 
