@@ -1,8 +1,8 @@
 """app.stats.rates and app.stats.rate_trend: exact Poisson intervals, rate counting, the Poisson trend.
 
 Oracles: Garwood's chi-squared formula evaluated with scipy.stats.chi2 and statsmodels'
-``confint_poisson(method='exact-c')`` (REFERENCES.md, "Exact Poisson interval, Garwood 1936"); statsmodels
-``GLM(..., family=Poisson(), offset=log(exposure))`` for the trend (REFERENCES.md, "Rates with an exposure
+``confint_poisson(method='exact-c')`` (tests/data/README.md, "Rates per firm-year", Garwood 1936); statsmodels
+``GLM(..., family=Poisson(), offset=log(exposure))`` for the trend (tests/data/README.md, "Rates per firm-year": rates with an exposure
 offset"); the profile interval against an independent root search over statsmodels refits.
 """
 
@@ -45,7 +45,7 @@ def test_garwood_equals_the_chi2_formula_and_statsmodels_exact_interval() -> Non
     counts = np.array([0, 1, 2, 7, 30, 250])
     low, high = garwood_interval(counts, 0.05)
     for x, lo, hi in zip(counts, low, high, strict=True):
-        # Garwood 1936 (REFERENCES.md): chi2(alpha/2, 2x)/2 and chi2(1-alpha/2, 2x+2)/2, via scipy
+        # Garwood 1936 (tests/data/README.md): chi2(alpha/2, 2x)/2 and chi2(1-alpha/2, 2x+2)/2, via scipy
         expected_lo = 0.0 if x == 0 else stats.chi2.ppf(0.025, 2 * x) / 2
         assert lo == pytest.approx(expected_lo, rel=1e-12, abs=0)
         assert hi == pytest.approx(stats.chi2.ppf(0.975, 2 * x + 2) / 2, rel=1e-12)
@@ -112,7 +112,7 @@ def test_rate_trend_equals_statsmodels_poisson_glm_with_offset(measure: str) -> 
     y = table.years[measure].to_numpy(float)
     e = table.years["firm_years"].to_numpy(float)
     t = table.years["year"].to_numpy(float) - 2004.5
-    # statsmodels GLM Poisson with log(firm-years) offset (REFERENCES.md "Rates with an exposure offset")
+    # statsmodels GLM Poisson with log(firm-years) offset (tests/data/README.md, "Rates per firm-year")
     ref = sm.GLM(y, sm.add_constant(t), family=sm.families.Poisson(), offset=np.log(e)).fit()
     assert fit.intercept == pytest.approx(ref.params[0], abs=1e-8)
     assert fit.log_rr == pytest.approx(ref.params[1], abs=1e-8)

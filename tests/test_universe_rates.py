@@ -1,7 +1,7 @@
 """Universe import/derivation (app.intake.universe, app.store.universe) and rates over it (app.analysis.rates,
 ``helmshift universe`` and ``helmshift fit --measure rate``), on rosters built here by a fixed recipe.
 
-Oracles: counts by hand from the recipe; statsmodels' Poisson GLM with log(firm-years) offset (REFERENCES.md
+Oracles: counts by hand from the recipe; statsmodels' Poisson GLM with log(firm-years) offset (tests/data/README.md
 "Rates with an exposure offset"); statsmodels' exact Poisson interval (Garwood 1936).
 """
 
