@@ -203,9 +203,9 @@ def robustness_finding(store: Store, inp: AnalysisInput, extra: list[str] | None
                        vary: list[str] | None = None) -> ChartFinding:
     from app.analysis.robustness import check_robustness
 
-    if extra is None:
-        extra = [f"{n}:{v}" for n, v in store.list_mappings() if not (inp.mapping and n == inp.mapping.name)]
-    return robustness_finding_from(inp, check_robustness(store, inp, extra_mappings=extra, vary=vary or []))
+    # by default, only the saved mappings that give every counted code a category (the rest are left out)
+    return robustness_finding_from(inp, check_robustness(store, inp, extra_mappings=extra or "covering",
+                                                         vary=vary or []))
 
 
 def build_finding(store: Store, inp: AnalysisInput, chart: str, *, run_id: int | None = None,

@@ -183,9 +183,12 @@ def trend_chart(slide: Slide, fig: go.Figure, box: tuple[float, float, float, fl
         series.smooth = False
     years = _floats(fitted.x) + _floats(observed.x)
     x_axis, y_axis = chart.category_axis, chart.value_axis
-    x_axis.minimum_scale, x_axis.maximum_scale = min(years) - 0.5, max(years) + 0.5
     span = max(years) - min(years)
-    x_axis.major_unit = 1 if span <= 12 else 2 if span <= 24 else 5
+    unit = 1 if span <= 12 else 2 if span <= 24 else 5
+    # whole multiples of the tick step at both ends, so every tick sits on a year and is labelled with it
+    x_axis.minimum_scale = math.floor((min(years) - 1) / unit) * unit
+    x_axis.maximum_scale = math.ceil((max(years) + 1) / unit) * unit
+    x_axis.major_unit = unit
     x_axis.tick_labels.number_format = "0"
     x_axis.tick_labels.number_format_is_linked = False
     x_axis.tick_label_position = XL_TICK_LABEL_POSITION.LOW
