@@ -341,11 +341,18 @@ def cmd_robustness(args: argparse.Namespace) -> int:
 def cmd_export(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
     from app.briefing.exports import export_to_file
+    from app.briefing.signature import resolve_signature
 
     out = _out_path(args.out)
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
-    path = export_to_file(store, inp, fmt=args.format, out=out, chart=args.chart, run_id=args.run)
+    signature = resolve_signature(store.briefing_settings(inp.roster.id), inp.roster.name, title=args.title,
+                                  author=args.author, marking=args.marking, when=args.date)
+    charts = None
+    if args.format == "pptx" and args.chart is not None:
+        charts = [c.strip() for c in args.chart.split(",") if c.strip()]
+    path = export_to_file(store, inp, fmt=args.format, out=out, chart=args.chart or "trend",
+                          run_id=args.run, signature=signature, charts=charts)
     print(f"Wrote {path}", file=sys.stderr)
     return 0
 
@@ -477,9 +484,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--mapping")
     p.add_argument("--years", metavar="FROM-TO")
     p.add_argument("--run", type=int, help="a stored bootstrap run to include")
-    p.add_argument("--format", required=True, choices=["png", "svg", "pdf", "pptx", "brief"])
-    p.add_argument("--chart", default="trend", help="coverage, trend, bootstrap, sectors or robustness")
-    p.add_argument("--out", required=True)
+    p.add_argument("--format", required=True, choices=["png", "svg", "pdf", "pptx", "brief"],
+                   help="png, svg or pdf: one chart; pptx: the slide deck; brief: the one-page PDF brief")
+    p.add_argument("--chart", help="png/svg/pdf: coverage, trend, bootstrap, sectors or robustness (default: "
+                                   "trend); pptx: the findings as a comma list, every one shown or an error "
+                                   "(default: every finding that can be shown)")
+    p.add_argument("--out", required=True, help="file to write (written whole or not at all)")
+    p.add_argument("--title", help="title of the brief or deck (default: the one saved on the Briefing page, "
+                                   "else 'Forced chief-executive departures: ROSTER')")
+    p.add_argument("--author", help="author named on the title slide and the brief (default: the saved one, "
+                                    "else none)")
+    p.add_argument("--marking", help="confidentiality marking on every page and slide, e.g. CONFIDENTIAL "
+                                     "(default: the saved one, else none)")
+    p.add_argument("--date", metavar="YYYY-MM-DD", help="date of the paper (default: the saved one, else today)")
     common(p, json_flag=False)
     p.set_defaults(func=cmd_export)
 

@@ -36,6 +36,9 @@ def main() -> int:
         roster = load_demo(store)
         inp = load_input(store, roster.id)
         run_bootstrap_now(store, inp, unit="firm", resamples=2000, seed=20261201)
+        # an invented analyst signs the previews, as the Briefing page would save it
+        store.save_briefing_settings(roster.id, title="Are forced departures becoming more common?",
+                                     author="A. Analyst", marking="CONFIDENTIAL", date="2026-12-03", takeaways={})
         (work / "brief.pdf").write_bytes(brief_file(store, inp))
         (work / "deck.pptx").write_bytes(deck_file(store, inp))
         subprocess.run(["pdftoppm", "-png", "-r", "80", "-singlefile", str(work / "brief.pdf"),

@@ -89,3 +89,38 @@ def test_robustness_needs_a_mapping(store: Store) -> None:
     inp = load_input(store, roster.id, require_mapping=False)
     with pytest.raises(ValueError, match="needs a reference mapping"):
         check_robustness(store, inp)
+
+
+def test_mappings_that_leave_counted_codes_unmapped_are_not_offered_and_never_drive_the_verdict(
+        demo_store: Store, demo_clean: pd.DataFrame, client: Any) -> None:
+    # another desk's mapping sharing no code with the demo roster (the situation of a new roster)
+    demo_store.save_mapping_version("other desk", {"OUSTED-X": "forced", "RETIRED-X": "voluntary"}, {},
+                                    author="test", note="no shared codes")
+    inp = load_input(demo_store, ROSTER)
+    default = check_robustness(demo_store, inp, extra_mappings="covering")
+    assert [v.label for v in default.variants if v.kind == "mapping"] == ["demo strict v1 = ambiguous codes excluded"]
+    assert [ref for ref, _ in default.left_out] == ["other desk:1"]
+    standard = read_mapping("mapping-standard.csv")
+    counted = year_counts(demo_clean, standard, WINDOW)  # pandas: forced + voluntary per year in the window
+    codes = {c for c, cat in standard.items() if cat in ("forced", "voluntary")}
+    why = default.left_out[0][1]
+    assert f"gives no category to {len(codes & set(demo_clean['Exit Reason'])):,} of the" in why
+    assert why.endswith(f"{int(counted['total'].sum()):,} departures")
+    # chosen anyway: the reading is marked with every counted departure unmapped and is not in the verdict
+    chosen = check_robustness(demo_store, inp, extra_mappings=["other desk:1"], ambiguous_excluded=False)
+    other = next(v for v in chosen.variants if v.kind == "mapping")
+    assert other.unmapped == int(counted["total"].sum())
+    assert chosen.holds and chosen.direction == "rising"  # the reference alone decides; it rises
+    assert "1 further reading leaves counted departures unmapped and is not part of this verdict." in chosen.sentence
+    assert robustness_to_dict(chosen)["variants"][1]["unmapped"] == other.unmapped
+    # every reading of a stored mapping links to its departures, and the linked lists have the counted lengths
+    page = client.get(f"/rosters/{ROSTER}/robustness")
+    assert "Not offered, because they would count" in page.text and "other desk:1" in page.text
+    ref = next(v for v in page.context["page"].result.variants if v.kind == "reference")
+    assert ref.mapping_ref == "demo standard:1"
+    for category, expected in (("forced", ref.forced), ("counted", ref.departures)):
+        listed = client.get(f"/api/rosters/{ROSTER}/departures", params={
+            "mapping": ref.mapping_ref, "from": WINDOW[0], "to": WINDOW[1], "category": category}).json()
+        assert listed["total"] == expected
+    assert expected == int(counted["total"].sum())
+    assert "category=counted" in page.text and "mapping=demo+standard%3A1" in page.text

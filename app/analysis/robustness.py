@@ -3,13 +3,18 @@
 Variants: the roster's mapping (the reference), any other saved mapping versions the analyst names,
 one chosen code moved to each other category, and every ambiguous code treated as excluded.
 Each variant is fitted on the same window; the differences from the reference are spelled out.
+
+A reading must not mislead: other mappings are offered by default only when they give a category to every
+code the reference counts (forced or voluntary) in the window (:func:`offered_mappings` says which were left
+out and why), and a reading that still leaves counted departures unmapped is marked and kept out of the
+verdict sentence, which would otherwise report a change of mind that is only missing codes.
 """
 
 from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import pandas as pd
@@ -37,6 +42,10 @@ class Variant:
     bootstrap: tuple[float, float] | None
     bootstrap_note: str
     error: str | None
+    #: departures the reference counts whose code this reading leaves unmapped (such a reading is marked)
+    unmapped: int = 0
+    #: NAME:VERSION of the stored mapping behind the reading (for links to its departures), None if generated
+    mapping_ref: str | None = None
 
 
 @dataclass(frozen=True)
@@ -48,6 +57,41 @@ class Robustness:
     direction: str
     holds: bool
     sentence: str
+    #: (NAME:VERSION, why) of the saved mappings not offered because they leave counted codes unmapped
+    left_out: tuple[tuple[str, str], ...] = ()
+
+
+def counted_codes(inp: AnalysisInput, categories: Mapping[str, str]) -> dict[str, int]:
+    """Reason code -> departures in the window, for the codes ``categories`` counts (forced or voluntary)."""
+    counts = inp.counts
+    inside = counts[(counts["year"] >= inp.window[0]) & (counts["year"] <= inp.window[1])]
+    per_code = inside.groupby(inside["reason"].astype(str))["departures"].sum()
+    return {str(code): int(n) for code, n in per_code.items() if categories.get(str(code)) in ("forced", "voluntary")}
+
+
+def _unmapped(counted: Mapping[str, int], other: Mapping[str, str]) -> dict[str, int]:
+    return {code: n for code, n in counted.items() if code not in other}
+
+
+def offered_mappings(store: Store, inp: AnalysisInput) -> tuple[list[str], list[tuple[str, str]]]:
+    """The other saved mappings (latest versions) that cover every counted code, and those left out with why."""
+    if inp.mapping is None:
+        return [], []
+    counted = counted_codes(inp, inp.mapping.categories)
+    offered: list[str] = []
+    left_out: list[tuple[str, str]] = []
+    for name, version in store.list_mappings():
+        if name == inp.mapping.name:
+            continue
+        missing = _unmapped(counted, store.get_mapping(name, version).categories)
+        ref = f"{name}:{version}"
+        if not missing:
+            offered.append(ref)
+            continue
+        shown = ", ".join(sorted(missing)[:4]) + (", \u2026" if len(missing) > 4 else "")
+        left_out.append((ref, f"gives no category to {len(missing):,} of the {len(counted):,} codes counted here "
+                              f"({shown}), {sum(missing.values()):,} departures"))
+    return offered, left_out
 
 
 def _describe(base: Mapping[str, str], other: Mapping[str, str], roster_codes: set[str]) -> tuple[str, ...]:
@@ -72,7 +116,8 @@ def _bootstrap_interval(store: Store, inp: AnalysisInput, name: str, version: in
 
 
 def _fit_variant(inp: AnalysisInput, categories: Mapping[str, str], label: str, kind: str,
-                 changes: tuple[str, ...], boot: tuple[tuple[float, float] | None, str]) -> Variant:
+                 changes: tuple[str, ...], boot: tuple[tuple[float, float] | None, str], *,
+                 counted: Mapping[str, int] | None = None, ref: str | None = None) -> Variant:
     def fit_variant() -> tuple[int, int, TrendFit | str]:
         cells = cells_from_counts(inp.counts, inp.window, categories=categories)
         try:
@@ -83,11 +128,12 @@ def _fit_variant(inp: AnalysisInput, categories: Mapping[str, str], label: str, 
     # the same reading of the codes on the same counts and window gives the same fit: memoised
     departures, forced, fit = memoised(inp.store, ("variant", *inp.key, tuple(sorted(categories.items()))),
                                        fit_variant)
+    unmapped = sum(_unmapped(counted or {}, categories).values())
     if isinstance(fit, str):
-        return Variant(label, kind, changes, departures, forced, None, None, None, None, boot[1], fit)
+        return Variant(label, kind, changes, departures, forced, None, None, None, None, boot[1], fit, unmapped, ref)
     return Variant(label, kind, changes, departures, forced, fit.odds_ratio, fit.conf_int.get("wald"),
                    fit.conf_int.get("profile"), boot[0], boot[1],
-                   "; ".join(fit.messages) if fit.separated else None)
+                   "; ".join(fit.messages) if fit.separated else None, unmapped, ref)
 
 
 def _direction(v: Variant) -> int:
@@ -102,15 +148,24 @@ def _direction(v: Variant) -> int:
     return 0
 
 
-def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[str] | None = None,
+def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[str] | Literal["covering"] | None = None,
                      vary: list[str] | None = None, ambiguous_excluded: bool = True) -> Robustness:
-    """Fit the straight trend under each variant of the mapping (see module docstring)."""
+    """Fit the straight trend under each variant of the mapping (see module docstring).
+
+    ``extra_mappings="covering"``: every other saved mapping that covers the counted codes; the rest are
+    listed in ``left_out`` with the reason.
+    """
     if inp.mapping is None:
         raise ValueError("Robustness needs a reference mapping; choose one on the Reason codes page.")
     base: dict[str, str] = dict(inp.mapping.categories)
     roster_codes = set(inp.counts["reason"].astype(str))
+    counted = counted_codes(inp, base)
+    left_out: list[tuple[str, str]] = []
+    if extra_mappings == "covering":
+        extra_mappings, left_out = offered_mappings(store, inp)
     variants = [_fit_variant(inp, base, inp.mapping_label, "reference", ("the roster's mapping",),
-                             _bootstrap_interval(store, inp, inp.mapping.name, inp.mapping.version))]
+                             _bootstrap_interval(store, inp, inp.mapping.name, inp.mapping.version),
+                             ref=f"{inp.mapping.name}:{inp.mapping.version}")]
     for ref in extra_mappings or []:
         name, version = parse_mapping_ref(ref)
         other = store.get_mapping(name, version)
@@ -118,7 +173,8 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
             continue
         variants.append(_fit_variant(inp, dict(other.categories), f"{other.name} v{other.version}", "mapping",
                                      _describe(base, dict(other.categories), roster_codes),
-                                     _bootstrap_interval(store, inp, other.name, other.version)))
+                                     _bootstrap_interval(store, inp, other.name, other.version),
+                                     counted=counted, ref=f"{other.name}:{other.version}"))
     no_boot = (None, "not bootstrapped (a generated variant)")
     for code in vary or []:
         if code not in roster_codes:
@@ -137,7 +193,7 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
             variants.append(_fit_variant(inp, base | changed, "ambiguous codes excluded", "ambiguous-excluded",
                                          tuple(f"{c}: {base.get(c, 'unmapped')} → excluded" for c in changed),
                                          no_boot))
-    return _verdict(inp, _merge_identical(variants))
+    return replace(_verdict(inp, _merge_identical(variants)), left_out=tuple(left_out))
 
 
 def _merge_identical(variants: list[Variant]) -> list[Variant]:
@@ -146,14 +202,17 @@ def _merge_identical(variants: list[Variant]) -> list[Variant]:
     for v in variants:
         twin = next((k for k in kept if (k.departures, k.forced, k.odds_ratio) == (v.departures, v.forced, v.odds_ratio)
                      and k.changes == v.changes), None)
-        if twin is None:
+        if twin is None or twin.unmapped != v.unmapped:
             kept.append(v)
         else:
             kept[kept.index(twin)] = replace(twin, label=f"{twin.label} = {v.label}")
     return kept
 
 
-def _verdict(inp: AnalysisInput, variants: list[Variant]) -> Robustness:
+def _verdict(inp: AnalysisInput, shown: list[Variant]) -> Robustness:
+    """The sentence from the readings that count every departure the reference counts (marked ones aside)."""
+    variants = [v for v in shown if v.unmapped == 0 or v.kind == "reference"]
+    marked = len(shown) - len(variants)
     ref = variants[0]
     ref_dir = _direction(ref)
     dirs = [_direction(v) for v in variants]
@@ -183,7 +242,11 @@ def _verdict(inp: AnalysisInput, variants: list[Variant]) -> Robustness:
     ors = [v.odds_ratio for v in variants if v.odds_ratio is not None]
     if ors:
         sentence += f" Odds ratios per year range from {min(ors):.3f} to {max(ors):.3f}."
-    return Robustness(inp.window, variants, direction, holds, sentence)
+    if marked:
+        sentence += (f" {marked} further reading{'s' if marked > 1 else ''} leave{'' if marked > 1 else 's'} "
+                     "counted departures unmapped and {} not part of this verdict.".format(
+                         "are" if marked > 1 else "is"))
+    return Robustness(inp.window, shown, direction, holds, sentence)
 
 
 def robustness_to_dict(result: Robustness) -> dict[str, Any]:
@@ -199,8 +262,10 @@ def robustness_to_dict(result: Robustness) -> dict[str, Any]:
             "label": v.label, "kind": v.kind, "changes": list(v.changes), "departures": v.departures,
             "forced": v.forced, "odds_ratio": v.odds_ratio,
             "conf_int": {"wald": pair(v.wald), "profile": pair(v.profile), "bootstrap": pair(v.bootstrap)},
-            "bootstrap_note": v.bootstrap_note, "error": v.error,
+            "bootstrap_note": v.bootstrap_note, "error": v.error, "unmapped": v.unmapped,
+            "mapping": v.mapping_ref,
         } for v in result.variants],
+        "left_out": [{"mapping": ref, "reason": why} for ref, why in result.left_out],
     }
 
 
@@ -209,6 +274,7 @@ def robustness_rows(result: Robustness) -> pd.DataFrame:
     rows = []
     for v in result.variants:
         lo, hi = v.profile if v.profile else (np.nan, np.nan)
-        rows.append({"label": v.label, "odds_ratio": v.odds_ratio if v.odds_ratio is not None else np.nan,
+        label = f"{v.label} (leaves {v.unmapped:,} unmapped)" if v.unmapped else v.label
+        rows.append({"label": label, "odds_ratio": v.odds_ratio if v.odds_ratio is not None else np.nan,
                      "low": lo, "high": hi, "group": "Reference mapping" if v.kind == "reference" else "Other reading"})
     return pd.DataFrame(rows)

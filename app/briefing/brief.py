@@ -20,6 +20,7 @@ from markupsafe import Markup
 from app.analysis.provenance import CAUTIONS, Provenance
 from app.briefing.charts import without_source
 from app.briefing.render import figure_bytes
+from app.briefing.signature import Signature, default_title
 
 TEMPLATE_DIR = Path(__file__).resolve().parents[2] / "templates"
 _env = Environment(loader=FileSystemLoader(str(TEMPLATE_DIR)), autoescape=select_autoescape(default=True))
@@ -82,19 +83,24 @@ def _inline_svg(svg: bytes) -> Markup:
 
 
 def render_brief_html(*, headline: str, chart_svgs: Sequence[bytes], table: pd.DataFrame, method_text: str,
-                      provenance: Provenance, base_pt: float = 9.0, max_rows: int = 12) -> str:
+                      provenance: Provenance, base_pt: float = 9.0, max_rows: int = 12,
+                      signature: Signature | None = None, captions: Sequence[str] = (), data_text: str = "") -> str:
     """The brief's HTML (autoescaped), from already rendered SVG charts."""
     rows = _rows(table)
+    sign = signature or Signature(default_title(provenance.roster), "", "", provenance.created.date())
     return _env.get_template("brief.html").render(
-        headline=headline, charts=[_inline_svg(s) for s in chart_svgs], rows=rows[:max_rows],
-        hidden_rows=max(0, len(rows) - max_rows), method_text=method_text, cautions=CAUTIONS,
-        provenance=provenance, base_pt=base_pt,
+        headline=headline, charts=list(zip([_inline_svg(s) for s in chart_svgs],
+                                           [*captions, *[""] * len(chart_svgs)], strict=False)),
+        rows=rows[:max_rows], hidden_rows=max(0, len(rows) - max_rows), method_text=method_text,
+        cautions=CAUTIONS, provenance=provenance, base_pt=base_pt, sign=sign, data_text=data_text,
     )
 
 
 def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFrame, method_text: str,
-                provenance: Provenance) -> bytes:
-    """A one-page A4 PDF: headline, two charts, odds-ratio table, method, cautions, provenance footer.
+                provenance: Provenance, signature: Signature | None = None, captions: Sequence[str] = (),
+                data_text: str = "") -> bytes:
+    """A one-page A4 PDF: the analyst's title, byline and marking, the headline, two charts with their
+    takeaways, the odds-ratio table, data used and rejected, method, cautions and the provenance footer.
 
     Raises app.briefing.render.ExportUnavailable when charts cannot be rendered (no browser), ValueError when
     ``charts`` is not two figures or the content cannot be fitted on one page.
@@ -108,7 +114,8 @@ def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFra
         svgs = [figure_bytes(without_source(fig), "svg", width=CHART_WIDTH_PX, height=layout.chart_height_px)
                 for fig in charts]
         html = render_brief_html(headline=headline, chart_svgs=svgs, table=table, method_text=method_text,
-                                 provenance=provenance, base_pt=layout.base_pt, max_rows=layout.max_rows)
+                                 provenance=provenance, base_pt=layout.base_pt, max_rows=layout.max_rows,
+                                 signature=signature, captions=captions, data_text=data_text)
         document = HTML(string=html, base_url=str(TEMPLATE_DIR)).render()
         if len(document.pages) == 1:
             return bytes(document.write_pdf())

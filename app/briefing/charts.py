@@ -238,6 +238,16 @@ def trend_figure(observed: pd.DataFrame, fitted: pd.DataFrame, *, title: str, so
     return fig
 
 
+def histogram_edges(values: np.ndarray) -> np.ndarray:
+    """Equal-width bin edges for the bootstrap histogram: about sqrt(n) bins, 10 to 60 of them."""
+    bins = int(min(60, max(10, math.sqrt(values.size))))
+    lo, hi = float(values.min()), float(values.max())
+    if hi <= lo:
+        lo, hi = lo - 0.005, hi + 0.005
+    # the top edge lies just above the largest value, so left-closed bins (plotly's) and numpy's agree
+    return np.linspace(lo, hi + (hi - lo) * 1e-9, bins + 1)
+
+
 def bootstrap_histogram(odds_ratios: np.ndarray, estimate: float, interval: tuple[float, float], *,
                         method_label: str, title: str, source: str) -> go.Figure:
     """Histogram of bootstrap odds ratios with the no-change line, the estimate and the interval ends."""
@@ -249,7 +259,11 @@ def bootstrap_histogram(odds_ratios: np.ndarray, estimate: float, interval: tupl
     note = (f"{values.size:,} resamples; {failed:,} failed (separation or no convergence) and are left out."
             if failed else f"{values.size:,} resamples; none failed.")
     fig = _base_figure(title, source, notes=[note])
-    fig.add_histogram(x=ok, nbinsx=int(min(60, max(10, math.sqrt(ok.size)))), name="Bootstrap odds ratios",
+    edges = histogram_edges(ok)
+    # explicit bins (not plotly's own choice) so the deck's native chart counts the very same bins
+    fig.add_histogram(x=ok, xbins={"start": float(edges[0]), "end": float(edges[-1]),
+                                   "size": float(edges[1] - edges[0])},
+                      name="Bootstrap odds ratios",
                       marker={"color": OKABE_ITO["sky_blue"], "line": {"color": "#FFFFFF", "width": 0.6}},
                       hovertemplate="OR %{x}<br>%{y:,} resamples<extra></extra>")
     lo, hi = float(interval[0]), float(interval[1])

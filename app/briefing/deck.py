@@ -1,5 +1,10 @@
 """The slide deck (16:9 .pptx): title, one slide per finding, methods and provenance, cautions.
 
+Findings of the product (coverage, trend, bootstrap, sectors, robustness) get native, editable charts
+(app.briefing.native_charts); any other figure goes in as a picture. Every slide has speaker notes: the
+method, the interval and the caveat. The analyst's title, author, date and marking sit on the title slide,
+and the marking in every footer.
+
 Every text box is sized from an estimate of how its text wraps and boxes are stacked top to bottom, so
 text never overlaps a picture or another box; text that would not fit shrinks to a floor size and is then
 cut with an ellipsis rather than spilling.
@@ -11,8 +16,10 @@ import functools
 import io
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from datetime import date
 
+import pandas as pd
 import plotly.graph_objects as go
 from PIL import ImageFont
 from pptx import Presentation
@@ -24,6 +31,7 @@ from pptx.util import Emu, Inches, Pt
 
 from app.analysis.provenance import CAUTIONS, Provenance
 from app.briefing.charts import INK, MUTED, OKABE_ITO, untitled
+from app.briefing.native_charts import native_chart
 from app.briefing.render import figure_bytes
 
 SLIDE_W_IN = 13.333
@@ -81,13 +89,33 @@ def _rgb(hex_colour: str) -> RGBColor:
     return RGBColor.from_string(hex_colour.lstrip("#"))
 
 
+NATIVE = ("coverage", "trend", "bootstrap", "sectors", "robustness")
+
+
 @dataclass(frozen=True)
 class Finding:
-    """One finding: the slide title (a sentence), a one-sentence takeaway and the chart that shows it."""
+    """One finding: the slide title (a sentence), a one-sentence takeaway and the chart that shows it.
+
+    ``name`` one of ``NATIVE`` draws a native chart from the figure's numbers (``rows`` for the forest
+    charts of sectors and robustness); any other name places the figure as a picture. ``notes`` become the
+    slide's speaker notes.
+    """
 
     title: str
     takeaway: str
     figure: go.Figure
+    name: str = ""
+    rows: pd.DataFrame | None = field(default=None, compare=False)
+    notes: str = ""
+
+
+@dataclass(frozen=True)
+class Byline:
+    """Who signs the deck: shown on the title slide; the marking also in every footer."""
+
+    author: str = ""
+    marking: str = ""
+    date: date | None = None
 
 
 @dataclass(frozen=True)
@@ -179,10 +207,11 @@ def _title(slide: Slide, text: str, stack: _Stack, size: float = 28, max_height:
     _place_title(slide, fit, MARGIN_IN, stack.take(fit.height_in + 0.04, 0.22), width)
 
 
-def _footer(slide: Slide, provenance: Provenance, number: int) -> None:
+def _footer(slide: Slide, provenance: Provenance, number: int, marking: str = "") -> None:
     top = SLIDE_H_IN - 0.42
     width = SLIDE_W_IN - 2 * MARGIN_IN
-    left_text = (f"Helmshift \u00b7 {provenance.roster} \u00b7 mapping {provenance.mapping_name} "
+    left_text = ((f"{marking} \u00b7 " if marking else "")
+                 + f"{provenance.roster} \u00b7 mapping {provenance.mapping_name} "
                  f"v{provenance.mapping_version} \u00b7 FY{provenance.window[0]}\u2013{provenance.window[1]}")
     fit = fit_text(left_text, width - 0.8, 0.2, 10, min_size=8)
     _fill(_box(slide, MARGIN_IN, top, width - 0.8, 0.2), _Fit(fit.lines[:1], fit.size), colour=MUTED)
@@ -197,45 +226,63 @@ def _accent(slide: Slide, top: float, height: float) -> None:
     bar.line.fill.background()
 
 
-def _title_slide(prs: object, title: str, subtitle: str, provenance: Provenance) -> None:
+def _notes(slide: Slide, text: str) -> None:
+    frame = slide.notes_slide.notes_text_frame
+    if frame is None:
+        raise RuntimeError("the deck template's notes master has no body placeholder")
+    frame.text = text
+
+
+def _title_slide(prs: object, title: str, subtitle: str, provenance: Provenance, byline: Byline) -> None:
     slide = prs.slides.add_slide(prs.slide_layouts[_LAYOUT_TITLE_ONLY])  # type: ignore[attr-defined]
     width = SLIDE_W_IN - 2 * MARGIN_IN
+    if byline.marking:
+        mark = fit_text(byline.marking, width, 0.3, 14, min_size=11, bold=True)
+        _fill(_box(slide, MARGIN_IN, 0.45, width, mark.height_in), mark, bold=True,
+              colour=OKABE_ITO["vermillion"], align=PP_ALIGN.RIGHT)
     stack = _Stack(2.0, SLIDE_H_IN - 0.8)
     title_fit = fit_text(title, width, 1.7, 40, min_size=28, bold=True)
     _place_title(slide, title_fit, MARGIN_IN, stack.take(title_fit.height_in + 0.04, 0.25), width)
     sub_fit = fit_text(subtitle, width, 1.0, 22, min_size=16)
     _fill(_box(slide, MARGIN_IN, stack.take(sub_fit.height_in, 0.45), width, sub_fit.height_in), sub_fit,
           colour=MUTED)
+    when = byline.date or provenance.created.date()
     meta = "\n".join([
+        (f"Prepared by {byline.author}, " if byline.author else "Prepared ") + f"{when.day} {when:%B %Y}",
         f"Roster: {provenance.roster}",
         f"Fiscal years {provenance.window[0]}\u2013{provenance.window[1]} \u00b7 mapping "
         f"{provenance.mapping_name} v{provenance.mapping_version}",
-        f"Prepared {provenance.created:%d %B %Y}",
     ])
     meta_fit = fit_text(meta, width, max(0.5, stack.left), 16, min_size=12)
     _fill(_box(slide, MARGIN_IN, stack.take(meta_fit.height_in), width, meta_fit.height_in), meta_fit)
     _accent(slide, 2.0, stack.cursor - 2.0)
+    _notes(slide, f"{title}. {subtitle}. Every number in this deck comes from: {provenance.short()}.")
 
 
-def _finding_slide(prs: object, finding: Finding, provenance: Provenance, number: int) -> None:
+def _finding_slide(prs: object, finding: Finding, provenance: Provenance, number: int, marking: str) -> None:
     slide = prs.slides.add_slide(prs.slide_layouts[_LAYOUT_TITLE_ONLY])  # type: ignore[attr-defined]
     width = SLIDE_W_IN - 2 * MARGIN_IN
     stack = _Stack(0.4, SLIDE_H_IN - 0.6)
     _title(slide, finding.title, stack)
     take_fit = fit_text(finding.takeaway, width, 0.95, 20, min_size=15)
     picture_h = stack.left - take_fit.height_in - 0.2
-    # render at the box's own aspect ratio so the chart fills it instead of floating in white space
-    # 960 px across ~12 in keeps the chart's 15 px type at ~14 pt on the slide
-    px_w = 960
-    px_h = int(min(640, max(400, px_w * picture_h / width)))
-    png = figure_bytes(untitled(finding.figure), "png", width=px_w, height=px_h)
-    shown_w = min(width, picture_h * px_w / px_h)
-    shown_h = shown_w * px_h / px_w
     top = stack.take(picture_h, 0.2)
-    slide.shapes.add_picture(io.BytesIO(png), Inches(MARGIN_IN + (width - shown_w) / 2),
-                             Inches(top + (picture_h - shown_h) / 2), Inches(shown_w), Inches(shown_h))
+    if finding.name in NATIVE:
+        native_chart(slide, finding.name, finding.figure, finding.rows, (MARGIN_IN, top, width, picture_h))
+    else:
+        # render at the box's own aspect ratio so the chart fills it instead of floating in white space
+        # 960 px across ~12 in keeps the chart's 15 px type at ~14 pt on the slide
+        px_w = 960
+        px_h = int(min(640, max(400, px_w * picture_h / width)))
+        png = figure_bytes(untitled(finding.figure), "png", width=px_w, height=px_h)
+        shown_w = min(width, picture_h * px_w / px_h)
+        shown_h = shown_w * px_h / px_w
+        slide.shapes.add_picture(io.BytesIO(png), Inches(MARGIN_IN + (width - shown_w) / 2),
+                                 Inches(top + (picture_h - shown_h) / 2), Inches(shown_w), Inches(shown_h))
     _fill(_box(slide, MARGIN_IN, stack.take(take_fit.height_in), width, take_fit.height_in), take_fit)
-    _footer(slide, provenance, number)
+    _footer(slide, provenance, number, marking)
+    if finding.notes:
+        _notes(slide, finding.notes)
 
 
 def _column(slide: Slide, left: float, top: float, width: float, height: float, heading: str,
@@ -247,7 +294,7 @@ def _column(slide: Slide, left: float, top: float, width: float, height: float, 
     _fill(_box(slide, left, body_top, width, fit.height_in), fit)
 
 
-def _methods_slide(prs: object, provenance: Provenance, number: int) -> None:
+def _methods_slide(prs: object, provenance: Provenance, number: int, marking: str) -> None:
     slide = prs.slides.add_slide(prs.slide_layouts[_LAYOUT_TITLE_ONLY])  # type: ignore[attr-defined]
     stack = _Stack(0.4, SLIDE_H_IN - 0.6)
     _title(slide, "Methods and provenance", stack)
@@ -263,10 +310,13 @@ def _methods_slide(prs: object, provenance: Provenance, number: int) -> None:
     _column(slide, MARGIN_IN + col_w + gap, stack.cursor, col_w, stack.left,
             f"Mapping {provenance.mapping_name} v{provenance.mapping_version}: reason codes by category",
             body, 15)
-    _footer(slide, provenance, number)
+    _footer(slide, provenance, number, marking)
+    _notes(slide, f"Method: {provenance.model}. Interval: {provenance.interval_method}. Caveat: the "
+                  "classification of reason codes into forced and voluntary is a judgement; the mapping version "
+                  "named here is the one every number used.")
 
 
-def _cautions_slide(prs: object, provenance: Provenance, number: int) -> None:
+def _cautions_slide(prs: object, provenance: Provenance, number: int, marking: str) -> None:
     slide = prs.slides.add_slide(prs.slide_layouts[_LAYOUT_TITLE_ONLY])  # type: ignore[attr-defined]
     stack = _Stack(0.4, SLIDE_H_IN - 0.6)
     _title(slide, "Cautions", stack)
@@ -275,26 +325,31 @@ def _cautions_slide(prs: object, provenance: Provenance, number: int) -> None:
     for caution in CAUTIONS:
         fit = fit_text(f"\u2022 {caution}", width, share - 0.2, 22, min_size=14)
         _fill(_box(slide, MARGIN_IN, stack.take(fit.height_in, 0.2), width, fit.height_in), fit)
-    _footer(slide, provenance, number)
+    _footer(slide, provenance, number, marking)
+    _notes(slide, f"Method: {provenance.model}. Interval: {provenance.interval_method}. Caveat: "
+                  + " ".join(CAUTIONS))
 
 
-def build_deck(findings: Sequence[Finding], provenance: Provenance, *, title: str, subtitle: str) -> bytes:
+def build_deck(findings: Sequence[Finding], provenance: Provenance, *, title: str, subtitle: str,
+               byline: Byline | None = None) -> bytes:
     """A 16:9 deck: title slide, one slide per finding (chart + takeaway), methods, cautions.
 
-    Raises app.briefing.render.ExportUnavailable when charts cannot be rendered (no browser).
+    Raises app.briefing.render.ExportUnavailable when a picture chart cannot be rendered (no browser).
     """
+    byline = byline or Byline()
     prs = Presentation()
     prs.slide_width = Emu(Inches(SLIDE_W_IN))
     prs.slide_height = Emu(Inches(SLIDE_H_IN))
     prs.core_properties.title = title
-    prs.core_properties.author = "Helmshift"
+    prs.core_properties.author = byline.author or "Helmshift"
     prs.core_properties.subject = subtitle
+    prs.core_properties.keywords = byline.marking
     prs.core_properties.comments = provenance.short()[:255]
-    _title_slide(prs, title, subtitle, provenance)
+    _title_slide(prs, title, subtitle, provenance, byline)
     for i, finding in enumerate(findings, start=2):
-        _finding_slide(prs, finding, provenance, i)
-    _methods_slide(prs, provenance, len(findings) + 2)
-    _cautions_slide(prs, provenance, len(findings) + 3)
+        _finding_slide(prs, finding, provenance, i, byline.marking)
+    _methods_slide(prs, provenance, len(findings) + 2, byline.marking)
+    _cautions_slide(prs, provenance, len(findings) + 3, byline.marking)
     out = io.BytesIO()
     prs.save(out)
     return out.getvalue()

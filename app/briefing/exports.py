@@ -10,15 +10,17 @@ from typing import Literal, get_args
 import pandas as pd
 
 from app.analysis.inputs import AnalysisInput
-from app.analysis.provenance import Provenance
+from app.analysis.provenance import CAUTIONS, Provenance
 from app.analysis.replication import build_pack
 from app.analysis.runs import run_trend
 from app.briefing.charts import untitled
-from app.briefing.deck import Finding, build_deck
+from app.briefing.deck import Byline, Finding, build_deck
 from app.briefing.findings import CHART_NAMES, ChartFinding, build_finding, latest_bootstrap
 from app.briefing.render import figure_bytes
+from app.briefing.signature import Signature, resolve_signature
 from app.stats.headline import headline_sentence
-from app.store import Store
+from app.stats.trend import TrendError
+from app.store import Store, StoreError
 
 ExportFormat = Literal["png", "svg", "pdf", "pptx", "brief"]
 EXPORT_FORMATS: tuple[ExportFormat, ...] = get_args(ExportFormat)
@@ -37,14 +39,24 @@ def chart_file(store: Store, inp: AnalysisInput, chart: str, fmt: str, *, run_id
     return figure_bytes(finding.figure, fmt)  # type: ignore[arg-type]
 
 
+def default_charts(store: Store, inp: AnalysisInput, run_id: int | None = None) -> list[str]:
+    """The standard deck when the analyst ticked nothing: every finding that can be shown now."""
+    missing_run = run_id is None and latest_bootstrap(store, inp) is None
+    return [c for c in DEFAULT_DECK if not (c == "bootstrap" and missing_run)]
+
+
 def _findings(store: Store, inp: AnalysisInput, charts: Sequence[str], run_id: int | None) -> list[ChartFinding]:
+    """Every ticked finding, in order, or an error naming the one that cannot be shown (none is left out)."""
+    bad = [c for c in charts if c not in CHART_NAMES]
+    if bad:
+        raise ValueError(f"chart must be one of {', '.join(CHART_NAMES)}; got {', '.join(map(repr, bad))}.")
     out = []
-    for chart in charts:
-        if chart not in CHART_NAMES:
-            raise ValueError(f"chart must be one of {', '.join(CHART_NAMES)}; got {chart!r}.")
-        if chart == "bootstrap" and run_id is None and latest_bootstrap(store, inp) is None:
-            continue  # nothing to show yet; the methods slide says no resampling was used
-        out.append(build_finding(store, inp, chart, run_id=run_id))
+    for chart in dict.fromkeys(charts):
+        try:
+            out.append(build_finding(store, inp, chart, run_id=run_id if chart == "bootstrap" else None))
+        except (StoreError, ValueError, TrendError) as exc:
+            raise ValueError(f"The {chart} finding was ticked but cannot be shown: {exc} "
+                             "Untick it or fix the cause; the deck leaves no ticked finding out.") from exc
     return out
 
 
@@ -58,19 +70,57 @@ def _deck_provenance(findings: Sequence[ChartFinding], fallback: Provenance) -> 
     return base
 
 
-def deck_file(store: Store, inp: AnalysisInput, charts: Sequence[str] = DEFAULT_DECK, *,
-              run_id: int | None = None) -> bytes:
-    """A 16:9 deck: title, one slide per chosen finding, methods and cautions."""
-    findings = _findings(store, inp, charts, run_id)
+def speaker_notes(finding: ChartFinding, takeaway: str) -> str:
+    """The slide's notes: what it shows, the method, the interval and the caveat."""
+    prov = finding.provenance
+    lines = [f"Finding: {finding.title or finding.name}", f"Takeaway on the slide: {takeaway}"]
+    if takeaway != finding.takeaway:
+        lines.append(f"Computed takeaway: {finding.takeaway}")
+    lines += [f"Method: {prov.model}; mapping {prov.mapping_name} v{prov.mapping_version}, fiscal years "
+              f"{prov.window[0]}\u2013{prov.window[1]}.", f"Interval: {prov.interval_method}."]
+    if prov.resamples is not None:
+        lines.append(f"Resampling: B = {prov.resamples:,}, by {prov.unit}, seed {prov.seed}.")
+    lines.append(f"Caveat: {finding.caveat or CAUTIONS[0]}")
+    return "\n".join(lines)
+
+
+def signature_for(store: Store, inp: AnalysisInput, signature: Signature | None) -> Signature:
+    return signature or resolve_signature(store.briefing_settings(inp.roster.id), inp.roster.name)
+
+
+def deck_file(store: Store, inp: AnalysisInput, charts: Sequence[str] | None = None, *,
+              run_id: int | None = None, signature: Signature | None = None) -> bytes:
+    """A 16:9 deck: title, one slide per ticked finding (all of them, only them), methods and cautions."""
+    chosen = list(charts) if charts is not None else default_charts(store, inp, run_id)
+    findings = _findings(store, inp, chosen, run_id)
     if not findings:
         raise ValueError("Choose at least one finding for the deck.")
+    sign = signature_for(store, inp, signature)
     provenance = _deck_provenance(findings, findings[0].provenance)
-    slides = [Finding(title=f.title or f.name, takeaway=f.takeaway, figure=f.figure) for f in findings]
-    return build_deck(slides, provenance, title=f"Forced chief-executive departures: {inp.roster.name}",
-                      subtitle=f"Fiscal years {inp.window[0]}–{inp.window[1]} · mapping {inp.mapping_label}")
+    slides = []
+    for f in findings:
+        takeaway = sign.takeaway(f.name, f.takeaway)
+        slides.append(Finding(title=f.title or f.name, takeaway=takeaway, figure=f.figure, name=f.name,
+                              rows=f.rows, notes=speaker_notes(f, takeaway)))
+    return build_deck(slides, provenance, title=sign.title,
+                      subtitle=f"Fiscal years {inp.window[0]}\u2013{inp.window[1]} \u00b7 mapping {inp.mapping_label}",
+                      byline=Byline(author=sign.author, marking=sign.marking, date=sign.date))
 
 
-def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None) -> bytes:
+def data_sentence(inp: AnalysisInput, departures: int, forced: int) -> str:
+    """Rows used and rejected, and what the window counts, for the brief."""
+    r = inp.roster
+    lo, hi = inp.window
+    inside = inp.coverage[(inp.coverage["year"] >= lo) & (inp.coverage["year"] <= hi)]
+    excluded, unmapped = int(inside["excluded"].sum()), int(inside["unmapped"].sum())
+    return (f"Rows used and rejected: {r.accepted:,} of {r.rows_total:,} rows of {r.source_name} were accepted "
+            f"and {r.rejected:,} rejected" + (f" ({r.duplicates:,} duplicates)" if r.duplicates else "")
+            + f". In {lo}\u2013{hi}, {departures:,} departures are counted ({forced:,} forced); "
+            f"{excluded:,} with excluded codes and {unmapped:,} with unmapped codes are not counted.")
+
+
+def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None,
+               signature: Signature | None = None) -> bytes:
     """The one-page brief: headline, trend and bootstrap (or coverage) charts, odds ratios, method."""
     from app.briefing.brief import build_brief
 
@@ -106,19 +156,23 @@ def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None) -
     quoted = [outcome.run_id] + ([run.id] if run is not None and run.result is not None else [])
     provenance = replace(provenance, packs=tuple((i, build_pack(store, i).sha256) for i in quoted))
     # the headline is the trend chart's own title, so that chart goes in without it
+    sign = signature_for(store, inp, signature)
+    captions = [sign.takeaway("trend", trend.takeaway), sign.takeaway(second.name, second.takeaway)]
     return build_brief(headline=headline_sentence(fit), charts=[untitled(trend.figure), second.figure],
-                       table=pd.DataFrame(rows), method_text=method, provenance=provenance)
+                       table=pd.DataFrame(rows), method_text=method, provenance=provenance, signature=sign,
+                       captions=captions, data_text=data_sentence(inp, fit.departures, fit.forced))
 
 
 def export_to_file(store: Store, inp: AnalysisInput, *, fmt: str, out: Path, chart: str = "trend",
-                   run_id: int | None = None) -> Path:
+                   run_id: int | None = None, signature: Signature | None = None,
+                   charts: Sequence[str] | None = None) -> Path:
     """The command line's export: write the file and return its path."""
     if fmt not in EXPORT_FORMATS:
         raise ValueError(f"format must be one of {', '.join(EXPORT_FORMATS)}; got {fmt!r}.")
     if fmt == "pptx":
-        data = deck_file(store, inp, run_id=run_id)
+        data = deck_file(store, inp, charts, run_id=run_id, signature=signature)
     elif fmt == "brief":
-        data = brief_file(store, inp, run_id=run_id)
+        data = brief_file(store, inp, run_id=run_id, signature=signature)
     else:
         data = chart_file(store, inp, chart, fmt, run_id=run_id)
     out.parent.mkdir(parents=True, exist_ok=True)

@@ -7,7 +7,7 @@ or part of the one-page brief.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Literal, get_args
 
 import numpy as np
@@ -41,6 +41,10 @@ class ChartFinding:
     takeaway: str
     provenance: Provenance
     title: str = ""
+    #: what a reader must not conclude from the chart (the slide's speaker notes)
+    caveat: str = ""
+    #: the odds-ratio rows behind a forest chart (label, odds_ratio, low, high, group), for the deck's own chart
+    rows: pd.DataFrame | None = field(default=None, compare=False)
 
 
 def coverage_finding(inp: AnalysisInput) -> ChartFinding:
@@ -58,7 +62,9 @@ def coverage_finding(inp: AnalysisInput) -> ChartFinding:
     prov = provenance_for(inp, model="coverage count per fiscal year", interval_method="none")
     fig = coverage_figure(inp.coverage, inp.window, sorted({f.year for f in inp.flags}), title=title,
                           source=prov.short())
-    return ChartFinding("coverage", fig, takeaway, prov, title)
+    caveat = ("Only forced and voluntary departures are counted; excluded and unmapped codes are not. Years "
+              "outside the window are thinly covered, so their shares would rest on few departures.")
+    return ChartFinding("coverage", fig, takeaway, prov, title, caveat)
 
 
 def trend_finding_from_fit(inp: AnalysisInput, fit: TrendFit, model: str) -> ChartFinding:
@@ -72,7 +78,9 @@ def trend_finding_from_fit(inp: AnalysisInput, fit: TrendFit, model: str) -> Cha
               f"{interval[1]:.3f}), from {fit.departures:,} departures of which {fit.forced:,} were forced; "
               f"Pearson dispersion {fit.dispersion:.2f}." if fit.odds_ratio is not None and interval is not None
               else sentence)
-    return ChartFinding("trend", fig, detail, prov, sentence)
+    caveat = ("Observational data: a trend is not a cause. The fitted line is straight on the log-odds scale; "
+              "years with few departures have wide Wilson intervals.")
+    return ChartFinding("trend", fig, detail, prov, sentence, caveat)
 
 
 def trend_finding(store: Store, inp: AnalysisInput, model: str = "linear") -> ChartFinding:
@@ -125,7 +133,9 @@ def bootstrap_finding(store: Store, run_id: int, method: str = "bca") -> ChartFi
               f"(seed {run.params['seed']}); {failed:,} resample(s) could not be fitted"
               + (" and are reported, not redrawn." if failed else ".")
               + " The dashed line marks no change (odds ratio 1).")
-    return ChartFinding("bootstrap", fig, detail, prov, takeaway)
+    caveat = (f"{failed:,} resample(s) could not be fitted and are left out, not redrawn; with few firms or "
+              "few forced departures the interval is itself uncertain.")
+    return ChartFinding("bootstrap", fig, detail, prov, takeaway, caveat)
 
 
 def _pair(p: tuple[float, float] | None) -> tuple[float, float]:
@@ -165,8 +175,12 @@ def sectors_finding_from(inp: AnalysisInput, result: SectorTrends) -> ChartFindi
     verdict = sector_verdict(result)
     prov = provenance_for(inp, model="sector", by_sector=True, interval_method="profile likelihood, 95%")
     title = verdict.split(" (")[0]
-    fig = forest_figure(pd.DataFrame(rows), title=title, source=prov.short())
-    return ChartFinding("sectors", fig, verdict, prov, title)
+    table = pd.DataFrame(rows)
+    fig = forest_figure(table, title=title, source=prov.short())
+    caveat = (f"Each row's label gives forced/all departures counted in that sector, e.g. {rows[-1]['label']}. "
+              "Sectors too small to fit alone are shown as not estimable; with many sectors some "
+              "differences arise by chance.") if len(rows) > 1 else "Too few sectors to compare."
+    return ChartFinding("sectors", fig, verdict, prov, title, caveat, table)
 
 
 def sectors_finding(store: Store, inp: AnalysisInput, min_departures: int = 20) -> ChartFinding:
@@ -178,17 +192,20 @@ def robustness_finding_from(inp: AnalysisInput, result: Robustness) -> ChartFind
 
     prov = provenance_for(inp, interval_method="profile likelihood, 95%")
     title = result.sentence.split(": ")[0].split(", but")[0]
-    fig = forest_figure(robustness_rows(result), title=title, source=prov.short())
-    return ChartFinding("robustness", fig, result.sentence, prov, title)
+    table = robustness_rows(result)
+    fig = forest_figure(table, title=title, source=prov.short())
+    caveat = ("Each row is the same trend under another reading of the reason codes. A reading that leaves "
+              "counted departures unmapped is marked and does not decide the verdict.")
+    return ChartFinding("robustness", fig, result.sentence, prov, title, caveat, table)
 
 
 def robustness_finding(store: Store, inp: AnalysisInput, extra: list[str] | None = None,
                        vary: list[str] | None = None) -> ChartFinding:
     from app.analysis.robustness import check_robustness
 
-    if extra is None:
-        extra = [f"{n}:{v}" for n, v in store.list_mappings() if not (inp.mapping and n == inp.mapping.name)]
-    return robustness_finding_from(inp, check_robustness(store, inp, extra_mappings=extra, vary=vary or []))
+    # by default, only the saved mappings that give every counted code a category (the rest are left out)
+    return robustness_finding_from(inp, check_robustness(store, inp, extra_mappings=extra or "covering",
+                                                         vary=vary or []))
 
 
 def build_finding(store: Store, inp: AnalysisInput, chart: str, *, run_id: int | None = None,

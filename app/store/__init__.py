@@ -4,19 +4,21 @@ SQLAlchemy 2.0 Core over SQLite by default (any SQLAlchemy URL works). Methods r
 pandas DataFrames, never live ORM objects. The gateway is split by aggregate: ``rosters`` (rosters and
 their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), ``universe`` (firm-years
 per roster), ``cells`` (the counts pages read instead of the records), ``accounts`` and ``audit`` (team mode),
-on top of ``engine`` (connections and Alembic migrations, :mod:`app.store.migrations`) and ``tables`` (the
-schema).
+``briefing`` (what exports are signed with), on top of ``engine`` (connections and Alembic migrations,
+:mod:`app.store.migrations`) and ``tables`` (the schema).
 """
 
 from __future__ import annotations
 
 from app.store.accounts import Account, AccountQueries
 from app.store.audit import AuditEvent, AuditQueries
+from app.store.briefing import BriefingQueries
 from app.store.cells import CellQueries
 from app.store.departure_query import DepartureFilter, DepartureQueries
 from app.store.mappings import MappingQueries
 from app.store.records import (
     MAX_ID,
+    BriefingSettings,
     MappingVersion,
     RejectedRow,
     Roster,
@@ -32,12 +34,12 @@ from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metada
 from app.store.universe import UniverseQueries
 
 __all__ = [
-    "Account", "AuditEvent", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION", "MAX_ID", "MappingVersion",
-    "RejectedRow", "Roster", "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata",
+    "Account", "AuditEvent", "BriefingSettings", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION", "MAX_ID",
+    "MappingVersion", "RejectedRow", "Roster", "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata",
     "now_iso",
 ]
 
 
 class Store(RosterQueries, DepartureQueries, MappingQueries, RunQueries, UniverseQueries, CellQueries,
-            AccountQueries, AuditQueries):
+            AccountQueries, AuditQueries, BriefingQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""

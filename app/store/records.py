@@ -108,3 +108,16 @@ class Universe:
     def approximate(self) -> bool:
         """Derived from the roster's own years rather than from an index membership file."""
         return self.source == "derived"
+
+
+@dataclass(frozen=True)
+class BriefingSettings:
+    """What a roster's brief and deck are signed with; empty strings mean "use the default"."""
+
+    roster_id: int
+    title: str = ""
+    author: str = ""
+    marking: str = ""
+    date: str = ""
+    takeaways: dict[str, str] | None = None
+    updated_at: str | None = None

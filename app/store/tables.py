@@ -24,7 +24,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0006"
+HEAD_REVISION = "0007"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -114,6 +114,18 @@ roster_settings = Table(
     Column("mapping_name", String),
     Column("window_from", Integer),
     Column("window_to", Integer),
+)
+
+#: what the analyst signs a roster's brief and deck with (remembered per roster; blank fields: the defaults)
+briefing_settings = Table(
+    "briefing_settings", metadata,
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), primary_key=True),
+    Column("title", String, nullable=False),
+    Column("author", String, nullable=False),
+    Column("marking", String, nullable=False),
+    Column("date", String, nullable=False),  # ISO date, or "" for the day of the export
+    Column("takeaways", Text, nullable=False),  # JSON object: finding name -> the analyst's sentence
+    Column("updated_at", String, nullable=False),
 )
 
 runs = Table(

@@ -4,21 +4,31 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from typing import Any
+from urllib.parse import parse_qsl, urlencode
 
 from fastapi import APIRouter, Request
-from fastapi.responses import HTMLResponse, JSONResponse, Response
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
 from app.analysis.inputs import AnalysisInput, load_input
 from app.analysis.runs import run_trend
-from app.briefing.exports import DEFAULT_DECK, MEDIA_TYPES, brief_file, chart_file, deck_file
+from app.briefing.exports import MEDIA_TYPES, brief_file, chart_file, deck_file, default_charts
 from app.briefing.findings import CHART_NAMES, build_finding, latest_bootstrap
 from app.briefing.render import ExportError, export_available
+from app.briefing.signature import (
+    LIMITS,
+    SignatureError,
+    clean_date,
+    clean_takeaways,
+    clean_text,
+    default_title,
+)
 from app.stats.trend import TrendError
-from app.store import Roster, Run, Store, StoreError
+from app.store import BriefingSettings, Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
+from app.web.forms import read_form
 from app.web.rendering import as_json, render
-from app.web.route_docs import WINDOW_QUERY, api_errors, download, page_errors, query
+from app.web.route_docs import WINDOW_QUERY, api_errors, download, form_body, page_errors, query, redirect
 from app.web.schemas import BootstrapRunOut, define, list_of
 
 router = APIRouter()
@@ -53,6 +63,10 @@ class BriefingPage:
     error: str | None = None
     warnings: list[str] = field(default_factory=list)
     chart_labels: dict[str, str] = field(default_factory=lambda: dict(CHART_LABELS))
+    #: what the brief and deck are signed with (saved per roster; blank fields use the defaults)
+    settings: BriefingSettings | None = None
+    default_title: str = ""
+    limits: dict[str, int] = field(default_factory=lambda: dict(LIMITS))
 
 
 BriefingBody = define(BriefingPage, "BriefingBody", fields={"runs": list_of(BootstrapRunOut)})
@@ -65,14 +79,19 @@ def _roster(store: Store, roster_id: int) -> Roster:
         raise NotFound(str(exc)) from exc
 
 
-def briefing_data(store: Store, roster_id: int, *, chosen: list[str], run_id: int | None) -> BriefingPage:
+def briefing_data(store: Store, roster_id: int, *, chosen: list[str] | None, run_id: int | None) -> BriefingPage:
+    """``chosen`` None: nothing ticked yet, so the standard deck of every finding that can be shown now."""
     roster = _roster(store, roster_id)
     ok, message = export_available()
     runs = [r for r in store.list_runs(roster.id, "bootstrap") if r.status == "done"]
+    settings = store.briefing_settings(roster.id)
     try:
         inp = load_input(store, roster.id)
     except StoreError as exc:
-        return BriefingPage(roster, "no mapping", None, chosen, run_id, None, runs, [], ok, message, str(exc))
+        return BriefingPage(roster, "no mapping", None, chosen or [], run_id, None, runs, [], ok, message, str(exc),
+                            settings=settings, default_title=default_title(roster.name))
+    if chosen is None:
+        chosen = default_charts(store, inp, run_id)
     if run_id is None:
         latest = latest_bootstrap(store, inp)
         run_id = latest.id if latest else None
@@ -86,23 +105,24 @@ def briefing_data(store: Store, roster_id: int, *, chosen: list[str], run_id: in
     except TrendError:
         fit_run_id = None
     return BriefingPage(roster, inp.mapping_label, inp.window, chosen, run_id, fit_run_id, runs, items, ok, message,
-                        warnings=inp.warnings())
+                        warnings=inp.warnings(), settings=settings, default_title=default_title(roster.name))
 
 
 def _preview(store: Store, inp: AnalysisInput, name: str, run_id: int | None) -> PreviewItem:
     try:
         finding = build_finding(store, inp, name, run_id=run_id if name == "bootstrap" else None)
-    except (StoreError, ValueError) as exc:
+    except (StoreError, ValueError, TrendError) as exc:
         return PreviewItem(name, CHART_LABELS[name], "", error=str(exc))
     return PreviewItem(name, CHART_LABELS[name], finding.takeaway, figure=figure_spec(finding.figure))
 
 
-def _chosen(request: Request) -> list[str]:
-    picked = [c for c in request.query_params.getlist("chart") if c]
+def _chosen(request: Request) -> list[str] | None:
+    """The ticked findings in order (each once), or None when nothing was ticked."""
+    picked = list(dict.fromkeys(c for c in request.query_params.getlist("chart") if c))
     bad = [c for c in picked if c not in CHART_NAMES]
     if bad:
         raise BadRequest(f"chart must be one of {', '.join(CHART_NAMES)}; got {', '.join(bad)}.")
-    return picked or list(DEFAULT_DECK)
+    return picked or None
 
 
 def _run_arg(request: Request) -> int | None:
@@ -195,3 +215,41 @@ def brief_export(request: Request, roster_id: int) -> Response:
     inp = _input(store, roster_id, request)
     data = _export(lambda: brief_file(store, inp, run_id=_run_arg(request)))
     return _download(data, "brief", f"helmshift-brief-{roster_id}.pdf")
+
+
+@router.post("/rosters/{roster_id}/briefing/settings", name="briefing_settings_save", status_code=303,
+             response_class=RedirectResponse, responses=redirect("the Briefing page", page_errors(400, 404)),
+             openapi_extra=form_body({
+                 "title": {"type": "string", "maxLength": LIMITS["title"],
+                           "description": "title of the brief and deck (empty: the default title)"},
+                 "author": {"type": "string", "maxLength": LIMITS["author"]},
+                 "marking": {"type": "string", "maxLength": LIMITS["marking"],
+                             "description": "confidentiality marking, e.g. CONFIDENTIAL: on every page and slide"},
+                 "date": {"type": "string", "description": "YYYY-MM-DD (empty: the day of each export)"},
+                 "back": {"type": "string", "description": "the Briefing page's query to return to"},
+             }, pattern_properties={"^takeaway-[a-z]+$": {
+                 "type": "string", "maxLength": LIMITS["takeaway"],
+                 "description": "the takeaway sentence of one finding (empty: the computed one)"}}))
+async def briefing_settings_save(request: Request, roster_id: int) -> RedirectResponse:
+    """Save the title, author, date, marking and takeaways the roster's brief and deck carry."""
+    store = app_store(request)
+    roster = _roster(store, roster_id)
+    form = await read_form(request)
+    try:
+        takeaways = clean_takeaways({k.removeprefix("takeaway-"): v for k, v in form.items()
+                                     if k.startswith("takeaway-")}, tuple(CHART_NAMES))
+        # takeaways of findings not on the form this time are kept
+        kept = {k: v for k, v in (store.briefing_settings(roster.id).takeaways or {}).items()
+                if f"takeaway-{k}" not in form}
+        store.save_briefing_settings(
+            roster.id, title=clean_text(form.get("title"), "title", LIMITS["title"]),
+            author=clean_text(form.get("author"), "author", LIMITS["author"]),
+            marking=clean_text(form.get("marking"), "marking", LIMITS["marking"]),
+            date=clean_date(form.get("date")), takeaways=kept | takeaways)
+    except (SignatureError, StoreError) as exc:
+        raise BadRequest(f"The briefing settings were not saved: {exc}") from exc
+    # back to the same ticks and run: rebuilt from known values only, never followed as an address
+    back = parse_qsl(str(form.get("back") or ""))
+    params = [(k, v) for k, v in back if (k == "chart" and v in CHART_NAMES) or (k == "run" and v.isdigit())]
+    url = request.url_for("briefing_page", roster_id=roster.id)
+    return RedirectResponse(f"{url}?{urlencode([*params, ('saved', '1')])}", status_code=303)

@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Literal
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
 from app.analysis.cellstore import roster_counts
 from app.analysis.inputs import load_input
-from app.analysis.robustness import Robustness, check_robustness
+from app.analysis.robustness import Robustness, check_robustness, offered_mappings
 from app.analysis.runs import run_sectors
 from app.briefing.findings import robustness_finding_from, sectors_finding_from
 from app.stats.sectors import SectorTrends
@@ -96,14 +97,15 @@ def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: lis
     codes = sorted(set(roster_counts(store, roster)["reason"].astype(str)))
     try:
         inp = load_input(store, roster.id)
+        chosen: list[str] | Literal["covering"] = extra or "covering"  # default: mappings covering the codes
         if not extra:
-            extra = [f"{n}:{v}" for n, v in names if not (inp.mapping and n == inp.mapping.name)]
+            extra = offered_mappings(store, inp)[0]
         # the variants read stored bootstrap runs: their state is part of the key
         runs = tuple((r.id, r.finished_at, r.progress_done) for r in store.list_runs(roster.id, "bootstrap")
                      if r.status == "done")
-        key = (*inp.key, tuple(extra), tuple(vary), runs)
+        key = (*inp.key, tuple(extra), chosen == "covering", tuple(vary), runs)
         result = page_memo(store, ("robustness", *key),
-                           lambda: check_robustness(store, inp, extra_mappings=extra, vary=vary))
+                           lambda: check_robustness(store, inp, extra_mappings=chosen, vary=vary))
     except (StoreError, ValueError) as exc:
         return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc))
     if all(v.odds_ratio is None for v in result.variants):  # nothing to draw: the table says why
