@@ -253,7 +253,6 @@ def cmd_coverage(args: argparse.Namespace) -> int:
 
 def cmd_fit(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
-    from app.analysis.runs import fit_summary
 
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
@@ -262,16 +261,25 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
         if args.by or args.model != "linear" or args.compare:
             raise CommandError("--measure rate fits the straight Poisson trend only; drop --by, --model and --compare.")
-        payload = rate_summary(store, inp)
-        _emit(args, payload, lambda p: f"{p['sentence']}\n{p['caution']}")
+        _emit(args, rate_summary(store, inp), lambda p: f"{p['sentence']}\n{p['caution']}")
         return 0
-    periods = None
-    if args.compare:
-        from app.stats.periods import parse_periods
+    payload: dict[str, Any] | None = None
+    if not args.compare and args.by != "sector":
+        # a fit already recorded for these counts is printed again without importing the model code
+        # (scipy.stats and statsmodels are most of a cold start: issue 13)
+        from app.analysis.stored_fits import stored_summary
 
-        periods = parse_periods(args.compare)
-    payload = fit_summary(store, inp, model=args.model, by_sector=args.by == "sector", spline_df=args.spline_df,
-                          quasi=args.quasi, periods=periods)
+        payload = stored_summary(store, inp, model=args.model, spline_df=args.spline_df, quasi=args.quasi)
+    if payload is None:
+        from app.analysis.runs import fit_summary
+
+        periods = None
+        if args.compare:
+            from app.stats.periods import parse_periods
+
+            periods = parse_periods(args.compare)
+        payload = fit_summary(store, inp, model=args.model, by_sector=args.by == "sector",
+                              spline_df=args.spline_df, quasi=args.quasi, periods=periods, reuse=False)
     _emit(args, payload, lambda p: "\n".join([p["headline"], *([p["periods"]["sentence"]] if "periods" in p else [])]))
     return 0
 

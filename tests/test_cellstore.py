@@ -180,3 +180,62 @@ def test_deleting_a_roster_deletes_its_cells(demo_store: Store) -> None:
         left: Any = [conn.exec_driver_sql(f"SELECT COUNT(*) FROM {t}").scalar_one()
                      for t in ("roster_cells", "roster_firm_cells")]
     assert left == [0, 0]
+
+
+# -- rates over a universe, from the firm cells (issue 13: no page reads the departures) ------------------------
+@pytest.fixture
+def partial_universe(demo_store: Store) -> int:
+    """A universe that misses every third firm of the roster, misses two years, and adds years without rows."""
+    from app.intake.universe import import_universe
+
+    records = demo_store.departures(ROSTER)
+    firms = sorted(records["firm_id"].astype(str).unique())
+    first, last = int(records["year"].min()), int(records["year"].max())
+    lines = ["firm,year"] + [f"{firm},{year}" for i, firm in enumerate(firms) if i % 3
+                             for year in range(first - 1, last + 3) if year not in (first + 4, first + 5)]
+    report = import_universe(demo_store, ROSTER, ("\n".join(lines) + "\n").encode(), "partial.csv")
+    return report.universe.id
+
+
+def test_rates_from_cells_equal_joining_every_record(demo_store: Store, partial_universe: int) -> None:
+    """Reference: app.stats.rates.count_rates and universe_flags over every record and every firm-year (the
+    path the pages took before), and fit_trend over the cells of the records inside the universe."""
+    from app.analysis.rates import run_rates, universe_flags, universe_overview
+    from app.stats.rates import count_rates
+
+    inp = load_input(demo_store, ROSTER)
+    firm_years = demo_store.universe_firm_years(partial_universe)
+    records = inp.records
+    analysis = run_rates(demo_store, inp, record=False)
+    expected = count_rates(records, firm_years, inp.window)
+    pd.testing.assert_frame_equal(analysis.table.years, expected.years)
+    assert analysis.table.outside == expected.outside > 0
+    assert analysis.table.no_universe_years == expected.no_universe_years
+    window_years = firm_years.loc[firm_years["year"].between(*inp.window)]
+    flags = universe_flags(inp.in_window(), window_years)
+    assert analysis.flags == flags and flags.missing_count > 0
+    keys = pd.MultiIndex.from_frame(firm_years[["firm_id", "year"]].astype({"firm_id": str, "year": "int64"}))
+    inside = records.loc[pd.MultiIndex.from_arrays([records["firm_id"].astype(str),
+                                                    records["year"].astype("int64")]).isin(keys)]
+    share = fit_trend(build_cells(inside, inp.window))
+    assert analysis.share_odds_ratio == share.odds_ratio
+    # the Universe page, over every year
+    universe = demo_store.get_universe(partial_universe)
+    years, overview_flags = universe_overview(demo_store, inp, universe)
+    assert overview_flags == universe_flags(records, firm_years) and overview_flags.empty_years
+    per_year = firm_years.groupby("year").size()
+    rows = records.groupby("year").size().reindex(per_year.index, fill_value=0)
+    assert years == [{"year": int(y), "firms": int(n), "roster_rows": int(k)}
+                     for y, n, k in zip(per_year.index, per_year, rows, strict=True)]
+
+
+def test_no_page_reads_the_records_with_a_universe(demo_store: Store, partial_universe: int) -> None:
+    client = make_client(demo_store)
+    seen = selects(demo_store)
+    for page in (*PAGES, "/universe"):
+        assert client.get(f"/rosters/{ROSTER}{page}").status_code == 200, page
+        assert client.get(f"/api/rosters/{ROSTER}{page}").status_code in (200, 404), page
+    assert reads(seen, "departures") == 0
+    assert reads(seen, "roster_firm_cells") >= 1  # the rates were counted from the firm cells
+    # the firm-years are counted in SQL, never read as a list
+    assert not [s for s in seen if re.search(r"SELECT universe_firm_years\.firm_id, universe_firm_years\.year", s)]

@@ -59,3 +59,49 @@ def test_the_check_sees_a_web_import(tmp_path: Path) -> None:
                           timeout=120, check=False)
     assert done.returncode == 0, done.stderr
     assert "fastapi" in json.loads(listing.read_text(encoding="utf-8"))
+
+
+def test_fit_opens_the_store_without_alembic_or_argon2(shared_demo_db: Path, tmp_path: Path) -> None:
+    """A current store opens with one query: no Alembic (migrations only), no argon2 (sign-ins only)."""
+    db = copy_database(shared_demo_db, tmp_path / "cli.db")
+    done, modules = _loaded(["fit", "--roster", "Demo index (invented)", "--db", str(db), "--json"], tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert "app.store.accounts" in modules  # the listing sees the store's modules
+    heavy = sorted(m for m in modules if m.split(".")[0] in ("alembic", "argon2"))
+    assert heavy == [], f"helmshift fit --json imported {heavy[:5]}"
+
+
+def test_repeated_fit_prints_the_recorded_fit_without_the_model_code(shared_demo_db: Path, tmp_path: Path) -> None:
+    """The second identical fit prints the first one's run (equal JSON) and loads neither scipy.stats nor
+    statsmodels, which the first one needs (app.analysis.stored_fits; issue 13: CLI start-up)."""
+    db = copy_database(shared_demo_db, tmp_path / "cli.db")
+    argv = ["fit", "--roster", "Demo index (invented)", "--db", str(db), "--json", "--model", "spline"]
+    first, first_modules = _loaded(argv, tmp_path)
+    second, second_modules = _loaded(argv, tmp_path)
+    assert first.returncode == 0 and second.returncode == 0, first.stderr + second.stderr
+    assert {"statsmodels", "scipy.stats"} <= first_modules  # the first fit really fitted
+    model_code = sorted(m for m in second_modules if m.split(".")[0] == "statsmodels" or m.startswith("scipy.stats"))
+    assert model_code == [], f"the repeated fit imported {model_code[:5]}"
+    assert json.loads(second.stdout) == json.loads(first.stdout)  # same run id, same numbers, same sentences
+
+
+def test_a_changed_statistics_engine_fits_again(shared_demo_db: Path, tmp_path: Path) -> None:
+    """A recorded fit from other statistics code (another engine tag) is not printed again: it is refitted."""
+    from app.analysis.inputs import load_input
+    from app.analysis.runs import fit_summary, run_trend
+    from app.analysis.stored_fits import stored_summary
+    from app.store import Store
+
+    db = copy_database(shared_demo_db, tmp_path / "cli.db")
+    store = Store(f"sqlite:///{db}")
+    inp = load_input(store, "Demo index (invented)")
+    run_id = run_trend(store, inp).run_id
+    stored = stored_summary(store, inp)
+    assert stored is not None and stored["run"] == run_id
+    assert stored == fit_summary(store, inp, reuse=False)
+    run = store.get_run(run_id)
+    assert run.result is not None
+    store.finish_run(run_id, {**run.result, "engine": "another engine"}, seconds=0.0)
+    assert stored_summary(store, inp) is None
+    assert run_trend(store, inp).run_id != run_id  # recorded afresh under this engine
+    store.dispose()

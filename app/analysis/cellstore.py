@@ -23,7 +23,6 @@ from typing import Any, TypeVar
 
 import numpy as np
 import pandas as pd
-from scipy import sparse
 
 from app.stats.cells import Cells, assign_categories
 from app.stats.coverage import COUNT_COLUMNS
@@ -169,9 +168,37 @@ def cells_from_counts(counts: pd.DataFrame, window: tuple[int, int] | None = Non
     which every bootstrap refuses (its rows must add up to the group counts), so it serves fits and
     fingerprints only.
     """
+    from scipy import sparse  # lazy: a fit or a fingerprint needs no sparse matrix (start-up, issue 13)
+
     if categories is not None:
         counts = counts.assign(category=assign_categories(counts["reason"], categories))
     window = counted_window(counts, window)
+    frame, keyed, forced, groups = _grouped(counts, window, by_sector)
+    n = frame["departures"].to_numpy(dtype=np.int64)
+    n_groups = len(groups)
+    if "firm_id" not in frame:
+        return Cells(groups=groups, firm_ids=np.array([], dtype=object),
+                     firm_matrix=sparse.csr_matrix((0, 2 * n_groups), dtype=np.int64),
+                     window=window, by_sector=by_sector)
+    group_index = pd.MultiIndex.from_arrays([groups["sector"], groups["year"]])
+    gpos = group_index.get_indexer(pd.MultiIndex.from_arrays([keyed["sector"], keyed["year"]]))
+    firm_codes, firm_ids = pd.factorize(frame["firm_id"].astype(str).to_numpy(), sort=True)
+    # a cell holds forced or voluntary departures only (one category per code), never both
+    col = np.where(forced, gpos, gpos + n_groups)
+    matrix = sparse.csr_matrix((n, (firm_codes, col)), shape=(len(firm_ids), 2 * n_groups))
+    matrix.sum_duplicates()
+    return Cells(groups=groups, firm_ids=np.asarray(firm_ids), firm_matrix=matrix, window=window,
+                 by_sector=by_sector)
+
+
+def groups_from_counts(counts: pd.DataFrame, window: tuple[int, int] | None = None, *,
+                       by_sector: bool = False) -> pd.DataFrame:
+    """The ``groups`` of ``cells_from_counts`` alone (no firm matrix): enough for a fingerprint."""
+    return _grouped(counts, counted_window(counts, window), by_sector)[3]
+
+
+def _grouped(counts: pd.DataFrame, window: tuple[int, int], by_sector: bool
+             ) -> tuple[pd.DataFrame, pd.DataFrame, np.ndarray, pd.DataFrame]:
     year = counts["year"].to_numpy(dtype=np.int64)
     keep = (counts["category"].isin(["forced", "voluntary"]).to_numpy()
             & (year >= window[0]) & (year <= window[1]))
@@ -189,17 +216,4 @@ def cells_from_counts(counts: pd.DataFrame, window: tuple[int, int] | None = Non
         "forced": grouped["forced"].to_numpy(dtype=np.int64),
         "voluntary": (grouped["total"] - grouped["forced"]).to_numpy(dtype=np.int64),
     })
-    n_groups = len(groups)
-    if "firm_id" not in frame:
-        return Cells(groups=groups, firm_ids=np.array([], dtype=object),
-                     firm_matrix=sparse.csr_matrix((0, 2 * n_groups), dtype=np.int64),
-                     window=window, by_sector=by_sector)
-    group_index = pd.MultiIndex.from_arrays([groups["sector"], groups["year"]])
-    gpos = group_index.get_indexer(pd.MultiIndex.from_arrays([keyed["sector"], keyed["year"]]))
-    firm_codes, firm_ids = pd.factorize(frame["firm_id"].astype(str).to_numpy(), sort=True)
-    # a cell holds forced or voluntary departures only (one category per code), never both
-    col = np.where(forced, gpos, gpos + n_groups)
-    matrix = sparse.csr_matrix((n, (firm_codes, col)), shape=(len(firm_ids), 2 * n_groups))
-    matrix.sum_duplicates()
-    return Cells(groups=groups, firm_ids=np.asarray(firm_ids), firm_matrix=matrix, window=window,
-                 by_sector=by_sector)
+    return frame, keyed, forced, groups

@@ -13,9 +13,10 @@ from typing import Any
 
 import pandas as pd
 
+from app.analysis.cellstore import cells_from_counts, memoised
 from app.analysis.inputs import AnalysisInput
 from app.analysis.runs import _record_run
-from app.stats.cells import build_cells
+from app.stats.cells import assign_categories
 from app.stats.rate_trend import (
     RateError,
     RateTrend,
@@ -23,14 +24,13 @@ from app.stats.rate_trend import (
     fit_rate_trend,
     rate_trend_to_dict,
 )
-from app.stats.rates import RateTable, count_rates
+from app.stats.rates import RateTable, rate_table
 from app.stats.trend import TrendError, fit_trend
 from app.stats.trend_report import json_interval, json_number
 from app.store import Store, StoreError, Universe
 
 __all__ = ["SHARE_VS_RATE", "RateAnalysis", "RatesSection", "UniverseFlags", "rate_summary", "rates_section",
-           "run_rates", "universe_flags",
-           "universe_or_error"]
+           "run_rates", "universe_flags", "universe_overview", "universe_or_error"]
 
 #: shown wherever a rate appears (pages, command output)
 SHARE_VS_RATE = ("Share vs rate: the forced share (forced / counted departures) can rise while the forced rate "
@@ -114,10 +114,51 @@ class RateAnalysis:
         return out
 
 
-def _inside_universe(records: pd.DataFrame, firm_years: pd.DataFrame) -> pd.DataFrame:
-    keys = pd.MultiIndex.from_frame(firm_years[["firm_id", "year"]].astype({"firm_id": str, "year": "int64"}))
-    mine = pd.MultiIndex.from_arrays([records["firm_id"].astype(str), records["year"].astype("int64")])
-    return records.loc[mine.isin(keys)]
+@dataclass(frozen=True)
+class _UniverseCounts:
+    """A roster's counts against its universe, read in SQL from the firm cells (no departure is read)."""
+
+    counts: pd.DataFrame  # year, reason, inside, departures, category
+    exposure: pd.Series  # firm-years per year (index year)
+    outside_firms: pd.DataFrame  # firm_id, reason of firms with no firm-year in the universe (inside the window)
+
+
+def _universe_counts(store: Store, inp: AnalysisInput, universe: Universe, window: tuple[int, int] | None
+                     ) -> _UniverseCounts:
+    def compute() -> _UniverseCounts:
+        categories = inp.mapping.categories if inp.mapping else {}
+        counts = store.universe_cell_counts(inp.roster.id, universe.id)
+        counts = counts.assign(category=assign_categories(counts["reason"], categories))
+        outside = store.firms_outside_universe(inp.roster.id, universe.id, window)
+        outside = outside.assign(category=assign_categories(outside["reason"], categories))
+        return _UniverseCounts(counts, store.universe_exposure(universe.id), outside)
+    # a universe id names one stored set of firm-years (never changed, never reused)
+    return memoised(store, ("universe_counts", *inp.key, universe.id, window), compute)
+
+
+def _flags(inp: AnalysisInput, found: _UniverseCounts, window: tuple[int, int] | None) -> UniverseFlags:
+    """``universe_flags`` from counts: the same missing firms and empty years as comparing every record."""
+    counted = found.outside_firms.loc[found.outside_firms["category"].isin(["forced", "voluntary"]), "firm_id"]
+    missing = sorted(set(counted.astype(str)))
+    years = inp.counts.loc[inp.counts["departures"] > 0, "year"].astype(int)
+    universe_years = found.exposure.index.to_numpy()
+    if window is not None:
+        years = years[years.between(*window)]
+        universe_years = universe_years[(universe_years >= window[0]) & (universe_years <= window[1])]
+    empty = sorted(set(int(y) for y in universe_years) - set(years.tolist()))
+    return UniverseFlags(tuple(missing[:20]), len(missing), tuple(empty))
+
+
+def _rate_table(found: _UniverseCounts, window: tuple[int, int]) -> RateTable:
+    """``count_rates`` over the universe from counts: the same table as joining every record."""
+    c = found.counts
+    counted = c.loc[c["category"].isin(["forced", "voluntary"]) & c["year"].between(*window)]
+    inside = counted.loc[counted["inside"]]
+    counts = (inside.groupby(["year", "category"])["departures"].sum().unstack(fill_value=0)
+              .reindex(columns=["forced", "voluntary"], fill_value=0))
+    exposure = found.exposure.loc[(found.exposure.index >= window[0]) & (found.exposure.index <= window[1])]
+    return rate_table(counts, exposure, window, outside=int(counted.loc[~counted["inside"], "departures"].sum()),
+                      departure_years=counted.loc[counted["departures"] > 0, "year"].unique().tolist())
 
 
 def run_rates(store: Store, inp: AnalysisInput, *, record: bool = True) -> RateAnalysis:
@@ -127,9 +168,9 @@ def run_rates(store: Store, inp: AnalysisInput, *, record: bool = True) -> RateA
     """
     started = time.perf_counter()
     universe = universe_or_error(store, inp.roster.id, inp.roster.name)
-    firm_years = store.universe_firm_years(universe.id)
-    table = count_rates(inp.records, firm_years, inp.window)
-    flags = universe_flags(inp.in_window(), firm_years.loc[firm_years["year"].between(*inp.window)])
+    found = _universe_counts(store, inp, universe, inp.window)
+    table = _rate_table(found, inp.window)
+    flags = _flags(inp, found, inp.window)
     messages = flags.messages()
     if universe.approximate:
         messages.insert(0, APPROXIMATE)
@@ -146,7 +187,9 @@ def run_rates(store: Store, inp: AnalysisInput, *, record: bool = True) -> RateA
     share_or: float | None = None
     share_interval: tuple[float, float] | None = None
     try:
-        share = fit_trend(build_cells(_inside_universe(inp.records, firm_years), inp.window))
+        inside = found.counts.loc[found.counts["inside"]]
+        share = memoised(store, ("rates_share", *inp.key, universe.id),
+                         lambda: fit_trend(cells_from_counts(inside, inp.window)))
         share_or = share.odds_ratio
         bounds = share.quasi.conf_int["profile"] if share.quasi is not None else share.conf_int["profile"]
         share_interval = bounds
@@ -227,9 +270,9 @@ def rates_section(store: Store, inp: AnalysisInput, *, fit: bool) -> RatesSectio
             universe.id, _label(universe), universe.approximate, a.table.firm_years, a.years(),
             rate_trend_to_dict(a.forced) if a.forced else None,
             rate_trend_to_dict(a.voluntary) if a.voluntary else None, a.sentence, a.error, list(a.messages))
-    firm_years = store.universe_firm_years(universe.id)
-    table = count_rates(inp.records, firm_years, inp.window)
-    flags = universe_flags(inp.in_window(), firm_years.loc[firm_years["year"].between(*inp.window)])
+    found = _universe_counts(store, inp, universe, inp.window)
+    table = _rate_table(found, inp.window)
+    flags = _flags(inp, found, inp.window)
     view = RateAnalysis(universe, table, None, None, None, None, None, None, flags, (), None)
     messages = ([APPROXIMATE] if universe.approximate else []) + flags.messages()
     if table.outside:
@@ -237,3 +280,15 @@ def rates_section(store: Store, inp: AnalysisInput, *, fit: bool) -> RatesSectio
                         "firm-years and are left out of the rates.")
     return RatesSection(universe.id, _label(universe), universe.approximate, table.firm_years, view.years(),
                         None, None, None, None, messages)
+
+
+def universe_overview(store: Store, inp: AnalysisInput, universe: Universe
+                      ) -> tuple[list[dict[str, int]], UniverseFlags]:
+    """The Universe page's table (firms and roster rows per universe year) and flags over every year, from
+    counts: the same values as comparing every record with every firm-year."""
+    found = _universe_counts(store, inp, universe, None)
+    rows = inp.counts.groupby("year")["departures"].sum().reindex(found.exposure.index, fill_value=0)
+    years = [{"year": int(y), "firms": int(n), "roster_rows": int(k)}
+             for y, n, k in zip(found.exposure.index.to_numpy(), found.exposure.to_numpy(), rows.to_numpy(),
+                                strict=True)]
+    return years, _flags(inp, found, None)

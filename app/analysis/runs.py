@@ -9,6 +9,7 @@ from typing import Any
 from app.analysis.cellstore import cells_from_counts, memoised
 from app.analysis.inputs import AnalysisInput
 from app.analysis.robustness import check_robustness, robustness_to_dict
+from app.analysis.stored_fits import engine_tag, fit_params, matches, stored_summary
 from app.stats.coverage import suggest_window
 from app.stats.headline import headline_fields
 from app.stats.periods import PeriodComparison, compare_periods, default_periods
@@ -28,12 +29,12 @@ class TrendOutcome:
 
 def _record_run(store: Store, inp: AnalysisInput, params: dict[str, Any], fingerprint: str,
                 result: dict[str, Any], seconds: float) -> int:
-    """Store a finished fit as a run, unless an identical one (same data, mapping, window, options) exists."""
+    """Store a finished fit as a run, unless an identical one (same data, mapping, window, options and
+    statistics code: ``engine_tag``) exists."""
     for run in store.list_runs(inp.roster.id, "fit"):
-        if (run.fingerprint == fingerprint and run.params == params and run.window == inp.window
-                and run.mapping_version == (inp.mapping.version if inp.mapping else None)
-                and run.mapping_name == (inp.mapping.name if inp.mapping else None)):
+        if matches(run, inp, params, fingerprint):
             return run.id
+    result = {**result, "engine": engine_tag()}  # names the statistics code it came from
     run_id = store.create_run(
         kind="fit", roster_id=inp.roster.id, params=params, fingerprint=fingerprint,
         mapping_name=inp.mapping.name if inp.mapping else None,
@@ -52,10 +53,11 @@ def run_trend(store: Store, inp: AnalysisInput, *, model: str = "linear", spline
     # a fit depends only on the counts, window and options: memoised for repeated pages (the run is still recorded)
     fit = memoised(inp.store, ("fit_trend", *inp.key, model, spline_df, quasi),
                    lambda: fit_trend(cells, model, spline_df=spline_df, quasi=quasi))  # type: ignore[arg-type]
-    params: dict[str, Any] = ({"model": model} | ({"spline_df": spline_df} if model == "spline" else {})
-                              | ({"quasi": True} if quasi else {}))
-    run_id = _record_run(store, inp, params, cells.fingerprint(), fit_to_dict(fit),
-                         time.perf_counter() - started)
+    params = fit_params(model, spline_df, quasi)
+    # the result carries what ``helmshift fit --json`` prints, so a later command can print it without
+    # fitting again (app.analysis.stored_fits)
+    result = {**fit_to_dict(fit), **headline_fields(fit)}
+    run_id = _record_run(store, inp, params, cells.fingerprint(), result, time.perf_counter() - started)
     return TrendOutcome(fit, run_id)
 
 
@@ -87,17 +89,23 @@ def period_comparison(inp: AnalysisInput, periods: tuple[tuple[int, int], tuple[
 
 def fit_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", by_sector: bool = False,
                 spline_df: int = 3, quasi: bool = False,
-                periods: tuple[tuple[int, int], tuple[int, int]] | None = None) -> dict[str, Any]:
+                periods: tuple[tuple[int, int], tuple[int, int]] | None = None, reuse: bool = True
+                ) -> dict[str, Any]:
     """The command line's ``fit --json`` object (and the trend page's JSON twin).
+
+    With ``reuse`` a fit already recorded for the same counts and options is printed again without fitting
+    (``app.analysis.stored_fits.stored_summary``).
 
     ``headline`` and ``fitted_share`` lead with the fitted share at both ends of the window; ``periods``
     is there when ``periods`` are given.
     """
-    outcome = run_trend(store, inp, model=model, spline_df=spline_df, quasi=quasi)
-    payload: dict[str, Any] = dict(fit_to_dict(outcome.fit))
-    payload.update({"roster": inp.roster.name, "mapping": inp.mapping_label, "run": outcome.run_id,
-                    "sentence": trend_sentence(outcome.fit), "warnings": inp.warnings(),
-                    **headline_fields(outcome.fit)})
+    payload = stored_summary(store, inp, model=model, spline_df=spline_df, quasi=quasi) if reuse else None
+    if payload is None:
+        outcome = run_trend(store, inp, model=model, spline_df=spline_df, quasi=quasi)
+        payload = dict(fit_to_dict(outcome.fit))
+        payload.update({"roster": inp.roster.name, "mapping": inp.mapping_label, "run": outcome.run_id,
+                        "sentence": trend_sentence(outcome.fit), "warnings": inp.warnings(),
+                        **headline_fields(outcome.fit)})
     if periods is not None:
         payload["periods"] = period_comparison(inp, periods).as_dict()
     if by_sector:

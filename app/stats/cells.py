@@ -11,12 +11,15 @@ import re
 import unicodedata
 from collections.abc import Mapping
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
-from scipy import sparse
 
 from app.types import UNMAPPED
+
+if TYPE_CHECKING:  # scipy.sparse is imported where a firm matrix is built, not at start-up
+    from scipy import sparse
 
 # Dash and quote look-alikes that spreadsheets substitute as one types ("auto-correct"); folded to ASCII.
 _CODE_FOLD = str.maketrans({**dict.fromkeys("\u2010\u2011\u2012\u2013\u2014\u2015\u2212\ufe58\ufe63\uff0d", "-"),
@@ -99,8 +102,12 @@ class Cells:
 
     def fingerprint(self) -> str:
         """A short sha256 of the counts, so an export can prove which data it came from."""
-        payload = self.groups.to_csv(index=False).encode()
-        return hashlib.sha256(payload).hexdigest()[:16]
+        return groups_fingerprint(self.groups)
+
+
+def groups_fingerprint(groups: pd.DataFrame) -> str:
+    """``Cells.fingerprint`` of these groups (a short sha256 of their CSV form)."""
+    return hashlib.sha256(groups.to_csv(index=False).encode()).hexdigest()[:16]
 
 
 def build_cells(
@@ -149,6 +156,8 @@ def build_cells(
     gpos = group_index.get_indexer(pd.MultiIndex.from_arrays([keyed["sector"], keyed["year"]]))
     col = np.where(keyed["forced"].to_numpy(), gpos, gpos + n_groups)
     firm_codes, firm_ids = pd.factorize(keyed["firm"], sort=True)
+    from scipy import sparse
+
     matrix = sparse.csr_matrix(
         (np.ones(len(keyed), dtype=np.int64), (firm_codes, col)),
         shape=(len(firm_ids), 2 * n_groups),

@@ -10,12 +10,14 @@ scipy.stats is imported inside the functions (start-up time, as in ``trend``).
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 
-__all__ = ["PER", "RateTable", "count_rates", "expand_spans", "garwood_interval", "universe_fingerprint"]
+__all__ = ["PER", "RateTable", "count_rates", "expand_spans", "garwood_interval", "rate_table",
+           "universe_fingerprint"]
 
 #: rates are reported per this many firm-years
 PER = 100.0
@@ -133,6 +135,20 @@ def count_rates(records: pd.DataFrame, firm_years: pd.DataFrame, window: tuple[i
     exposure = fy.groupby("year").size().rename("firm_years")
     counts = pd.crosstab(inside["year"], inside["category"]).reindex(columns=["forced", "voluntary"],
                                                                       fill_value=0)
+    return rate_table(counts, exposure, window, alpha=alpha, outside=len(dep) - len(inside),
+                      departure_years=dep["year"].unique().tolist())
+
+
+def rate_table(counts: pd.DataFrame, exposure: pd.Series, window: tuple[int, int], *, alpha: float = 0.05,
+               outside: int = 0, departure_years: Iterable[int] = ()) -> RateTable:
+    """The ``RateTable`` of counts already made: what ``count_rates`` builds after counting.
+
+    ``counts``: forced and voluntary departures inside the universe per year (index ``year``, columns
+    ``forced``, ``voluntary``); ``exposure``: firm-years per year of the window (index ``year``, name
+    ``firm_years``); ``outside``: counted departures of the window outside the universe; ``departure_years``:
+    the window's years with a counted departure. Lets a caller count in SQL instead of passing every record.
+    """
+    lo, hi = window
     table = pd.DataFrame(exposure).join(counts, how="left").fillna(0).astype("int64").reset_index()
     table = table.rename(columns={"index": "year"}).sort_values("year").reset_index(drop=True)
     for measure in ("forced", "voluntary"):
@@ -141,6 +157,6 @@ def count_rates(records: pd.DataFrame, firm_years: pd.DataFrame, window: tuple[i
         table[f"{measure}_rate_per_100"] = PER * table[measure] / e
         table[f"{measure}_low"] = PER * low / e
         table[f"{measure}_high"] = PER * high / e
-    missing = sorted(set(dep["year"].unique().tolist()) - set(table["year"].tolist()))
-    return RateTable(years=table, outside=len(dep) - len(inside),
+    missing = sorted(set(departure_years) - set(table["year"].tolist()))
+    return RateTable(years=table, outside=int(outside),
                      no_universe_years=tuple(int(y) for y in missing), window=(int(lo), int(hi)), alpha=alpha)

@@ -11,9 +11,9 @@ import hashlib
 import secrets
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
+from functools import cache
+from typing import Any
 
-from argon2 import PasswordHasher
-from argon2.exceptions import InvalidHashError, VerificationError
 from sqlalchemy import delete, func, insert, select, update
 from sqlalchemy.exc import IntegrityError
 
@@ -23,7 +23,6 @@ from app.store.records import StoreError, now_iso
 from app.store.tables import accounts, api_tokens, app_secrets, audit_events
 from app.types import ACCOUNT_ROLES, AccountRole, check_choice
 
-_HASHER = PasswordHasher()
 TOKEN_PREFIX = "hs_"
 MIN_PASSWORD = 10
 #: failed sign-ins for one name within the window before further tries are refused for a while
@@ -69,7 +68,7 @@ class AccountQueries(Gateway):
         try:
             with self._tx() as conn:
                 new_id = conn.execute(insert(accounts).values(
-                    name=name, role=role, password_hash=_HASHER.hash(password), created_at=now_iso(),
+                    name=name, role=role, password_hash=_hasher().hash(password), created_at=now_iso(),
                     session_epoch=0)).inserted_primary_key[0]  # type: ignore[index]
                 record_event(conn, "account_add", f"account:{name}", {"id": new_id, "role": role})
         except IntegrityError:
@@ -107,7 +106,7 @@ class AccountQueries(Gateway):
         account = self.get_account(name)
         with self._tx() as conn:
             conn.execute(update(accounts).where(accounts.c.id == account.id).values(
-                password_hash=_HASHER.hash(password), session_epoch=accounts.c.session_epoch + 1))
+                password_hash=_hasher().hash(password), session_epoch=accounts.c.session_epoch + 1))
             record_event(conn, "account_password", f"account:{name}", {"id": account.id})
 
     def check_password(self, name: str, password: str) -> Account | None:
@@ -116,14 +115,18 @@ class AccountQueries(Gateway):
             row = conn.execute(select(accounts).where(accounts.c.name == name)).first()
         ok = False
         if row is not None:
+            from argon2.exceptions import InvalidHashError, VerificationError
+
             try:
-                ok = _HASHER.verify(row.password_hash, password)
+                ok = _hasher().verify(row.password_hash, password)
             except (VerificationError, InvalidHashError):
                 ok = False
         else:
+            from argon2.exceptions import InvalidHashError, VerificationError
+
             # spend the same time as a real check, so a wrong name is not told apart from a wrong password
             with contextlib.suppress(VerificationError, InvalidHashError):
-                _HASHER.verify(_DUMMY_HASH, password)
+                _hasher().verify(_dummy_hash(), password)
         if not ok:
             with self._tx() as conn:
                 record_event(conn, "login_failed", f"account:{name}", {}, actor=name or "(blank)")
@@ -172,4 +175,15 @@ class AccountQueries(Gateway):
             return str(conn.execute(select(app_secrets.c.value).where(app_secrets.c.name == name)).scalar_one())
 
 
-_DUMMY_HASH = _HASHER.hash("not a password anybody has")
+@cache
+def _hasher() -> Any:
+    # lazy: argon2 is needed only when an account signs in or changes, not to open the store (CLI start-up)
+    from argon2 import PasswordHasher
+
+    return PasswordHasher()
+
+
+@cache
+def _dummy_hash() -> str:
+    # hashed on first use, not at import: one argon2 hash costs ~0.1 s by design (issue 13, start-up)
+    return str(_hasher().hash("not a password anybody has"))

@@ -13,10 +13,10 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import Connection, distinct, func, insert, select
+from sqlalchemy import Connection, and_, case, distinct, exists, func, insert, select
 
 from app.store.engine import Gateway
-from app.store.tables import departures, roster_cells, roster_firm_cells
+from app.store.tables import departures, roster_cells, roster_firm_cells, universe_firm_years
 
 CELL_COLUMNS = ("year", "sector", "reason", "departures")
 FIRM_CELL_COLUMNS = ("firm_id", "year", "sector", "reason", "departures")
@@ -90,6 +90,45 @@ class CellQueries(Gateway):
                                 .where(c.roster_id == roster_id).group_by(sector).order_by(sector)).all()
         frame = pd.DataFrame.from_records([tuple(r) for r in rows], columns=["sector", "departures", "firms"])
         return total, frame.astype({"departures": np.int64, "firms": np.int64})
+
+    # -- a roster's counts against a universe of firm-years (the Rates sections and the Universe page) --------
+    def universe_cell_counts(self, roster_id: int, universe_id: int) -> pd.DataFrame:
+        """Departures per (year, reason, inside): ``inside`` is 1 where the departure's (firm, year) is one of
+        the universe's firm-years, else 0. Counted in SQL from the firm cells (a few hundred rows back)."""
+        c, u = roster_firm_cells.c, universe_firm_years.c
+        inside = exists().where(u.universe_id == universe_id, u.firm_id == c.firm_id, u.year == c.year)
+        flag = case((inside, 1), else_=0).label("inside")
+        query = (select(c.year, c.reason, flag, func.sum(c.departures)).where(c.roster_id == roster_id)
+                 .group_by(c.year, c.reason, flag).order_by(c.year, c.reason, flag))
+        with self.engine.connect() as conn:
+            rows = conn.execute(query).all()
+        frame = pd.DataFrame.from_records([tuple(r) for r in rows], columns=["year", "reason", "inside", "departures"])
+        return frame.astype({"year": np.int64, "reason": object, "inside": bool, "departures": np.int64})
+
+    def universe_exposure(self, universe_id: int) -> pd.Series:
+        """Firm-years per year of a universe (index ``year``, name ``firm_years``), in year order."""
+        u = universe_firm_years.c
+        with self.engine.connect() as conn:
+            rows = conn.execute(select(u.year, func.count()).where(u.universe_id == universe_id)
+                                .group_by(u.year).order_by(u.year)).all()
+        years = pd.Index(np.array([r[0] for r in rows], dtype=np.int64), name="year")
+        return pd.Series(np.array([r[1] for r in rows], dtype=np.int64), index=years, name="firm_years")
+
+    def firms_outside_universe(self, roster_id: int, universe_id: int,
+                               window: tuple[int, int] | None = None) -> pd.DataFrame:
+        """Distinct (``firm_id``, ``reason``) of the roster's departures whose firm has no firm-year in the universe
+        (both read inside ``window`` when given), sorted: the firms a universe misses, before categories."""
+        c, u = roster_firm_cells.c, universe_firm_years.c
+        held = [u.universe_id == universe_id, u.firm_id == c.firm_id]
+        where = [c.roster_id == roster_id]
+        if window is not None:
+            held.append(u.year.between(*window))
+            where.append(c.year.between(*window))
+        query = (select(c.firm_id, c.reason).where(and_(*where), ~exists().where(*held)).distinct()
+                 .order_by(c.firm_id, c.reason))
+        with self.engine.connect() as conn:
+            rows = conn.execute(query).all()
+        return pd.DataFrame.from_records([tuple(r) for r in rows], columns=["firm_id", "reason"]).astype(object)
 
     def _repair_cells(self, roster_id: int) -> bool:
         """Fill the cells of a roster that has departures but no cells (written by an older version)."""

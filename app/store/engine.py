@@ -19,6 +19,7 @@ from sqlalchemy import (
     select,
     text,
 )
+from sqlalchemy.exc import OperationalError
 
 from app.store.records import StoreError
 from app.store.tables import (
@@ -84,6 +85,8 @@ class Gateway:
     def _migrate(self) -> None:
         """Create a fresh database at the head revision, or bring an existing one up to it (Alembic)."""
         sqlite = self.engine.dialect.name == "sqlite"
+        if sqlite and self._at_head():
+            return
         with self.engine.connect() as conn:
             if sqlite:
                 # Rebuilding a table in SQLite (the only way to change a key) must run with foreign keys off,
@@ -103,6 +106,16 @@ class Gateway:
                 if sqlite:
                     conn.exec_driver_sql("PRAGMA foreign_keys=ON")
                     conn.commit()
+
+    def _at_head(self) -> bool:
+        """One query: is this SQLite store already at the head revision? Opening a current store then costs no
+        reflection, no foreign-key pass and no Alembic import (the command line's start-up, issue 13)."""
+        with self.engine.connect() as conn:
+            try:
+                current = conn.execute(select(alembic_version.c.version_num)).scalar()
+            except OperationalError:  # no alembic_version table: a new file or a 0.1 store; _migrate decides
+                return False
+        return bool(current == HEAD_REVISION)
 
     @staticmethod
     def _migrate_in(conn: Connection) -> None:

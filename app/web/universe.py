@@ -12,7 +12,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
 from app.analysis.inputs import load_input
-from app.analysis.rates import APPROXIMATE, SHARE_VS_RATE, UniverseFlags, universe_flags
+from app.analysis.rates import APPROXIMATE, SHARE_VS_RATE, UniverseFlags, universe_overview
 from app.intake.ingest import rejected_rows_csv
 from app.intake.readers import RosterFileError
 from app.intake.universe import UNIVERSE_ROLES, derive_universe, import_universe
@@ -62,14 +62,8 @@ def universe_data(store: Store, roster_id: int, *, message: str | None = None) -
     flags = None
     rejected: list[RejectedRow] = []
     if universe is not None:
-        firm_years = store.universe_firm_years(universe.id)
-        records = load_input(store, roster.id, require_mapping=False).records
-        per_year = firm_years.groupby("year").size()
-        rows = records.groupby("year").size()
-        rows = rows.reindex(per_year.index, fill_value=0)
-        years = [{"year": int(y), "firms": int(n), "roster_rows": int(k)}
-                 for y, n, k in zip(per_year.index.to_numpy(), per_year.to_numpy(), rows.to_numpy(), strict=True)]
-        flags = universe_flags(records, firm_years)
+        # counted in SQL from the cell store: the page reads no departure and no firm-year list
+        years, flags = universe_overview(store, load_input(store, roster.id, require_mapping=False), universe)
         rejected = store.universe_rejected(universe.id)[:REJECTED_SHOWN]
     return UniversePage(
         roster=roster, universe=universe,

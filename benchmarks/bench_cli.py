@@ -1,0 +1,120 @@
+"""Wall time of ``helmshift fit --json`` at 100,000 departures, start-up included: this tree against an earlier one.
+
+Run: ``python benchmarks/bench_cli.py [--rows 100000] [--before REV] [--repeat 5]``
+
+The roster is the one ``bench_pages.py`` builds (cached in the temp folder: ~99,400 departures, ~25,000 firms,
+30 years, the demo mappings). ``--before`` (default ``73ffe36``, main when the start-up work began) is written
+out with ``git archive`` into a temporary folder; both trees then run as fresh processes (``python -m app.cli
+fit --db ... --roster 1 --json``, ``PYTHONPATH`` = the tree) over copies of the same database, interleaved
+so both see the same minute of machine load:
+
+- **first fit**: a database copy on which no fit of these counts was recorded yet (a new copy per run);
+- **repeat fit**: the same command again on a database where it already ran once (this tree prints the
+  recorded fit without importing scipy.stats or statsmodels; the earlier tree fits again every time).
+
+Each is the median of ``--repeat`` runs after one warm-up run (which fills the OS file cache); the load
+average is printed before and after. Both trees' JSON outputs are compared: they must be equal apart from
+the run id. Target (issue 13, 2 cores): under 0.5 s wall.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_pages import build_database  # noqa: E402
+
+#: main's head when the start-up work began (the fit path then imported scipy.stats and statsmodels always)
+BEFORE = "73ffe36"
+
+
+def load() -> str:
+    return "/".join(f"{x:.2f}" for x in os.getloadavg())
+
+
+def _children_cpu() -> float:
+    usage = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return usage.ru_utime + usage.ru_stime
+
+
+def fit_once(tree: Path, db: Path) -> tuple[tuple[float, float], dict[str, object]]:
+    """Wall and CPU seconds (user + system) of one ``helmshift fit --json``, and what it printed."""
+    env = {**os.environ, "PYTHONPATH": str(tree)}
+    cmd = [sys.executable, "-m", "app.cli", "fit", "--db", str(db), "--roster", "1", "--json"]
+    cpu = _children_cpu()
+    started = time.perf_counter()
+    done = subprocess.run(cmd, cwd=tree, env=env, capture_output=True, text=True, check=False)
+    seconds = time.perf_counter() - started
+    if done.returncode:
+        raise SystemExit(f"{tree}: helmshift fit failed:\n{done.stderr[-2000:]}")
+    return (seconds, _children_cpu() - cpu), json.loads(done.stdout)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rows", type=int, default=100_000)
+    parser.add_argument("--before", default=BEFORE, help="git revision to compare with")
+    parser.add_argument("--repeat", type=int, default=5)
+    args = parser.parse_args()
+    cache = Path(tempfile.gettempdir()) / f"helmshift-bench-pages-{args.rows}.db"
+    if not cache.exists():
+        build_database(cache, args.rows)
+    print(f"{os.cpu_count()} CPUs; load average at start {load()}", flush=True)
+    with tempfile.TemporaryDirectory(prefix="helmshift-bench-cli-") as tmp:
+        work = Path(tmp)
+        before_tree = work / "before"
+        before_tree.mkdir()
+        archive = subprocess.run(["git", "archive", args.before], cwd=ROOT, check=True, capture_output=True)
+        subprocess.run(["tar", "-x", "-C", str(before_tree)], input=archive.stdout, check=True)
+        trees = {"before": before_tree, "after": ROOT}
+        # a migrated copy per tree (opening it the first time may upgrade the schema: not part of the timing)
+        base = {}
+        for label, tree in trees.items():
+            base[label] = work / f"{label}-base.db"
+            shutil.copyfile(cache, base[label])
+            subprocess.run([sys.executable, "-c", "import sys; from app.store import Store; Store(sys.argv[1])",
+                            f"sqlite:///{base[label]}"], cwd=tree, env={**os.environ, "PYTHONPATH": str(tree)},
+                           check=True)
+        times: dict[tuple[str, str], list[tuple[float, float]]] = {(t, k): [] for t in trees
+                                                                   for k in ("first", "repeat")}
+        outputs: dict[str, dict[str, object]] = {}
+        for i in range(args.repeat + 1):  # round 0 is the warm-up
+            for label, tree in trees.items():
+                db = work / f"{label}-{i}.db"
+                shutil.copyfile(base[label], db)
+                first, outputs[label] = fit_once(tree, db)
+                repeat, again = fit_once(tree, db)
+                if {k: v for k, v in again.items() if k != "run"} != {k: v for k, v in outputs[label].items()
+                                                                     if k != "run"}:
+                    raise SystemExit(f"{label}: the repeated fit printed something else than the first")
+                if i:
+                    times[(label, "first")].append(first)
+                    times[(label, "repeat")].append(repeat)
+                for suffix in ("", "-wal", "-shm"):
+                    Path(f"{db}{suffix}").unlink(missing_ok=True)
+        same = ({k: v for k, v in outputs["before"].items() if k != "run"}
+                == {k: v for k, v in outputs["after"].items() if k != "run"})
+    print(f"load average at the end {load()}")
+    print(f"\n{'helmshift fit --json':<28} {'wall before':>11} {'after':>7} {'ratio':>6} {'target':>6}   "
+          f"{'CPU before':>10} {'after':>7} {'ratio':>6}")
+    for kind in ("first", "repeat"):
+        b, a = (statistics.median(w for w, _ in times[(t, kind)]) for t in ("before", "after"))
+        bc, ac = (statistics.median(c for _, c in times[(t, kind)]) for t in ("before", "after"))
+        print(f"{kind + ' fit, median of ' + str(args.repeat):<28} {b:>11.3f} {a:>7.3f} {b / a:>5.1f}x "
+              f"{'ok' if a < 0.5 else 'SLOW':>6}   {bc:>10.3f} {ac:>7.3f} {bc / ac:>5.1f}x")
+    print(f"both trees printed the same fit (apart from the run id): {same}")
+
+
+if __name__ == "__main__":
+    main()
