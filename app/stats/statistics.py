@@ -16,7 +16,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any, Literal, NamedTuple, get_args
+from typing import Any, NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -25,22 +25,9 @@ from scipy.special import expit
 from app.stats.cells import Cells
 from app.stats.design import design_matrix
 from app.stats.irls import fit_batch, solve_spd_stack
+from app.stats.statistic_names import STATISTICS, Scale
 from app.stats.trend import SPLINE_DFS, natural_spline_basis
 
-StatisticName = Literal["slope", "decade_odds_ratio", "sector_slope", "heterogeneity", "spline_bend",
-                        "period_difference"]
-STATISTICS: tuple[StatisticName, ...] = get_args(StatisticName)
-Scale = Literal["log", "identity"]
-
-#: what each statistic is, in the words of the pages (the CLI's --help lists these)
-STATISTIC_HELP: dict[str, str] = {
-    "slope": "odds ratio per year (the year slope of the straight or sector-adjusted trend)",
-    "decade_odds_ratio": "odds ratio per decade (ten times the year slope, exponentiated)",
-    "sector_slope": "one sector's own odds ratio per year (name it with --sector)",
-    "heterogeneity": "likelihood-ratio statistic of equal trends across the fitted sectors",
-    "spline_bend": "likelihood-ratio statistic of the spline bend test (natural cubic spline vs straight trend)",
-    "period_difference": "difference in the forced share, second period minus first (a proportion)",
-}
 #: failure reason of a resample in which one period has no counted departure
 EMPTY_PERIOD = "empty_period"
 
