@@ -325,11 +325,17 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
     payload = run_bootstrap_now(store, inp, unit=args.unit, resamples=args.resamples, seed=args.seed,
-                                model=args.model)
+                                model=args.model, statistic=args.statistic, sector=args.sector,
+                                spline_df=args.spline_df, periods=args.periods, stratify=args.stratify)
+
+    def bound(v: float | None) -> str:
+        return "n/a" if v is None else f"{v:.4f}"
+
     _emit(args, payload, lambda p: (
-        f"Bootstrap ({p['unit']} resampling, B={p['resamples']}, seed {p['seed']}): odds ratio per year "
-        f"{p['odds_ratio']:.4f}; BCa 95% {p['conf_int']['bca'][0]:.4f} to {p['conf_int']['bca'][1]:.4f}; "
-        f"{p['failed']} failed resamples; {p['seconds']:.2f} s."))
+        f"Bootstrap ({p['unit']} resampling{', firms within sector' if p.get('stratified') else ''}, "
+        f"B={p['resamples']}, seed {p['seed']}): {p.get('label', 'odds ratio per year')} {bound(p['odds_ratio'])}; "
+        + "; ".join(f"{m} 95% {bound(p['conf_int'][m][0])} to {bound(p['conf_int'][m][1])}"
+                    for m in ("bca", "studentized")) + f"; {p['failed']} failed resamples; {p['seconds']:.2f} s."))
     return 0
 
 
@@ -458,14 +464,30 @@ def build_parser() -> argparse.ArgumentParser:
     common(p)
     p.set_defaults(func=cmd_fit)
 
-    p = sub.add_parser("bootstrap", help="bootstrap the odds ratio per year")
+    from app.stats.statistic_names import STATISTIC_HELP, STATISTICS  # no numpy: just the names
+
+    p = sub.add_parser("bootstrap", help="bootstrap the odds ratio per year, or another reported statistic",
+                       formatter_class=argparse.RawDescriptionHelpFormatter,
+                       epilog="statistics (--statistic):\n" + "\n".join(f"  {name:<18} {text}"
+                                                                     for name, text in STATISTIC_HELP.items()))
     p.add_argument("--roster", required=True)
     p.add_argument("--mapping")
     p.add_argument("--years", metavar="FROM-TO")
     p.add_argument("--unit", choices=["firm", "departure"], default="firm")
     p.add_argument("--resamples", type=int, default=2000)
     p.add_argument("--seed", type=int, default=20261201)
-    p.add_argument("--model", choices=["linear", "sector"], default="linear")
+    p.add_argument("--model", choices=["linear", "sector"], default="linear",
+                   help="for slope and decade_odds_ratio: the straight trend or the trend adjusted for sector")
+    p.add_argument("--statistic", choices=list(STATISTICS), default="slope", metavar="NAME",
+                   help="what to bootstrap: " + ", ".join(STATISTICS) + " (default slope; listed below)")
+    p.add_argument("--sector", help="for sector_slope: the sector whose own trend is bootstrapped")
+    p.add_argument("--spline-df", type=int, choices=range(2, 7), default=None, metavar="2..6",
+                   help="for spline_bend: the spline's df (default 3)")
+    p.add_argument("--periods", metavar="FROM-TO:FROM-TO",
+                   help="for period_difference: the two periods (default: the window's last third against the rest)")
+    p.add_argument("--stratify", choices=["none", "sector"], default="none",
+                   help="sector: draw firms within their sector, so every resample keeps each sector's number "
+                        "of firms (unit firm only)")
     common(p)
     p.set_defaults(func=cmd_bootstrap)
 

@@ -95,7 +95,7 @@ CASES: list[tuple[str, str, int, type[BaseModel]]] = [
     ("/api/rosters/{roster_id}/runs", "/api/rosters/1/runs", 200, RunsBody),
     ("/api/runs/{run_id}", "/api/runs/{bootstrap}", 200, RunBody),
     ("/api/runs/{run_id}", "/api/runs/{bootstrap}?method=basic", 200, RunBody),
-    ("/api/runs/{run_id}", "/api/runs/{bootstrap}?method=normal", 400, S.ErrorBody),
+    ("/api/runs/{run_id}", "/api/runs/{bootstrap}?method=median", 400, S.ErrorBody),
     ("/api/runs/{run_id}", "/api/runs/99999", 404, S.ErrorBody),
     ("/api/runs/{run_id}/replicates", "/api/runs/{bootstrap}/replicates", 200, S.ReplicatesBody),
     ("/api/runs/{run_id}/replicates", "/api/runs/99999/replicates", 404, S.ErrorBody),
@@ -127,7 +127,7 @@ def test_json_route_matches_its_model_and_the_served_schema(
 def test_finished_runs_carry_intervals_in_the_documented_shape(api: TestClient) -> None:
     body = RunBody.model_validate(api.get(f"/api/runs/{_bootstrap_run(api)}").json())
     assert body.run.status == "done" and body.run.result is not None
-    assert set(body.run.result.conf_int) == {"percentile", "basic", "bca"}
+    assert set(body.run.result.conf_int) == {"percentile", "basic", "bca", "normal", "studentized"}
     assert body.comparison_found  # one run per unit with the same settings
 
 

@@ -298,3 +298,35 @@ def test_brief_footer_names_each_packs_sha256(runs: tuple[Store, dict[str, int]]
     for run_id in (run_trend(store, inp).run_id, ids["firm"]):
         sha = build_pack(store, run_id).sha256
         assert f"Replication pack of run {run_id}: sha256 {sha}" in text.replace("- ", "-")
+
+
+STATISTIC_RUNS = {  # statistic -> (unit, options): every statistic a run can bootstrap, through its pack
+    "decade_odds_ratio": ("departure", {}),
+    "sector_slope": ("firm", {"sector": "Energy"}),
+    "heterogeneity": ("departure", {}),
+    "spline_bend": ("firm", {"spline_df": 4}),
+    "period_difference": ("firm", {"stratify": "sector"}),
+}
+
+
+@pytest.mark.parametrize("statistic", list(STATISTIC_RUNS))
+def test_reproduce_script_recomputes_every_statistic(runs: tuple[Store, dict[str, int]], statistic: str,
+                                                     tmp_path: Path) -> None:
+    # oracle: the pack's reproduce.py (statsmodels refits of the statistic and of every leave-one-out case;
+    # the interval formulas written out with numpy/scipy) against the run's stored numbers, to 1e-9
+    store, _ = runs
+    unit, options = STATISTIC_RUNS[statistic]
+    inp = load_input(store, 1)
+    run_id = int(run_bootstrap_now(store, inp, unit=unit, resamples=250, seed=SEED, statistic=statistic,
+                                   **options)["run"])
+    pack = build_pack(store, run_id)
+    report = reproduce_json(unpack(pack.data, tmp_path))
+    assert report["status"] == 0 and report["ok"], [c for c in report["checks"] if not c["ok"]]
+    names = {c["name"] for c in report["checks"]}
+    assert {"percentile low", "normal high", "normal low: Monte Carlo error",
+            "jackknife: largest difference over all units"} <= names
+    has_se = statistic in ("decade_odds_ratio", "sector_slope", "period_difference")
+    assert ({"studentized low", "studentized high: Monte Carlo error"} <= names) and has_se == any(
+        c["name"] == "studentized low" and c["recomputed"] is not None for c in report["checks"])
+    params = json.loads(zipfile.ZipFile(io.BytesIO(pack.data)).read("params.json"))
+    assert params["statistic"] == statistic and params["stratify"] == options.get("stratify", "none")

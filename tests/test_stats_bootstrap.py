@@ -115,7 +115,9 @@ def test_intervals_spatial_data_plug_in_variance() -> None:
     assert iv.acceleration == pytest.approx(0.061240, abs=5e-7)
     np.testing.assert_allclose(iv.bounds["bca"], (115.8, 259.6), rtol=0.03)
     np.testing.assert_allclose(iv.bounds["percentile"], (100.8, 233.9), rtol=0.03)
-    assert all(0 < e < 2 for pair in iv.mc_error.values() for e in pair)
+    # no standard error per resample was given, so the studentized interval (and its error) is NaN
+    assert [0 < e < 2 for m in ("percentile", "basic", "bca", "normal") for e in iv.mc_error[m]] == [True] * 8
+    assert np.isnan(iv.bounds["studentized"]).all() and np.isnan(iv.mc_error["studentized"]).all()
 
 
 def test_acceleration_two_sample_mouse_data() -> None:
@@ -308,7 +310,7 @@ def test_dict_has_the_command_line_keys_and_is_json() -> None:
     result = bootstrap_trend(cells, design, unit="firm", resamples=300, seed=8)
     out = bootstrap_to_dict(result)
     assert {"odds_ratio", "conf_int", "resamples", "failed", "unit", "seed", "seconds"} <= set(out)
-    assert set(out["conf_int"]) == {"percentile", "basic", "bca"}
+    assert set(out["conf_int"]) == {"percentile", "basic", "bca", "normal", "studentized"}
     assert out["odds_ratio"] == pytest.approx(np.exp(result.estimate))
     lo, hi = out["conf_int"]["percentile"]
     assert lo < out["odds_ratio"] < hi

@@ -32,7 +32,7 @@ def test_start_runs_and_the_run_page_shows_intervals(client: Any, demo_store: St
     assert response.status_code == 200 and response.template.name == "run.html"
     page = response.context["page"]
     methods = [r["method"] for r in page.rows]
-    assert methods == ["percentile", "basic", "BCa", "Wald", "profile likelihood"]
+    assert methods == ["percentile", "basic", "BCa", "normal", "studentized", "Wald", "profile likelihood"]
     # the same seed through app.stats.bootstrap directly
     inp = load_input(demo_store, ROSTER)
     cells = inp.cells()
@@ -128,3 +128,43 @@ def test_app_start_marks_unfinished_runs_interrupted(demo_store: Store) -> None:
     # finishing it continues with the same seed and gives the stored-then-finished run
     client.post(f"/runs/{queued}/extend", data={"extra": "0"})
     assert demo_store.get_run(queued).status == "done"
+
+
+def test_a_run_of_another_statistic_within_sectors_is_stored_and_shown(client: Any, demo_store: Store) -> None:
+    # oracle: the same statistic and seed through app.stats directly (make_statistic + bootstrap_statistic)
+    from app.stats.bootstrap import bootstrap_statistic
+    from app.stats.statistics import firm_strata, make_statistic
+
+    run_id = start(client, unit="firm", resamples="250", seed="77", statistic="period_difference",
+                   periods="1998-2010:2011-2022", stratify="sector")
+    run = demo_store.get_run(run_id)
+    assert run.params == {"unit": "firm", "resamples": 250, "seed": 77, "model": "linear",
+                          "statistic": "period_difference", "stratify": "sector",
+                          "periods": [[1998, 2010], [2011, 2022]]}
+    inp = load_input(demo_store, ROSTER)
+    cells = inp.cells()
+    statistic = make_statistic("period_difference", cells, centre=window_centre(inp.window),
+                               periods=((1998, 2010), (2011, 2022)))
+    direct = bootstrap_statistic(cells, statistic, unit="firm", resamples=250, seed=77,
+                                 strata=firm_strata(inp.cells(by_sector=True))[0])
+    assert run.result is not None and run.result["stratified"] and run.result["scale"] == "identity"
+    for method in ("percentile", "bca", "normal", "studentized"):
+        assert run.result["conf_int"][method] == pytest.approx(list(direct.intervals[method]), rel=1e-12)
+    page = client.get(f"/runs/{run_id}?method=studentized")
+    assert page.status_code == 200 and "difference in the forced share, 2011-2022 minus 1998-2010" in page.text
+    assert "within sector" in page.text and "Wald" not in [r["method"] for r in page.context["page"].rows]
+    listing = client.get(f"/rosters/{ROSTER}/resampling").text
+    assert 'value="heterogeneity"' in listing and 'name="stratify"' in listing
+
+
+@pytest.mark.parametrize(("form", "words"), [
+    ({"statistic": "sector_slope"}, "needs a sector"),
+    ({"statistic": "sector_slope", "sector": "Nowhere"}, "sector must be one of"),
+    ({"statistic": "period_difference", "periods": "2010-2012"}, "Periods look like"),
+    ({"unit": "departure", "stratify": "sector"}, "choose unit firm"),
+])
+def test_bad_statistic_choices_come_back_on_the_form(client: Any, demo_store: Store, form: dict, words: str) -> None:
+    response = client.post(f"/rosters/{ROSTER}/resampling", data={"resamples": "200", **form},
+                           follow_redirects=False)
+    assert response.status_code == 400 and words in response.text
+    assert demo_store.list_runs(ROSTER, "bootstrap") == []  # nothing stored

@@ -5,8 +5,10 @@ Usage, in the unzipped pack:   python reproduce.py [PACK_FOLDER] [--json]
 It reads cells.csv (and firm_cells.csv), params.json, results.json, and for a bootstrap run
 replicates.csv and jackknife.csv; it refits the model, recomputes the Wald and profile-likelihood
 intervals (and the quasi-binomial ones and the bend test where the run reported them), and recomputes the
-percentile, basic and BCa intervals and their Monte Carlo errors from the stored replicates and jackknife
-values. Each number is printed beside the one in results.json. The exit status is 1 when any differs by
+bootstrapped statistic (odds ratio per year or decade, a sector's slope, the equal-trends or bend
+likelihood-ratio statistic, or the period difference in shares) with its standard error, and the
+percentile, basic, BCa, normal and studentized intervals and their Monte Carlo errors from the stored
+replicates (with their standard errors) and jackknife values. Each number is printed beside the one in results.json. The exit status is 1 when any differs by
 more than 1e-9 (relative to its size, at least 1e-9 absolute).
 
 Nothing here imports Helmshift: this file is the whole method.
@@ -148,8 +150,7 @@ def refit(folder: Path, params: dict[str, Any], results: dict[str, Any]) -> list
     fit = glm(forced, totals, X)
     b, se = float(fit.params[j]), float(fit.bse[j])
     if kind == "bootstrap":
-        return [("log odds ratio per year (estimate)", b, results["log_odds_ratio"]),
-                ("odds ratio per year (estimate)", math.exp(b), results["odds_ratio"])]
+        return statistic_checks(cells, params, results)
     z = float(stats.norm.ppf(1.0 - alpha / 2.0))
     low, high = profile(forced, totals, X, j, alpha)
     out: list[tuple[str, float, Any]] = [
@@ -223,6 +224,79 @@ def sector_checks(cells: pd.DataFrame, params: dict[str, Any], results: dict[str
     return out
 
 
+# ---------------------------------------------------------------- the bootstrapped statistic
+
+
+def statistic_groups(cells: pd.DataFrame, params: dict[str, Any]) -> pd.DataFrame:
+    """The groups the statistic is computed on: sector-years (sorted) for sector statistics, else years."""
+    if sector_level(params):
+        return model_groups(cells, "sector", "bootstrap")
+    return model_groups(cells, "linear", "bootstrap").assign(sector="")
+
+
+def sector_level(params: dict[str, Any]) -> bool:
+    return params["model"] == "sector" or params.get("statistic") in ("sector_slope", "heterogeneity")
+
+
+def _fit(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, j: int | None = None) -> tuple[Any, int | None]:
+    """The GLM on groups with departures and columns with departures under them (where j lands after that)."""
+    rows = totals > 0
+    kept = [c for c in range(X.shape[1]) if np.abs(X[rows, c]).sum() > 0]
+    fit = glm(forced[rows], totals[rows], X[rows][:, kept])
+    return fit, None if j is None else kept.index(j)
+
+
+def statistic_value(forced: np.ndarray, voluntary: np.ndarray, groups: pd.DataFrame, params: dict[str, Any]
+                    ) -> tuple[float, float]:
+    """(value, its standard error or NaN) of the run's statistic on these counts over ``groups``."""
+    name, centre = params.get("statistic", "slope"), float(params["centre"])
+    totals = forced + voluntary
+    years = groups["year"].to_numpy(dtype=float)
+    sector = groups["sector"].to_numpy()
+    if name in ("slope", "decade_odds_ratio", "sector_slope"):
+        per = 10.0 if name == "decade_odds_ratio" else 1.0
+        if name == "sector_slope":
+            inside = sector == params["sector"]
+            forced, totals, years = forced[inside], totals[inside], years[inside]
+            X, j = np.column_stack([np.ones_like(years), years - centre]), 1
+        else:
+            X, j = design(groups, params["model"], centre)
+        fit, k = _fit(forced, totals, X, j)
+        return per * float(fit.params[k]), per * float(fit.bse[k])
+    if name == "period_difference":
+        (a, b), (c, d) = params["periods"]
+        f = [forced[(years >= lo) & (years <= hi)].sum() for lo, hi in ((a, b), (c, d))]
+        t = [totals[(years >= lo) & (years <= hi)].sum() for lo, hi in ((a, b), (c, d))]
+        p = [f[0] / t[0], f[1] / t[1]]
+        return p[1] - p[0], math.sqrt(p[0] * (1 - p[0]) / t[0] + p[1] * (1 - p[1]) / t[1])
+    if name == "heterogeneity":
+        inside = np.isin(sector, params["sectors"])
+        part = groups.loc[inside]
+        small, j = design(part, "sector", centre)
+        big = np.column_stack([small[:, :j], small[:, :j] * small[:, [j]]])
+        forced, totals = forced[inside], totals[inside]
+    else:  # spline_bend: knots from the years of the original groups
+        small = np.column_stack([np.ones_like(years), years - centre])
+        big = np.column_stack([np.ones_like(years), natural_spline(years, int(params["spline_df"]))])
+    return max(float(_fit(forced, totals, small)[0].deviance - _fit(forced, totals, big)[0].deviance), 0.0), math.nan
+
+
+def statistic_checks(cells: pd.DataFrame, params: dict[str, Any], results: dict[str, Any]
+                     ) -> list[tuple[str, float, Any]]:
+    groups = statistic_groups(cells, params)
+    value, se = statistic_value(groups["forced"].to_numpy(dtype=float), groups["voluntary"].to_numpy(dtype=float),
+                                groups, params)
+    label = results.get("label", "odds ratio per year")
+    logged = results.get("scale", "log") == "log"
+    out: list[tuple[str, float, Any]] = [
+        (f"{label}: estimate{' (log scale)' if logged else ''}", value, results["log_odds_ratio"])]
+    if logged:
+        out.append((f"{label}: estimate", math.exp(value), results["odds_ratio"]))
+    if "estimate_se" in results:
+        out.append((f"{label}: standard error", se, results["estimate_se"]))
+    return out
+
+
 # ---------------------------------------------------------------- intervals from the replicates
 
 
@@ -260,17 +334,42 @@ def bounds(ordered: np.ndarray, estimate: float, alpha: float, accel: float) -> 
         adjusted = special.ndtr(z0[:, None] + shifted / (1 - accel * shifted))
     bca = quantiles(ordered, np.nan_to_num(adjusted, nan=0.0))
     bca[~np.isfinite(adjusted).all(axis=1)] = np.nan
-    return {"percentile": pct, "basic": 2 * estimate - pct[:, ::-1], "bca": bca, "z0": z0[:, None]}
+    # normal (Davison & Hinkley 1997, eq. 5.5): estimate - bias -/+ z sd
+    centre = 2 * estimate - ordered.mean(axis=1)
+    half = special.ndtri(1 - alpha / 2) * np.std(ordered, axis=1, ddof=1)
+    return {"percentile": pct, "basic": 2 * estimate - pct[:, ::-1], "bca": bca,
+            "normal": np.column_stack([centre - half, centre + half]), "z0": z0[:, None]}
+
+
+def studentized(t_sorted: np.ndarray | None, estimate: float, se: float, alpha: float, rows: int) -> np.ndarray:
+    """Bootstrap-t bounds (Efron & Tibshirani 1993, ch. 12.5): estimate - se * quantiles of t*, swapped."""
+    if t_sorted is None or not math.isfinite(se):
+        return np.full((rows, 2), np.nan)
+    q = quantiles(t_sorted, np.tile([alpha / 2, 1 - alpha / 2], (t_sorted.shape[0], 1)))
+    return estimate - se * q[:, ::-1]
 
 
 def bootstrap_numbers(folder: Path, params: dict[str, Any], results: dict[str, Any]
                       ) -> list[tuple[str, float, Any]]:
-    theta = floats(read_csv(folder, "replicates.csv")["log_odds_ratio"])
-    finite = np.sort(theta[np.isfinite(theta)])
-    jackknife = floats(read_csv(folder, "jackknife.csv")["log_odds_ratio"])
+    logged = results.get("scale", "log") == "log"
+    column = "log_odds_ratio" if logged else "estimate"
+    table = read_csv(folder, "replicates.csv")
+    theta = floats(table[column])
+    kept = np.isfinite(theta)
+    order = np.argsort(theta[kept], kind="stable")  # sorted replicates, each with its standard error
+    finite = theta[kept][order]
+    jackknife = floats(read_csv(folder, "jackknife.csv")[column])
     estimate, alpha = float(results["log_odds_ratio"]), float(results["alpha"])
+    se0 = math.nan if results.get("estimate_se") is None else float(results["estimate_se"])
+    t_values = None
+    if "standard_error" in table:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            t_values = (finite - estimate) / floats(table["standard_error"])[kept][order]
+        t_values = t_values if np.isfinite(t_values).all() else None
     accel = acceleration(jackknife)
     found = bounds(finite[None, :], estimate, alpha, accel)
+    found["studentized"] = studentized(None if t_values is None else np.sort(t_values)[None, :], estimate, se0,
+                                       alpha, 1)
     out: list[tuple[str, float, Any]] = [
         ("resamples", float(theta.size), results["resamples"]),
         ("failed resamples", float(theta.size - finite.size), results["failed"]),
@@ -281,20 +380,25 @@ def bootstrap_numbers(folder: Path, params: dict[str, Any], results: dict[str, A
     # Monte Carlo error: SD of each bound over re-resamples of the replicates, drawn as Helmshift draws them
     rng = np.random.default_rng(int(params["seed"]))
     total, per_pass = int(params["mc_resamples"]), max(1, int(params["mc_pass_elements"]) // finite.size)
-    again: dict[str, list[np.ndarray]] = {m: [] for m in ("percentile", "basic", "bca")}
+    methods = [m for m in ("percentile", "basic", "bca", "normal", "studentized") if m in results["conf_int"]]
+    again: dict[str, list[np.ndarray]] = {m: [] for m in ("percentile", "basic", "bca", "normal", "studentized")}
     for lo in range(0, total, per_pass):
         rows = min(per_pass, total - lo)
-        redrawn = np.sort(finite[rng.integers(0, finite.size, size=(rows, finite.size))], axis=1)
+        picked = rng.integers(0, finite.size, size=(rows, finite.size))
+        redrawn = np.sort(finite[picked], axis=1)
         for method, value in bounds(redrawn, estimate, alpha, accel).items():
             if method != "z0":
                 again[method].append(value)
-    for method in ("percentile", "basic", "bca"):
+        t_again = None if t_values is None else np.sort(t_values[picked], axis=1)
+        again["studentized"].append(studentized(t_again, estimate, se0, alpha, rows))
+    for method in methods:
         stacked = np.concatenate(again[method])
         sd = np.std(stacked, axis=0, ddof=1) if np.isfinite(stacked).all() else np.full(2, np.nan)
         for end, name in enumerate(("low", "high")):
-            odds = float(np.exp(found[method][0, end]))  # numpy's exp, as Helmshift's (math.exp may differ by 1 ulp)
-            out.append((f"{method} {name}", odds, results["conf_int"][method][end]))
-            out.append((f"{method} {name}: Monte Carlo error", odds * float(sd[end]),
+            # numpy's exp, as Helmshift's (math.exp may differ by 1 ulp)
+            shown = float(np.exp(found[method][0, end])) if logged else float(found[method][0, end])
+            out.append((f"{method} {name}", shown, results["conf_int"][method][end]))
+            out.append((f"{method} {name}: Monte Carlo error", (shown if logged else 1.0) * float(sd[end]),
                         results["mc_error"][method][end]))
     return out
 
@@ -302,17 +406,15 @@ def bootstrap_numbers(folder: Path, params: dict[str, Any], results: dict[str, A
 def jackknife_check(folder: Path, params: dict[str, Any]) -> list[tuple[str, float, Any]]:
     """Refit each leave-one-unit-out data set and compare with jackknife.csv (largest difference)."""
     cells = counts(read_csv(folder, "cells.csv"))
-    groups = model_groups(cells, params["model"], "bootstrap")
-    X, j = design(groups, params["model"], float(params["centre"]))
+    groups = statistic_groups(cells, params)
     forced = groups["forced"].to_numpy(dtype=float)
     voluntary = groups["voluntary"].to_numpy(dtype=float)
-    key = list(zip(groups["sector"] if params["model"] == "sector" else [""] * len(groups), groups["year"],
-                   strict=True))
+    key = list(zip(groups["sector"], groups["year"], strict=True))
     position = {k: i for i, k in enumerate(key)}
     jackknife = read_csv(folder, "jackknife.csv")
     if params["unit"] == "firm":
         firms = counts(read_csv(folder, "firm_cells.csv"))
-        if params["model"] != "sector":
+        if not sector_level(params):
             firms["sector"] = ""
         firms = firms.groupby(["firm_id", "sector", "year"], sort=False)[["forced", "voluntary"]].sum()
         left: dict[str, tuple[np.ndarray, np.ndarray]] = {}
@@ -325,18 +427,17 @@ def jackknife_check(folder: Path, params: dict[str, Any]) -> list[tuple[str, flo
         cases = []
         for _, row in jackknife.iterrows():
             f, v = forced.copy(), voluntary.copy()
-            sector = row["sector"] if params["model"] == "sector" else ""
+            sector = row["sector"] if sector_level(params) else ""
             (f if row["category"] == "forced" else v)[position[(sector, int(row["year"]))]] -= 1
             cases.append((f, v))
     memo: dict[bytes, float] = {}
     worst = 0.0
-    for (f, v), reported in zip(cases, floats(jackknife["log_odds_ratio"]), strict=True):
+    column = "log_odds_ratio" if params.get("scale", "log") == "log" else "estimate"
+    for (f, v), reported in zip(cases, floats(jackknife[column]), strict=True):
         k = f.tobytes() + v.tobytes()
         if k not in memo:
-            # a group (or a whole sector) the left-out unit emptied says nothing: fit without it
-            rows = (f + v) > 0
-            kept = [c for c in range(X.shape[1]) if np.abs(X[rows, c]).sum() > 0]
-            memo[k] = float(glm(f[rows], (f + v)[rows], X[rows][:, kept]).params[kept.index(j)])
+            # a group (or a whole sector) the left-out unit emptied says nothing: fitted without it
+            memo[k] = statistic_value(f, v, groups, params)[0]
         worst = max(worst, abs(memo[k] - reported)) if math.isfinite(reported) else math.inf
     return [("jackknife: largest difference over all units", worst, 0.0)]
 

@@ -22,11 +22,12 @@ import pandas as pd
 
 from app import __version__
 from app.analysis.inputs import AnalysisInput, input_for_run
+from app.analysis.jobs import by_sector, statistic_for
 from app.analysis.mapping_files import export_mapping_csv
 from app.intake.spreadsheet_safety import safe_csv
-from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, jackknife_estimates
+from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, jackknife_statistic
 from app.stats.cells import Cells
-from app.stats.design import design_matrix, window_centre
+from app.stats.design import window_centre
 from app.stats.intervals import PASS_ELEMENTS
 from app.stats.jackknife import cluster_cases, departure_cases
 from app.store import Run, Store
@@ -45,15 +46,17 @@ FILE_NOTES = {
     "records.csv": "the departures behind the cells (only when asked for: rosters hold personal data about "
                    "named people; keep this file local)",
     "mapping.csv": "the exact mapping version: reason code, category, label",
-    "params.json": "model, window and its centre, unit, B, seed, block size, alpha, roster and mapping "
-                   "fingerprints, library versions",
-    "replicates.csv": "one row per resample in order: index, log odds ratio, odds ratio, status (ok or failed) "
-                      "and the failure reason",
-    "jackknife.csv": "one row per resampling unit (firm, or departure by its roster line): the log odds ratio "
+    "params.json": "model, statistic and its options, window and its centre, unit, stratification, B, seed, "
+                   "block size, alpha, roster and mapping fingerprints, library versions",
+    "replicates.csv": "one row per resample in order: index, the statistic (log odds ratio and odds ratio, or "
+                      "'estimate' for a statistic not on the odds-ratio scale), its standard error where it has "
+                      "one (studentized interval), status (ok or failed) and the failure reason",
+    "jackknife.csv": "one row per resampling unit (firm, or departure by its roster line): the statistic "
                      "with that unit left out, used for the BCa acceleration",
     "results.json": "every number the run reports, as stored",
     "reproduce.py": "recomputes the fit, the Wald and profile intervals and (bootstrap runs) the percentile, "
-                    "basic and BCa intervals with their Monte Carlo errors, and prints them beside results.json; "
+                    "basic, BCa, normal and studentized intervals with their Monte Carlo errors, and prints them beside "
+                    "results.json; "
                     "needs only numpy, pandas, scipy and statsmodels",
 }
 
@@ -85,7 +88,8 @@ def finished_run(store: Store, run_id: int) -> Run:
 def run_cells(store: Store, run: Run) -> tuple[AnalysisInput, Cells]:
     """The input and counts a run used, checked against the run's data fingerprint."""
     inp = input_for_run(store, run)
-    cells = inp.cells(by_sector=run.params.get("model") in ("sector", "by_sector"))
+    sectors = by_sector(run.params) if run.kind == "bootstrap" else run.params.get("model") in ("sector", "by_sector")
+    cells = inp.cells(by_sector=sectors)
     if cells.fingerprint() != run.fingerprint:
         raise ValueError(f"The roster's counts no longer match run {run.id}'s data fingerprint, so no pack can "
                          "show what it saw; start a new run.")
@@ -96,12 +100,24 @@ def _number(value: float) -> float | None:
     return float(value) if np.isfinite(value) else None
 
 
+def _logged(run: Run) -> bool:
+    return (run.result or {}).get("scale", "log") == "log"
+
+
 def replicate_rows(store: Store, run: Run) -> list[dict[str, Any]]:
-    """One row per resample: index, log odds ratio, odds ratio, status and failure reason."""
+    """One row per resample: index, the statistic (log odds ratio and odds ratio for a log-scale statistic,
+    ``estimate`` otherwise), its standard error where stored, status and failure reason."""
     estimates, failures = store.replicates_with_failures(run.id)
-    return [{"index": i, "log_odds_ratio": _number(v), "odds_ratio": _number(float(np.exp(v))),
-             "status": "failed" if why or not np.isfinite(v) else "ok", "reason": str(why)}
-            for i, (v, why) in enumerate(zip(estimates.tolist(), failures.tolist(), strict=True))]
+    errors = store.replicate_standard_errors(run.id)
+    ses = errors.tolist() if errors is not None else [None] * len(estimates)
+    rows = []
+    for i, (v, why, se) in enumerate(zip(estimates.tolist(), failures.tolist(), ses, strict=True)):
+        row: dict[str, Any] = ({"log_odds_ratio": _number(v), "odds_ratio": _number(float(np.exp(v)))} if _logged(run)
+                               else {"estimate": _number(v)})
+        if se is not None:
+            row["standard_error"] = _number(se)
+        rows.append({"index": i, **row, "status": "failed" if why or not np.isfinite(v) else "ok", "reason": str(why)})
+    return rows
 
 
 def jackknife_rows(store: Store, run: Run) -> list[dict[str, Any]]:
@@ -113,8 +129,8 @@ def jackknife_rows(store: Store, run: Run) -> list[dict[str, Any]]:
     """
     inp, cells = run_cells(store, run)
     unit = run.params["unit"]
-    design = design_matrix(cells.groups, run.params["model"], window_centre(inp.window))
-    values, _ = jackknife_estimates(cells, design, unit=unit)
+    values, _ = jackknife_statistic(cells, statistic_for(run.params, cells), unit=unit)
+    key = "log_odds_ratio" if _logged(run) else "estimate"
     total = np.concatenate([cells.forced, cells.voluntary]).astype(np.int64)
     cases = (cluster_cases(cells.firm_matrix) if unit == "firm" else departure_cases(total)).cells
     value_of = {np.asarray(row, dtype=np.int64).tobytes(): float(v) for row, v in zip(cases, values, strict=True)}
@@ -125,7 +141,7 @@ def jackknife_rows(store: Store, run: Run) -> list[dict[str, Any]]:
             left = total.copy()
             lo, hi = matrix.indptr[i], matrix.indptr[i + 1]
             left[matrix.indices[lo:hi]] -= matrix.data[lo:hi].astype(np.int64)
-            rows.append({"unit_id": str(firm), "log_odds_ratio": _number(value_of[left.tobytes()])})
+            rows.append({"unit_id": str(firm), key: _number(value_of[left.tobytes()])})
         return rows
     counted = _counted(inp, cells)
     n = cells.n_groups
@@ -133,7 +149,7 @@ def jackknife_rows(store: Store, run: Run) -> list[dict[str, Any]]:
         left = total.copy()
         left[column if category == "forced" else column + n] -= 1
         rows.append({"unit_id": str(line), "year": int(year), "sector": sector, "category": category,
-                     "log_odds_ratio": _number(value_of[left.tobytes()])})
+                     key: _number(value_of[left.tobytes()])})
     return rows
 
 
@@ -199,7 +215,10 @@ def run_params(run: Run, inp: AnalysisInput, cells: Cells, mapping_sha256: str |
         out.update({"spline_df": p.get("spline_df"), "quasi": bool(p.get("quasi", False)),
                     "min_departures": p.get("min_departures")})
     else:
-        out.update({"unit": p["unit"], "resamples": p["resamples"], "seed": p["seed"], "block_size": BLOCK_SIZE,
+        options: dict[str, Any] = {k: p[k] for k in ("sector", "sectors", "spline_df", "periods") if k in p}
+        out.update({"statistic": p.get("statistic", "slope"), "scale": (run.result or {}).get("scale", "log"),
+                    "stratify": p.get("stratify", "none"), **options,
+                    "unit": p["unit"], "resamples": p["resamples"], "seed": p["seed"], "block_size": BLOCK_SIZE,
                     "mc_resamples": MC_RESAMPLES, "mc_pass_elements": PASS_ELEMENTS,
                     "seeding": "resample i comes from block i // block_size; block k draws from "
                                "numpy.random.default_rng(SeedSequence(seed, spawn_key=(k,)))"})
@@ -272,6 +291,7 @@ def replicates_payload(store: Store, run_id: int) -> dict[str, Any]:
         raise ValueError(f"Run {run_id} is a {run.kind} run; only bootstrap runs have replicates.")
     assert run.result is not None
     return {"run": run.id, "unit": run.params["unit"], "seed": run.params["seed"], "block_size": BLOCK_SIZE,
+            "statistic": run.params.get("statistic", "slope"), "scale": run.result.get("scale", "log"),
             "log_odds_ratio": run.result.get("log_odds_ratio"), "replicates": replicate_rows(store, run),
             "jackknife": jackknife_rows(store, run)}
 
@@ -279,12 +299,15 @@ def replicates_payload(store: Store, run_id: int) -> dict[str, Any]:
 def replicates_csv(store: Store, run_id: int) -> str:
     """replicates.csv of a finished bootstrap run."""
     payload = replicates_payload(store, run_id)
-    return _csv(payload["replicates"], ["index", "log_odds_ratio", "odds_ratio", "status", "reason"])
+    rows = payload["replicates"]
+    value = ["log_odds_ratio", "odds_ratio"] if payload["scale"] == "log" else ["estimate"]
+    errors = ["standard_error"] if rows and "standard_error" in rows[0] else []
+    return _csv(rows, ["index", *value, *errors, "status", "reason"])
 
 
 def jackknife_csv(store: Store, run_id: int) -> str:
     """jackknife.csv of a finished bootstrap run."""
     payload = replicates_payload(store, run_id)
-    header = (["unit_id", "log_odds_ratio"] if payload["unit"] == "firm"
-              else ["unit_id", "year", "sector", "category", "log_odds_ratio"])
+    value = "log_odds_ratio" if payload["scale"] == "log" else "estimate"
+    header = (["unit_id", value] if payload["unit"] == "firm" else ["unit_id", "year", "sector", "category", value])
     return _csv(payload["jackknife"], header)

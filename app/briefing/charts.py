@@ -249,8 +249,10 @@ def histogram_edges(values: np.ndarray) -> np.ndarray:
 
 
 def bootstrap_histogram(odds_ratios: np.ndarray, estimate: float, interval: tuple[float, float], *,
-                        method_label: str, title: str, source: str) -> go.Figure:
-    """Histogram of bootstrap odds ratios with the no-change line, the estimate and the interval ends."""
+                        method_label: str, title: str, source: str, what: str = "Odds ratio per year",
+                        reference: float | None = 1.0, reference_label: str = "No change (OR = 1)") -> go.Figure:
+    """Histogram of bootstrap odds ratios (or of another statistic: ``what``, with its no-change ``reference``
+    or None) with the no-change line, the estimate and the interval ends."""
     values = np.asarray(odds_ratios, dtype=float).ravel()
     ok = values[np.isfinite(values)]
     failed = int(values.size - ok.size)
@@ -259,16 +261,18 @@ def bootstrap_histogram(odds_ratios: np.ndarray, estimate: float, interval: tupl
     note = (f"{values.size:,} resamples; {failed:,} failed (separation or no convergence) and are left out."
             if failed else f"{values.size:,} resamples; none failed.")
     fig = _base_figure(title, source, notes=[note])
+    odds = reference == 1.0 and what.lower().startswith("odds ratio")
     edges = histogram_edges(ok)
     # explicit bins (not plotly's own choice) so the deck's native chart counts the very same bins
     fig.add_histogram(x=ok, xbins={"start": float(edges[0]), "end": float(edges[-1]),
                                    "size": float(edges[1] - edges[0])},
-                      name="Bootstrap odds ratios",
+                      name="Bootstrap odds ratios" if odds else "Bootstrap values",
                       marker={"color": OKABE_ITO["sky_blue"], "line": {"color": "#FFFFFF", "width": 0.6}},
-                      hovertemplate="OR %{x}<br>%{y:,} resamples<extra></extra>")
+                      hovertemplate=("OR" if odds else "value") + " %{x}<br>%{y:,} resamples<extra></extra>")
     lo, hi = float(interval[0]), float(interval[1])
-    fig.add_vline(x=1.0, line={"color": INK, "dash": "dash", "width": 2}, showlegend=True,
-                  name="No change (OR = 1)")
+    if reference is not None:
+        fig.add_vline(x=reference, line={"color": INK, "dash": "dash", "width": 2}, showlegend=True,
+                      name=reference_label)
     fig.add_vline(x=float(estimate), line={"color": OKABE_ITO["vermillion"], "width": 3}, showlegend=True,
                   name=f"Estimate {estimate:.3f}")
     label = html.escape(f"{method_label}: {lo:.3f} to {hi:.3f}", quote=False)
@@ -276,9 +280,9 @@ def bootstrap_histogram(odds_ratios: np.ndarray, estimate: float, interval: tupl
         if math.isfinite(end):
             fig.add_vline(x=end, line={"color": OKABE_ITO["blue"], "dash": "dot", "width": 2.5},
                           showlegend=i == 0, name=label, legendgroup="interval")
-    spread = [float(ok.min()), float(ok.max()), 1.0, float(estimate)]
+    spread = [float(ok.min()), float(ok.max()), float(estimate)] + ([] if reference is None else [reference])
     span = max(spread) - min(spread) or 0.1
-    fig.update_xaxes(title_text="Odds ratio per year (one per bootstrap resample)",
+    fig.update_xaxes(title_text=f"{what} (one per bootstrap resample)",
                      range=[min(spread) - 0.05 * span, max(spread) + 0.05 * span])
     fig.update_yaxes(title_text="Resamples (count)", rangemode="tozero")
     fig.update_layout(bargap=0.02)

@@ -29,7 +29,8 @@ if TYPE_CHECKING:
 
 ChartName = Literal["coverage", "trend", "bootstrap", "sectors", "robustness"]
 CHART_NAMES: tuple[ChartName, ...] = get_args(ChartName)
-METHOD_LABELS = {"percentile": "percentile", "basic": "basic", "bca": "BCa"}
+METHOD_LABELS = {"percentile": "percentile", "basic": "basic", "bca": "BCa", "normal": "normal",
+                 "studentized": "studentized"}
 
 
 @dataclass(frozen=True)
@@ -117,22 +118,28 @@ def bootstrap_finding(store: Store, run_id: int, method: str = "bca") -> ChartFi
     prov = provenance_for(inp, model=run.params.get("model", "linear"), interval_method=f"bootstrap {label}, 95%",
                           resamples=result["resamples"], seed=run.params["seed"], unit=run.params["unit"],
                           by_sector=run.params.get("model") == "sector")
-    lo, hi = result["conf_int"][method]
+    lo, hi = result["conf_int"].get(method, (None, None))
     estimate = float(result["odds_ratio"])
     unit = "whole firms" if run.params["unit"] == "firm" else "departures"
+    what = result.get("label") or "odds ratio per year"
     if lo is not None and hi is not None:
-        takeaway = (f"Resampling {unit} {result['resamples']:,} times, the odds ratio per year is {estimate:.3f} "
+        takeaway = (f"Resampling {unit} {result['resamples']:,} times, the {what} is {estimate:.3f} "
                     f"(95% {label} interval {lo:.3f} to {hi:.3f}).")
     else:
         takeaway = f"Resampling {unit}: the {label} interval could not be computed."
-    ors = replicate_odds_ratios(store, run.id)
-    fig = bootstrap_histogram(ors, estimate, (lo if lo is not None else np.nan, hi if hi is not None else np.nan),
-                              method_label=f"95% {label}", title=takeaway, source=prov.short())
+    logged = result.get("scale", "log") == "log"
+    values = replicate_odds_ratios(store, run.id) if logged else store.replicates(run.id)
+    reference = 1.0 if logged else 0.0 if run.params.get("statistic") == "period_difference" else None
+    fig = bootstrap_histogram(values, estimate, (lo if lo is not None else np.nan, hi if hi is not None else np.nan),
+                              method_label=f"95% {label}", title=takeaway, source=prov.short(),
+                              what=what[:1].upper() + what[1:], reference=reference,
+                              reference_label="No change (OR = 1)" if logged else "No difference")
     failed = int(result["failed"])
     detail = (f"{'Whole firms were' if run.params['unit'] == 'firm' else 'Departures were'} drawn with replacement "
               f"(seed {run.params['seed']}); {failed:,} resample(s) could not be fitted"
               + (" and are reported, not redrawn." if failed else ".")
-              + " The dashed line marks no change (odds ratio 1).")
+              + (" The dashed line marks no change (odds ratio 1)." if logged else
+                 " The dashed line marks no difference." if reference is not None else ""))
     caveat = (f"{failed:,} resample(s) could not be fitted and are left out, not redrawn; with few firms or "
               "few forced departures the interval is itself uncertain.")
     return ChartFinding("bootstrap", fig, detail, prov, takeaway, caveat)

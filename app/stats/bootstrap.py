@@ -1,11 +1,13 @@
-"""Bootstrap intervals for the odds ratio per year of a grouped logit trend: the run workflow.
+"""Bootstrap intervals for any statistic the pages report: the run workflow.
 
-The statistic is one coefficient (by default the year slope b1, a log odds ratio per year) of the
-binomial logit GLM fitted to the forced / voluntary counts of each group. This module ties the
-pieces together: :mod:`app.stats.sampling` draws and fits the resamples (departure or firm unit,
-seeded blocks), :mod:`app.stats.jackknife` gives the leave-one-unit-out cases for the BCa
-acceleration, and :mod:`app.stats.intervals` turns replicates into percentile, basic and BCa
-intervals with their Monte Carlo error. The names callers use are re-exported here.
+The statistic is one of :mod:`app.stats.statistics` (the year slope b1 of the trend, a log odds ratio per
+year, by default; also the odds ratio per decade, a sector's own slope, the likelihood-ratio statistics of
+equal trends and of the spline bend, and the period difference in shares), or any coefficient of a design.
+This module ties the pieces together: :mod:`app.stats.sampling` draws the resamples (departure or firm unit,
+firms optionally within sectors, seeded blocks) and evaluates the statistic on them in batches,
+:mod:`app.stats.jackknife` gives the leave-one-unit-out cases for the BCa acceleration, and
+:mod:`app.stats.intervals` turns replicates into percentile, basic, BCa, normal and studentized intervals
+with their Monte Carlo error. The names callers use are re-exported here.
 """
 
 from __future__ import annotations
@@ -36,16 +38,18 @@ from app.stats.sampling import (
     coefficient_index,
     draw_cells,
     draw_replicates,
-    fit_cells,
+    draw_statistic,
     original_fit,
 )
+from app.stats.statistics import Statistic, coefficient_statistic
 from app.types import UNITS, Unit, check_choice
 
 __all__ = [
     "BLOCK_SIZE", "FAILURE_FLAG_SHARE", "INTERVAL_METHODS", "MAX_RESAMPLES", "MC_RESAMPLES",
     "BootstrapCancelled", "BootstrapIntervals", "BootstrapResult", "IntervalMethod", "Progress",
-    "Replicates", "StopCheck", "bootstrap_to_dict", "bootstrap_trend", "draw_cells", "draw_replicates",
-    "extend_bootstrap", "intervals_from_replicates", "jackknife_estimates", "summarise_replicates",
+    "Replicates", "StopCheck", "bootstrap_statistic", "bootstrap_to_dict", "bootstrap_trend", "draw_cells",
+    "draw_replicates", "draw_statistic", "extend_bootstrap", "intervals_from_replicates", "jackknife_estimates",
+    "jackknife_statistic", "summarise_replicates", "summarise_statistic",
 ]
 
 #: share of failed resamples above which a result is flagged
@@ -57,11 +61,12 @@ JACKKNIFE_CHUNK = 8192
 
 @dataclass(frozen=True)
 class BootstrapResult:
-    """A finished bootstrap of one coefficient of a grouped logit model.
+    """A finished bootstrap of one statistic.
 
-    ``estimate`` and ``replicates`` are on the log odds-ratio scale; ``odds_ratio``,
-    ``intervals`` and ``mc_error`` on the odds-ratio scale. All intervals are computed on the log
-    scale and exponentiated: percentile and BCa are unchanged by that (they respect
+    ``estimate``, ``replicates``, ``standard_errors`` and ``log_intervals`` are on the statistic's own
+    scale (for ``scale == "log"`` the log odds-ratio scale); ``odds_ratio`` (the reported value),
+    ``intervals`` and ``mc_error`` on the reported scale: exponentiated for a log-scale statistic, the
+    same numbers otherwise. Log-scale intervals are computed on the log scale and exponentiated: percentile and BCa are unchanged by that (they respect
     transformations); the basic interval reflects around the estimate on the log scale, where the
     bootstrap distribution is nearer symmetric, so on the odds-ratio scale it is
     ``(OR**2 / exp(q_hi), OR**2 / exp(q_lo))``. ``failures`` holds each resample's failure reason
@@ -90,74 +95,131 @@ class BootstrapResult:
     jackknife_values: np.ndarray
     jackknife_weights: np.ndarray
     seconds: float
+    statistic: str = "slope"
+    label: str = "odds ratio per year"
+    scale: str = "log"
+    estimate_se: float = float("nan")
+    standard_errors: np.ndarray | None = None
+    stratified: bool = False
 
 
 
-def jackknife_estimates(cells: Cells, design: Design, *, unit: Unit, coefficient: int | None = None
-                        ) -> tuple[np.ndarray, np.ndarray]:
-    """Leave-one-unit-out estimates over distinct cases and their multiplicities.
+def jackknife_statistic(cells: Cells, statistic: Statistic, *, unit: Unit) -> tuple[np.ndarray, np.ndarray]:
+    """Leave-one-unit-out values of ``statistic`` over distinct cases and their multiplicities.
 
-    Each case's counts are the original cell counts minus the unit's own (a departure's one cell,
-    or a firm's row of the firm matrix), and its fit starts from the full-data estimate, which a
-    leave-one-out fit is close to: two or three IRLS steps instead of five or six from the
-    default start, the same estimate to the convergence tolerance. Firms are processed in chunks
-    of ``JACKKNIFE_CHUNK`` cases so that memory stays bounded.
-
-    Parameters
-    ----------
-    cells : Cells
-        Group counts and the firm matrix.
-    design : Design
-        Design matrix over ``cells.groups``.
-    unit : {"departure", "firm"}
-        What one case leaves out.
-    coefficient : int, optional
-        Column whose estimate is kept; ``design.slope`` by default.
-
-    Returns
-    -------
-    (values, weights) : numpy.ndarray, numpy.ndarray
-        NaN values mark leave-one-out fits that failed (the acceleration is then NaN).
-
-    Raises
-    ------
-    ValueError
-        When the model cannot be fitted to the original counts.
+    Each case's counts are the original cell counts minus the unit's own (a departure's one cell, or a
+    firm's row of the firm matrix); fits start from the full-data estimate (``warm=True``). Firms are
+    processed in chunks of ``JACKKNIFE_CHUNK`` cases so that memory stays bounded. NaN values mark cases
+    whose statistic failed (the acceleration is then NaN).
     """
     check_choice(unit, UNITS, "unit")
-    coef = coefficient_index(design, coefficient)
-    X = np.asarray(design.matrix, dtype=float)
-    start = original_fit(cells, design)
     if unit == "departure":
         cases = departure_cases(np.concatenate([cells.forced, cells.voluntary]))
-        values, _ = fit_cells(X, cases.cells.astype(float), coef, start=start)
-        return values, cases.weights
-    parts = [(fit_cells(X, chunk.cells.astype(float), coef, start=start)[0], chunk.weights)
+        return statistic.evaluate(cases.cells.astype(float), True).values, cases.weights
+    parts = [(statistic.evaluate(chunk.cells.astype(float), True).values, chunk.weights)
              for chunk in cluster_case_chunks(cells.firm_matrix, JACKKNIFE_CHUNK)]
     return np.concatenate([v for v, _ in parts]), np.concatenate([w for _, w in parts])
 
 
-def _original_estimate(cells: Cells, design: Design, coef: int) -> float:
-    return float(original_fit(cells, design)[coef])
+def jackknife_estimates(cells: Cells, design: Design, *, unit: Unit, coefficient: int | None = None
+                        ) -> tuple[np.ndarray, np.ndarray]:
+    """Leave-one-unit-out estimates of one coefficient of ``design`` (the year slope by default).
+
+    :func:`jackknife_statistic` of that coefficient; a ValueError when the model cannot be fitted to the
+    original counts.
+    """
+    check_choice(unit, UNITS, "unit")
+    coef = coefficient_index(design, coefficient)
+    original_fit(cells, design)
+    return jackknife_statistic(cells, coefficient_statistic(cells, design.matrix, coef), unit=unit)
 
 
-def _assemble(design: Design, unit: Unit, seed: int, alpha: float, coef: int,
-              estimate: float, theta: np.ndarray, failure: np.ndarray, jk: tuple[np.ndarray, np.ndarray],
-              seconds: float) -> BootstrapResult:
+def _assemble(statistic: Statistic, unit: Unit, seed: int, alpha: float, estimate: tuple[float, float],
+              reps: Replicates, jk: tuple[np.ndarray, np.ndarray], stratified: bool) -> BootstrapResult:
+    theta, failure = reps.estimates, reps.failure
     reasons, counts = np.unique(failure[failure != ""], return_counts=True)
     by_reason = {str(r): int(c) for r, c in zip(reasons, counts, strict=True)}
     failed = int(sum(by_reason.values()))
-    iv = intervals_from_replicates(estimate, theta, jk[0], alpha, jackknife_weights=jk[1], mc_seed=seed)
-    ors = {m: (float(np.exp(lo)), float(np.exp(hi))) for m, (lo, hi) in iv.bounds.items()}
-    mc: dict[str, tuple[float, float]] = {m: (ors[m][0] * iv.mc_error[m][0], ors[m][1] * iv.mc_error[m][1]) for m in INTERVAL_METHODS}
+    iv = intervals_from_replicates(estimate[0], theta, jk[0], alpha, jackknife_weights=jk[1], mc_seed=seed,
+                                   standard_errors=reps.standard_errors, estimate_se=estimate[1])
+    logged = statistic.scale == "log"
+    shown = {m: (float(np.exp(lo)), float(np.exp(hi))) if logged else (lo, hi) for m, (lo, hi) in iv.bounds.items()}
+    mc: dict[str, tuple[float, float]] = {
+        m: (shown[m][0] * iv.mc_error[m][0], shown[m][1] * iv.mc_error[m][1]) if logged else iv.mc_error[m]
+        for m in INTERVAL_METHODS}
     return BootstrapResult(
-        unit=unit, resamples=int(theta.size), seed=seed, alpha=alpha, coefficient=design.names[coef],
-        estimate=estimate, odds_ratio=float(np.exp(estimate)), replicates=theta, failures=failure, failed=failed,
-        failed_by_reason=by_reason, failure_flag=failed > FAILURE_FLAG_SHARE * theta.size,
-        intervals=ors, log_intervals=iv.bounds, mc_error=mc, acceleration=iv.acceleration,
+        unit=unit, resamples=int(theta.size), seed=seed, alpha=alpha, coefficient=statistic.label,
+        estimate=estimate[0], odds_ratio=float(np.exp(estimate[0])) if logged else estimate[0], replicates=theta,
+        failures=failure, failed=failed, failed_by_reason=by_reason, failure_flag=failed > FAILURE_FLAG_SHARE * theta.size,
+        intervals=shown, log_intervals=iv.bounds, mc_error=mc, acceleration=iv.acceleration,
         bias=iv.bias, standard_error=iv.standard_error, jackknife_values=jk[0],
-        jackknife_weights=jk[1], seconds=seconds,
+        jackknife_weights=jk[1], seconds=reps.seconds, statistic=statistic.name, label=statistic.label,
+        scale=statistic.scale, estimate_se=estimate[1], standard_errors=reps.standard_errors, stratified=stratified,
     )
+
+
+def bootstrap_statistic(
+    cells: Cells,
+    statistic: Statistic,
+    *,
+    unit: Unit,
+    resamples: int,
+    seed: int,
+    alpha: float = 0.05,
+    strata: np.ndarray | None = None,
+    chunk_size: int | None = None,
+    workers: int | None = None,
+    progress: Progress | None = None,
+    should_stop: StopCheck | None = None,
+) -> BootstrapResult:
+    """Bootstrap ``statistic`` over ``cells``: draw, evaluate, jackknife, intervals.
+
+    Parameters are those of :func:`app.stats.sampling.draw_statistic`, plus ``alpha`` (two-sided error
+    rate of the intervals). The statistic is computed on the original counts first, so counts it cannot
+    handle stop the run before anything is drawn. The BCa acceleration uses the jackknife over the same
+    unit: leave out one departure, or one whole firm.
+
+    Raises
+    ------
+    ValueError
+        On a bad argument (the message names the allowed values), or when the statistic cannot be computed
+        on the original counts.
+    BootstrapCancelled
+        When ``should_stop`` asked for it.
+    """
+    check_choice(unit, UNITS, "unit")
+    alpha = check_alpha(alpha)
+    estimate = statistic.original(cells)
+    reps = draw_statistic(cells, statistic.evaluate, unit=unit, resamples=resamples, seed=seed, strata=strata,
+                          chunk_size=chunk_size, workers=workers, progress=progress, should_stop=should_stop)
+    jk = jackknife_statistic(cells, statistic, unit=unit)
+    return _assemble(statistic, unit, int(seed), alpha, estimate, reps, jk, strata is not None)
+
+
+def summarise_statistic(cells: Cells, statistic: Statistic, replicates: Replicates, *, unit: Unit, seed: int,
+                        alpha: float = 0.05, stratified: bool = False) -> BootstrapResult:
+    """Intervals and failure counts from stored replicates (e.g. a run drawn in chunks by a job).
+
+    The estimate, its standard error and the jackknife are recomputed from ``cells``; ``replicates`` are the
+    concatenated draws for resamples 0 .. B-1 (``standard_errors`` None leaves the studentized interval NaN).
+    """
+    check_choice(unit, UNITS, "unit")
+    alpha = check_alpha(alpha)
+    theta = np.asarray(replicates.estimates, dtype=float)
+    why = np.asarray(replicates.failure).astype(str)
+    se = replicates.standard_errors
+    if theta.shape != why.shape or (se is not None and np.shape(se) != theta.shape):
+        raise ValueError("estimates, failures and standard errors must have one entry per resample.")
+    reps = Replicates(0, theta, why, float(replicates.seconds), None if se is None else np.asarray(se, dtype=float))
+    estimate = statistic.original(cells)
+    jk = jackknife_statistic(cells, statistic, unit=unit)
+    return _assemble(statistic, unit, int(seed), alpha, estimate, reps, jk, stratified)
+
+
+def _design_statistic(cells: Cells, design: Design, coefficient: int | None) -> Statistic:
+    coef = coefficient_index(design, coefficient)
+    original_fit(cells, design)
+    return coefficient_statistic(cells, design.matrix, coef, label=design.names[coef])
 
 
 def bootstrap_trend(
@@ -174,34 +236,15 @@ def bootstrap_trend(
     progress: Progress | None = None,
     should_stop: StopCheck | None = None,
 ) -> BootstrapResult:
-    """Bootstrap the odds ratio of one coefficient (the year slope by default).
+    """Bootstrap the odds ratio of one coefficient of ``design`` (the year slope by default).
 
-    Parameters are those of :func:`draw_replicates`, plus ``alpha`` (two-sided error rate of
-    the intervals). The BCa acceleration uses the jackknife over the same unit: leave out one
-    departure, or one whole firm.
-
-    Returns
-    -------
-    BootstrapResult
-
-    Raises
-    ------
-    ValueError
-        On a bad unit, resample count, seed or alpha (the message names the allowed values), or
-        when the model cannot be fitted to the original counts.
-    BootstrapCancelled
-        When ``should_stop`` asked for it.
+    :func:`bootstrap_statistic` of that coefficient; ``result.coefficient`` is the column's name.
     """
     check_choice(unit, UNITS, "unit")
     alpha = check_alpha(alpha)
-    coef = coefficient_index(design, coefficient)
-    estimate = _original_estimate(cells, design, coef)
-    reps = draw_replicates(cells, design, unit=unit, resamples=resamples, seed=seed, coefficient=coef,
-                           chunk_size=chunk_size, workers=workers, progress=progress,
-                           should_stop=should_stop)
-    jk = jackknife_estimates(cells, design, unit=unit, coefficient=coef)
-    return _assemble(design, unit, int(seed), alpha, coef, estimate, reps.estimates, reps.failure,
-                     jk, reps.seconds)
+    statistic = _design_statistic(cells, design, coefficient)
+    return bootstrap_statistic(cells, statistic, unit=unit, resamples=resamples, seed=seed, alpha=alpha,
+                               chunk_size=chunk_size, workers=workers, progress=progress, should_stop=should_stop)
 
 
 def extend_bootstrap(
@@ -215,44 +258,33 @@ def extend_bootstrap(
     progress: Progress | None = None,
     should_stop: StopCheck | None = None,
 ) -> BootstrapResult:
-    """Add ``resamples`` more resamples to an earlier result, reusing its replicates.
+    """Add ``resamples`` more resamples to an earlier :func:`bootstrap_trend` result, reusing its replicates.
 
-    The combined result equals a single run with ``result.resamples + resamples`` resamples.
-
-    Parameters
-    ----------
-    result : BootstrapResult
-        The earlier run.
-    cells, design : Cells, Design
-        The ones the earlier run used (checked via the estimate).
-    resamples : int
-        Resamples to add.
-    chunk_size, workers, progress, should_stop
-        As for :func:`draw_replicates`.
-
-    Returns
-    -------
-    BootstrapResult
-
-    Raises
-    ------
-    ValueError
-        When ``cells`` and ``design`` do not reproduce the earlier estimate.
+    The combined result equals a single run with ``result.resamples + resamples`` resamples. A ValueError
+    when ``cells`` and ``design`` do not reproduce the earlier estimate.
     """
     coef = design.names.index(result.coefficient) if result.coefficient in design.names else -1
-    if coef < 0 or _original_estimate(cells, design, coef) != result.estimate:
+    if coef < 0 or float(original_fit(cells, design)[coef]) != result.estimate:
         raise ValueError("These cells and design do not reproduce the earlier estimate; cannot extend.")
-    more = draw_replicates(cells, design, unit=result.unit, resamples=resamples, seed=result.seed,
-                           start=result.resamples, coefficient=coef, chunk_size=chunk_size,
-                           workers=workers, progress=progress, should_stop=should_stop)
-    return _assemble(design, result.unit, result.seed, result.alpha, coef, result.estimate,
-                     np.concatenate([result.replicates, more.estimates]),
-                     np.concatenate([result.failures, more.failure]),
-                     (result.jackknife_values, result.jackknife_weights), result.seconds + more.seconds)
+    statistic = _design_statistic(cells, design, coef)
+    more = draw_statistic(cells, statistic.evaluate, unit=result.unit, resamples=resamples, seed=result.seed,
+                          start=result.resamples, chunk_size=chunk_size, workers=workers, progress=progress,
+                          should_stop=should_stop)
+    ses = (None if result.standard_errors is None or more.standard_errors is None
+           else np.concatenate([result.standard_errors, more.standard_errors]))
+    reps = Replicates(0, np.concatenate([result.replicates, more.estimates]),
+                      np.concatenate([result.failures, more.failure]), result.seconds + more.seconds, ses)
+    return _assemble(statistic, result.unit, result.seed, result.alpha, (result.estimate, result.estimate_se), reps,
+                     (result.jackknife_values, result.jackknife_weights), result.stratified)
 
 
 def bootstrap_to_dict(result: BootstrapResult) -> dict[str, Any]:
-    """JSON-ready summary with the command line's keys (NaN becomes None)."""
+    """JSON-ready summary with the command line's keys (NaN becomes None).
+
+    ``odds_ratio``/``log_odds_ratio`` are the reported value and the estimate for every statistic (for
+    one on the identity scale the two are the same number); ``statistic``, ``label`` and ``scale`` say what
+    they are. ``estimate_se`` is the standard error on the original data the studentized interval uses.
+    """
     def num(x: float) -> float | None:
         return float(x) if np.isfinite(x) else None
 
@@ -276,6 +308,11 @@ def bootstrap_to_dict(result: BootstrapResult) -> dict[str, Any]:
         "acceleration": num(result.acceleration),
         "bias": num(result.bias),
         "standard_error": num(result.standard_error),
+        "statistic": result.statistic,
+        "label": result.label,
+        "scale": result.scale,
+        "estimate_se": num(result.estimate_se),
+        "stratified": result.stratified,
     }
 
 
@@ -290,37 +327,11 @@ def summarise_replicates(
     alpha: float = 0.05,
     coefficient: int | None = None,
     seconds: float = 0.0,
+    standard_errors: np.ndarray | None = None,
 ) -> BootstrapResult:
-    """Intervals and failure counts from stored replicates (e.g. a run drawn in chunks by a job).
-
-    Parameters
-    ----------
-    cells, design : Cells, Design
-        The data and model the replicates were drawn from; the estimate and jackknife are
-        recomputed from them.
-    estimates, failures : numpy.ndarray
-        The concatenated outputs of :func:`draw_replicates` for resamples 0 .. B-1.
-    unit : {"departure", "firm"}
-    seed : int
-        The run's seed (also seeds the Monte Carlo error).
-    alpha : float
-        Two-sided error rate of the intervals.
-    coefficient : int, optional
-        Column of the design; ``design.slope`` by default.
-    seconds : float
-        Time spent drawing, reported with the result.
-
-    Returns
-    -------
-    BootstrapResult
-    """
-    check_choice(unit, UNITS, "unit")
-    alpha = check_alpha(alpha)
-    coef = coefficient_index(design, coefficient)
-    theta = np.asarray(estimates, dtype=float)
-    why = np.asarray(failures).astype(str)
-    if theta.shape != why.shape:
-        raise ValueError("estimates and failures must have one entry per resample.")
-    estimate = _original_estimate(cells, design, coef)
-    jk = jackknife_estimates(cells, design, unit=unit, coefficient=coef)
-    return _assemble(design, unit, int(seed), alpha, coef, estimate, theta, why, jk, float(seconds))
+    """:func:`summarise_statistic` of one coefficient of ``design`` (the year slope by default)."""
+    statistic = _design_statistic(cells, design, coefficient)
+    return summarise_statistic(cells, statistic, Replicates(0, np.asarray(estimates, dtype=float),
+                                                            np.asarray(failures).astype(str), float(seconds),
+                                                            standard_errors),
+                               unit=unit, seed=seed, alpha=alpha)

@@ -1,7 +1,17 @@
-"""Percentile, basic and BCa intervals from stored bootstrap replicates, with Monte Carlo error.
+"""Percentile, basic, BCa, normal and studentized intervals from stored bootstrap replicates, with Monte Carlo error.
 
 Everything here works on replicate values alone (plus the jackknife values for the BCa
-acceleration), so intervals can be recomputed from a stored run without drawing again.
+acceleration, and each resample's standard error for the studentized interval), so intervals can
+be recomputed from a stored run without drawing again.
+
+Normal: Davison & Hinkley (1997) eq. 5.5, the bias-corrected normal approximation
+``estimate - b -/+ z_{1-alpha/2} sd`` with ``b = mean(replicates) - estimate`` and ``sd`` their
+standard deviation (ddof 1): Efron & Tibshirani (1993) ch. 13's standard interval with the
+bootstrap's bias estimate (ch. 10) taken off; R's ``boot.ci(type = "norm")`` computes the same.
+Studentized (bootstrap-t): Efron & Tibshirani (1993) ch. 12.5, Davison & Hinkley (1997) eq. 5.7:
+``t* = (replicate - estimate) / se*`` with ``se*`` each resample's own standard error, and the
+interval ``(estimate - se t*_{1-alpha/2}, estimate - se t*_{alpha/2})`` with ``se`` the standard
+error on the original data.
 """
 
 from __future__ import annotations
@@ -14,8 +24,8 @@ from scipy.special import ndtr, ndtri
 
 from app.stats.jackknife import jackknife_acceleration
 
-IntervalMethod = Literal["percentile", "basic", "bca"]
-INTERVAL_METHODS: tuple[IntervalMethod, ...] = ("percentile", "basic", "bca")
+IntervalMethod = Literal["percentile", "basic", "bca", "normal", "studentized"]
+INTERVAL_METHODS: tuple[IntervalMethod, ...] = ("percentile", "basic", "bca", "normal", "studentized")
 
 #: replicate values re-drawn at once when estimating Monte Carlo error (8 bytes each)
 PASS_ELEMENTS = 1_000_000
@@ -35,7 +45,8 @@ class BootstrapIntervals:
         Finite replicates used (failed resamples are left out, so intervals are conditional on
         a successful fit).
     bounds : dict of str to (float, float)
-        ``percentile``, ``basic``, ``bca``.
+        ``percentile``, ``basic``, ``bca``, ``normal``, ``studentized`` (NaN where no standard
+        error per resample was given, or one of them is not finite or is zero).
     mc_error : dict of str to (float, float)
         Monte Carlo standard error of each bound: the SD of that bound over ``MC_RESAMPLES``
         re-resamples (with replacement) of the replicates, acceleration held fixed.
@@ -91,7 +102,18 @@ def _bounds(ordered: np.ndarray, estimate: float, alpha: float, accel: float
         adjusted = ndtr(z0[:, None] + shifted / (1 - accel * shifted))
     bca = _quantile_sorted(ordered, np.nan_to_num(adjusted, nan=0.0))
     bca[~np.isfinite(adjusted).all(axis=1)] = np.nan
-    return {"percentile": pct, "basic": basic, "bca": bca}, z0
+    centre = 2 * estimate - ordered.mean(axis=1)
+    half = ndtri(1 - alpha / 2) * np.std(ordered, axis=1, ddof=1)
+    normal = np.column_stack([centre - half, centre + half])
+    return {"percentile": pct, "basic": basic, "bca": bca, "normal": normal}, z0
+
+
+def _studentized(t_sorted: np.ndarray | None, estimate: float, se: float, alpha: float) -> np.ndarray:
+    """Bootstrap-t bounds for each row of sorted studentized replicates (NaN rows where unavailable)."""
+    if t_sorted is None or not np.isfinite(se):
+        return np.full((1 if t_sorted is None else t_sorted.shape[0], 2), np.nan)
+    q = _quantile_sorted(t_sorted, np.tile([alpha / 2, 1 - alpha / 2], (t_sorted.shape[0], 1)))
+    return estimate - se * q[:, ::-1]
 
 
 def intervals_from_replicates(
@@ -103,6 +125,8 @@ def intervals_from_replicates(
     jackknife_weights: np.ndarray | None = None,
     mc_seed: int = 0,
     mc_resamples: int = MC_RESAMPLES,
+    standard_errors: np.ndarray | None = None,
+    estimate_se: float = float("nan"),
 ) -> BootstrapIntervals:
     """Percentile, basic and BCa intervals from stored bootstrap replicates.
 
@@ -122,6 +146,11 @@ def intervals_from_replicates(
         Seed of the re-resampling that estimates Monte Carlo error.
     mc_resamples : int
         Re-resamples for the Monte Carlo error (at least 2; 0 skips it and gives NaN errors).
+    standard_errors : numpy.ndarray, optional
+        Each resample's standard error of the statistic (aligned with ``replicates``), for the
+        studentized interval; the Monte Carlo re-resampling draws (replicate, standard error) pairs.
+    estimate_se : float
+        The statistic's standard error on the original data (studentized interval).
 
     Returns
     -------
@@ -133,12 +162,25 @@ def intervals_from_replicates(
     """
     alpha = check_alpha(alpha)
     values = np.asarray(replicates, dtype=float)
-    finite = np.sort(values[np.isfinite(values)])
+    kept = np.isfinite(values)
+    order = np.argsort(values[kept], kind="stable")  # the sorted replicates, with their standard errors
+    finite = values[kept][order]
     if finite.size < 2:
         raise ValueError("at least 2 successful resamples are needed for an interval.")
+    t_values: np.ndarray | None = None
+    if standard_errors is not None:
+        se = np.asarray(standard_errors, dtype=float)
+        if se.shape != values.shape:
+            raise ValueError("standard_errors must have one entry per replicate.")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            t_values = (finite - float(estimate)) / se[kept][order]
+        if not np.isfinite(t_values).all():
+            t_values = None
     weights = None if jackknife_weights is None else [np.asarray(jackknife_weights)]
     accel = jackknife_acceleration([np.asarray(jackknife_values, dtype=float)], weights)
     bounds, z0 = _bounds(finite[None, :], float(estimate), alpha, accel)
+    bounds["studentized"] = _studentized(None if t_values is None else np.sort(t_values)[None, :],
+                                         float(estimate), float(estimate_se), alpha)
 
     rng = np.random.default_rng(mc_seed)
     per_pass = max(1, PASS_ELEMENTS // finite.size)
@@ -149,9 +191,12 @@ def intervals_from_replicates(
         raise ValueError(f"mc_resamples must be 0 or at least 2; got {mc_resamples!r}.")
     for lo in range(0, mc_resamples, per_pass):
         rows = min(per_pass, mc_resamples - lo)
-        again = np.sort(finite[rng.integers(0, finite.size, size=(rows, finite.size))], axis=1)
+        picked = rng.integers(0, finite.size, size=(rows, finite.size))
+        again = np.sort(finite[picked], axis=1)
         for method, value in _bounds(again, float(estimate), alpha, accel)[0].items():
             redrawn[method].append(value)
+        t_again = None if t_values is None else np.sort(t_values[picked], axis=1)
+        redrawn["studentized"].append(_studentized(t_again, float(estimate), float(estimate_se), alpha))
     mc_error: dict[str, tuple[float, float]] = {}
     for method in INTERVAL_METHODS:
         stacked = np.concatenate(redrawn[method])

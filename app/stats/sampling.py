@@ -77,12 +77,16 @@ class Replicates:
         ``""`` or the failure reason (see ``app.stats.irls.FAILURE_REASONS``).
     seconds : float
         Wall-clock time spent drawing and fitting.
+    standard_errors : numpy.ndarray of float, optional
+        Each resample's standard error of the statistic, where the statistic has one (studentized
+        intervals).
     """
 
     start: int
     estimates: np.ndarray
     failure: np.ndarray
     seconds: float
+    standard_errors: np.ndarray | None = None
 
 
 
@@ -139,7 +143,7 @@ class CellSampler:
     the sparse product from 500 to 100,000 firms (benchmarks/README.md).
     """
 
-    def __init__(self, cells: Cells, unit: Unit) -> None:
+    def __init__(self, cells: Cells, unit: Unit, strata: np.ndarray | None = None) -> None:
         self.counts = np.concatenate([cells.forced, cells.voluntary]).astype(np.int64)
         self.unit = unit
         self.total = int(self.counts.sum())
@@ -155,10 +159,33 @@ class CellSampler:
             # than n_firms times the largest entry in a cell; half the bytes to move per product
             self.dtype = np.float32 if self.n_firms * float(matrix.max()) < 2**24 else np.float64
             self.firm_t = sparse.csc_matrix(matrix.astype(self.dtype).T)
+        # stratified firm draws: slot j of a resample draws uniformly among the firms of its stratum
+        self.slot_low: np.ndarray | None = None
+        self.slot_size: np.ndarray | None = None
+        self.slot_firms: np.ndarray | None = None
+        if strata is not None:
+            if unit != "firm":
+                raise ValueError("Stratified resampling draws whole firms within each sector; use unit firm.")
+            strata = np.asarray(strata, dtype=np.int64)
+            if strata.shape != (self.n_firms,):
+                raise ValueError("strata must give one stratum per firm of the cells.")
+            order = np.argsort(strata, kind="stable")  # firms grouped by stratum, in firm order within one
+            ordered = strata[order]
+            starts = np.searchsorted(ordered, ordered, side="left")
+            ends = np.searchsorted(ordered, ordered, side="right")
+            self.slot_firms, self.slot_low, self.slot_size = order, starts, ends - starts
 
     def pass_rows(self, rows: int) -> int:
         """Resamples drawn per pass for a request of ``rows``."""
         return max(1, min(rows, PASS_ROWS, max(MIN_PASS_ROWS, PASS_VALUES // max(self.n_firms, 1))))
+
+    def _firms(self, rng: np.random.Generator) -> np.ndarray:
+        """One resample's drawn firms: ``n_firms`` uniform draws, or within strata the same number per stratum
+        as it holds (one ``integers`` call with a per-slot upper bound)."""
+        if self.slot_size is None:
+            return rng.integers(0, self.n_firms, size=self.n_firms)
+        assert self.slot_firms is not None and self.slot_low is not None
+        return self.slot_firms[self.slot_low + rng.integers(0, self.slot_size)]
 
     def draw(self, rng: np.random.Generator, rows: int) -> np.ndarray:
         """``rows`` resamples of the cell counts, shape (rows, n_cells), from ``rng``."""
@@ -172,7 +199,7 @@ class CellSampler:
         for lo in range(0, rows, per_pass):
             r = min(per_pass, rows - lo)
             for j in range(r):
-                block[:, j] = np.bincount(rng.integers(0, n_firms, size=n_firms), minlength=n_firms)
+                block[:, j] = np.bincount(self._firms(rng), minlength=n_firms)
             mult = block if r == per_pass else np.ascontiguousarray(block[:, :r])
             out[lo:lo + r] = (self.firm_t @ mult).T
         return out
@@ -252,9 +279,13 @@ def block_rng(seed: int, block: int) -> np.random.Generator:
     return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
 
 
-def _block(k: int, seed: int, sampler: CellSampler, X: np.ndarray, coef: int
-           ) -> tuple[np.ndarray, np.ndarray]:
-    return fit_cells(X, sampler.draw(block_rng(seed, k), BLOCK_SIZE), coef)
+#: a statistic of resampled cells: rows (n, 2 * n_groups) -> (values, failure reasons, standard errors or None)
+Evaluate = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray | None]]
+
+
+def _block(k: int, seed: int, sampler: CellSampler, evaluate: Evaluate
+           ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    return evaluate(sampler.draw(block_rng(seed, k), BLOCK_SIZE))
 
 
 def draw_cells(cells: Cells, *, unit: Unit, seed: int, block: int) -> np.ndarray:
@@ -327,21 +358,61 @@ def draw_replicates(
         When ``should_stop`` asked for it.
     """
     check_choice(unit, UNITS, "unit")
-    n = check_count(resamples, "resamples", 1, MAX_RESAMPLES)
-    seed = check_count(seed, "seed", 0)
-    start = check_count(start, "start", 0)
+    check_count(resamples, "resamples", 1, MAX_RESAMPLES)
+    check_count(seed, "seed", 0)
+    check_count(start, "start", 0)
     coef = coefficient_index(design, coefficient)
     X = np.asarray(design.matrix, dtype=float)
     original_fit(cells, design)  # fails fast, before anything is drawn
+
+    def evaluate(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray, None]:
+        theta, why = fit_cells(X, rows, coef)
+        return theta, why, None
+
+    return draw_statistic(cells, evaluate, unit=unit, resamples=resamples, seed=seed, start=start,
+                          chunk_size=chunk_size, workers=workers, progress=progress, should_stop=should_stop)
+
+
+def draw_statistic(
+    cells: Cells,
+    evaluate: Evaluate,
+    *,
+    unit: Unit,
+    resamples: int,
+    seed: int,
+    start: int = 0,
+    strata: np.ndarray | None = None,
+    chunk_size: int | None = None,
+    workers: int | None = None,
+    progress: Progress | None = None,
+    should_stop: StopCheck | None = None,
+) -> Replicates:
+    """Draw resamples ``start .. start + resamples - 1`` of ``cells`` and evaluate a statistic on each.
+
+    The draws depend only on the cells, the unit, the strata, the seed and the resample index, never on the
+    statistic: every statistic over the same cells sees the same resamples. Parameters are those of
+    :func:`draw_replicates`, with ``evaluate`` (e.g. ``app.stats.statistics.Statistic.evaluate`` unpacked)
+    in place of the design, and ``strata`` (one stratum index per firm) to resample firms within strata:
+    each resample then holds as many firms of each stratum as the data do.
+
+    Returns
+    -------
+    Replicates
+    """
+    check_choice(unit, UNITS, "unit")
+    n = check_count(resamples, "resamples", 1, MAX_RESAMPLES)
+    seed = check_count(seed, "seed", 0)
+    start = check_count(start, "start", 0)
     n_workers = check_count(workers, "workers", 1) if workers is not None else min(8, os.cpu_count() or 1)
     per_round = -(-check_count(chunk_size or 2000, "chunk_size", 1) // BLOCK_SIZE)
 
     began = time.perf_counter()
-    sampler = CellSampler(cells, unit)
+    sampler = CellSampler(cells, unit, strata)
     first, last = start // BLOCK_SIZE, (start + n - 1) // BLOCK_SIZE
     blocks = list(range(first, last + 1))
     estimates: list[np.ndarray] = []
     failures: list[np.ndarray] = []
+    errors: list[np.ndarray | None] = []
     pool = ThreadPoolExecutor(max_workers=n_workers) if n_workers > 1 else None
     try:
         for r in range(0, len(blocks), per_round):
@@ -350,12 +421,13 @@ def draw_replicates(
                 raise BootstrapCancelled(done, n)
             batch = blocks[r:r + per_round]
             if pool is None:
-                results = [_block(k, seed, sampler, X, coef) for k in batch]
+                results = [_block(k, seed, sampler, evaluate) for k in batch]
             else:
-                results = list(pool.map(lambda k: _block(k, seed, sampler, X, coef), batch))
-            for theta, why in results:
+                results = list(pool.map(lambda k: _block(k, seed, sampler, evaluate), batch))
+            for theta, why, se in results:
                 estimates.append(theta)
                 failures.append(why)
+                errors.append(se)
             if progress is not None:
                 done = min(n, (r + len(batch)) * BLOCK_SIZE - (start - first * BLOCK_SIZE))
                 progress(done, n)
@@ -365,6 +437,9 @@ def draw_replicates(
     offset = start - first * BLOCK_SIZE
     theta_all = np.concatenate(estimates)[offset:offset + n]
     why_all = np.concatenate(failures)[offset:offset + n]
+    se_all = None
+    if errors and all(e is not None for e in errors):
+        se_all = np.concatenate([e for e in errors if e is not None])[offset:offset + n]
     return Replicates(start=start, estimates=theta_all, failure=why_all,
-                      seconds=time.perf_counter() - began)
+                      seconds=time.perf_counter() - began, standard_errors=se_all)
 

@@ -136,9 +136,16 @@ class RunQueries(Gateway):
                 ))
         return ids
 
-    def append_replicates(self, run_id: int, values: np.ndarray, failures: Sequence[str] | None = None) -> None:
-        """Append a block of replicate estimates (float64) and their failure reasons to a run, compressed."""
+    def append_replicates(self, run_id: int, values: np.ndarray, failures: Sequence[str] | None = None,
+                          standard_errors: np.ndarray | None = None) -> None:
+        """Append a block of replicate estimates (float64), their failure reasons and (where the statistic has
+        one) their standard errors to a run, compressed."""
         data = zlib.compress(np.ascontiguousarray(values, dtype="<f8").tobytes(), 6)
+        errors = None
+        if standard_errors is not None:
+            if len(standard_errors) != len(values):
+                raise StoreError("one standard error per replicate is needed")
+            errors = zlib.compress(np.ascontiguousarray(standard_errors, dtype="<f8").tobytes(), 6)
         reasons = list(failures) if failures is not None else [""] * len(values)
         if len(reasons) != len(values):
             raise StoreError("one failure reason per replicate is needed")
@@ -148,7 +155,7 @@ class RunQueries(Gateway):
                 select(func.coalesce(func.max(run_replicates.c.seq), -1)).where(run_replicates.c.run_id == run_id)
             ).scalar_one() + 1
             conn.execute(insert(run_replicates).values(run_id=run_id, seq=seq, count=len(values), data=data,
-                                                       failures=packed))
+                                                       failures=packed, standard_errors=errors))
 
     def replicates(self, run_id: int) -> np.ndarray:
         """All stored replicate estimates of a run, in resample order."""
@@ -168,3 +175,13 @@ class RunQueries(Gateway):
             part = zlib.decompress(r[1]).decode().split("\n")
             reasons.extend(part if r[2] else [])
         return values, np.array(reasons, dtype=object)
+
+    def replicate_standard_errors(self, run_id: int) -> np.ndarray | None:
+        """Each stored resample's standard error, in resample order; None unless every chunk has them."""
+        with self.engine.connect() as conn:
+            rows = conn.execute(
+                select(run_replicates.c.standard_errors).where(run_replicates.c.run_id == run_id)
+                .order_by(run_replicates.c.seq)).fetchall()
+        if not rows or any(r[0] is None for r in rows):
+            return None
+        return np.concatenate([np.frombuffer(zlib.decompress(r[0]), dtype="<f8") for r in rows])

@@ -24,7 +24,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0007"
+HEAD_REVISION = "0008"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -161,6 +161,9 @@ run_replicates = Table(
     Column("count", Integer, nullable=False),
     Column("data", LargeBinary, nullable=False),  # zlib-compressed float64 replicates (NaN = failed)
     Column("failures", LargeBinary, nullable=False),  # zlib-compressed, one reason per line ("" = ok)
+    # zlib-compressed float64 standard error of each resample's statistic (studentized intervals); NULL
+    # where the statistic has none or the chunk predates revision 0006
+    Column("standard_errors", LargeBinary),
     UniqueConstraint("run_id", "seq"),
 )
 

@@ -12,10 +12,11 @@ from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Resp
 from starlette.concurrency import run_in_threadpool
 
 from app.analysis.inputs import input_for_run, load_input
-from app.analysis.jobs import MAX_RESAMPLES, bootstrap_params, create_bootstrap_run, extend_run
+from app.analysis.jobs import MAX_RESAMPLES, STRATIFY, bootstrap_params, create_bootstrap_run, extend_run
 from app.analysis.replication import build_pack, jackknife_csv, replicates_csv, replicates_payload
 from app.analysis.runs import run_trend
 from app.briefing.findings import bootstrap_finding
+from app.stats.statistic_names import STATISTIC_HELP, STATISTICS
 from app.stats.trend import TrendError
 from app.store import Roster, Run, Store, StoreError
 from app.types import UNITS
@@ -28,8 +29,9 @@ from app.web.schemas import BootstrapRunOut, IntervalRow, Percent, ReplicatesBod
 
 router = APIRouter()
 
-METHODS = ("percentile", "basic", "bca")
-METHOD_LABELS = {"percentile": "percentile", "basic": "basic", "bca": "BCa"}
+METHODS = ("percentile", "basic", "bca", "normal", "studentized")
+METHOD_LABELS = {"percentile": "percentile", "basic": "basic", "bca": "BCa", "normal": "normal",
+                 "studentized": "studentized"}
 
 
 @dataclass(frozen=True)
@@ -45,6 +47,9 @@ class ResamplingPage:
     warnings: list[str] = field(default_factory=list)
     max_resamples: int = MAX_RESAMPLES
     units: tuple[str, ...] = UNITS
+    statistics: tuple[str, ...] = STATISTICS
+    statistic_help: dict[str, str] = field(default_factory=lambda: dict(STATISTIC_HELP))
+    sectors: list[str] = field(default_factory=list)
 
 
 RunsBody = define(ResamplingPage, "RunsBody", fields={"runs": list_of(BootstrapRunOut)})
@@ -78,10 +83,12 @@ def resampling_data(store: Store, roster_id: int, error: str | None = None) -> R
     try:
         inp = load_input(store, roster.id)
         mapping_label, window, warnings = inp.mapping_label, inp.window, inp.warnings()
+        sectors = sorted(set(inp.group_cells(by_sector=True).groups["sector"].astype(str)))
     except StoreError as exc:
-        mapping_label, window, error = "no mapping", None, error or str(exc)
+        mapping_label, window, error, sectors = "no mapping", None, error or str(exc), []
     return ResamplingPage(roster, mapping_label, window, store.list_runs(roster.id, "bootstrap"),
-                          default_seed=secrets.randbelow(900_000) + 100_000, error=error, warnings=warnings)
+                          default_seed=secrets.randbelow(900_000) + 100_000, error=error, warnings=warnings,
+                          sectors=sectors)
 
 
 def _roster(store: Store, roster_id: int) -> Roster:
@@ -142,6 +149,8 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
     if method not in METHODS:
         raise BadRequest(f"method must be one of {', '.join(METHODS)}; got {method!r}.")
     run = _run(store, run_id)
+    if run.result is not None and method not in run.result["conf_int"]:
+        method = "bca"  # a run stored before normal and studentized intervals existed
     try:
         roster: Roster | None = store.get_roster(run.roster_id)
     except StoreError:
@@ -151,17 +160,19 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
         return RunPage(roster, run, method, percent=percent, roster_deleted=roster is None)
     result = run.result
     rows = [{"method": METHOD_LABELS[m], "interval": result["conf_int"][m], "mc_error": result["mc_error"][m],
-             "source": f"bootstrap, B = {result['resamples']:,}"} for m in METHODS]
+             "source": f"bootstrap, B = {result['resamples']:,}"} for m in METHODS if m in result["conf_int"]]
     if roster is None:
         return RunPage(None, run, method, rows, percent=100, roster_deleted=True)
-    try:
-        inp = input_for_run(store, run)
-        fit = run_trend(store, inp, model=run.params.get("model", "linear")).fit
-        for name in ("wald", "profile"):
-            rows.append({"method": "Wald" if name == "wald" else "profile likelihood",
-                         "interval": fit.conf_int.get(name), "mc_error": None, "source": "trend fit (model-based)"})
-    except (StoreError, TrendError) as exc:
-        rows.append({"method": "model-based", "interval": None, "mc_error": None, "source": str(exc)})
+    if run.params.get("statistic", "slope") == "slope":  # model-based intervals of the same number
+        try:
+            inp = input_for_run(store, run)
+            fit = run_trend(store, inp, model=run.params.get("model", "linear")).fit
+            for name in ("wald", "profile"):
+                rows.append({"method": "Wald" if name == "wald" else "profile likelihood",
+                             "interval": fit.conf_int.get(name), "mc_error": None,
+                             "source": "trend fit (model-based)"})
+        except (StoreError, TrendError) as exc:
+            rows.append({"method": "model-based", "interval": None, "mc_error": None, "source": str(exc)})
     fig = bootstrap_finding(store, run.id, method).figure
     comparison, found = compare_units(store, run, method)
     return RunPage(roster, run, method, rows, comparison, found, figure_spec(fig, titled=False), 100)
@@ -196,6 +207,15 @@ def _int_field(form: Any, key: str, default: int) -> int:
                                "description": "B, the number of resamples (thousands separators allowed)"},
                  "seed": {"type": "integer", "minimum": 0, "maximum": 2**63 - 1, "default": 1},
                  "model": {"type": "string", "enum": ["linear", "sector"], "default": "linear"},
+                 "statistic": {"type": "string", "enum": list(STATISTICS), "default": "slope",
+                               "description": "what to bootstrap"},
+                 "sector": {"type": "string", "description": "sector_slope: the sector"},
+                 "spline_df": {"type": "integer", "minimum": 2, "maximum": 6, "default": 3,
+                               "description": "spline_bend: the spline's df"},
+                 "periods": {"type": "string", "description": "period_difference: FROM-TO:FROM-TO (default: the "
+                                                              "window's last third against the rest)"},
+                 "stratify": {"type": "string", "enum": list(STRATIFY), "default": "none",
+                              "description": "sector: draw firms within their sector (unit firm)"},
              }))
 async def resampling_start(request: Request, roster_id: int) -> Response:
     """Store the run, hand it to a worker, and go to its page (which shows the progress)."""
@@ -207,8 +227,13 @@ def _resampling_start(request: Request, roster_id: int, form: dict[str, str | Up
     store = app_store(request)
     roster = _roster(store, roster_id)
     try:
+        statistic = str(form.get("statistic") or "slope")
         params = bootstrap_params(unit=str(form.get("unit") or "firm"), resamples=_int_field(form, "resamples", 2000),
-                                  seed=_int_field(form, "seed", 1), model=str(form.get("model") or "linear"))
+                                  seed=_int_field(form, "seed", 1), model=str(form.get("model") or "linear"),
+                                  statistic=statistic, sector=str(form.get("sector") or "") or None,
+                                  spline_df=_int_field(form, "spline_df", 3) if statistic == "spline_bend" else None,
+                                  periods=str(form.get("periods") or "").strip() or None,
+                                  stratify=str(form.get("stratify") or "none"))
         inp = load_input(store, roster.id)
         run_id = create_bootstrap_run(store, inp, params)
     except (ValueError, BadRequest) as exc:

@@ -216,9 +216,14 @@ class DepartureOut(_Exact):
 
 
 class ReplicateOut(_Exact):
+    """One resample: the statistic as a log odds ratio and odds ratio, or as ``estimate`` for a statistic not on
+    the odds-ratio scale; its standard error where the statistic has one."""
+
     index: int
-    log_odds_ratio: float | None
-    odds_ratio: float | None
+    log_odds_ratio: float | None = None
+    odds_ratio: float | None = None
+    estimate: float | None = None
+    standard_error: float | None = None
     status: Literal["ok", "failed"]
     reason: str
 
@@ -227,7 +232,8 @@ class JackknifeOut(_Exact):
     """One resampling unit left out: a firm id, or a departure's roster line with its cell."""
 
     unit_id: str
-    log_odds_ratio: float | None
+    log_odds_ratio: float | None = None
+    estimate: float | None = None
     year: int | None = None
     sector: str | None = None
     category: Literal["forced", "voluntary"] | None = None
@@ -238,6 +244,8 @@ class ReplicatesBody(_Exact):
     unit: Literal["departure", "firm"]
     seed: int
     block_size: int
+    statistic: str
+    scale: Literal["log", "identity"]
     log_odds_ratio: float | None
     replicates: list[ReplicateOut]
     jackknife: list[JackknifeOut]
