@@ -7,6 +7,7 @@ prints one JSON object on stdout. Errors are one clear sentence on stderr and a 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import errno
 import getpass
 import json
@@ -160,7 +161,9 @@ def cmd_serve(args: argparse.Namespace) -> int:
     server = uvicorn.Server(uvicorn.Config(app, log_level="warning"))
     shown = f"[{args.host}]" if ":" in args.host else args.host
     print(f"Helmshift {__version__} on http://{shown}:{args.port}/", file=sys.stderr)  # bound: announce
-    server.run(sockets=[sock])
+    # uvicorn shuts down gracefully, then re-raises Ctrl-C / SIGINT: an ordinary stop, not an error
+    with contextlib.suppress(KeyboardInterrupt):
+        server.run(sockets=[sock])
     return 0
 
 

@@ -157,11 +157,18 @@ def test_an_analysts_week_in_the_browser(browser_page: tuple[Any, Watch, Any], t
         assert page.input_value(f"#role_{role}") == header, role
     page.fill("#name", "Demo index, browser test")
     shots.shoot(page, "confirm-columns")
-    page.click("button:has-text('Import roster')")
+    # -- the review before import: a dry run of the whole file, nothing stored yet ----------------------
+    page.click("button:has-text('Check these choices')")
+    page.wait_for_selector("h2#review")
+    review = page.locator("#review ~ .stat-row .stat").all_inner_texts()
+    # demo_data/README.md: 2,293 rows, of which 4 are rejected on purpose and 10 are exact duplicates
+    assert any(s.startswith("2,293") for s in review) and any(s.startswith("4\n") for s in review), review
+    assert page.get_by_text("Nothing is stored until you import.").is_visible()
+    shots.shoot(page, "confirm-review")
+    page.click("button:has-text('Import 2,279 rows')")
     page.wait_for_selector("h1:has-text('Demo index, browser test')")
     stats = page.locator(".stat").all_inner_texts()
-    # demo_data/README.md: 2,293 rows, of which 4 are rejected on purpose and 10 are exact duplicates
-    assert any(s.startswith("2293") for s in stats) and any(s.startswith("4\n") for s in stats), stats
+    assert any(s.startswith("2,293") for s in stats) and any(s.startswith("4\n") for s in stats), stats
     assert page.get_by_text("Rejected rows (4)").is_visible()
     assert page.get_by_text("No reason-code mapping is chosen yet").is_visible()
     shots.shoot(page, "roster")
