@@ -31,7 +31,7 @@ from app.stats.coverage import coverage_table
 from app.stats.trend import fit_trend
 from app.stats.trend_report import fit_to_dict
 from app.store import HEAD_REVISION, Store
-from tests.conftest import copy_database, make_client
+from tests.conftest import make_client
 
 ROSTER = 1
 PAGES = ("", "/reasons", "/coverage", "/trend", "/resampling", "/sectors", "/robustness", "/briefing")
@@ -147,20 +147,26 @@ def test_a_new_mapping_version_is_not_served_stale(demo_store: Store) -> None:
     assert after["mapping_label"] == f"demo standard v{mapping.version + 1}"
 
 
-def test_the_migration_fills_the_cells_of_rosters_stored_before(demo_store: Store, tmp_path: Path) -> None:
-    expected = demo_store.cell_counts(ROSTER)
-    firms = demo_store.firm_cell_counts(ROSTER)
-    old = copy_database(Path(demo_store.url.removeprefix("sqlite:///")), tmp_path / "old.db")
-    with sqlite3.connect(old) as conn:  # the database as revision 0004 left it: no cell tables
-        conn.execute("DROP TABLE roster_cells")
-        conn.execute("DROP TABLE roster_firm_cells")
-        conn.execute("UPDATE alembic_version SET version_num = '0004'")
+def test_the_migration_fills_the_cells_of_rosters_stored_before(tmp_path: Path) -> None:
+    """A database written by Helmshift 0.1 (tests/data/store-0.1.sql) gets its cells on upgrade, equal to
+    counting its departures with pandas."""
+    old = tmp_path / "old.db"
+    with sqlite3.connect(old) as conn:
+        conn.executescript((Path(__file__).parent / "data" / "store-0.1.sql").read_text(encoding="utf-8"))
     store = Store(f"sqlite:///{old}")
     try:
         assert store.schema_version() == int(HEAD_REVISION)
-        pd.testing.assert_frame_equal(store.cell_counts(ROSTER), expected)
-        pd.testing.assert_frame_equal(store.firm_cell_counts(ROSTER), firms)
-        assert int(expected["departures"].sum()) == store.get_roster(ROSTER).accepted
+        roster = store.get_roster("Legacy roster")
+        records = store.departures(roster.id)
+        expected = (records.groupby(["year", "sector", "reason"]).size().rename("departures").reset_index()
+                    .sort_values(["year", "sector", "reason"], ignore_index=True))
+        cells = store.cell_counts(roster.id)
+        got = cells[["year", "sector", "reason", "departures"]].sort_values(["year", "sector", "reason"],
+                                                                           ignore_index=True)
+        pd.testing.assert_frame_equal(got, expected, check_dtype=False)
+        firms = store.firm_cell_counts(roster.id)
+        assert int(firms["departures"].sum()) == len(records) == roster.accepted
+        assert sorted(firms["firm_id"].unique()) == sorted(records["firm_id"].unique())
     finally:
         store.dispose()
 

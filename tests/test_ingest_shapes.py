@@ -17,7 +17,6 @@ from pathlib import Path
 import openpyxl
 import pandas as pd
 import pytest
-from sqlalchemy import text
 
 from app.cli import main
 from app.intake.dates import parse_dates
@@ -282,16 +281,15 @@ def test_cli_dry_run_json_and_header_row(capsys: pytest.CaptureFixture[str], tmp
 
 
 def test_migration_adds_the_raw_spelling_to_an_old_database(tmp_path: Path) -> None:
-    url = f"sqlite:///{tmp_path / 'old.db'}"
-    store = Store(url)
-    report = import_roster(store, csv_bytes([DESK, *DATA]), "old.csv", today=TODAY)
-    with store.engine.begin() as conn:  # make it look like a database at revision 0002 (before raw spellings)
-        conn.execute(text("ALTER TABLE departures DROP COLUMN reason_raw"))
-        for table in ("universe_rejected", "universe_firm_years", "universes", "roster_firm_cells", "roster_cells"):
-            conn.execute(text(f"DROP TABLE {table}"))
-        conn.execute(text("UPDATE alembic_version SET version_num = '0002'"))
-    store.engine.dispose()
-    upgraded = Store(url)
+    """A database written by Helmshift 0.1 (tests/data/store-0.1.sql) stored each spelling as its code: on
+    upgrade every record's raw spelling is its code."""
+    import sqlite3
+
+    old = tmp_path / "old.db"
+    with sqlite3.connect(old) as conn:
+        conn.executescript((Path(__file__).parent / "data" / "store-0.1.sql").read_text(encoding="utf-8"))
+    upgraded = Store(f"sqlite:///{old}")
     assert upgraded.schema_version() == int(HEAD_REVISION)
-    deps = upgraded.departures(report.roster.id)
+    deps = upgraded.departures(upgraded.get_roster("Legacy roster").id)
+    assert len(deps) == 4
     assert list(deps["reason_raw"]) == list(deps["reason"])
