@@ -151,9 +151,14 @@ def test_the_migration_fills_the_cells_of_rosters_stored_before(demo_store: Stor
     expected = demo_store.cell_counts(ROSTER)
     firms = demo_store.firm_cell_counts(ROSTER)
     old = copy_database(Path(demo_store.url.removeprefix("sqlite:///")), tmp_path / "old.db")
-    with sqlite3.connect(old) as conn:  # the database as revision 0004 left it: no cell tables
+    with sqlite3.connect(old) as conn:  # the database as revision 0004 left it: no cell tables, no versions
         conn.execute("DROP TABLE roster_cells")
         conn.execute("DROP TABLE roster_firm_cells")
+        conn.execute("DROP TABLE roster_versions")
+        conn.execute("DROP INDEX ix_departures_roster_version")
+        for table in ("rosters", "departures", "rejected_rows"):
+            conn.execute(f"ALTER TABLE {table} DROP COLUMN version")
+        conn.execute("ALTER TABLE runs DROP COLUMN roster_version")
         conn.execute("UPDATE alembic_version SET version_num = '0004'")
     store = Store(f"sqlite:///{old}")
     try:

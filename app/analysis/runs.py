@@ -31,6 +31,7 @@ def _record_run(store: Store, inp: AnalysisInput, params: dict[str, Any], finger
     """Store a finished fit as a run, unless an identical one (same data, mapping, window, options) exists."""
     for run in store.list_runs(inp.roster.id, "fit"):
         if (run.fingerprint == fingerprint and run.params == params and run.window == inp.window
+                and run.roster_version == inp.roster.version
                 and run.mapping_version == (inp.mapping.version if inp.mapping else None)
                 and run.mapping_name == (inp.mapping.name if inp.mapping else None)):
             return run.id
@@ -38,6 +39,7 @@ def _record_run(store: Store, inp: AnalysisInput, params: dict[str, Any], finger
         kind="fit", roster_id=inp.roster.id, params=params, fingerprint=fingerprint,
         mapping_name=inp.mapping.name if inp.mapping else None,
         mapping_version=inp.mapping.version if inp.mapping else None, window=inp.window, status="running",
+        roster_version=inp.roster.version,
     )
     store.finish_run(run_id, result, seconds=seconds)
     return run_id
