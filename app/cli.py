@@ -206,13 +206,17 @@ def cmd_import(args: argparse.Namespace) -> int:
             *(f"  fix: {f}" for f in p["fixes"]),
         ]))
         return 0
-    report = import_roster(_store(args, create=True), path.read_bytes(), path.name, name=args.name, **options)
-    payload = {"roster": report.roster.name, "id": report.roster.id, "rows": report.rows,
+    report = import_roster(_store(args, create=True), path.read_bytes(), path.name, name=args.name,
+                           into=args.into, **options)
+    payload = {"roster": report.roster.name, "id": report.roster.id, "version": report.version,
+               "added": report.added, "removed": report.removed, "changed": report.changed, "rows": report.rows,
                "accepted": report.accepted, "rejected": report.rejected, "duplicates": report.duplicates,
                "header_row": report.header_row, "columns": report.roles, "messages": list(report.messages)}
     _emit(args, payload, lambda p: (
         f"Imported roster {p['roster']!r} (header row {p['header_row']}): {p['rows']} rows, {p['accepted']} "
-        f"accepted, {p['rejected']} rejected, {p['duplicates']} exact duplicates stored once."))
+        f"accepted, {p['rejected']} rejected, {p['duplicates']} exact duplicates stored once."
+        + (f" Version {p['version']}: {p['added']} added, {p['removed']} removed, {p['changed']} changed "
+           f"since version {p['version'] - 1}." if p["version"] > 1 else "")))
     return 0
 
 
@@ -407,6 +411,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="month in which fiscal years end, 1-12 (default 12); a fiscal year is named by the "
                         "calendar year in which it ends")
     p.add_argument("--dry-run", action="store_true", help="report what would be accepted and rejected; store nothing")
+    p.add_argument("--into", metavar="ROSTER", help="store the file as the next version of this roster (a refresh: "
+                   "next week's file for the same roster); reports what was added, removed and changed")
     p.set_defaults(func=cmd_import)
 
     p = sub.add_parser("mapping", help="import or export a reason-code mapping")
@@ -533,9 +539,11 @@ def build_parser() -> argparse.ArgumentParser:
     common(p, json_flag=False)
     p.set_defaults(func=cmd_export)
 
+    from app.cli_roster import register as register_roster
     from app.cli_team import register
 
     register(sub, common, _store, _emit)
+    register_roster(sub, common, _store, _emit)
     return parser
 
 

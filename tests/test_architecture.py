@@ -24,7 +24,7 @@ ALLOWED: dict[str, set[str]] = {
     "web": {"base", "store", "stats", "intake", "analysis", "briefing"},
     "entry": {"base", "store", "stats", "intake", "analysis", "briefing", "web"},
 }
-ENTRY_MODULES = {"app.cli", "app.cli_team", "app.demo"}
+ENTRY_MODULES = {"app.cli", "app.cli_roster", "app.cli_team", "app.demo"}
 WEB_AND_DRAWING = ("fastapi", "starlette", "uvicorn", "plotly", "sqlalchemy", "kaleido", "jinja2")
 
 

@@ -36,8 +36,8 @@ MEMO_ENTRIES = 256
 
 def roster_fingerprint(roster: Roster) -> str:
     """Changes whenever the stored roster does: a new import (even under a reused id) has a new fingerprint."""
-    payload = json.dumps([roster.id, roster.sha256, roster.imported_at, roster.accepted, roster.rows_total,
-                          roster.columns], sort_keys=True)
+    payload = json.dumps([roster.id, roster.version, roster.sha256, roster.imported_at, roster.accepted,
+                          roster.rows_total, roster.columns], sort_keys=True)
     return hashlib.sha256(payload.encode()).hexdigest()[:16]
 
 
@@ -81,7 +81,7 @@ def memo(store: Store) -> _Memo:
 def roster_counts(store: Store, roster: Roster) -> pd.DataFrame:
     """Departures per (year, sector, reason) of the roster (shared: do not modify the frame)."""
     return memo(store).get(("counts", roster.id, roster_fingerprint(roster)),
-                           lambda: store.cell_counts(roster.id))
+                           lambda: store.cell_counts(roster.id, roster.version))
 
 
 def categorised_counts(store: Store, roster: Roster, mapping: MappingVersion | None) -> pd.DataFrame:

@@ -60,7 +60,7 @@ class AnalysisInput:
     @cached_property
     def records(self) -> pd.DataFrame:
         """Every accepted departure with its ``category`` (a full read of the roster: jobs and exports only)."""
-        records = self.store.departures(self.roster.id)
+        records = self.store.departures(self.roster.id, version=self.roster.version)
         records["category"] = assign_categories(records["reason"],
                                                 self.mapping.categories if self.mapping else {})
         return records
@@ -81,7 +81,7 @@ class AnalysisInput:
 
     def cells(self, *, by_sector: bool = False) -> Cells:
         """The group counts and the firm x cell matrix (reads the firm counts: for bootstrap jobs)."""
-        firms = self.store.firm_cell_counts(self.roster.id)
+        firms = self.store.firm_cell_counts(self.roster.id, self.roster.version)
         return cells_from_counts(firms, self.window, by_sector=by_sector,
                                  categories=self.mapping.categories if self.mapping else {})
 
@@ -117,13 +117,15 @@ def load_input(
     window: tuple[int, int] | None = None,
     require_mapping: bool = True,
     threshold: float = 0.5,
+    roster_version: int | None = None,
 ) -> AnalysisInput:
-    """Read a roster through a mapping (the roster's chosen one by default) and fix the window.
+    """Read a roster (its newest version unless ``roster_version`` names another) through a mapping (the
+    roster's chosen one by default) and fix the window.
 
     The window is, in order of preference: the one given, the one chosen for the roster on the
     Coverage page, the suggested window of full coverage.
     """
-    roster = store.get_roster(roster_ref)
+    roster = store.get_roster(roster_ref, version=roster_version)
     settings = store.settings(roster.id)
     version: MappingVersion | None = None
     if mapping:
@@ -179,8 +181,9 @@ def _whole_span(table: pd.DataFrame, threshold: float) -> WindowSuggestion:
 
 
 def input_for_run(store: Store, run: Run) -> AnalysisInput:
-    """The exact input a stored run used: its mapping version and window."""
+    """The exact input a stored run used: its roster version, mapping version and window."""
     mapping = f"{run.mapping_name}:{run.mapping_version}" if run.mapping_name else None
-    return load_input(store, run.roster_id, mapping=mapping, window=run.window)
+    return load_input(store, run.roster_id, mapping=mapping, window=run.window,
+                      roster_version=run.roster_version)
 
 

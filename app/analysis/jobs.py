@@ -147,7 +147,7 @@ def create_bootstrap_run(store: Store, inp: AnalysisInput, params: dict[str, Any
         kind="bootstrap", roster_id=inp.roster.id, params=params, fingerprint=cells.fingerprint(),
         mapping_name=inp.mapping.name if inp.mapping else None,
         mapping_version=inp.mapping.version if inp.mapping else None, window=inp.window,
-        progress_total=params["resamples"],
+        progress_total=params["resamples"], roster_version=inp.roster.version,
     )
 
 

@@ -39,6 +39,7 @@ def _record_run(store: Store, inp: AnalysisInput, params: dict[str, Any], finger
         kind="fit", roster_id=inp.roster.id, params=params, fingerprint=fingerprint,
         mapping_name=inp.mapping.name if inp.mapping else None,
         mapping_version=inp.mapping.version if inp.mapping else None, window=inp.window, status="running",
+        roster_version=inp.roster.version,
     )
     store.finish_run(run_id, result, seconds=seconds)
     return run_id
@@ -138,3 +139,24 @@ def coverage_summary(inp: AnalysisInput, *, threshold: float = 0.5) -> dict[str,
         "flags": [{"year": f.year, "kind": f.kind, "message": f.message} for f in inp.flags],
         "warnings": inp.warnings(),
     }
+
+
+def refresh_comparison(store: Store, inp: AnalysisInput, run_id: int) -> dict[str, Any] | None:
+    """The same fit (options, mapping version, window) on the roster's version before the newest, when one was
+    made there: the finding before and after the refresh, side by side ("1.021 -> 1.024"). None otherwise."""
+    if inp.roster.version < 2:
+        return None
+    now = store.get_run(run_id)
+    for run in store.list_runs(inp.roster.id, "fit"):
+        if (run.roster_version < inp.roster.version and run.status == "done" and run.result
+                and run.params == now.params and run.window == now.window
+                and (run.mapping_name, run.mapping_version) == (now.mapping_name, now.mapping_version)):
+            before, after = run.result.get("odds_ratio"), (now.result or {}).get("odds_ratio")
+            if before is None or after is None:
+                return None
+            return {"from_version": run.roster_version, "to_version": inp.roster.version, "run_before": run.id,
+                    "odds_ratio_before": before, "odds_ratio_after": after,
+                    "sentence": f"Odds ratio per year {before:.3f} -> {after:.3f} after the refresh "
+                                f"(roster version {run.roster_version} -> {inp.roster.version}, same mapping "
+                                "and window)."}
+    return None

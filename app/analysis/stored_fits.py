@@ -48,6 +48,7 @@ def matches(run: Run, inp: AnalysisInput, params: dict[str, Any], fingerprint: s
     """A finished fit run of these counts, window, mapping version and options, from this statistics code."""
     return (run.kind == "fit" and run.status == "done" and run.result is not None
             and run.fingerprint == fingerprint and run.params == params and run.window == inp.window
+            and run.roster_version == inp.roster.version
             and run.mapping_name == (inp.mapping.name if inp.mapping else None)
             and run.mapping_version == (inp.mapping.version if inp.mapping else None)
             and run.result.get("engine") == engine_tag())

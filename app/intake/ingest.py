@@ -20,10 +20,11 @@ from app.intake.codes import CodeGroup
 from app.intake.dates import date_rule, fiscal_rule
 from app.intake.rawtable import DEFAULT_LIMITS, RawTable, ReadLimits, RosterFileError, looks_like_data
 from app.intake.readers import read_table
+from app.intake.refresh import diff_versions
 from app.intake.roles import HEADER_WORDS, ROLE_LABELS, RoleGuess, detect_roles, missing_roles, resolve_roles
 from app.intake.spreadsheet_safety import safe_csv
 from app.intake.validation import DATE_ORDERS, Checked, DateOrder, check_rows, is_still_in_post, validate
-from app.store import RejectedRow, Roster, Store
+from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import check_choice
 
 __all__ = [
@@ -156,11 +157,17 @@ class ImportReport:
     rejected_rows: tuple[RejectedRow, ...]
     header_row: int = 1
     review: Review | None = None
+    #: the version stored (1 for a new roster) and what changed from the version before it
+    version: int = 1
+    added: int = 0
+    removed: int = 0
+    changed: int = 0
 
     def as_dict(self) -> dict[str, Any]:
         """The JSON shape of ``helmshift import --json``."""
         return {
-            "roster": self.roster.name, "roster_id": self.roster.id, "rows": self.rows,
+            "roster": self.roster.name, "roster_id": self.roster.id, "version": self.version,
+            "added": self.added, "removed": self.removed, "changed": self.changed, "rows": self.rows,
             "accepted": self.accepted, "rejected": self.rejected, "duplicates": self.duplicates,
             "roles": self.roles, "encoding": self.encoding, "delimiter": self.delimiter,
             "sheet": self.sheet, "header_row": self.header_row, "messages": list(self.messages),
@@ -235,10 +242,14 @@ class _Prepared:
 def _prepare(
     data: bytes, filename: str, *, roles: dict[str, str] | None, encoding: str | None, sheet: str | None,
     header_row: int | None, date_order: DateOrder, fy_end: int, limits: ReadLimits, today: date | None,
+    prior_roles: dict[str, str] | None = None,
 ) -> _Prepared:
     check_choice(date_order, DATE_ORDERS, "date_order")
     _check_fy_end(fy_end)
     table = read_table(data, filename, encoding=encoding, sheet=sheet, limits=limits, header_row=header_row)
+    if not roles and prior_roles and set(prior_roles.values()) <= set(table.headers):
+        # a refresh whose file has the same headers keeps the roles the roster was imported with
+        roles = dict(prior_roles)
     resolved, notes, guesses = resolve_roles(table.headers, roles, _sample(table), max_year=_max_year(today))
     missing = missing_roles(resolved)
     if missing and not resolved and any(looks_like_data(h) for h in table.headers):
@@ -307,9 +318,14 @@ def import_roster(
     store: Store, data: bytes, filename: str, *, name: str | None = None,
     roles: dict[str, str] | None = None, encoding: str | None = None, sheet: str | None = None,
     date_order: DateOrder = "auto", allow_same_file: bool = False, limits: ReadLimits = DEFAULT_LIMITS,
-    today: date | None = None, header_row: int | None = None, fy_end: int = 12,
+    today: date | None = None, header_row: int | None = None, fy_end: int = 12, into: int | str | None = None,
 ) -> ImportReport:
     """Read, validate and store a roster; all rows land in one transaction or none do.
+
+    ``into`` (a roster id or name) stores the file as that roster's next version instead of a new roster
+    (a refresh); the report then says what was added, removed and changed since the version before
+    (:mod:`app.intake.refresh`). Without column roles, a refresh whose file has the same headers keeps the
+    roles the roster was imported with.
 
     ``filename`` is a label only (default roster name, stored as the source name), never a path.
     Raises ``RosterFileError`` for a file that cannot be imported as a whole and
@@ -317,27 +333,41 @@ def import_roster(
     """
     check_choice(date_order, DATE_ORDERS, "date_order")
     sha = file_fingerprint(data)
-    if not allow_same_file:
-        existing = store.find_roster_by_sha(sha)
-        if existing is not None:
-            raise DuplicateRosterError(existing)
-    if name is not None and store.roster_name_taken(name):
+    target: Roster | None = None
+    if into is not None:
+        try:
+            target = store.get_roster(into)
+        except StoreError as exc:
+            raise RosterFileError(f"Cannot add a version: {exc}") from None
+    existing = store.find_roster_by_sha(sha)
+    if existing is not None and target is not None and existing.id == target.id:
+        raise RosterFileError(f"This file is already version {existing.version} of roster {target.name!r}; "
+                              "nothing was added.")
+    if existing is not None and not allow_same_file:
+        raise DuplicateRosterError(existing)
+    if target is None and name is not None and store.roster_name_taken(name):
         raise RosterFileError(f"A roster named {name!r} already exists; choose another name.")
     p = _prepare(data, filename, roles=roles, encoding=encoding, sheet=sheet, header_row=header_row,
-                 date_order=date_order, fy_end=fy_end, limits=limits, today=today)
+                 date_order=date_order, fy_end=fy_end, limits=limits, today=today,
+                 prior_roles=target.columns if target is not None else None)
     c, table = p.checked, p.table
     if c.records.empty and c.rejected:
         raise NoValidRowsError(c.rejected)
     roster = store.save_import(
-        name=name or default_roster_name(store, filename), source_name=filename, sha256=sha,
-        rows_total=len(c.records) + len(c.rejected) + c.duplicates, duplicates=c.duplicates, columns=p.roles,
-        records=c.records, rejected=c.rejected,
+        name=target.name if target else name or default_roster_name(store, filename), source_name=filename,
+        sha256=sha, rows_total=len(c.records) + len(c.rejected) + c.duplicates, duplicates=c.duplicates,
+        columns=p.roles, records=c.records, rejected=c.rejected, into=target.id if target else None,
     )
+    added, removed, changed = roster.accepted, 0, 0
+    if roster.version > 1:
+        diff = diff_versions(store, roster.id, roster.version - 1, roster.version, limit=0)
+        added, removed, changed = diff.added, diff.removed, diff.changed
     return ImportReport(
         roster=roster, rows=roster.rows_total, accepted=roster.accepted, rejected=roster.rejected,
         duplicates=c.duplicates, roles=p.roles, encoding=table.encoding, delimiter=table.delimiter,
         sheet=table.sheet, messages=tuple(table.messages + p.notes + c.messages), rejected_rows=tuple(c.rejected),
-        header_row=table.header_line, review=_review(p, date_order, fy_end),
+        header_row=table.header_line, review=_review(p, date_order, fy_end), version=roster.version,
+        added=added, removed=removed, changed=changed,
     )
 
 

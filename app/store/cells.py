@@ -1,4 +1,4 @@
-"""The cell store: per-roster counts by (year, sector, reason code), and the same counts per firm.
+"""The cell store: per-roster-version counts by (year, sector, reason code), and the same counts per firm.
 
 Filled once when a roster is imported (``fill_cells``, inside the import's transaction) and by the schema
 migration for rosters stored before the cell store existed. Pages read ``cell_counts`` (a few thousand rows
@@ -13,27 +13,35 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import Connection, and_, case, distinct, exists, func, insert, select
+from sqlalchemy import ColumnElement, Connection, and_, case, distinct, exists, func, insert, literal, select
 
 from app.store.engine import Gateway
-from app.store.tables import departures, roster_cells, roster_firm_cells, universe_firm_years
+from app.store.tables import departures, roster_cells, roster_firm_cells, rosters, universe_firm_years
 
 CELL_COLUMNS = ("year", "sector", "reason", "departures")
 FIRM_CELL_COLUMNS = ("firm_id", "year", "sector", "reason", "departures")
 
 
-def fill_cells(conn: Connection, roster_id: int) -> None:
-    """Count one roster's departures into both cell tables, inside the caller's transaction."""
+def version_of(roster_id: int, version: int | None) -> ColumnElement[int]:
+    """The roster version a read means: the one given, else the roster's newest (a scalar subquery)."""
+    if version is not None:
+        return literal(int(version))
+    return select(rosters.c.version).where(rosters.c.id == roster_id).scalar_subquery()
+
+
+def fill_cells(conn: Connection, roster_id: int, version: int = 1) -> None:
+    """Count one roster version's departures into both cell tables, inside the caller's transaction."""
     d = departures.c
     keys = (d.year, d.sector, d.reason)
+    which = (d.roster_id == roster_id, d.version == version)
     conn.execute(insert(roster_cells).from_select(
-        ["roster_id", *CELL_COLUMNS],
-        select(d.roster_id, *keys, func.count()).where(d.roster_id == roster_id)
-        .group_by(d.roster_id, *keys)))
+        ["roster_id", "version", *CELL_COLUMNS],
+        select(d.roster_id, d.version, *keys, func.count()).where(*which)
+        .group_by(d.roster_id, d.version, *keys)))
     conn.execute(insert(roster_firm_cells).from_select(
-        ["roster_id", *FIRM_CELL_COLUMNS],
-        select(d.roster_id, d.firm_id, *keys, func.count()).where(d.roster_id == roster_id)
-        .group_by(d.roster_id, d.firm_id, *keys)))
+        ["roster_id", "version", *FIRM_CELL_COLUMNS],
+        select(d.roster_id, d.version, d.firm_id, *keys, func.count()).where(*which)
+        .group_by(d.roster_id, d.version, d.firm_id, *keys)))
 
 
 def _frame(rows: Sequence[Any], columns: tuple[str, ...]) -> pd.DataFrame:
@@ -51,54 +59,61 @@ def _frame(rows: Sequence[Any], columns: tuple[str, ...]) -> pd.DataFrame:
 class CellQueries(Gateway):
     """Reads of the cell store (writes happen in ``fill_cells``, with the import)."""
 
-    def cell_counts(self, roster_id: int) -> pd.DataFrame:
-        """Departures per (year, sector, reason) of one roster; ``sector`` is None where the record had none.
+    def cell_counts(self, roster_id: int, version: int | None = None) -> pd.DataFrame:
+        """Departures per (year, sector, reason) of one roster version (default: the newest); ``sector`` is
+        None where the record had none.
 
         Sorted by year, sector (missing first), reason. Rebuilds the cells of a roster stored without them.
         """
         c = roster_cells.c
-        query = (select(c.year, c.sector, c.reason, c.departures).where(c.roster_id == roster_id)
+        query = (select(c.year, c.sector, c.reason, c.departures)
+                 .where(c.roster_id == roster_id, c.version == version_of(roster_id, version))
                  .order_by(c.year, c.sector, c.reason))
         with self.engine.connect() as conn:
             rows = conn.execute(query).all()
-        if not rows and self._repair_cells(roster_id):
+        if not rows and self._repair_cells(roster_id, version):
             with self.engine.connect() as conn:
                 rows = conn.execute(query).all()
         return _frame(rows, CELL_COLUMNS)
 
-    def firm_cell_counts(self, roster_id: int) -> pd.DataFrame:
-        """Departures per (firm, year, sector, reason): what a firm bootstrap needs. Read by jobs only."""
+    def firm_cell_counts(self, roster_id: int, version: int | None = None) -> pd.DataFrame:
+        """Departures per (firm, year, sector, reason) of one roster version (default: the newest): what a
+        firm bootstrap needs. Read by jobs only."""
         c = roster_firm_cells.c
-        query = (select(c.firm_id, c.year, c.sector, c.reason, c.departures).where(c.roster_id == roster_id)
+        query = (select(c.firm_id, c.year, c.sector, c.reason, c.departures)
+                 .where(c.roster_id == roster_id, c.version == version_of(roster_id, version))
                  .order_by(c.firm_id, c.year, c.sector, c.reason))
         with self.engine.connect() as conn:
             rows = conn.execute(query).all()
-        if not rows and self._repair_cells(roster_id):
+        if not rows and self._repair_cells(roster_id, version):
             with self.engine.connect() as conn:
                 rows = conn.execute(query).all()
         return _frame(rows, FIRM_CELL_COLUMNS)
 
-    def firm_counts(self, roster_id: int, *, missing: str = "(none)") -> tuple[int, pd.DataFrame]:
-        """Distinct firms of a roster, and per sector (``missing`` stands for none): ``sector``, ``departures``,
-        ``firms``, sorted by sector."""
+    def firm_counts(self, roster_id: int, *, missing: str = "(none)",
+                    version: int | None = None) -> tuple[int, pd.DataFrame]:
+        """Distinct firms of a roster version (default: the newest), and per sector (``missing`` stands for
+        none): ``sector``, ``departures``, ``firms``, sorted by sector."""
         c = roster_firm_cells.c
         sector = func.coalesce(c.sector, missing)
+        which = (c.roster_id == roster_id, c.version == version_of(roster_id, version))
         with self.engine.connect() as conn:
-            total = int(conn.execute(select(func.count(distinct(c.firm_id))).where(c.roster_id == roster_id))
-                        .scalar_one())
+            total = int(conn.execute(select(func.count(distinct(c.firm_id))).where(*which)).scalar_one())
             rows = conn.execute(select(sector, func.sum(c.departures), func.count(distinct(c.firm_id)))
-                                .where(c.roster_id == roster_id).group_by(sector).order_by(sector)).all()
+                                .where(*which).group_by(sector).order_by(sector)).all()
         frame = pd.DataFrame.from_records([tuple(r) for r in rows], columns=["sector", "departures", "firms"])
         return total, frame.astype({"departures": np.int64, "firms": np.int64})
 
     # -- a roster's counts against a universe of firm-years (the Rates sections and the Universe page) --------
-    def universe_cell_counts(self, roster_id: int, universe_id: int) -> pd.DataFrame:
-        """Departures per (year, reason, inside): ``inside`` is 1 where the departure's (firm, year) is one of
-        the universe's firm-years, else 0. Counted in SQL from the firm cells (a few hundred rows back)."""
+    def universe_cell_counts(self, roster_id: int, universe_id: int, version: int | None = None) -> pd.DataFrame:
+        """Departures per (year, reason, inside) of one roster version (default: the newest): ``inside`` is 1
+        where the departure's (firm, year) is one of the universe's firm-years, else 0. Counted in SQL from the
+        firm cells (a few hundred rows back)."""
         c, u = roster_firm_cells.c, universe_firm_years.c
         inside = exists().where(u.universe_id == universe_id, u.firm_id == c.firm_id, u.year == c.year)
         flag = case((inside, 1), else_=0).label("inside")
-        query = (select(c.year, c.reason, flag, func.sum(c.departures)).where(c.roster_id == roster_id)
+        query = (select(c.year, c.reason, flag, func.sum(c.departures))
+                 .where(c.roster_id == roster_id, c.version == version_of(roster_id, version))
                  .group_by(c.year, c.reason, flag).order_by(c.year, c.reason, flag))
         with self.engine.connect() as conn:
             rows = conn.execute(query).all()
@@ -115,12 +130,12 @@ class CellQueries(Gateway):
         return pd.Series(np.array([r[1] for r in rows], dtype=np.int64), index=years, name="firm_years")
 
     def firms_outside_universe(self, roster_id: int, universe_id: int,
-                               window: tuple[int, int] | None = None) -> pd.DataFrame:
+                               window: tuple[int, int] | None = None, version: int | None = None) -> pd.DataFrame:
         """Distinct (``firm_id``, ``reason``) of the roster's departures whose firm has no firm-year in the universe
         (both read inside ``window`` when given), sorted: the firms a universe misses, before categories."""
         c, u = roster_firm_cells.c, universe_firm_years.c
         held = [u.universe_id == universe_id, u.firm_id == c.firm_id]
-        where = [c.roster_id == roster_id]
+        where = [c.roster_id == roster_id, c.version == version_of(roster_id, version)]
         if window is not None:
             held.append(u.year.between(*window))
             where.append(c.year.between(*window))
@@ -130,15 +145,19 @@ class CellQueries(Gateway):
             rows = conn.execute(query).all()
         return pd.DataFrame.from_records([tuple(r) for r in rows], columns=["firm_id", "reason"]).astype(object)
 
-    def _repair_cells(self, roster_id: int) -> bool:
-        """Fill the cells of a roster that has departures but no cells (written by an older version)."""
+    def _repair_cells(self, roster_id: int, version: int | None) -> bool:
+        """Fill the cells of a roster version that has departures but no cells (written by an older release)."""
         with self._tx() as conn:
-            if conn.execute(select(roster_cells.c.roster_id).where(roster_cells.c.roster_id == roster_id)
+            number = conn.execute(select(version_of(roster_id, version))).scalar()
+            if number is None:
+                return False
+            rc, fc, d = roster_cells.c, roster_firm_cells.c, departures.c
+            if conn.execute(select(rc.roster_id).where(rc.roster_id == roster_id, rc.version == number)
                             .limit(1)).first() is not None:
                 return True
-            if conn.execute(select(departures.c.id).where(departures.c.roster_id == roster_id)
+            if conn.execute(select(d.id).where(d.roster_id == roster_id, d.version == number)
                             .limit(1)).first() is None:
                 return False
-            conn.execute(roster_firm_cells.delete().where(roster_firm_cells.c.roster_id == roster_id))
-            fill_cells(conn, roster_id)
+            conn.execute(roster_firm_cells.delete().where(fc.roster_id == roster_id, fc.version == number))
+            fill_cells(conn, roster_id, int(number))
         return True

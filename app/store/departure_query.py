@@ -13,6 +13,7 @@ from typing import Any
 
 from sqlalchemy import ColumnElement, Select, and_, func, literal, or_, select
 
+from app.store.cells import version_of
 from app.store.engine import Gateway
 from app.store.records import MAX_ID, StoreError
 from app.store.tables import departures, mapping_entries, mapping_versions, mappings
@@ -56,6 +57,8 @@ class DepartureFilter:
     reason: str | None = None
     firm: str | None = None
     q: str | None = None
+    #: the roster version to list (default: the newest)
+    version: int | None = None
 
     def __post_init__(self) -> None:
         if self.category is not None and self.category not in CATEGORY_FILTERS:
@@ -101,7 +104,8 @@ class DepartureQueries(Gateway):
             source = departures.outerjoin(
                 entry, and_(entry.c.code == departures.c.reason, entry.c.version_id == version_id))
         d = departures.c
-        conditions: list[ColumnElement[bool]] = [d.roster_id == roster_id]
+        conditions: list[ColumnElement[bool]] = [d.roster_id == roster_id,
+                                                 d.version == version_of(roster_id, flt.version)]
         if flt.year is not None:
             conditions.append(d.year == flt.year)
         if flt.year_from is not None:
@@ -164,11 +168,13 @@ class DepartureQueries(Gateway):
             for row in result:
                 yield dict(row._mapping)
 
-    def departure_facets(self, roster_id: int) -> dict[str, list[Any]]:
-        """The distinct years, sectors and reason codes of a roster, for the filter controls."""
+    def departure_facets(self, roster_id: int, version: int | None = None) -> dict[str, list[Any]]:
+        """The distinct years, sectors and reason codes of a roster version (default: the newest), for the
+        filter controls."""
         d = departures.c
+        current = version_of(roster_id, version)
         with self.engine.connect() as conn:
             def distinct(col: Any) -> list[Any]:
                 return [r[0] for r in conn.execute(
-                    select(col).where(d.roster_id == roster_id, col.is_not(None)).distinct().order_by(col))]
+                    select(col).where(d.roster_id == roster_id, d.version == current, col.is_not(None)).distinct().order_by(col))]
             return {"years": distinct(d.year), "sectors": distinct(d.sector), "reasons": distinct(d.reason)}

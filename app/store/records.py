@@ -33,6 +33,14 @@ class Roster:
     rejected: int
     duplicates: int
     columns: dict[str, str]
+    #: the version these figures describe (a refresh adds the next one; every version stays stored)
+    version: int = 1
+    #: the roster's newest version
+    latest_version: int = 1
+
+    @property
+    def is_latest(self) -> bool:
+        return self.version == self.latest_version
 
 
 @dataclass(frozen=True)
@@ -84,6 +92,8 @@ class Run:
     seconds: float | None
     #: who started it: the signed-in account in team mode, the local analyst otherwise
     author: str | None = None
+    #: the roster version it read (runs made before versions existed read version 1)
+    roster_version: int = 1
 
 
 @dataclass(frozen=True)

@@ -18,8 +18,8 @@ from sqlalchemy import (
     update,
 )
 
-from app.store.audit import record_event
-from app.store.cells import fill_cells
+from app.store.audit import current_actor, record_event
+from app.store.cells import fill_cells, version_of
 from app.store.engine import Gateway
 from app.store.records import (
     MAX_ID,
@@ -34,6 +34,7 @@ from app.store.tables import (
     departures,
     rejected_rows,
     roster_settings,
+    roster_versions,
     rosters,
     runs,
 )
@@ -53,42 +54,60 @@ class RosterQueries(Gateway):
         columns: Mapping[str, str],
         records: pd.DataFrame,
         rejected: Sequence[RejectedRow],
+        into: int | None = None,
     ) -> Roster:
-        """Store one roster with all its accepted and rejected rows in a single transaction.
+        """Store one roster (or, with ``into``, the next version of that roster) with all its accepted and
+        rejected rows in a single transaction.
 
-        ``records`` has the columns of ``DEPARTURE_FIELDS``. Either everything lands or nothing does.
+        ``records`` has the columns of ``DEPARTURE_FIELDS``. Either everything lands or nothing does. A new
+        version leaves the earlier ones stored (their departures, rejected rows and cells) and becomes the
+        roster's newest; ``name`` is ignored then.
         """
         if "reason_raw" not in records.columns and "reason" in records.columns:
             records = records.assign(reason_raw=records["reason"])
         missing = [c for c in DEPARTURE_FIELDS if c not in records.columns]
         if missing:
             raise StoreError(f"records lack columns {missing}")
+        figures = {"source_name": source_name, "sha256": sha256, "imported_at": now_iso(),
+                   "rows_total": rows_total, "accepted": len(records), "rejected": len(rejected),
+                   "duplicates": duplicates, "columns": json.dumps(dict(columns))}
         with self._tx() as conn:
-            if conn.execute(select(rosters.c.id).where(rosters.c.name == name)).first():
-                raise StoreError(f"A roster named {name!r} already exists; choose another name.")
-            roster_id = conn.execute(
-                insert(rosters).values(
-                    name=name, source_name=source_name, sha256=sha256, imported_at=now_iso(),
-                    rows_total=rows_total, accepted=len(records), rejected=len(rejected),
-                    duplicates=duplicates, columns=json.dumps(dict(columns)),
-                )
-            ).inserted_primary_key[0]  # type: ignore[index]
-            record_event(conn, "import", f"roster:{roster_id}", {
-                "name": name, "source": source_name, "accepted": len(records), "rejected": len(rejected)})
+            if into is None:
+                if conn.execute(select(rosters.c.id).where(rosters.c.name == name)).first():
+                    raise StoreError(f"A roster named {name!r} already exists; choose another name.")
+                version = 1
+                roster_id = int(conn.execute(insert(rosters).values(name=name, version=1, **figures))
+                                .inserted_primary_key[0])  # type: ignore[index]
+                conn.execute(insert(roster_settings).values(roster_id=roster_id))
+                record_event(conn, "import", f"roster:{roster_id}", {
+                    "name": name, "source": source_name, "accepted": len(records), "rejected": len(rejected)})
+            else:
+                roster_id = int(into)
+                current = conn.execute(select(rosters.c.version, rosters.c.name)
+                                       .where(rosters.c.id == roster_id)).first()
+                if current is None:
+                    raise StoreError(f"No roster number {roster_id} is stored; it may have been deleted.")
+                version = int(current.version) + 1
+                conn.execute(update(rosters).where(rosters.c.id == roster_id).values(version=version, **figures))
+                record_event(conn, "import_version", f"roster:{roster_id}", {
+                    "name": current.name, "version": version, "source": source_name,
+                    "accepted": len(records), "rejected": len(rejected)})
+            conn.execute(insert(roster_versions).values(roster_id=roster_id, version=version,
+                                                        author=current_actor(), **figures))
             if len(records):
                 frame = records.loc[:, list(DEPARTURE_FIELDS)].astype(object)
                 frame = frame.where(pd.notna(frame), None)
                 frame.insert(0, "roster_id", roster_id)
+                frame["version"] = version
                 self._bulk_insert(conn, departures, frame)
-                fill_cells(conn, int(roster_id))
+                fill_cells(conn, roster_id, version)
             if rejected:
                 conn.execute(
                     insert(rejected_rows),
-                    [{"roster_id": roster_id, "line": r.line, "raw": r.raw, "reason": r.reason}
-                     for r in rejected],
+                    [{"roster_id": roster_id, "version": version, "line": r.line, "raw": r.raw,
+                      "reason": r.reason} for r in rejected],
                 )
-            conn.execute(insert(roster_settings).values(roster_id=roster_id))
-        return self.get_roster(int(roster_id))
+        return self.get_roster(roster_id, version=version)
 
     @staticmethod
     def _bulk_insert(conn: Connection, table: Table, frame: pd.DataFrame) -> None:
@@ -105,20 +124,24 @@ class RosterQueries(Gateway):
         sql = f"INSERT INTO {table.name} ({columns}) VALUES ({', '.join([marker] * len(frame.columns))})"
         conn.exec_driver_sql(sql, list(frame.itertuples(index=False, name=None)))
 
-    def _roster_from_row(self, row: Any) -> Roster:
+    def _roster_from_row(self, row: Any, at: Any = None) -> Roster:
+        """A roster as of its newest version, or as of version ``at`` (a ``roster_versions`` row)."""
         m = row._mapping
+        v = m if at is None else at._mapping
         return Roster(
-            id=m["id"], name=m["name"], source_name=m["source_name"], sha256=m["sha256"],
-            imported_at=m["imported_at"], rows_total=m["rows_total"], accepted=m["accepted"],
-            rejected=m["rejected"], duplicates=m["duplicates"], columns=json.loads(m["columns"]),
+            id=m["id"], name=m["name"], source_name=v["source_name"], sha256=v["sha256"],
+            imported_at=v["imported_at"], rows_total=v["rows_total"], accepted=v["accepted"],
+            rejected=v["rejected"], duplicates=v["duplicates"], columns=json.loads(v["columns"]),
+            version=int(v["version"]), latest_version=int(m["version"]),
         )
 
     def list_rosters(self) -> list[Roster]:
         with self.engine.connect() as conn:
             return [self._roster_from_row(r) for r in conn.execute(select(rosters).order_by(rosters.c.id))]
 
-    def get_roster(self, ref: int | str) -> Roster:
-        """Find a roster by id or by name; raise ``StoreError`` naming what was asked for."""
+    def get_roster(self, ref: int | str, *, version: int | None = None) -> Roster:
+        """Find a roster by id or by name, as of ``version`` (default: its newest); raise ``StoreError``
+        naming what was asked for."""
         with self.engine.connect() as conn:
             row = None
             numeric = isinstance(ref, int) or (isinstance(ref, str) and ref.isdigit())
@@ -126,16 +149,39 @@ class RosterQueries(Gateway):
                 row = conn.execute(select(rosters).where(rosters.c.id == int(ref))).first()
             if row is None:
                 row = conn.execute(select(rosters).where(rosters.c.name == str(ref))).first()
+            at = None
+            if row is not None and version is not None and version != row.version:
+                at = conn.execute(select(roster_versions).where(
+                    roster_versions.c.roster_id == row.id, roster_versions.c.version == version)).first()
+                if at is None:
+                    raise StoreError(f"Roster {row.name!r} has no version {version}; its versions are "
+                                     f"1 to {row.version}.")
         if row is None:
             names = [r.name for r in self.list_rosters()]
             known = f"stored rosters: {', '.join(repr(n) for n in names[:10])}" if names else "no roster is stored yet"
             raise StoreError(f"No roster called {ref!r}; {known}.")
-        return self._roster_from_row(row)
+        return self._roster_from_row(row, at)
+
+    def roster_versions(self, roster_id: int) -> list[Roster]:
+        """Every stored version of a roster, oldest first (each as the roster looked at that version)."""
+        with self.engine.connect() as conn:
+            row = conn.execute(select(rosters).where(rosters.c.id == roster_id)).first()
+            if row is None:
+                raise StoreError(f"No roster number {roster_id} is stored.")
+            versions = conn.execute(select(roster_versions).where(roster_versions.c.roster_id == roster_id)
+                                    .order_by(roster_versions.c.version)).all()
+        return [self._roster_from_row(row, v) for v in versions]
 
     def find_roster_by_sha(self, sha256: str) -> Roster | None:
+        """The roster (as of that version) some version of which was imported from exactly these bytes."""
         with self.engine.connect() as conn:
-            row = conn.execute(select(rosters).where(rosters.c.sha256 == sha256)).first()
-        return None if row is None else self._roster_from_row(row)
+            hit = conn.execute(select(roster_versions.c.roster_id, roster_versions.c.version)
+                               .where(roster_versions.c.sha256 == sha256)
+                               .order_by(roster_versions.c.id.desc())).first()
+            if hit is None:  # a roster whose version rows are missing (never: the migration fills them)
+                row = conn.execute(select(rosters.c.id, rosters.c.version).where(rosters.c.sha256 == sha256)).first()
+                hit = row
+        return None if hit is None else self.get_roster(int(hit[0]), version=int(hit[1]))
 
     def roster_name_taken(self, name: str) -> bool:
         with self.engine.connect() as conn:
@@ -151,12 +197,14 @@ class RosterQueries(Gateway):
             conn.execute(delete(rosters).where(rosters.c.id == roster_id))
             record_event(conn, "roster_delete", f"roster:{roster_id}", {"name": name})
 
-    def departures(self, roster_id: int, *, with_raw: bool = False) -> pd.DataFrame:
-        """All accepted departures of a roster, one row each, in source-line order."""
+    def departures(self, roster_id: int, *, with_raw: bool = False, version: int | None = None) -> pd.DataFrame:
+        """All accepted departures of a roster version (default: the newest), one row each, in source-line
+        order."""
         cols = [departures.c[f] for f in DEPARTURE_FIELDS if with_raw or f != "raw"]
         with self.engine.connect() as conn:
             result = conn.execute(
-                select(departures.c.id, *cols).where(departures.c.roster_id == roster_id)
+                select(departures.c.id, *cols).where(departures.c.roster_id == roster_id,
+                                                     departures.c.version == version_of(roster_id, version))
                 .order_by(departures.c.line)
             )
             frame = pd.DataFrame(result.fetchall(), columns=list(result.keys()))
@@ -165,16 +213,18 @@ class RosterQueries(Gateway):
             frame[c] = pd.to_numeric(frame[c], errors="coerce").astype("float64")
         return frame
 
-    def rejected(self, roster_id: int) -> list[RejectedRow]:
+    def rejected(self, roster_id: int, *, version: int | None = None) -> list[RejectedRow]:
+        """The rejected rows of a roster version (default: the newest), in line order."""
+        r = rejected_rows.c
         with self.engine.connect() as conn:
             rows = conn.execute(
-                select(rejected_rows.c.line, rejected_rows.c.raw, rejected_rows.c.reason)
-                .where(rejected_rows.c.roster_id == roster_id).order_by(rejected_rows.c.line)
+                select(r.line, r.raw, r.reason)
+                .where(r.roster_id == roster_id, r.version == version_of(roster_id, version)).order_by(r.line)
             )
             return [RejectedRow(line=r.line, raw=r.raw, reason=r.reason) for r in rows]
 
-    def reason_counts(self, roster_id: int) -> pd.DataFrame:
-        """Reason code, departures with it, first and last year seen."""
+    def reason_counts(self, roster_id: int, *, version: int | None = None) -> pd.DataFrame:
+        """Reason code, departures with it, first and last year seen (default: the newest version)."""
         with self.engine.connect() as conn:
             result = conn.execute(
                 select(
@@ -182,7 +232,7 @@ class RosterQueries(Gateway):
                     func.min(departures.c.year).label("first_year"),
                     func.max(departures.c.year).label("last_year"),
                 )
-                .where(departures.c.roster_id == roster_id)
+                .where(departures.c.roster_id == roster_id, departures.c.version == version_of(roster_id, version))
                 .group_by(departures.c.reason).order_by(func.count().desc(), departures.c.reason)
             )
             return pd.DataFrame(result.fetchall(), columns=list(result.keys()))

@@ -37,7 +37,7 @@ class RunQueries(Gateway):
     def create_run(
         self, *, kind: RunKind, roster_id: int, params: Mapping[str, Any], fingerprint: str,
         mapping_name: str | None, mapping_version: int | None, window: tuple[int, int] | None,
-        status: RunStatus = "queued", progress_total: int = 0,
+        status: RunStatus = "queued", progress_total: int = 0, roster_version: int = 1,
     ) -> int:
         with self._tx() as conn:
             run_id = int(conn.execute(insert(runs).values(
@@ -46,6 +46,7 @@ class RunQueries(Gateway):
                 window_from=window[0] if window else None, window_to=window[1] if window else None,
                 params=json.dumps(dict(params)), fingerprint=fingerprint, progress_done=0,
                 progress_total=progress_total, cancel_requested=False, author=current_actor(),
+                roster_version=roster_version,
             )).inserted_primary_key[0])  # type: ignore[index]
             record_event(conn, "run_start", f"run:{run_id}", {"kind": kind, "roster": roster_id, **params})
             return run_id
@@ -60,6 +61,7 @@ class RunQueries(Gateway):
             params=json.loads(m["params"]), fingerprint=m["fingerprint"],
             progress_done=m["progress_done"], progress_total=m["progress_total"],
             cancel_requested=bool(m["cancel_requested"]), author=m["author"],
+            roster_version=int(m["roster_version"] or 1),
             result=json.loads(m["result"]) if m["result"] else None, error=m["error"], seconds=m["seconds"],
         )
 

@@ -12,6 +12,7 @@ from sqlalchemy import (
     Column,
     Float,
     ForeignKey,
+    Index,
     Integer,
     LargeBinary,
     MetaData,
@@ -24,7 +25,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0008"
+HEAD_REVISION = "0009"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -41,6 +42,29 @@ rosters = Table(
     Column("rejected", Integer, nullable=False),
     Column("duplicates", Integer, nullable=False),
     Column("columns", Text, nullable=False),  # JSON: role -> header used
+    # the newest version (issue 14): the columns above describe it; every version is in roster_versions
+    Column("version", Integer, nullable=False, server_default="1"),
+    sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
+)
+
+# Each import into a roster is a new version of it (a refresh: next week's file for the same roster). A version
+# is a set of departure rows (``departures.version``); every version stays stored, so a run made on version 1
+# reopens on exactly its rows after version 2 arrives.
+roster_versions = Table(
+    "roster_versions", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("version", Integer, nullable=False),
+    Column("source_name", String, nullable=False),
+    Column("sha256", String(64), nullable=False, index=True),
+    Column("imported_at", String, nullable=False),
+    Column("rows_total", Integer, nullable=False),
+    Column("accepted", Integer, nullable=False),
+    Column("rejected", Integer, nullable=False),
+    Column("duplicates", Integer, nullable=False),
+    Column("columns", Text, nullable=False),  # JSON: role -> header used
+    Column("author", String),
+    UniqueConstraint("roster_id", "version"),
     sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
 )
 
@@ -67,6 +91,8 @@ departures = Table(
     Column("interim", Boolean),
     Column("notes", Text),
     Column("raw", Text, nullable=False),  # the original row as JSON, for provenance
+    Column("version", Integer, nullable=False, server_default="1"),  # the roster version this row belongs to
+    Index("ix_departures_roster_version", "roster_id", "version"),
 )
 
 rejected_rows = Table(
@@ -76,6 +102,7 @@ rejected_rows = Table(
     Column("line", Integer, nullable=False),
     Column("raw", Text, nullable=False),
     Column("reason", Text, nullable=False),
+    Column("version", Integer, nullable=False, server_default="1"),
 )
 
 mappings = Table(
@@ -151,6 +178,7 @@ runs = Table(
     Column("error", Text),
     Column("seconds", Float),
     Column("author", String),
+    Column("roster_version", Integer),  # the roster version the run read (NULL: made before versions = 1)
     sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
 )
 
@@ -213,6 +241,7 @@ roster_cells = Table(
     Column("sector", String),
     Column("reason", String, nullable=False),
     Column("departures", Integer, nullable=False),
+    Column("version", Integer, nullable=False, server_default="1"),
 )
 
 # The same counts per firm: what a firm bootstrap (and the roster's firm counts) needs; read by jobs, not pages.
@@ -224,21 +253,22 @@ roster_firm_cells = Table(
     Column("sector", String),
     Column("reason", String, nullable=False),
     Column("departures", Integer, nullable=False),
+    Column("version", Integer, nullable=False, server_default="1"),
 )
 
 #: fill both cell tables from ``departures`` for every roster that has none yet (used by the migration, by
 #: ``save_import`` for the roster it stores, and to repair a roster stored by an older version)
 FILL_ROSTER_CELLS = (
-    "INSERT INTO roster_cells (roster_id, year, sector, reason, departures) "
-    "SELECT roster_id, year, sector, reason, COUNT(*) FROM departures "
+    "INSERT INTO roster_cells (roster_id, version, year, sector, reason, departures) "
+    "SELECT roster_id, version, year, sector, reason, COUNT(*) FROM departures "
     "WHERE roster_id NOT IN (SELECT DISTINCT roster_id FROM roster_cells) "
-    "GROUP BY roster_id, year, sector, reason"
+    "GROUP BY roster_id, version, year, sector, reason"
 )
 FILL_ROSTER_FIRM_CELLS = (
-    "INSERT INTO roster_firm_cells (roster_id, firm_id, year, sector, reason, departures) "
-    "SELECT roster_id, firm_id, year, sector, reason, COUNT(*) FROM departures "
+    "INSERT INTO roster_firm_cells (roster_id, version, firm_id, year, sector, reason, departures) "
+    "SELECT roster_id, version, firm_id, year, sector, reason, COUNT(*) FROM departures "
     "WHERE roster_id NOT IN (SELECT DISTINCT roster_id FROM roster_firm_cells) "
-    "GROUP BY roster_id, firm_id, year, sector, reason"
+    "GROUP BY roster_id, version, firm_id, year, sector, reason"
 )
 
 # -- team mode: accounts, their API tokens, the audit trail, and secrets shared by every server process ------

@@ -71,6 +71,8 @@ class RunPage:
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     percent: int = 0
     roster_deleted: bool = False
+    #: the roster's newest version when it is newer than the one the run read (a refresh came since)
+    newer_version: int | None = None
 
 
 RunBody = define(RunPage, "RunBody", fields={"run": BootstrapRunOut, "method": one_of(METHODS),
@@ -156,8 +158,9 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
     except StoreError:
         roster = None  # deleted; roster ids are never reused, so this run cannot point at other data
     percent = int(100 * run.progress_done / run.progress_total) if run.progress_total else 0
+    newer = roster.latest_version if roster is not None and roster.latest_version > run.roster_version else None
     if run.status != "done" or run.result is None:
-        return RunPage(roster, run, method, percent=percent, roster_deleted=roster is None)
+        return RunPage(roster, run, method, percent=percent, roster_deleted=roster is None, newer_version=newer)
     result = run.result
     rows = [{"method": METHOD_LABELS[m], "interval": result["conf_int"][m], "mc_error": result["mc_error"][m],
              "source": f"bootstrap, B = {result['resamples']:,}"} for m in METHODS if m in result["conf_int"]]
@@ -175,7 +178,8 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
             rows.append({"method": "model-based", "interval": None, "mc_error": None, "source": str(exc)})
     fig = bootstrap_finding(store, run.id, method).figure
     comparison, found = compare_units(store, run, method)
-    return RunPage(roster, run, method, rows, comparison, found, figure_spec(fig, titled=False), 100)
+    return RunPage(roster, run, method, rows, comparison, found, figure_spec(fig, titled=False), 100,
+                   newer_version=newer)
 
 
 @router.get("/rosters/{roster_id}/resampling", response_class=HTMLResponse, name="resampling_page",

@@ -106,6 +106,11 @@ class ConfirmPage:
     review: Review | None = None
     review_error: str | None = None
     months: tuple[tuple[int, str], ...] = MONTHS
+    #: a stored roster to add the file to as its next version (a refresh); None: a new roster
+    into: int | None = None
+    #: the rosters it could be added to (id, name), and the one whose columns the file has (a hint, not a choice)
+    targets: tuple[tuple[int, str], ...] = ()
+    same_columns_as: tuple[int, str] | None = None
 
 
 def rosters_data(store: Store, upload_limit: int, message: str | None = None) -> RostersPage:
@@ -194,7 +199,7 @@ def _roster_upload(request: Request, form: dict[str, str | Upload]) -> HTMLRespo
         token=pending.token, filename=filename, preview=preview,
         roles={r: preview.roles.get(r) for r in ROLES}, name=default_roster_name(store, filename),
         duplicate_of=same_file_roster(store, data), header_row=preview.header_row,
-        review=review, review_error=review_error,
+        review=review, review_error=review_error, **_targets(store, preview.headers),
     )
     return render(request, "roster_confirm.html", page, active="rosters")
 
@@ -240,10 +245,29 @@ def _file_options(form: dict[str, str | Upload]) -> tuple[str | None, str | None
 
 
 _INTAKE_FIELDS = {
+    "into": {"type": "string", "description": "id of a stored roster: import the file as its next version "
+                                              "(a refresh); empty for a new roster"},
     "header_row": {"type": "string", "description": "1-based line (or sheet row) of the header; found when empty"},
     "date_order": {"type": "string", "enum": list(DATE_ORDERS), "description": "reading of d/m vs m/d dates"},
     "fy_end": {"type": "string", "description": "month (1-12) in which fiscal years end; default 12"},
 }
+
+
+def _into(form: dict[str, str | Upload]) -> int | None:
+    raw = str(form.get("into") or "").strip()
+    if not raw:
+        return None
+    if not raw.isdigit() or len(raw) > 18:
+        raise RosterFileError(f"into must be the id of a stored roster; got {raw[:40]!r}.")
+    return int(raw)
+
+
+def _targets(store: Store, headers: tuple[str, ...]) -> dict[str, Any]:
+    """The confirm page's refresh choices: every roster, and the newest whose column headers the file has."""
+    rosters = store.list_rosters()
+    same = [r for r in rosters if r.columns and set(r.columns.values()) <= set(headers)]
+    return {"targets": tuple((r.id, r.name) for r in rosters),
+            "same_columns_as": (same[-1].id, same[-1].name) if same else None}
 
 
 def _confirm_form(form: dict[str, str | Upload]) -> tuple[dict[str, str], str | None]:
@@ -277,9 +301,11 @@ def _roster_review(request: Request, form: dict[str, str | Upload]) -> Response:
         return _expired(request)
     roles, name = _confirm_form(form)
     error: str | None = None
+    into: int | None = None
     try:
         encoding, sheet = _file_options(form)
         header_row, order, fy_end = _intake_options(form)
+        into = _into(form)
         preview = preview_roster(pending.data, pending.filename, encoding=encoding, sheet=sheet, roles=roles,
                                  header_row=header_row)
     except RosterFileError as exc:
@@ -292,7 +318,8 @@ def _roster_review(request: Request, form: dict[str, str | Upload]) -> Response:
         token=token, filename=pending.filename, preview=preview,
         roles={r: preview.roles.get(r) for r in ROLES}, name=name or default_roster_name(store, pending.filename),
         duplicate_of=same_file_roster(store, pending.data), error=error, header_row=preview.header_row,
-        date_order=order, fy_end=fy_end, review=review, review_error=review_error,
+        date_order=order, fy_end=fy_end, review=review, review_error=review_error, into=into,
+        **_targets(store, preview.headers),
     )
     return render(request, "roster_confirm.html", page, status=400 if error else 200, active="rosters")
 
@@ -319,13 +346,15 @@ def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response
         return _expired(request)
     roles, name = _confirm_form(form)
     header_row, order, fy_end = None, "auto", 12
+    into: int | None = None
     try:
         encoding, sheet = _file_options(form)
         header_row, order, fy_end = _intake_options(form)
+        into = _into(form)
         report = import_roster(
-            store, pending.data, pending.filename, name=name, roles=roles, encoding=encoding, sheet=sheet,
-            allow_same_file=form.get("allow_same_file") == "yes", header_row=header_row, date_order=order,
-            fy_end=fy_end,
+            store, pending.data, pending.filename, name=None if into else name, roles=roles, encoding=encoding,
+            sheet=sheet, allow_same_file=form.get("allow_same_file") == "yes", header_row=header_row,
+            date_order=order, fy_end=fy_end, into=into,
         )
     except (RosterFileError, DuplicateRosterError, StoreError) as exc:
         try:
@@ -337,10 +366,13 @@ def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response
             roles={r: roles.get(r) or None for r in ROLES}, name=name or default_roster_name(store, pending.filename),
             error=str(exc), duplicate_of=same_file_roster(store, pending.data),
             rejected=list(getattr(exc, "rejected", []))[:REJECTED_SHOWN], header_row=preview.header_row,
-            date_order=order, fy_end=fy_end,
+            date_order=order, fy_end=fy_end, into=into, **_targets(store, preview.headers),
         )
         return render(request, "roster_confirm.html", page, status=400, active="rosters")
     app_uploads(request).drop(token)
+    if report.version > 1:  # a refresh: show what changed
+        url = request.url_for("roster_diff", roster_id=report.roster.id)
+        return RedirectResponse(f"{url}?from={report.version - 1}&to={report.version}", status_code=303)
     return RedirectResponse(request.url_for("roster_detail", roster_id=report.roster.id), status_code=303)
 
 

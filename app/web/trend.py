@@ -10,7 +10,7 @@ from fastapi.responses import HTMLResponse, JSONResponse
 
 from app.analysis.inputs import AnalysisInput, load_input
 from app.analysis.rates import RatesSection, rates_section
-from app.analysis.runs import period_comparison, run_trend
+from app.analysis.runs import period_comparison, refresh_comparison, run_trend
 from app.briefing.findings import trend_finding_from_fit
 from app.stats.headline import headline_fields, headline_sentence
 from app.stats.periods import PeriodError, Span, parse_periods
@@ -52,6 +52,8 @@ class TrendPage:
     records_mapping: str | None = field(default=None, metadata={"json_skip": True})
     periods: dict[str, Any] | None = None
     periods_error: str | None = None
+    #: the same fit on the roster's previous version, when one was made: the finding before and after a refresh
+    refresh: dict[str, Any] | None = None
 
 
 TrendBody = define(TrendPage, "TrendBody", fields={"fit": TrendFitSummary | None, "table": list_of(OddsRow)},
@@ -120,7 +122,7 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         sentence=headline_sentence(fit), error=None,
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
         figure=figure, table=_odds_table(fit), quasi=quasi, rates=rates, records_mapping=mapping_ref(inp.mapping),
-        periods=compared, periods_error=compare_error,
+        periods=compared, periods_error=compare_error, refresh=refresh_comparison(store, inp, outcome.run_id),
     )
 
 
