@@ -162,9 +162,9 @@ _TREND_QUERY = query(("model", {"type": "string", "enum": list(TREND_KINDS), "de
                      ("quasi", {"type": "string", "enum": ["0", "1"], "default": "0"},
                       "1 gives the quasi-binomial intervals whatever the dispersion"),
                      *WINDOW_QUERY,
-                     ("first", {"type": "string", "pattern": "^[0-9]{4}-[0-9]{4}$"},
+                     ("first", {"type": "string", "pattern": "^([0-9]{4}-[0-9]{4})?$"},
                       "first period to compare, e.g. 1998-2014 (default: the window before its last third)"),
-                     ("second", {"type": "string", "pattern": "^[0-9]{4}-[0-9]{4}$"},
+                     ("second", {"type": "string", "pattern": "^([0-9]{4}-[0-9]{4})?$"},
                       "second period, e.g. 2015-2022 (default: the window's last third)"))
 
 
