@@ -150,16 +150,20 @@ def test_a_new_mapping_version_is_not_served_stale(demo_store: Store) -> None:
 def test_the_migration_fills_the_cells_of_rosters_stored_before(demo_store: Store, tmp_path: Path) -> None:
     expected = demo_store.cell_counts(ROSTER)
     firms = demo_store.firm_cell_counts(ROSTER)
+    detail = demo_store.firm_cell_counts(ROSTER, detail=True)
     old = copy_database(Path(demo_store.url.removeprefix("sqlite:///")), tmp_path / "old.db")
     with sqlite3.connect(old) as conn:  # the database as revision 0004 left it: no cell tables
         conn.execute("DROP TABLE roster_cells")
         conn.execute("DROP TABLE roster_firm_cells")
+        conn.execute("DROP TABLE mapping_rules")  # added by 0006 with the cells' detail
         conn.execute("UPDATE alembic_version SET version_num = '0004'")
     store = Store(f"sqlite:///{old}")
     try:
         assert store.schema_version() == int(HEAD_REVISION)
         pd.testing.assert_frame_equal(store.cell_counts(ROSTER), expected)
         pd.testing.assert_frame_equal(store.firm_cell_counts(ROSTER), firms)
+        # the revision's written-out SQL fills the same detailed key as the import does
+        pd.testing.assert_frame_equal(store.firm_cell_counts(ROSTER, detail=True), detail)
         assert int(expected["departures"].sum()) == store.get_roster(ROSTER).accepted
     finally:
         store.dispose()

@@ -13,25 +13,36 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import Connection, distinct, func, insert, select
+from sqlalchemy import Connection, Integer, case, cast, distinct, func, insert, select
 
 from app.store.engine import Gateway
 from app.store.tables import departures, roster_cells, roster_firm_cells
 
-CELL_COLUMNS = ("year", "sector", "reason", "departures")
-FIRM_CELL_COLUMNS = ("firm_id", "year", "sector", "reason", "departures")
+#: the key's detail (issue 16): age and tenure in completed years, the interim flag; None where missing
+DETAIL_COLUMNS = ("age", "tenure", "interim")
+
+
+def completed(column: Any) -> Any:
+    """Completed whole units of a non-negative REAL column (floor), NULL stays NULL.
+
+    Written with CAST and a correction so it gives the same integer on SQLite (CAST truncates) and on
+    PostgreSQL (CAST rounds); the import's validation keeps age and tenure non-negative.
+    """
+    whole = cast(column, Integer)
+    return case((column.is_(None), None), (whole > column, whole - 1), else_=whole)
 
 
 def fill_cells(conn: Connection, roster_id: int) -> None:
     """Count one roster's departures into both cell tables, inside the caller's transaction."""
     d = departures.c
-    keys = (d.year, d.sector, d.reason)
+    keys = (d.year, d.sector, d.reason, completed(d.age), completed(d.tenure), d.interim)
+    names = ("year", "sector", "reason", *DETAIL_COLUMNS, "departures")
     conn.execute(insert(roster_cells).from_select(
-        ["roster_id", *CELL_COLUMNS],
+        ["roster_id", *names],
         select(d.roster_id, *keys, func.count()).where(d.roster_id == roster_id)
         .group_by(d.roster_id, *keys)))
     conn.execute(insert(roster_firm_cells).from_select(
-        ["roster_id", *FIRM_CELL_COLUMNS],
+        ["roster_id", "firm_id", *names],
         select(d.roster_id, d.firm_id, *keys, func.count()).where(d.roster_id == roster_id)
         .group_by(d.roster_id, d.firm_id, *keys)))
 
@@ -45,38 +56,48 @@ def _frame(rows: Sequence[Any], columns: tuple[str, ...]) -> pd.DataFrame:
     for c in ("sector", "reason", "firm_id"):
         if c in frame:
             frame[c] = frame[c].astype(object)
+    for c in ("age", "tenure"):
+        if c in frame:
+            frame[c] = frame[c].astype("Int64")
+    if "interim" in frame:
+        frame["interim"] = frame["interim"].astype("boolean")
     return frame
 
 
 class CellQueries(Gateway):
     """Reads of the cell store (writes happen in ``fill_cells``, with the import)."""
 
-    def cell_counts(self, roster_id: int) -> pd.DataFrame:
+    def cell_counts(self, roster_id: int, *, detail: bool = False) -> pd.DataFrame:
         """Departures per (year, sector, reason) of one roster; ``sector`` is None where the record had none.
 
-        Sorted by year, sector (missing first), reason. Rebuilds the cells of a roster stored without them.
+        With ``detail`` the key also holds ``age``, ``tenure`` (completed years) and ``interim`` (missing
+        values are <NA>). Sorted by the key (missing first). Rebuilds the cells of a roster stored without them.
         """
-        c = roster_cells.c
-        query = (select(c.year, c.sector, c.reason, c.departures).where(c.roster_id == roster_id)
-                 .order_by(c.year, c.sector, c.reason))
-        with self.engine.connect() as conn:
-            rows = conn.execute(query).all()
-        if not rows and self._repair_cells(roster_id):
-            with self.engine.connect() as conn:
-                rows = conn.execute(query).all()
-        return _frame(rows, CELL_COLUMNS)
+        return self._read_cells(roster_cells, roster_id, (), detail)
 
-    def firm_cell_counts(self, roster_id: int) -> pd.DataFrame:
-        """Departures per (firm, year, sector, reason): what a firm bootstrap needs. Read by jobs only."""
-        c = roster_firm_cells.c
-        query = (select(c.firm_id, c.year, c.sector, c.reason, c.departures).where(c.roster_id == roster_id)
-                 .order_by(c.firm_id, c.year, c.sector, c.reason))
+    def firm_cell_counts(self, roster_id: int, *, detail: bool = False) -> pd.DataFrame:
+        """Departures per (firm, year, sector, reason[, age, tenure, interim]): what a firm bootstrap needs.
+        Read by jobs only."""
+        return self._read_cells(roster_firm_cells, roster_id, ("firm_id",), detail)
+
+    def _read_cells(self, table: Any, roster_id: int, lead: tuple[str, ...], detail: bool) -> pd.DataFrame:
+        c = table.c
+        key = [c[name] for name in (*lead, "year", "sector", "reason", *(DETAIL_COLUMNS if detail else ()))]
+        query = (select(*key, func.sum(c.departures)).where(c.roster_id == roster_id)
+                 .group_by(*key).order_by(*key))
         with self.engine.connect() as conn:
             rows = conn.execute(query).all()
         if not rows and self._repair_cells(roster_id):
             with self.engine.connect() as conn:
                 rows = conn.execute(query).all()
-        return _frame(rows, FIRM_CELL_COLUMNS)
+        return _frame(rows, tuple(k.name for k in key) + ("departures",))
+
+    def cell_table_rows(self, roster_id: int) -> dict[str, int]:
+        """Stored rows of each cell table for one roster (the cost of the detailed key: benchmarks, tests)."""
+        with self.engine.connect() as conn:
+            return {t.name: int(conn.execute(select(func.count()).select_from(t)
+                                             .where(t.c.roster_id == roster_id)).scalar_one())
+                    for t in (roster_cells, roster_firm_cells)}
 
     def firm_counts(self, roster_id: int, *, missing: str = "(none)") -> tuple[int, pd.DataFrame]:
         """Distinct firms of a roster, and per sector (``missing`` stands for none): ``sector``, ``departures``,

@@ -24,7 +24,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0005"
+HEAD_REVISION = "0006"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -105,6 +105,20 @@ mapping_entries = Table(
     UniqueConstraint("version_id", "code"),
 )
 
+# Classification rules of a mapping version (issue 16): evaluated in ``position`` order, first match wins.
+mapping_rules = Table(
+    "mapping_rules", metadata,
+    Column("version_id", Integer, ForeignKey("mapping_versions.id", ondelete="CASCADE"), nullable=False,
+           index=True),
+    Column("position", Integer, nullable=False),
+    Column("code", String, nullable=False),
+    Column("field", String, nullable=False),
+    Column("comparison", String, nullable=False),
+    Column("value", Integer, nullable=False),
+    Column("category", String, nullable=False),
+    UniqueConstraint("version_id", "position"),
+)
+
 roster_settings = Table(
     "roster_settings", metadata,
     Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), primary_key=True),
@@ -183,6 +197,13 @@ universe_rejected = Table(
     Column("reason", Text, nullable=False),
 )
 
+
+def CELL_DETAIL_COLUMNS() -> tuple[Column[int], ...]:  # noqa: N802 - reads as the constant it stands for
+    """Age and tenure in completed years and the interim flag (NULL where the record has none): the cell
+    key's detail, so classification rules and the adjusted trend need no record reads (issue 16)."""
+    return (Column("age", Integer), Column("tenure", Integer), Column("interim", Boolean))
+
+
 # The cell store (issue 13). Counts per (year, sector, reason code) do not depend on the mapping (a mapping
 # only says which category a code counts as), so they are computed once when a roster is imported and every
 # page reads them instead of the records. ``sector`` keeps the record's value (NULL when missing).
@@ -192,6 +213,7 @@ roster_cells = Table(
     Column("year", Integer, nullable=False),
     Column("sector", String),
     Column("reason", String, nullable=False),
+    *CELL_DETAIL_COLUMNS(),
     Column("departures", Integer, nullable=False),
 )
 
@@ -203,22 +225,8 @@ roster_firm_cells = Table(
     Column("year", Integer, nullable=False),
     Column("sector", String),
     Column("reason", String, nullable=False),
+    *CELL_DETAIL_COLUMNS(),
     Column("departures", Integer, nullable=False),
-)
-
-#: fill both cell tables from ``departures`` for every roster that has none yet (used by the migration, by
-#: ``save_import`` for the roster it stores, and to repair a roster stored by an older version)
-FILL_ROSTER_CELLS = (
-    "INSERT INTO roster_cells (roster_id, year, sector, reason, departures) "
-    "SELECT roster_id, year, sector, reason, COUNT(*) FROM departures "
-    "WHERE roster_id NOT IN (SELECT DISTINCT roster_id FROM roster_cells) "
-    "GROUP BY roster_id, year, sector, reason"
-)
-FILL_ROSTER_FIRM_CELLS = (
-    "INSERT INTO roster_firm_cells (roster_id, firm_id, year, sector, reason, departures) "
-    "SELECT roster_id, firm_id, year, sector, reason, COUNT(*) FROM departures "
-    "WHERE roster_id NOT IN (SELECT DISTINCT roster_id FROM roster_firm_cells) "
-    "GROUP BY roster_id, firm_id, year, sector, reason"
 )
 
 # -- team mode: accounts, their API tokens, the audit trail, and secrets shared by every server process ------

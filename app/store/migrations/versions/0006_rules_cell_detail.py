@@ -1,0 +1,53 @@
+"""Classification rules on mapping versions; age, tenure and interim in the cell store's key (issue 16).
+
+Revision ID: 0006
+Revises: 0005
+"""
+
+from __future__ import annotations
+
+import sqlalchemy as sa
+from alembic import op
+
+revision = "0006"
+down_revision = "0005"
+branch_labels = None
+depends_on = None
+
+# completed years, written to give the same integer on SQLite (CAST truncates) and PostgreSQL (CAST rounds)
+_AGE = ("CASE WHEN age IS NULL THEN NULL WHEN CAST(age AS INTEGER) > age THEN CAST(age AS INTEGER) - 1 "
+        "ELSE CAST(age AS INTEGER) END")
+_TENURE = _AGE.replace("age", "tenure")
+
+
+def upgrade() -> None:
+    op.create_table(
+        "mapping_rules",
+        sa.Column("version_id", sa.Integer, sa.ForeignKey("mapping_versions.id", ondelete="CASCADE"),
+                  nullable=False, index=True),
+        sa.Column("position", sa.Integer, nullable=False),
+        sa.Column("code", sa.String, nullable=False),
+        sa.Column("field", sa.String, nullable=False),
+        sa.Column("comparison", sa.String, nullable=False),
+        sa.Column("value", sa.Integer, nullable=False),
+        sa.Column("category", sa.String, nullable=False),
+        sa.UniqueConstraint("version_id", "position"),
+    )
+    for table in ("roster_cells", "roster_firm_cells"):
+        with op.batch_alter_table(table) as batch:
+            batch.add_column(sa.Column("age", sa.Integer))
+            batch.add_column(sa.Column("tenure", sa.Integer))
+            batch.add_column(sa.Column("interim", sa.Boolean))
+        op.execute(f"DELETE FROM {table}")
+    # refill with the detailed key (written out: a revision must not change when the application code does)
+    op.execute("INSERT INTO roster_cells (roster_id, year, sector, reason, age, tenure, interim, departures) "
+               f"SELECT roster_id, year, sector, reason, {_AGE}, {_TENURE}, interim, COUNT(*) FROM departures "
+               f"GROUP BY roster_id, year, sector, reason, {_AGE}, {_TENURE}, interim")
+    op.execute("INSERT INTO roster_firm_cells "
+               "(roster_id, firm_id, year, sector, reason, age, tenure, interim, departures) "
+               f"SELECT roster_id, firm_id, year, sector, reason, {_AGE}, {_TENURE}, interim, COUNT(*) "
+               f"FROM departures GROUP BY roster_id, firm_id, year, sector, reason, {_AGE}, {_TENURE}, interim")
+
+
+def downgrade() -> None:
+    raise NotImplementedError("Helmshift's store only moves forward; restore a backup to go back.")
