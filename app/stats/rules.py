@@ -77,8 +77,10 @@ class RuleEffect:
 
 def field_values(frame: pd.DataFrame, field: str) -> np.ndarray:
     """The field in completed units as floats (NaN where missing): floor of age/tenure, 0/1 for interim."""
-    raw = pd.to_numeric(frame[field].astype(object).where(frame[field].notna(), np.nan), errors="coerce")
-    values = raw.to_numpy(dtype=float)
+    column = frame[field]
+    present = column.notna().to_numpy()
+    values = np.full(len(frame), np.nan)
+    values[present] = column[present].astype(float).to_numpy()
     return np.floor(values) if field in ("age", "tenure") else values
 
 
