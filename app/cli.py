@@ -137,18 +137,26 @@ def cmd_mapping_import(args: argparse.Namespace) -> int:
     path = Path(args.file)
     if not path.is_file():
         raise CommandError(f"No file at {path}.")
-    outcome = import_mapping_file(_store(args), path.read_bytes(), roster=args.roster, name=args.name)
+    rules = None
+    if args.rules:
+        rules_path = Path(args.rules)
+        if not rules_path.is_file():
+            raise CommandError(f"No rules file at {rules_path}.")
+        rules = rules_path.read_bytes()
+    outcome = import_mapping_file(_store(args), path.read_bytes(), roster=args.roster, name=args.name, rules=rules)
     _emit(args, outcome, lambda p: (
         f"Saved mapping {p['mapping']!r} version {p['version']} with {p['codes']} codes"
+        + (f" and {len(p['rules'])} rule(s)" if p["rules"] else "")
         + (f"; {len(p['not_in_roster'])} codes do not occur in the roster (kept for other rosters)"
            if p["not_in_roster"] else "") + "."))
     return 0
 
 
 def cmd_mapping_export(args: argparse.Namespace) -> int:
-    from app.analysis.mapping_files import export_mapping_csv
+    from app.analysis.mapping_files import export_mapping_csv, export_rules_csv
 
-    text = export_mapping_csv(_store(args), name=args.name, version=args.version)
+    export = export_rules_csv if args.rules else export_mapping_csv
+    text = export(_store(args), name=args.name, version=args.version)
     if args.out:
         Path(args.out).write_text(text, encoding="utf-8")
     else:
@@ -183,6 +191,14 @@ def cmd_fit(args: argparse.Namespace) -> int:
             raise CommandError("--measure rate fits the straight Poisson trend only; drop --by, --model and --compare.")
         payload = rate_summary(store, inp)
         _emit(args, payload, lambda p: f"{p['sentence']}\n{p['caution']}")
+        return 0
+    if args.model == "adjusted":
+        from app.analysis.adjusted import adjusted_summary
+
+        if args.by or args.compare:
+            raise CommandError("--model adjusted adjusts for sector itself (--adjust); drop --by and --compare.")
+        payload = adjusted_summary(store, inp, args.adjust)
+        _emit(args, payload, lambda p: p["sentence"])
         return 0
     periods = None
     if args.compare:
@@ -309,6 +325,8 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("file")
     q.add_argument("--roster", required=True)
     q.add_argument("--name", required=True)
+    q.add_argument("--rules", metavar="RULES.csv",
+                   help="classification rules (code,field,comparison,value,category) saved with this version")
     common(q)
     q.set_defaults(func=cmd_mapping_import)
     q = msub.add_parser("export", help="write a mapping version as CSV")
@@ -316,6 +334,8 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--name", required=True)
     q.add_argument("--version", type=int)
     q.add_argument("--out")
+    q.add_argument("--rules", action="store_true",
+                   help="write the version's classification rules (code,field,comparison,value,category)")
     common(q, json_flag=False)
     q.set_defaults(func=cmd_mapping_export)
 
@@ -348,7 +368,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--mapping")
     p.add_argument("--years", metavar="FROM-TO")
     p.add_argument("--by", choices=["sector"])
-    p.add_argument("--model", choices=["linear", "sector", "spline"], default="linear")
+    p.add_argument("--model", choices=["linear", "sector", "spline", "adjusted"], default="linear",
+                   help="adjusted: departure-level logit on year + the --adjust fields, firm-clustered SEs")
+    p.add_argument("--adjust", metavar="age,tenure,sector", default="age,tenure,sector",
+                   help="what the adjusted model adjusts for (--model adjusted; default all three; '' for none)")
     p.add_argument("--spline-df", type=int, choices=range(2, 7), default=3, metavar="2..6",
                    help="degrees of freedom of the spline in the bend test (--model spline; default 3)")
     p.add_argument("--quasi", action="store_true",

@@ -48,7 +48,7 @@ def make_rule(code: str, field: str, comparison: str, value: str | int | float, 
     category = str(category).strip().lower()
     if category not in CATEGORIES:
         raise RuleError(f"category must be one of {', '.join(CATEGORIES)}; got {category!r}.")
-    return ClassificationRule(code, field, comparison, number, category)  # type: ignore[arg-type]
+    return ClassificationRule(code, field, comparison, number, category)
 
 
 def _whole(value: str | int | float, field: str) -> int:
