@@ -49,8 +49,8 @@ def band(values: np.ndarray, edges: Sequence[int], labels: Sequence[str]) -> np.
     values = np.asarray(values, dtype=float)
     idx = np.searchsorted(np.asarray(edges, dtype=float), np.floor(values), side="right")
     out = np.asarray(labels, dtype=object)[np.minimum(idx, len(labels) - 1)]
-    result: np.ndarray = np.where(np.isnan(values), None, out)
-    return result
+    out[np.isnan(values)] = None
+    return out
 
 
 @dataclass(frozen=True)
