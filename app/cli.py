@@ -268,7 +268,7 @@ def cmd_robustness(args: argparse.Namespace) -> int:
     mappings = args.mapping or []
     inp = load_input(store, args.roster, mapping=mappings[0] if mappings else None,
                      window=_parse_years(args.years))
-    payload = robustness_summary(store, inp, extra_mappings=mappings[1:], vary=args.vary or [])
+    payload = robustness_summary(store, inp, extra_mappings=mappings[1:], vary=args.vary or [], preset=args.preset)
     _emit(args, payload, lambda p: p["sentence"])
     return 0
 
@@ -409,6 +409,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--roster", required=True)
     p.add_argument("--mapping", action="append", help="a mapping (repeat for several; NAME or NAME:VERSION)")
     p.add_argument("--vary", action="append", metavar="CODE", help="move CODE to each other category")
+    p.add_argument("--preset", action="store_true",
+                   help="also read the codes with the academic preset (retirement below 60 counts as forced, "
+                        "Parrino 1997)")
     p.add_argument("--years", metavar="FROM-TO")
     common(p)
     p.set_defaults(func=cmd_robustness)

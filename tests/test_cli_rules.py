@@ -110,4 +110,4 @@ def test_fit_adjusted_equals_statsmodels_on_the_records(capsys: pytest.CaptureFi
 
 def test_fit_adjusted_rejects_unknown_adjustments(capsys: pytest.CaptureFixture[str], db: str) -> None:
     code, _, err = run(capsys, "fit", "--roster", "1", "--model", "adjusted", "--adjust", "age,income", "--db", db)
-    assert code != 0 and "--adjust takes age, tenure, sector" in err
+    assert code != 0 and "adjustments are age, tenure, sector" in err

@@ -114,7 +114,7 @@ def test_bands_are_left_closed_in_completed_years() -> None:
 def test_parse_adjust_names_what_is_allowed() -> None:
     assert parse_adjust("sector, age") == ("age", "sector")
     assert parse_adjust("") == ()
-    with pytest.raises(AdjustedError, match="age, tenure, sector"):
+    with pytest.raises(AdjustedError, match="adjustments are age, tenure, sector"):
         parse_adjust("age,income")
 
 

@@ -40,7 +40,7 @@ def parse_adjust(text: str | Sequence[str] | None) -> tuple[str, ...]:
              else [str(p).strip().lower() for p in (text or ())])
     bad = [p for p in parts if p not in ADJUSTMENTS]
     if bad:
-        raise AdjustedError(f"--adjust takes {', '.join(ADJUSTMENTS)} (comma-separated); got {', '.join(bad)}.")
+        raise AdjustedError(f"The adjustments are {', '.join(ADJUSTMENTS)} (comma-separated); got {', '.join(bad)}.")
     return tuple(a for a in ADJUSTMENTS if a in parts)
 
 

@@ -19,6 +19,7 @@ from app.web import (
     briefing,
     coverage,
     departures,
+    reason_rules,
     reasons,
     resampling,
     rosters,
@@ -104,7 +105,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     def health() -> dict[str, object]:
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (auth, rosters, reasons, coverage, departures, trend, resampling, sectors, briefing, universe):
+    for module in (auth, rosters, reasons, reason_rules, coverage, departures, trend, resampling, sectors, briefing, universe):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)

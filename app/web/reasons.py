@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from fastapi import APIRouter, Request
@@ -16,6 +16,7 @@ from app.store import MAX_ID, MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES, Category
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.forms import Upload, read_form
+from app.web.reason_rules import rules_view
 from app.web.rendering import as_json, render
 from app.web.route_docs import (
     FILE,
@@ -69,6 +70,12 @@ class ReasonsPage:
     diff: MappingDiff | None
     categories: tuple[str, ...] = CATEGORIES
     message: str | None = None
+    #: the mapping version's classification rules in order, each with ``matched``, ``moved``, ``missing``
+    rules: list[dict[str, Any]] = field(default_factory=list)
+    #: the academic preset's rules this version does not have yet (empty: nothing to add)
+    preset: list[str] = field(default_factory=list)
+    preset_name: str = ""
+    preset_source: str = ""
 
 
 ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
@@ -119,6 +126,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
         window=inp.window, unmapped_codes=len(unmapped),
         unmapped_departures=sum(r.count for r in unmapped), using_suggestion=mapping is None,
         compare=compare if diff else None, diff=diff, message=message,
+        **rules_view(store, roster, mapping, [r.code for r in rows]),
     )
 
 
@@ -196,7 +204,9 @@ async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
                     labels.setdefault(code, page.mapping.labels[code])
     note = str(form.get("note") or "").strip() or "edited on the Reason codes page"
     author = str(form.get("author") or "").strip() or "analyst"
-    store.save_mapping_version(name, categories, labels, author=author[:80], note=note[:500])
+    # the version's classification rules stay with it (they are edited in their own table)
+    rules = page.mapping.rules if page.mapping and name == page.mapping.name else ()
+    store.save_mapping_version(name, categories, labels, author=author[:80], note=note[:500], rules=rules)
     store.update_settings(page.roster.id, mapping_name=name)
     url = request.url_for("reasons_page", roster_id=page.roster.id).include_query_params(saved=1)
     return RedirectResponse(url, status_code=303)
