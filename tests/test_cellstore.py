@@ -151,11 +151,13 @@ def test_the_migration_fills_the_cells_of_rosters_stored_before(demo_store: Stor
     expected = demo_store.cell_counts(ROSTER)
     firms = demo_store.firm_cell_counts(ROSTER)
     detail = demo_store.firm_cell_counts(ROSTER, detail=True)
+    detail_cells = demo_store.cell_counts(ROSTER, detail=True)
     old = copy_database(Path(demo_store.url.removeprefix("sqlite:///")), tmp_path / "old.db")
     with sqlite3.connect(old) as conn:  # the database as revision 0004 left it: no cell tables
         conn.execute("DROP TABLE roster_cells")
         conn.execute("DROP TABLE roster_firm_cells")
-        conn.execute("DROP TABLE mapping_rules")  # added by 0006 with the cells' detail
+        conn.execute("DROP TABLE mapping_rules")  # added by 0006, with the detailed cells
+        conn.execute("DROP TABLE roster_detail_cells")
         conn.execute("UPDATE alembic_version SET version_num = '0004'")
     store = Store(f"sqlite:///{old}")
     try:
@@ -164,6 +166,7 @@ def test_the_migration_fills_the_cells_of_rosters_stored_before(demo_store: Stor
         pd.testing.assert_frame_equal(store.firm_cell_counts(ROSTER), firms)
         # the revision's written-out SQL fills the same detailed key as the import does
         pd.testing.assert_frame_equal(store.firm_cell_counts(ROSTER, detail=True), detail)
+        pd.testing.assert_frame_equal(store.cell_counts(ROSTER, detail=True), detail_cells)
         assert int(expected["departures"].sum()) == store.get_roster(ROSTER).accepted
     finally:
         store.dispose()
@@ -182,5 +185,5 @@ def test_deleting_a_roster_deletes_its_cells(demo_store: Store) -> None:
     demo_store.delete_roster(ROSTER)
     with demo_store.engine.connect() as conn:
         left: Any = [conn.exec_driver_sql(f"SELECT COUNT(*) FROM {t}").scalar_one()
-                     for t in ("roster_cells", "roster_firm_cells")]
-    assert left == [0, 0]
+                     for t in ("roster_cells", "roster_detail_cells", "roster_firm_cells")]
+    assert left == [0, 0, 0]

@@ -16,7 +16,7 @@ import pandas as pd
 from sqlalchemy import Connection, Integer, case, cast, distinct, func, insert, select
 
 from app.store.engine import Gateway
-from app.store.tables import departures, roster_cells, roster_firm_cells
+from app.store.tables import departures, roster_cells, roster_detail_cells, roster_firm_cells
 
 #: the key's detail (issue 16): age and tenure in completed years, the interim flag; None where missing
 DETAIL_COLUMNS = ("age", "tenure", "interim")
@@ -37,7 +37,12 @@ def fill_cells(conn: Connection, roster_id: int) -> None:
     d = departures.c
     keys = (d.year, d.sector, d.reason, completed(d.age), completed(d.tenure), d.interim)
     names = ("year", "sector", "reason", *DETAIL_COLUMNS, "departures")
+    plain = (d.year, d.sector, d.reason)
     conn.execute(insert(roster_cells).from_select(
+        ["roster_id", "year", "sector", "reason", "departures"],
+        select(d.roster_id, *plain, func.count()).where(d.roster_id == roster_id)
+        .group_by(d.roster_id, *plain)))
+    conn.execute(insert(roster_detail_cells).from_select(
         ["roster_id", *names],
         select(d.roster_id, *keys, func.count()).where(d.roster_id == roster_id)
         .group_by(d.roster_id, *keys)))
@@ -73,7 +78,7 @@ class CellQueries(Gateway):
         With ``detail`` the key also holds ``age``, ``tenure`` (completed years) and ``interim`` (missing
         values are <NA>). Sorted by the key (missing first). Rebuilds the cells of a roster stored without them.
         """
-        return self._read_cells(roster_cells, roster_id, (), detail)
+        return self._read_cells(roster_detail_cells if detail else roster_cells, roster_id, (), detail)
 
     def firm_cell_counts(self, roster_id: int, *, detail: bool = False) -> pd.DataFrame:
         """Departures per (firm, year, sector, reason[, age, tenure, interim]): what a firm bootstrap needs.
@@ -83,13 +88,21 @@ class CellQueries(Gateway):
     def _read_cells(self, table: Any, roster_id: int, lead: tuple[str, ...], detail: bool) -> pd.DataFrame:
         c = table.c
         key = [c[name] for name in (*lead, "year", "sector", "reason", *(DETAIL_COLUMNS if detail else ()))]
-        query = (select(*key, func.sum(c.departures)).where(c.roster_id == roster_id)
-                 .group_by(*key).order_by(*key))
-        with self.engine.connect() as conn:
-            rows = conn.execute(query).all()
-        if not rows and self._repair_cells(roster_id):
+        if table is roster_firm_cells:
+            query = (select(*key, func.sum(c.departures)).where(c.roster_id == roster_id).group_by(*key)
+                     .order_by(*key))
+        else:  # one row per key already
+            query = select(*key, c.departures).where(c.roster_id == roster_id).order_by(*key)
+
+        def fetch() -> list[Any]:
             with self.engine.connect() as conn:
-                rows = conn.execute(query).all()
+                # the driver's plain tuples: building a SQLAlchemy Row per cell costs more than the query on a
+                # roster whose detailed key has ~one cell per departure (benchmarks/bench_rules_adjusted.py)
+                return list(conn.execute(query).cursor.fetchall())
+
+        rows = fetch()
+        if not rows and self._repair_cells(roster_id):
+            rows = fetch()
         return _frame(rows, tuple(k.name for k in key) + ("departures",))
 
     def cell_table_rows(self, roster_id: int) -> dict[str, int]:
@@ -97,7 +110,7 @@ class CellQueries(Gateway):
         with self.engine.connect() as conn:
             return {t.name: int(conn.execute(select(func.count()).select_from(t)
                                              .where(t.c.roster_id == roster_id)).scalar_one())
-                    for t in (roster_cells, roster_firm_cells)}
+                    for t in (roster_cells, roster_detail_cells, roster_firm_cells)}
 
     def firm_counts(self, roster_id: int, *, missing: str = "(none)") -> tuple[int, pd.DataFrame]:
         """Distinct firms of a roster, and per sector (``missing`` stands for none): ``sector``, ``departures``,
@@ -121,6 +134,7 @@ class CellQueries(Gateway):
             if conn.execute(select(departures.c.id).where(departures.c.roster_id == roster_id)
                             .limit(1)).first() is None:
                 return False
-            conn.execute(roster_firm_cells.delete().where(roster_firm_cells.c.roster_id == roster_id))
+            for table in (roster_detail_cells, roster_firm_cells):
+                conn.execute(table.delete().where(table.c.roster_id == roster_id))
             fill_cells(conn, roster_id)
         return True

@@ -213,11 +213,25 @@ roster_cells = Table(
     Column("year", Integer, nullable=False),
     Column("sector", String),
     Column("reason", String, nullable=False),
+    Column("departures", Integer, nullable=False),
+)
+
+# The same counts with the executive's age and tenure (completed years) and interim flag in the key (issue 16):
+# what classification rules and the age/tenure mix read. Kept apart from ``roster_cells``: on a large roster
+# with spread-out ages this key has nearly one row per departure (benchmarks/bench_rules_adjusted.py), so only
+# a mapping version with rules, and the mix diagnostic, pay for reading it.
+roster_detail_cells = Table(
+    "roster_detail_cells", metadata,
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("year", Integer, nullable=False),
+    Column("sector", String),
+    Column("reason", String, nullable=False),
     *CELL_DETAIL_COLUMNS(),
     Column("departures", Integer, nullable=False),
 )
 
-# The same counts per firm: what a firm bootstrap (and the roster's firm counts) needs; read by jobs, not pages.
+# The same counts per firm, with the detailed key: what a firm bootstrap, the adjusted trend's clustered
+# standard errors (and the roster's firm counts) need; read by jobs and on request, not by pages.
 roster_firm_cells = Table(
     "roster_firm_cells", metadata,
     Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),

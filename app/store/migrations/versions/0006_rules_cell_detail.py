@@ -1,4 +1,4 @@
-"""Classification rules on mapping versions; age, tenure and interim in the cell store's key (issue 16).
+"""Classification rules on mapping versions; cells keyed also by age, tenure and interim (issue 16).
 
 Revision ID: 0006
 Revises: 0005
@@ -33,14 +33,25 @@ def upgrade() -> None:
         sa.Column("category", sa.String, nullable=False),
         sa.UniqueConstraint("version_id", "position"),
     )
-    for table in ("roster_cells", "roster_firm_cells"):
-        with op.batch_alter_table(table) as batch:
-            batch.add_column(sa.Column("age", sa.Integer))
-            batch.add_column(sa.Column("tenure", sa.Integer))
-            batch.add_column(sa.Column("interim", sa.Boolean))
-        op.execute(f"DELETE FROM {table}")
-    # refill with the detailed key (written out: a revision must not change when the application code does)
-    op.execute("INSERT INTO roster_cells (roster_id, year, sector, reason, age, tenure, interim, departures) "
+    op.create_table(
+        "roster_detail_cells",
+        sa.Column("roster_id", sa.Integer, sa.ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False,
+                  index=True),
+        sa.Column("year", sa.Integer, nullable=False),
+        sa.Column("sector", sa.String),
+        sa.Column("reason", sa.String, nullable=False),
+        sa.Column("age", sa.Integer),
+        sa.Column("tenure", sa.Integer),
+        sa.Column("interim", sa.Boolean),
+        sa.Column("departures", sa.Integer, nullable=False),
+    )
+    with op.batch_alter_table("roster_firm_cells") as batch:
+        batch.add_column(sa.Column("age", sa.Integer))
+        batch.add_column(sa.Column("tenure", sa.Integer))
+        batch.add_column(sa.Column("interim", sa.Boolean))
+    op.execute("DELETE FROM roster_firm_cells")
+    # fill with the detailed key (written out: a revision must not change when the application code does)
+    op.execute("INSERT INTO roster_detail_cells (roster_id, year, sector, reason, age, tenure, interim, departures) "
                f"SELECT roster_id, year, sector, reason, {_AGE}, {_TENURE}, interim, COUNT(*) FROM departures "
                f"GROUP BY roster_id, year, sector, reason, {_AGE}, {_TENURE}, interim")
     op.execute("INSERT INTO roster_firm_cells "
