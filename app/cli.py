@@ -183,6 +183,9 @@ def cmd_fit(args: argparse.Namespace) -> int:
     from app.analysis.runs import fit_summary
 
     store = _store(args)
+    if args.resamples is not None and args.model != "adjusted":
+        raise CommandError("--resamples goes with --model adjusted; bootstrap the other models with "
+                           "`helmshift bootstrap`.")
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
     if args.measure == "rate":
         from app.analysis.rates import rate_summary
@@ -197,7 +200,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
         if args.by or args.compare:
             raise CommandError("--model adjusted adjusts for sector itself (--adjust); drop --by and --compare.")
-        payload = adjusted_summary(store, inp, args.adjust)
+        payload = adjusted_summary(store, inp, args.adjust, resamples=args.resamples, seed=args.seed)
         _emit(args, payload, lambda p: p["sentence"])
         return 0
     periods = None
@@ -372,6 +375,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="adjusted: departure-level logit on year + the --adjust fields, firm-clustered SEs")
     p.add_argument("--adjust", metavar="age,tenure,sector", default="age,tenure,sector",
                    help="what the adjusted model adjusts for (--model adjusted; default all three; '' for none)")
+    p.add_argument("--resamples", type=int, metavar="B",
+                   help="--model adjusted: also the firm bootstrap with B resamples (BCa in conf_int.bootstrap)")
+    p.add_argument("--seed", type=int, default=20261201, help="seed of the firm bootstrap (default 20261201)")
     p.add_argument("--spline-df", type=int, choices=range(2, 7), default=3, metavar="2..6",
                    help="degrees of freedom of the spline in the bend test (--model spline; default 3)")
     p.add_argument("--quasi", action="store_true",

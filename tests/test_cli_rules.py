@@ -111,3 +111,20 @@ def test_fit_adjusted_equals_statsmodels_on_the_records(capsys: pytest.CaptureFi
 def test_fit_adjusted_rejects_unknown_adjustments(capsys: pytest.CaptureFixture[str], db: str) -> None:
     code, _, err = run(capsys, "fit", "--roster", "1", "--model", "adjusted", "--adjust", "age,income", "--db", db)
     assert code != 0 and "adjustments are age, tenure, sector" in err
+
+
+def test_fit_adjusted_with_the_firm_bootstrap_records_it(capsys: pytest.CaptureFixture[str], db: str) -> None:
+    code, payload, err = run(capsys, "fit", "--roster", "1", "--model", "adjusted", "--adjust", "age",
+                             "--resamples", "500", "--seed", "3", "--db", db, "--json")
+    assert code == 0, err
+    lo, hi = payload["conf_int"]["bootstrap"]
+    assert lo < payload["odds_ratio"] < hi
+    assert payload["bootstrap"]["resamples"] == 500 and payload["bootstrap"]["seed"] == 3
+    store = Store(f"sqlite:///{db}")
+    try:
+        run_ = store.get_run(payload["run"])
+        assert run_.params == {"model": "adjusted", "adjust": ["age"], "unit": "firm", "resamples": 500, "seed": 3}
+    finally:
+        store.dispose()
+    code, _, err = run(capsys, "fit", "--roster", "1", "--resamples", "500", "--db", db)
+    assert code != 0 and "--resamples goes with --model adjusted" in err

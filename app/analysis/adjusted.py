@@ -23,6 +23,7 @@ from app.stats.adjusted import (
     AdjustedCells,
     AdjustedFit,
     MixShift,
+    bootstrap_adjusted,
     collapse,
     fit_adjusted,
     mix_by_year,
@@ -54,18 +55,29 @@ def _fingerprint(data: AdjustedCells) -> str:
 class AdjustedOutcome:
     fit: AdjustedFit
     run_id: int
+    result: dict[str, Any]
 
 
-def run_adjusted(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...]) -> AdjustedOutcome:
-    """Fit the adjusted trend and record it as a run (params: model, adjust; the mapping version pins rules)."""
+def run_adjusted(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...], *,
+                 resamples: int | None = None, seed: int = 20261201) -> AdjustedOutcome:
+    """Fit the adjusted trend and record it as a run (params: model, adjust, and the bootstrap's resamples
+    and seed when asked; the mapping version pins the rules). ``resamples``: also the firm bootstrap (BCa)."""
     chosen = parse_adjust(adjust)
     started = time.perf_counter()
     data = adjusted_cells(inp, chosen)
     fit = memoised(store, ("fit_adjusted", *inp.key, chosen), lambda: fit_adjusted(data, inp.window))
-    params = {"model": MODEL, "adjust": list(chosen)}
-    run_id = _record_run(store, inp, params, _fingerprint(data), adjusted_to_dict(fit),
-                         time.perf_counter() - started)
-    return AdjustedOutcome(fit, run_id)
+    params: dict[str, Any] = {"model": MODEL, "adjust": list(chosen)}
+    boot = None
+    if resamples is not None:
+        boot = bootstrap_adjusted(data, inp.window, resamples=resamples, seed=seed)
+        params |= {"unit": "firm", "resamples": resamples, "seed": seed}
+    result = adjusted_to_dict(fit, boot.intervals["bca"] if boot else None)
+    if boot is not None:
+        result["bootstrap"] = {"method": "BCa, firms resampled", "resamples": boot.resamples, "seed": boot.seed,
+                               "failed": boot.failed, "percentile": json_interval(boot.intervals["percentile"]),
+                               "seconds": boot.seconds}
+    run_id = _record_run(store, inp, params, _fingerprint(data), result, time.perf_counter() - started)
+    return AdjustedOutcome(fit, run_id, result)
 
 
 def adjusted_to_dict(fit: AdjustedFit, bootstrap: tuple[float, float] | None = None) -> dict[str, Any]:
@@ -96,12 +108,13 @@ def adjusted_sentence(fit: AdjustedFit) -> str:
                if dropped else "") + ").")
 
 
-def adjusted_summary(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...]) -> dict[str, Any]:
+def adjusted_summary(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...], *,
+                     resamples: int | None = None, seed: int = 20261201) -> dict[str, Any]:
     """The command line's ``fit --model adjusted --json`` object."""
-    outcome = run_adjusted(store, inp, adjust)
+    outcome = run_adjusted(store, inp, adjust, resamples=resamples, seed=seed)
     return {"roster": inp.roster.name, "mapping": inp.mapping_label,
             "rules": [r.describe() for r in (inp.mapping.rules if inp.mapping else ())],
-            **adjusted_to_dict(outcome.fit), "sentence": adjusted_sentence(outcome.fit), "run": outcome.run_id}
+            **outcome.result, "sentence": adjusted_sentence(outcome.fit), "run": outcome.run_id}
 
 
 @dataclass(frozen=True)

@@ -22,6 +22,10 @@ import pandas as pd
 import statsmodels.api as sm
 from scipy import sparse, stats
 
+from app.stats.bootstrap import BootstrapResult, bootstrap_trend
+from app.stats.cells import Cells
+from app.stats.design import Design
+
 ADJUSTMENTS = ("age", "tenure", "sector")
 AGE_BANDS = ("<50", "50-59", "60-64", "65+")
 AGE_EDGES = (50, 60, 65)
@@ -231,3 +235,26 @@ def mix_shift(table: pd.DataFrame, name: str, *, alpha: float = 0.05) -> MixShif
         sentence = (f"The {name} mix of departures did not clearly move between {spans} ({detail}"
                     + (f"; chi-square p = {p:.3g})." if p is not None else ")."))
     return MixShift(name, labels, (first[0], first[-1]), (second[0], second[-1]), sa, sb, p, moved, sentence)
+
+
+def bootstrap_cells(data: AdjustedCells, window: tuple[int, int]) -> tuple[Cells, Design]:
+    """The adjusted model as the bootstrap engine's ``Cells`` (firm x cell matrix: forced cells, then voluntary)
+    and ``Design`` (slope = the year column), so a firm resample is one count vector of the same cells."""
+    x, names = design(data.cells, data.adjust)
+    groups = pd.DataFrame({"year": data.cells["year"].to_numpy(dtype=np.int64),
+                           "sector": data.cells["sector"].astype(str).to_numpy(),
+                           "forced": data.cells["forced"].to_numpy(dtype=np.int64),
+                           "voluntary": data.cells["voluntary"].to_numpy(dtype=np.int64)})
+    matrix = sparse.hstack([data.firm_forced, data.firm_voluntary], format="csr").astype(np.int64)
+    cells = Cells(groups=groups, firm_ids=data.firm_ids, firm_matrix=matrix, window=window,
+                  by_sector="sector" in data.adjust)
+    return cells, Design(x, tuple(names), 1, float(data.cells["year"].min()))
+
+
+def bootstrap_adjusted(data: AdjustedCells, window: tuple[int, int], *, resamples: int, seed: int,
+                       alpha: float = 0.05, workers: int | None = None) -> BootstrapResult:
+    """Firm bootstrap of the adjusted odds ratio per year: firms resampled with all their departures, each
+    resample refitted by the batched IRLS (``app.stats.bootstrap.bootstrap_trend`` on the adjusted design;
+    percentile, basic and BCa intervals, the BCa acceleration from the leave-one-firm-out jackknife)."""
+    cells, dsg = bootstrap_cells(data, window)
+    return bootstrap_trend(cells, dsg, unit="firm", resamples=resamples, seed=seed, alpha=alpha, workers=workers)

@@ -8,7 +8,7 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
-from app.analysis.adjusted import MixSection, adjusted_sentence, adjusted_to_dict, mix_section, run_adjusted
+from app.analysis.adjusted import MixSection, adjusted_sentence, mix_section, run_adjusted
 from app.analysis.inputs import AnalysisInput, load_input
 from app.analysis.rates import RatesSection, rates_section
 from app.analysis.runs import period_comparison, run_trend
@@ -148,7 +148,7 @@ def _composition(store: Store, inp: AnalysisInput, adjust: tuple[str, ...] | Non
         outcome = run_adjusted(store, inp, adjust)
     except AdjustedError as exc:
         return mix, specs, None, str(exc)
-    return mix, specs, {**adjusted_to_dict(outcome.fit), "sentence": adjusted_sentence(outcome.fit),
+    return mix, specs, {**outcome.result, "sentence": adjusted_sentence(outcome.fit),
                         "run": outcome.run_id}, None
 
 
