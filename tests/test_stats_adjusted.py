@@ -168,3 +168,23 @@ def test_firm_bootstrap_of_the_adjusted_model_refits_what_statsmodels_fits() -> 
     assert result.replicates[0] == pytest.approx(float(params["year"]), abs=1e-7)
     lo, hi = result.intervals["bca"]
     assert lo < result.odds_ratio < hi
+
+
+def test_one_step_jackknife_gives_the_exact_jackknifes_acceleration() -> None:
+    """The BCa acceleration from one Newton step per left-out firm against refitting every leave-one-firm-out
+    case (the engine's exact jackknife, itself checked against statsmodels in test_stats_bootstrap.py)."""
+    from app.stats.adjusted import bootstrap_adjusted, one_step_jackknife
+    from app.stats.intervals import jackknife_acceleration
+
+    records = invented_records(seed=8, n=4000, firms=300)
+    data = collapse(records, ("age", "tenure", "sector"))
+    fit = fit_adjusted(data, (2000, 2015))
+    exact = bootstrap_adjusted(data, (2000, 2015), resamples=500, seed=2, workers=1, exact_jackknife=True)
+    fast = bootstrap_adjusted(data, (2000, 2015), resamples=500, seed=2, workers=1)
+    np.testing.assert_array_equal(fast.replicates, exact.replicates)  # the same resamples
+    approx = one_step_jackknife(data, fit)
+    assert np.max(np.abs(approx - exact.jackknife_values)) < 0.05 * fit.cluster_se
+    a_exact = jackknife_acceleration([exact.jackknife_values], None)
+    a_fast = jackknife_acceleration([approx], None)
+    assert a_fast == pytest.approx(a_exact, rel=0.05)
+    assert fast.intervals["bca"] == pytest.approx(exact.intervals["bca"], rel=2e-3)

@@ -22,9 +22,10 @@ import pandas as pd
 import statsmodels.api as sm
 from scipy import sparse, stats
 
-from app.stats.bootstrap import BootstrapResult, bootstrap_trend
+from app.stats.bootstrap import BootstrapResult, _assemble, bootstrap_trend
 from app.stats.cells import Cells
 from app.stats.design import Design
+from app.stats.sampling import draw_replicates
 
 ADJUSTMENTS = ("age", "tenure", "sector")
 AGE_BANDS = ("<50", "50-59", "60-64", "65+")
@@ -251,10 +252,38 @@ def bootstrap_cells(data: AdjustedCells, window: tuple[int, int]) -> tuple[Cells
     return cells, Design(x, tuple(names), 1, float(data.cells["year"].min()))
 
 
+def one_step_jackknife(data: AdjustedCells, fit: AdjustedFit) -> np.ndarray:
+    """Leave-one-firm-out year slopes by one Newton step from the full fit: beta - H^-1 s_g.
+
+    s_g is firm g's score (the same per-firm scores as the clustered covariance) and H the information
+    X'WX at the estimate. Used only for the BCa acceleration, where it replaces thousands of refits (the
+    exact jackknife took 11 s of a 15 s run at 100k departures and 5,000 firms); it is the infinitesimal
+    jackknife of Efron & Tibshirani (1993) §21-22 in one-step form, and tests/test_stats_adjusted.py checks
+    its acceleration against the exact leave-one-firm-out refits.
+    """
+    cells = data.cells
+    x, _ = design(cells, data.adjust)
+    beta = fit.params.to_numpy()
+    n = (cells["forced"] + cells["voluntary"]).to_numpy(dtype=float)
+    mu = 1.0 / (1.0 + np.exp(-(x @ beta)))
+    bread = np.linalg.inv(x.T @ (x * (n * mu * (1 - mu))[:, None]))
+    scores = np.asarray(data.firm_forced @ x) - np.asarray((data.firm_forced + data.firm_voluntary) @ (x * mu[:, None]))
+    return np.asarray(fit.coef - scores @ bread[:, 1], dtype=float)
+
+
 def bootstrap_adjusted(data: AdjustedCells, window: tuple[int, int], *, resamples: int, seed: int,
-                       alpha: float = 0.05, workers: int | None = None) -> BootstrapResult:
+                       alpha: float = 0.05, workers: int | None = None, exact_jackknife: bool = False
+                       ) -> BootstrapResult:
     """Firm bootstrap of the adjusted odds ratio per year: firms resampled with all their departures, each
-    resample refitted by the batched IRLS (``app.stats.bootstrap.bootstrap_trend`` on the adjusted design;
-    percentile, basic and BCa intervals, the BCa acceleration from the leave-one-firm-out jackknife)."""
+    resample refitted by the batched IRLS (``app.stats.sampling.draw_replicates`` on the adjusted design);
+    percentile, basic and BCa intervals, the BCa acceleration from the one-step leave-one-firm-out jackknife
+    (``exact_jackknife``: refit every leave-one-firm-out case instead, as ``bootstrap_trend`` does)."""
     cells, dsg = bootstrap_cells(data, window)
-    return bootstrap_trend(cells, dsg, unit="firm", resamples=resamples, seed=seed, alpha=alpha, workers=workers)
+    if exact_jackknife:
+        return bootstrap_trend(cells, dsg, unit="firm", resamples=resamples, seed=seed, alpha=alpha,
+                               workers=workers)
+    fit = fit_adjusted(data, window)
+    reps = draw_replicates(cells, dsg, unit="firm", resamples=resamples, seed=seed, coefficient=1, workers=workers)
+    jk = (one_step_jackknife(data, fit), np.ones(len(data.firm_ids)))
+    # the engine's own assembly of intervals, failures and Monte Carlo errors
+    return _assemble(dsg, "firm", int(seed), alpha, 1, fit.coef, reps.estimates, reps.failure, jk, reps.seconds)
