@@ -128,3 +128,11 @@ def test_fit_adjusted_with_the_firm_bootstrap_records_it(capsys: pytest.CaptureF
         store.dispose()
     code, _, err = run(capsys, "fit", "--roster", "1", "--resamples", "500", "--db", db)
     assert code != 0 and "--resamples goes with --model adjusted" in err
+
+
+def test_an_adjusted_run_has_no_replication_pack_yet_and_says_so(capsys: pytest.CaptureFixture[str], db: str,
+                                                                  tmp_path: Path) -> None:
+    code, payload, _ = run(capsys, "fit", "--roster", "1", "--model", "adjusted", "--db", db, "--json")
+    assert code == 0
+    code, _, err = run(capsys, "run", "export", str(payload["run"]), "--out", str(tmp_path / "p.zip"), "--db", db)
+    assert code != 0 and "is an adjusted trend" in err and not (tmp_path / "p.zip").exists()
