@@ -141,7 +141,7 @@ def _composition(store: Store, inp: AnalysisInput, adjust: tuple[str, ...] | Non
     """The mix diagnostic (always) and the adjusted fit (when asked), or why there is none."""
     mix = mix_section(inp)
     specs = page_memo(store, ("trend-mix", *inp.key),
-                      lambda: {k: figure_spec(f) for k, f in mix_figures(inp, mix).items()})
+                      lambda: {k: figure_spec(f, titled=False) for k, f in mix_figures(inp, mix).items()})
     if adjust is None:
         return mix, specs, None, None
     try:
