@@ -224,19 +224,24 @@ def cmd_mapping_import(args: argparse.Namespace) -> int:
     from app.analysis.mapping_files import import_mapping_file
 
     path = _input_file(args.file)
-    outcome = import_mapping_file(_store(args), path.read_bytes(), roster=args.roster, name=args.name)
+    rules = None
+    if args.rules:
+        rules = _input_file(args.rules).read_bytes()
+    outcome = import_mapping_file(_store(args), path.read_bytes(), roster=args.roster, name=args.name, rules=rules)
     _emit(args, outcome, lambda p: (
         f"Saved mapping {p['mapping']!r} version {p['version']} with {p['codes']} codes"
+        + (f" and {len(p['rules'])} rule(s)" if p["rules"] else "")
         + (f"; {len(p['not_in_roster'])} codes do not occur in the roster (kept for other rosters)"
            if p["not_in_roster"] else "") + "."))
     return 0
 
 
 def cmd_mapping_export(args: argparse.Namespace) -> int:
-    from app.analysis.mapping_files import export_mapping_csv
+    from app.analysis.mapping_files import export_mapping_csv, export_rules_csv
 
     out = _out_path(args.out) if args.out else None
-    text = export_mapping_csv(_store(args), name=args.name, version=args.version)
+    export = export_rules_csv if args.rules else export_mapping_csv
+    text = export(_store(args), name=args.name, version=args.version)
     if out:
         out.write_text(text, encoding="utf-8")
     else:
@@ -262,6 +267,9 @@ def cmd_fit(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
 
     store = _store(args)
+    if args.resamples is not None and args.model != "adjusted":
+        raise CommandError("--resamples goes with --model adjusted; bootstrap the other models with "
+                           "`helmshift bootstrap`.")
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
     if args.measure == "rate":
         from app.analysis.rates import rate_summary
@@ -269,6 +277,14 @@ def cmd_fit(args: argparse.Namespace) -> int:
         if args.by or args.model != "linear" or args.compare:
             raise CommandError("--measure rate fits the straight Poisson trend only; drop --by, --model and --compare.")
         _emit(args, rate_summary(store, inp), lambda p: f"{p['sentence']}\n{p['caution']}")
+        return 0
+    if args.model == "adjusted":
+        from app.analysis.adjusted import adjusted_summary
+
+        if args.by or args.compare:
+            raise CommandError("--model adjusted adjusts for sector itself (--adjust); drop --by and --compare.")
+        adjusted_payload = adjusted_summary(store, inp, args.adjust, resamples=args.resamples, seed=args.seed)
+        _emit(args, adjusted_payload, lambda p: p["sentence"])
         return 0
     payload: dict[str, Any] | None = None
     if not args.compare and args.by != "sector":
@@ -354,7 +370,7 @@ def cmd_robustness(args: argparse.Namespace) -> int:
     mappings = args.mapping or []
     inp = load_input(store, args.roster, mapping=mappings[0] if mappings else None,
                      window=_parse_years(args.years))
-    payload = robustness_summary(store, inp, extra_mappings=mappings[1:], vary=args.vary or [])
+    payload = robustness_summary(store, inp, extra_mappings=mappings[1:], vary=args.vary or [], preset=args.preset)
     _emit(args, payload, lambda p: p["sentence"])
     return 0
 
@@ -421,6 +437,8 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("file")
     q.add_argument("--roster", required=True)
     q.add_argument("--name", required=True)
+    q.add_argument("--rules", metavar="RULES.csv",
+                   help="classification rules (code,field,comparison,value,category) saved with this version")
     common(q)
     q.set_defaults(func=cmd_mapping_import)
     q = msub.add_parser("export", help="write a mapping version as CSV")
@@ -428,6 +446,8 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--name", required=True)
     q.add_argument("--version", type=int)
     q.add_argument("--out")
+    q.add_argument("--rules", action="store_true",
+                   help="write the version's classification rules (code,field,comparison,value,category)")
     common(q, json_flag=False)
     q.set_defaults(func=cmd_mapping_export)
 
@@ -460,7 +480,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--mapping")
     p.add_argument("--years", metavar="FROM-TO")
     p.add_argument("--by", choices=["sector"])
-    p.add_argument("--model", choices=["linear", "sector", "spline"], default="linear")
+    p.add_argument("--model", choices=["linear", "sector", "spline", "adjusted"], default="linear",
+                   help="adjusted: departure-level logit on year + the --adjust fields, firm-clustered SEs")
+    p.add_argument("--adjust", metavar="age,tenure,sector", default="age,tenure,sector",
+                   help="what the adjusted model adjusts for (--model adjusted; default all three; '' for none)")
+    p.add_argument("--resamples", type=int, metavar="B",
+                   help="--model adjusted: also the firm bootstrap with B resamples (BCa in conf_int.bootstrap)")
+    p.add_argument("--seed", type=int, default=20261201, help="seed of the firm bootstrap (default 20261201)")
     p.add_argument("--spline-df", type=int, choices=range(2, 7), default=3, metavar="2..6",
                    help="degrees of freedom of the spline in the bend test (--model spline; default 3)")
     p.add_argument("--quasi", action="store_true",
@@ -514,6 +540,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--roster", required=True)
     p.add_argument("--mapping", action="append", help="a mapping (repeat for several; NAME or NAME:VERSION)")
     p.add_argument("--vary", action="append", metavar="CODE", help="move CODE to each other category")
+    p.add_argument("--preset", action="store_true",
+                   help="also read the codes with the academic preset (retirement below 60 counts as forced, "
+                        "Parrino 1997)")
     p.add_argument("--years", metavar="FROM-TO")
     common(p)
     p.set_defaults(func=cmd_robustness)

@@ -18,7 +18,7 @@ import json
 import threading
 import weakref
 from collections import OrderedDict
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any, TypeVar
 
 import numpy as np
@@ -26,8 +26,9 @@ import pandas as pd
 
 from app.stats.cells import Cells, assign_categories
 from app.stats.coverage import COUNT_COLUMNS
+from app.stats.rules import RuleEffect, apply_rules
 from app.store import MappingVersion, Roster, Store
-from app.types import UNMAPPED
+from app.types import UNMAPPED, ClassificationRule
 
 T = TypeVar("T")
 #: entries kept per store (a roster's counts, a mapping's coverage, a window's cells each take one)
@@ -84,12 +85,48 @@ def roster_counts(store: Store, roster: Roster) -> pd.DataFrame:
                            lambda: store.cell_counts(roster.id, roster.version))
 
 
+def detail_counts(store: Store, roster: Roster) -> pd.DataFrame:
+    """Departures per (year, sector, reason, age, tenure, interim): the key rules and the adjusted trend need
+    (shared: do not modify the frame)."""
+    return memo(store).get(("detail", roster.id, roster_fingerprint(roster)),
+                           lambda: store.cell_counts(roster.id, roster.version, detail=True))
+
+
+def categorise(counts: pd.DataFrame, mapping: MappingVersion | None) -> tuple[pd.DataFrame, list[RuleEffect]]:
+    """``counts`` (cells or records) with each row's ``category``: its code's, then the version's rules."""
+    return categorise_with(counts, mapping.categories if mapping else {}, mapping.rules if mapping else ())
+
+
+def categorise_with(counts: pd.DataFrame, categories: Mapping[str, str],
+                    rules: Sequence[ClassificationRule]) -> tuple[pd.DataFrame, list[RuleEffect]]:
+    """``categorise`` for a reading that is not a saved version (robustness variants); rules need the
+    detailed cells (``detail_counts``) or records."""
+    base = assign_categories(counts["reason"], categories)
+    if not rules:
+        return counts.assign(category=base), []
+    decided, effects = apply_rules(counts, np.asarray(base, dtype=object), rules)
+    return counts.assign(category=decided), effects
+
+
 def categorised_counts(store: Store, roster: Roster, mapping: MappingVersion | None) -> pd.DataFrame:
-    """``roster_counts`` with a ``category`` column read through ``mapping`` (shared: do not modify)."""
+    """``roster_counts`` with a ``category`` column read through ``mapping`` (shared: do not modify).
+
+    A version with classification rules reads the detailed cells (age, tenure, interim in the key) so the
+    rules apply without reading a record; without rules the frame is keyed by (year, sector, reason) only.
+    """
     def compute() -> pd.DataFrame:
-        counts = roster_counts(store, roster)
-        return counts.assign(category=assign_categories(counts["reason"], mapping.categories if mapping else {}))
+        if mapping is not None and mapping.rules:
+            return categorise(detail_counts(store, roster), mapping)[0]
+        return categorise(roster_counts(store, roster), mapping)[0]
     return memo(store).get(("categorised", roster.id, roster_fingerprint(roster), mapping_key(mapping)), compute)
+
+
+def rule_effects(store: Store, roster: Roster, mapping: MappingVersion | None) -> list[RuleEffect]:
+    """What each rule of ``mapping`` did to this roster's departures (all years), from the detailed cells."""
+    if mapping is None or not mapping.rules:
+        return []
+    return memoised(store, ("rule_effects", roster.id, roster_fingerprint(roster), mapping_key(mapping)),
+                    lambda: categorise(detail_counts(store, roster), mapping)[1])
 
 
 def memoised(store: Store, key: tuple[Any, ...], compute: Callable[[], T]) -> T:

@@ -13,6 +13,7 @@ from typing import Any, Literal
 import pandas as pd
 
 from app.analysis.cellstore import (
+    categorise,
     categorised_counts,
     cells_from_counts,
     coverage_from_counts,
@@ -21,7 +22,7 @@ from app.analysis.cellstore import (
     roster_fingerprint,
     unmapped_codes,
 )
-from app.stats.cells import Cells, assign_categories
+from app.stats.cells import Cells
 from app.stats.coverage import WindowSuggestion, YearFlag, flag_years, suggest_window
 from app.store import MappingVersion, Roster, Run, Store, StoreError
 
@@ -61,8 +62,7 @@ class AnalysisInput:
     def records(self) -> pd.DataFrame:
         """Every accepted departure with its ``category`` (a full read of the roster: jobs and exports only)."""
         records = self.store.departures(self.roster.id, version=self.roster.version)
-        records["category"] = assign_categories(records["reason"],
-                                                self.mapping.categories if self.mapping else {})
+        records["category"] = categorise(records, self.mapping)[0]["category"].to_numpy()
         return records
 
     def in_window(self) -> pd.DataFrame:
@@ -81,9 +81,9 @@ class AnalysisInput:
 
     def cells(self, *, by_sector: bool = False) -> Cells:
         """The group counts and the firm x cell matrix (reads the firm counts: for bootstrap jobs)."""
-        firms = self.store.firm_cell_counts(self.roster.id, self.roster.version)
-        return cells_from_counts(firms, self.window, by_sector=by_sector,
-                                 categories=self.mapping.categories if self.mapping else {})
+        rules = self.mapping is not None and bool(self.mapping.rules)
+        firms = self.store.firm_cell_counts(self.roster.id, self.roster.version, detail=rules)
+        return cells_from_counts(categorise(firms, self.mapping)[0], self.window, by_sector=by_sector)
 
     def counts_nothing(self) -> bool:
         """True when the mapping counts no departure as forced or voluntary (every code excluded)."""

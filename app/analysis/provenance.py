@@ -24,6 +24,7 @@ MODEL_LABELS = {
     "linear": "binomial GLM, logit(forced share) linear in fiscal year",
     "sector": "binomial GLM, sector intercepts + common linear trend in fiscal year",
     "spline": "binomial GLM, linear trend compared with a natural cubic spline in fiscal year",
+    "adjusted": "departure-level logit, forced vs voluntary on fiscal year + adjustments, firm-clustered SEs",
 }
 
 
@@ -47,6 +48,8 @@ class Provenance:
     categories: tuple[tuple[str, tuple[str, ...]], ...] = ()
     #: (run id, sha256) of the replication pack behind each run quoted
     packs: tuple[tuple[int, str], ...] = ()
+    #: the mapping version's classification rules, in evaluation order (pinned by the version)
+    rules: tuple[str, ...] = ()
 
     def _created(self) -> str:
         return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
@@ -65,7 +68,8 @@ class Provenance:
         """One labelled line per fact, for the methods slide and the brief's footer."""
         out = [
             f"Roster: {self.roster} (data fingerprint {self.roster_fingerprint})",
-            f"Mapping: {self.mapping_name}, version {self.mapping_version}",
+            f"Mapping: {self.mapping_name}, version {self.mapping_version}"
+            + (f"; classification rules, first match wins: {'; '.join(self.rules)}" if self.rules else ""),
             f"Window: fiscal years {self.window[0]}\u2013{self.window[1]}",
             f"Model: {self.model}",
             f"Intervals: {self.interval_method}",
@@ -84,7 +88,8 @@ class Provenance:
         """The one-line form for a chart's source line."""
         parts = [
             f"Source: roster {self.roster} [{self.roster_fingerprint[:12]}]",
-            f"mapping {self.mapping_name} v{self.mapping_version}",
+            f"mapping {self.mapping_name} v{self.mapping_version}"
+            + (f" with {len(self.rules)} rule{'s' if len(self.rules) > 1 else ''}" if self.rules else ""),
             f"FY{self.window[0]}\u2013{self.window[1]}",
             self.model,
         ]
@@ -96,14 +101,17 @@ class Provenance:
 
 def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method: str = "Wald and profile likelihood",
                    resamples: int | None = None, seed: int | None = None, unit: str | None = None,
-                   by_sector: bool = False) -> Provenance:
-    """What every chart, deck and brief states about where its numbers came from."""
+                   by_sector: bool = False, adjust: tuple[str, ...] | None = None) -> Provenance:
+    """What every chart, deck and brief states about where its numbers came from (``adjust``: the adjusted
+    trend's adjustment set, named in the model line)."""
     cats = inp.mapping.categories if inp.mapping else {}
     grouped = tuple((c, tuple(sorted(code for code, cat in cats.items() if cat == c))) for c in CATEGORIES)
     return Provenance(
         roster=inp.roster.name, roster_fingerprint=inp.group_cells(by_sector=by_sector).fingerprint(),
         mapping_name=inp.mapping.name if inp.mapping else "none",
         mapping_version=inp.mapping.version if inp.mapping else 0, window=inp.window,
-        model=MODEL_LABELS.get(model, model), interval_method=interval_method, resamples=resamples,
-        seed=seed, unit=unit, categories=grouped,
+        model=MODEL_LABELS.get(model, model) + (f" (adjusted for {', '.join(adjust) or 'nothing'})"
+                                                 if adjust is not None else ""),
+        interval_method=interval_method, resamples=resamples, seed=seed, unit=unit, categories=grouped,
+        rules=tuple(r.describe() for r in (inp.mapping.rules if inp.mapping else ())),
     )

@@ -244,6 +244,9 @@ def _readme(run: Run, files: list[str]) -> str:
 def build_pack(store: Store, run_id: int, *, records: bool = False) -> ReplicationPack:
     """The replication pack of a finished run, as zip bytes (the same bytes every time)."""
     run = finished_run(store, run_id)
+    if run.params.get("model") == "adjusted":
+        raise ValueError(f"Run {run.id} is an adjusted trend; replication packs cover the share trends and their "
+                         "bootstrap runs so far (its counts and coefficients are in the run's JSON).")
     inp, cells = run_cells(store, run)
     members: dict[str, str] = {}
     members["cells.csv"] = safe_csv(cells.groups[["year", "sector", "forced", "voluntary"]].itertuples(index=False),

@@ -1,7 +1,8 @@
 """Does the trend survive other readings of "forced"? The same model under alternative mappings.
 
 Variants: the roster's mapping (the reference), any other saved mapping versions the analyst names,
-one chosen code moved to each other category, and every ambiguous code treated as excluded.
+one chosen code moved to each other category, every ambiguous code treated as excluded, the reading without
+the mapping version's classification rules (when it has any) and, on request, with the academic preset.
 Each variant is fitted on the same window; the differences from the reference are spelled out.
 
 A reading must not mislead: other mappings are offered by default only when they give a category to every
@@ -19,12 +20,13 @@ from typing import Any, Literal
 import numpy as np
 import pandas as pd
 
-from app.analysis.cellstore import cells_from_counts, memoised
+from app.analysis.cellstore import categorise_with, cells_from_counts, detail_counts, memoised
 from app.analysis.inputs import AnalysisInput, parse_mapping_ref
+from app.analysis.rules import PRESET_NAME, PRESET_SOURCE, preset_rules, with_preset
 from app.intake.reasons import diff_mappings, suggest_categories
 from app.stats.trend import TrendError, TrendFit, fit_trend
 from app.store import Store
-from app.types import CATEGORIES
+from app.types import CATEGORIES, ClassificationRule
 
 
 @dataclass(frozen=True)
@@ -116,17 +118,22 @@ def _bootstrap_interval(store: Store, inp: AnalysisInput, name: str, version: in
 
 
 def _fit_variant(inp: AnalysisInput, categories: Mapping[str, str], label: str, kind: str,
-                 changes: tuple[str, ...], boot: tuple[tuple[float, float] | None, str], *,
+                 changes: tuple[str, ...], boot: tuple[tuple[float, float] | None, str],
+                 rules: tuple[ClassificationRule, ...] = (), *,
                  counted: Mapping[str, int] | None = None, ref: str | None = None) -> Variant:
     def fit_variant() -> tuple[int, int, TrendFit | str]:
-        cells = cells_from_counts(inp.counts, inp.window, categories=categories)
+        if rules:  # rules read the age/tenure/interim key of the cells
+            counts = categorise_with(detail_counts(inp.store, inp.roster), categories, rules)[0]
+            cells = cells_from_counts(counts, inp.window)
+        else:
+            cells = cells_from_counts(inp.counts, inp.window, categories=categories)
         try:
             return int(cells.totals.sum()), int(cells.forced.sum()), fit_trend(cells, "linear")
         except TrendError as exc:
             return int(cells.totals.sum()), int(cells.forced.sum()), str(exc)
 
     # the same reading of the codes on the same counts and window gives the same fit: memoised
-    departures, forced, fit = memoised(inp.store, ("variant", *inp.key, tuple(sorted(categories.items()))),
+    departures, forced, fit = memoised(inp.store, ("variant", *inp.key, tuple(sorted(categories.items())), rules),
                                        fit_variant)
     unmapped = sum(_unmapped(counted or {}, categories).values())
     if isinstance(fit, str):
@@ -149,8 +156,10 @@ def _direction(v: Variant) -> int:
 
 
 def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[str] | Literal["covering"] | None = None,
-                     vary: list[str] | None = None, ambiguous_excluded: bool = True) -> Robustness:
-    """Fit the straight trend under each variant of the mapping (see module docstring).
+                     vary: list[str] | None = None, ambiguous_excluded: bool = True,
+                     preset: bool = False) -> Robustness:
+    """Fit the straight trend under each variant of the mapping (see module docstring); with ``preset``, also
+    with the academic preset's rules added (retirement below 60 counts as forced).
 
     ``extra_mappings="covering"``: every other saved mapping that covers the counted codes; the rest are
     listed in ``left_out`` with the reason.
@@ -158,24 +167,35 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
     if inp.mapping is None:
         raise ValueError("Robustness needs a reference mapping; choose one on the Reason codes page.")
     base: dict[str, str] = dict(inp.mapping.categories)
+    rules = inp.mapping.rules
     roster_codes = set(inp.counts["reason"].astype(str))
     counted = counted_codes(inp, base)
     left_out: list[tuple[str, str]] = []
     if extra_mappings == "covering":
         extra_mappings, left_out = offered_mappings(store, inp)
     variants = [_fit_variant(inp, base, inp.mapping_label, "reference", ("the roster's mapping",),
-                             _bootstrap_interval(store, inp, inp.mapping.name, inp.mapping.version),
+                             _bootstrap_interval(store, inp, inp.mapping.name, inp.mapping.version), rules,
                              ref=f"{inp.mapping.name}:{inp.mapping.version}")]
+    no_boot = (None, "not bootstrapped (a generated variant)")
+    if rules:
+        variants.append(_fit_variant(inp, base, "without rules (codes alone)", "rules-off",
+                                     tuple(f"dropped rule: {r.describe()}" for r in rules), no_boot))
+    if preset:
+        added = with_preset(rules, preset_rules(inp.mapping, roster_codes))
+        if added != rules:
+            variants.append(_fit_variant(inp, base, f"with the preset: {PRESET_NAME}", "rules-preset",
+                                         tuple(f"added rule: {r.describe()} ({PRESET_SOURCE})"
+                                               for r in added[len(rules):]), no_boot, added))
     for ref in extra_mappings or []:
         name, version = parse_mapping_ref(ref)
         other = store.get_mapping(name, version)
         if other.name == inp.mapping.name and other.version == inp.mapping.version:
             continue
         variants.append(_fit_variant(inp, dict(other.categories), f"{other.name} v{other.version}", "mapping",
-                                     _describe(base, dict(other.categories), roster_codes),
-                                     _bootstrap_interval(store, inp, other.name, other.version),
+                                     _describe(base, dict(other.categories), roster_codes)
+                                     + tuple(f"rule: {r.describe()}" for r in other.rules if r not in rules),
+                                     _bootstrap_interval(store, inp, other.name, other.version), other.rules,
                                      counted=counted, ref=f"{other.name}:{other.version}"))
-    no_boot = (None, "not bootstrapped (a generated variant)")
     for code in vary or []:
         if code not in roster_codes:
             raise ValueError(f"Reason code {code!r} does not occur in roster {inp.roster.name!r}.")
@@ -185,14 +205,14 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
                 continue
             moved = base | {code: target}
             variants.append(_fit_variant(inp, moved, f"{code} as {target}", "moved",
-                                         (f"{code}: {current} → {target}",), no_boot))
+                                         (f"{code}: {current} → {target}",), no_boot, rules))
     if ambiguous_excluded:
         ambiguous = sorted(c for c, s in suggest_categories(sorted(roster_codes)).items() if s.ambiguous)
         changed = {c: "excluded" for c in ambiguous if base.get(c) != "excluded"}
         if changed:
             variants.append(_fit_variant(inp, base | changed, "ambiguous codes excluded", "ambiguous-excluded",
                                          tuple(f"{c}: {base.get(c, 'unmapped')} → excluded" for c in changed),
-                                         no_boot))
+                                         no_boot, rules))
     return replace(_verdict(inp, _merge_identical(variants)), left_out=tuple(left_out))
 
 

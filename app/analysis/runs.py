@@ -119,9 +119,9 @@ def fit_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", by_s
 
 
 def robustness_summary(store: Store, inp: AnalysisInput, *, extra_mappings: list[str],
-                       vary: list[str]) -> dict[str, Any]:
+                       vary: list[str], preset: bool = False) -> dict[str, Any]:
     """The command line's ``robustness --json`` object."""
-    result = check_robustness(store, inp, extra_mappings=extra_mappings, vary=vary)
+    result = check_robustness(store, inp, extra_mappings=extra_mappings, vary=vary, preset=preset)
     return {"roster": inp.roster.name, "mapping": inp.mapping_label, **robustness_to_dict(result)}
 
 

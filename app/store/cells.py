@@ -13,13 +13,33 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import ColumnElement, Connection, and_, case, distinct, exists, func, insert, literal, select
+from sqlalchemy import (
+    ColumnElement,
+    Connection,
+    Integer,
+    and_,
+    case,
+    cast,
+    distinct,
+    exists,
+    func,
+    insert,
+    literal,
+    select,
+)
 
 from app.store.engine import Gateway
-from app.store.tables import departures, roster_cells, roster_firm_cells, rosters, universe_firm_years
+from app.store.tables import (
+    departures,
+    roster_cells,
+    roster_detail_cells,
+    roster_firm_cells,
+    rosters,
+    universe_firm_years,
+)
 
-CELL_COLUMNS = ("year", "sector", "reason", "departures")
-FIRM_CELL_COLUMNS = ("firm_id", "year", "sector", "reason", "departures")
+#: the key's detail (issue 16): age and tenure in completed years, the interim flag; None where missing
+DETAIL_COLUMNS = ("age", "tenure", "interim")
 
 
 def version_of(roster_id: int, version: int | None) -> ColumnElement[int]:
@@ -29,17 +49,33 @@ def version_of(roster_id: int, version: int | None) -> ColumnElement[int]:
     return select(rosters.c.version).where(rosters.c.id == roster_id).scalar_subquery()
 
 
+def completed(column: Any) -> Any:
+    """Completed whole units of a non-negative REAL column (floor), NULL stays NULL.
+
+    Written with CAST and a correction so it gives the same integer on SQLite (CAST truncates) and on
+    PostgreSQL (CAST rounds); the import's validation keeps age and tenure non-negative.
+    """
+    whole = cast(column, Integer)
+    return case((column.is_(None), None), (whole > column, whole - 1), else_=whole)
+
+
 def fill_cells(conn: Connection, roster_id: int, version: int = 1) -> None:
-    """Count one roster version's departures into both cell tables, inside the caller's transaction."""
+    """Count one roster version's departures into the three cell tables, inside the caller's transaction."""
     d = departures.c
-    keys = (d.year, d.sector, d.reason)
+    keys = (d.year, d.sector, d.reason, completed(d.age), completed(d.tenure), d.interim)
+    names = ("year", "sector", "reason", *DETAIL_COLUMNS, "departures")
+    plain = (d.year, d.sector, d.reason)
     which = (d.roster_id == roster_id, d.version == version)
     conn.execute(insert(roster_cells).from_select(
-        ["roster_id", "version", *CELL_COLUMNS],
+        ["roster_id", "version", "year", "sector", "reason", "departures"],
+        select(d.roster_id, d.version, *plain, func.count()).where(*which)
+        .group_by(d.roster_id, d.version, *plain)))
+    conn.execute(insert(roster_detail_cells).from_select(
+        ["roster_id", "version", *names],
         select(d.roster_id, d.version, *keys, func.count()).where(*which)
         .group_by(d.roster_id, d.version, *keys)))
     conn.execute(insert(roster_firm_cells).from_select(
-        ["roster_id", "version", *FIRM_CELL_COLUMNS],
+        ["roster_id", "version", "firm_id", *names],
         select(d.roster_id, d.version, d.firm_id, *keys, func.count()).where(*which)
         .group_by(d.roster_id, d.version, d.firm_id, *keys)))
 
@@ -53,42 +89,58 @@ def _frame(rows: Sequence[Any], columns: tuple[str, ...]) -> pd.DataFrame:
     for c in ("sector", "reason", "firm_id"):
         if c in frame:
             frame[c] = frame[c].astype(object)
+    for c in ("age", "tenure"):
+        if c in frame:
+            frame[c] = frame[c].astype("Int64")
+    if "interim" in frame:
+        frame["interim"] = frame["interim"].astype("boolean")
     return frame
 
 
 class CellQueries(Gateway):
     """Reads of the cell store (writes happen in ``fill_cells``, with the import)."""
 
-    def cell_counts(self, roster_id: int, version: int | None = None) -> pd.DataFrame:
+    def cell_counts(self, roster_id: int, version: int | None = None, *, detail: bool = False) -> pd.DataFrame:
         """Departures per (year, sector, reason) of one roster version (default: the newest); ``sector`` is
         None where the record had none.
 
-        Sorted by year, sector (missing first), reason. Rebuilds the cells of a roster stored without them.
+        With ``detail`` the key also holds ``age``, ``tenure`` (completed years) and ``interim`` (missing
+        values are <NA>). Sorted by the key (missing first). Rebuilds the cells of a roster stored without them.
         """
-        c = roster_cells.c
-        query = (select(c.year, c.sector, c.reason, c.departures)
-                 .where(c.roster_id == roster_id, c.version == version_of(roster_id, version))
-                 .order_by(c.year, c.sector, c.reason))
-        with self.engine.connect() as conn:
-            rows = conn.execute(query).all()
-        if not rows and self._repair_cells(roster_id, version):
-            with self.engine.connect() as conn:
-                rows = conn.execute(query).all()
-        return _frame(rows, CELL_COLUMNS)
+        return self._read_cells(roster_detail_cells if detail else roster_cells, roster_id, (), detail, version)
 
-    def firm_cell_counts(self, roster_id: int, version: int | None = None) -> pd.DataFrame:
-        """Departures per (firm, year, sector, reason) of one roster version (default: the newest): what a
-        firm bootstrap needs. Read by jobs only."""
-        c = roster_firm_cells.c
-        query = (select(c.firm_id, c.year, c.sector, c.reason, c.departures)
-                 .where(c.roster_id == roster_id, c.version == version_of(roster_id, version))
-                 .order_by(c.firm_id, c.year, c.sector, c.reason))
-        with self.engine.connect() as conn:
-            rows = conn.execute(query).all()
-        if not rows and self._repair_cells(roster_id, version):
+    def firm_cell_counts(self, roster_id: int, version: int | None = None, *, detail: bool = False) -> pd.DataFrame:
+        """Departures per (firm, year, sector, reason[, age, tenure, interim]) of one roster version (default:
+        the newest): what a firm bootstrap needs. Read by jobs only."""
+        return self._read_cells(roster_firm_cells, roster_id, ("firm_id",), detail, version)
+
+    def _read_cells(self, table: Any, roster_id: int, lead: tuple[str, ...], detail: bool,
+                    version: int | None) -> pd.DataFrame:
+        c = table.c
+        key = [c[name] for name in (*lead, "year", "sector", "reason", *(DETAIL_COLUMNS if detail else ()))]
+        which = (c.roster_id == roster_id, c.version == version_of(roster_id, version))
+        if table is roster_firm_cells:
+            query = select(*key, func.sum(c.departures)).where(*which).group_by(*key).order_by(*key)
+        else:  # one row per key already
+            query = select(*key, c.departures).where(*which).order_by(*key)
+
+        def fetch() -> list[Any]:
             with self.engine.connect() as conn:
-                rows = conn.execute(query).all()
-        return _frame(rows, FIRM_CELL_COLUMNS)
+                # the driver's plain tuples: building a SQLAlchemy Row per cell costs more than the query on a
+                # roster whose detailed key has ~one cell per departure (benchmarks/bench_rules_adjusted.py)
+                return list(conn.execute(query).cursor.fetchall())
+
+        rows = fetch()
+        if not rows and self._repair_cells(roster_id, version):
+            rows = fetch()
+        return _frame(rows, tuple(k.name for k in key) + ("departures",))
+
+    def cell_table_rows(self, roster_id: int) -> dict[str, int]:
+        """Stored rows of each cell table for one roster (the cost of the detailed key: benchmarks, tests)."""
+        with self.engine.connect() as conn:
+            return {t.name: int(conn.execute(select(func.count()).select_from(t)
+                                             .where(t.c.roster_id == roster_id)).scalar_one())
+                    for t in (roster_cells, roster_detail_cells, roster_firm_cells)}
 
     def firm_counts(self, roster_id: int, *, missing: str = "(none)",
                     version: int | None = None) -> tuple[int, pd.DataFrame]:
@@ -151,13 +203,14 @@ class CellQueries(Gateway):
             number = conn.execute(select(version_of(roster_id, version))).scalar()
             if number is None:
                 return False
-            rc, fc, d = roster_cells.c, roster_firm_cells.c, departures.c
+            rc, d = roster_cells.c, departures.c
             if conn.execute(select(rc.roster_id).where(rc.roster_id == roster_id, rc.version == number)
                             .limit(1)).first() is not None:
                 return True
             if conn.execute(select(d.id).where(d.roster_id == roster_id, d.version == number)
                             .limit(1)).first() is None:
                 return False
-            conn.execute(roster_firm_cells.delete().where(fc.roster_id == roster_id, fc.version == number))
+            for table in (roster_detail_cells, roster_firm_cells):
+                conn.execute(table.delete().where(table.c.roster_id == roster_id, table.c.version == number))
             fill_cells(conn, roster_id, int(number))
         return True

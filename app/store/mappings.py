@@ -3,7 +3,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 
 from sqlalchemy import (
     func,
@@ -21,10 +21,11 @@ from app.store.records import (
 )
 from app.store.tables import (
     mapping_entries,
+    mapping_rules,
     mapping_versions,
     mappings,
 )
-from app.types import CATEGORIES
+from app.types import CATEGORIES, ClassificationRule
 
 
 class MappingQueries(Gateway):
@@ -38,9 +39,11 @@ class MappingQueries(Gateway):
         *,
         author: str = "analyst",
         note: str = "",
+        rules: Sequence[ClassificationRule] = (),
     ) -> MappingVersion:
-        """Save ``categories`` (code -> category) as the next version of mapping ``name``."""
-        bad = sorted({c for c in categories.values() if c not in CATEGORIES})
+        """Save ``categories`` (code -> category) and its classification ``rules`` (in evaluation order)
+        as the next version of mapping ``name``."""
+        bad = sorted({c for c in [*categories.values(), *(r.category for r in rules)] if c not in CATEGORIES})
         if bad:
             raise StoreError(f"Unknown categories {bad}; allowed: {', '.join(CATEGORIES)}.")
         labels = labels or {}
@@ -65,8 +68,14 @@ class MappingQueries(Gateway):
                     {"version_id": version_id, "code": code, "category": cat, "label": labels.get(code, "")}
                     for code, cat in categories.items()
                 ])
+            if rules:
+                conn.execute(insert(mapping_rules), [
+                    {"version_id": version_id, "position": i, "code": r.code, "field": r.field,
+                     "comparison": r.comparison, "value": int(r.value), "category": r.category}
+                    for i, r in enumerate(rules, start=1)
+                ])
             record_event(conn, "mapping_version", f"mapping:{name}:{version}",
-                         {"codes": len(categories), "note": note})
+                         {"codes": len(categories), "rules": len(rules), "note": note})
         return self.get_mapping(name, version)
 
     def list_mappings(self) -> list[tuple[str, int]]:
@@ -107,8 +116,13 @@ class MappingQueries(Gateway):
                 select(mapping_entries.c.code, mapping_entries.c.category, mapping_entries.c.label)
                 .where(mapping_entries.c.version_id == row.id).order_by(mapping_entries.c.code)
             ).fetchall()
+            rules = conn.execute(
+                select(mapping_rules).where(mapping_rules.c.version_id == row.id).order_by(mapping_rules.c.position)
+            ).fetchall()
         return MappingVersion(
             name=name, version=int(row.version), created_at=row.created_at, author=row.author,
             note=row.note, categories={e.code: e.category for e in entries},
             labels={e.code: e.label for e in entries if e.label},
+            rules=tuple(ClassificationRule(r.code, r.field, r.comparison, int(r.value), r.category)
+                        for r in rules),
         )

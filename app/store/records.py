@@ -7,7 +7,7 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from app.types import Category, RunKind, RunStatus
+from app.types import Category, ClassificationRule, RunKind, RunStatus
 
 
 class StoreError(ValueError):
@@ -61,6 +61,8 @@ class MappingVersion:
     note: str
     categories: dict[str, Category]
     labels: dict[str, str]
+    #: classification rules pinned to this version, in evaluation order (first match wins)
+    rules: tuple[ClassificationRule, ...] = ()
 
 
 @dataclass(frozen=True)

@@ -25,7 +25,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0009"
+HEAD_REVISION = "0010"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -135,6 +135,20 @@ mapping_entries = Table(
     UniqueConstraint("version_id", "code"),
 )
 
+# Classification rules of a mapping version (issue 16): evaluated in ``position`` order, first match wins.
+mapping_rules = Table(
+    "mapping_rules", metadata,
+    Column("version_id", Integer, ForeignKey("mapping_versions.id", ondelete="CASCADE"), nullable=False,
+           index=True),
+    Column("position", Integer, nullable=False),
+    Column("code", String, nullable=False),
+    Column("field", String, nullable=False),
+    Column("comparison", String, nullable=False),
+    Column("value", Integer, nullable=False),
+    Column("category", String, nullable=False),
+    UniqueConstraint("version_id", "position"),
+)
+
 roster_settings = Table(
     "roster_settings", metadata,
     Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), primary_key=True),
@@ -231,6 +245,13 @@ universe_rejected = Table(
     Column("reason", Text, nullable=False),
 )
 
+
+def CELL_DETAIL_COLUMNS() -> tuple[Column[int], ...]:  # noqa: N802 - reads as the constant it stands for
+    """Age and tenure in completed years and the interim flag (NULL where the record has none): the cell
+    key's detail, so classification rules and the adjusted trend need no record reads (issue 16)."""
+    return (Column("age", Integer), Column("tenure", Integer), Column("interim", Boolean))
+
+
 # The cell store (issue 13). Counts per (year, sector, reason code) do not depend on the mapping (a mapping
 # only says which category a code counts as), so they are computed once when a roster is imported and every
 # page reads them instead of the records. ``sector`` keeps the record's value (NULL when missing).
@@ -244,7 +265,23 @@ roster_cells = Table(
     Column("version", Integer, nullable=False, server_default="1"),
 )
 
-# The same counts per firm: what a firm bootstrap (and the roster's firm counts) needs; read by jobs, not pages.
+# The same counts with the executive's age and tenure (completed years) and interim flag in the key (issue 16):
+# what classification rules and the age/tenure mix read. Kept apart from ``roster_cells``: on a large roster
+# with spread-out ages this key has nearly one row per departure (benchmarks/bench_rules_adjusted.py), so only
+# a mapping version with rules, and the mix diagnostic, pay for reading it.
+roster_detail_cells = Table(
+    "roster_detail_cells", metadata,
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("year", Integer, nullable=False),
+    Column("sector", String),
+    Column("reason", String, nullable=False),
+    *CELL_DETAIL_COLUMNS(),
+    Column("departures", Integer, nullable=False),
+    Column("version", Integer, nullable=False, server_default="1"),
+)
+
+# The same counts per firm, with the detailed key: what a firm bootstrap, the adjusted trend's clustered
+# standard errors (and the roster's firm counts) need; read by jobs and on request, not by pages.
 roster_firm_cells = Table(
     "roster_firm_cells", metadata,
     Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
@@ -252,23 +289,9 @@ roster_firm_cells = Table(
     Column("year", Integer, nullable=False),
     Column("sector", String),
     Column("reason", String, nullable=False),
+    *CELL_DETAIL_COLUMNS(),
     Column("departures", Integer, nullable=False),
     Column("version", Integer, nullable=False, server_default="1"),
-)
-
-#: fill both cell tables from ``departures`` for every roster that has none yet (used by the migration, by
-#: ``save_import`` for the roster it stores, and to repair a roster stored by an older version)
-FILL_ROSTER_CELLS = (
-    "INSERT INTO roster_cells (roster_id, version, year, sector, reason, departures) "
-    "SELECT roster_id, version, year, sector, reason, COUNT(*) FROM departures "
-    "WHERE roster_id NOT IN (SELECT DISTINCT roster_id FROM roster_cells) "
-    "GROUP BY roster_id, version, year, sector, reason"
-)
-FILL_ROSTER_FIRM_CELLS = (
-    "INSERT INTO roster_firm_cells (roster_id, version, firm_id, year, sector, reason, departures) "
-    "SELECT roster_id, version, firm_id, year, sector, reason, COUNT(*) FROM departures "
-    "WHERE roster_id NOT IN (SELECT DISTINCT roster_id FROM roster_firm_cells) "
-    "GROUP BY roster_id, version, firm_id, year, sector, reason"
 )
 
 # -- team mode: accounts, their API tokens, the audit trail, and secrets shared by every server process ------

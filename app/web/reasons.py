@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from fastapi import APIRouter, Request
@@ -17,6 +17,7 @@ from app.store import MAX_ID, MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES, Category
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.forms import Upload, read_form
+from app.web.reason_rules import rules_view
 from app.web.rendering import as_json, render
 from app.web.route_docs import (
     FILE,
@@ -71,6 +72,12 @@ class ReasonsPage:
     categories: tuple[str, ...] = CATEGORIES
     message: str | None = None
     error: str | None = None
+    #: the mapping version's classification rules in order, each with ``matched``, ``moved``, ``missing``
+    rules: list[dict[str, Any]] = field(default_factory=list)
+    #: the academic preset's rules this version does not have yet (empty: nothing to add)
+    preset: list[str] = field(default_factory=list)
+    preset_name: str = ""
+    preset_source: str = ""
 
 
 ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
@@ -121,6 +128,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
         window=inp.window, unmapped_codes=len(unmapped),
         unmapped_departures=sum(r.count for r in unmapped), using_suggestion=mapping is None,
         compare=compare if diff else None, diff=diff, message=message, error=error,
+        **rules_view(store, roster, mapping, [r.code for r in rows]),
     )
 
 
@@ -213,7 +221,9 @@ def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload
             raise BadRequest(f"The {key} is longer than {most} characters; shorten it. Nothing was saved.")
     note = str(form.get("note") or "").strip() or "edited on the Reason codes page"
     author = str(form.get("author") or "").strip() or "analyst"
-    store.save_mapping_version(name, categories, labels, author=author, note=note)
+    # the version's classification rules stay with it (they are edited in their own table)
+    rules = page.mapping.rules if page.mapping and name == page.mapping.name else ()
+    store.save_mapping_version(name, categories, labels, author=author, note=note, rules=rules)
     store.update_settings(page.roster.id, mapping_name=name)
     url = request.url_for("reasons_page", roster_id=page.roster.id).include_query_params(saved=1)
     return RedirectResponse(url, status_code=303)

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Literal
+from typing import Any, Literal
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
@@ -11,6 +11,7 @@ from fastapi.responses import HTMLResponse, JSONResponse
 from app.analysis.cellstore import roster_counts
 from app.analysis.inputs import load_input
 from app.analysis.robustness import Robustness, check_robustness, offered_mappings
+from app.analysis.rules import PRESET_NAME, PRESET_SOURCE
 from app.analysis.runs import run_sectors
 from app.briefing.findings import robustness_finding_from, sectors_finding_from
 from app.stats.sectors import SectorTrends
@@ -57,6 +58,9 @@ class RobustnessPage:
     error: str | None
     figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     warnings: list[str] = field(default_factory=list)
+    #: the academic preset (retirement below 60 counts as forced) is among the readings
+    preset: bool = False
+    preset_label: str = f"{PRESET_NAME}: {PRESET_SOURCE}"
 
 
 RobustnessBody = define(RobustnessPage, "RobustnessBody",
@@ -91,7 +95,8 @@ def sectors_data(store: Store, roster_id: int, *, min_departures: int = 20) -> S
                        mapping_ref(inp.mapping))
 
 
-def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: list[str]) -> RobustnessPage:
+def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: list[str],
+                    preset: bool = False) -> RobustnessPage:
     roster = _roster(store, roster_id)
     names = store.list_mappings()
     codes = sorted(set(roster_counts(store, roster)["reason"].astype(str)))
@@ -103,18 +108,18 @@ def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: lis
         # the variants read stored bootstrap runs: their state is part of the key
         runs = tuple((r.id, r.finished_at, r.progress_done) for r in store.list_runs(roster.id, "bootstrap")
                      if r.status == "done")
-        key = (*inp.key, tuple(extra), chosen == "covering", tuple(vary), runs)
+        key = (*inp.key, tuple(extra), chosen == "covering", tuple(vary), runs, preset)
         result = page_memo(store, ("robustness", *key),
-                           lambda: check_robustness(store, inp, extra_mappings=chosen, vary=vary))
+                           lambda: check_robustness(store, inp, extra_mappings=chosen, vary=vary, preset=preset))
     except (StoreError, ValueError) as exc:
-        return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc))
+        return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc), preset=preset)
     if all(v.odds_ratio is None for v in result.variants):  # nothing to draw: the table says why
         return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, None,
-                              inp.warnings())
+                              inp.warnings(), preset=preset)
     figure = page_memo(store, ("robustness-figure", *key),
                        lambda: figure_spec(robustness_finding_from(inp, result).figure, titled=False))
     return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, figure,
-                          inp.warnings())
+                          inp.warnings(), preset=preset)
 
 
 def _min_departures(request: Request) -> int:
@@ -130,7 +135,9 @@ _ROBUSTNESS_QUERY = query(
     ("mapping", {"type": "array", "items": {"type": "string"}},
      "other mappings to compare, as name:version (repeatable; default: every other mapping)"),
     ("vary", {"type": "array", "items": {"type": "string"}},
-     "reason codes whose category to move (repeatable)"))
+     "reason codes whose category to move (repeatable)"),
+    ("preset", {"type": "integer", "enum": [0, 1], "default": 0},
+     "1: also read the codes with the academic preset (retirement below 60 counts as forced)"))
 
 
 @router.get("/rosters/{roster_id}/sectors", response_class=HTMLResponse, name="sectors_page",
@@ -147,13 +154,16 @@ def sectors_api(request: Request, roster_id: int) -> JSONResponse:
     return as_json(sectors_data(app_store(request), roster_id, min_departures=_min_departures(request)))
 
 
-def _robustness_args(request: Request) -> dict[str, list[str]]:
+def _robustness_args(request: Request) -> dict[str, Any]:
+    preset = request.query_params.get("preset", "0")
+    if preset not in ("0", "1"):
+        raise BadRequest(f"preset must be 0 or 1; got {preset!r}.")
     return {"extra": [m for m in request.query_params.getlist("mapping") if m],
-            "vary": [c for c in request.query_params.getlist("vary") if c]}
+            "vary": [c for c in request.query_params.getlist("vary") if c], "preset": preset == "1"}
 
 
 @router.get("/rosters/{roster_id}/robustness", response_class=HTMLResponse, name="robustness_page",
-            responses=page_errors(404), openapi_extra=_ROBUSTNESS_QUERY)
+            responses=page_errors(400, 404), openapi_extra=_ROBUSTNESS_QUERY)
 def robustness_page(request: Request, roster_id: int) -> HTMLResponse:
     page = robustness_data(app_store(request), roster_id, **_robustness_args(request))
     return render(request, "robustness.html", page, roster=page.roster, active="robustness_page",
@@ -162,6 +172,6 @@ def robustness_page(request: Request, roster_id: int) -> HTMLResponse:
 
 @router.get("/api/rosters/{roster_id}/robustness", name="robustness_api", response_model=None,
             responses={200: {"model": RobustnessBody, "description": "The trend under other mappings"},
-                       **api_errors(404)}, openapi_extra=_ROBUSTNESS_QUERY)
+                       **api_errors(400, 404)}, openapi_extra=_ROBUSTNESS_QUERY)
 def robustness_api(request: Request, roster_id: int) -> JSONResponse:
     return as_json(robustness_data(app_store(request), roster_id, **_robustness_args(request)))

@@ -8,10 +8,13 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse
 
+from app.analysis.adjusted import MixSection, adjusted_sentence, mix_section, run_adjusted
 from app.analysis.inputs import AnalysisInput, load_input
 from app.analysis.rates import RatesSection, rates_section
 from app.analysis.runs import period_comparison, refresh_comparison, run_trend
 from app.briefing.findings import trend_finding_from_fit
+from app.briefing.mix_chart import mix_figures
+from app.stats.adjusted import AdjustedError, parse_adjust
 from app.stats.headline import headline_fields, headline_sentence
 from app.stats.periods import PeriodError, Span, parse_periods
 from app.stats.trend import SPLINE_DFS, TREND_KINDS, TrendError, TrendFit
@@ -54,6 +57,13 @@ class TrendPage:
     periods_error: str | None = None
     #: the same fit on the roster's previous version, when one was made: the finding before and after a refresh
     refresh: dict[str, Any] | None = None
+    #: age and tenure mix of counted departures by year, and whether it moved (composition diagnostic)
+    mix: MixSection | None = None
+    mix_figures: dict[str, FigureSpec] = field(default_factory=dict, metadata={"json_skip": True})
+    #: the adjustments asked for (``adjust`` query); the adjusted fit only when asked (it reads firm counts)
+    adjust: list[str] | None = None
+    adjusted: dict[str, Any] | None = None
+    adjusted_error: str | None = None
 
 
 TrendBody = define(TrendPage, "TrendBody", fields={"fit": TrendFitSummary | None, "table": list_of(OddsRow)},
@@ -92,7 +102,7 @@ def _periods(inp: AnalysisInput, periods: tuple[Span, Span] | None) -> tuple[dic
 
 def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df: int = 3,
                window: tuple[int, int] | None = None, quasi: bool = False,
-               periods: tuple[Span, Span] | None = None) -> TrendPage:
+               periods: tuple[Span, Span] | None = None, adjust: tuple[str, ...] | None = None) -> TrendPage:
     if model not in TREND_KINDS:
         raise BadRequest(f"model must be one of {', '.join(TREND_KINDS)}; got {model!r}.")
     if spline_df not in SPLINE_DFS:
@@ -113,6 +123,7 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         return TrendPage(roster, inp.mapping_label, inp.window, inp.window_source, model, spline_df, None, None,
                          str(exc), inp.warnings(), None, runs, quasi=quasi, rates=rates)
     fit = outcome.fit
+    mix, mix_specs, adjusted, adjusted_error = _composition(store, inp, adjust)
     figure = page_memo(store, ("trend", *inp.key, model, spline_df, quasi),
                        lambda: figure_spec(trend_finding_from_fit(inp, fit, model).figure, titled=False))
     compared, compare_error = _periods(inp, periods)
@@ -123,7 +134,25 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
         figure=figure, table=_odds_table(fit), quasi=quasi, rates=rates, records_mapping=mapping_ref(inp.mapping),
         periods=compared, periods_error=compare_error, refresh=refresh_comparison(store, inp, outcome.run_id),
+        mix=mix, mix_figures=mix_specs,
+        adjust=list(adjust) if adjust is not None else None, adjusted=adjusted, adjusted_error=adjusted_error,
     )
+
+
+def _composition(store: Store, inp: AnalysisInput, adjust: tuple[str, ...] | None) -> tuple[
+        MixSection | None, dict[str, FigureSpec], dict[str, Any] | None, str | None]:
+    """The mix diagnostic (always) and the adjusted fit (when asked), or why there is none."""
+    mix = mix_section(inp)
+    specs = page_memo(store, ("trend-mix", *inp.key),
+                      lambda: {k: figure_spec(f, titled=False) for k, f in mix_figures(inp, mix).items()})
+    if adjust is None:
+        return mix, specs, None, None
+    try:
+        outcome = run_adjusted(store, inp, adjust)
+    except AdjustedError as exc:
+        return mix, specs, None, str(exc)
+    return mix, specs, {**outcome.result, "sentence": adjusted_sentence(outcome.fit),
+                        "run": outcome.run_id}, None
 
 
 def _trend_runs(store: Store, roster_id: int) -> list[Run]:
@@ -151,9 +180,15 @@ def _request_args(request: Request) -> dict[str, Any]:
     quasi = request.query_params.get("quasi", "0")
     if quasi not in ("0", "1"):
         raise BadRequest(f"quasi must be 0 or 1; got {quasi!r}.")
+    adjust = None
+    if request.query_params.get("adjusted") == "1":
+        try:
+            adjust = parse_adjust(request.query_params.getlist("adjust"))
+        except AdjustedError as exc:
+            raise BadRequest(str(exc)) from None
     return {"model": request.query_params.get("model", "linear"),
             "spline_df": int(df) if df.isdigit() else -1, "window": _years(request), "quasi": quasi == "1",
-            "periods": _period_args(request)}
+            "periods": _period_args(request), "adjust": adjust}
 
 
 _TREND_QUERY = query(("model", {"type": "string", "enum": list(TREND_KINDS), "default": "linear"}, "trend model"),
@@ -165,7 +200,11 @@ _TREND_QUERY = query(("model", {"type": "string", "enum": list(TREND_KINDS), "de
                      ("first", {"type": "string", "pattern": "^([0-9]{4}-[0-9]{4})?$"},
                       "first period to compare, e.g. 1998-2014 (default: the window before its last third)"),
                      ("second", {"type": "string", "pattern": "^([0-9]{4}-[0-9]{4})?$"},
-                      "second period, e.g. 2015-2022 (default: the window's last third)"))
+                      "second period, e.g. 2015-2022 (default: the window's last third)"),
+                     ("adjusted", {"type": "string", "enum": ["0", "1"], "default": "0"},
+                      "1 also fits the trend adjusted for the ``adjust`` fields (firm-clustered SEs)"),
+                     ("adjust", {"type": "array", "items": {"type": "string", "enum": ["age", "tenure", "sector"]}},
+                      "what the adjusted trend adjusts for (repeatable; none: the plain logit with clustered SEs)"))
 
 
 @router.get("/rosters/{roster_id}/trend", response_class=HTMLResponse, name="trend_page",
