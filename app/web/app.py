@@ -21,6 +21,7 @@ from app.web import (
     departures,
     reasons,
     resampling,
+    roster_upload,
     roster_versions,
     rosters,
     sectors,
@@ -106,7 +107,8 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
         # async: answered on the event loop without waiting for a worker thread (a one-row read)
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (auth, rosters, roster_versions, reasons, coverage, departures, trend, resampling, sectors, briefing, universe):
+    for module in (auth, rosters, roster_upload, roster_versions, reasons, coverage, departures, trend, resampling,
+                   sectors, briefing, universe):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)
