@@ -13,7 +13,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import sparse
 
-from app.stats import sampling
+from app.stats import draws
 from app.stats.bootstrap import bootstrap_trend, draw_cells, draw_replicates, jackknife_estimates
 from app.stats.cells import Cells
 from app.stats.design import design_matrix, window_centre
@@ -135,9 +135,9 @@ def test_firm_draws_are_the_counted_uniform_draws_whatever_the_pass_size(monkeyp
     expected = np.stack([dense[row].sum(axis=0) for row in idx])
     for pass_rows, pass_values, min_rows in [(25, 2**23, 4), (1, 2**23, 1), (250, 2**23, 4), (7, 1, 3),
                                              (250, 1, 250)]:
-        monkeypatch.setattr(sampling, "PASS_ROWS", pass_rows)
-        monkeypatch.setattr(sampling, "PASS_VALUES", pass_values)
-        monkeypatch.setattr(sampling, "MIN_PASS_ROWS", min_rows)
+        monkeypatch.setattr(draws, "PASS_ROWS", pass_rows)
+        monkeypatch.setattr(draws, "PASS_VALUES", pass_values)
+        monkeypatch.setattr(draws, "MIN_PASS_ROWS", min_rows)
         np.testing.assert_array_equal(draw_cells(cells, unit="firm", seed=6, block=1), expected)
 
 
@@ -155,7 +155,7 @@ def test_original_fit_is_checked_before_anything_is_drawn(monkeypatch: pytest.Mo
     def refuse(*args: object, **kwargs: object) -> np.ndarray:
         raise AssertionError("a resample was drawn although the original fit fails")
 
-    monkeypatch.setattr(sampling.CellSampler, "draw", refuse)
+    monkeypatch.setattr(draws.CellSampler, "draw", refuse)
     for call in (lambda: draw_replicates(no_forced, design, unit="firm", resamples=10_000, seed=1),
                  lambda: bootstrap_trend(no_forced, design, unit="departure", resamples=10_000, seed=1)):
         with pytest.raises(ValueError, match=r"cannot be fitted to these counts \(no_forced\)"):

@@ -20,8 +20,8 @@ from scipy import stats
 from app.stats.bootstrap import BLOCK_SIZE, bootstrap_statistic, draw_cells, intervals_from_replicates
 from app.stats.cells import Cells, build_cells
 from app.stats.design import window_centre
+from app.stats.draws import CellSampler, block_rng
 from app.stats.periods import compare_periods
-from app.stats.sampling import CellSampler, block_rng
 from app.stats.sectors import fit_sector_trends
 from app.stats.statistics import Statistic, firm_strata, make_statistic
 from app.stats.trend import fit_trend, natural_spline_basis

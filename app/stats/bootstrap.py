@@ -19,6 +19,7 @@ import numpy as np
 
 from app.stats.cells import Cells
 from app.stats.design import Design
+from app.stats.draws import BLOCK_SIZE, draw_cells
 from app.stats.intervals import (
     INTERVAL_METHODS,
     MC_RESAMPLES,
@@ -29,14 +30,12 @@ from app.stats.intervals import (
 )
 from app.stats.jackknife import cluster_case_chunks, departure_cases
 from app.stats.sampling import (
-    BLOCK_SIZE,
     MAX_RESAMPLES,
     BootstrapCancelled,
     Progress,
     Replicates,
     StopCheck,
     coefficient_index,
-    draw_cells,
     draw_replicates,
     draw_statistic,
     original_fit,

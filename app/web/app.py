@@ -22,6 +22,7 @@ from app.web import (
     reason_rules,
     reasons,
     resampling,
+    roster_upload,
     roster_versions,
     rosters,
     sectors,
@@ -107,8 +108,8 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
         # async: answered on the event loop without waiting for a worker thread (a one-row read)
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (auth, rosters, roster_versions, reasons, reason_rules, coverage, departures, trend, resampling,
-                   sectors, briefing, universe):
+    for module in (auth, rosters, roster_upload, roster_versions, reasons, reason_rules, coverage, departures, trend,
+                   resampling, sectors, briefing, universe):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)

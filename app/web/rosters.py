@@ -1,8 +1,10 @@
-"""Rosters: list, upload with a confirm step for column roles, detail with rejected rows."""
+"""Rosters: the list, one roster's detail with its rejected rows, the rejected-rows CSV and delete.
+
+The upload steps (preview, review, confirm, one-call import) are in :mod:`app.web.roster_upload`.
+"""
 
 from __future__ import annotations
 
-import codecs
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -11,46 +13,17 @@ from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Resp
 from starlette.concurrency import run_in_threadpool
 
 from app.analysis.cellstore import memoised, roster_counts, roster_fingerprint
-from app.intake.dates import month_name
-from app.intake.ingest import (
-    DATE_ORDERS,
-    DateOrder,
-    DuplicateRosterError,
-    RejectGroup,
-    Review,
-    RosterFileError,
-    RosterPreview,
-    default_roster_name,
-    group_rejections,
-    import_roster,
-    preview_roster,
-    rejected_rows_csv,
-    review_roster,
-    same_file_roster,
-)
+from app.intake.ingest import RejectGroup, group_rejections, rejected_rows_csv
 from app.store import RejectedRow, Roster, Store, StoreError
-from app.types import ROLES
-from app.web.deps import NotFound, app_settings, app_store, app_uploads, require_confirmation
+from app.web.deps import NotFound, app_settings, app_store, require_confirmation
 from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
-from app.web.route_docs import (
-    FILE,
-    FORM_AGAIN,
-    GUARDS,
-    api_errors,
-    download,
-    form_body,
-    page_errors,
-    redirect,
-)
-from app.web.schemas import RosterImportBody, SectorCount, define, list_of
+from app.web.route_docs import api_errors, download, form_body, page_errors, redirect
+from app.web.schemas import SectorCount, define, list_of
 
 router = APIRouter()
 
-REJECTED_SHOWN = 200
 REJECTED_PAGE = 50
-MONTHS = tuple((m, month_name(m)) for m in range(1, 13))
-
 
 @dataclass(frozen=True)
 class RostersPage:
@@ -85,32 +58,6 @@ class RosterDetailPage:
 RosterDetailBody = define(RosterDetailPage, "RosterDetailBody", fields={"sectors": list_of(SectorCount)},
                           descriptions={"rejected": "one page of the rejected rows (rejected_page of rejected_pages)",
                                         "rejected_groups": "rejected rows grouped by reason, largest first"})
-
-
-@dataclass(frozen=True)
-class ConfirmPage:
-    """The preview of an uploaded file with the detected column roles, waiting for confirmation."""
-
-    token: str
-    filename: str
-    preview: RosterPreview
-    roles: dict[str, str | None]
-    name: str
-    error: str | None = None
-    duplicate_of: Roster | None = None
-    rejected: list[RejectedRow] = field(default_factory=list)
-    role_names: tuple[str, ...] = field(default=ROLES)
-    header_row: int = 1
-    date_order: str = "auto"
-    fy_end: int = 12
-    review: Review | None = None
-    review_error: str | None = None
-    months: tuple[tuple[int, str], ...] = MONTHS
-    #: a stored roster to add the file to as its next version (a refresh); None: a new roster
-    into: int | None = None
-    #: the rosters it could be added to (id, name), and the one whose columns the file has (a hint, not a choice)
-    targets: tuple[tuple[int, str], ...] = ()
-    same_columns_as: tuple[int, str] | None = None
 
 
 def rosters_data(store: Store, upload_limit: int, message: str | None = None) -> RostersPage:
@@ -159,261 +106,12 @@ def rosters_api(request: Request) -> JSONResponse:
     return as_json(rosters_data(app_store(request), app_settings(request).upload_limit))
 
 
-def _read_upload(form: dict[str, str | Upload]) -> tuple[str, bytes]:
-    upload = form.get("file")
-    if not isinstance(upload, Upload):
-        raise RosterFileError("Choose a CSV or XLSX file to upload.")
-    return upload.filename, upload.data
-
-
-_FILE_OPTIONS = {
-    "sheet": {"type": "string", "description": "XLSX sheet name; the first sheet when empty"},
-    "encoding": {"type": "string", "description": "text encoding, e.g. utf-8 or cp1252; detected when empty"},
-}
-_ROLE_FIELDS = {f"role_{r}": {"type": "string", "description": f"column holding {r}; empty for none"}
-                for r in ROLES}
-
-
-@router.post("/rosters/upload", response_class=HTMLResponse, name="roster_upload",
-             responses={**FORM_AGAIN, **GUARDS},
-             openapi_extra=form_body({"file": FILE, **_FILE_OPTIONS}, required=("file",), multipart=True))
-async def roster_upload(request: Request) -> HTMLResponse:
-    """First step: keep the file aside, show its first rows and the column roles we detected."""
-    form = await read_form(request)
-    return await run_in_threadpool(_roster_upload, request, form)
-
-
-def _roster_upload(request: Request, form: dict[str, str | Upload]) -> HTMLResponse:
-    store = app_store(request)
-    try:
-        filename, data = _read_upload(form)
-        encoding, sheet = _file_options(form)
-        preview = preview_roster(data, filename, encoding=encoding, sheet=sheet)
-    except RosterFileError as exc:
-        failed = rosters_data(store, app_settings(request).upload_limit, message=str(exc))
-        return render(request, "rosters.html", failed, status=400, active="rosters")
-    pending = app_uploads(request).put(filename, data)
-    review, review_error = _try_review(data, filename, roles=None, encoding=encoding, sheet=sheet,
-                                       header_row=None, date_order="auto", fy_end=12)
-    page = ConfirmPage(
-        token=pending.token, filename=filename, preview=preview,
-        roles={r: preview.roles.get(r) for r in ROLES}, name=default_roster_name(store, filename),
-        duplicate_of=same_file_roster(store, data), header_row=preview.header_row,
-        review=review, review_error=review_error, **_targets(store, preview.headers),
-    )
-    return render(request, "roster_confirm.html", page, active="rosters")
-
-
-def _try_review(data: bytes, filename: str, **options: Any) -> tuple[Review | None, str | None]:
-    """The dry run for the confirm page; a file-level problem is shown beside the controls instead."""
-    try:
-        return review_roster(data, filename, **options), None
-    except RosterFileError as exc:
-        return None, str(exc)
-
-
-def _intake_options(form: dict[str, str | Upload]) -> tuple[int | None, DateOrder, int]:
-    """(header row, date reading, fiscal-year-end month) from the confirm form, refused with a clear message."""
-    raw_header = str(form.get("header_row") or "").strip()
-    header_row: int | None = None
-    if raw_header:
-        if not raw_header.isdigit() or not 1 <= int(raw_header) <= 1_000_000:
-            raise RosterFileError(f"The header row must be a line number (1, 2, ...); got {raw_header[:20]!r}.")
-        header_row = int(raw_header)
-    order = str(form.get("date_order") or "auto")
-    if order not in DATE_ORDERS:
-        raise RosterFileError(f"Date reading must be one of {', '.join(DATE_ORDERS)}; got {order[:20]!r}.")
-    raw_fy = str(form.get("fy_end") or "12")
-    if not raw_fy.isdigit() or not 1 <= int(raw_fy) <= 12:
-        raise RosterFileError(f"The fiscal-year end must be a month number 1..12; got {raw_fy[:20]!r}.")
-    return header_row, order, int(raw_fy)
-
-
-def _file_options(form: dict[str, str | Upload]) -> tuple[str | None, str | None]:
-    """(encoding, sheet) as the readers take them; an encoding Python cannot name is refused here.
-
-    codecs.lookup raises ValueError, not LookupError, for a name with a NUL character in it (the fuzz
-    test sent one), which the readers do not expect.
-    """
-    encoding = str(form.get("encoding") or "") or None
-    if encoding is not None:
-        try:
-            codecs.lookup(encoding)
-        except (LookupError, ValueError):
-            raise RosterFileError(f"Unknown text encoding {encoding!r}; try utf-8, cp1252 or latin-1.") from None
-    return encoding, str(form.get("sheet") or "") or None
-
-
-_INTAKE_FIELDS = {
-    "into": {"type": "string", "description": "id of a stored roster: import the file as its next version "
-                                              "(a refresh); empty for a new roster"},
-    "header_row": {"type": "string", "description": "1-based line (or sheet row) of the header; found when empty"},
-    "date_order": {"type": "string", "enum": list(DATE_ORDERS), "description": "reading of d/m vs m/d dates"},
-    "fy_end": {"type": "string", "description": "month (1-12) in which fiscal years end; default 12"},
-}
-
-
-def _into(form: dict[str, str | Upload]) -> int | None:
-    raw = str(form.get("into") or "").strip()
-    if not raw:
-        return None
-    if not raw.isdigit() or len(raw) > 18:
-        raise RosterFileError(f"into must be the id of a stored roster; got {raw[:40]!r}.")
-    return int(raw)
-
-
-def _targets(store: Store, headers: tuple[str, ...]) -> dict[str, Any]:
-    """The confirm page's refresh choices: every roster, and the newest whose column headers the file has."""
-    rosters = store.list_rosters()
-    same = [r for r in rosters if r.columns and set(r.columns.values()) <= set(headers)]
-    return {"targets": tuple((r.id, r.name) for r in rosters),
-            "same_columns_as": (same[-1].id, same[-1].name) if same else None}
-
-
-def _confirm_form(form: dict[str, str | Upload]) -> tuple[dict[str, str], str | None]:
-    # a role set to "none" arrives as "" and stays empty (detection must not put it back)
-    roles: dict[str, str] = {r: str(form.get(f"role_{r}") or "") for r in ROLES if f"role_{r}" in form}
-    return roles, str(form.get("name") or "").strip() or None
-
-
-def _expired(request: Request) -> HTMLResponse:
-    expired = rosters_data(app_store(request), app_settings(request).upload_limit,
-                           message="That upload has expired or was already imported; choose the file again.")
-    return render(request, "rosters.html", expired, status=400, active="rosters")
-
-
-@router.post("/rosters/review", response_class=HTMLResponse, name="roster_review", responses={**FORM_AGAIN, **GUARDS},
-             openapi_extra=form_body({
-                 "token": {"type": "string", "description": "the upload step's token"},
-                 "name": {"type": "string"}, **_FILE_OPTIONS, **_ROLE_FIELDS, **_INTAKE_FIELDS,
-             }, required=("token",)))
-async def roster_review(request: Request) -> Response:
-    """The dry run again with the analyst's choices (header row, roles, date reading, fiscal-year end); stores nothing."""
-    form = await read_form(request)
-    return await run_in_threadpool(_roster_review, request, form)
-
-
-def _roster_review(request: Request, form: dict[str, str | Upload]) -> Response:
-    store = app_store(request)
-    token = str(form.get("token") or "")
-    pending = app_uploads(request).get(token)
-    if pending is None:
-        return _expired(request)
-    roles, name = _confirm_form(form)
-    error: str | None = None
-    into: int | None = None
-    try:
-        encoding, sheet = _file_options(form)
-        header_row, order, fy_end = _intake_options(form)
-        into = _into(form)
-        preview = preview_roster(pending.data, pending.filename, encoding=encoding, sheet=sheet, roles=roles,
-                                 header_row=header_row)
-    except RosterFileError as exc:
-        encoding, sheet, header_row, order, fy_end, error = None, None, None, "auto", 12, str(exc)
-        preview = preview_roster(pending.data, pending.filename)
-        roles = {}
-    review, review_error = _try_review(pending.data, pending.filename, roles=roles or None, encoding=encoding,
-                                       sheet=sheet, header_row=header_row, date_order=order, fy_end=fy_end)
-    page = ConfirmPage(
-        token=token, filename=pending.filename, preview=preview,
-        roles={r: preview.roles.get(r) for r in ROLES}, name=name or default_roster_name(store, pending.filename),
-        duplicate_of=same_file_roster(store, pending.data), error=error, header_row=preview.header_row,
-        date_order=order, fy_end=fy_end, review=review, review_error=review_error, into=into,
-        **_targets(store, preview.headers),
-    )
-    return render(request, "roster_confirm.html", page, status=400 if error else 200, active="rosters")
-
-
-@router.post("/rosters/confirm", name="roster_confirm", response_model=None, status_code=303,
-             response_class=RedirectResponse, responses=redirect("the new roster's page", FORM_AGAIN),
-             openapi_extra=form_body({
-                 "token": {"type": "string", "description": "the upload step's token"},
-                 "name": {"type": "string"}, **_FILE_OPTIONS, **_ROLE_FIELDS, **_INTAKE_FIELDS,
-                 "allow_same_file": {"type": "string", "enum": ["yes"],
-                                     "description": "import a file whose bytes were imported before"},
-             }, required=("token",)))
-async def roster_confirm(request: Request) -> Response:
-    """Last step: import with the choices the analyst reviewed; all rows land or none do."""
-    form = await read_form(request)
-    return await run_in_threadpool(_roster_confirm, request, form)
-
-
-def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response:
-    store = app_store(request)
-    token = str(form.get("token") or "")
-    pending = app_uploads(request).get(token)
-    if pending is None:
-        return _expired(request)
-    roles, name = _confirm_form(form)
-    header_row, order, fy_end = None, "auto", 12
-    into: int | None = None
-    try:
-        encoding, sheet = _file_options(form)
-        header_row, order, fy_end = _intake_options(form)
-        into = _into(form)
-        report = import_roster(
-            store, pending.data, pending.filename, name=None if into else name, roles=roles, encoding=encoding,
-            sheet=sheet, allow_same_file=form.get("allow_same_file") == "yes", header_row=header_row,
-            date_order=order, fy_end=fy_end, into=into,
-        )
-    except (RosterFileError, DuplicateRosterError, StoreError) as exc:
-        try:
-            preview = preview_roster(pending.data, pending.filename, header_row=header_row)
-        except RosterFileError:
-            preview = preview_roster(pending.data, pending.filename)
-        page = ConfirmPage(
-            token=token, filename=pending.filename, preview=preview,
-            roles={r: roles.get(r) or None for r in ROLES}, name=name or default_roster_name(store, pending.filename),
-            error=str(exc), duplicate_of=same_file_roster(store, pending.data),
-            rejected=list(getattr(exc, "rejected", []))[:REJECTED_SHOWN], header_row=preview.header_row,
-            date_order=order, fy_end=fy_end, into=into, **_targets(store, preview.headers),
-        )
-        return render(request, "roster_confirm.html", page, status=400, active="rosters")
-    app_uploads(request).drop(token)
-    if report.version > 1:  # a refresh: show what changed
-        url = request.url_for("roster_diff", roster_id=report.roster.id)
-        return RedirectResponse(f"{url}?from={report.version - 1}&to={report.version}", status_code=303)
-    return RedirectResponse(request.url_for("roster_detail", roster_id=report.roster.id), status_code=303)
-
-
-@router.post("/api/rosters", name="rosters_import_api", response_model=None, status_code=201,
-             responses={201: {"model": RosterImportBody, "description": "Imported"}, **api_errors(400, 409),
-                        **GUARDS},
-             openapi_extra=form_body({"file": FILE, "name": {"type": "string"}, **_FILE_OPTIONS,
-                                      **_ROLE_FIELDS}, required=("file",), multipart=True))
-async def rosters_import_api(request: Request) -> JSONResponse:
-    """Import in one call: multipart ``file``, optional ``name``, ``sheet``, ``encoding`` and ``role_<ROLE>``."""
-    form = await read_form(request)
-    return await run_in_threadpool(_rosters_import_api, request, form)
-
-
-def _rosters_import_api(request: Request, form: dict[str, str | Upload]) -> JSONResponse:
-    store = app_store(request)
-    try:
-        filename, data = _read_upload(form)
-        roles: dict[str, str] = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
-        encoding, sheet = _file_options(form)
-        report = import_roster(
-            store, data, filename, name=str(form.get("name") or "").strip() or None, roles=roles or None,
-            encoding=encoding, sheet=sheet,
-        )
-    except DuplicateRosterError as exc:
-        return JSONResponse({"error": str(exc)}, status_code=409)
-    except (RosterFileError, StoreError) as exc:
-        return JSONResponse({"error": str(exc)}, status_code=400)
-    return JSONResponse({
-        "roster": report.roster.name, "id": report.roster.id, "rows": report.rows,
-        "accepted": report.accepted, "rejected": report.rejected, "duplicates": report.duplicates,
-    }, status_code=201)
-
-
 # ":int" so that GET /rosters/upload and /rosters/confirm answer 405 (POST only), not a 422 about the id
 @router.get("/rosters/{roster_id:int}", response_class=HTMLResponse, name="roster_detail",
             responses=page_errors(404))
 def roster_detail(request: Request, roster_id: int, page: int = 1) -> HTMLResponse:
     page_data = roster_detail_data(app_store(request), roster_id, page)
     return render(request, "roster_detail.html", page_data, roster=page_data.roster, active="roster")
-
 
 
 @router.get("/api/rosters/{roster_id}", name="roster_detail_api", response_model=None,
