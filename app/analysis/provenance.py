@@ -10,6 +10,7 @@ from datetime import UTC, datetime
 
 from app import __version__
 from app.analysis.inputs import AnalysisInput
+from app.store import Roster
 from app.types import CATEGORIES
 
 #: The standard cautions, shown on pages and in every export.
@@ -47,6 +48,8 @@ class Provenance:
     categories: tuple[tuple[str, tuple[str, ...]], ...] = ()
     #: (run id, sha256) of the replication pack behind each run quoted
     packs: tuple[tuple[int, str], ...] = ()
+    #: how many of the file's rows were used ("670 of 803 rows; 133 rejected, see Rosters"); empty: not stated
+    rows_used: str = ""
 
     def _created(self) -> str:
         return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
@@ -67,6 +70,7 @@ class Provenance:
             f"Roster: {self.roster} (data fingerprint {self.roster_fingerprint})",
             f"Mapping: {self.mapping_name}, version {self.mapping_version}",
             f"Window: fiscal years {self.window[0]}\u2013{self.window[1]}",
+            *([f"Rows used: {self.rows_used}"] if self.rows_used else []),
             f"Model: {self.model}",
             f"Intervals: {self.interval_method}",
         ]
@@ -94,6 +98,14 @@ class Provenance:
         return " \u00b7 ".join(parts)
 
 
+def rows_used_line(roster: Roster) -> str:
+    """How many of the file's rows a roster holds, as pages and exports state it (the Rosters page lists the
+    rejected rows)."""
+    dupes = f" ({roster.duplicates:,} exact duplicates stored once)" if roster.duplicates else ""
+    return (f"{roster.accepted:,} of {roster.rows_total:,} rows{dupes}; {roster.rejected:,} rejected, "
+            "see Rosters")
+
+
 def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method: str = "Wald and profile likelihood",
                    resamples: int | None = None, seed: int | None = None, unit: str | None = None,
                    by_sector: bool = False) -> Provenance:
@@ -105,5 +117,5 @@ def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method
         mapping_name=inp.mapping.name if inp.mapping else "none",
         mapping_version=inp.mapping.version if inp.mapping else 0, window=inp.window,
         model=MODEL_LABELS.get(model, model), interval_method=interval_method, resamples=resamples,
-        seed=seed, unit=unit, categories=grouped,
+        seed=seed, unit=unit, categories=grouped, rows_used=rows_used_line(inp.roster),
     )
