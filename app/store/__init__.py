@@ -4,8 +4,8 @@ SQLAlchemy 2.0 Core over SQLite by default (any SQLAlchemy URL works). Methods r
 pandas DataFrames, never live ORM objects. The gateway is split by aggregate: ``rosters`` (rosters and
 their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), ``universe`` (firm-years
 per roster), ``cells`` (the counts pages read instead of the records), ``accounts`` and ``audit`` (team mode),
-``briefing`` (what exports are signed with), on top of ``engine`` (connections and Alembic migrations,
-:mod:`app.store.migrations`) and ``tables`` (the schema).
+``briefing`` (what exports are signed with), ``spellings`` (how each reason code was written), on top of
+``engine`` (connections and Alembic migrations, :mod:`app.store.migrations`) and ``tables`` (the schema).
 """
 
 from __future__ import annotations
@@ -30,6 +30,7 @@ from app.store.records import (
 )
 from app.store.rosters import RosterQueries
 from app.store.runs import RunQueries
+from app.store.spellings import SpellingQueries
 from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
 from app.store.universe import UniverseQueries
 
@@ -41,5 +42,5 @@ __all__ = [
 
 
 class Store(RosterQueries, DepartureQueries, MappingQueries, RunQueries, UniverseQueries, CellQueries,
-            AccountQueries, AuditQueries, BriefingQueries):
+            AccountQueries, AuditQueries, BriefingQueries, SpellingQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""

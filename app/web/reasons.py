@@ -48,9 +48,13 @@ class CodeRow:
     suggested: str | None
     suggestion_note: str
     ambiguous: bool
+    #: (spelling as in the file, rows) most frequent first, when the file wrote the code more than one way
+    variants: tuple[tuple[str, int], ...] = ()
 
 
-CodeRowOut = define(CodeRow, fields={"category": Category | None, "suggested": Category | None})
+CodeRowOut = define(CodeRow, fields={"category": Category | None, "suggested": Category | None},
+                    descriptions={"variants": "[spelling, rows] per spelling in the file (two or more), "
+                                              "most frequent first; empty when written one way"})
 
 
 @dataclass(frozen=True)
@@ -78,6 +82,16 @@ ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
     "compare": "the two versions compared, when asked with ?a=&b="})
 
 
+def _variants(store: Store, roster: Roster) -> dict[str, tuple[tuple[str, int], ...]]:
+    """Each shown code's spellings in the file with their rows, for codes written more than one way."""
+    table = store.reason_spellings(roster.id, version=roster.version)
+    out: dict[str, tuple[tuple[str, int], ...]] = {}
+    for code, part in table.groupby("code", sort=False):
+        if len(part) > 1:
+            out[str(code)] = tuple((str(s), int(n)) for s, n in zip(part["spelling"], part["count"], strict=True))
+    return out
+
+
 def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | None = None,
                  message: str | None = None, error: str | None = None) -> ReasonsPage:
     try:
@@ -94,6 +108,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
                              lambda: window_code_counts(inp.counts, inp.window))
     suggestions = memoised(store, ("suggestions", *roster_key),
                            lambda: suggest_categories(counts["code"].astype(str).tolist()))
+    variants = memoised(store, ("spellings", *roster_key), lambda: _variants(store, roster))
     rows = []
     for rec in counts.to_dict("records"):
         code = str(rec["code"])
@@ -104,6 +119,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
             first_year=int(rec["first_year"]), last_year=int(rec["last_year"]),
             category=category, label=(mapping.labels.get(code, "") if mapping else ""),
             suggested=sug.category, suggestion_note=sug.why, ambiguous=sug.ambiguous,
+            variants=variants.get(code, ()),
         ))
     unmapped = [r for r in rows if r.category is None]
     diff = None
