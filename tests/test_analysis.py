@@ -80,6 +80,11 @@ def test_import_mapping_file_reports_codes(store: Store) -> None:
     standard = read_mapping("mapping-standard.csv")
     assert outcome["unmapped_in_roster"] == sorted(set(standard) - {"Retired"})
     assert store.settings(roster.id).mapping_name == "tiny"  # the first mapping becomes the roster's
+    # another spelling of a roster code is that code, not a code "not in the roster"
+    spelled = b"code,category\nRETIRED,voluntary\n\"died  in office \",voluntary\n"
+    outcome = import_mapping_file(store, spelled, roster=roster.id, name="spelled")
+    assert outcome["not_in_roster"] == []
+    assert outcome["unmapped_in_roster"] == sorted(set(standard) - {"Retired", "Died in office"})
     before = store.counts()
     with pytest.raises(MappingFileError, match="Line 2"):
         import_mapping_file(store, b"code,category\nRetired,maybe\n", roster=roster.id, name="tiny")

@@ -169,3 +169,27 @@ def test_each_code_lists_its_spellings_with_counts(empty_client: Any, store: Sto
     api = empty_client.get(f"/api/rosters/{roster_id}/reasons").json()
     retired = next(c for c in api["codes"] if c["code"] == "Retired")
     assert retired["variants"] == [["Retired", 5], ["RETIRED", 3], ["retired ", 2]]
+
+
+def test_a_mapping_in_other_spellings_covers_the_codes_and_saving_keeps_one_entry(empty_client: Any,
+                                                                                  store: Store) -> None:
+    data, _ = _spelled_roster()
+    roster_id = import_roster(store, data, "spelled.csv").roster.id
+    mapping = b"code,category,label\nretired,voluntary,Retirement\nDISMISSED BY BOARD,forced,\nhealth ,voluntary,\n"
+    response = empty_client.post(f"/rosters/{roster_id}/mapping/import", data={"mapping_name": "desk"},
+                                 files={"file": ("m.csv", mapping, "text/csv")})
+    assert response.status_code == 200
+    page = response.context["page"]
+    assert "do not occur in this roster" not in page.message
+    assert page.unmapped_codes == 0
+    by_code = {r.code: r for r in page.codes}
+    assert (by_code["Retired"].category, by_code["Retired"].label) == ("voluntary", "Retirement")
+    assert by_code["Dismissed by board"].category == "forced"
+    saved = empty_client.post(f"/rosters/{roster_id}/reasons",
+                              data=form_for(page, {"Retired": "excluded", "Dismissed by board": "forced",
+                                                   "Health": "voluntary"}) | {"mapping_name": "desk"})
+    assert saved.status_code == 200  # followed the redirect
+    latest = store.get_mapping("desk")
+    assert latest.version == 2
+    # one entry per code: the page's spelling replaced the file's, none carried over beside it
+    assert latest.categories == {"Retired": "excluded", "Dismissed by board": "forced", "Health": "voluntary"}
