@@ -10,7 +10,9 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 from typing import Any
 
-from app.store import IntakeProfile, Store
+from app.intake.rawtable import RosterFileError
+from app.store import IntakeProfile, Store, StoreError
+from app.store.profiles import PROFILE_NAME_MAX
 
 #: what an import reads when neither the analyst nor a profile says otherwise
 DEFAULT_DATE_ORDER = "auto"
@@ -38,3 +40,20 @@ def save_profile(store: Store, name: str, *, headers: Iterable[str], roles: Mapp
     """Save how a file was read under ``name`` (replacing a profile of that name)."""
     return store.save_profile(name, headers=headers, roles=roles, header_row=header_row, date_order=date_order,
                               fy_end=fy_end)
+
+
+def check_profile_name(name: str) -> str:
+    """A profile name as typed, trimmed; ``RosterFileError`` before anything is stored when it cannot be one."""
+    cleaned = name.strip()
+    if not cleaned or len(cleaned) > PROFILE_NAME_MAX or any(ord(ch) < 32 for ch in cleaned):
+        raise RosterFileError(f"A profile name must be 1 to {PROFILE_NAME_MAX} printable characters; "
+                              f"got {name[:40]!r}.")
+    return cleaned
+
+
+def chosen_profile(store: Store, name: str) -> IntakeProfile:
+    """The profile an analyst chose by name; ``RosterFileError`` naming the saved ones when there is none."""
+    try:
+        return store.get_profile(check_profile_name(name))
+    except StoreError as exc:
+        raise RosterFileError(str(exc)) from None
