@@ -190,33 +190,57 @@ def _bind(host: str, port: int) -> socket.socket:
 
 def cmd_import(args: argparse.Namespace) -> int:
     from app.intake.ingest import import_roster, review_roster
+    from app.intake.profiles import proposed_profiles, resolve_options, save_profile
 
     path = _input_file(args.file)
-    options: dict[str, Any] = {"roles": _parse_columns(args.column), "sheet": args.sheet, "encoding": args.encoding,
-                               "header_row": args.header_row, "date_order": args.date_order,
-                               "fy_end": args.fiscal_year_end}
+    store: Any = None
+    if args.dry_run or args.profile:  # neither creates a database: a dry run stores nothing
+        try:
+            store = _store(args)
+        except CommandError:
+            if args.profile:
+                raise
+    else:
+        store = _store(args, create=True)
+    # an intake profile fills what the flags leave open (app/intake/profiles.py)
+    profile = store.get_profile(args.profile) if args.profile else None
+    options: dict[str, Any] = {"sheet": args.sheet, "encoding": args.encoding, **resolve_options(
+        profile, roles=_parse_columns(args.column), header_row=args.header_row, date_order=args.date_order,
+        fy_end=args.fiscal_year_end)}
+    used = {"profile": profile.name if profile else None}
     if args.dry_run:
         review = review_roster(path.read_bytes(), path.name, **options)
-        _emit(args, review.as_dict(), lambda p: "\n".join([
+        proposed = {"profiles_proposed": [p.name for p in proposed_profiles(store, review.headers)] if store else []}
+        _emit(args, review.as_dict() | used | proposed, lambda p: "\n".join([
             f"Dry run (nothing stored): header row {p['header_row']}; {p['rows']} rows, {p['accepted']} would be "
             f"accepted, {p['rejected']} rejected, {p['duplicates']} exact duplicates, "
             f"{p['still_in_post']} still in post.",
             *(f"  rejected {g['count']}x: {g['reason']} (e.g. line "
               f"{', '.join(str(e['line']) for e in g['examples'])})" for g in p["rejected_groups"]),
             *(f"  fix: {f}" for f in p["fixes"]),
+            *(f"  saved profile {n!r} matches these headers: --profile {n!r}" for n in p["profiles_proposed"]
+              if n != p["profile"]),
         ]))
         return 0
-    report = import_roster(_store(args, create=True), path.read_bytes(), path.name, name=args.name,
-                           into=args.into, **options)
+    report = import_roster(store, path.read_bytes(), path.name, name=args.name, into=args.into, **options)
+    saved = None
+    if args.save_profile:
+        saved = save_profile(store, args.save_profile, headers=report.headers, roles=report.roles,
+                             header_row=report.header_row, date_order=options["date_order"],
+                             fy_end=options["fy_end"]).name
     payload = {"roster": report.roster.name, "id": report.roster.id, "version": report.version,
                "added": report.added, "removed": report.removed, "changed": report.changed, "rows": report.rows,
                "accepted": report.accepted, "rejected": report.rejected, "duplicates": report.duplicates,
-               "header_row": report.header_row, "columns": report.roles, "messages": list(report.messages)}
+               "header_row": report.header_row, "columns": report.roles, "messages": list(report.messages),
+               **used, "profile_saved": saved,
+               "profiles_proposed": [p.name for p in proposed_profiles(store, report.headers)]}
     _emit(args, payload, lambda p: (
         f"Imported roster {p['roster']!r} (header row {p['header_row']}): {p['rows']} rows, {p['accepted']} "
         f"accepted, {p['rejected']} rejected, {p['duplicates']} exact duplicates stored once."
         + (f" Version {p['version']}: {p['added']} added, {p['removed']} removed, {p['changed']} changed "
-           f"since version {p['version'] - 1}." if p["version"] > 1 else "")))
+           f"since version {p['version'] - 1}." if p["version"] > 1 else "")
+        + (f" Read with profile {p['profile']!r}." if p["profile"] else "")
+        + (f" Saved profile {p['profile_saved']!r}." if p["profile_saved"] else "")))
     return 0
 
 
@@ -421,11 +445,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--encoding", help="text encoding (default: detect)")
     p.add_argument("--header-row", type=int, metavar="N", help="1-based line (or sheet row) of the header "
                    "(default: found by scoring the first 30 rows)")
-    p.add_argument("--date-order", choices=("auto", "dmy", "mdy"), default="auto",
-                   help="day/month or month/day text dates (default: decided over the whole column)")
-    p.add_argument("--fiscal-year-end", type=int, default=12, metavar="MONTH", choices=range(1, 13),
-                   help="month in which fiscal years end, 1-12 (default 12); a fiscal year is named by the "
-                        "calendar year in which it ends")
+    p.add_argument("--date-order", choices=("auto", "dmy", "mdy"),
+                   help="day/month or month/day text dates (default: the profile's, else decided over the "
+                        "whole column)")
+    p.add_argument("--fiscal-year-end", type=int, metavar="MONTH", choices=range(1, 13),
+                   help="month in which fiscal years end, 1-12 (default: the profile's, else 12); a fiscal year "
+                        "is named by the calendar year in which it ends")
+    p.add_argument("--profile", metavar="NAME", help="read the file with this saved intake profile (column roles, "
+                   "header row, date reading, fiscal-year end); flags given here win over it")
+    p.add_argument("--save-profile", metavar="NAME", help="after the import, save how this file was read as an "
+                   "intake profile (replacing one of that name)")
     p.add_argument("--dry-run", action="store_true", help="report what would be accepted and rejected; store nothing")
     p.add_argument("--into", metavar="ROSTER", help="store the file as the next version of this roster (a refresh: "
                    "next week's file for the same roster); reports what was added, removed and changed")

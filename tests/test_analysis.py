@@ -80,6 +80,11 @@ def test_import_mapping_file_reports_codes(store: Store) -> None:
     standard = read_mapping("mapping-standard.csv")
     assert outcome["unmapped_in_roster"] == sorted(set(standard) - {"Retired"})
     assert store.settings(roster.id).mapping_name == "tiny"  # the first mapping becomes the roster's
+    # another spelling of a roster code is that code, not a code "not in the roster"
+    spelled = b"code,category\nRETIRED,voluntary\n\"died  in office \",voluntary\n"
+    outcome = import_mapping_file(store, spelled, roster=roster.id, name="spelled")
+    assert outcome["not_in_roster"] == []
+    assert outcome["unmapped_in_roster"] == sorted(set(standard) - {"Retired", "Died in office"})
     before = store.counts()
     with pytest.raises(MappingFileError, match="Line 2"):
         import_mapping_file(store, b"code,category\nRetired,maybe\n", roster=roster.id, name="tiny")
@@ -109,6 +114,20 @@ def test_provenance_names_the_data(demo_store: Store) -> None:
     standard = read_mapping("mapping-standard.csv")
     assert set(groups["forced"]) == {c for c, k in standard.items() if k == "forced"}
     assert "B = 2,000 resamples" in prov.short() and "seed 9" in prov.short()
+
+
+def test_provenance_states_the_rows_used(demo_store: Store, demo_frame: pd.DataFrame,
+                                        demo_clean: pd.DataFrame) -> None:
+    # the counts come from pandas reading demo_data/roster.csv (conftest demo_frame/demo_clean), not from the store
+    cols = [c for c in demo_frame.columns if c != "line"]
+    duplicates = int(demo_frame.duplicated(subset=cols).sum())
+    rejected = len(demo_frame) - duplicates - len(demo_clean)
+    assert duplicates > 0 and rejected > 0  # the demo file carries both on purpose (demo_data/README.md)
+    expected = (f"{len(demo_clean):,} of {len(demo_frame):,} rows ({duplicates} exact duplicates stored once); "
+                f"{rejected:,} rejected, see Rosters")
+    prov = provenance_for(load_input(demo_store, ROSTER))
+    assert prov.rows_used == expected
+    assert f"Rows used: {expected}" in prov.lines()
 
 
 def test_fits_are_recorded_once_per_input(demo_store: Store) -> None:

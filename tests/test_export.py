@@ -10,6 +10,7 @@ import subprocess
 import threading
 import xml.etree.ElementTree as ET
 import zlib
+from dataclasses import replace
 from datetime import UTC, datetime
 from itertools import combinations
 
@@ -34,6 +35,7 @@ PROV = Provenance(
     window=(2005, 2021), model="binomial GLM, logit linear in year", interval_method="profile likelihood",
     resamples=500, seed=7, unit="firm", created=datetime(2024, 3, 2, 9, 0, tzinfo=UTC),
     categories=(("forced", ("DISMISSED", "PERF")), ("voluntary", ("RETIRED",)), ("excluded", ("UNKNOWN",))),
+    rows_used="670 of 803 rows; 133 rejected, see Rosters",
 )
 
 
@@ -208,8 +210,11 @@ def test_deck_has_the_expected_slides_pictures_and_no_overlaps() -> None:
     assert "Demo roster" in all_text[0] and "2005\u20132021" in all_text[0]
     assert "The odds rose about 4% a year." in all_text[1]
     methods = all_text[3].replace("\n", " ")
-    for fragment in ("f00dfacecafe12345678", "version 4", "B = 500 resamples, by firm, seed 7", "DISMISSED, PERF"):
+    for fragment in ("f00dfacecafe12345678", "version 4", "B = 500 resamples, by firm, seed 7", "DISMISSED, PERF",
+                     "Rows used: 670 of 803 rows; 133 rejected, see Rosters"):
         assert fragment in methods
+    methods_notes = slides[3].notes_slide.notes_text_frame.text
+    assert "670 of 803 rows; 133 rejected, see Rosters" in methods_notes
     cautions = all_text[4].replace("\n", " ")
     assert all(c in cautions for c in CAUTIONS)
     width, height = prs.slide_width, prs.slide_height
@@ -240,6 +245,15 @@ def test_brief_html_escapes_user_text() -> None:
     assert "not estimable" in html
 
 
+def test_brief_html_prints_the_rows_used_line() -> None:
+    html = render_brief_html(headline="h", chart_svgs=[b"<svg></svg>"] * 2, table=odds_table(), method_text="m",
+                             provenance=PROV)
+    assert "Rows used: 670 of 803 rows; 133 rejected, see Rosters" in html
+    without = replace(PROV, rows_used="")
+    assert "Rows used" not in render_brief_html(headline="h", chart_svgs=[b"<svg></svg>"] * 2, table=odds_table(),
+                                                method_text="m", provenance=without)
+
+
 def test_brief_table_rejects_missing_columns() -> None:
     with pytest.raises(ValueError, match="missing method"):
         render_brief_html(headline="h", chart_svgs=[], table=odds_table().drop(columns="method"),
@@ -259,7 +273,8 @@ def test_brief_is_one_a4_page_with_headline_table_cautions_and_provenance(tmp_pa
     assert float(box.group(2)) == pytest.approx(841.89, abs=0.5)
     text = pdf_text(pdf, tmp_path)
     for fragment in ("Forced exits <rose> 4% a year", "1.040", "not estimable", "Binomial GLM on yearly counts.",
-                     "f00dfacecafe12345678", "Standard, version 4", "a trend is not a cause", "Coverage ok"):
+                     "f00dfacecafe12345678", "Standard, version 4", "a trend is not a cause", "Coverage ok",
+                     "670 of 803 rows; 133 rejected"):
         assert fragment in text
 
 

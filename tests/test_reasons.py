@@ -125,8 +125,31 @@ def test_unknown_category_rejects_the_file_naming_line_value_and_allowed() -> No
 
 
 def test_duplicate_code_names_both_lines() -> None:
-    with pytest.raises(MappingFileError, match=r"Line 4: code 'Retired' already appears on line 2"):
+    with pytest.raises(MappingFileError, match=r"Line 4: code 'Retired' already appears on line 2") as err:
         parse_mapping_csv(b"code,category\nRetired,voluntary\nFired,forced\nRetired,excluded\n")
+    assert err.value.line == 4 and "voluntary" in str(err.value) and "excluded" in str(err.value)
+
+
+def test_spellings_of_one_code_with_one_category_are_merged() -> None:
+    # issue 14: case, surrounding or repeated spaces, dash and quote variants are one code
+    data = ("code,category,label\nRetired,voluntary,\nRETIRED ,Voluntary,Retirement\nFired,forced,\n"
+            "retired,voluntary,Other label\n\"Left \u2013 board\u2019s call\",forced,\n"
+            "\"left - board's  call\",forced,\n").encode()
+    parsed = parse_mapping_csv(data)
+    assert parsed.categories == {"Retired": "voluntary", "Fired": "forced", "Left \u2013 board\u2019s call": "forced"}
+    assert parsed.lines == {"Retired": 2, "Fired": 4, "Left \u2013 board\u2019s call": 6}
+    assert parsed.labels == {"Retired": "Retirement"}  # the first label given for the code
+    assert parsed.merged == {"Retired": ((3, "RETIRED"), (5, "retired")),
+                             "Left \u2013 board\u2019s call": ((7, "left - board's  call"),)}
+
+
+def test_spellings_of_one_code_with_two_categories_name_both_lines() -> None:
+    with pytest.raises(MappingFileError) as err:
+        parse_mapping_csv(b"code,category\nRetired,voluntary\nFired,forced\n  RETIRED,excluded\n")
+    message = str(err.value)
+    assert err.value.line == 4
+    assert message.startswith("Line 4: code 'RETIRED' is a spelling of 'Retired' on line 2")
+    assert "voluntary" in message and "excluded" in message and "one category" in message
 
 
 @pytest.mark.parametrize(("data", "pattern"), [
@@ -185,3 +208,5 @@ def test_diff_without_labels_and_identical_versions() -> None:
 def test_unknown_codes() -> None:
     assert unknown_codes(["Retired", "Fird", "Fired", "Zzz"], ["Fired", "Retired", "Died"]) == ["Fird", "Zzz"]
     assert unknown_codes([], ["Retired"]) == []
+    # matched by the code key (app.stats.cells.code_key): another spelling of a roster code is not unknown
+    assert unknown_codes(["RETIRED ", "fired", "Fird"], ["Fired", "Retired"]) == ["Fird"]

@@ -139,3 +139,57 @@ def test_unmapped_codes_warn_and_are_left_out_of_the_fit(client: Any, demo_store
     reasons = client.get(f"/rosters/{ROSTER}/reasons").context["page"]
     assert reasons.unmapped_codes == 1
     assert [r.code for r in reasons.codes if r.category is None] == [code]
+
+
+def _spelled_roster() -> tuple[bytes, list[str]]:
+    """An invented roster whose codes come in several spellings (issue 14), and the reason cells as written."""
+    spellings = (["Retired"] * 5 + ["RETIRED"] * 3 + ["retired "] * 2 + ["Dismissed by board"] * 4
+                 + ["dismissed  by board"] * 1 + ["Health"] * 2)
+    lines = ["firm_id,fiscal_year,reason"]
+    lines += [f"F{i:03d},{2000 + i % 15},{code}" for i, code in enumerate(spellings)]
+    return ("\n".join(lines) + "\n").encode(), spellings
+
+
+def test_each_code_lists_its_spellings_with_counts(empty_client: Any, store: Store) -> None:
+    data, spellings = _spelled_roster()
+    roster_id = import_roster(store, data, "spelled.csv").roster.id
+    response = empty_client.get(f"/rosters/{roster_id}/reasons")
+    assert response.status_code == 200
+    by_code = {r.code: r for r in response.context["page"].codes}
+    # expected counts straight from the cells written above (collections-free: list.count per spelling)
+    assert set(by_code) == {"Retired", "Dismissed by board", "Health"}
+    assert by_code["Retired"].count == 10
+    assert dict(by_code["Retired"].variants) == {s: spellings.count(s) for s in ("Retired", "RETIRED", "retired ")}
+    assert [n for _, n in by_code["Retired"].variants] == [5, 3, 2]  # most frequent first
+    assert dict(by_code["Dismissed by board"].variants) == {"Dismissed by board": 4, "dismissed  by board": 1}
+    assert by_code["Health"].variants == ()  # one spelling: nothing to expand
+    html = response.text
+    assert html.count("<details class=\"spellings\"") == 2
+    assert "3 spellings" in html and "RETIRED" in html and "\u201cretired \u201d" in html
+    api = empty_client.get(f"/api/rosters/{roster_id}/reasons").json()
+    retired = next(c for c in api["codes"] if c["code"] == "Retired")
+    assert retired["variants"] == [["Retired", 5], ["RETIRED", 3], ["retired ", 2]]
+
+
+def test_a_mapping_in_other_spellings_covers_the_codes_and_saving_keeps_one_entry(empty_client: Any,
+                                                                                  store: Store) -> None:
+    data, _ = _spelled_roster()
+    roster_id = import_roster(store, data, "spelled.csv").roster.id
+    mapping = b"code,category,label\nretired,voluntary,Retirement\nDISMISSED BY BOARD,forced,\nhealth ,voluntary,\n"
+    response = empty_client.post(f"/rosters/{roster_id}/mapping/import", data={"mapping_name": "desk"},
+                                 files={"file": ("m.csv", mapping, "text/csv")})
+    assert response.status_code == 200
+    page = response.context["page"]
+    assert "do not occur in this roster" not in page.message
+    assert page.unmapped_codes == 0
+    by_code = {r.code: r for r in page.codes}
+    assert (by_code["Retired"].category, by_code["Retired"].label) == ("voluntary", "Retirement")
+    assert by_code["Dismissed by board"].category == "forced"
+    saved = empty_client.post(f"/rosters/{roster_id}/reasons",
+                              data=form_for(page, {"Retired": "excluded", "Dismissed by board": "forced",
+                                                   "Health": "voluntary"}) | {"mapping_name": "desk"})
+    assert saved.status_code == 200  # followed the redirect
+    latest = store.get_mapping("desk")
+    assert latest.version == 2
+    # one entry per code: the page's spelling replaced the file's, none carried over beside it
+    assert latest.categories == {"Retired": "excluded", "Dismissed by board": "forced", "Health": "voluntary"}

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from app.intake.reasons import parse_mapping_csv
+from app.intake.reasons import parse_mapping_csv, unknown_codes
 from app.intake.rule_files import parse_rules_csv, rules_csv
 from app.intake.spreadsheet_safety import safe_csv
 from app.store import Store
@@ -15,9 +15,9 @@ def import_mapping_file(store: Store, data: bytes, *, roster: int | str, name: s
     """Save a mapping CSV (and optionally a rules CSV) as the next version of ``name``; report codes not
     in the roster.
 
-    Unknown categories, duplicate codes or a bad rule reject both files (nothing saved). Codes that do not
-    occur in this roster are kept (they serve other rosters) and reported; so are rules whose code the
-    mapping does not list.
+    Unknown categories, spellings of one code with two categories, or a bad rule reject both files (nothing
+    saved). Codes that do not occur in this roster (matched by code key) are kept (they serve other rosters)
+    and reported; so are rules whose code the mapping does not list.
     """
     target = store.get_roster(roster)
     parsed = parse_mapping_csv(data)
@@ -27,8 +27,9 @@ def import_mapping_file(store: Store, data: bytes, *, roster: int | str, name: s
                                        note=f"imported from CSV for roster {target.name}", rules=parsed_rules)
     if store.settings(target.id).mapping_name is None:
         store.update_settings(target.id, mapping_name=name)
-    not_in_roster = sorted(set(parsed.categories) - roster_codes)
-    unmapped = sorted(roster_codes - set(parsed.categories))
+    # by the code key (issue 14): "RETIRED" in the file names the roster's "Retired"
+    not_in_roster = unknown_codes(parsed.categories, roster_codes)
+    unmapped = unknown_codes(roster_codes, parsed.categories)
     return {"mapping": saved.name, "version": saved.version, "codes": len(saved.categories),
             "not_in_roster": not_in_roster, "unmapped_in_roster": unmapped,
             "rules": [r.describe() for r in saved.rules],

@@ -10,6 +10,7 @@ from datetime import UTC, datetime
 
 from app import __version__
 from app.analysis.inputs import AnalysisInput
+from app.store import Roster
 from app.types import CATEGORIES
 
 #: The standard cautions, shown on pages and in every export.
@@ -50,6 +51,8 @@ class Provenance:
     packs: tuple[tuple[int, str], ...] = ()
     #: the mapping version's classification rules, in evaluation order (pinned by the version)
     rules: tuple[str, ...] = ()
+    #: how many of the file's rows were used ("670 of 803 rows; 133 rejected, see Rosters"); empty: not stated
+    rows_used: str = ""
 
     def _created(self) -> str:
         return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
@@ -71,6 +74,7 @@ class Provenance:
             f"Mapping: {self.mapping_name}, version {self.mapping_version}"
             + (f"; classification rules, first match wins: {'; '.join(self.rules)}" if self.rules else ""),
             f"Window: fiscal years {self.window[0]}\u2013{self.window[1]}",
+            *([f"Rows used: {self.rows_used}"] if self.rows_used else []),
             f"Model: {self.model}",
             f"Intervals: {self.interval_method}",
         ]
@@ -99,6 +103,14 @@ class Provenance:
         return " \u00b7 ".join(parts)
 
 
+def rows_used_line(roster: Roster) -> str:
+    """How many of the file's rows a roster holds, as pages and exports state it (the Rosters page lists the
+    rejected rows)."""
+    dupes = f" ({roster.duplicates:,} exact duplicates stored once)" if roster.duplicates else ""
+    return (f"{roster.accepted:,} of {roster.rows_total:,} rows{dupes}; {roster.rejected:,} rejected, "
+            "see Rosters")
+
+
 def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method: str = "Wald and profile likelihood",
                    resamples: int | None = None, seed: int | None = None, unit: str | None = None,
                    by_sector: bool = False, adjust: tuple[str, ...] | None = None) -> Provenance:
@@ -114,4 +126,5 @@ def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method
                                                  if adjust is not None else ""),
         interval_method=interval_method, resamples=resamples, seed=seed, unit=unit, categories=grouped,
         rules=tuple(r.describe() for r in (inp.mapping.rules if inp.mapping else ())),
+        rows_used=rows_used_line(inp.roster),
     )

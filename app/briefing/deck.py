@@ -311,7 +311,8 @@ def _methods_slide(prs: object, provenance: Provenance, number: int, marking: st
             f"Mapping {provenance.mapping_name} v{provenance.mapping_version}: reason codes by category",
             body, 15)
     _footer(slide, provenance, number, marking)
-    _notes(slide, f"Method: {provenance.model}. Interval: {provenance.interval_method}. Caveat: the "
+    rows = f"Rows used: {provenance.rows_used}. " if provenance.rows_used else ""
+    _notes(slide, f"{rows}Method: {provenance.model}. Interval: {provenance.interval_method}. Caveat: the "
                   "classification of reason codes into forced and voluntary is a judgement; the mapping version "
                   "named here is the one every number used.")
 

@@ -120,6 +120,8 @@ class Review:
     date_rule: str
     fy_end: int
     messages: tuple[str, ...]
+    #: the file's header names (what an intake profile recognises a source by)
+    headers: tuple[str, ...] = ()
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -162,6 +164,8 @@ class ImportReport:
     added: int = 0
     removed: int = 0
     changed: int = 0
+    #: the file's header names (what an intake profile recognises a source by)
+    headers: tuple[str, ...] = ()
 
     def as_dict(self) -> dict[str, Any]:
         """The JSON shape of ``helmshift import --json``."""
@@ -299,7 +303,7 @@ def _review(p: _Prepared, date_order: DateOrder, fy_end: int) -> Review:
         rejected_groups=tuple(groups), code_groups=tuple(c.code_groups), fixes=tuple(_fixes(p, groups, date_order)),
         roles=p.roles, guesses=p.guesses,
         date_rule=date_rule(label, fy_end) if "date" in p.roles else fiscal_rule(fy_end),
-        fy_end=fy_end, messages=tuple(t.messages + p.notes + c.messages),
+        fy_end=fy_end, messages=tuple(t.messages + p.notes + c.messages), headers=tuple(t.headers),
     )
 
 
@@ -367,7 +371,7 @@ def import_roster(
         duplicates=c.duplicates, roles=p.roles, encoding=table.encoding, delimiter=table.delimiter,
         sheet=table.sheet, messages=tuple(table.messages + p.notes + c.messages), rejected_rows=tuple(c.rejected),
         header_row=table.header_line, review=_review(p, date_order, fy_end), version=roster.version,
-        added=added, removed=removed, changed=changed,
+        added=added, removed=removed, changed=changed, headers=tuple(table.headers),
     )
 
 

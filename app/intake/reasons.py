@@ -10,9 +10,10 @@ import csv
 import io
 import re
 from collections.abc import Iterable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 from app.intake.spreadsheet_safety import FORMULA_TRIGGERS, neutralise_formula
+from app.stats.cells import code_key
 from app.types import CATEGORIES, Category
 
 # Word lists: common practice in governance research, not a standard. Each entry is matched at the
@@ -108,11 +109,16 @@ class MappingFileError(ValueError):
 
 @dataclass(frozen=True)
 class ParsedMapping:
-    """Codes and categories (and optional labels) read from a mapping CSV, with their line numbers."""
+    """Codes and categories (and optional labels) read from a mapping CSV, with their line numbers.
+
+    Spellings of one code (same :func:`code_key`) that name the same category are one entry, under the first
+    spelling; ``merged`` lists the others as (line, spelling) per kept code.
+    """
 
     categories: dict[str, Category]
     labels: dict[str, str]
     lines: dict[str, int]
+    merged: dict[str, tuple[tuple[int, str], ...]] = field(default_factory=dict)
 
 
 def _restore(cell: str) -> str:
@@ -127,7 +133,9 @@ def parse_mapping_csv(data: bytes) -> ParsedMapping:
 
     A header row (``code,category[,label]``) is optional but recommended. The file must be UTF-8
     (a byte-order mark is allowed). Blank lines are ignored; categories are case-insensitive; cells
-    are stripped of surrounding spaces.
+    are stripped of surrounding spaces. Codes match by :func:`code_key` (issue 14): a later spelling of a
+    code already read is merged into it when it names the same category and rejects the file, naming both
+    lines, when it does not.
     """
     try:
         text = data.decode("utf-8-sig")
@@ -137,6 +145,8 @@ def parse_mapping_csv(data: bytes) -> ParsedMapping:
     categories: dict[str, Category] = {}
     labels: dict[str, str] = {}
     lines: dict[str, int] = {}
+    first_spelling: dict[str, str] = {}  # code key -> the spelling kept
+    merged: dict[str, list[tuple[int, str]]] = {}
     reader = csv.reader(io.StringIO(text, newline=""))
     first = True
     for row in reader:
@@ -158,16 +168,29 @@ def parse_mapping_csv(data: bytes) -> ParsedMapping:
         if category is None:
             raise MappingFileError(f"Line {line}: category {cells[1]!r} for code {code!r} is not one of "
                                    f"{', '.join(CATEGORIES)}.", line)
-        if code in lines:
-            raise MappingFileError(f"Line {line}: code {code!r} already appears on line {lines[code]}; "
-                                   "each code may appear once.", line)
+        label = _restore(cells[2]) if len(cells) == 3 else ""
+        kept = first_spelling.get(code_key(code))
+        if kept is not None:  # one code, spelt again: merged when it says the same, refused when it does not
+            if categories[kept] != category:
+                said = (f"already appears on line {lines[kept]}" if kept == code
+                        else f"is a spelling of {kept!r} on line {lines[kept]}")
+                raise MappingFileError(
+                    f"Line {line}: code {code!r} {said}, which says {categories[kept]}, but this line says "
+                    f"{category}; spellings that differ only in case, spaces, dashes or quotes are one code, "
+                    "so give it one category.", line)
+            merged.setdefault(kept, []).append((line, code))
+            if label and kept not in labels:
+                labels[kept] = label
+            continue
+        first_spelling[code_key(code)] = code
         categories[code] = category
         lines[code] = line
-        if len(cells) == 3 and cells[2]:
-            labels[code] = _restore(cells[2])
+        if label:
+            labels[code] = label
     if not categories:
         raise MappingFileError("The mapping file has no code,category rows.")
-    return ParsedMapping(categories=categories, labels=labels, lines=lines)
+    return ParsedMapping(categories=categories, labels=labels, lines=lines,
+                         merged={k: tuple(v) for k, v in merged.items()})
 
 
 def mapping_csv(categories: Mapping[str, str], labels: Mapping[str, str] | None = None) -> str:
@@ -221,5 +244,9 @@ def diff_mappings(old: Mapping[str, str], new: Mapping[str, str],
 
 
 def unknown_codes(mapping_codes: Iterable[str], roster_codes: Iterable[str]) -> list[str]:
-    """Codes a mapping names that the roster never uses, sorted (usually a typo or another roster's code)."""
-    return sorted(set(mapping_codes) - set(roster_codes))
+    """Codes a mapping names that the roster never uses, sorted (usually a typo or another roster's code).
+
+    Codes match by :func:`code_key`: "RETIRED " names the roster's "Retired".
+    """
+    used = {code_key(c) for c in roster_codes}
+    return sorted({c for c in mapping_codes if code_key(c) not in used})

@@ -4,8 +4,9 @@ SQLAlchemy 2.0 Core over SQLite by default (any SQLAlchemy URL works). Methods r
 pandas DataFrames, never live ORM objects. The gateway is split by aggregate: ``rosters`` (rosters and
 their records), ``mappings`` (mapping versions), ``runs`` (runs and replicates), ``universe`` (firm-years
 per roster), ``cells`` (the counts pages read instead of the records), ``accounts`` and ``audit`` (team mode),
-``briefing`` (what exports are signed with), on top of ``engine`` (connections and Alembic migrations,
-:mod:`app.store.migrations`) and ``tables`` (the schema).
+``briefing`` (what exports are signed with), ``spellings`` (how each reason code was written), ``profiles``
+(intake profiles), on top of ``engine`` (connections and Alembic migrations, :mod:`app.store.migrations`)
+and ``tables`` (the schema).
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ from app.store.briefing import BriefingQueries
 from app.store.cells import CellQueries
 from app.store.departure_query import DepartureFilter, DepartureQueries
 from app.store.mappings import MappingQueries
+from app.store.profiles import IntakeProfile, ProfileQueries
 from app.store.records import (
     MAX_ID,
     BriefingSettings,
@@ -30,16 +32,19 @@ from app.store.records import (
 )
 from app.store.rosters import RosterQueries
 from app.store.runs import RunQueries
+from app.store.spellings import SpellingQueries
 from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
 from app.store.universe import UniverseQueries
 
 __all__ = [
-    "Account", "AuditEvent", "BriefingSettings", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION", "MAX_ID",
+    "Account", "AuditEvent", "BriefingSettings", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION",
+    "IntakeProfile", "MAX_ID",
     "MappingVersion", "RejectedRow", "Roster", "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata",
     "now_iso",
 ]
 
 
 class Store(RosterQueries, DepartureQueries, MappingQueries, RunQueries, UniverseQueries, CellQueries,
-            AccountQueries, AuditQueries, BriefingQueries):
+            AccountQueries, AuditQueries, BriefingQueries, SpellingQueries,
+            ProfileQueries):
     """Owns the engine; every read and write of Helmshift goes through one of its methods."""

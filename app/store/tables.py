@@ -25,7 +25,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0010"
+HEAD_REVISION = "0011"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -331,4 +331,20 @@ app_secrets = Table(
     "app_secrets", metadata,
     Column("name", String, primary_key=True),
     Column("value", String, nullable=False),
+)
+
+# Intake profiles (issue 14): how one source's files are read (column roles, header row, date reading,
+# fiscal-year end), saved under a name; a later file with the same header set is offered its profile.
+intake_profiles = Table(
+    "intake_profiles", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String, nullable=False, unique=True),
+    Column("headers", Text, nullable=False),  # JSON: the file's header names, sorted (how a file is recognised)
+    Column("roles", Text, nullable=False),  # JSON: role -> header
+    Column("header_row", Integer),  # 1-based line or sheet row; NULL: found by scoring
+    Column("date_order", String, nullable=False),  # auto, dmy or mdy
+    Column("fy_end", Integer, nullable=False),  # month in which fiscal years end
+    Column("created_at", String, nullable=False),
+    Column("updated_at", String, nullable=False),
+    sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
 )

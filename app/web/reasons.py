@@ -12,6 +12,7 @@ from starlette.concurrency import run_in_threadpool
 from app.analysis.cellstore import code_counts, memoised, roster_fingerprint, window_code_counts
 from app.analysis.inputs import load_input
 from app.analysis.mapping_files import export_mapping_csv, import_mapping_file
+from app.intake.codes import code_key
 from app.intake.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
 from app.store import MAX_ID, MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES, Category
@@ -49,9 +50,13 @@ class CodeRow:
     suggested: str | None
     suggestion_note: str
     ambiguous: bool
+    #: (spelling as in the file, rows) most frequent first, when the file wrote the code more than one way
+    variants: tuple[tuple[str, int], ...] = ()
 
 
-CodeRowOut = define(CodeRow, fields={"category": Category | None, "suggested": Category | None})
+CodeRowOut = define(CodeRow, fields={"category": Category | None, "suggested": Category | None},
+                    descriptions={"variants": "[spelling, rows] per spelling in the file (two or more), "
+                                              "most frequent first; empty when written one way"})
 
 
 @dataclass(frozen=True)
@@ -85,6 +90,16 @@ ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
     "compare": "the two versions compared, when asked with ?a=&b="})
 
 
+def _variants(store: Store, roster: Roster) -> dict[str, tuple[tuple[str, int], ...]]:
+    """Each shown code's spellings in the file with their rows, for codes written more than one way."""
+    table = store.reason_spellings(roster.id, version=roster.version)
+    out: dict[str, tuple[tuple[str, int], ...]] = {}
+    for code, part in table.groupby("code", sort=False):
+        if len(part) > 1:
+            out[str(code)] = tuple((str(s), int(n)) for s, n in zip(part["spelling"], part["count"], strict=True))
+    return out
+
+
 def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | None = None,
                  message: str | None = None, error: str | None = None) -> ReasonsPage:
     try:
@@ -101,16 +116,21 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
                              lambda: window_code_counts(inp.counts, inp.window))
     suggestions = memoised(store, ("suggestions", *roster_key),
                            lambda: suggest_categories(counts["code"].astype(str).tolist()))
+    variants = memoised(store, ("spellings", *roster_key), lambda: _variants(store, roster))
+    # a mapping's codes match the roster's by code key, as the models match them (app.stats.cells)
+    by_key = {code_key(c): c for c in mapping.categories} if mapping else {}
     rows = []
     for rec in counts.to_dict("records"):
         code = str(rec["code"])
         sug = suggestions[code]
-        category = mapping.categories.get(code) if mapping else sug.category
+        named = by_key.get(code_key(code))
+        category = (mapping.categories[named] if named is not None else None) if mapping else sug.category
         rows.append(CodeRow(
             code=code, count=int(rec["count"]), count_in_window=int(window_counts.get(code, 0)),
             first_year=int(rec["first_year"]), last_year=int(rec["last_year"]),
-            category=category, label=(mapping.labels.get(code, "") if mapping else ""),
+            category=category, label=(mapping.labels.get(named, "") if mapping and named is not None else ""),
             suggested=sug.category, suggestion_note=sug.why, ambiguous=sug.ambiguous,
+            variants=variants.get(code, ()),
         ))
     unmapped = [r for r in rows if r.category is None]
     diff = None
@@ -210,9 +230,9 @@ def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload
     name = str(form.get("mapping_name") or "").strip() or (
         page.mapping.name if page.mapping else f"{page.roster.name} mapping")
     if page.mapping and name == page.mapping.name:
-        roster_codes = {r.code for r in page.codes}
+        roster_keys = {code_key(r.code) for r in page.codes}
         for code, cat in page.mapping.categories.items():
-            if code not in roster_codes:
+            if code_key(code) not in roster_keys:  # another spelling of a code on the page is that code
                 categories.setdefault(code, cat)
                 if code in page.mapping.labels:
                     labels.setdefault(code, page.mapping.labels[code])

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import codecs
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, cast
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
@@ -26,6 +26,7 @@ from app.intake.ingest import (
     review_roster,
     same_file_roster,
 )
+from app.intake.profiles import check_profile_name, chosen_profile, proposed_profiles, save_profile
 from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import ROLES
 from app.web.deps import app_settings, app_store, app_uploads
@@ -65,6 +66,12 @@ class ConfirmPage:
     #: the rosters it could be added to (id, name), and the one whose columns the file has (a hint, not a choice)
     targets: tuple[tuple[int, str], ...] = ()
     same_columns_as: tuple[int, str] | None = None
+    #: saved intake profiles (names), the one whose header set this file has (offered, not applied), the one
+    #: applied to the choices above, and the name to save this import's choices under
+    profiles: tuple[str, ...] = ()
+    proposed_profile: str | None = None
+    profile: str | None = None
+    save_profile: str = ""
 
 
 def _read_upload(form: dict[str, str | Upload]) -> tuple[str, bytes]:
@@ -108,6 +115,7 @@ def _roster_upload(request: Request, form: dict[str, str | Upload]) -> HTMLRespo
         roles={r: preview.roles.get(r) for r in ROLES}, name=default_roster_name(store, filename),
         duplicate_of=same_file_roster(store, data), header_row=preview.header_row,
         review=review, review_error=review_error, **_targets(store, preview.headers),
+        **_profile_offer(store, preview.headers),
     )
     return render(request, "roster_confirm.html", page, active="rosters")
 
@@ -158,6 +166,9 @@ _INTAKE_FIELDS = {
     "header_row": {"type": "string", "description": "1-based line (or sheet row) of the header; found when empty"},
     "date_order": {"type": "string", "enum": list(DATE_ORDERS), "description": "reading of d/m vs m/d dates"},
     "fy_end": {"type": "string", "description": "month (1-12) in which fiscal years end; default 12"},
+    "profile": {"type": "string", "description": "a saved intake profile (applied on review with apply_profile)"},
+    "apply_profile": {"type": "string", "enum": ["yes"], "description": "replace the choices by the profile's"},
+    "save_profile": {"type": "string", "description": "on import: save these choices as an intake profile"},
 }
 
 
@@ -176,6 +187,13 @@ def _targets(store: Store, headers: tuple[str, ...]) -> dict[str, Any]:
     same = [r for r in rosters if r.columns and set(r.columns.values()) <= set(headers)]
     return {"targets": tuple((r.id, r.name) for r in rosters),
             "same_columns_as": (same[-1].id, same[-1].name) if same else None}
+
+
+def _profile_offer(store: Store, headers: tuple[str, ...]) -> dict[str, Any]:
+    """The confirm page's profile choices: every saved profile, and the newest one saved from these headers."""
+    matching = proposed_profiles(store, headers)
+    return {"profiles": tuple(p.name for p in store.list_profiles()),
+            "proposed_profile": matching[0].name if matching else None}
 
 
 def _confirm_form(form: dict[str, str | Upload]) -> tuple[dict[str, str], str | None]:
@@ -210,16 +228,22 @@ def _roster_review(request: Request, form: dict[str, str | Upload]) -> Response:
     roles, name = _confirm_form(form)
     error: str | None = None
     into: int | None = None
+    applied: str | None = None
     try:
         encoding, sheet = _file_options(form)
         header_row, order, fy_end = _intake_options(form)
         into = _into(form)
+        if form.get("apply_profile") == "yes" and form.get("profile"):  # the profile replaces the choices above
+            chosen = chosen_profile(store, str(form.get("profile")))
+            roles, header_row, fy_end = dict(chosen.roles), chosen.header_row, chosen.fy_end
+            order = cast(DateOrder, chosen.date_order)  # the store saves one of DATE_ORDERS only
+            applied = chosen.name
         preview = preview_roster(pending.data, pending.filename, encoding=encoding, sheet=sheet, roles=roles,
                                  header_row=header_row)
     except RosterFileError as exc:
         encoding, sheet, header_row, order, fy_end, error = None, None, None, "auto", 12, str(exc)
         preview = preview_roster(pending.data, pending.filename)
-        roles = {}
+        roles, applied = {}, None
     review, review_error = _try_review(pending.data, pending.filename, roles=roles or None, encoding=encoding,
                                        sheet=sheet, header_row=header_row, date_order=order, fy_end=fy_end)
     page = ConfirmPage(
@@ -227,7 +251,8 @@ def _roster_review(request: Request, form: dict[str, str | Upload]) -> Response:
         roles={r: preview.roles.get(r) for r in ROLES}, name=name or default_roster_name(store, pending.filename),
         duplicate_of=same_file_roster(store, pending.data), error=error, header_row=preview.header_row,
         date_order=order, fy_end=fy_end, review=review, review_error=review_error, into=into,
-        **_targets(store, preview.headers),
+        **_targets(store, preview.headers), **_profile_offer(store, preview.headers), profile=applied,
+        save_profile=str(form.get("save_profile") or "")[:200],
     )
     return render(request, "roster_confirm.html", page, status=400 if error else 200, active="rosters")
 
@@ -259,6 +284,8 @@ def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response
         encoding, sheet = _file_options(form)
         header_row, order, fy_end = _intake_options(form)
         into = _into(form)
+        typed = str(form.get("save_profile") or "")
+        save_as = check_profile_name(typed) if typed.strip() else None
         report = import_roster(
             store, pending.data, pending.filename, name=None if into else name, roles=roles, encoding=encoding,
             sheet=sheet, allow_same_file=form.get("allow_same_file") == "yes", header_row=header_row,
@@ -275,9 +302,13 @@ def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response
             error=str(exc), duplicate_of=same_file_roster(store, pending.data),
             rejected=list(getattr(exc, "rejected", []))[:REJECTED_SHOWN], header_row=preview.header_row,
             date_order=order, fy_end=fy_end, into=into, **_targets(store, preview.headers),
+            **_profile_offer(store, preview.headers), save_profile=str(form.get("save_profile") or "")[:200],
         )
         return render(request, "roster_confirm.html", page, status=400, active="rosters")
     app_uploads(request).drop(token)
+    if save_as:  # the roles used are the file's own headers, so this cannot be refused after the import
+        save_profile(store, save_as, headers=report.headers, roles=report.roles, header_row=report.header_row,
+                     date_order=order, fy_end=fy_end)
     if report.version > 1:  # a refresh: show what changed
         url = request.url_for("roster_diff", roster_id=report.roster.id)
         return RedirectResponse(f"{url}?from={report.version - 1}&to={report.version}", status_code=303)
