@@ -27,14 +27,14 @@ from app.store.records import (
     now_iso,
 )
 from app.store.rosters import RosterQueries
-from app.store.runs import RunQueries
+from app.store.runs import INTERRUPTED, RunClaimLost, RunQueries
 from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
 from app.store.universe import UniverseQueries
 
 __all__ = [
-    "Account", "AuditEvent", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION", "MAX_ID", "MappingVersion",
-    "RejectedRow", "Roster", "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata",
-    "now_iso",
+    "Account", "AuditEvent", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION", "INTERRUPTED", "MAX_ID",
+    "MappingVersion", "RejectedRow", "Roster", "RosterSettings", "Run", "RunClaimLost", "Store", "StoreError",
+    "Universe", "departures", "metadata", "now_iso",
 ]
 
 

@@ -24,7 +24,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0006"
+HEAD_REVISION = "0007"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -139,6 +139,10 @@ runs = Table(
     Column("error", Text),
     Column("seconds", Float),
     Column("author", String),
+    # jobs across server processes: the worker holding a running run, and the database clock (seconds since
+    # 1970) of its last heartbeat; a stale heartbeat means the worker died (app/analysis/jobs.py)
+    Column("claimed_by", String),
+    Column("heartbeat_at", Float),
     sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
 )
 

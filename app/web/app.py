@@ -78,9 +78,10 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     app.state.settings = settings
     app.state.store = store
     app.state.uploads = UploadStash()
-    app.state.jobs = JobRunner(store, workers=settings.job_workers)
-    interrupted = store.mark_interrupted()
-    app.state.interrupted_at_start = interrupted
+    app.state.jobs = JobRunner(store, workers=settings.job_workers, heartbeat=settings.job_heartbeat,
+                               stale_after=settings.job_stale_after)
+    # runs whose worker (in this or another server process) stopped beating; queued runs wait for a worker
+    app.state.interrupted_at_start = store.reap_stale_runs(settings.job_stale_after)
 
     # added first, so it runs inside the Host/Origin checks of SecurityMiddleware
     app.add_middleware(auth.AuthMiddleware, store=store)
