@@ -13,6 +13,7 @@ be started again and continues from its stored replicates.
 
 from __future__ import annotations
 
+import functools
 import logging
 import os
 import socket
@@ -21,6 +22,7 @@ import time
 import uuid
 from collections.abc import Callable, Collection
 from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
 from types import TracebackType
 from typing import Any
 
@@ -54,9 +56,46 @@ class RunStopped(Exception):
     """The server is shutting down: the run is left ``interrupted``, to be finished later."""
 
 
+@functools.cache
+def _machine() -> str:
+    """This machine and process namespace: host name, boot id and pid namespace (Linux), so that two
+    containers with one host name never take each other's process ids for their own."""
+    parts = [socket.gethostname()]
+    try:
+        parts.append(Path("/proc/sys/kernel/random/boot_id").read_text().strip()[:8])
+        parts.append(os.readlink("/proc/self/ns/pid").strip("pid:[]"))
+    except OSError:
+        pass
+    return "/".join(parts)
+
+
 def worker_name() -> str:
-    """A name for one runner that no other process on any machine shares: host, process id, random part."""
-    return f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
+    """A name for one runner that no other process on any machine shares: machine, process id, random part."""
+    return f"{_machine()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
+
+
+def _dead_here(worker: str) -> bool:
+    """True when ``worker`` ran on this machine in a process that no longer exists."""
+    parts = worker.rsplit(":", 2)  # host names, boot ids and namespace numbers hold no colon
+    if len(parts) != 3 or parts[0] != _machine() or not parts[1].isdigit():
+        return False
+    pid = parts[1]
+    if int(pid) == os.getpid():  # this very process: its runs are alive, or handled by its own shutdown
+        return False
+    try:
+        os.kill(int(pid), 0)
+    except ProcessLookupError:
+        return True
+    except OSError:  # it exists but belongs to someone else
+        return False
+    return False
+
+
+def reap_lost_runs(store: Store, stale_after: float) -> list[int]:
+    """Mark interrupted the running runs whose worker is gone: silent for ``stale_after`` seconds, or (at once)
+    a process of this machine that no longer exists, such as a server killed and started again."""
+    dead = [w for w in store.running_workers() if _dead_here(w)]
+    return sorted(set(store.release_runs(*dead)) | set(store.reap_stale_runs(stale_after)))
 
 
 class Heartbeat:
@@ -241,7 +280,7 @@ class JobRunner:
         while not self._stopping.is_set():
             try:
                 if time.monotonic() >= next_reap:
-                    for run_id in self.store.reap_stale_runs(self.stale_after):
+                    for run_id in reap_lost_runs(self.store, self.stale_after):
                         logger.warning("bootstrap run %s lost its worker (no heartbeat for %s s); marked "
                                        "interrupted", run_id, self.stale_after)
                     next_reap = time.monotonic() + self.heartbeat

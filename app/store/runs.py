@@ -120,7 +120,6 @@ class RunQueries(Gateway):
             values["started_at"] = now_iso()
         if status in ("done", "failed", "cancelled", "interrupted"):
             values["finished_at"] = now_iso()
-            values["claimed_by"] = None
         if error is not None:
             values["error"] = error
         with self._tx() as conn:
@@ -170,19 +169,30 @@ class RunQueries(Gateway):
         """Mark interrupted every running run whose worker has not beaten for ``stale_after`` seconds (by the
         database clock), or that no worker holds (left by a version without heartbeats); their ids."""
         with self._tx() as conn:
+            if conn.dialect.name == "postgresql":
+                # a worker frozen inside its own write holds that run's row lock: do not wait on it for ever
+                conn.exec_driver_sql("SET LOCAL lock_timeout = '5s'")
             stale = or_(runs.c.heartbeat_at.is_(None), runs.c.claimed_by.is_(None),
                         runs.c.heartbeat_at < db_clock(conn) - float(stale_after))
             ids = conn.execute(update(runs).where(runs.c.status == "running", stale).values(
-                status="interrupted", finished_at=now_iso(), claimed_by=None, error=INTERRUPTED,
+                status="interrupted", finished_at=now_iso(), error=INTERRUPTED,
             ).returning(runs.c.id)).scalars().all()
         return sorted(int(i) for i in ids)
 
-    def release_runs(self, worker: str) -> list[int]:
-        """Mark interrupted the runs ``worker`` still holds (its server is stopping); their ids."""
+    def running_workers(self) -> set[str]:
+        """The workers holding running runs."""
+        with self.engine.connect() as conn:
+            return {w for w in conn.execute(select(runs.c.claimed_by).where(
+                runs.c.status == "running", runs.c.claimed_by.is_not(None)).distinct()).scalars()}
+
+    def release_runs(self, *workers: str) -> list[int]:
+        """Mark interrupted the runs these workers still hold (stopping, or known dead); their ids."""
+        if not workers:
+            return []
         with self._tx() as conn:
-            ids = conn.execute(update(runs).where(runs.c.claimed_by == worker, runs.c.status == "running").values(
-                status="interrupted", finished_at=now_iso(), claimed_by=None, error=INTERRUPTED,
-            ).returning(runs.c.id)).scalars().all()
+            ids = conn.execute(update(runs).where(
+                runs.c.claimed_by.in_(workers), runs.c.status == "running",
+            ).values(status="interrupted", finished_at=now_iso(), error=INTERRUPTED).returning(runs.c.id)).scalars().all()
         return sorted(int(i) for i in ids)
 
     def set_run_progress(self, run_id: int, done: int, total: int | None = None) -> None:
@@ -198,7 +208,6 @@ class RunQueries(Gateway):
         with self._tx() as conn:
             if not conn.execute(self._held(run_id, worker).values(
                 status=status, result=json.dumps(dict(result)), seconds=seconds, finished_at=now_iso(),
-                claimed_by=None,
             )).rowcount and worker is not None:
                 raise RunClaimLost(f"Run {run_id} is no longer held by {worker}.")
 

@@ -59,7 +59,7 @@ def plotly_js_version() -> str:
 
 def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bool = True) -> FastAPI:
     """Build the app over ``store`` (opened from ``settings.db_url`` when not given)."""
-    from app.analysis.jobs import JobRunner
+    from app.analysis.jobs import JobRunner, reap_lost_runs
 
     store = store or Store(settings.db_url)
 
@@ -80,8 +80,8 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     app.state.uploads = UploadStash()
     app.state.jobs = JobRunner(store, workers=settings.job_workers, heartbeat=settings.job_heartbeat,
                                stale_after=settings.job_stale_after)
-    # runs whose worker (in this or another server process) stopped beating; queued runs wait for a worker
-    app.state.interrupted_at_start = store.reap_stale_runs(settings.job_stale_after)
+    # runs whose worker (in this or another server process) is gone; queued runs wait for a worker
+    app.state.interrupted_at_start = reap_lost_runs(store, settings.job_stale_after)
 
     # added first, so it runs inside the Host/Origin checks of SecurityMiddleware
     app.add_middleware(auth.AuthMiddleware, store=store)
