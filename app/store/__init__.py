@@ -14,7 +14,7 @@ from app.store.accounts import Account, AccountQueries
 from app.store.audit import AuditEvent, AuditQueries
 from app.store.cells import CellQueries
 from app.store.departure_query import DepartureFilter, DepartureQueries
-from app.store.mappings import MappingQueries
+from app.store.mappings import MappingConflict, MappingQueries
 from app.store.records import (
     MAX_ID,
     MappingVersion,
@@ -33,8 +33,8 @@ from app.store.universe import UniverseQueries
 
 __all__ = [
     "Account", "AuditEvent", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION", "INTERRUPTED", "MAX_ID",
-    "MappingVersion", "RejectedRow", "Roster", "RosterSettings", "Run", "RunClaimLost", "Store", "StoreError",
-    "Universe", "departures", "metadata", "now_iso",
+    "MappingConflict", "MappingVersion", "RejectedRow", "Roster", "RosterSettings", "Run", "RunClaimLost", "Store",
+    "StoreError", "Universe", "departures", "metadata", "now_iso",
 ]
 
 
