@@ -147,6 +147,7 @@ def test_a_new_mapping_version_is_not_served_stale(demo_store: Store) -> None:
     assert after["mapping_label"] == f"demo standard v{mapping.version + 1}"
 
 
+@pytest.mark.sqlite_only  # reads the SQLite file itself
 def test_the_migration_fills_the_cells_of_rosters_stored_before(demo_store: Store, tmp_path: Path) -> None:
     expected = demo_store.cell_counts(ROSTER)
     firms = demo_store.firm_cell_counts(ROSTER)
