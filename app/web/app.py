@@ -15,6 +15,7 @@ from app import __version__
 from app.config import Settings
 from app.store import Store
 from app.web import (
+    accounts,
     auth,
     briefing,
     coverage,
@@ -106,7 +107,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
         # async: answered on the event loop without waiting for a worker thread (a one-row read)
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (auth, rosters, reasons, coverage, departures, trend, resampling, sectors, briefing, universe):
+    for module in (auth, accounts, rosters, reasons, coverage, departures, trend, resampling, sectors, briefing, universe):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)
