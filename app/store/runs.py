@@ -139,10 +139,12 @@ class RunQueries(Gateway):
         PostgreSQL: the candidate row is locked with SELECT ... FOR UPDATE SKIP LOCKED, so workers never wait
         on each other; SQLite: one UPDATE whose ``status = 'queued'`` condition is the claim (a SELECT first
         would make the transaction a reader that cannot become the writer once another claim has committed)."""
+        pick = select(runs.c.id).where(runs.c.status == "queued").order_by(runs.c.id).limit(1)
+        if run_id is not None:
+            pick = pick.where(runs.c.id == run_id)
+        if not self._any(pick):
+            return None
         with self._tx() as conn:
-            pick = select(runs.c.id).where(runs.c.status == "queued").order_by(runs.c.id).limit(1)
-            if run_id is not None:
-                pick = pick.where(runs.c.id == run_id)
             if conn.dialect.name == "postgresql":
                 found = conn.execute(pick.with_for_update(skip_locked=True)).scalar()
                 if found is None:
@@ -154,6 +156,12 @@ class RunQueries(Gateway):
                 status="running", claimed_by=worker, heartbeat_at=db_clock(conn), started_at=now_iso(),
                 finished_at=None, error=None).returning(runs.c.id)).scalar()
         return None if claimed is None else int(claimed)
+
+    def _any(self, query: Any) -> bool:
+        """Whether ``query`` finds a row, read outside any write: every server polls the queue every second,
+        and on SQLite an UPDATE takes the database's one write lock even when it changes nothing."""
+        with self.engine.connect() as conn:
+            return conn.execute(query).first() is not None
 
     def heartbeat(self, worker: str, run_ids: Sequence[int]) -> list[int]:
         """Record that ``worker`` is alive and working on ``run_ids``; the ids it still holds."""
@@ -168,6 +176,8 @@ class RunQueries(Gateway):
     def reap_stale_runs(self, stale_after: float) -> list[int]:
         """Mark interrupted every running run whose worker has not beaten for ``stale_after`` seconds (by the
         database clock), or that no worker holds (left by a version without heartbeats); their ids."""
+        if not self._any(select(runs.c.id).where(runs.c.status == "running").limit(1)):
+            return []
         with self._tx() as conn:
             if conn.dialect.name == "postgresql":
                 # a worker frozen inside its own write holds that run's row lock: do not wait on it for ever
