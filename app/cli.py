@@ -33,6 +33,11 @@ def _store(args: argparse.Namespace, *, create: bool = False) -> Any:
     return open_store(database_url(args.db), create=create)
 
 
+#: stores a command opened; ``main`` closes them when the command ends, whatever its outcome (a server database
+#: would otherwise keep a connection until the interpreter exits and warn about it)
+_OPENED: list[Any] = []
+
+
 def open_store(url: str, *, create: bool) -> Any:
     """The store at ``url``, or a one-sentence ``CommandError`` saying why it cannot be opened."""
     from sqlalchemy.engine import make_url
@@ -53,7 +58,9 @@ def open_store(url: str, *, create: bool) -> Any:
         if not create and not path.exists():
             raise CommandError(f"The database {path} does not exist; check --db (importing a roster creates one).")
     try:
-        return Store(url)
+        store = Store(url)
+        _OPENED.append(store)
+        return store
     except (ModuleNotFoundError, NoSuchModuleError) as exc:
         driver = getattr(exc, "name", None) or str(exc).rsplit(":", 1)[-1].strip()
         raise CommandError(
@@ -623,6 +630,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         message = str(exc).strip() or exc.__class__.__name__
         print(f"helmshift: {message}", file=sys.stderr)
         return EXIT_FAILED
+    finally:
+        while _OPENED:
+            _OPENED.pop().dispose()
 
 
 if __name__ == "__main__":

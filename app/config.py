@@ -26,10 +26,28 @@ class Settings:
     upload_limit: int = DEFAULT_UPLOAD_LIMIT
     allowed_hosts: tuple[str, ...] = ("127.0.0.1", "localhost", "[::1]", "testserver")
     job_workers: int = 1
+    #: seconds between a job worker's heartbeats, and the silence after which its runs count as interrupted
+    job_heartbeat: float = 2.0
+    job_stale_after: float = 30.0
 
     @classmethod
     def from_env(cls, db: str | None = None) -> Settings:
         limit = int(os.environ.get("HELMSHIFT_UPLOAD_LIMIT", DEFAULT_UPLOAD_LIMIT))
         extra = tuple(h for h in os.environ.get("HELMSHIFT_ALLOWED_HOSTS", "").split(",") if h)
         return cls(db_url=database_url(db), upload_limit=limit,
-                   allowed_hosts=cls.allowed_hosts + extra)
+                   allowed_hosts=cls.allowed_hosts + extra,
+                   job_heartbeat=_seconds("HELMSHIFT_JOB_HEARTBEAT", cls.job_heartbeat),
+                   job_stale_after=_seconds("HELMSHIFT_JOB_STALE_AFTER", cls.job_stale_after))
+
+
+def _seconds(name: str, default: float) -> float:
+    value = os.environ.get(name)
+    if not value:
+        return default
+    try:
+        seconds = float(value)
+    except ValueError:
+        raise ValueError(f"{name} must be a number of seconds; got {value!r}.") from None
+    if not 0 < seconds < 86_400:
+        raise ValueError(f"{name} must be between 0 and 86400 seconds; got {value!r}.")
+    return seconds

@@ -143,7 +143,7 @@ class LiveServer:
 
     proc: _subprocess.Popen[bytes]
     port: int
-    db: Path
+    db: Path | str  # a SQLite file, or the SQLAlchemy URL of a server database
     log: Path
 
     @property
@@ -160,16 +160,17 @@ class LiveServer:
             return self.proc.wait(timeout)
 
 
-def start_server(db: Path, log: Path, *, timeout: float = 40) -> LiveServer:
-    """Start `helmshift serve --db DB` on a free port and wait until /api/health answers."""
+def start_server(db: Path | str, log: Path, *, timeout: float = 40, env: dict[str, str] | None = None) -> LiveServer:
+    """Start `helmshift serve --db DB` on a free port and wait until /api/health answers. ``db`` is a SQLite
+    file or a database URL (e.g. from the ``databases`` fixture); ``env`` adds environment variables."""
     import httpx
 
     port = free_port()
-    env = {**_os.environ, "PYTHONUNBUFFERED": "1"}
+    environ = {**_os.environ, "PYTHONUNBUFFERED": "1", **(env or {})}
     with open(log, "ab") as out:
         proc = _subprocess.Popen(
             [_sys.executable, "-m", "app.cli", "serve", "--db", str(db), "--port", str(port)],
-            stdout=out, stderr=_subprocess.STDOUT, env=env, cwd=str(db.parent))
+            stdout=out, stderr=_subprocess.STDOUT, env=environ, cwd=str(log.parent))
     server = LiveServer(proc, port, db, log)
     deadline = _time.monotonic() + timeout
     while _time.monotonic() < deadline:
@@ -186,12 +187,13 @@ def start_server(db: Path, log: Path, *, timeout: float = 40) -> LiveServer:
 
 
 @pytest.fixture
-def live_server(tmp_path: Path) -> _Iterator[_Callable[[Path], LiveServer]]:
-    """Factory: ``live_server(db_path)`` starts a server; every one started is stopped at teardown."""
+def live_server(tmp_path: Path) -> _Iterator[_Callable[..., LiveServer]]:
+    """Factory: ``live_server(db)`` starts a server on a SQLite file or a database URL (``env=`` adds
+    environment variables); every one started is stopped at teardown."""
     started: list[LiveServer] = []
 
-    def start(db: Path) -> LiveServer:
-        server = start_server(db, tmp_path / f"server-{len(started)}.log")
+    def start(db: Path | str, env: dict[str, str] | None = None) -> LiveServer:
+        server = start_server(db, tmp_path / f"server-{len(started)}.log", env=env)
         started.append(server)
         return server
 

@@ -147,6 +147,7 @@ def test_a_new_mapping_version_is_not_served_stale(demo_store: Store) -> None:
     assert after["mapping_label"] == f"demo standard v{mapping.version + 1}"
 
 
+@pytest.mark.sqlite_only  # reads the SQLite file itself
 def test_the_migration_fills_the_cells_of_rosters_stored_before(tmp_path: Path) -> None:
     """A database written by Helmshift 0.1 (tests/data/store-0.1.sql) gets its cells on upgrade, equal to
     counting its departures with pandas."""

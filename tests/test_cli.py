@@ -7,12 +7,20 @@ import json
 import math
 import shutil
 import subprocess
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
 import pandas as pd
 import pytest
-from conftest import DEMO_CSV, DEMO_DIR, copy_database, read_mapping, statsmodels_trend, year_counts
+from conftest import (
+    DEMO_CSV,
+    DEMO_DIR,
+    Databases,
+    read_mapping,
+    statsmodels_trend,
+    year_counts,
+)
 
 from app.cli import build_parser, main
 
@@ -21,8 +29,11 @@ CHROMIUM = Path("/usr/bin/chromium")
 
 
 @pytest.fixture
-def db(shared_demo_db: Path, tmp_path: Path) -> str:
-    return str(copy_database(shared_demo_db, tmp_path / "cli.db"))
+def db(shared_demo_url: str, databases: Databases) -> Iterator[str]:
+    """``--db`` for a private copy of the demo store: a SQLite URL, or a PostgreSQL one with --backend."""
+    url = databases.new(template=shared_demo_url)
+    yield url
+    databases.drop(url)
 
 
 def run(capsys: pytest.CaptureFixture[str], *argv: str) -> tuple[int, Any, str]:

@@ -85,6 +85,7 @@ def test_roster_ids_are_never_reused(empty_client: Any, store: Store) -> None:
     assert empty_client.get(f"/api/rosters/{first}").status_code == 404
 
 
+@pytest.mark.sqlite_only  # reads the SQLite file itself
 def test_every_named_table_uses_autoincrement(store: Store) -> None:
     con = sqlite3.connect(store.url.removeprefix("sqlite:///"))
     try:

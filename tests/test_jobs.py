@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import threading
+import time
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 import pytest
 
@@ -18,7 +22,7 @@ from app.analysis.jobs import (
 )
 from app.stats.bootstrap import bootstrap_trend, draw_replicates
 from app.stats.design import design_matrix, window_centre
-from app.store import Store
+from app.store import RunClaimLost, Store
 
 ROSTER = 1
 
@@ -85,30 +89,95 @@ def test_cancel_before_start_marks_the_run_cancelled(demo_store: Store) -> None:
     assert len(demo_store.replicates(run_id)) == 0
 
 
-def test_threaded_runner_finishes_and_shutdown_marks_leftovers(demo_store: Store) -> None:
+def test_threaded_runner_finishes_submitted_and_found_runs(demo_store: Store) -> None:
     inp = load_input(demo_store, ROSTER)
-    runner = JobRunner(demo_store, workers=1)
+    runner = JobRunner(demo_store, workers=1, heartbeat=0.2, stale_after=5, poll=0.1)
     runner.start()
-    run_id = create_bootstrap_run(demo_store, inp, bootstrap_params(unit="departure", resamples=200, seed=5))
+    try:
+        run_id = create_bootstrap_run(demo_store, inp, bootstrap_params(unit="departure", resamples=200, seed=5))
+        runner.submit(run_id)
+        # queued without a submit here, as another server process would: the runner finds it by polling
+        found = create_bootstrap_run(demo_store, inp, bootstrap_params(unit="departure", resamples=200, seed=6))
+        runner.wait(run_id, timeout=60)
+        runner.wait(found, timeout=60)
+    finally:
+        runner.shutdown()
+    assert [demo_store.get_run(i).status for i in (run_id, found)] == ["done", "done"]
+    assert [len(demo_store.replicates(i)) for i in (run_id, found)] == [200, 200]
+
+
+def test_shutdown_leaves_a_held_run_interrupted_and_resumable(demo_store: Store) -> None:
+    inp, cells, design = engine_inputs(demo_store)
+    runner = JobRunner(demo_store, workers=1, heartbeat=0.2, stale_after=5, poll=0.1)
+    runner.start()
+    run_id = create_bootstrap_run(demo_store, inp, bootstrap_params(unit="firm", resamples=20 * CHUNK, seed=5))
     runner.submit(run_id)
-    runner.wait(run_id, timeout=60)
-    assert demo_store.get_run(run_id).status == "done"
-    left = create_bootstrap_run(demo_store, inp, bootstrap_params(unit="departure", resamples=200, seed=6))
-    runner.shutdown()  # never submitted: still queued, so marked interrupted
-    assert demo_store.get_run(left).status == "interrupted"
+    deadline = time.monotonic() + 60
+    while demo_store.get_run(run_id).progress_done == 0 and time.monotonic() < deadline:
+        time.sleep(0.02)
+    runner.shutdown()
+    run = demo_store.get_run(run_id)
+    assert run.status == "interrupted" and "start it again" in (run.error or "")
+    assert 0 < run.progress_done < 20 * CHUNK == run.progress_total
+    kept = demo_store.replicates(run_id)
+    assert len(kept) == run.progress_done and len(kept) % CHUNK == 0
+    # the stored chunks are the seeded stream's first ones (app.stats.sampling: block i from seed, start)
+    np.testing.assert_array_equal(kept, draw_replicates(cells, design, unit="firm", resamples=len(kept),
+                                                        seed=5).estimates)
 
 
-def test_mark_interrupted_only_touches_unfinished_runs(demo_store: Store) -> None:
+def test_stale_heartbeats_are_reaped_and_fresh_ones_kept(demo_store: Store) -> None:
     inp = load_input(demo_store, ROSTER)
     params = bootstrap_params(unit="firm", resamples=200, seed=8)
     queued = create_bootstrap_run(demo_store, inp, params)
-    running = create_bootstrap_run(demo_store, inp, params)
-    demo_store.set_run_status(running, "running")
+    legacy = create_bootstrap_run(demo_store, inp, params)
+    demo_store.set_run_status(legacy, "running")  # running without a claim: left by a version before claims
+    alive = create_bootstrap_run(demo_store, inp, params, claimed_by="host:1:alive")
+    dying = create_bootstrap_run(demo_store, inp, params, claimed_by="host:2:dying")
     done = run_bootstrap_now(demo_store, inp, unit="firm", resamples=200, seed=8)["run"]
-    assert sorted(demo_store.mark_interrupted()) == [queued, running]
-    assert [demo_store.get_run(i).status for i in (queued, running, done)] == ["interrupted", "interrupted", "done"]
-    assert "start it again" in demo_store.get_run(queued).error
-    assert demo_store.mark_interrupted() == []
+    assert demo_store.reap_stale_runs(60) == [legacy]
+    time.sleep(1.2)
+    assert demo_store.heartbeat("host:1:alive", [alive, dying]) == [alive]  # a worker beats only its own runs
+    assert demo_store.reap_stale_runs(1.0) == [dying]
+    assert [demo_store.get_run(i).status for i in (queued, legacy, alive, dying, done)] == [
+        "queued", "interrupted", "running", "interrupted", "done"]
+    assert "start it again" in demo_store.get_run(dying).error
+    # the dead worker, should it wake up, can no longer write: its claim is gone
+    with pytest.raises(RunClaimLost):
+        demo_store.append_replicates(dying, np.zeros(3), worker="host:2:dying", progress=3)
+    assert len(demo_store.replicates(dying)) == 0
+
+
+def test_claims_are_exclusive_across_stores_and_threads(demo_store: Store) -> None:
+    """Eight claimers on four engines (as four server processes would have) race for 30 queued runs:
+    every run is claimed exactly once (SELECT ... FOR UPDATE SKIP LOCKED on PostgreSQL, the conditional
+    UPDATE on SQLite)."""
+    inp = load_input(demo_store, ROSTER)
+    params = bootstrap_params(unit="firm", resamples=200, seed=8)
+    queued = [create_bootstrap_run(demo_store, inp, params) for _ in range(30)]
+    stores = [Store(demo_store.url) for _ in range(4)]
+    start = threading.Barrier(8)
+
+    def claimer(k: int) -> list[int]:
+        store, worker, got = stores[k % 4], f"test:{k}", []
+        start.wait()
+        while (run_id := store.claim_run(worker)) is not None:
+            got.append(run_id)
+        return got
+
+    try:
+        with ThreadPoolExecutor(8) as pool:
+            claims = list(pool.map(claimer, range(8)))
+    finally:
+        for s in stores:
+            s.dispose()
+    flat = sorted(i for got in claims for i in got)
+    assert flat == queued
+    assert sum(1 for got in claims if got) >= 2  # more than one claimer won something: a real race
+    for k, got in enumerate(claims):
+        for run_id in got:
+            assert demo_store.heartbeat(f"test:{k}", [run_id]) == [run_id]
+    assert demo_store.claim_run("late") is None
 
 
 @pytest.mark.parametrize(("kwargs", "words"), [

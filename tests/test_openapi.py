@@ -17,7 +17,7 @@ from typing import Any
 
 import jsonschema_rs
 import pytest
-from conftest import DEMO_CSV, copy_database, make_client
+from conftest import DEMO_CSV, Databases, make_client
 from fastapi.testclient import TestClient
 from pydantic import BaseModel
 
@@ -36,9 +36,11 @@ JSON = {"accept": "application/json"}
 
 
 @pytest.fixture(scope="module")
-def api(shared_demo_db: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[TestClient]:
-    """The app over a copy of the demo database with one finished bootstrap run per unit (B = 200)."""
-    store = Store(f"sqlite:///{copy_database(shared_demo_db, tmp_path_factory.mktemp('openapi') / 'o.db')}")
+def api(shared_demo_url: str, databases: Databases) -> Iterator[TestClient]:
+    """The app over a copy of the demo database (on the chosen backend) with one finished bootstrap run per
+    unit (B = 200)."""
+    url = databases.new(template=shared_demo_url)
+    store = Store(url)
     client = make_client(store)
     for unit in ("firm", "departure"):
         r = client.post("/rosters/1/resampling", data={"unit": unit, "resamples": "200", "seed": "7"},
@@ -47,6 +49,7 @@ def api(shared_demo_db: Path, tmp_path_factory: pytest.TempPathFactory) -> Itera
     yield client
     client.close()
     store.dispose()
+    databases.drop(url)
 
 
 @pytest.fixture(scope="module")

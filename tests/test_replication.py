@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from conftest import copy_database, make_client
+from conftest import Databases, make_client
 from scipy import stats
 
 from app.analysis import pack_script
@@ -38,11 +38,11 @@ SEED = 11
 
 
 @pytest.fixture(scope="module")
-def runs(shared_demo_db: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Store, dict[str, int]]]:
-    """The demo roster with a fit, a spline fit with quasi intervals asked for, the sector trends, and a firm
-    and a departure bootstrap (B = 400)."""
-    path = copy_database(shared_demo_db, tmp_path_factory.mktemp("replication") / "r.db")
-    store = Store(f"sqlite:///{path}")
+def runs(shared_demo_url: str, databases: Databases) -> Iterator[tuple[Store, dict[str, int]]]:
+    """The demo roster (on the chosen backend) with a fit, a spline fit with quasi intervals asked for, the
+    sector trends, and a firm and a departure bootstrap (B = 400)."""
+    url = databases.new(template=shared_demo_url)
+    store = Store(url)
     inp = load_input(store, 1)
     ids = {"fit": run_trend(store, inp).run_id,
            "spline": run_trend(store, inp, model="spline", spline_df=5, quasi=True).run_id,
@@ -53,6 +53,7 @@ def runs(shared_demo_db: Path, tmp_path_factory: pytest.TempPathFactory) -> Iter
                                                model="sector")["run"])
     yield store, ids
     store.dispose()
+    databases.drop(url)
 
 
 def unpack(data: bytes, folder: Path) -> Path:

@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from conftest import Databases
 from fastapi.testclient import TestClient
 
 from app.config import Settings
@@ -28,13 +29,14 @@ DEMO_ROSTER = Path(__file__).resolve().parents[1] / "demo_data" / "roster.csv"
 
 
 @pytest.fixture(scope="module")
-def web(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[TestClient, Store]]:
-    tmp = tmp_path_factory.mktemp("bad-web")
-    store = Store(f"sqlite:///{tmp / 'bad.db'}")
+def web(databases: Databases) -> Iterator[tuple[TestClient, Store]]:
+    url = databases.new()  # SQLite, or PostgreSQL with --backend postgresql
+    store = Store(url)
     app = create_app(Settings(db_url=store.url), store, start_jobs=False)
     with TestClient(app) as client:
         yield client, store
     store.dispose()
+    databases.drop(url)
 
 
 @pytest.fixture(autouse=True)
@@ -94,9 +96,8 @@ def test_bad_file_through_the_upload_page(web: tuple[TestClient, Store], name: s
     assert store.counts() == before
 
 
-def test_pages_of_a_fresh_roster_without_a_mapping(tmp_path: Path) -> None:
+def test_pages_of_a_fresh_roster_without_a_mapping(store: Store) -> None:
     """Right after an upload no mapping is chosen: every page must answer (warnings are errors here)."""
-    store = Store(f"sqlite:///{tmp_path / 'fresh.db'}")
     app = create_app(Settings(db_url=store.url), store, start_jobs=False)
     with TestClient(app) as client:
         r = client.post("/api/rosters", headers=SAME, files={"file": ("roster.csv", DEMO_ROSTER.read_bytes())})
@@ -105,4 +106,3 @@ def test_pages_of_a_fresh_roster_without_a_mapping(tmp_path: Path) -> None:
         for page in ("", "/reasons", "/coverage", "/trend", "/resampling", "/sectors", "/robustness", "/briefing"):
             answer = client.get(f"/rosters/{rid}{page}")
             assert answer.status_code == 200, (page, answer.status_code)
-    store.dispose()

@@ -114,20 +114,21 @@ def test_unknown_and_non_bootstrap_runs_are_404(client: Any, demo_store: Store) 
     assert client.get(f"/runs/{fit_run}?method=median").status_code == 400
 
 
-def test_app_start_marks_unfinished_runs_interrupted(demo_store: Store) -> None:
+def test_app_start_marks_runs_without_a_live_worker_interrupted(demo_store: Store) -> None:
     inp = load_input(demo_store, ROSTER)
     params = bootstrap_params(unit="firm", resamples=200, seed=2)
     queued = create_bootstrap_run(demo_store, inp, params)
     running = create_bootstrap_run(demo_store, inp, params)
-    demo_store.set_run_status(running, "running")
-    client = make_client(demo_store)  # create_app calls Store.mark_interrupted
-    assert sorted(client.app.state.interrupted_at_start) == [queued, running]
-    page = client.get(f"/runs/{queued}")
+    demo_store.set_run_status(running, "running")  # running, held by no worker: its server died
+    client = make_client(demo_store)  # create_app calls Store.reap_stale_runs
+    assert client.app.state.interrupted_at_start == [running]
+    assert demo_store.get_run(queued).status == "queued"  # waits for a worker in any server process
+    page = client.get(f"/runs/{running}")
     assert page.context["page"].run.status == "interrupted"
     assert "Finish this run" in page.text
     # finishing it continues with the same seed and gives the stored-then-finished run
-    client.post(f"/runs/{queued}/extend", data={"extra": "0"})
-    assert demo_store.get_run(queued).status == "done"
+    client.post(f"/runs/{running}/extend", data={"extra": "0"})
+    assert demo_store.get_run(running).status == "done"
 
 
 def test_a_run_of_another_statistic_within_sectors_is_stored_and_shown(client: Any, demo_store: Store) -> None:

@@ -16,7 +16,7 @@ from app.store.audit import AuditEvent, AuditQueries
 from app.store.briefing import BriefingQueries
 from app.store.cells import CellQueries
 from app.store.departure_query import DepartureFilter, DepartureQueries
-from app.store.mappings import MappingQueries
+from app.store.mappings import MappingConflict, MappingQueries
 from app.store.profiles import IntakeProfile, ProfileQueries
 from app.store.records import (
     MAX_ID,
@@ -31,16 +31,15 @@ from app.store.records import (
     now_iso,
 )
 from app.store.rosters import RosterQueries
-from app.store.runs import RunQueries
+from app.store.runs import INTERRUPTED, RunClaimLost, RunQueries
 from app.store.spellings import SpellingQueries
 from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
 from app.store.universe import UniverseQueries
 
 __all__ = [
     "Account", "AuditEvent", "BriefingSettings", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION",
-    "IntakeProfile", "MAX_ID",
-    "MappingVersion", "RejectedRow", "Roster", "RosterSettings", "Run", "Store", "StoreError", "Universe", "departures", "metadata",
-    "now_iso",
+    "INTERRUPTED", "IntakeProfile", "MAX_ID", "MappingConflict", "MappingVersion", "RejectedRow", "Roster",
+    "RosterSettings", "Run", "RunClaimLost", "Store", "StoreError", "Universe", "departures", "metadata", "now_iso",
 ]
 
 

@@ -100,6 +100,21 @@ class AccountQueries(Gateway):
             conn.execute(delete(accounts).where(accounts.c.id == account.id))
             record_event(conn, "account_remove", f"account:{name}", {"id": account.id})
 
+    def set_role(self, name: str, role: str) -> Account:
+        """Give an account another role (effective at its next request); the last admin stays an admin."""
+        check_choice(role, ACCOUNT_ROLES, "role")
+        account = self.get_account(name)
+        with self._tx() as conn:
+            if account.role == "admin" and role != "admin":
+                admins = conn.execute(select(func.count()).select_from(accounts)
+                                      .where(accounts.c.role == "admin")).scalar_one()
+                if admins == 1:
+                    raise StoreError(f"{name!r} is the last admin; make another account admin first.")
+            conn.execute(update(accounts).where(accounts.c.id == account.id).values(role=role))
+            record_event(conn, "account_role", f"account:{name}", {"id": account.id, "from": account.role,
+                                                                   "to": role})
+        return self.get_account(account.id)
+
     def set_password(self, name: str, password: str) -> None:
         """A new password; every session of the account is signed out."""
         _check_password(password)

@@ -4,12 +4,15 @@
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from typing import Any
 
 from sqlalchemy import (
+    Connection,
     func,
     insert,
     select,
 )
+from sqlalchemy.dialects import postgresql, sqlite
 
 from app.store.audit import LOCAL_ACTOR, current_actor, record_event
 from app.store.engine import Gateway
@@ -28,6 +31,33 @@ from app.store.tables import (
 from app.types import CATEGORIES, ClassificationRule
 
 
+class MappingConflict(StoreError):
+    """A save based on a version of a mapping that is no longer its newest: nothing was saved."""
+
+    def __init__(self, name: str, based_on: int, latest: int, author: str) -> None:
+        self.name, self.based_on, self.latest, self.author = name, based_on, latest, author
+        super().__init__(
+            f"Mapping {name!r} was saved as version {latest} by {author} while you were editing version "
+            f"{based_on}, so your changes were not saved; compare the two versions, then save again.")
+
+
+def _lock_mapping(conn: Connection, name: str) -> int:
+    """The id of mapping ``name`` (created when new), locked for this transaction, so that saves of one
+    mapping take their version numbers one after the other. The first statement writes: SQLite then holds
+    its write lock for the whole transaction (a reader could not become the writer after another save
+    committed); on PostgreSQL the row stays locked (FOR UPDATE) until the transaction ends."""
+    values: dict[str, Any] = {"name": name, "created_at": now_iso()}
+    if conn.dialect.name in ("postgresql", "sqlite"):
+        dialect_insert = postgresql.insert if conn.dialect.name == "postgresql" else sqlite.insert
+        conn.execute(dialect_insert(mappings).values(**values).on_conflict_do_nothing(index_elements=["name"]))
+        query = select(mappings.c.id).where(mappings.c.name == name)
+        if conn.dialect.name == "postgresql":
+            query = query.with_for_update()
+        return int(conn.execute(query).scalar_one())
+    row = conn.execute(select(mappings.c.id).where(mappings.c.name == name)).first()
+    return int(row.id if row else conn.execute(insert(mappings).values(**values)).inserted_primary_key[0])  # type: ignore[index]
+
+
 class MappingQueries(Gateway):
     """Reads and writes of mappings and their versions."""
 
@@ -40,9 +70,12 @@ class MappingQueries(Gateway):
         author: str = "analyst",
         note: str = "",
         rules: Sequence[ClassificationRule] = (),
+        based_on: int | None = None,
     ) -> MappingVersion:
-        """Save ``categories`` (code -> category) and its classification ``rules`` (in evaluation order)
-        as the next version of mapping ``name``."""
+        """Save ``categories`` (code -> category) and its classification ``rules`` (in evaluation order) as the
+        next version of mapping ``name``. With ``based_on`` (the version the edit started from; 0 for a mapping
+        that did not exist yet) the save is refused with :class:`MappingConflict` when a newer version was saved
+        meanwhile: two analysts saving at once get two versions or a conflict, never a silently lost edit."""
         bad = sorted({c for c in [*categories.values(), *(r.category for r in rules)] if c not in CATEGORIES})
         if bad:
             raise StoreError(f"Unknown categories {bad}; allowed: {', '.join(CATEGORIES)}.")
@@ -50,13 +83,14 @@ class MappingQueries(Gateway):
         if current_actor() != LOCAL_ACTOR:
             author = current_actor()  # in team mode the signed-in account is the author, not a typed name
         with self._tx() as conn:
-            row = conn.execute(select(mappings.c.id).where(mappings.c.name == name)).first()
-            mapping_id = row.id if row else conn.execute(
-                insert(mappings).values(name=name, created_at=now_iso())
-            ).inserted_primary_key[0]  # type: ignore[index]
+            mapping_id = _lock_mapping(conn, name)
             last = conn.execute(
                 select(func.max(mapping_versions.c.version)).where(mapping_versions.c.mapping_id == mapping_id)
             ).scalar()
+            if based_on is not None and (last or 0) != based_on:
+                by = conn.execute(select(mapping_versions.c.author).where(
+                    mapping_versions.c.mapping_id == mapping_id, mapping_versions.c.version == last)).scalar()
+                raise MappingConflict(name, based_on, int(last or 0), str(by))
             version = (last or 0) + 1
             version_id = conn.execute(
                 insert(mapping_versions).values(

@@ -14,7 +14,8 @@ class StoreError(ValueError):
     """A request the store cannot satisfy (unknown roster, duplicate name, ...)."""
 
 
-MAX_ID = 2**63 - 1  # SQLite INTEGER range; larger ids cannot exist and must not reach the driver
+MAX_ID = 2**31 - 1  # the INTEGER id columns on PostgreSQL are 32-bit: larger ids cannot exist and must not
+# reach the driver (it would refuse them with a DataError); SQLite counters never get near it either
 
 
 def now_iso() -> str:

@@ -10,8 +10,14 @@ from typing import Any
 
 import numpy as np
 from sqlalchemy import (
+    ColumnElement,
+    Connection,
+    Float,
     func,
     insert,
+    literal,
+    literal_column,
+    or_,
     select,
     update,
 )
@@ -30,6 +36,25 @@ from app.store.tables import (
 )
 from app.types import RunKind, RunStatus
 
+#: what a run cut short by a stopped or vanished server says; ``extend`` with 0 more resamples finishes it
+INTERRUPTED = "The server stopped while this run was in progress; start it again to finish it."
+
+
+class RunClaimLost(StoreError):
+    """The worker no longer holds the run (another server found its heartbeat stale): it must stop writing."""
+
+
+def db_clock(conn: Connection) -> ColumnElement[float]:
+    """The database's own clock in seconds since 1970: every server judges heartbeats by one clock, so the
+    servers' own clocks may disagree. SQLAlchemy has no portable "now as a number", hence one per dialect."""
+    if conn.dialect.name == "sqlite":
+        return literal_column("((julianday('now') - 2440587.5) * 86400.0)", Float)
+    if conn.dialect.name == "postgresql":
+        return literal_column("CAST(EXTRACT(EPOCH FROM clock_timestamp()) AS DOUBLE PRECISION)", Float)
+    import time  # another server database: the app's clock is the best there is
+
+    return literal(time.time(), Float)
+
 
 class RunQueries(Gateway):
     """Reads and writes of runs and their replicates."""
@@ -38,9 +63,16 @@ class RunQueries(Gateway):
         self, *, kind: RunKind, roster_id: int, params: Mapping[str, Any], fingerprint: str,
         mapping_name: str | None, mapping_version: int | None, window: tuple[int, int] | None,
         status: RunStatus = "queued", progress_total: int = 0, roster_version: int = 1,
+        claimed_by: str | None = None,
     ) -> int:
+        """Store a run; with ``claimed_by`` it is born running and held by that worker (the command line's
+        synchronous runs), so no server on the same store can claim it in between."""
+        claim: dict[str, Any] = {}
         with self._tx() as conn:
-            run_id = int(conn.execute(insert(runs).values(
+            if claimed_by is not None:
+                status = "running"
+                claim = {"claimed_by": claimed_by, "heartbeat_at": db_clock(conn), "started_at": now_iso()}
+            run_id = int(conn.execute(insert(runs).values(**claim,
                 kind=kind, roster_id=roster_id, status=status, created_at=now_iso(),
                 mapping_name=mapping_name, mapping_version=mapping_version,
                 window_from=window[0] if window else None, window_to=window[1] if window else None,
@@ -83,7 +115,9 @@ class RunQueries(Gateway):
         with self.engine.connect() as conn:
             return [self._run_from_row(r) for r in conn.execute(q)]
 
-    def set_run_status(self, run_id: int, status: RunStatus, *, error: str | None = None) -> None:
+    def set_run_status(self, run_id: int, status: RunStatus, *, error: str | None = None,
+                       worker: str | None = None) -> bool:
+        """Set a run's status; with ``worker``, only while that worker holds it (False when it does not)."""
         values: dict[str, Any] = {"status": status}
         if status == "running":
             values["started_at"] = now_iso()
@@ -92,7 +126,87 @@ class RunQueries(Gateway):
         if error is not None:
             values["error"] = error
         with self._tx() as conn:
-            conn.execute(update(runs).where(runs.c.id == run_id).values(**values))
+            return bool(conn.execute(self._held(run_id, worker).values(**values)).rowcount)
+
+    @staticmethod
+    def _held(run_id: int, worker: str | None) -> Any:
+        """UPDATE of one run, restricted to the worker's claim when one is named."""
+        stmt = update(runs).where(runs.c.id == run_id)
+        if worker is not None:
+            stmt = stmt.where(runs.c.claimed_by == worker, runs.c.status == "running")
+        return stmt
+
+    def claim_run(self, worker: str, run_id: int | None = None) -> int | None:
+        """Claim one queued run (``run_id``, or the oldest) for ``worker``: mark it running and held by it.
+        Exactly one worker wins a run, whichever process it lives in; None when there is nothing to claim.
+        PostgreSQL: the candidate row is locked with SELECT ... FOR UPDATE SKIP LOCKED, so workers never wait
+        on each other; SQLite: one UPDATE whose ``status = 'queued'`` condition is the claim (a SELECT first
+        would make the transaction a reader that cannot become the writer once another claim has committed)."""
+        pick = select(runs.c.id).where(runs.c.status == "queued").order_by(runs.c.id).limit(1)
+        if run_id is not None:
+            pick = pick.where(runs.c.id == run_id)
+        if not self._any(pick):
+            return None
+        with self._tx() as conn:
+            if conn.dialect.name == "postgresql":
+                found = conn.execute(pick.with_for_update(skip_locked=True)).scalar()
+                if found is None:
+                    return None
+                target: Any = runs.c.id == found
+            else:
+                target = runs.c.id == pick.scalar_subquery()
+            claimed = conn.execute(update(runs).where(target, runs.c.status == "queued").values(
+                status="running", claimed_by=worker, heartbeat_at=db_clock(conn), started_at=now_iso(),
+                finished_at=None, error=None).returning(runs.c.id)).scalar()
+        return None if claimed is None else int(claimed)
+
+    def _any(self, query: Any) -> bool:
+        """Whether ``query`` finds a row, read outside any write: every server polls the queue every second,
+        and on SQLite an UPDATE takes the database's one write lock even when it changes nothing."""
+        with self.engine.connect() as conn:
+            return conn.execute(query).first() is not None
+
+    def heartbeat(self, worker: str, run_ids: Sequence[int]) -> list[int]:
+        """Record that ``worker`` is alive and working on ``run_ids``; the ids it still holds."""
+        if not run_ids:
+            return []
+        with self._tx() as conn:
+            held = conn.execute(update(runs).where(
+                runs.c.id.in_(list(run_ids)), runs.c.claimed_by == worker, runs.c.status == "running",
+            ).values(heartbeat_at=db_clock(conn)).returning(runs.c.id)).scalars().all()
+        return sorted(int(i) for i in held)
+
+    def reap_stale_runs(self, stale_after: float) -> list[int]:
+        """Mark interrupted every running run whose worker has not beaten for ``stale_after`` seconds (by the
+        database clock), or that no worker holds (left by a version without heartbeats); their ids."""
+        if not self._any(select(runs.c.id).where(runs.c.status == "running").limit(1)):
+            return []
+        with self._tx() as conn:
+            if conn.dialect.name == "postgresql":
+                # a worker frozen inside its own write holds that run's row lock: do not wait on it for ever
+                conn.exec_driver_sql("SET LOCAL lock_timeout = '5s'")
+            stale = or_(runs.c.heartbeat_at.is_(None), runs.c.claimed_by.is_(None),
+                        runs.c.heartbeat_at < db_clock(conn) - float(stale_after))
+            ids = conn.execute(update(runs).where(runs.c.status == "running", stale).values(
+                status="interrupted", finished_at=now_iso(), error=INTERRUPTED,
+            ).returning(runs.c.id)).scalars().all()
+        return sorted(int(i) for i in ids)
+
+    def running_workers(self) -> set[str]:
+        """The workers holding running runs."""
+        with self.engine.connect() as conn:
+            return {w for w in conn.execute(select(runs.c.claimed_by).where(
+                runs.c.status == "running", runs.c.claimed_by.is_not(None)).distinct()).scalars()}
+
+    def release_runs(self, *workers: str) -> list[int]:
+        """Mark interrupted the runs these workers still hold (stopping, or known dead); their ids."""
+        if not workers:
+            return []
+        with self._tx() as conn:
+            ids = conn.execute(update(runs).where(
+                runs.c.claimed_by.in_(workers), runs.c.status == "running",
+            ).values(status="interrupted", finished_at=now_iso(), error=INTERRUPTED).returning(runs.c.id)).scalars().all()
+        return sorted(int(i) for i in ids)
 
     def set_run_progress(self, run_id: int, done: int, total: int | None = None) -> None:
         values: dict[str, Any] = {"progress_done": done}
@@ -102,11 +216,13 @@ class RunQueries(Gateway):
             conn.execute(update(runs).where(runs.c.id == run_id).values(**values))
 
     def finish_run(self, run_id: int, result: Mapping[str, Any], *, seconds: float,
-                   status: RunStatus = "done") -> None:
+                   status: RunStatus = "done", worker: str | None = None) -> None:
+        """Store a run's result; with ``worker``, only while it holds the run (RunClaimLost otherwise)."""
         with self._tx() as conn:
-            conn.execute(update(runs).where(runs.c.id == run_id).values(
+            if not conn.execute(self._held(run_id, worker).values(
                 status=status, result=json.dumps(dict(result)), seconds=seconds, finished_at=now_iso(),
-            ))
+            )).rowcount and worker is not None:
+                raise RunClaimLost(f"Run {run_id} is no longer held by {worker}.")
 
     def update_run_params(self, run_id: int, params: Mapping[str, Any], *, status: RunStatus) -> None:
         """Change a run's parameters (extending B) and its status, keeping its stored replicates."""
@@ -126,22 +242,13 @@ class RunQueries(Gateway):
         with self.engine.connect() as conn:
             return bool(conn.execute(select(runs.c.cancel_requested).where(runs.c.id == run_id)).scalar())
 
-    def mark_interrupted(self) -> list[int]:
-        """Mark every run left queued or running (by a crash or a stop) as interrupted."""
-        with self._tx() as conn:
-            ids = [r[0] for r in conn.execute(
-                select(runs.c.id).where(runs.c.status.in_(("queued", "running"))))]
-            if ids:
-                conn.execute(update(runs).where(runs.c.id.in_(ids)).values(
-                    status="interrupted", finished_at=now_iso(),
-                    error="The server stopped while this run was in progress; start it again to finish it.",
-                ))
-        return ids
-
     def append_replicates(self, run_id: int, values: np.ndarray, failures: Sequence[str] | None = None,
-                          standard_errors: np.ndarray | None = None) -> None:
+                          standard_errors: np.ndarray | None = None, *,
+                          worker: str | None = None, progress: int | None = None) -> None:
         """Append a block of replicate estimates (float64), their failure reasons and (where the statistic has
-        one) their standard errors to a run, compressed."""
+        one) their standard errors to a run, compressed. With ``worker`` the block is written only while that
+        worker holds the run (RunClaimLost otherwise: nothing is written), in one transaction with its
+        ``progress`` and a heartbeat."""
         data = zlib.compress(np.ascontiguousarray(values, dtype="<f8").tobytes(), 6)
         errors = None
         if standard_errors is not None:
@@ -153,6 +260,13 @@ class RunQueries(Gateway):
             raise StoreError("one failure reason per replicate is needed")
         packed = zlib.compress("\n".join(str(r) for r in reasons).encode(), 6)
         with self._tx() as conn:
+            if worker is not None:
+                values_now: dict[str, Any] = {"heartbeat_at": db_clock(conn)}
+                if progress is not None:
+                    values_now["progress_done"] = progress
+                # first, so that on PostgreSQL the row lock is held before any replicate is written
+                if not conn.execute(self._held(run_id, worker).values(**values_now)).rowcount:
+                    raise RunClaimLost(f"Run {run_id} is no longer held by {worker}.")
             seq = conn.execute(
                 select(func.coalesce(func.max(run_replicates.c.seq), -1)).where(run_replicates.c.run_id == run_id)
             ).scalar_one() + 1

@@ -25,7 +25,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0011"
+HEAD_REVISION = "0012"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -193,6 +193,10 @@ runs = Table(
     Column("seconds", Float),
     Column("author", String),
     Column("roster_version", Integer),  # the roster version the run read (NULL: made before versions = 1)
+    # jobs across server processes: the worker holding a running run, and the database clock (seconds since
+    # 1970) of its last heartbeat; a stale heartbeat means the worker died (app/analysis/jobs.py)
+    Column("claimed_by", String),
+    Column("heartbeat_at", Float),
     sqlite_autoincrement=True,  # ids a URL, a run or an export names are never handed out again
 )
 

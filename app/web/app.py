@@ -15,6 +15,7 @@ from app import __version__
 from app.config import Settings
 from app.store import Store
 from app.web import (
+    accounts,
     auth,
     briefing,
     coverage,
@@ -62,7 +63,7 @@ def plotly_js_version() -> str:
 
 def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bool = True) -> FastAPI:
     """Build the app over ``store`` (opened from ``settings.db_url`` when not given)."""
-    from app.analysis.jobs import JobRunner
+    from app.analysis.jobs import JobRunner, reap_lost_runs
 
     store = store or Store(settings.db_url)
 
@@ -81,9 +82,10 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
     app.state.settings = settings
     app.state.store = store
     app.state.uploads = UploadStash()
-    app.state.jobs = JobRunner(store, workers=settings.job_workers)
-    interrupted = store.mark_interrupted()
-    app.state.interrupted_at_start = interrupted
+    app.state.jobs = JobRunner(store, workers=settings.job_workers, heartbeat=settings.job_heartbeat,
+                               stale_after=settings.job_stale_after)
+    # runs whose worker (in this or another server process) is gone; queued runs wait for a worker
+    app.state.interrupted_at_start = reap_lost_runs(store, settings.job_stale_after)
 
     # added first, so it runs inside the Host/Origin checks of SecurityMiddleware
     app.add_middleware(auth.AuthMiddleware, store=store)
@@ -108,8 +110,8 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
         # async: answered on the event loop without waiting for a worker thread (a one-row read)
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (auth, rosters, roster_upload, roster_versions, reasons, reason_rules, coverage, departures, trend,
-                   resampling, sectors, briefing, universe):
+    for module in (auth, accounts, rosters, roster_upload, roster_versions, reasons, reason_rules, coverage,
+                   departures, trend, resampling, sectors, briefing, universe):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)

@@ -6,7 +6,8 @@ and each request is checked against the role it needs:
 
 * viewer: read every page and API, download exports;
 * analyst: also import, map, set windows, start, stop and extend runs (every other POST);
-* admin: also delete (any path ending in ``/delete``) and read the audit trail.
+* admin: also delete (any path ending in ``/delete``), read the audit trail and manage accounts
+  (``/accounts``, :mod:`app.web.accounts`).
 
 Plain ASGI middleware, like :mod:`app.web.security`, so that no route can be forgotten: the role a request
 needs follows from its method and path, and ``tests/test_roles.py`` walks the whole route table.
@@ -44,7 +45,7 @@ SESSION_SECONDS = 12 * 3600
 SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
 PUBLIC_PREFIXES = ("/static/", "/vendor/")
 PUBLIC_PATHS = frozenset({"/login", "/api/health"})
-ADMIN_PATH = re.compile(r"(/delete$)|(^/(api/)?audit$)")
+ADMIN_PATH = re.compile(r"(/delete$)|(^/(api/)?audit$)|(^/accounts(/|$))")
 #: how long the "is any account there?" answer is reused (team mode switches on within this time)
 _ACCOUNTS_TTL = 2.0
 

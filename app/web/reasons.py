@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 from fastapi import APIRouter, Request
@@ -14,7 +14,7 @@ from app.analysis.inputs import load_input
 from app.analysis.mapping_files import export_mapping_csv, import_mapping_file
 from app.intake.codes import code_key
 from app.intake.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
-from app.store import MAX_ID, MappingVersion, Roster, Store, StoreError
+from app.store import MAX_ID, MappingConflict, MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES, Category
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.forms import Upload, read_form
@@ -206,24 +206,67 @@ def _form_entries(form: Any) -> tuple[dict[str, str], dict[str, str]]:
     return categories, labels
 
 
+#: a save based on a version that is no longer the newest (two analysts editing one mapping at once)
+CONFLICT: dict[int | str, dict[str, Any]] = {409: {
+    "description": "A newer version of the mapping was saved since the form was filled: nothing was saved. "
+                   "HTML: the page again with the analyst's own choices, based on the newest version, and the "
+                   "two versions compared; JSON: {\"error\": ..., \"diff\": the comparison's address}",
+    "content": {"text/html": {"schema": {"type": "string"}},
+                "application/json": {"schema": {"type": "object", "required": ["error", "diff"], "properties": {
+                    "error": {"type": "string"}, "diff": {"type": "string"}}}}}}}
+
+
+def _based_on(form: dict[str, str | Upload], name: str) -> int | None:
+    """The version the form was filled from, when it is saved under the same mapping name (a save under
+    another name is a deliberate "save as" and is not checked)."""
+    raw = str(form.get("based_on") or "").strip()
+    if not raw or str(form.get("based_on_mapping") or "") != name:
+        return None
+    if not raw.isdigit() or int(raw) > MAX_ID:
+        raise BadRequest(f"based_on must be a mapping version number (0 or more); got {raw!r}. Nothing was saved.")
+    return int(raw)
+
+
+def _conflict(request: Request, store: Store, roster_id: int, exc: MappingConflict, categories: dict[str, str],
+              labels: dict[str, str]) -> Response:
+    """409: the analyst's edit is not lost. The page comes back with their own choices in the form (now based
+    on the newest version, so saving again is a deliberate decision) and the versions compared."""
+    diff_url = str(request.url_for("reasons_page", roster_id=roster_id).include_query_params(
+        a=max(exc.based_on, 1), b=exc.latest))
+    if "application/json" in request.headers.get("accept", ""):
+        return JSONResponse({"error": str(exc), "diff": diff_url}, status_code=409)
+    current = store.settings(roster_id).mapping_name == exc.name and exc.based_on >= 1
+    page = reasons_data(store, roster_id, compare=(exc.based_on, exc.latest) if current else None,
+                        error=f"{exc} Your choices are still in the form below.")
+    page = replace(page, codes=[replace(c, category=categories.get(c.code), label=labels.get(c.code, ""))
+                                for c in page.codes])
+    return render(request, "reasons.html", page, roster=page.roster, active="reasons", status=409,
+                  diff_url=diff_url)
+
+
 @router.post("/rosters/{roster_id}/reasons", name="reasons_save", status_code=303,
-             response_class=RedirectResponse, responses=redirect("the Reason codes page", page_errors(400, 404)),
+             response_class=RedirectResponse,
+             responses=redirect("the Reason codes page", page_errors(400, 404), CONFLICT),
              openapi_extra=form_body({
                  "mapping_name": {"type": "string", "description": "save as this mapping (default: the current)"},
                  "author": {"type": "string", "maxLength": 80}, "note": {"type": "string", "maxLength": 500},
+                 "based_on_mapping": {"type": "string", "description": "the mapping the form was filled from ..."},
+                 "based_on": {"type": "integer", "minimum": 0, "maximum": MAX_ID,
+                              "description": "... and its version: saving it under that name when a newer "
+                                             "version exists answers 409 and saves nothing"},
              }, pattern_properties={
                  "^code-[0-9]+$": {"type": "string", "description": "a reason code ..."},
                  "^cat-[0-9]+$": {"type": "string", "enum": ["", *CATEGORIES],
                                   "description": "... its category (same number; empty: unmapped)"},
                  "^label-[0-9]+$": {"type": "string", "description": "... and its label"},
              }))
-async def reasons_save(request: Request, roster_id: int) -> RedirectResponse:
+async def reasons_save(request: Request, roster_id: int) -> Response:
     """Save the categories in the form as the next version; codes of other rosters are carried over."""
     form = await read_form(request)
     return await run_in_threadpool(_reasons_save, request, roster_id, form)
 
 
-def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
+def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload]) -> Response:
     store = app_store(request)
     page = reasons_data(store, roster_id)
     categories, labels = _form_entries(form)
@@ -243,7 +286,12 @@ def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload
     author = str(form.get("author") or "").strip() or "analyst"
     # the version's classification rules stay with it (they are edited in their own table)
     rules = page.mapping.rules if page.mapping and name == page.mapping.name else ()
-    store.save_mapping_version(name, categories, labels, author=author, note=note, rules=rules)
+    based_on = _based_on(form, name)
+    try:
+        store.save_mapping_version(name, categories, labels, author=author, note=note, rules=rules,
+                                   based_on=based_on)
+    except MappingConflict as exc:
+        return _conflict(request, store, page.roster.id, exc, categories, labels)
     store.update_settings(page.roster.id, mapping_name=name)
     url = request.url_for("reasons_page", roster_id=page.roster.id).include_query_params(saved=1)
     return RedirectResponse(url, status_code=303)

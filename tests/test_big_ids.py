@@ -1,0 +1,49 @@
+"""Ids beyond what a store can hold are unknown (404), on every backend: PostgreSQL's INTEGER id columns are
+32-bit, and its driver refuses a larger number with a DataError (a 500) if one reaches it. The routes are
+read from the app's route table, so a new route with an id in its path is checked too."""
+
+from __future__ import annotations
+
+import re
+from typing import Any
+
+import pytest
+
+from app.store import MAX_ID
+from app.web.app import create_app
+
+#: just past a 32-bit signed integer (PostgreSQL's INTEGER, the limit the store guards: MAX_ID), and far past it
+BIG = (2**31, 2**40)
+
+
+def id_routes() -> list[str]:
+    """GET paths with a roster or run id, from the route table (tests/test_hardening.py walks it the same way)."""
+    from test_hardening import route_names
+
+    from app.config import Settings
+
+    app = create_app(Settings(db_url="sqlite://"), start_jobs=False)
+    paths = sorted({path for path, methods in route_names(app).values()
+                    if "GET" in methods and re.search(r"\{(roster|run)_id\}", path)})
+    assert len(paths) >= 30, paths  # the pages, their JSON twins and downloads (DEVELOPERS.md lists them)
+    return paths
+
+
+def test_the_guard_is_the_32_bit_limit() -> None:
+    assert MAX_ID == 2**31 - 1
+
+
+@pytest.mark.parametrize("path", id_routes())
+def test_unknown_big_ids_are_404(client: Any, path: str) -> None:
+    for big in BIG:
+        url = re.sub(r"\{(roster|run)_id\}", str(big), path).replace("{chart}", "trend").replace("{fmt}", "svg")
+        r = client.get(url, headers={"accept": "application/json"})
+        assert r.status_code == 404, (url, r.status_code, r.text[:200])
+
+
+def test_big_version_numbers_are_unknown_too(client: Any) -> None:
+    for big in BIG:
+        assert client.get(f"/mappings/demo standard.csv?version={big}").status_code == 404
+        r = client.get(f"/rosters/1/departures?mapping=demo standard:{big}")
+        assert r.status_code in (400, 404), r.text[:200]
+        assert client.get(f"/rosters/1/reasons?a=1&b={big}").status_code == 404
