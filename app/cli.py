@@ -336,7 +336,7 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
                                 spline_df=args.spline_df, periods=args.periods, stratify=args.stratify)
 
     def bound(v: float | None) -> str:
-        return "n/a" if v is None else f"{v:.4f}"
+        return "n/a" if v is None else f"{v:.3f}"  # three decimals, as every page and export
 
     _emit(args, payload, lambda p: (
         f"Bootstrap ({p['unit']} resampling{', firms within sector' if p.get('stratified') else ''}, "

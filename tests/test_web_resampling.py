@@ -39,7 +39,8 @@ def test_start_runs_and_the_run_page_shows_intervals(client: Any, demo_store: St
     direct = bootstrap_trend(cells, design_matrix(cells.groups, "linear", window_centre(inp.window)),
                              unit="firm", resamples=300, seed=2024)
     assert page.rows[2]["interval"] == pytest.approx(list(direct.intervals["bca"]), rel=1e-12)
-    assert f"{direct.intervals['bca'][0]:.4f}" in response.text
+    # three decimals: the one odds-ratio convention of pages, sentences and exports (issue 15); was four
+    assert f"{direct.intervals['bca'][0]:.3f}" in response.text
     assert page.comparison and "No finished departure-resampling run" in page.comparison
     spec = figure_handoff(response.text, "fig-bootstrap")
     assert spec["figure"]["data"]
