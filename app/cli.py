@@ -254,7 +254,7 @@ def cmd_coverage(args: argparse.Namespace) -> int:
         [f"{'year':>6} {'all':>5} {'forced':>7} {'volunt.':>7} {'excl.':>6} {'unmap.':>6}"]
         + [f"{y['year']:>6} {y['departures']:>5} {y['forced']:>7} {y['voluntary']:>7} {y['excluded']:>6} "
            f"{y['unmapped']:>6}" for y in p["years"]]
-        + [f"Suggested window: {p['suggested_window'][0]}-{p['suggested_window'][1]} ({p['rule']})"]))
+        + [f"Suggested window: {p['suggested_window'][0]}\u2013{p['suggested_window'][1]} ({p['rule']})"]))
     return 0
 
 
@@ -311,7 +311,7 @@ def cmd_universe_import(args: argparse.Namespace) -> int:
                              sheet=args.sheet, encoding=args.encoding)
     _emit(args, report.as_dict(), lambda p: (
         f"Imported universe {p['universe']} ({p['shape'].replace('_', '-')} rows): {p['firms']} firms, "
-        f"{p['firm_years']} firm-years, {p['years'][0]}-{p['years'][1]}; {p['rejected']} rows rejected."))
+        f"{p['firm_years']} firm-years, {p['years'][0]}\u2013{p['years'][1]}; {p['rejected']} rows rejected."))
     return 0
 
 
@@ -321,7 +321,7 @@ def cmd_universe_derive(args: argparse.Namespace) -> int:
     report = derive_universe(_store(args), args.roster)
     _emit(args, report.as_dict(), lambda p: (
         f"Derived universe {p['universe']} from the roster (an approximation): {p['firms']} firms, "
-        f"{p['firm_years']} firm-years, {p['years'][0]}-{p['years'][1]}."))
+        f"{p['firm_years']} firm-years, {p['years'][0]}\u2013{p['years'][1]}."))
     return 0
 
 
