@@ -290,7 +290,7 @@ def cmd_coverage(args: argparse.Namespace) -> int:
         [f"{'year':>6} {'all':>5} {'forced':>7} {'volunt.':>7} {'excl.':>6} {'unmap.':>6}"]
         + [f"{y['year']:>6} {y['departures']:>5} {y['forced']:>7} {y['voluntary']:>7} {y['excluded']:>6} "
            f"{y['unmapped']:>6}" for y in p["years"]]
-        + [f"Suggested window: {p['suggested_window'][0]}-{p['suggested_window'][1]} ({p['rule']})"]))
+        + [f"Suggested window: {p['suggested_window'][0]}\u2013{p['suggested_window'][1]} ({p['rule']})"]))
     return 0
 
 
@@ -358,7 +358,7 @@ def cmd_universe_import(args: argparse.Namespace) -> int:
                              sheet=args.sheet, encoding=args.encoding)
     _emit(args, report.as_dict(), lambda p: (
         f"Imported universe {p['universe']} ({p['shape'].replace('_', '-')} rows): {p['firms']} firms, "
-        f"{p['firm_years']} firm-years, {p['years'][0]}-{p['years'][1]}; {p['rejected']} rows rejected."))
+        f"{p['firm_years']} firm-years, {p['years'][0]}\u2013{p['years'][1]}; {p['rejected']} rows rejected."))
     return 0
 
 
@@ -368,7 +368,7 @@ def cmd_universe_derive(args: argparse.Namespace) -> int:
     report = derive_universe(_store(args), args.roster)
     _emit(args, report.as_dict(), lambda p: (
         f"Derived universe {p['universe']} from the roster (an approximation): {p['firms']} firms, "
-        f"{p['firm_years']} firm-years, {p['years'][0]}-{p['years'][1]}."))
+        f"{p['firm_years']} firm-years, {p['years'][0]}\u2013{p['years'][1]}."))
     return 0
 
 
@@ -383,7 +383,7 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
                                 spline_df=args.spline_df, periods=args.periods, stratify=args.stratify)
 
     def bound(v: float | None) -> str:
-        return "n/a" if v is None else f"{v:.4f}"
+        return "n/a" if v is None else f"{v:.3f}"  # three decimals, as every page and export
 
     _emit(args, payload, lambda p: (
         f"Bootstrap ({p['unit']} resampling{', firms within sector' if p.get('stratified') else ''}, "
@@ -427,7 +427,12 @@ def cmd_export(args: argparse.Namespace) -> int:
 
 # -- parser ------------------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="helmshift", description=__doc__.split("\n")[0])
+    # plain words here: argparse prints the description as it is, so the docstring's markup stays out
+    parser = argparse.ArgumentParser(
+        prog="helmshift", description="Helmshift on the command line: the same functions the dashboard uses.",
+        epilog="Every command takes --db (a database file or SQLAlchemy URL; the HELMSHIFT_DB variable likewise). "
+               "With --json it prints one JSON object. Errors are one sentence on stderr and a non-zero exit "
+               "status. 'helmshift COMMAND --help' lists a command's options and their defaults.")
     parser.add_argument("--version", action="version", version=f"helmshift {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)
 
@@ -438,13 +443,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("serve", help="start the dashboard")
     common(p, json_flag=False)
-    p.add_argument("--host", default="127.0.0.1")
-    p.add_argument("--port", type=int, default=8000)
+    p.add_argument("--host", default="127.0.0.1", help="address to listen on (default: 127.0.0.1, this machine only)")
+    p.add_argument("--port", type=int, default=8000, help="port to listen on (default: 8000)")
     p.add_argument("--demo", action="store_true", help="load the invented demo roster (fresh database)")
     p.set_defaults(func=cmd_serve)
 
     p = sub.add_parser("import", help="import a roster file (CSV or XLSX)")
-    p.add_argument("file")
+    p.add_argument("file", help="the roster file, CSV or XLSX")
     common(p)
     p.add_argument("--name", help="roster name (default: the file name)")
     p.add_argument("--column", action="append", metavar="ROLE=HEADER", help="set a column role explicitly")
@@ -470,18 +475,18 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("mapping", help="import or export a reason-code mapping")
     msub = p.add_subparsers(dest="mapping_command", required=True)
     q = msub.add_parser("import", help="save a CSV (code,category[,label]) as a new mapping version")
-    q.add_argument("file")
-    q.add_argument("--roster", required=True)
-    q.add_argument("--name", required=True)
+    q.add_argument("file", help="mapping CSV with columns code, category and optionally label")
+    q.add_argument("--roster", required=True, help="roster id or name (required)")
+    q.add_argument("--name", required=True, help="mapping name; an existing name gets its next version (required)")
     q.add_argument("--rules", metavar="RULES.csv",
                    help="classification rules (code,field,comparison,value,category) saved with this version")
     common(q)
     q.set_defaults(func=cmd_mapping_import)
     q = msub.add_parser("export", help="write a mapping version as CSV")
     q.add_argument("--roster", help="accepted for symmetry; mappings are shared across rosters")
-    q.add_argument("--name", required=True)
-    q.add_argument("--version", type=int)
-    q.add_argument("--out")
+    q.add_argument("--name", required=True, help="mapping name (required)")
+    q.add_argument("--version", type=int, help="mapping version (default: the newest)")
+    q.add_argument("--out", help="CSV file to write (default: print to standard output)")
     q.add_argument("--rules", action="store_true",
                    help="write the version's classification rules (code,field,comparison,value,category)")
     common(q, json_flag=False)
@@ -491,8 +496,8 @@ def build_parser() -> argparse.ArgumentParser:
     usub = p.add_subparsers(dest="universe_command", required=True)
     q = usub.add_parser("import", help="store a CSV/XLSX of firm-years (firm_id, year) or spans "
                                        "(firm_id, first_year, last_year) for a roster")
-    q.add_argument("file")
-    q.add_argument("--roster", required=True)
+    q.add_argument("file", help="the universe file, CSV or XLSX")
+    q.add_argument("--roster", required=True, help="roster id or name (required)")
     q.add_argument("--column", action="append", metavar="ROLE=HEADER",
                    help="set a column role explicitly (firm_id, year, first_year, last_year)")
     q.add_argument("--sheet", help="XLSX sheet (default: the first)")
@@ -500,29 +505,32 @@ def build_parser() -> argparse.ArgumentParser:
     common(q)
     q.set_defaults(func=cmd_universe_import)
     q = usub.add_parser("derive", help="approximate the universe from the roster (first to last year per firm)")
-    q.add_argument("--roster", required=True)
+    q.add_argument("--roster", required=True, help="roster id or name (required)")
     common(q)
     q.set_defaults(func=cmd_universe_derive)
 
     p = sub.add_parser("coverage", help="departures per year and the suggested window")
-    p.add_argument("--roster", required=True)
-    p.add_argument("--mapping")
+    p.add_argument("--roster", required=True, help="roster id or name (required)")
+    p.add_argument("--mapping", help="mapping NAME or NAME:VERSION (default: the roster's current mapping)")
     p.add_argument("--threshold", type=float, default=0.5, help="share of the median year (default 0.5)")
     common(p)
     p.set_defaults(func=cmd_coverage)
 
     p = sub.add_parser("fit", help="fit the trend of the forced share")
-    p.add_argument("--roster", required=True)
-    p.add_argument("--mapping")
-    p.add_argument("--years", metavar="FROM-TO")
-    p.add_argument("--by", choices=["sector"])
+    p.add_argument("--roster", required=True, help="roster id or name (required)")
+    p.add_argument("--mapping", help="mapping NAME or NAME:VERSION (default: the roster's current mapping)")
+    p.add_argument("--years", metavar="FROM-TO", help="analysis window, e.g. 1998-2022 (default: the roster's saved window, else the suggested one)")
+    p.add_argument("--by", choices=["sector"], help="sector: one trend per sector and the test of equal trends "
+                                                    "(default: one trend for all)")
     p.add_argument("--model", choices=["linear", "sector", "spline", "adjusted"], default="linear",
-                   help="adjusted: departure-level logit on year + the --adjust fields, firm-clustered SEs")
+                   help="linear: straight trend; sector: adjusted for sector mix; spline: straight trend plus a "
+                        "test for a bend; adjusted: departure-level logit on year + the --adjust fields with "
+                        "firm-clustered standard errors (default: linear)")
     p.add_argument("--adjust", metavar="age,tenure,sector", default="age,tenure,sector",
-                   help="what the adjusted model adjusts for (--model adjusted; default all three; '' for none)")
+                   help="what the adjusted model adjusts for (--model adjusted; '' for none; default: all three)")
     p.add_argument("--resamples", type=int, metavar="B",
-                   help="--model adjusted: also the firm bootstrap with B resamples (BCa in conf_int.bootstrap)")
-    p.add_argument("--seed", type=int, default=20261201, help="seed of the firm bootstrap (default 20261201)")
+                   help="--model adjusted: also the firm bootstrap with B resamples (default: none)")
+    p.add_argument("--seed", type=int, default=20261201, help="seed of that firm bootstrap (default: 20261201)")
     p.add_argument("--spline-df", type=int, choices=range(2, 7), default=3, metavar="2..6",
                    help="degrees of freedom of the spline in the bend test (--model spline; default 3)")
     p.add_argument("--quasi", action="store_true",
@@ -541,14 +549,19 @@ def build_parser() -> argparse.ArgumentParser:
                        formatter_class=argparse.RawDescriptionHelpFormatter,
                        epilog="statistics (--statistic):\n" + "\n".join(f"  {name:<18} {text}"
                                                                      for name, text in STATISTIC_HELP.items()))
-    p.add_argument("--roster", required=True)
-    p.add_argument("--mapping")
-    p.add_argument("--years", metavar="FROM-TO")
-    p.add_argument("--unit", choices=["firm", "departure"], default="firm")
-    p.add_argument("--resamples", type=int, default=2000)
-    p.add_argument("--seed", type=int, default=20261201)
+    p.add_argument("--roster", required=True, help="roster id or name (required)")
+    p.add_argument("--mapping", help="mapping NAME or NAME:VERSION (default: the roster's current mapping)")
+    p.add_argument("--years", metavar="FROM-TO", help="analysis window, e.g. 1998-2022 (default: the roster's saved window, else the suggested one)")
+    p.add_argument("--unit", choices=["firm", "departure"], default="firm",
+                   help="resample whole firms (keeps each firm's departures together) or single departures "
+                        "(default: firm)")
+    p.add_argument("--resamples", type=int, default=2000,
+                   help="number of resamples B; 10000 for figures in a board paper (default: 2000)")
+    p.add_argument("--seed", type=int, default=20261201,
+                   help="random seed; the same seed and inputs give the same numbers (default: 20261201)")
     p.add_argument("--model", choices=["linear", "sector"], default="linear",
-                   help="for slope and decade_odds_ratio: the straight trend or the trend adjusted for sector")
+                   help="for slope and decade_odds_ratio: the straight trend or the trend adjusted for sector "
+                        "(default: linear)")
     p.add_argument("--statistic", choices=list(STATISTICS), default="slope", metavar="NAME",
                    help="what to bootstrap: " + ", ".join(STATISTICS) + " (default slope; listed below)")
     p.add_argument("--sector", help="for sector_slope: the sector whose own trend is bootstrapped")
@@ -558,42 +571,44 @@ def build_parser() -> argparse.ArgumentParser:
                    help="for period_difference: the two periods (default: the window's last third against the rest)")
     p.add_argument("--stratify", choices=["none", "sector"], default="none",
                    help="sector: draw firms within their sector, so every resample keeps each sector's number "
-                        "of firms (unit firm only)")
+                        "of firms (unit firm only; default: none)")
     common(p)
     p.set_defaults(func=cmd_bootstrap)
 
     p = sub.add_parser("run", help="stored runs: export a replication pack")
     rsub = p.add_subparsers(dest="run_command", required=True)
     q = rsub.add_parser("export", help="write a run's replication pack (zip) for recomputing it without Helmshift")
-    q.add_argument("run_id", type=int, metavar="RUN_ID")
-    q.add_argument("--out", required=True, metavar="PACK.zip")
+    q.add_argument("run_id", type=int, metavar="RUN_ID", help="the run's id, as in its page's address /runs/ID")
+    q.add_argument("--out", required=True, metavar="PACK.zip", help="zip file to write (required)")
     q.add_argument("--records", action="store_true",
                    help="include records.csv, the departures behind the counts (personal data: keep it local)")
     common(q)
     q.set_defaults(func=cmd_run_export)
 
     p = sub.add_parser("robustness", help="the trend under several mappings and variants")
-    p.add_argument("--roster", required=True)
+    p.add_argument("--roster", required=True, help="roster id or name (required)")
     p.add_argument("--mapping", action="append", help="a mapping (repeat for several; NAME or NAME:VERSION)")
     p.add_argument("--vary", action="append", metavar="CODE", help="move CODE to each other category")
     p.add_argument("--preset", action="store_true",
                    help="also read the codes with the academic preset (retirement below 60 counts as forced, "
-                        "Parrino 1997)")
-    p.add_argument("--years", metavar="FROM-TO")
+                        "Parrino 1997; default: off)")
+    p.add_argument("--years", metavar="FROM-TO", help="analysis window, e.g. 1998-2022 (default: the roster's saved window, else the suggested one)")
     common(p)
     p.set_defaults(func=cmd_robustness)
 
-    p = sub.add_parser("export", help="export charts, a deck or the one-page brief")
-    p.add_argument("--roster", required=True)
-    p.add_argument("--mapping")
-    p.add_argument("--years", metavar="FROM-TO")
-    p.add_argument("--run", type=int, help="a stored bootstrap run to include")
+    p = sub.add_parser("export", help="export charts, a deck or the brief")
+    p.add_argument("--roster", required=True, help="roster id or name (required)")
+    p.add_argument("--mapping", help="mapping NAME or NAME:VERSION (default: the roster's current mapping)")
+    p.add_argument("--years", metavar="FROM-TO", help="analysis window, e.g. 1998-2022 (default: the roster's saved window, else the suggested one)")
+    p.add_argument("--run", type=int, help="a stored bootstrap run to include (default: the newest finished run "
+                                           "that matches the mapping and window)")
     p.add_argument("--format", required=True, choices=["png", "svg", "pdf", "pptx", "brief"],
-                   help="png, svg or pdf: one chart; pptx: the slide deck; brief: the one-page PDF brief")
+                   help="png, svg or pdf: one chart; pptx: the slide deck; brief: the PDF brief (required)")
     p.add_argument("--chart", help="png/svg/pdf: coverage, trend, bootstrap, sectors or robustness (default: "
                                    "trend); pptx: the findings as a comma list, every one shown or an error "
-                                   "(default: every finding that can be shown)")
-    p.add_argument("--out", required=True, help="file to write (written whole or not at all)")
+                                   "(default: every finding that can be shown); brief: the same comma list "
+                                   "(default: trend and bootstrap, or coverage without a run)")
+    p.add_argument("--out", required=True, help="file to write, whole or not at all (required)")
     p.add_argument("--title", help="title of the brief or deck (default: the one saved on the Briefing page, "
                                    "else 'Forced chief-executive departures: ROSTER')")
     p.add_argument("--author", help="author named on the title slide and the brief (default: the saved one, "

@@ -217,7 +217,7 @@ def test_an_analysts_week_in_the_browser(browser_page: tuple[Any, Watch, Any], t
     page.fill("#seed", "20261201")
     shots.shoot(page, "resampling")
     page.click("button:has-text('Start run')")
-    page.wait_for_selector("h1:has-text('Bootstrap run')")
+    page.wait_for_selector("h1:has-text('run ')")  # "Bootstrap N run ID": numbered per roster, id beside it
     # 20,000 firm resamples take a few seconds: the bar is there before the run ends
     assert page.locator("#run-progress progress").count() == 1
     shots.shoot(page, "run-progress")

@@ -186,8 +186,7 @@ def api_state(server: Any, run_ids: list[int]) -> dict[str, Any]:
         assert r.status_code == 200, (path, r.status_code)
         return r.json()
 
-    runs = get("/api/rosters/1/runs")
-    runs.pop("default_seed")  # a fresh random suggestion on every request
+    runs = get("/api/rosters/1/runs")  # default_seed included: derived from the roster, so it survives a restart
     return {
         "rosters": get("/api/rosters"), "roster": get("/api/rosters/1"), "reasons": get("/api/rosters/1/reasons"),
         "coverage": get("/api/rosters/1/coverage"), "runs": runs,

@@ -182,7 +182,9 @@ def test_briefing_page_saves_the_settings_and_refuses_bad_ones(client: Any, demo
     assert demo_store.briefing_settings(ROSTER).date == "2026-12-03"  # nothing half-saved
     # bootstrap ticked without a run: the page says so and offers no deck that would leave it out
     blocked = client.get(f"/rosters/{ROSTER}/briefing?chart=trend&chart=bootstrap")
-    assert 'id="download-deck"' not in blocked.text and "the deck carries every ticked finding" in blocked.text.lower()
+    # the brief follows the ticked findings too (issue 15), so it waits with the deck
+    assert 'id="download-deck"' not in blocked.text and 'id="download-brief"' not in blocked.text
+    assert "the deck and the brief carry every ticked finding" in blocked.text.lower()
     refused = client.get(f"/rosters/{ROSTER}/briefing/deck.pptx?chart=trend&chart=bootstrap")
     assert refused.status_code == 400 and "bootstrap finding was ticked" in refused.text
 

@@ -194,12 +194,12 @@ def test_decomposition_sentence_blames_rising_voluntary_exits() -> None:
     assert forced.conf_int["profile"][0] < 1.0 < forced.conf_int["profile"][1]
     assert voluntary.rate_ratio == pytest.approx(1.05, abs=0.01)
     sentence = decomposition_sentence((0.9, 0.95), forced, voluntary)
-    assert sentence.startswith("Across 2000-2019, the forced share fell because voluntary exits rose, ")
+    assert sentence.startswith("Across 2000\u20132019, the forced share fell because voluntary exits rose, ")
     assert f"{(voluntary.rate_ratio - 1) * 100:.1f}% a year, while the forced rate was flat" in sentence
     # the other readings of the same three intervals
     assert "showed no clear change" in decomposition_sentence((0.9, 1.1), forced, voluntary)
     assert "although neither rate" in decomposition_sentence((1.01, 1.2), forced, voluntary)
-    assert decomposition_sentence(None, forced, voluntary).startswith("Across 2000-2019, the forced share showed")
+    assert decomposition_sentence(None, forced, voluntary).startswith("Across 2000\u20132019, the forced share showed")
 
 
 def test_rate_trend_json_has_no_non_finite_numbers() -> None:

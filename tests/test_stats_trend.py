@@ -338,7 +338,7 @@ def test_sentence_rose_and_dict_is_json() -> None:
     assert low > 1
     sentence = trend_sentence(fit)
     expected = f"rose by about {(fit.odds_ratio - 1) * 100:.1f}% a year (95% profile interval"
-    assert sentence.startswith("Across 2000-2014, the odds that a departure was forced " + expected)
+    assert sentence.startswith("Across 2000\u20132014, the odds that a departure was forced " + expected)
     assert f"{(low - 1) * 100:.1f}% to {(high - 1) * 100:.1f}%)." in sentence
     payload = json.loads(json.dumps(fit_to_dict(fit), allow_nan=False))
     for key in ("odds_ratio", "conf_int", "window", "departures", "forced", "dispersion"):
@@ -415,7 +415,7 @@ def test_years_with_zero_forced_or_zero_voluntary_are_fine() -> None:
 
 
 def test_no_forced_departures_raises() -> None:
-    with pytest.raises(TrendError, match="no forced departures in 2001-2004"):
+    with pytest.raises(TrendError, match="no forced departures in 2001\u20132004"):
         fit_trend(cells_from_counts([2001, 2002, 2004], [0, 0, 0], [3, 4, 5], window=(2001, 2004)))
 
 

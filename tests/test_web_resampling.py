@@ -39,7 +39,8 @@ def test_start_runs_and_the_run_page_shows_intervals(client: Any, demo_store: St
     direct = bootstrap_trend(cells, design_matrix(cells.groups, "linear", window_centre(inp.window)),
                              unit="firm", resamples=300, seed=2024)
     assert page.rows[2]["interval"] == pytest.approx(list(direct.intervals["bca"]), rel=1e-12)
-    assert f"{direct.intervals['bca'][0]:.4f}" in response.text
+    # three decimals: the one odds-ratio convention of pages, sentences and exports (issue 15); was four
+    assert f"{direct.intervals['bca'][0]:.3f}" in response.text
     assert page.comparison and "No finished departure-resampling run" in page.comparison
     spec = figure_handoff(response.text, "fig-bootstrap")
     assert spec["figure"]["data"]
@@ -152,7 +153,7 @@ def test_a_run_of_another_statistic_within_sectors_is_stored_and_shown(client: A
     for method in ("percentile", "bca", "normal", "studentized"):
         assert run.result["conf_int"][method] == pytest.approx(list(direct.intervals[method]), rel=1e-12)
     page = client.get(f"/runs/{run_id}?method=studentized")
-    assert page.status_code == 200 and "difference in the forced share, 2011-2022 minus 1998-2010" in page.text
+    assert page.status_code == 200 and "difference in the forced share, 2011\u20132022 minus 1998\u20132010" in page.text
     assert "within sector" in page.text and "Wald" not in [r["method"] for r in page.context["page"].rows]
     listing = client.get(f"/rosters/{ROSTER}/resampling").text
     assert 'value="heterogeneity"' in listing and 'name="stratify"' in listing

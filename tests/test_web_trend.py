@@ -39,7 +39,9 @@ def test_page_context_and_html(client: Any, demo_store: Store, standard_counts: 
     assert fit["conf_int"]["wald"] == pytest.approx(list(engine.conf_int["wald"]), rel=1e-12)
     assert fit["conf_int"]["profile"] == pytest.approx(list(engine.conf_int["profile"]), rel=1e-12)
     assert page.sentence and page.sentence in response.text
-    assert f"{fit['odds_ratio']:.4f}" in response.text
+    # three decimals: the one odds-ratio convention of pages, sentences and exports (issue 15); was four
+    assert f"{fit['odds_ratio']:.3f}" in response.text
+    assert f"{fit['odds_ratio']:.4f}" not in response.text
     assert 'data-figure-for="fig-trend"' in response.text
 
 

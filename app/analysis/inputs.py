@@ -147,7 +147,7 @@ def load_input(
     if window is not None:
         first, last = int(counts["year"].min()), int(counts["year"].max())
         if window[0] > last or window[1] < first:
-            raise StoreError(f"The window {window[0]}-{window[1]} lies outside the roster's years {first}-{last}.")
+            raise StoreError(f"The window {window[0]}\u2013{window[1]} lies outside the roster's years {first}\u2013{last}.")
         source = "given"
     elif settings.window is not None:
         window, source = settings.window, "chosen"

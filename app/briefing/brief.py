@@ -99,16 +99,18 @@ def render_brief_html(*, headline: str, chart_svgs: Sequence[bytes], table: pd.D
 def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFrame, method_text: str,
                 provenance: Provenance, signature: Signature | None = None, captions: Sequence[str] = (),
                 data_text: str = "") -> bytes:
-    """A one-page A4 PDF: the analyst's title, byline and marking, the headline, two charts with their
-    takeaways, the odds-ratio table, data used and rejected, method, cautions and the provenance footer.
+    """An A4 PDF: the analyst's title, byline and marking, the headline, the charts with their takeaways,
+    the odds-ratio table, data used and rejected, method, cautions and the provenance footer. One page for
+    one or two charts, one more page for every two more.
 
     Raises app.briefing.render.ExportUnavailable when charts cannot be rendered (no browser), ValueError when
-    ``charts`` is not two figures or the content cannot be fitted on one page.
+    there is no chart or the content cannot be fitted on its pages.
     """
     from weasyprint import HTML
 
-    if len(charts) != 2:
-        raise ValueError(f"build_brief takes exactly two charts; got {len(charts)}.")
+    if not charts:
+        raise ValueError("build_brief needs at least one chart.")
+    pages = math.ceil(len(charts) / 2)
     for layout in _LAYOUTS:
         # the page footer carries the full provenance, so the charts drop their own source line
         svgs = [figure_bytes(without_source(fig), "svg", width=CHART_WIDTH_PX, height=layout.chart_height_px)
@@ -117,7 +119,7 @@ def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFra
                                  provenance=provenance, base_pt=layout.base_pt, max_rows=layout.max_rows,
                                  signature=signature, captions=captions, data_text=data_text)
         document = HTML(string=html, base_url=str(TEMPLATE_DIR)).render()
-        if len(document.pages) == 1:
+        if len(document.pages) <= pages:
             return bytes(document.write_pdf())
-    raise ValueError("The brief does not fit on one A4 page even in its most compact layout; "
-                     "shorten the headline or the method text.")
+    raise ValueError(f"The brief does not fit on {pages} A4 page(s) even in its most compact layout; "
+                     "shorten the headline or the method text, or tick fewer findings.")

@@ -302,15 +302,17 @@ def _log_ticks(lo: float, hi: float) -> list[float]:
     return inside
 
 
-def forest_figure(rows: pd.DataFrame, *, title: str, source: str, reference: float = 1.0) -> go.Figure:
-    """Odds ratios with intervals, one row each, on a log axis; rows without an estimate say so in words."""
+def forest_figure(rows: pd.DataFrame, *, title: str, source: str, reference: float = 1.0,
+                  notes: Sequence[str] = ()) -> go.Figure:
+    """Odds ratios with intervals, one row each, on a log axis; rows without an estimate say so in words.
+    ``notes`` go under the plot (e.g. what the numbers in the labels are)."""
     _require(rows, ["label", "odds_ratio", "low", "high", "group"], "forest_figure")
     n = len(rows)
     if n == 0:
         raise ValueError("forest_figure needs at least one row.")
     # a fixed left margin sized to the labels (not automargin) keeps the footer in line with the title
     longest = max(len(str(s)) for s in rows["label"])
-    fig = _base_figure(title, source, left=int(min(360, 24 + 8.2 * longest)), right=190)
+    fig = _base_figure(title, source, notes, left=int(min(360, 24 + 8.2 * longest)), right=190)
     data = rows.reset_index(drop=True).assign(pos=[float(n - 1 - i) for i in range(n)])
     estimable = data[np.isfinite(data["odds_ratio"].astype(float))]
     bounds = pd.concat([estimable["low"], estimable["high"], estimable["odds_ratio"]]).astype(float)

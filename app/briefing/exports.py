@@ -56,7 +56,7 @@ def _findings(store: Store, inp: AnalysisInput, charts: Sequence[str], run_id: i
             out.append(build_finding(store, inp, chart, run_id=run_id if chart == "bootstrap" else None))
         except (StoreError, ValueError, TrendError) as exc:
             raise ValueError(f"The {chart} finding was ticked but cannot be shown: {exc} "
-                             "Untick it or fix the cause; the deck leaves no ticked finding out.") from exc
+                             "Untick it or fix the cause; no export leaves a ticked finding out.") from exc
     return out
 
 
@@ -119,17 +119,30 @@ def data_sentence(inp: AnalysisInput, departures: int, forced: int) -> str:
             f"{excluded:,} with excluded codes and {unmapped:,} with unmapped codes are not counted.")
 
 
-def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None,
-               signature: Signature | None = None) -> bytes:
-    """The one-page brief: headline, trend and bootstrap (or coverage) charts, odds ratios, method."""
+def brief_file(store: Store, inp: AnalysisInput, charts: Sequence[str] | None = None, *,
+               run_id: int | None = None, signature: Signature | None = None) -> bytes:
+    """The brief: headline, the findings' charts with their takeaways, odds ratios, data, method.
+
+    ``charts`` are the ticked findings: every one appears, in order, and no other (as in the deck); one page
+    for up to two, a page per two more. None (nothing ticked) gives the one-page pair: the trend and the
+    bootstrap, or coverage when no bootstrap run fits.
+    """
     from app.briefing.brief import build_brief
 
     outcome = run_trend(store, inp)
     fit = outcome.fit
     trend = build_finding(store, inp, "trend")
-    run = store.get_run(run_id) if run_id is not None else latest_bootstrap(store, inp)
-    second = build_finding(store, inp, "bootstrap", run_id=run.id) if run is not None else build_finding(
-        store, inp, "coverage")
+    if charts is None:
+        run = store.get_run(run_id) if run_id is not None else latest_bootstrap(store, inp)
+        chosen = ["trend", "bootstrap" if run is not None else "coverage"]
+        run_id = run.id if run is not None else None
+    else:
+        chosen = list(dict.fromkeys(charts))
+        if not chosen:
+            raise ValueError("Choose at least one finding for the brief.")
+        run = ((store.get_run(run_id) if run_id is not None else latest_bootstrap(store, inp))
+               if "bootstrap" in chosen else None)
+    findings = _findings(store, inp, chosen, run_id)
     rows = []
     for name, label in (("profile", "profile likelihood"), ("wald", "Wald")):
         iv = fit.conf_int.get(name)
@@ -152,13 +165,14 @@ def brief_file(store: Store, inp: AnalysisInput, *, run_id: int | None = None,
               f"{fit.forced:,} forced. Pearson dispersion {fit.dispersion:.2f}."
               + (" Bootstrap intervals resample whole firms, keeping each firm's departures together."
                  if run is not None and run.params.get("unit") == "firm" else ""))
-    provenance = _deck_provenance([trend, second], trend.provenance)
+    provenance = _deck_provenance(findings, trend.provenance)
     quoted = [outcome.run_id] + ([run.id] if run is not None and run.result is not None else [])
     provenance = replace(provenance, packs=tuple((i, build_pack(store, i).sha256) for i in quoted))
     # the headline is the trend chart's own title, so that chart goes in without it
     sign = signature_for(store, inp, signature)
-    captions = [sign.takeaway("trend", trend.takeaway), sign.takeaway(second.name, second.takeaway)]
-    return build_brief(headline=headline_sentence(fit), charts=[untitled(trend.figure), second.figure],
+    captions = [sign.takeaway(f.name, f.takeaway) for f in findings]
+    figures = [untitled(f.figure) if f.name == "trend" else f.figure for f in findings]
+    return build_brief(headline=headline_sentence(fit), charts=figures,
                        table=pd.DataFrame(rows), method_text=method, provenance=provenance, signature=sign,
                        captions=captions, data_text=data_sentence(inp, fit.departures, fit.forced))
 
@@ -172,7 +186,7 @@ def export_to_file(store: Store, inp: AnalysisInput, *, fmt: str, out: Path, cha
     if fmt == "pptx":
         data = deck_file(store, inp, charts, run_id=run_id, signature=signature)
     elif fmt == "brief":
-        data = brief_file(store, inp, run_id=run_id, signature=signature)
+        data = brief_file(store, inp, charts, run_id=run_id, signature=signature)
     else:
         data = chart_file(store, inp, chart, fmt, run_id=run_id)
     out.parent.mkdir(parents=True, exist_ok=True)

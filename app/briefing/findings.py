@@ -168,6 +168,11 @@ def sector_verdict(result: SectorTrends) -> str:
     return text
 
 
+#: what "(84/274)" after a sector's name means, under the sector chart on the page and in every export
+SECTOR_LABEL_NOTE = ("In brackets after each sector: forced/counted departures in the window (counted = forced "
+                     "plus voluntary; excluded and unmapped codes are left out).")
+
+
 def sectors_finding_from(inp: AnalysisInput, result: SectorTrends) -> ChartFinding:
     rows = []
     if result.common is not None and result.common.odds_ratio is not None:
@@ -183,7 +188,7 @@ def sectors_finding_from(inp: AnalysisInput, result: SectorTrends) -> ChartFindi
     prov = provenance_for(inp, model="sector", by_sector=True, interval_method="profile likelihood, 95%")
     title = verdict.split(" (")[0]
     table = pd.DataFrame(rows)
-    fig = forest_figure(table, title=title, source=prov.short())
+    fig = forest_figure(table, title=title, source=prov.short(), notes=[SECTOR_LABEL_NOTE])
     caveat = (f"Each row's label gives forced/all departures counted in that sector, e.g. {rows[-1]['label']}. "
               "Sectors too small to fit alone are shown as not estimable; with many sectors some "
               "differences arise by chance.") if len(rows) > 1 else "Too few sectors to compare."

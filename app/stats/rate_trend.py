@@ -207,7 +207,7 @@ def fit_rate_trend(table: RateTable, measure: Measure = "forced", *, alpha: floa
         raise ValueError(f"measure must be one of forced, voluntary; got {measure!r}.")
     alpha = table.alpha if alpha is None else alpha
     years = table.years
-    span = f"{table.window[0]}-{table.window[1]}"
+    span = f"{table.window[0]}\u2013{table.window[1]}"
     if len(years) < 3:
         raise RateError(f"A rate trend needs firm-years in at least 3 fiscal years; {span} has {len(years)}.")
     events = years[measure].to_numpy(dtype=float)
@@ -302,7 +302,7 @@ def decomposition_sentence(share_interval: Interval | None, forced: RateTrend, v
     share = _direction(share_interval)
     f_dir, v_dir = _direction(forced.headline_interval()), _direction(voluntary.headline_interval())
     f_text, v_text = _phrase("the forced rate", forced), _phrase("voluntary exits", voluntary)
-    span = f"Across {forced.window[0]}-{forced.window[1]}"
+    span = f"Across {forced.window[0]}\u2013{forced.window[1]}"
     level = f"{round((1.0 - forced.alpha) * 100):g}%"
     tail = (f" (per 100 firm-years; {level} profile intervals; the forced rate's ratio per year is "
             f"{forced.rate_ratio:.3f}, {forced.headline_interval()[0]:.3f} to {forced.headline_interval()[1]:.3f}).")

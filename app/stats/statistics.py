@@ -275,7 +275,7 @@ def make_statistic(name: str, cells: Cells, *, centre: float, model: str = "line
     (a, b), (c, d) = periods
     if not (a <= b < c <= d):
         raise ValueError(f"The first period must end before the second starts; got {a}-{b} and {c}-{d}.")
-    return Statistic(name, f"difference in the forced share, {c}-{d} minus {a}-{b}", "identity", False,
+    return Statistic(name, f"difference in the forced share, {c}\u2013{d} minus {a}\u2013{b}", "identity", False,
                      {"periods": [[int(a), int(b)], [int(c), int(d)]]}, _period_difference(groups, ((a, b), (c, d))))
 
 

@@ -194,7 +194,7 @@ def _drop_one_sided_sectors(groups: pd.DataFrame) -> tuple[pd.DataFrame, list[st
 
 
 def _check_data(groups: pd.DataFrame, window: tuple[int, int]) -> None:
-    span = f"{window[0]}-{window[1]}"
+    span = f"{window[0]}\u2013{window[1]}"
     if int(groups["forced"].sum()) == 0:
         raise TrendError(f"There are no forced departures in {span}, so there is no trend in the "
                          "forced share to estimate.")

@@ -35,7 +35,7 @@ def trend_sentence(fit: TrendFit) -> str:
     Uses the profile interval (the quasi-binomial one when overdispersion triggered a refit).
     Says "no clear change" whenever the interval includes an odds ratio of 1.
     """
-    span = f"{fit.window[0]}-{fit.window[1]}"
+    span = f"{fit.window[0]}\u2013{fit.window[1]}"
     level = f"{round((1.0 - fit.alpha) * 100):g}%"
     interval = fit.quasi.conf_int["profile"] if fit.quasi is not None else fit.conf_int["profile"]
     if fit.odds_ratio is None or interval is None:

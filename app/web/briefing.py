@@ -29,6 +29,7 @@ from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.forms import read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, download, form_body, page_errors, query, redirect
+from app.web.run_numbers import ordinals, trend_fits
 from app.web.schemas import BootstrapRunOut, define, list_of
 
 router = APIRouter()
@@ -67,6 +68,10 @@ class BriefingPage:
     settings: BriefingSettings | None = None
     default_title: str = ""
     limits: dict[str, int] = field(default_factory=lambda: dict(LIMITS))
+    #: run id -> its number among the roster's bootstrap runs ("Bootstrap N"; links keep the run id)
+    run_numbers: dict[int, int] = field(default_factory=dict)
+    #: "Fit N": the quoted trend fit's number among the roster's trend fits
+    fit_number: int | None = None
 
 
 BriefingBody = define(BriefingPage, "BriefingBody", fields={"runs": list_of(BootstrapRunOut)})
@@ -83,13 +88,15 @@ def briefing_data(store: Store, roster_id: int, *, chosen: list[str] | None, run
     """``chosen`` None: nothing ticked yet, so the standard deck of every finding that can be shown now."""
     roster = _roster(store, roster_id)
     ok, message = export_available()
-    runs = [r for r in store.list_runs(roster.id, "bootstrap") if r.status == "done"]
+    every_run = store.list_runs(roster.id, "bootstrap")
+    numbers = ordinals(every_run)
+    runs = [r for r in every_run if r.status == "done"]
     settings = store.briefing_settings(roster.id)
     try:
         inp = load_input(store, roster.id)
     except StoreError as exc:
         return BriefingPage(roster, "no mapping", None, chosen or [], run_id, None, runs, [], ok, message, str(exc),
-                            settings=settings, default_title=default_title(roster.name))
+                            settings=settings, default_title=default_title(roster.name), run_numbers=numbers)
     if chosen is None:
         chosen = default_charts(store, inp, run_id)
     if run_id is None:
@@ -104,8 +111,10 @@ def briefing_data(store: Store, roster_id: int, *, chosen: list[str] | None, run
         fit_run_id: int | None = run_trend(store, inp).run_id  # the fit the brief and deck quote
     except TrendError:
         fit_run_id = None
+    fit_number = ordinals(trend_fits(store, roster.id)).get(fit_run_id) if fit_run_id is not None else None
     return BriefingPage(roster, inp.mapping_label, inp.window, chosen, run_id, fit_run_id, runs, items, ok, message,
-                        warnings=inp.warnings(), settings=settings, default_title=default_title(roster.name))
+                        warnings=inp.warnings(), settings=settings, default_title=default_title(roster.name),
+                        run_numbers=numbers, fit_number=fit_number)
 
 
 def _preview(store: Store, inp: AnalysisInput, name: str, run_id: int | None) -> PreviewItem:
@@ -208,12 +217,12 @@ def deck_export(request: Request, roster_id: int) -> Response:
 
 
 @router.get("/rosters/{roster_id}/briefing/brief.pdf", name="brief_export", response_class=Response,
-            responses={**download("The two-page brief", MEDIA_TYPES["brief"]), **page_errors(400, 404)},
-            openapi_extra=query(_RUN, *WINDOW_QUERY))
+            responses={**download("The brief: one page for up to two findings, a page per two more", MEDIA_TYPES["brief"]), **page_errors(400, 404)},
+            openapi_extra=query(_CHART, _RUN, *WINDOW_QUERY))
 def brief_export(request: Request, roster_id: int) -> Response:
     store = app_store(request)
     inp = _input(store, roster_id, request)
-    data = _export(lambda: brief_file(store, inp, run_id=_run_arg(request)))
+    data = _export(lambda: brief_file(store, inp, _chosen(request), run_id=_run_arg(request)))
     return _download(data, "brief", f"helmshift-brief-{roster_id}.pdf")
 
 

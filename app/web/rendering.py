@@ -36,6 +36,15 @@ def _fmt_num(value: float | None, digits: int = 3) -> str:
     return f"{value:.{digits}f}"
 
 
+# One convention for every odds ratio (and rate ratio) and its interval bounds, on pages, in sentences
+# (app/stats/trend_report.py, headline.py, periods.py), exports and the CLI: three decimals.
+RATIO_DIGITS = 3
+
+
+def _fmt_ratio(value: float | None) -> str:
+    return _fmt_num(value, RATIO_DIGITS)
+
+
 def _script_json(value: Any) -> Markup:
     """JSON safe to place inside a <script type="application/json"> element (no tag can close it)."""
     text = value if isinstance(value, str) else json.dumps(jsonable(value))
@@ -65,6 +74,7 @@ templates.env.filters["count"] = _fmt_count
 templates.env.filters["script_json"] = _script_json
 templates.env.filters["pct"] = _fmt_pct
 templates.env.filters["num"] = _fmt_num
+templates.env.filters["ratio"] = _fmt_ratio
 
 
 def render(request: Request, template: str, page: Any, *, status: int = 200, **extra: Any) -> HTMLResponse:

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
 import math
-import secrets
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -25,6 +25,7 @@ from app.web.figures import FigureSpec, figure_spec
 from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import FORM_AGAIN, api_errors, download, form_body, page_errors, query, redirect
+from app.web.run_numbers import bootstrap_number, ordinals
 from app.web.schemas import BootstrapRunOut, IntervalRow, Percent, ReplicatesBody, define, list_of, one_of
 
 router = APIRouter()
@@ -42,6 +43,7 @@ class ResamplingPage:
     mapping_label: str
     window: tuple[int, int] | None
     runs: list[Run]
+    #: the seed the start form offers: derived from the roster's id and data, the same on every visit
     default_seed: int
     error: str | None = None
     warnings: list[str] = field(default_factory=list)
@@ -50,6 +52,8 @@ class ResamplingPage:
     statistics: tuple[str, ...] = STATISTICS
     statistic_help: dict[str, str] = field(default_factory=lambda: dict(STATISTIC_HELP))
     sectors: list[str] = field(default_factory=list)
+    #: run id -> "Bootstrap N", the run's number among the roster's bootstrap runs (links keep the run id)
+    run_numbers: dict[int, int] = field(default_factory=dict)
 
 
 RunsBody = define(ResamplingPage, "RunsBody", fields={"runs": list_of(BootstrapRunOut)})
@@ -73,6 +77,8 @@ class RunPage:
     roster_deleted: bool = False
     #: the roster's newest version when it is newer than the one the run read (a refresh came since)
     newer_version: int | None = None
+    #: "Bootstrap N": the run's number among its roster's bootstrap runs
+    number: int = 0
 
 
 RunBody = define(RunPage, "RunBody", fields={"run": BootstrapRunOut, "method": one_of(METHODS),
@@ -88,9 +94,16 @@ def resampling_data(store: Store, roster_id: int, error: str | None = None) -> R
         sectors = sorted(set(inp.group_cells(by_sector=True).groups["sector"].astype(str)))
     except StoreError as exc:
         mapping_label, window, error, sectors = "no mapping", None, error or str(exc), []
-    return ResamplingPage(roster, mapping_label, window, store.list_runs(roster.id, "bootstrap"),
-                          default_seed=secrets.randbelow(900_000) + 100_000, error=error, warnings=warnings,
-                          sectors=sectors)
+    runs = store.list_runs(roster.id, "bootstrap")
+    return ResamplingPage(roster, mapping_label, window, runs, default_seed=default_seed(roster), error=error,
+                          warnings=warnings, sectors=sectors, run_numbers=ordinals(runs))
+
+
+def default_seed(roster: Roster) -> int:
+    """A six-digit seed from the roster's id and file digest: stable across visits (so a reload does not
+    silently change the draws an analyst is about to start), different between rosters and after a refresh."""
+    digest = hashlib.sha256(f"{roster.id}:{roster.sha256}".encode()).digest()
+    return int.from_bytes(digest[:8], "big") % 900_000 + 100_000
 
 
 def _roster(store: Store, roster_id: int) -> Roster:
@@ -159,13 +172,15 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
         roster = None  # deleted; roster ids are never reused, so this run cannot point at other data
     percent = int(100 * run.progress_done / run.progress_total) if run.progress_total else 0
     newer = roster.latest_version if roster is not None and roster.latest_version > run.roster_version else None
+    number = bootstrap_number(store, run)
     if run.status != "done" or run.result is None:
-        return RunPage(roster, run, method, percent=percent, roster_deleted=roster is None, newer_version=newer)
+        return RunPage(roster, run, method, percent=percent, roster_deleted=roster is None, newer_version=newer,
+                       number=number)
     result = run.result
     rows = [{"method": METHOD_LABELS[m], "interval": result["conf_int"][m], "mc_error": result["mc_error"][m],
              "source": f"bootstrap, B = {result['resamples']:,}"} for m in METHODS if m in result["conf_int"]]
     if roster is None:
-        return RunPage(None, run, method, rows, percent=100, roster_deleted=True)
+        return RunPage(None, run, method, rows, percent=100, roster_deleted=True, number=number)
     if run.params.get("statistic", "slope") == "slope":  # model-based intervals of the same number
         try:
             inp = input_for_run(store, run)
@@ -179,7 +194,7 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
     fig = bootstrap_finding(store, run.id, method).figure
     comparison, found = compare_units(store, run, method)
     return RunPage(roster, run, method, rows, comparison, found, figure_spec(fig, titled=False), 100,
-                   newer_version=newer)
+                   newer_version=newer, number=number)
 
 
 @router.get("/rosters/{roster_id}/resampling", response_class=HTMLResponse, name="resampling_page",

@@ -25,6 +25,7 @@ from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.rendering import as_json, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, json_or_validation_error, page_errors, query
+from app.web.run_numbers import ordinals, trend_fits
 from app.web.schemas import OddsRow, TrendFitSummary, define, list_of, variant
 
 router = APIRouter()
@@ -64,6 +65,8 @@ class TrendPage:
     adjust: list[str] | None = None
     adjusted: dict[str, Any] | None = None
     adjusted_error: str | None = None
+    #: run id -> "Fit N", the run's number among the roster's trend fits (links keep the run id)
+    run_numbers: dict[int, int] = field(default_factory=dict)
 
 
 TrendBody = define(TrendPage, "TrendBody", fields={"fit": TrendFitSummary | None, "table": list_of(OddsRow)},
@@ -115,23 +118,24 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         inp = load_input(store, roster.id, window=window)
     except StoreError as exc:
         return _empty(store, roster, model, spline_df, str(exc))
-    runs = _trend_runs(store, roster.id)
+    runs, numbers = _trend_runs(store, roster.id)
     rates = rates_section(store, inp, fit=True)
     try:
         outcome = run_trend(store, inp, model=model, spline_df=spline_df, quasi=quasi)
     except TrendError as exc:
         return TrendPage(roster, inp.mapping_label, inp.window, inp.window_source, model, spline_df, None, None,
-                         str(exc), inp.warnings(), None, runs, quasi=quasi, rates=rates)
+                         str(exc), inp.warnings(), None, runs, quasi=quasi, rates=rates, run_numbers=numbers)
     fit = outcome.fit
     mix, mix_specs, adjusted, adjusted_error = _composition(store, inp, adjust)
     figure = page_memo(store, ("trend", *inp.key, model, spline_df, quasi),
                        lambda: figure_spec(trend_finding_from_fit(inp, fit, model).figure, titled=False))
     compared, compare_error = _periods(inp, periods)
+    runs, numbers = _trend_runs(store, roster.id)
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit={**fit_to_dict(fit), **headline_fields(fit)},
         sentence=headline_sentence(fit), error=None,
-        warnings=inp.warnings(), run_id=outcome.run_id, runs=_trend_runs(store, roster.id),
+        warnings=inp.warnings(), run_id=outcome.run_id, runs=runs, run_numbers=numbers,
         figure=figure, table=_odds_table(fit), quasi=quasi, rates=rates, records_mapping=mapping_ref(inp.mapping),
         periods=compared, periods_error=compare_error, refresh=refresh_comparison(store, inp, outcome.run_id),
         mix=mix, mix_figures=mix_specs,
@@ -155,13 +159,18 @@ def _composition(store: Store, inp: AnalysisInput, adjust: tuple[str, ...] | Non
                         "run": outcome.run_id}, None
 
 
-def _trend_runs(store: Store, roster_id: int) -> list[Run]:
-    return [r for r in store.list_runs(roster_id, "fit") if r.params.get("model") not in ("by_sector", "rate")][:10]
+def _trend_runs(store: Store, roster_id: int) -> tuple[list[Run], dict[int, int]]:
+    """The ten newest stored trend fits and their per-roster numbers."""
+    fits = trend_fits(store, roster_id)
+    numbers = ordinals(fits)
+    shown = fits[:10]
+    return shown, {r.id: numbers[r.id] for r in shown}
 
 
 def _empty(store: Store, roster: Roster, model: str, spline_df: int, error: str) -> TrendPage:
+    runs, numbers = _trend_runs(store, roster.id)
     return TrendPage(roster, "no mapping", (0, 0), "none", model, spline_df, None, None, error, [], None,
-                     _trend_runs(store, roster.id))
+                     runs, run_numbers=numbers)
 
 
 def _period_args(request: Request) -> tuple[Span, Span] | None:
