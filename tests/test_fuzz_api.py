@@ -27,7 +27,7 @@ from hypothesis import HealthCheck, settings
 from schemathesis.checks import not_a_server_error
 from schemathesis.specs.openapi.checks import response_schema_conformance
 
-from app.analysis.jobs import MAX_RESAMPLES
+from app.analysis.run_params import MAX_RESAMPLES
 from app.config import Settings
 from app.demo import DEMO_MAPPINGS, load_demo
 from app.store import Store

@@ -196,7 +196,7 @@ def test_form_posts_answer_303_with_a_location(api: TestClient, openapi: dict[st
 
 def test_served_resampling_form_states_the_limits_the_app_enforces(api: TestClient,
                                                                     openapi: dict[str, Any]) -> None:
-    from app.analysis.jobs import MAX_RESAMPLES
+    from app.analysis.run_params import MAX_RESAMPLES
 
     form = (openapi["paths"]["/rosters/{roster_id}/resampling"]["post"]["requestBody"]["content"]
             ["application/x-www-form-urlencoded"]["schema"]["properties"])

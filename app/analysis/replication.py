@@ -22,8 +22,8 @@ import pandas as pd
 
 from app import __version__
 from app.analysis.inputs import AnalysisInput, input_for_run
-from app.analysis.jobs import by_sector, statistic_for
 from app.analysis.mapping_files import export_mapping_csv
+from app.analysis.run_params import by_sector, statistic_for
 from app.intake.spreadsheet_safety import safe_csv
 from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, jackknife_statistic
 from app.stats.cells import Cells

@@ -12,8 +12,9 @@ from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Resp
 from starlette.concurrency import run_in_threadpool
 
 from app.analysis.inputs import input_for_run, load_input
-from app.analysis.jobs import MAX_RESAMPLES, STRATIFY, bootstrap_params, create_bootstrap_run, extend_run
+from app.analysis.jobs import create_bootstrap_run, extend_run
 from app.analysis.replication import build_pack, jackknife_csv, replicates_csv, replicates_payload
+from app.analysis.run_params import MAX_RESAMPLES, STRATIFY, bootstrap_params
 from app.analysis.runs import run_trend
 from app.briefing.findings import bootstrap_finding
 from app.stats.statistic_names import STATISTIC_HELP, STATISTICS
