@@ -1,0 +1,7 @@
+"""``python -m app.cli``: the same as the ``helmshift`` command."""
+
+import sys
+
+from app.cli.parser import main
+
+sys.exit(main())
