@@ -38,7 +38,7 @@ def test_window_precedence_given_then_chosen_then_suggested(demo_store: Store,
         (2001, 2019), "chosen")
     given = load_input(demo_store, "Demo index (invented)", window=(2005, 2010))
     assert (given.window, given.window_source) == ((2005, 2010), "given")
-    with pytest.raises(StoreError, match="outside the roster's years 1995-2024"):
+    with pytest.raises(StoreError, match="outside the roster's years 1995–2024"):
         load_input(demo_store, ROSTER, window=(1950, 1960))
     with pytest.raises(StoreError, match="No roster called"):
         load_input(demo_store, "nobody")

@@ -227,7 +227,7 @@ def mix_shift(table: pd.DataFrame, name: str, *, alpha: float = 0.05) -> MixShif
     p = float(stats.chi2_contingency(both[:, used], correction=False)[1]) if used.sum() >= 2 else None
     sa, sb = tuple(float(v) for v in a / a.sum()), tuple(float(v) for v in b / b.sum())
     moved = p is not None and p < alpha
-    spans = f"{first[0]}-{first[-1]} and {second[0]}-{second[-1]}"
+    spans = f"{first[0]}\u2013{first[-1]} and {second[0]}\u2013{second[-1]}"
     biggest = int(np.argmax(np.abs(np.array(sb) - np.array(sa))))
     detail = (f"the share {labels[biggest]} went from {sa[biggest]:.0%} to {sb[biggest]:.0%}")
     if moved:

@@ -34,6 +34,7 @@ from app.store.tables import (
     roster_cells,
     roster_detail_cells,
     roster_firm_cells,
+    roster_spellings,
     rosters,
     universe_firm_years,
 )
@@ -74,6 +75,11 @@ def fill_cells(conn: Connection, roster_id: int, version: int = 1) -> None:
         ["roster_id", "version", *names],
         select(d.roster_id, d.version, *keys, func.count()).where(*which)
         .group_by(d.roster_id, d.version, *keys)))
+    spelling = func.coalesce(d.reason_raw, d.reason)
+    conn.execute(insert(roster_spellings).from_select(
+        ["roster_id", "version", "reason", "spelling", "departures"],
+        select(d.roster_id, d.version, d.reason, spelling, func.count()).where(*which)
+        .group_by(d.roster_id, d.version, d.reason, spelling)))
     conn.execute(insert(roster_firm_cells).from_select(
         ["roster_id", "version", "firm_id", *names],
         select(d.roster_id, d.version, d.firm_id, *keys, func.count()).where(*which)
@@ -210,7 +216,7 @@ class CellQueries(Gateway):
             if conn.execute(select(d.id).where(d.roster_id == roster_id, d.version == number)
                             .limit(1)).first() is None:
                 return False
-            for table in (roster_detail_cells, roster_firm_cells):
+            for table in (roster_detail_cells, roster_firm_cells, roster_spellings):
                 conn.execute(table.delete().where(table.c.roster_id == roster_id, table.c.version == number))
             fill_cells(conn, roster_id, int(number))
         return True

@@ -25,7 +25,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0012"
+HEAD_REVISION = "0013"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -282,6 +282,17 @@ roster_detail_cells = Table(
     *CELL_DETAIL_COLUMNS(),
     Column("departures", Integer, nullable=False),
     Column("version", Integer, nullable=False, server_default="1"),
+)
+
+# How each shown reason code was written in the file, with counts (the Reason codes page's spellings): kept
+# with the cells so that no page groups the departures themselves.
+roster_spellings = Table(
+    "roster_spellings", metadata,
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    Column("version", Integer, nullable=False, server_default="1"),
+    Column("reason", String, nullable=False),
+    Column("spelling", String, nullable=False),
+    Column("departures", Integer, nullable=False),
 )
 
 # The same counts per firm, with the detailed key: what a firm bootstrap, the adjusted trend's clustered
