@@ -188,7 +188,7 @@ def test_an_analysts_week_in_the_browser(browser_page: tuple[Any, Watch, Any], t
     # then import the standard mapping CSV through the form: it becomes the roster's mapping
     page.set_input_files("#mfile", str(DEMO / "mapping-standard.csv"))
     page.fill("#mname", "demo standard")
-    page.click("form[enctype='multipart/form-data'] button:has-text('Import')")
+    page.click("form:has(#mfile) button:has-text('Import')")
     page.wait_for_selector("text=Imported 14 codes as demo standard v1.")
     assert page.locator("#unmapped").count() == 0
     shots.shoot(page, "reason-codes")

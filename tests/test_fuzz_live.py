@@ -5,7 +5,7 @@ loopback port over the demo database, as an outside prober would, with every che
 (server errors, status codes, content types, headers, response schemas, schema-valid data accepted and
 schema-invalid data rejected, undeclared methods and their Allow header, stateful links). Where the
 application refuses schema-valid data on purpose (a rule OpenAPI cannot state), tests/schemathesis.toml
-says which rule. Bounded in time: HELMSHIFT_FUZZ_SECONDS (default 60); about 2,000 cases in three minutes.
+says which rule. Bounded by examples: HELMSHIFT_FUZZ_EXAMPLES per operation (default 20), one worker, a fixed seed.
 
 Left out: the delete route (it would remove the demo roster and turn every later case into a 404; its
 refusals are tested in test_hardening.py and test_fuzz_api.py) and the chart/deck/brief exports (each is
@@ -24,7 +24,9 @@ from typing import Any
 import pytest
 
 CONFIG = Path(__file__).parent / "schemathesis.toml"
-SECONDS = int(os.environ.get("HELMSHIFT_FUZZ_SECONDS", "60"))
+#: examples per operation; one worker and a fixed seed make the run the same on every machine (a time-bounded
+#: run found different cases on a faster or slower machine, so CI could fail on what a developer never saw)
+EXAMPLES = int(os.environ.get("HELMSHIFT_FUZZ_EXAMPLES", "20"))
 
 
 @pytest.mark.slow
@@ -34,13 +36,13 @@ def test_served_instance_passes_every_schemathesis_check(demo_db: Path, live_ser
     server = live_server(demo_db)
     done = subprocess.run(
         [exe, "--config-file", str(CONFIG), "run", f"{server.base_url}/openapi.json", "--checks", "all",
-         "--max-time", str(SECONDS), "--workers", "2", "--request-timeout", "30", "--max-redirects", "0",
+         "--max-examples", str(EXAMPLES), "--workers", "1", "--request-timeout", "30", "--max-redirects", "0",
          # the response-time check's default of 10 s is below what the Robustness page (every mapping and
          # variant refitted) takes on a busy 2-core machine; 60 s still catches a request that hangs
          "--max-response-time", "60",
          "--seed", "20261202", "--suppress-health-check", "all",
          "--exclude-path-regex", "/delete$|/charts/|/deck\\.pptx$|/brief\\.pdf$"],
-        capture_output=True, text=True, timeout=SECONDS + 240, check=False, cwd=tmp_path)
+        capture_output=True, text=True, timeout=900, check=False, cwd=tmp_path)
     summary = done.stdout[-6000:] + done.stderr[-2000:]
     assert done.returncode == 0, summary
     tested = re.search(r"Tested: (\d+)", done.stdout)

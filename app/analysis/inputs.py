@@ -148,6 +148,9 @@ def load_input(
         first, last = int(counts["year"].min()), int(counts["year"].max())
         if window[0] > last or window[1] < first:
             raise StoreError(f"The window {window[0]}\u2013{window[1]} lies outside the roster's years {first}\u2013{last}.")
+        # years beyond the roster's hold no departures: the window is the part that has data (so what a run
+        # records is what it used, and a year like 10**30 never reaches the database)
+        window = (max(int(window[0]), first), min(int(window[1]), last))
         source = "given"
     elif settings.window is not None:
         window, source = settings.window, "chosen"

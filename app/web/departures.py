@@ -190,11 +190,19 @@ def _filename(asked: _Request, ext: str) -> str:
     return f"departures-roster-{asked.roster.id}-{digest}.{ext}"
 
 
+def _check_paging(request: Request) -> None:
+    """Exports hold every match, so page and per_page do not narrow them; they are still checked like the
+    page's, so that a link copied from the page and edited by hand fails the same way."""
+    _int_param(request, "page", "a page number from 1", low=1, high=MAX_ID // MAX_PER_PAGE)
+    _int_param(request, "per_page", f"between 1 and {MAX_PER_PAGE}", low=1, high=MAX_PER_PAGE)
+
+
 @router.get("/rosters/{roster_id}/departures.csv", name="departures_csv", response_class=Response,
             responses={**download("Every matching departure (formula-safe CSV)", "text/csv"),
                        **page_errors(400, 404)}, openapi_extra=_QUERY)
 def departures_csv(request: Request, roster_id: int) -> Response:
     store = app_store(request)
+    _check_paging(request)
     asked = _read(store, request, roster_id)
     body = safe_csv(_rows(store, asked), [HEADERS[f] for f in LISTED_FIELDS])
     return Response(body, media_type="text/csv; charset=utf-8", headers={
@@ -239,6 +247,7 @@ def departures_workbook(rows: Iterable[list[Any]], *, title: str) -> bytes:
                        **page_errors(400, 404)}, openapi_extra=_QUERY)
 def departures_xlsx(request: Request, roster_id: int) -> Response:
     store = app_store(request)
+    _check_paging(request)
     asked = _read(store, request, roster_id)
     body = departures_workbook(_rows(store, asked), title=f"Departures of roster {asked.roster.name}")
     return Response(body, media_type=XLSX, headers={

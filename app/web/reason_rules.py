@@ -62,6 +62,10 @@ def _form_rules(form: dict[str, Any]) -> tuple[ClassificationRule, ...]:
     for n in numbers:
         cell = {part: str(form.get(f"rule-{n}-{part}") or "").strip()
                 for part in ("code", "field", "comparison", "value", "category")}
+        for part, allowed in (("field", RULE_FIELDS_OFFERED), ("comparison", RULE_COMPARISONS_OFFERED),
+                              ("category", CATEGORIES)):
+            if cell[part] and cell[part] not in allowed:
+                raise BadRequest(f"Rule {n}: {part} must be one of {', '.join(allowed)}; got {cell[part]!r}.")
         if form.get(f"rule-{n}-drop") or not (cell["code"] or cell["value"]):
             continue
         try:
@@ -95,7 +99,10 @@ async def rules_save(request: Request, roster_id: int) -> RedirectResponse:
     roster, mapping = _mapping_of(store, roster_id)
     form = await read_form(request)
     rules = _form_rules(form)
-    note = str(form.get("note") or "").strip()[:500] or f"{len(rules)} classification rule(s) edited"
+    note = str(form.get("note") or "").strip()
+    if len(note) > 500:
+        raise BadRequest(f"The note is {len(note):,} characters; keep it to 500.")
+    note = note or f"{len(rules)} classification rule(s) edited"
     save_rules(store, mapping, rules, note=note)
     return _back(request, roster)
 

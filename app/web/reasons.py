@@ -220,9 +220,11 @@ def _based_on(form: dict[str, str | Upload], name: str) -> int | None:
     """The version the form was filled from, when it is saved under the same mapping name (a save under
     another name is a deliberate "save as" and is not checked)."""
     raw = str(form.get("based_on") or "").strip()
+    if raw and (not raw.isdigit() or int(raw) > MAX_ID):
+        raise BadRequest(f"based_on must be a mapping version number (0 or more); got {raw!r}. Nothing was saved.")
     if not raw or str(form.get("based_on_mapping") or "") != name:
         return None
-    if not raw.isdigit() or int(raw) > MAX_ID:
+    if int(raw) > MAX_ID:
         raise BadRequest(f"based_on must be a mapping version number (0 or more); got {raw!r}. Nothing was saved.")
     return int(raw)
 

@@ -14,7 +14,7 @@ from starlette.concurrency import run_in_threadpool
 from app.analysis.inputs import input_for_run, load_input
 from app.analysis.jobs import create_bootstrap_run, extend_run
 from app.analysis.replication import build_pack, jackknife_csv, replicates_csv, replicates_payload
-from app.analysis.run_params import MAX_RESAMPLES, STRATIFY, bootstrap_params
+from app.analysis.run_params import MAX_RESAMPLES, STRATIFY, bootstrap_params, check_spline_df
 from app.analysis.runs import run_trend
 from app.briefing.findings import bootstrap_finding
 from app.stats.statistic_names import STATISTIC_HELP, STATISTICS
@@ -248,10 +248,12 @@ def _resampling_start(request: Request, roster_id: int, form: dict[str, str | Up
     roster = _roster(store, roster_id)
     try:
         statistic = str(form.get("statistic") or "slope")
+        # checked whatever the statistic (the form always sends it; a value out of range is a mistake)
+        spline_df = check_spline_df(_int_field(form, "spline_df", 3))
         params = bootstrap_params(unit=str(form.get("unit") or "firm"), resamples=_int_field(form, "resamples", 2000),
                                   seed=_int_field(form, "seed", 1), model=str(form.get("model") or "linear"),
                                   statistic=statistic, sector=str(form.get("sector") or "") or None,
-                                  spline_df=_int_field(form, "spline_df", 3) if statistic == "spline_bend" else None,
+                                  spline_df=spline_df if statistic == "spline_bend" else None,
                                   periods=str(form.get("periods") or "").strip() or None,
                                   stratify=str(form.get("stratify") or "none"))
         inp = load_input(store, roster.id)

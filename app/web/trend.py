@@ -190,7 +190,10 @@ def _request_args(request: Request) -> dict[str, Any]:
     if quasi not in ("0", "1"):
         raise BadRequest(f"quasi must be 0 or 1; got {quasi!r}.")
     adjust = None
-    if request.query_params.get("adjusted") == "1":
+    adjusted = request.query_params.get("adjusted", "0")
+    if adjusted not in ("0", "1"):
+        raise BadRequest(f"adjusted must be 0 or 1; got {adjusted!r}.")
+    if adjusted == "1":
         try:
             adjust = parse_adjust(request.query_params.getlist("adjust"))
         except AdjustedError as exc:
