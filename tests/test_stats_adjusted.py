@@ -136,7 +136,7 @@ def test_mix_shift_is_scipys_chi_square_and_says_whether_the_mix_moved() -> None
     b = table.loc[2005:2009].sum().to_numpy()
     expected = stats.chi2_contingency(np.vstack([a, b]), correction=False)[1]
     assert shift.p_value == pytest.approx(expected, rel=1e-12)
-    assert shift.moved and "moved between 2000-2004 and 2005-2009" in shift.sentence
+    assert shift.moved and "moved between 2000–2004 and 2005–2009" in shift.sentence
     flat = mix_shift(mix_by_year(pd.DataFrame({"year": years, "age": rng.normal(58, 6, len(years))}), "age"), "age")
     assert flat.p_value is not None and flat.p_value > 0.001
     assert ("did not clearly move" in flat.sentence) == (not flat.moved)
