@@ -72,7 +72,7 @@ def test_upload_shows_summary_and_rates_on_coverage_and_trend(client: Any) -> No
     html = client.get("/rosters/1/trend").text
     assert 'id="rates-finding"' in html and SHARE_VS_RATE in html
     # the rate run is recorded but kept out of the share's list of stored fits
-    assert all(run["params"]["model"] != "rate" for run in trend["runs"])
+    assert trend["runs"] and all(run["params"]["model"] != "rate" for run in trend["runs"])
 
 
 def test_bad_upload_shows_the_page_again_with_why_and_stores_nothing(client: Any, store: Store) -> None:
