@@ -179,3 +179,41 @@ def test_every_long_module_exemption_is_still_needed() -> None:
     lines = module_lines()
     assert {path: lines.get(path, 0) for path in LONG_MODULES
             if lines.get(path, 0) <= MAX_MODULE_LINES} == {}
+
+
+def _blocking_async_handlers(source: str) -> list[str]:
+    """``async def`` routes whose body does more than read the request and hand the work to the threadpool:
+    anything touching the store (``app_store``, ``request.app.state``) before ``return await
+    run_in_threadpool(...)`` runs on the event loop and stalls every other request."""
+    found = []
+    for node in ast.walk(ast.parse(source)):
+        if not isinstance(node, ast.AsyncFunctionDef) or not any(
+                isinstance(d, ast.Call) and isinstance(d.func, ast.Attribute) and isinstance(d.func.value, ast.Name)
+                and d.func.value.id == "router" for d in node.decorator_list):
+            continue
+        body = [s for s in node.body if not (isinstance(s, ast.Expr) and isinstance(s.value, ast.Constant))]
+        last = body[-1] if body else None
+        hands_over = (isinstance(last, ast.Return) and isinstance(last.value, ast.Await)
+                      and isinstance(last.value.value, ast.Call)
+                      and getattr(last.value.value.func, "id", "") == "run_in_threadpool")
+        names = {n.id for s in body[:-1] for n in ast.walk(s) if isinstance(n, ast.Name)}
+        attrs = {n.attr for s in body[:-1] for n in ast.walk(s) if isinstance(n, ast.Attribute)}
+        if not hands_over or names & {"app_store", "store"} or "state" in attrs:
+            found.append(node.name)
+    return found
+
+
+def test_the_blocking_handler_finder_finds_one() -> None:
+    blocking = ("@router.post('/x')\nasync def bad(request):\n    store = app_store(request)\n"
+                "    form = await read_form(request)\n    return await run_in_threadpool(f, store, form)\n")
+    fine = ("@router.post('/y')\nasync def good(request):\n    '''doc'''\n    form = await read_form(request)\n"
+            "    return await run_in_threadpool(f, request, form)\n")
+    assert _blocking_async_handlers(blocking) == ["bad"]
+    assert _blocking_async_handlers(fine) == []
+
+
+def test_async_routes_only_read_the_request_then_use_the_threadpool() -> None:
+    """Every ``async def`` route reads its form and hands the work to the threadpool (DEVELOPERS.md: Seams)."""
+    offenders = {path.name: names for path in sorted((APP / "web").glob("*.py"))
+                 if (names := _blocking_async_handlers(path.read_text(encoding="utf-8")))}
+    assert offenders == {}

@@ -27,6 +27,7 @@ from urllib.parse import quote
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 from itsdangerous import BadSignature, URLSafeTimedSerializer
+from starlette.concurrency import run_in_threadpool
 
 from app.store import Account, AuditEvent, Store
 from app.store.accounts import FAILED_LOGIN_WINDOW, MAX_FAILED_LOGINS
@@ -185,11 +186,17 @@ def login_page(request: Request, next: str = "/") -> HTMLResponse:
 
 @router.post("/login", name="login_submit", include_in_schema=False)
 async def login_submit(request: Request) -> Response:
-    store: Store = request.app.state.store
     form = await request.form()
-    username = str(form.get("username", "")).strip()
-    password = str(form.get("password", ""))
-    target = _safe_next(str(form.get("next", "/")))
+    fields = {k: str(form.get(k, "")) for k in ("username", "password", "next")}
+    # checking a password is deliberately slow (argon2id): off the event loop
+    return await run_in_threadpool(_login_submit, request, fields)
+
+
+def _login_submit(request: Request, fields: dict[str, str]) -> Response:
+    store: Store = request.app.state.store
+    username = fields["username"].strip()
+    password = fields["password"]
+    target = _safe_next(fields["next"] or "/")
     failures, oldest = store.failed_logins_recently(username)
     if failures >= MAX_FAILED_LOGINS and oldest is not None:
         wait = FAILED_LOGIN_WINDOW - (datetime.now(UTC) - datetime.fromisoformat(oldest))

@@ -8,6 +8,7 @@ from urllib.parse import parse_qsl, urlencode
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis.inputs import AnalysisInput, load_input
 from app.analysis.runs import run_trend
@@ -26,7 +27,7 @@ from app.stats.trend import TrendError
 from app.store import BriefingSettings, Roster, Run, Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
-from app.web.forms import read_form
+from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, download, form_body, page_errors, query, redirect
 from app.web.run_numbers import ordinals, trend_fits
@@ -241,9 +242,13 @@ def brief_export(request: Request, roster_id: int) -> Response:
                  "description": "the takeaway sentence of one finding (empty: the computed one)"}}))
 async def briefing_settings_save(request: Request, roster_id: int) -> RedirectResponse:
     """Save the title, author, date, marking and takeaways the roster's brief and deck carry."""
+    form = await read_form(request)
+    return await run_in_threadpool(_briefing_settings_save, request, roster_id, form)
+
+
+def _briefing_settings_save(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     roster = _roster(store, roster_id)
-    form = await read_form(request)
     try:
         takeaways = clean_takeaways({k.removeprefix("takeaway-"): v for k, v in form.items()
                                      if k.startswith("takeaway-")}, tuple(CHART_NAMES))

@@ -10,6 +10,7 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 from fastapi.responses import RedirectResponse, Response
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis.mapping_files import export_rules_csv
 from app.analysis.rules import (
@@ -95,9 +96,13 @@ _RULE_ROW = {
              openapi_extra=form_body({"note": {"type": "string", "maxLength": 500}}, pattern_properties=_RULE_ROW))
 async def rules_save(request: Request, roster_id: int) -> RedirectResponse:
     """Save the rules table (in row order: the first matching rule decides) as the next mapping version."""
+    form = await read_form(request)
+    return await run_in_threadpool(_rules_save, request, roster_id, form)
+
+
+def _rules_save(request: Request, roster_id: int, form: Any) -> RedirectResponse:
     store = app_store(request)
     roster, mapping = _mapping_of(store, roster_id)
-    form = await read_form(request)
     rules = _form_rules(form)
     note = str(form.get("note") or "").strip()
     if len(note) > 500:
@@ -112,9 +117,13 @@ async def rules_save(request: Request, roster_id: int) -> RedirectResponse:
              openapi_extra=form_body({}))
 async def rules_preset(request: Request, roster_id: int) -> RedirectResponse:
     """Add the academic preset (retirement below 60 counts as forced) after the existing rules."""
+    await read_form(request)
+    return await run_in_threadpool(_rules_preset, request, roster_id)
+
+
+def _rules_preset(request: Request, roster_id: int) -> RedirectResponse:
     store = app_store(request)
     roster, mapping = _mapping_of(store, roster_id)
-    await read_form(request)
     preset = preset_rules(mapping, store.reason_counts(roster.id)["code"].astype(str))
     if not preset:
         raise BadRequest("No reason code of this roster reads as a retirement; add the rule by hand.")
@@ -131,9 +140,13 @@ async def rules_preset(request: Request, roster_id: int) -> RedirectResponse:
              openapi_extra=form_body({"file": FILE}, required=("file",), multipart=True))
 async def rules_import(request: Request, roster_id: int) -> RedirectResponse:
     """Replace the rules with a ``code,field,comparison,value,category`` CSV (the whole file or nothing)."""
+    form = await read_form(request)
+    return await run_in_threadpool(_rules_import, request, roster_id, form)
+
+
+def _rules_import(request: Request, roster_id: int, form: Any) -> RedirectResponse:
     store = app_store(request)
     roster, mapping = _mapping_of(store, roster_id)
-    form = await read_form(request)
     upload = form.get("file")
     if not isinstance(upload, Upload):
         raise BadRequest("Choose a rules CSV (code,field,comparison,value,category).")

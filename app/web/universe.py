@@ -10,6 +10,7 @@ from dataclasses import dataclass
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from starlette.concurrency import run_in_threadpool
 
 from app.analysis.inputs import load_input
 from app.analysis.rates import APPROXIMATE, SHARE_VS_RATE, UniverseFlags, universe_overview
@@ -96,9 +97,13 @@ _COLUMNS = {f"column_{r}": {"type": "string", "description": f"header holding th
              openapi_extra=form_body({"file": FILE, **_COLUMNS}, required=("file",), multipart=True))
 async def universe_upload(request: Request, roster_id: int) -> Response:
     """Import a universe file for this roster (all rows or none); on a problem, the page again with why."""
+    form = await read_form(request)
+    return await run_in_threadpool(_universe_upload, request, roster_id, form)
+
+
+def _universe_upload(request: Request, roster_id: int, form: dict[str, str | Upload]) -> Response:
     store = app_store(request)
     roster = _roster_or_404(store, roster_id)
-    form = await read_form(request)
     upload = form.get("file")
     roles = {r: str(form.get(f"column_{r}") or "").strip() for r in UNIVERSE_ROLES}
     try:
