@@ -246,3 +246,16 @@ def test_no_page_reads_the_records_with_a_universe(demo_store: Store, partial_un
     assert reads(seen, "roster_firm_cells") >= 1  # the rates were counted from the firm cells
     # the firm-years are counted in SQL, never read as a list
     assert not [s for s in seen if re.search(r"SELECT universe_firm_years\.firm_id, universe_firm_years\.year", s)]
+
+
+def test_cells_read_missing_values_last_on_every_backend(store: Store, tmp_path: Path) -> None:
+    """SQLite sorts NULL first and PostgreSQL last; the cell reads ask for NULLS LAST so both backends hand the
+    analyses the same order (run with ``--backend postgresql`` as well)."""
+    from app.intake.ingest import import_roster
+
+    csv = ("firm_id,sector,year,reason\nA,Energy,2001,Dismissed\nB,,2001,Retired\nC,Banks,2001,Retired\n"
+           "D,,2002,Dismissed\n").encode()
+    roster = import_roster(store, csv, "sectors.csv", name="missing sectors").roster
+    for frame in (store.cell_counts(roster.id), store.cell_counts(roster.id, detail=True)):
+        sectors = list(frame.loc[frame["year"] == 2001, "sector"])
+        assert sectors[:2] == ["Banks", "Energy"] and pd.isna(sectors[2]), sectors

@@ -111,7 +111,7 @@ class CellQueries(Gateway):
         None where the record had none.
 
         With ``detail`` the key also holds ``age``, ``tenure`` (completed years) and ``interim`` (missing
-        values are <NA>). Sorted by the key (missing first). Rebuilds the cells of a roster stored without them.
+        values are <NA>). Sorted by the key (missing values last, on every backend). Rebuilds the cells of a roster stored without them.
         """
         return self._read_cells(roster_detail_cells if detail else roster_cells, roster_id, (), detail, version)
 
@@ -125,10 +125,12 @@ class CellQueries(Gateway):
         c = table.c
         key = [c[name] for name in (*lead, "year", "sector", "reason", *(DETAIL_COLUMNS if detail else ()))]
         which = (c.roster_id == roster_id, c.version == version_of(roster_id, version))
+        # missing values (no sector, no age) last on every backend: SQLite sorts NULL first, PostgreSQL last
+        order = [k.asc().nulls_last() for k in key]
         if table is roster_firm_cells:
-            query = select(*key, func.sum(c.departures)).where(*which).group_by(*key).order_by(*key)
+            query = select(*key, func.sum(c.departures)).where(*which).group_by(*key).order_by(*order)
         else:  # one row per key already
-            query = select(*key, c.departures).where(*which).order_by(*key)
+            query = select(*key, c.departures).where(*which).order_by(*order)
 
         def fetch() -> list[Any]:
             with self.engine.connect() as conn:
