@@ -253,8 +253,8 @@ def test_cells_read_missing_values_last_on_every_backend(store: Store, tmp_path:
     analyses the same order (run with ``--backend postgresql`` as well)."""
     from app.intake.ingest import import_roster
 
-    csv = ("firm_id,sector,year,reason\nA,Energy,2001,Dismissed\nB,,2001,Retired\nC,Banks,2001,Retired\n"
-           "D,,2002,Dismissed\n").encode()
+    csv = (b"firm_id,sector,year,reason\nA,Energy,2001,Dismissed\nB,,2001,Retired\nC,Banks,2001,Retired\n"
+           b"D,,2002,Dismissed\n")
     roster = import_roster(store, csv, "sectors.csv", name="missing sectors").roster
     for frame in (store.cell_counts(roster.id), store.cell_counts(roster.id, detail=True)):
         sectors = list(frame.loc[frame["year"] == 2001, "sector"])

@@ -132,6 +132,21 @@ def test_bootstrap_json(capsys: pytest.CaptureFixture[str], db: str) -> None:
     assert again["conf_int"] == payload["conf_int"]  # same seed, same numbers
 
 
+def test_bootstrap_seed_defaults_to_the_one_the_page_offers(capsys: pytest.CaptureFixture[str], db: str) -> None:
+    from app.analysis.run_params import default_seed
+    from app.store import Store
+
+    code, payload, err = run(capsys, "bootstrap", "--roster", ROSTER, "--resamples", "100", "--unit", "departure",
+                           "--db", db, "--json")
+    store = Store(db)
+    try:
+        offered = default_seed(store.get_roster(ROSTER))
+    finally:
+        store.dispose()
+    assert code == 0, err
+    assert payload["seed"] == offered != 20261201
+
+
 def test_robustness_json(capsys: pytest.CaptureFixture[str], db: str) -> None:
     code, payload, _ = run(capsys, "robustness", "--roster", ROSTER, "--mapping", "demo standard",
                            "--mapping", "demo strict", "--vary", "Retired", "--db", db, "--json")

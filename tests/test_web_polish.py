@@ -17,9 +17,9 @@ from conftest import figure_handoff
 
 from app.analysis.inputs import load_input
 from app.analysis.jobs import bootstrap_params, create_bootstrap_run
+from app.analysis.run_params import default_seed
 from app.cli import build_parser
 from app.store import Store
-from app.web.resampling import default_seed
 
 ROSTER = 1
 # a year range written with a hyphen (1998-2022); number ranges take an en dash: common practice in

@@ -6,6 +6,7 @@ are drawn within their sector; filled in from the data when the run is created s
 
 from __future__ import annotations
 
+import hashlib
 from typing import Any
 
 import numpy as np
@@ -16,7 +17,17 @@ from app.stats.design import window_centre
 from app.stats.periods import default_periods, parse_periods
 from app.stats.sectors import fit_sector_trends
 from app.stats.statistics import STATISTICS, Statistic, firm_strata, make_statistic
+from app.store import Roster
 from app.types import UNITS, check_choice
+
+
+def default_seed(roster: Roster) -> int:
+    """A six-digit seed from the roster's id and file digest: stable across visits and commands (so a reload
+    does not silently change the draws an analyst is about to start, and the page and ``helmshift bootstrap``
+    offer the same one), different between rosters and after a refresh."""
+    digest = hashlib.sha256(f"{roster.id}:{roster.sha256}".encode()).digest()
+    return int.from_bytes(digest[:8], "big") % 900_000 + 100_000
+
 
 #: the most resamples one run may ask for (a bound on time and storage, far above what intervals need)
 MAX_RESAMPLES = 200_000

@@ -50,7 +50,10 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
         if args.by or args.compare:
             raise CommandError("--model adjusted adjusts for sector itself (--adjust); drop --by and --compare.")
-        adjusted_payload = adjusted_summary(store, inp, args.adjust, resamples=args.resamples, seed=args.seed)
+        from app.analysis.run_params import default_seed
+
+        seed = args.seed if args.seed is not None else default_seed(inp.roster)
+        adjusted_payload = adjusted_summary(store, inp, args.adjust, resamples=args.resamples, seed=seed)
         _emit(args, adjusted_payload, lambda p: p["sentence"])
         return 0
     payload: dict[str, Any] | None = None
@@ -86,10 +89,12 @@ def cmd_run_export(args: argparse.Namespace) -> int:
 def cmd_bootstrap(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
     from app.analysis.jobs import run_bootstrap_now
+    from app.analysis.run_params import default_seed
 
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
-    payload = run_bootstrap_now(store, inp, unit=args.unit, resamples=args.resamples, seed=args.seed,
+    seed = args.seed if args.seed is not None else default_seed(inp.roster)
+    payload = run_bootstrap_now(store, inp, unit=args.unit, resamples=args.resamples, seed=seed,
                                 model=args.model, statistic=args.statistic, sector=args.sector,
                                 spline_df=args.spline_df, periods=args.periods, stratify=args.stratify)
 

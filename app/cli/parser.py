@@ -139,7 +139,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="what the adjusted model adjusts for (--model adjusted; '' for none; default: all three)")
     p.add_argument("--resamples", type=int, metavar="B",
                    help="--model adjusted: also the firm bootstrap with B resamples (default: none)")
-    p.add_argument("--seed", type=int, default=20261201, help="seed of that firm bootstrap (default: 20261201)")
+    p.add_argument("--seed", type=int,
+                   help="seed of that firm bootstrap (default: the roster's own seed, the one the Resampling page "
+                        "offers: stable for a roster, new after a refresh)")
     p.add_argument("--spline-df", type=int, choices=range(2, 7), default=3, metavar="2..6",
                    help="degrees of freedom of the spline in the bend test (--model spline; default 3)")
     p.add_argument("--quasi", action="store_true",
@@ -166,8 +168,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "(default: firm)")
     p.add_argument("--resamples", type=int, default=2000,
                    help="number of resamples B; 10000 for figures in a board paper (default: 2000)")
-    p.add_argument("--seed", type=int, default=20261201,
-                   help="random seed; the same seed and inputs give the same numbers (default: 20261201)")
+    p.add_argument("--seed", type=int,
+                   help="random seed; the same seed and inputs give the same numbers (default: the roster's own "
+                        "seed, the one the Resampling page offers: stable for a roster, new after a refresh)")
     p.add_argument("--model", choices=["linear", "sector"], default="linear",
                    help="for slope and decade_odds_ratio: the straight trend or the trend adjusted for sector "
                         "(default: linear)")

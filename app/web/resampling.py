@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import math
 from dataclasses import dataclass, field
 from typing import Any
@@ -14,7 +13,7 @@ from starlette.concurrency import run_in_threadpool
 from app.analysis.inputs import input_for_run, load_input
 from app.analysis.jobs import create_bootstrap_run, extend_run
 from app.analysis.replication import build_pack, jackknife_csv, replicates_csv, replicates_payload
-from app.analysis.run_params import MAX_RESAMPLES, STRATIFY, bootstrap_params, check_spline_df
+from app.analysis.run_params import MAX_RESAMPLES, STRATIFY, bootstrap_params, check_spline_df, default_seed
 from app.analysis.runs import run_trend
 from app.briefing.findings import bootstrap_finding
 from app.stats.statistic_names import STATISTIC_HELP, STATISTICS
@@ -99,12 +98,6 @@ def resampling_data(store: Store, roster_id: int, error: str | None = None) -> R
     return ResamplingPage(roster, mapping_label, window, runs, default_seed=default_seed(roster), error=error,
                           warnings=warnings, sectors=sectors, run_numbers=ordinals(runs))
 
-
-def default_seed(roster: Roster) -> int:
-    """A six-digit seed from the roster's id and file digest: stable across visits (so a reload does not
-    silently change the draws an analyst is about to start), different between rosters and after a refresh."""
-    digest = hashlib.sha256(f"{roster.id}:{roster.sha256}".encode()).digest()
-    return int.from_bytes(digest[:8], "big") % 900_000 + 100_000
 
 
 def _roster(store: Store, roster_id: int) -> Roster:
