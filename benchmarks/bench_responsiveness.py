@@ -66,6 +66,34 @@ def start(tree: Path, work: Path) -> tuple[subprocess.Popen[bytes], str]:
     raise RuntimeError("the server did not start within 90 s")
 
 
+def tree_cpu(pid: int) -> float | None:
+    """CPU seconds (user + system) of ``pid`` and every process below it (the import workers, the
+    forkserver), read from /proc; None where there is no /proc."""
+    try:
+        parents: dict[int, int] = {}
+        times: dict[int, float] = {}
+        tick = os.sysconf("SC_CLK_TCK")
+        for entry in Path("/proc").iterdir():
+            if not entry.name.isdigit():
+                continue
+            try:
+                fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            parents[int(entry.name)] = int(fields[1])
+            times[int(entry.name)] = (int(fields[11]) + int(fields[12])) / tick
+    except OSError:
+        return None
+    tree, frontier = {pid}, [pid]
+    while frontier:
+        parent = frontier.pop()
+        for child, ppid in parents.items():
+            if ppid == parent and child not in tree:
+                tree.add(child)
+                frontier.append(child)
+    return sum(times.get(p, 0.0) for p in tree)
+
+
 def stats(values: list[float]) -> str:
     if not values:
         return "no answers"
@@ -100,6 +128,7 @@ def measure(tree: Path, label: str, big: bytes, other: bytes, resamples: int) ->
                         done.set()
 
                 thread = threading.Thread(target=upload)
+                cpu_before = tree_cpu(proc.pid)
                 thread.start()
                 health: list[float] = []
                 trend: list[float] = []
@@ -114,6 +143,7 @@ def measure(tree: Path, label: str, big: bytes, other: bytes, resamples: int) ->
                             break
                     time.sleep(0.2)
                 thread.join()
+                cpu_after = tree_cpu(proc.pid)
                 run = client.get("/api/rosters/1/runs").json()["runs"][0]
         finally:
             proc.terminate()
@@ -121,6 +151,9 @@ def measure(tree: Path, label: str, big: bytes, other: bytes, resamples: int) ->
     print(f"{label}: import of {len(big) / 1e6:.1f} MB answered {outcome.get('status')} in "
           f"{outcome['seconds']:.1f} s; bootstrap run {run['id']} {run['status']} "
           f"({run['progress_done']:,}/{run['progress_total']:,} resamples when the import ended)")
+    if cpu_before is not None and cpu_after is not None:
+        print(f"  server CPU time while the import ran (all its processes, bootstrap included): "
+              f"{cpu_after - cpu_before:.1f} s over {outcome['seconds']:.1f} s wall")
     print(f"  /api/health          {stats(health)}")
     print(f"  Trend (other roster) {stats(trend)}")
     return {"health": health, "trend": trend}
