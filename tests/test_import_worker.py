@@ -7,6 +7,7 @@ The rosters are invented here, row by row, so every expected count is a hand cou
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import sqlite3
@@ -223,3 +224,59 @@ def test_profile_supplies_the_roles_and_the_date_reading(empty_client: TestClien
 def _fresh_pool() -> Any:
     yield
     import_worker.shutdown()
+
+
+def _descendants(pid: int) -> set[int]:
+    parents: dict[int, int] = {}
+    for entry in Path("/proc").iterdir():
+        if entry.name.isdigit():
+            try:
+                parents[int(entry.name)] = int((entry / "stat").read_text().rsplit(")", 1)[1].split()[1])
+            except OSError:
+                continue
+    found, frontier = set(), [pid]
+    while frontier:
+        parent = frontier.pop()
+        children = {c for c, p in parents.items() if p == parent} - found
+        found |= children
+        frontier.extend(children)
+    return found
+
+
+def _running(pid: int) -> bool:
+    try:
+        return Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0] != "Z"
+    except OSError:
+        return False
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads the process tree from /proc")
+def test_a_server_killed_mid_import_takes_its_worker_with_it(tmp_path: Path, live_server: Any) -> None:
+    import httpx
+
+    db = tmp_path / "served.db"
+    Store(f"sqlite:///{db}").dispose()
+    server = live_server(db)
+    data = roster_csv(120_000, executive=True)
+
+    def upload() -> None:
+        with contextlib.suppress(httpx.TransportError):  # the server is killed: no answer
+            httpx.post(f"{server.base_url}/api/rosters", files={"file": ("big.csv", data)}, timeout=300)
+
+    thread = threading.Thread(target=upload, daemon=True)
+    thread.start()
+    url = f"sqlite:///{db}"
+    deadline = time.monotonic() + 300
+    while not _writer_active(url):
+        assert time.monotonic() < deadline and thread.is_alive(), "the import was not seen writing"
+        time.sleep(0.005)
+    below = _descendants(server.proc.pid)  # the forkserver and the worker
+    server.stop(signal.SIGKILL)
+    assert below
+    deadline = time.monotonic() + 60
+    while any(_running(pid) for pid in below):
+        assert time.monotonic() < deadline, "the import worker outlived the server"
+        time.sleep(0.05)
+    thread.join(60)
+    assert table_counts(url) == {"rosters": 0, "roster_versions": 0, "departures": 0, "rejected_rows": 0,
+                                 "audit_events": 0}

@@ -18,6 +18,10 @@ thread only waits for the answer, with the GIL released.
 * The start method is "forkserver" where it exists (Linux, macOS), with this module preloaded in the server
   process, so a new worker is a fork of an interpreter that has already imported pandas; "spawn" elsewhere.
   Never "fork": the server has threads (the job runner, the thread pool) that a fork would copy mid-step.
+* A worker ends at once when the server process ends, even by SIGKILL, so an import nobody can be told about
+  is rolled back rather than committed behind the analyst's back (as it was when imports ran in the server).
+  multiprocessing's own parent sentinel cannot tell this under "forkserver" (the pipe it watches is closed
+  as soon as the task is handed over), so each worker watches the server's pid itself.
 * A store only this process can see (SQLite in memory) cannot be shared with a worker; its work runs in the
   calling thread instead, as before.
 """
@@ -26,7 +30,9 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import select
 import threading
+import time
 from concurrent.futures import CancelledError, Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
@@ -107,6 +113,27 @@ def _work(task: str, db_url: str | None, actor: str, args: tuple[Any, ...], kwar
         return _Failure("other", f"{type(exc).__name__}: {exc}")
 
 
+def _watch_server(server_pid: int) -> None:
+    """The workers' initializer: a daemon thread that ends this worker as soon as ``server_pid`` is gone."""
+
+    def watch() -> None:
+        try:
+            # Linux: a pidfd becomes readable when the process exits; no polling
+            select.select([os.pidfd_open(server_pid)], [], [])
+        except (AttributeError, OSError):  # no pidfd here, or the server is already gone: poll
+            while True:
+                try:
+                    os.kill(server_pid, 0)
+                except ProcessLookupError:
+                    break
+                except PermissionError:
+                    pass
+                time.sleep(0.5)
+        os._exit(70)  # no clean-up on purpose: an open transaction must not commit
+
+    threading.Thread(target=watch, name="helmshift-server-watch", daemon=True).start()
+
+
 # -- the pool ------------------------------------------------------------------------------------------------
 
 _lock = threading.Lock()
@@ -125,7 +152,8 @@ def _current_pool() -> ProcessPoolExecutor:
     global _pool
     with _lock:
         if _pool is None:
-            _pool = ProcessPoolExecutor(max_workers=WORKERS, mp_context=_context())
+            _pool = ProcessPoolExecutor(max_workers=WORKERS, mp_context=_context(), initializer=_watch_server,
+                                        initargs=(os.getpid(),))
         return _pool
 
 
