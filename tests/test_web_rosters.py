@@ -135,7 +135,8 @@ def test_import_api_keys_and_duplicate_conflict(empty_client: Any, demo_frame: p
     created = empty_client.post("/api/rosters", files=files, data={"name": "Demo via API"})
     assert created.status_code == 201
     body = created.json()
-    assert set(body) == {"roster", "id", "rows", "accepted", "rejected", "duplicates"}
+    assert set(body) == {"roster", "id", "rows", "accepted", "rejected", "duplicates", "version", "added",
+                         "removed", "changed", "header_row", "columns"}
     counts = expected_counts(demo_frame, demo_clean)
     assert (body["roster"], body["rows"], body["accepted"], body["rejected"], body["duplicates"]) == (
         "Demo via API", counts["rows_total"], counts["accepted"], counts["rejected"], counts["duplicates"])

@@ -20,6 +20,7 @@ from app.web import (
     briefing,
     coverage,
     departures,
+    import_worker,
     reason_rules,
     reasons,
     resampling,
@@ -73,6 +74,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
             app.state.jobs.start()
         yield
         app.state.jobs.shutdown()
+        import_worker.shutdown()  # the import processes (started on the first upload)
 
     app = FastAPI(
         title="Helmshift", version=__version__, lifespan=lifespan,

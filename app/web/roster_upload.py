@@ -21,19 +21,24 @@ from app.intake.ingest import (
     RosterFileError,
     RosterPreview,
     default_roster_name,
-    import_roster,
     preview_roster,
-    review_roster,
     same_file_roster,
 )
-from app.intake.profiles import check_profile_name, chosen_profile, proposed_profiles, save_profile
+from app.intake.profiles import (
+    check_profile_name,
+    chosen_profile,
+    proposed_profiles,
+    resolve_options,
+    save_profile,
+)
 from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import ROLES
 from app.web.deps import app_settings, app_store, app_uploads
 from app.web.forms import Upload, read_form
+from app.web.import_worker import WorkerLost, import_roster_apart, review_roster_apart
 from app.web.rendering import render
 from app.web.rosters import rosters_data
-from app.web.route_docs import FILE, FORM_AGAIN, GUARDS, api_errors, form_body, redirect
+from app.web.route_docs import FILE, FORM_AGAIN, GUARDS, WORKER_LOST, api_errors, form_body, redirect
 from app.web.schemas import RosterImportBody
 
 router = APIRouter()
@@ -121,10 +126,11 @@ def _roster_upload(request: Request, form: dict[str, str | Upload]) -> HTMLRespo
 
 
 def _try_review(data: bytes, filename: str, **options: Any) -> tuple[Review | None, str | None]:
-    """The dry run for the confirm page; a file-level problem is shown beside the controls instead."""
+    """The dry run for the confirm page (in a worker process: it reads every row); a file-level problem, or a
+    worker that ended, is shown beside the controls instead."""
     try:
-        return review_roster(data, filename, **options), None
-    except RosterFileError as exc:
+        return review_roster_apart(data, filename, **options), None
+    except (RosterFileError, WorkerLost) as exc:
         return None, str(exc)
 
 
@@ -160,7 +166,7 @@ def _file_options(form: dict[str, str | Upload]) -> tuple[str | None, str | None
     return encoding, str(form.get("sheet") or "") or None
 
 
-_INTAKE_FIELDS = {
+_INTAKE_FIELDS: dict[str, dict[str, Any]] = {
     "into": {"type": "string", "description": "id of a stored roster: import the file as its next version "
                                               "(a refresh); empty for a new roster"},
     "header_row": {"type": "string", "description": "1-based line (or sheet row) of the header; found when empty"},
@@ -258,7 +264,7 @@ def _roster_review(request: Request, form: dict[str, str | Upload]) -> Response:
 
 
 @router.post("/rosters/confirm", name="roster_confirm", response_model=None, status_code=303,
-             response_class=RedirectResponse, responses=redirect("the new roster's page", FORM_AGAIN),
+             response_class=RedirectResponse, responses=redirect("the new roster's page", FORM_AGAIN, WORKER_LOST),
              openapi_extra=form_body({
                  "token": {"type": "string", "description": "the upload step's token"},
                  "name": {"type": "string"}, **_FILE_OPTIONS, **_ROLE_FIELDS, **_INTAKE_FIELDS,
@@ -286,12 +292,12 @@ def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response
         into = _into(form)
         typed = str(form.get("save_profile") or "")
         save_as = check_profile_name(typed) if typed.strip() else None
-        report = import_roster(
+        report = import_roster_apart(
             store, pending.data, pending.filename, name=None if into else name, roles=roles, encoding=encoding,
             sheet=sheet, allow_same_file=form.get("allow_same_file") == "yes", header_row=header_row,
             date_order=order, fy_end=fy_end, into=into,
         )
-    except (RosterFileError, DuplicateRosterError, StoreError) as exc:
+    except (RosterFileError, DuplicateRosterError, StoreError, WorkerLost) as exc:
         try:
             preview = preview_roster(pending.data, pending.filename, header_row=header_row)
         except RosterFileError:
@@ -304,7 +310,8 @@ def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response
             date_order=order, fy_end=fy_end, into=into, **_targets(store, preview.headers),
             **_profile_offer(store, preview.headers), save_profile=str(form.get("save_profile") or "")[:200],
         )
-        return render(request, "roster_confirm.html", page, status=400, active="rosters")
+        return render(request, "roster_confirm.html", page, status=503 if isinstance(exc, WorkerLost) else 400,
+                      active="rosters")
     app_uploads(request).drop(token)
     if save_as:  # the roles used are the file's own headers, so this cannot be refused after the import
         save_profile(store, save_as, headers=report.headers, roles=report.roles, header_row=report.header_row,
@@ -315,32 +322,70 @@ def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response
     return RedirectResponse(request.url_for("roster_detail", roster_id=report.roster.id), status_code=303)
 
 
+_API_FIELDS: dict[str, dict[str, Any]] = {
+    "name": {"type": "string", "description": "the new roster's name; the file's name when empty"},
+    "into": _INTAKE_FIELDS["into"],
+    "profile": {"type": "string", "description": "a saved intake profile: its roles, header row, date reading "
+                                                 "and fiscal-year end, each unless given here"},
+    "header_row": _INTAKE_FIELDS["header_row"],
+    "date_order": {"type": "string", "enum": list(DATE_ORDERS), "description": "reading of d/m vs m/d dates; "
+                                                                              "default: the profile's, else auto"},
+    "fy_end": {"type": "string", "description": "month (1-12) in which fiscal years end; default: the "
+                                                "profile's, else 12"},
+    "allow_same_file": {"type": "string", "enum": ["yes"],
+                        "description": "import a file whose bytes were imported before"},
+}
+
+
 @router.post("/api/rosters", name="rosters_import_api", response_model=None, status_code=201,
-             responses={201: {"model": RosterImportBody, "description": "Imported"}, **api_errors(400, 409),
+             responses={201: {"model": RosterImportBody, "description": "Imported"}, **api_errors(400, 404, 409, 503),
                         **GUARDS},
-             openapi_extra=form_body({"file": FILE, "name": {"type": "string"}, **_FILE_OPTIONS,
-                                      **_ROLE_FIELDS}, required=("file",), multipart=True))
+             openapi_extra=form_body({"file": FILE, **_API_FIELDS, **_FILE_OPTIONS, **_ROLE_FIELDS},
+                                     required=("file",), multipart=True))
 async def rosters_import_api(request: Request) -> JSONResponse:
-    """Import in one call: multipart ``file``, optional ``name``, ``sheet``, ``encoding`` and ``role_<ROLE>``."""
+    """Import in one call: multipart ``file`` and the options of ``helmshift import`` (``name``, ``into``,
+    ``profile``, ``header_row``, ``date_order``, ``fy_end``, ``sheet``, ``encoding``, ``role_<ROLE>``)."""
     form = await read_form(request)
     return await run_in_threadpool(_rosters_import_api, request, form)
+
+
+def _api_choices(store: Store, form: dict[str, str | Upload]) -> dict[str, Any]:
+    """The import options of the API call: each field given, else the profile's, else the default."""
+    roles: dict[str, str] = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
+    given = {k: str(form.get(k) or "").strip() for k in ("header_row", "date_order", "fy_end")}
+    present: dict[str, str | Upload] = {k: v for k, v in given.items() if v}
+    header_row, order, fy_end = _intake_options(present)
+    profile = chosen_profile(store, str(form.get("profile"))) if str(form.get("profile") or "").strip() else None
+    return resolve_options(profile, roles=roles, header_row=header_row, date_order=order if given["date_order"]
+                           else None, fy_end=fy_end if given["fy_end"] else None)
 
 
 def _rosters_import_api(request: Request, form: dict[str, str | Upload]) -> JSONResponse:
     store = app_store(request)
     try:
         filename, data = _read_upload(form)
-        roles: dict[str, str] = {r: str(form.get(f"role_{r}")) for r in ROLES if form.get(f"role_{r}")}
         encoding, sheet = _file_options(form)
-        report = import_roster(
-            store, data, filename, name=str(form.get("name") or "").strip() or None, roles=roles or None,
-            encoding=encoding, sheet=sheet,
+        into = _into(form)
+        if into is not None:
+            try:
+                store.get_roster(into)
+            except StoreError:
+                return JSONResponse({"error": f"No roster number {into} is stored, so the file was not imported "
+                                              "as its next version."}, status_code=404)
+        report = import_roster_apart(
+            store, data, filename, name=str(form.get("name") or "").strip() or None, encoding=encoding,
+            sheet=sheet, into=into, allow_same_file=form.get("allow_same_file") == "yes",
+            **_api_choices(store, form),
         )
     except DuplicateRosterError as exc:
         return JSONResponse({"error": str(exc)}, status_code=409)
     except (RosterFileError, StoreError) as exc:
         return JSONResponse({"error": str(exc)}, status_code=400)
+    except WorkerLost as exc:
+        return JSONResponse({"error": str(exc)}, status_code=503)
     return JSONResponse({
         "roster": report.roster.name, "id": report.roster.id, "rows": report.rows,
         "accepted": report.accepted, "rejected": report.rejected, "duplicates": report.duplicates,
+        "version": report.version, "added": report.added, "removed": report.removed, "changed": report.changed,
+        "header_row": report.header_row, "columns": report.roles,
     }, status_code=201)

@@ -22,7 +22,8 @@ _ERROR_BODY = {"schema": {"$ref": f"#/components/schemas/{ErrorBody.__name__}"}}
 def api_errors(*codes: int) -> Responses:
     """JSON error bodies ``{"error": ...}`` of an /api route."""
     what = {400: "Input the caller can correct", 404: "No such roster, mapping or run",
-            409: "The same file was imported before"}
+            409: "The same file was imported before",
+            503: "The import's worker process ended before it finished; nothing was stored, try again"}
     return {code: {"model": ErrorBody, "description": what[code]} for code in codes}
 
 
@@ -37,6 +38,12 @@ def page_errors(*codes: int) -> Responses:
 #: a form handler that shows its page again, with the message, instead of the page it would go to
 FORM_AGAIN: Responses = {400: {"description": "The form again (HTML) with what to correct",
                                "content": {"text/html": _TEXT}}}
+
+
+#: an import whose worker process ended before it finished (nothing stored): the form again with why
+WORKER_LOST: Responses = {503: {"description": "The import's worker process ended before it finished; nothing "
+                                               "was stored: the form again (HTML) with why",
+                                "content": {"text/html": _TEXT}}}
 
 
 #: the middleware's refusals of a state-changing request (plain text)

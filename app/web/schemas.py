@@ -92,6 +92,12 @@ class RosterImportBody(_Exact):
     accepted: int
     rejected: int
     duplicates: int
+    version: int = Field(description="the roster version stored: 1 for a new roster, more with into")
+    added: int = Field(description="records added since the version before (all of them for version 1)")
+    removed: int = Field(description="records of the version before that this file no longer has")
+    changed: int = Field(description="records with the same identity whose other fields differ")
+    header_row: int = Field(description="1-based line (or sheet row) read as the header")
+    columns: dict[str, str] = Field(description="the column holding each role")
 
 
 # -- no dataclass: rows built in place ---------------------------------------------------------------

@@ -16,12 +16,22 @@ from app.analysis.inputs import load_input
 from app.analysis.rates import APPROXIMATE, SHARE_VS_RATE, UniverseFlags, universe_overview
 from app.intake.ingest import rejected_rows_csv
 from app.intake.readers import RosterFileError
-from app.intake.universe import UNIVERSE_ROLES, derive_universe, import_universe
+from app.intake.universe import UNIVERSE_ROLES, derive_universe
 from app.store import RejectedRow, Roster, Store, StoreError, Universe
 from app.web.deps import NotFound, app_store
 from app.web.forms import Upload, read_form
+from app.web.import_worker import WorkerLost, import_universe_apart
 from app.web.rendering import as_json, render
-from app.web.route_docs import FILE, FORM_AGAIN, api_errors, download, form_body, page_errors, redirect
+from app.web.route_docs import (
+    FILE,
+    FORM_AGAIN,
+    WORKER_LOST,
+    api_errors,
+    download,
+    form_body,
+    page_errors,
+    redirect,
+)
 from app.web.schemas import define
 
 router = APIRouter()
@@ -93,7 +103,8 @@ _COLUMNS = {f"column_{r}": {"type": "string", "description": f"header holding th
 
 
 @router.post("/rosters/{roster_id}/universe", name="universe_upload", status_code=303,
-             response_class=RedirectResponse, responses=redirect("the Universe page", FORM_AGAIN, page_errors(404)),
+             response_class=RedirectResponse,
+             responses=redirect("the Universe page", FORM_AGAIN, WORKER_LOST, page_errors(404)),
              openapi_extra=form_body({"file": FILE, **_COLUMNS}, required=("file",), multipart=True))
 async def universe_upload(request: Request, roster_id: int) -> Response:
     """Import a universe file for this roster (all rows or none); on a problem, the page again with why."""
@@ -109,10 +120,13 @@ def _universe_upload(request: Request, roster_id: int, form: dict[str, str | Upl
     try:
         if not isinstance(upload, Upload) or not upload.data:
             raise RosterFileError("Choose a universe file (CSV or XLSX) to upload.")
-        import_universe(store, roster.id, upload.data, upload.filename, roles={r: h for r, h in roles.items() if h})
-    except RosterFileError as exc:
+        # in a worker process, like a roster import: a large firm-year file must not stall the server
+        import_universe_apart(store, roster.id, upload.data, upload.filename,
+                              roles={r: h for r, h in roles.items() if h})
+    except (RosterFileError, WorkerLost) as exc:
         page = universe_data(store, roster.id, message=str(exc))
-        return render(request, "universe.html", page, status=400, roster=page.roster, active="universe_page")
+        return render(request, "universe.html", page, status=503 if isinstance(exc, WorkerLost) else 400,
+                      roster=page.roster, active="universe_page")
     return RedirectResponse(request.url_for("universe_page", roster_id=roster.id), status_code=303)
 
 
