@@ -8,6 +8,28 @@ from pathlib import Path
 
 DEFAULT_DB_PATH = Path("helmshift.db")
 DEFAULT_UPLOAD_LIMIT = 50 * 1024 * 1024
+#: data rows one roster may hold (HELMSHIFT_MAX_ROWS); a 1,000,000-row CSV imports in under 1 GB of memory
+DEFAULT_MAX_ROWS = 2_000_000
+
+
+def _positive_int(name: str, default: int) -> int:
+    """A whole-number setting from the environment, or ``default`` when it is unset or empty."""
+    value = os.environ.get(name, "").strip().replace("_", "")
+    if not value:
+        return default
+    if not value.isdigit() or int(value) < 1:
+        raise ValueError(f"{name} must be a whole number above 0; got {os.environ[name]!r}.")
+    return int(value)
+
+
+def upload_limit_from_env() -> int:
+    """Largest roster file in bytes (HELMSHIFT_UPLOAD_LIMIT), for browser uploads and the command line alike."""
+    return _positive_int("HELMSHIFT_UPLOAD_LIMIT", DEFAULT_UPLOAD_LIMIT)
+
+
+def max_rows_from_env() -> int:
+    """Most data rows one roster file may hold (HELMSHIFT_MAX_ROWS)."""
+    return _positive_int("HELMSHIFT_MAX_ROWS", DEFAULT_MAX_ROWS)
 
 
 def database_url(db: str | None = None) -> str:
@@ -32,7 +54,7 @@ class Settings:
 
     @classmethod
     def from_env(cls, db: str | None = None) -> Settings:
-        limit = int(os.environ.get("HELMSHIFT_UPLOAD_LIMIT", DEFAULT_UPLOAD_LIMIT))
+        limit = upload_limit_from_env()
         extra = tuple(h for h in os.environ.get("HELMSHIFT_ALLOWED_HOSTS", "").split(",") if h)
         return cls(db_url=database_url(db), upload_limit=limit,
                    allowed_hosts=cls.allowed_hosts + extra,

@@ -259,3 +259,38 @@ def test_cells_read_missing_values_last_on_every_backend(store: Store, tmp_path:
     for frame in (store.cell_counts(roster.id), store.cell_counts(roster.id, detail=True)):
         sectors = list(frame.loc[frame["year"] == 2001, "sector"])
         assert sectors[:2] == ["Banks", "Energy"] and pd.isna(sectors[2]), sectors
+
+
+def test_cells_filled_at_import_equal_the_databases_own_group_by(store: Store) -> None:
+    """The import counts its cells in pandas; the reference is the database's GROUP BY over the stored
+    departures (``fill_cells``, the migration's path). Ages and tenures with fractions, missing values, a
+    missing sector, interim flags and several spellings of one code all take part."""
+    from sqlalchemy import select
+
+    from app.intake.ingest import import_roster
+    from app.store.cells import fill_cells
+    from app.store.tables import roster_cells, roster_detail_cells, roster_firm_cells, roster_spellings
+
+    rng = np.random.default_rng(5)
+    lines = ["Firm,FY,Reason,Sector,Age,Tenure,Interim"]
+    for i in range(600):
+        age = "" if i % 7 == 0 else f"{rng.uniform(30, 80):.1f}"
+        tenure = "" if i % 5 == 0 else str(rng.choice(["0.5", "3", "3.99", "12", "7.25"]))
+        lines.append(f"F{rng.integers(40)},{rng.integers(2000, 2010)},"
+                     f"{rng.choice(['Retired', 'retired ', 'Dismissed', 'Health'])},"
+                     f"{rng.choice(['', 'Mining', 'Retail'])},{age},{tenure},{rng.choice(['yes', 'no', ''])}")
+    report = import_roster(store, "\n".join(lines).encode(), "cells.csv")
+    tables = (roster_cells, roster_detail_cells, roster_spellings, roster_firm_cells)
+
+    def rows() -> dict[str, list[tuple[Any, ...]]]:
+        with store.engine.connect() as conn:
+            return {t.name: sorted((tuple(r) for r in conn.execute(select(*[c for c in t.c if c.name != "id"]))),
+                                   key=repr) for t in tables}
+
+    from_import = rows()
+    assert all(from_import.values())
+    with store.engine.begin() as conn:
+        for t in tables:
+            conn.execute(t.delete())
+        fill_cells(conn, report.roster.id, report.version)
+    assert rows() == from_import

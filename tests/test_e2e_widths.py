@@ -16,7 +16,7 @@ pytestmark = pytest.mark.browser
 
 PAGES = ("/rosters", "/rosters/1", "/rosters/1/reasons", "/rosters/1/coverage", "/rosters/1/departures",
          "/rosters/1/departures?year=2010&category=forced", "/rosters/1/trend", "/rosters/1/resampling",
-         "/rosters/1/sectors", "/rosters/1/robustness", "/rosters/1/briefing")
+         "/rosters/1/sectors", "/rosters/1/robustness", "/rosters/1/briefing", "/profiles")
 
 
 @pytest.mark.slow

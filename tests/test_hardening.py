@@ -51,16 +51,18 @@ def destructive_routes(app: Any) -> list[str]:
 def test_bare_delete_is_refused_on_every_destructive_route(client: Any, demo_store: Store) -> None:
     paths = destructive_routes(client.app)
     assert "/rosters/{roster_id}/delete" in paths
+    profile = demo_store.save_profile("kept", headers=("Ref", "Why"), roles={"firm_id": "Ref"}, header_row=None,
+                                      date_order="auto", fy_end=12)
     before = demo_store.counts()
     for path in paths:
-        url = path.replace("{roster_id}", "1")
+        url = path.replace("{roster_id}", "1").replace("{profile_id}", str(profile.id))
         for data in (None, {"confirm": ""}, {"confirm": "no"}):
             r = client.post(url, data=data, follow_redirects=False)
             assert r.status_code == 400, (url, data, r.status_code)
             assert "confirm" in r.text.lower()
         api = client.post(url, headers={"accept": "application/json"}, follow_redirects=False)
         assert api.status_code == 400 and "confirm" in api.json()["error"]
-    assert demo_store.counts() == before
+    assert demo_store.counts() == before and [p.name for p in demo_store.list_profiles()] == ["kept"]
     r = client.post("/rosters/1/delete", data={"confirm": "yes"}, follow_redirects=False)
     assert r.status_code == 303
     assert demo_store.counts()["rosters"] == before["rosters"] - 1

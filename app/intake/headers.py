@@ -68,10 +68,11 @@ def score_row(row: list[str], below: list[list[str]]) -> HeaderCandidate | None:
 
 
 def _footer_like(row: list[str], width: int) -> bool:
-    cells = _filled(row)
-    if not cells:
+    # the first filled cell decides before the rest are looked at: this runs once per data row
+    first = next((c for c in row if c and not c.isspace()), None)
+    if first is None or not _FOOTER.match(first):
         return False
-    return bool(_FOOTER.match(cells[0])) and len(cells) <= max(2, width // 2)
+    return len(_filled(row)) <= max(2, width // 2)
 
 
 def _lines_label(lines: list[int]) -> str:
@@ -139,7 +140,7 @@ def assemble(
         if _footer_like(row, width):
             pending.append((line, row))
             return False
-        if not any(c.strip() for c in row) and pending:
+        if pending and not any(c.strip() for c in row):
             pending.append((line, row))
             return False
         for held in pending:

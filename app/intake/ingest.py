@@ -23,7 +23,15 @@ from app.intake.readers import read_table
 from app.intake.refresh import diff_versions
 from app.intake.roles import HEADER_WORDS, ROLE_LABELS, RoleGuess, detect_roles, missing_roles, resolve_roles
 from app.intake.spreadsheet_safety import safe_csv
-from app.intake.validation import DATE_ORDERS, Checked, DateOrder, check_rows, is_still_in_post, validate
+from app.intake.validation import (
+    DATE_ORDERS,
+    ROLE_SAMPLE,
+    Checked,
+    DateOrder,
+    check_rows,
+    is_still_in_post,
+    validate,
+)
 from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import check_choice
 
@@ -33,9 +41,6 @@ __all__ = [
     "detect_roles", "group_rejections", "import_roster", "is_still_in_post", "preview_roster", "rejected_rows_csv",
     "review_roster", "validate",
 ]
-
-#: rows sampled for role detection from values
-ROLE_SAMPLE = 500
 
 
 class DuplicateRosterError(RosterFileError):
@@ -268,7 +273,9 @@ def _prepare(
         )
     if not table.rows and not table.bad_rows:
         raise RosterFileError(f"The file has a header row (line {table.header_line}) but no data rows.")
-    checked = check_rows(table, resolved, date_order=date_order, limits=limits, today=today, fy_end=fy_end)
+    # the rows live on as typed records: their text is let go during validation
+    checked = check_rows(table, resolved, date_order=date_order, limits=limits, today=today, fy_end=fy_end,
+                         release_rows=True)
     return _Prepared(table, resolved, notes, guesses, checked)
 
 

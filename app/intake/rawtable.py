@@ -12,7 +12,10 @@ import re
 from collections import Counter
 from dataclasses import dataclass, field
 
-from app.config import DEFAULT_UPLOAD_LIMIT
+import numpy as np
+import pandas as pd
+
+from app.config import max_rows_from_env, upload_limit_from_env
 from app.store import RejectedRow
 
 
@@ -24,13 +27,15 @@ class RosterFileError(ValueError):
 class ReadLimits:
     """Bounds that keep a hostile upload from exhausting memory or time."""
 
-    max_bytes: int = DEFAULT_UPLOAD_LIMIT
+    #: HELMSHIFT_UPLOAD_LIMIT (default 50 MB); a 1,000,000-row roster is about 100 MB of CSV
+    max_bytes: int = field(default_factory=upload_limit_from_env)
     max_columns: int = 200
     max_cell_chars: int = 10_000
     max_uncompressed: int = 200 * 1024 * 1024
     max_zip_entries: int = 10_000
-    #: far above any real roster; stops a small, highly compressed workbook from tying up the server
-    max_data_rows: int = 500_000
+    #: HELMSHIFT_MAX_ROWS (default 2,000,000): far above any real roster; stops a small, highly compressed
+    #: workbook from tying up the server
+    max_data_rows: int = field(default_factory=max_rows_from_env)
     #: every sheet row openpyxl hands over, blank ones included (a sheet of empty rows is cheap to send)
     max_sheet_rows: int = 1_000_000
     #: wall-clock bound on parsing one workbook
@@ -128,3 +133,27 @@ def add_row(table: RawTable, line: int, row: list[str], limits: ReadLimits = DEF
         return
     table.rows.append(row)
     table.lines.append(line)
+    if len(table.rows) % SHARE_BLOCK == 0:
+        share_equal_cells(table.rows, len(table.rows) - SHARE_BLOCK)
+
+
+#: rows per block whose equal cells are made one string object (see ``share_equal_cells``)
+SHARE_BLOCK = 65_536
+
+
+def share_equal_cells(rows: list[list[str]], start: int) -> None:
+    """Make equal cells of ``rows[start:]`` one string object per column, where a column repeats itself.
+
+    A parser hands over a new string for every cell: 11 million of them (~630 MB) for a 1,000,000-row
+    roster, most of them years, dates, sectors and codes seen before. Factorising each column of a block
+    and rebuilding it from its distinct values keeps one object per value (pandas' own CSV parser does the
+    same); columns of mostly distinct values (names, notes) are left alone. Rows must share one width.
+    """
+    block = np.array(rows[start:], dtype=object)
+    if block.ndim != 2:
+        return
+    for j in range(block.shape[1]):
+        codes, uniq = pd.factorize(block[:, j])
+        if len(uniq) * 2 < len(block):
+            block[:, j] = uniq[codes]
+    rows[start:] = block.tolist()

@@ -113,8 +113,23 @@ def _differs(a: pd.Series, b: pd.Series) -> np.ndarray:
     return (_text(a).to_numpy() != _text(b).to_numpy())
 
 
+#: whole numbers that an outer merge turns into floats (the side without the record holds NaN)
+_WHOLE = ("line", "year")
+
+
 def _record(row: pd.Series, suffix: str = "") -> dict[str, Any]:
-    return {f: row.get(f + suffix) for f in SHOWN}
+    """One side of a merged row as plain values: missing as None, line and year as whole numbers."""
+    out: dict[str, Any] = {}
+    for f in SHOWN:
+        v = row.get(f + suffix)
+        if isinstance(v, np.generic):
+            v = v.item()
+        if v is pd.NA or (isinstance(v, float) and np.isnan(v)):
+            v = None
+        elif f in _WHOLE and isinstance(v, float) and v.is_integer():
+            v = int(v)
+        out[f] = v
+    return out
 
 
 def diff_frames(before: pd.DataFrame, after: pd.DataFrame, *, limit: int | None = None

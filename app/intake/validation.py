@@ -110,12 +110,35 @@ def _numbers(s: pd.Series) -> pd.Series:
     return num.where(num.abs() != float("inf"))
 
 
+#: rows an import keeps of the table's text after validation (what role detection samples)
+ROLE_SAMPLE = 500
+#: rows whose raw JSON is built at a time: bounds the per-cell strings alive at once
+_JSON_BLOCK = 100_000
+
+
+def _shared_map(values: np.ndarray, fn: Callable[[str], object]) -> np.ndarray:
+    """``fn`` applied to every cell, computed once per distinct value (most roster columns repeat)."""
+    codes, uniq = pd.factorize(values)
+    mapped = np.empty(len(uniq), dtype=object)
+    mapped[:] = [fn(u) for u in uniq]
+    return mapped[codes]
+
+
+def _stripped(values: np.ndarray) -> np.ndarray:
+    """Cells stripped of surrounding spaces, "" as None."""
+    return _shared_map(values, lambda u: u.strip() or None)
+
+
 def _raw_json(headers: list[str], columns: list[np.ndarray]) -> list[str]:
-    """``json.dumps(dict(zip(headers, row)), ensure_ascii=False)`` for every row, column-wise."""
+    """``json.dumps(dict(zip(headers, row)), ensure_ascii=False)`` for every row, column-wise, in blocks."""
     template = "{" + ", ".join(json.dumps(h, ensure_ascii=False).replace("%", "%%") + ": %s"
                                for h in headers) + "}"
-    encoded = [list(map(encode_basestring, col)) for col in columns]
-    return [template % r for r in zip(*encoded, strict=True)]
+    out: list[str] = []
+    n = len(columns[0]) if columns else 0
+    for start in range(0, n, _JSON_BLOCK):
+        encoded = [_shared_map(col[start:start + _JSON_BLOCK], encode_basestring) for col in columns]
+        out.extend(template % r for r in zip(*encoded, strict=True))
+    return out
 
 
 def validate(
@@ -130,15 +153,24 @@ def validate(
 
 def check_rows(
     table: RawTable, roles: dict[str, str], *, date_order: DateOrder = "auto",
-    limits: ReadLimits = DEFAULT_LIMITS, today: date | None = None, fy_end: int = 12,
+    limits: ReadLimits = DEFAULT_LIMITS, today: date | None = None, fy_end: int = 12, release_rows: bool = False,
 ) -> Checked:
-    """Validate every row. Exact duplicate rows are dropped first (counted, never rejected)."""
+    """Validate every row. Exact duplicate rows are dropped first (counted, never rejected).
+
+    ``release_rows``: the caller needs ``table.rows`` no more than their first ``ROLE_SAMPLE``; the rest are let go
+    once the columns are built (on 1,000,000 rows the row lists alone are ~150 MB).
+    """
     max_year = (today or date.today()).year + 1
     messages: list[str] = []
     order_label, other_label, other_rescues = "", "", 0
     total = len(table.rows)
-    columns = ([np.array(c, dtype=object) for c in zip(*table.rows, strict=True)] if total
-               else [np.empty(0, dtype=object) for _ in table.headers])
+    grid = np.empty((total, len(table.headers)), dtype=object)
+    if total:
+        grid[:] = table.rows  # every row has the header's width (``add_row``)
+    columns = [grid[:, j] for j in range(grid.shape[1])]
+    del grid
+    if release_rows:
+        del table.rows[ROLE_SAMPLE:]
     # the raw JSON is needed for every row anyway, and equal rows give equal JSON: hashing these
     # strings finds exact duplicates more cheaply than hashing row tuples
     raw_all = _raw_json(table.headers, columns)
@@ -159,21 +191,23 @@ def check_rows(
     n = len(lines)
     by_header = dict(zip(table.headers, columns, strict=True))
     p = _Problems()
+    # a row's raw JSON is at least as long as any of its cells: one pass over the rows rules out overlong cells
+    any_long = n > 0 and max(map(len, raw)) > limits.max_cell_chars
     for h, cells in by_header.items():
         if table.may_hold_nul and "\x00" in "".join(cells):
             p.add(np.array(["\x00" in c for c in cells]), f"NUL byte in column {h!r}")
-        if n and max(map(len, cells)) > limits.max_cell_chars:
+        if any_long and max(map(len, cells)) > limits.max_cell_chars:
             lengths = np.fromiter(map(len, cells), dtype=np.int64, count=n)
             p.add(lengths > limits.max_cell_chars, _worded(
                 f"cell in column {h!r} has {{:,}} characters (limit {limits.max_cell_chars:,})", lengths.__getitem__))
     first = table.headers[0]
-    maybe_header = np.flatnonzero(np.array([c.strip() == first for c in by_header[first]], dtype=bool))
+    maybe_header = np.flatnonzero(_shared_map(by_header[first], str.strip) == first)
     repeats_header = [int(i) for i in maybe_header
                       if all(by_header[h][i].strip() == h for h in table.headers)]
 
     col = {role: _Column.of(by_header[h])
            for role, h in roles.items() if role in _TYPED_ROLES}
-    firm_id = np.array([c.strip() for c in by_header[roles["firm_id"]]], dtype=object)
+    firm_id = _shared_map(by_header[roles["firm_id"]], str.strip)
     p.add(firm_id == "", f"missing firm id (column {roles['firm_id']!r} is empty)")
     reason = col["reason"]
     p.add(reason.take(reason.uniq == ""), f"missing reason code (column {roles['reason']!r} is empty)")
@@ -248,7 +282,7 @@ def check_rows(
     def text(role: str) -> np.ndarray:
         if role not in roles:
             return np.full(n, None, dtype=object)
-        return np.array([c.strip() or None for c in by_header[roles[role]]], dtype=object)
+        return _stripped(by_header[roles[role]])
 
     fiscal = np.where(np.isnan(year), date_year, year)
     known = fiscal[keep & ~in_post & ~np.isnan(fiscal)]
@@ -264,12 +298,19 @@ def check_rows(
     if groups:
         messages.append(f"{len(groups):,} reason code(s) were written in more than one spelling (case, spaces, "
                         "dashes or quotes); each is one code under its most frequent spelling.")
-    records = pd.DataFrame({
+    columns_out = {
         "line": lines, "firm_id": firm_id, "firm_name": text("firm_name"), "sector": text("sector"),
         "year": fiscal, "date": iso, "reason": shown, "reason_raw": raw_reason,
         "executive": text("executive"), "age": num["age"], "tenure": num["tenure"], "interim": interim,
-        "notes": text("notes"), "raw": np.array(raw, dtype=object),
-    })[keep].reset_index(drop=True)
+        "notes": text("notes"), "raw": raw,
+    }
+    del raw, columns
+    by_header.clear()  # the grid of text cells goes with it
+    # each column filtered once, then the frame built without a second copy (on 1,000,000 rows every copy of
+    # the object columns is ~100 MB)
+    records = pd.DataFrame({k: np.asarray(v, dtype=object if k == "raw" else None)[keep]
+                            for k, v in columns_out.items()}, copy=False)
+    del columns_out
     records["year"] = records["year"].astype("int64")
     return Checked(records, rejected, duplicates, messages, still_in_post=int(np.sum(serving & keep)), code_groups=groups,
                    order_label=order_label, other_order=other_label, other_order_rescues=other_rescues)

@@ -10,7 +10,7 @@ import json
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 
-from sqlalchemy import insert, select, update
+from sqlalchemy import delete, insert, select, update
 
 from app.store.audit import record_event
 from app.store.engine import Gateway
@@ -105,3 +105,24 @@ class ProfileQueries(Gateway):
             rows = conn.execute(select(intake_profiles).where(intake_profiles.c.headers == key)
                                 .order_by(intake_profiles.c.updated_at.desc(), intake_profiles.c.id.desc())).all()
         return [_profile(r) for r in rows]
+
+    def profile_by_id(self, profile_id: int) -> IntakeProfile:
+        """The profile with this id; ``StoreError`` when there is none (ids are never reused)."""
+        with self.engine.connect() as conn:
+            row = conn.execute(select(intake_profiles).where(intake_profiles.c.id == int(profile_id))).first()
+        if row is None:
+            raise StoreError(f"No intake profile number {profile_id} is saved; it may have been deleted.")
+        return _profile(row)
+
+    def delete_profile(self, ref: int | str) -> IntakeProfile:
+        """Delete the profile with this id (int) or name (str); one audit event in the same transaction.
+
+        Rosters imported with it are untouched: a profile only says how files are read.
+        """
+        profile = self.profile_by_id(ref) if isinstance(ref, int) else self.get_profile(ref)
+        with self.engine.begin() as conn:
+            gone = conn.execute(delete(intake_profiles).where(intake_profiles.c.id == profile.id)).rowcount
+            if not gone:
+                raise StoreError(f"Intake profile {profile.name!r} was deleted meanwhile.")
+            record_event(conn, "intake_profile_delete", f"profile:{profile.name}", {"id": profile.id})
+        return profile

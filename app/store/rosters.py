@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Mapping, Sequence
-from typing import Any, cast
+from typing import Any
 
 import pandas as pd
 from sqlalchemy import (
@@ -19,8 +19,8 @@ from sqlalchemy import (
 )
 
 from app.store.audit import current_actor, record_event
-from app.store.cells import fill_cells, version_of
-from app.store.engine import Gateway
+from app.store.cells import fill_cells_from_records, version_of
+from app.store.engine import Gateway, bulk_insert
 from app.store.records import (
     MAX_ID,
     RejectedRow,
@@ -95,12 +95,9 @@ class RosterQueries(Gateway):
             conn.execute(insert(roster_versions).values(roster_id=roster_id, version=version,
                                                         author=current_actor(), **figures))
             if len(records):
-                frame = records.loc[:, list(DEPARTURE_FIELDS)].astype(object)
-                frame = frame.where(pd.notna(frame), None)
-                frame.insert(0, "roster_id", roster_id)
-                frame["version"] = version
-                self._bulk_insert(conn, departures, frame)
-                fill_cells(conn, roster_id, version)
+                bulk_insert(conn, departures, records, {"roster_id": roster_id, "version": version},
+                            columns=list(DEPARTURE_FIELDS))
+                fill_cells_from_records(conn, roster_id, version, records)
             if rejected:
                 conn.execute(
                     insert(rejected_rows),
@@ -111,18 +108,8 @@ class RosterQueries(Gateway):
 
     @staticmethod
     def _bulk_insert(conn: Connection, table: Table, frame: pd.DataFrame) -> None:
-        """Insert many rows inside the caller's transaction.
-
-        SQLAlchemy's per-row parameter processing costs ~3x the insert itself on 100,000 rows, so for
-        positional DBAPI parameter styles the rows go to ``executemany`` as plain tuples.
-        """
-        marker = {"qmark": "?", "format": "%s", "pyformat": "%s"}.get(conn.dialect.paramstyle)
-        if marker is None:
-            conn.execute(insert(table), cast(list[dict[str, Any]], frame.to_dict("records")))
-            return
-        columns = ", ".join(frame.columns)
-        sql = f"INSERT INTO {table.name} ({columns}) VALUES ({', '.join([marker] * len(frame.columns))})"
-        conn.exec_driver_sql(sql, list(frame.itertuples(index=False, name=None)))
+        """Insert many rows inside the caller's transaction (see :func:`app.store.engine.bulk_insert`)."""
+        bulk_insert(conn, table, frame)
 
     def _roster_from_row(self, row: Any, at: Any = None) -> Roster:
         """A roster as of its newest version, or as of version ``at`` (a ``roster_versions`` row)."""

@@ -21,6 +21,7 @@ from app.web import (
     coverage,
     departures,
     import_worker,
+    profiles,
     reason_rules,
     reasons,
     resampling,
@@ -113,7 +114,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
     for module in (auth, accounts, rosters, roster_upload, roster_versions, reasons, reason_rules, coverage,
-                   departures, trend, resampling, sectors, briefing, universe):
+                   departures, trend, resampling, sectors, briefing, universe, profiles):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)
