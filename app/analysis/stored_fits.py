@@ -6,43 +6,21 @@ the statistics. ``run_trend`` records each fit as a run whose result carries eve
 prints it again without importing scipy.stats or statsmodels, which are most of a cold start.
 
 This module imports no model code on purpose (only pandas via the cell store): that is its point.
+``app.analysis.quick_fit`` does the same without pandas or SQLAlchemy for the command line.
 """
 
 from __future__ import annotations
 
-import hashlib
-from functools import cache
-from pathlib import Path
 from typing import Any
 
-from app import __version__
 from app.analysis.cellstore import groups_from_counts
 from app.analysis.inputs import AnalysisInput
+from app.analysis.quick_fit import SUMMARY_KEYS, engine_tag, fit_params
 from app.stats.cells import groups_fingerprint
 from app.store import Run, Store
 
-STATS_DIR = Path(__file__).resolve().parents[1] / "stats"
-#: the fields of ``helmshift fit --json`` that come from the fit itself (the rest are labels and warnings)
-SUMMARY_KEYS = ("fitted_share", "headline")
-
-
-@cache
-def engine_tag() -> str:
-    """Names the statistics code a stored result came from: any change to ``app/stats`` gives a new tag.
-
-    A stored fit is served again only under the same tag, so a changed engine never prints old numbers.
-    """
-    digest = hashlib.sha256(__version__.encode())
-    for path in sorted(STATS_DIR.glob("*.py")):
-        digest.update(path.name.encode() + b"\0" + path.read_bytes() + b"\0")
-    return digest.hexdigest()[:16]
-
-
-def fit_params(model: str, spline_df: int, quasi: bool) -> dict[str, Any]:
-    """The options a fit run records (and is matched on)."""
-    return ({"model": model} | ({"spline_df": spline_df} if model == "spline" else {})
-            | ({"quasi": True} if quasi else {}))
-
+__all__ = ["SUMMARY_KEYS", "counts_fingerprint", "engine_tag", "fit_params", "matches", "stored_fit",
+           "stored_summary"]
 
 def matches(run: Run, inp: AnalysisInput, params: dict[str, Any], fingerprint: str) -> bool:
     """A finished fit run of these counts, window, mapping version and options, from this statistics code."""
