@@ -35,6 +35,8 @@ from app.types import UNMAPPED
 STATS_DIR = Path(__file__).resolve().parents[1] / "stats"
 #: the fields of ``helmshift fit --json`` that come from the fit itself (the rest are labels and warnings)
 SUMMARY_KEYS = ("fitted_share", "headline")
+#: where a fit run's result keeps its profile-likelihood ends for the next fit of the same counts (not printed)
+PROFILE_KEY = "profile_bounds"
 #: the coverage rule ``load_input`` applies by default (not_excluded basis)
 DEFAULT_THRESHOLD = 0.5
 NOTHING_COUNTED = ("The mapping counts no departure as forced or voluntary (every code is excluded), so there is "
@@ -179,7 +181,7 @@ def _summary(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None
     nothing = not any(category in ("forced", "voluntary") for _, _, category, _ in categorised)
     listed = sorted(((code, n) for code, n in unmapped.items() if n > 0), key=lambda item: (-item[1], item[0]))
     # the same keys in the same order as ``stored_summary``
-    payload = {k: v for k, v in result.items() if k not in ("engine", "fitted_share", "headline")}
+    payload = {k: v for k, v in result.items() if k not in ("engine", PROFILE_KEY, "fitted_share", "headline")}
     payload.update({"roster": roster.name, "mapping": f"{mapping.name} v{mapping.version}", "run": run["id"],
                     "sentence": result["sentence"], "warnings": warning_notes(nothing, listed),
                     "fitted_share": result["fitted_share"], "headline": result["headline"]})

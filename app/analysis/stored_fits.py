@@ -11,16 +11,19 @@ This module imports no model code on purpose (only pandas via the cell store): t
 
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from app.analysis.cellstore import groups_from_counts
 from app.analysis.inputs import AnalysisInput
-from app.analysis.quick_fit import SUMMARY_KEYS, engine_tag, fit_params
+from app.analysis.quick_fit import PROFILE_KEY, SUMMARY_KEYS, engine_tag, fit_params
 from app.stats.cells import groups_fingerprint
 from app.store import Run, Store
 
-__all__ = ["SUMMARY_KEYS", "counts_fingerprint", "engine_tag", "fit_params", "matches", "stored_fit",
-           "stored_summary"]
+if TYPE_CHECKING:  # the model code is imported where a fit needs it, not by a reader of stored fits
+    from app.stats.profile import ProfileResult
+
+__all__ = ["PROFILE_KEY", "SUMMARY_KEYS", "counts_fingerprint", "engine_tag", "fit_params", "matches", "profiles_to_json", "stored_fit",
+           "stored_profiles", "stored_summary"]
 
 def matches(run: Run, inp: AnalysisInput, params: dict[str, Any], fingerprint: str) -> bool:
     """A finished fit run of these counts, window, mapping version and options, from this statistics code."""
@@ -45,13 +48,32 @@ def stored_fit(store: Store, inp: AnalysisInput, params: dict[str, Any]) -> Run 
     return max(found, key=lambda run: run.id) if found else None
 
 
+def stored_profiles(store: Store, inp: AnalysisInput, params: dict[str, Any], fingerprint: str
+                    ) -> dict[str, ProfileResult] | None:
+    """The profile-likelihood ends a recorded fit of these counts, window and options found (``TrendFit.profiles``),
+    or None. The engine tag in ``matches`` guarantees the same statistics code, hence the same ends."""
+    from app.stats.profile import ProfileResult
+
+    found = [run for run in store.list_runs(inp.roster.id, "fit")
+             if matches(run, inp, params, fingerprint) and PROFILE_KEY in (run.result or {})]
+    if not found:
+        return None
+    stored = (max(found, key=lambda run: run.id).result or {})[PROFILE_KEY]
+    return {name: ProfileResult(float(low), float(high), message) for name, (low, high, message) in stored.items()}
+
+
+def profiles_to_json(profiles: dict[str, ProfileResult]) -> dict[str, list[Any]]:
+    """``TrendFit.profiles`` as stored in a run's result (open ends stay infinite: Python's JSON keeps them)."""
+    return {name: [p.low, p.high, p.message] for name, p in profiles.items()}
+
+
 def stored_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", spline_df: int = 3,
                    quasi: bool = False) -> dict[str, Any] | None:
     """``fit_summary`` of a fit already recorded for these counts and options, or None (nothing fitted)."""
     run = stored_fit(store, inp, fit_params(model, spline_df, quasi))
     if run is None or run.result is None:
         return None
-    payload = {k: v for k, v in run.result.items() if k not in ("engine", "fitted_share", "headline")}
+    payload = {k: v for k, v in run.result.items() if k not in ("engine", PROFILE_KEY, "fitted_share", "headline")}
     payload.update({"roster": inp.roster.name, "mapping": inp.mapping_label, "run": run.id,
                     "sentence": run.result["sentence"], "warnings": inp.warnings(),
                     "fitted_share": run.result["fitted_share"], "headline": run.result["headline"]})
