@@ -176,3 +176,20 @@ def test_cli_quick_and_ordinary_print_the_same(shared_demo_db: Path, tmp_path: P
     assert quick_summary(f"sqlite:///{db}", DEMO, window=(1999, 2016)) is not None  # the second takes the quick path
     assert main(argv) == 0
     assert capsys.readouterr().out == first
+
+
+def test_a_fit_the_trend_page_recorded_is_served(shared_demo_db: Path, tmp_path: Path) -> None:
+    """An analyst who opened Trend has recorded the default fit: the next ``helmshift fit`` is the quick one,
+    printing what the ordinary path prints for that run."""
+    from app.web.trend import trend_data
+
+    db = copy_database(shared_demo_db, tmp_path / "demo.db")
+    url = f"sqlite:///{db}"
+    store = Store(url)
+    roster = store.get_roster(DEMO)
+    assert quick_summary(url, DEMO) is None
+    trend_data(store, roster.id)
+    quick = quick_summary(url, DEMO)
+    assert quick is not None
+    assert quick == _ordinary(store, DEMO, {}, reuse=True)
+    store.dispose()
