@@ -77,3 +77,29 @@ def test_a_run_recorded_without_profiles_searches_again(shared_demo_db: Path, tm
     assert len(searches) == 2
     assert fit_to_dict(again.fit) == fit_to_dict(fitted.fit)
     fresh.dispose()
+
+
+def test_an_open_end_is_kept_as_null_and_read_back_as_infinite(shared_demo_db: Path, tmp_path: Path,
+                                                               searches: list[float]) -> None:
+    """JSON has no infinity: an open profile end is stored as null and comes back as an unbounded interval."""
+    import math
+
+    from app.analysis.stored_fits import profiles_to_json
+    from app.stats.profile import ProfileResult
+
+    open_end = ProfileResult(-math.inf, 0.05, "The lower end is open (a note).")
+    assert profiles_to_json({"binomial": open_end}) == {"binomial": [None, 0.05, "The lower end is open (a note)."]}
+    url = f"sqlite:///{copy_database(shared_demo_db, tmp_path / 'demo.db')}"
+    first = Store(url)
+    fitted = run_trend(first, load_input(first, DEMO))
+    run = first.get_run(fitted.run_id)
+    assert run.result is not None
+    first.finish_run(run.id, {**run.result, PROFILE_KEY: profiles_to_json({"binomial": open_end})}, seconds=0.0)
+    first.dispose()
+    fresh = Store(url)
+    again = run_trend(fresh, load_input(fresh, DEMO)).fit
+    assert len(searches) == 1  # read, not searched
+    assert again.profiles["binomial"] == open_end
+    assert again.conf_int["profile"] == (0.0, math.exp(0.05))
+    assert "The lower end is open (a note)." in again.messages
+    fresh.dispose()

@@ -11,6 +11,7 @@ This module imports no model code on purpose (only pandas via the cell store): t
 
 from __future__ import annotations
 
+import math
 from typing import TYPE_CHECKING, Any
 
 from app.analysis.cellstore import groups_from_counts
@@ -22,8 +23,9 @@ from app.store import Run, Store
 if TYPE_CHECKING:  # the model code is imported where a fit needs it, not by a reader of stored fits
     from app.stats.profile import ProfileResult
 
-__all__ = ["PROFILE_KEY", "SUMMARY_KEYS", "counts_fingerprint", "engine_tag", "fit_params", "matches", "profiles_to_json", "stored_fit",
-           "stored_profiles", "stored_summary"]
+__all__ = ["PROFILE_KEY", "SUMMARY_KEYS", "counts_fingerprint", "engine_tag", "fit_params", "matches",
+           "profiles_to_json", "stored_fit", "stored_profiles", "stored_summary"]
+
 
 def matches(run: Run, inp: AnalysisInput, params: dict[str, Any], fingerprint: str) -> bool:
     """A finished fit run of these counts, window, mapping version and options, from this statistics code."""
@@ -59,12 +61,14 @@ def stored_profiles(store: Store, inp: AnalysisInput, params: dict[str, Any], fi
     if not found:
         return None
     stored = (max(found, key=lambda run: run.id).result or {})[PROFILE_KEY]
-    return {name: ProfileResult(float(low), float(high), message) for name, (low, high, message) in stored.items()}
+    return {name: ProfileResult(-math.inf if low is None else float(low), math.inf if high is None else float(high),
+                                message) for name, (low, high, message) in stored.items()}
 
 
 def profiles_to_json(profiles: dict[str, ProfileResult]) -> dict[str, list[Any]]:
-    """``TrendFit.profiles`` as stored in a run's result (open ends stay infinite: Python's JSON keeps them)."""
-    return {name: [p.low, p.high, p.message] for name, p in profiles.items()}
+    """``TrendFit.profiles`` as a run's result keeps them: an open end (infinite) is null, as in every JSON."""
+    return {name: [p.low if math.isfinite(p.low) else None, p.high if math.isfinite(p.high) else None, p.message]
+            for name, p in profiles.items()}
 
 
 def stored_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", spline_df: int = 3,
