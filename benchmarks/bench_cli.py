@@ -3,14 +3,14 @@
 Run: ``python benchmarks/bench_cli.py [--rows 100000] [--before REV] [--repeat 5]``
 
 The roster is the one ``bench_pages.py`` builds (cached in the temp folder: ~99,400 departures, ~25,000 firms,
-30 years, the demo mappings). ``--before`` (default ``73ffe36``, main when the start-up work began) is written
+30 years, the demo mappings). ``--before`` (default ``7d99e8f``, main when the fit-fast work began) is written
 out with ``git archive`` into a temporary folder; both trees then run as fresh processes (``python -m app.cli
 fit --db ... --roster 1 --json``, ``PYTHONPATH`` = the tree) over copies of the same database, interleaved
 so both see the same minute of machine load:
 
 - **first fit**: a database copy on which no fit of these counts was recorded yet (a new copy per run);
 - **repeat fit**: the same command again on a database where it already ran once (this tree prints the
-  recorded fit without importing scipy.stats or statsmodels; the earlier tree fits again every time).
+  recorded fit from ``app.analysis.quick_fit``: no numpy, pandas, SQLAlchemy, scipy or statsmodels).
 
 Each is the median of ``--repeat`` runs after one warm-up run (which fills the OS file cache); the load
 average is printed before and after. Both trees' JSON outputs are compared: they must be equal apart from
@@ -35,8 +35,9 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from bench_pages import build_database  # noqa: E402
 
-#: main's head when the start-up work began (the fit path then imported scipy.stats and statsmodels always)
-BEFORE = "73ffe36"
+#: main when the fit-fast work began (a repeated fit printed the recorded run through SQLAlchemy and pandas);
+#: 73ffe36 is main before any start-up work (every fit imported scipy.stats and statsmodels)
+BEFORE = "7d99e8f"
 
 
 def load() -> str:

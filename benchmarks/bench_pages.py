@@ -5,8 +5,10 @@ Run: ``python benchmarks/bench_pages.py [--rows 100000] [--before REV] [--resamp
 1. Builds (once, cached in the temp folder) a SQLite roster of about ``--rows`` departures by importing
    rosters drawn by ``demo_data/generate.py`` with successive seeds (firm codes prefixed by the seed, so
    the firms stay distinct: about 24,500 firms over 30 years), plus the two demo mappings.
-2. Extracts ``--before`` (default: the last commit before the cell store) with ``git archive`` into a
+2. Extracts ``--before`` (default: main when the fit-fast work began) with ``git archive`` into a
    temporary folder and, for that tree and for this one, in child processes over the same database:
+   - the first Trend and Briefing visits of a fresh server, cold and warm, before and after a fit of these
+     counts was recorded (wall and CPU of the process);
    - each page through Starlette's TestClient: one warm-up request, then the median of 5 (server time:
      the request handled in-process, no network);
    - each page again, repeatedly, while a ``--resamples`` firm bootstrap runs in the app's worker thread
@@ -32,8 +34,8 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-#: the last commit before the cell store: every page read the whole roster
-BEFORE = "4944638"
+#: main when the fit-fast work began (before: the last commit before the cell store, 4944638)
+BEFORE = "7d99e8f"
 PAGES = ("", "/reasons", "/coverage", "/trend", "/resampling", "/sectors", "/robustness", "/briefing")
 NAMES = {"": "Roster", "/reasons": "Reason codes", "/coverage": "Coverage", "/trend": "Trend",
          "/resampling": "Resampling", "/sectors": "Sectors", "/robustness": "Robustness", "/briefing": "Briefing"}
@@ -82,6 +84,23 @@ def measure(db: Path, resamples: int) -> dict[str, object]:
 
     settings = Settings(db_url=f"sqlite:///{db}")
     out: dict[str, object] = {}
+    # cold first visits: a fresh server (empty memo) whose Coverage page has read the cells, then the first
+    # Trend and Briefing visits (fit, profile intervals, figures) and a second, warm one; twice: first with no
+    # fit of these counts recorded ("never fitted"), then in another fresh server once it is ("fitted before":
+    # this tree reads the recorded profile-likelihood ends, the earlier one searches again)
+    cold: dict[str, dict[str, list[float]]] = {}
+    for label in ("never fitted", "fitted before"):
+        with TestClient(create_app(settings)) as client:
+            client.get("/rosters/1/coverage")
+            for page in ("/trend", "/briefing"):
+                for visit in ("cold", "warm"):
+                    wall, cpu = time.perf_counter(), time.process_time()
+                    response = client.get(f"/rosters/1{page}")
+                    if response.status_code != 200:
+                        raise SystemExit(f"{page}: {response.status_code} {response.text[:300]}")
+                    cold.setdefault(f"{label}|{page}|{visit}", {})["wall"] = [time.perf_counter() - wall]
+                    cold[f"{label}|{page}|{visit}"]["cpu"] = [time.process_time() - cpu]
+    out["cold"] = cold
     with TestClient(create_app(settings)) as client:
         medians = {}
         for page in PAGES:
@@ -179,6 +198,13 @@ def main() -> None:
     bf, af = float(before["fit"]), float(after["fit"])  # type: ignore[arg-type]
     print(f"{'helmshift fit':<14} {bf * 1e3:>10.0f} {af * 1e3:>9.0f} {bf / af:>6.1f}x "
           f"{'ok' if af < 0.5 else 'SLOW':>7}   (wall, fresh process)")
+    print(f"\n{'first visits (fresh server)':<36} {'before wall ms':>14} {'CPU ms':>7} {'after wall ms':>14} "
+          f"{'CPU ms':>7}")
+    for key in before["cold"]:  # type: ignore[attr-defined]
+        bc, ac = before["cold"][key], after["cold"][key]  # type: ignore[index]
+        label, page, visit = key.split("|")
+        print(f"{NAMES[page] + ', ' + visit + ', ' + label:<36} {bc['wall'][0] * 1e3:>14.0f} {bc['cpu'][0] * 1e3:>7.0f} "
+              f"{ac['wall'][0] * 1e3:>14.0f} {ac['cpu'][0] * 1e3:>7.0f}")
     for label in ("before", "after"):
         r = results[label]
         rounds = len(r["during"][""])  # type: ignore[index]

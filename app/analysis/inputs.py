@@ -22,6 +22,7 @@ from app.analysis.cellstore import (
     roster_fingerprint,
     unmapped_codes,
 )
+from app.analysis.quick_fit import parse_mapping_ref, warning_notes
 from app.stats.cells import Cells
 from app.stats.coverage import WindowSuggestion, YearFlag, flag_years, suggest_window
 from app.store import MappingVersion, Roster, Run, Store, StoreError
@@ -90,23 +91,9 @@ class AnalysisInput:
         return not self.counts["category"].isin(["forced", "voluntary"]).any()
 
     def warnings(self) -> list[str]:
-        notes: list[str] = [NOTHING_COUNTED] if self.mapping is not None and self.counts_nothing() else []
         unmapped = self.unmapped_codes()
-        if len(unmapped):
-            total = int(unmapped["count"].sum())
-            notes.append(
-                f"{len(unmapped)} reason code(s) covering {total} departure(s) in the window have no "
-                "category and are left out; map them on the Reason codes page."
-            )
-        return notes
-
-
-def parse_mapping_ref(ref: str) -> tuple[str, int | None]:
-    """``NAME`` or ``NAME:VERSION``."""
-    name, sep, version = ref.rpartition(":")
-    if sep and version.isdigit():
-        return name, int(version)
-    return ref, None
+        return warning_notes(self.mapping is not None and self.counts_nothing(),
+                             [(str(c), int(n)) for c, n in zip(unmapped["code"], unmapped["count"], strict=True)])
 
 
 def load_input(
@@ -168,10 +155,6 @@ def _coverage(counts: pd.DataFrame, threshold: float) -> tuple[pd.DataFrame, Win
         # a valid mapping that excludes every code: nothing to suggest from; every page shows the whole
         # span and says why no trend can be fitted (NOTHING_COUNTED), instead of failing
         return table, _whole_span(table, threshold), []
-
-
-NOTHING_COUNTED = ("The mapping counts no departure as forced or voluntary (every code is excluded), so there is "
-                   "nothing to fit; change the categories on the Reason codes page.")
 
 
 def _whole_span(table: pd.DataFrame, threshold: float) -> WindowSuggestion:

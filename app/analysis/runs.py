@@ -9,7 +9,15 @@ from typing import Any
 from app.analysis.cellstore import cells_from_counts, memoised
 from app.analysis.inputs import AnalysisInput
 from app.analysis.robustness import check_robustness, robustness_to_dict
-from app.analysis.stored_fits import engine_tag, fit_params, matches, stored_summary
+from app.analysis.stored_fits import (
+    PROFILE_KEY,
+    engine_tag,
+    fit_params,
+    matches,
+    profiles_to_json,
+    stored_profiles,
+    stored_summary,
+)
 from app.stats.coverage import suggest_window
 from app.stats.headline import headline_fields
 from app.stats.periods import PeriodComparison, compare_periods, default_periods
@@ -48,17 +56,24 @@ def _record_run(store: Store, inp: AnalysisInput, params: dict[str, Any], finger
 def run_trend(store: Store, inp: AnalysisInput, *, model: str = "linear", spline_df: int = 3,
               quasi: bool = False) -> TrendOutcome:
     """Fit the trend over the window and record the run (``quasi``: quasi-binomial intervals whatever the
-    dispersion)."""
+    dispersion).
+
+    The profile-likelihood ends, the slowest part of a fit, are read from a fit run already recorded for the
+    same counts, window, options and statistics code when there is one (``stored_profiles``), so the first
+    page visit after a server start or a change back to an earlier mapping or window skips the root search.
+    """
     started = time.perf_counter()
     cells = inp.group_cells(by_sector=model == "sector")
+    params = fit_params(model, spline_df, quasi)
+    fingerprint = cells.fingerprint()
     # a fit depends only on the counts, window and options: memoised for repeated pages (the run is still recorded)
     fit = memoised(inp.store, ("fit_trend", *inp.key, model, spline_df, quasi),
-                   lambda: fit_trend(cells, model, spline_df=spline_df, quasi=quasi))  # type: ignore[arg-type]
-    params = fit_params(model, spline_df, quasi)
+                   lambda: fit_trend(cells, model, spline_df=spline_df, quasi=quasi,  # type: ignore[arg-type]
+                                     profiles=stored_profiles(store, inp, params, fingerprint)))
     # the result carries what ``helmshift fit --json`` prints, so a later command can print it without
-    # fitting again (app.analysis.stored_fits)
-    result = {**fit_to_dict(fit), **headline_fields(fit)}
-    run_id = _record_run(store, inp, params, cells.fingerprint(), result, time.perf_counter() - started)
+    # fitting again (app.analysis.stored_fits), and the profile ends for the next fit of these counts
+    result = {**fit_to_dict(fit), **headline_fields(fit), PROFILE_KEY: profiles_to_json(fit.profiles)}
+    run_id = _record_run(store, inp, params, fingerprint, result, time.perf_counter() - started)
     return TrendOutcome(fit, run_id)
 
 

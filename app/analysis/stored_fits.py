@@ -6,42 +6,25 @@ the statistics. ``run_trend`` records each fit as a run whose result carries eve
 prints it again without importing scipy.stats or statsmodels, which are most of a cold start.
 
 This module imports no model code on purpose (only pandas via the cell store): that is its point.
+``app.analysis.quick_fit`` does the same without pandas or SQLAlchemy for the command line.
 """
 
 from __future__ import annotations
 
-import hashlib
-from functools import cache
-from pathlib import Path
-from typing import Any
+import math
+from typing import TYPE_CHECKING, Any
 
-from app import __version__
 from app.analysis.cellstore import groups_from_counts
 from app.analysis.inputs import AnalysisInput
+from app.analysis.quick_fit import PROFILE_KEY, SUMMARY_KEYS, engine_tag, fit_params
 from app.stats.cells import groups_fingerprint
 from app.store import Run, Store
 
-STATS_DIR = Path(__file__).resolve().parents[1] / "stats"
-#: the fields of ``helmshift fit --json`` that come from the fit itself (the rest are labels and warnings)
-SUMMARY_KEYS = ("fitted_share", "headline")
+if TYPE_CHECKING:  # the model code is imported where a fit needs it, not by a reader of stored fits
+    from app.stats.profile import ProfileResult
 
-
-@cache
-def engine_tag() -> str:
-    """Names the statistics code a stored result came from: any change to ``app/stats`` gives a new tag.
-
-    A stored fit is served again only under the same tag, so a changed engine never prints old numbers.
-    """
-    digest = hashlib.sha256(__version__.encode())
-    for path in sorted(STATS_DIR.glob("*.py")):
-        digest.update(path.name.encode() + b"\0" + path.read_bytes() + b"\0")
-    return digest.hexdigest()[:16]
-
-
-def fit_params(model: str, spline_df: int, quasi: bool) -> dict[str, Any]:
-    """The options a fit run records (and is matched on)."""
-    return ({"model": model} | ({"spline_df": spline_df} if model == "spline" else {})
-            | ({"quasi": True} if quasi else {}))
+__all__ = ["PROFILE_KEY", "SUMMARY_KEYS", "counts_fingerprint", "engine_tag", "fit_params", "matches",
+           "profiles_to_json", "stored_fit", "stored_profiles", "stored_summary"]
 
 
 def matches(run: Run, inp: AnalysisInput, params: dict[str, Any], fingerprint: str) -> bool:
@@ -67,13 +50,34 @@ def stored_fit(store: Store, inp: AnalysisInput, params: dict[str, Any]) -> Run 
     return max(found, key=lambda run: run.id) if found else None
 
 
+def stored_profiles(store: Store, inp: AnalysisInput, params: dict[str, Any], fingerprint: str
+                    ) -> dict[str, ProfileResult] | None:
+    """The profile-likelihood ends a recorded fit of these counts, window and options found (``TrendFit.profiles``),
+    or None. The engine tag in ``matches`` guarantees the same statistics code, hence the same ends."""
+    from app.stats.profile import ProfileResult
+
+    found = [run for run in store.list_runs(inp.roster.id, "fit")
+             if matches(run, inp, params, fingerprint) and PROFILE_KEY in (run.result or {})]
+    if not found:
+        return None
+    stored = (max(found, key=lambda run: run.id).result or {})[PROFILE_KEY]
+    return {name: ProfileResult(-math.inf if low is None else float(low), math.inf if high is None else float(high),
+                                message) for name, (low, high, message) in stored.items()}
+
+
+def profiles_to_json(profiles: dict[str, ProfileResult]) -> dict[str, list[Any]]:
+    """``TrendFit.profiles`` as a run's result keeps them: an open end (infinite) is null, as in every JSON."""
+    return {name: [p.low if math.isfinite(p.low) else None, p.high if math.isfinite(p.high) else None, p.message]
+            for name, p in profiles.items()}
+
+
 def stored_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", spline_df: int = 3,
                    quasi: bool = False) -> dict[str, Any] | None:
     """``fit_summary`` of a fit already recorded for these counts and options, or None (nothing fitted)."""
     run = stored_fit(store, inp, fit_params(model, spline_df, quasi))
     if run is None or run.result is None:
         return None
-    payload = {k: v for k, v in run.result.items() if k not in ("engine", "fitted_share", "headline")}
+    payload = {k: v for k, v in run.result.items() if k not in ("engine", PROFILE_KEY, "fitted_share", "headline")}
     payload.update({"roster": inp.roster.name, "mapping": inp.mapping_label, "run": run.id,
                     "sentence": run.result["sentence"], "warnings": inp.warnings(),
                     "fitted_share": run.result["fitted_share"], "headline": run.result["headline"]})

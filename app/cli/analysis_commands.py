@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import json
 import sys
 from pathlib import Path
 from typing import Any
@@ -27,6 +28,23 @@ def cmd_coverage(args: argparse.Namespace) -> int:
         + [f"{y['year']:>6} {y['departures']:>5} {y['forced']:>7} {y['voluntary']:>7} {y['excluded']:>6} "
            f"{y['unmapped']:>6}" for y in p["years"]]
         + [f"Suggested window: {p['suggested_window'][0]}\u2013{p['suggested_window'][1]} ({p['rule']})"]))
+    return 0
+
+
+def quick_fit(args: argparse.Namespace) -> int | None:
+    """``helmshift fit`` printed from a recorded fit of the same counts without importing numpy, pandas,
+    SQLAlchemy or the model code (``app.analysis.quick_fit``); None when that path does not apply."""
+    if args.measure != "share" or args.by or args.compare or args.resamples is not None:
+        return None
+    from app.analysis.quick_fit import quick_summary
+    from app.config import database_url
+
+    window = _parse_years(args.years)
+    payload = quick_summary(database_url(args.db), args.roster, mapping=args.mapping, window=window,
+                            model=args.model, spline_df=args.spline_df, quasi=args.quasi)
+    if payload is None:
+        return None
+    print(json.dumps(payload) if args.json else payload["headline"])
     return 0
 
 

@@ -15,6 +15,7 @@ from app.cli.analysis_commands import (
     cmd_fit,
     cmd_robustness,
     cmd_run_export,
+    quick_fit,
 )
 from app.cli.common import (
     _OPENED,
@@ -152,7 +153,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--compare", metavar="FROM-TO:FROM-TO",
                    help="also compare the forced share of two periods, e.g. 1997-2009:2010-2022 (adds 'periods')")
     common(p)
-    p.set_defaults(func=cmd_fit)
+    p.set_defaults(func=cmd_fit, quick=quick_fit)
 
     from app.stats.statistic_names import STATISTIC_HELP, STATISTICS  # no numpy: just the names
 
@@ -244,6 +245,17 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    quick = getattr(args, "quick", None)
+    if quick is not None:
+        # a read-only answer that needs neither the store's SQLAlchemy nor pandas (``helmshift fit`` of a
+        # recorded fit); its errors are the ordinary path's to report, so any doubt falls through to it
+        try:
+            done = quick(args)
+        except CommandError as exc:
+            print(f"helmshift: {exc}", file=sys.stderr)
+            return EXIT_USAGE
+        if done is not None:
+            return int(done)
     from app.cli.team import TeamCommandError
     from app.store.audit import acting_as
 

@@ -13,6 +13,7 @@ from typing import Literal, get_args
 import numpy as np
 import pandas as pd
 
+from app.stats.window_rule import longest_run
 from app.types import CATEGORIES, UNMAPPED, check_choice
 
 Basis = Literal["not_excluded", "departures", "counted"]
@@ -144,26 +145,14 @@ def suggest_window(table: pd.DataFrame, *, threshold: float = 0.5,
     if counts.sum() <= 0:
         raise ValueError(f"no year has any {_BASIS_WORDS[basis]}; cannot suggest a window.")
     years = table["year"].to_numpy(dtype=np.int64)
-    median = float(np.median(counts))
-    cutoff = threshold * median
-    passes = (counts > 0) & (counts >= cutoff)
-    best: tuple[int, int, int, int] | None = None  # (length, total, start index, end index)
-    start = None
-    for i, ok in enumerate([*passes.tolist(), False]):
-        if ok and start is None:
-            start = i
-        elif not ok and start is not None:
-            candidate = (i - start, int(counts[start:i].sum()), start, i - 1)
-            if best is None or candidate[:3] > best[:3]:
-                best = candidate
-            start = None
-    assert best is not None  # the largest count is positive and >= the median, so that year passes
+    median, cutoff, passing, (first, last) = longest_run(counts.tolist(), threshold)
+    passes = np.asarray(passing, dtype=bool)
     rule = (f"the longest run of consecutive years whose {_BASIS_WORDS[basis]} are at least "
             f"{threshold * 100:g}% of the median year (median {median:g}, so at least {cutoff:g}); "
             "a year with none breaks a run; among equally long runs the one with more records wins, "
             "then the later one")
     return WindowSuggestion(
-        window=(int(years[best[2]]), int(years[best[3]])), median=median, cutoff=cutoff,
+        window=(int(years[first]), int(years[last])), median=median, cutoff=cutoff,
         threshold=float(threshold), basis=basis, rule=rule,
         below_cutoff=tuple(int(y) for y in years[~passes]),
     )

@@ -140,13 +140,16 @@ def _warning_messages(caught: list[warnings.WarningMessage]) -> tuple[list[str],
 
 def _glm_fit(endog: np.ndarray, X: np.ndarray, offset: np.ndarray | None
              ) -> tuple[dict[str, Any], list[warnings.WarningMessage]]:
-    import statsmodels.api as sm
+    # the GLM module itself, not statsmodels.api (which also loads formulas, time series and graphics: ~0.6 s
+    # of CPU at start-up on the 2-core machine, issue 13)
+    from statsmodels.genmod import families
+    from statsmodels.genmod.generalized_linear_model import GLM
 
     # statsmodels computes results lazily, so every attribute we need is read inside the
     # catch block; otherwise an overflow in a late ``mu`` evaluation escapes as a stray warning.
     with warnings.catch_warnings(record=True) as caught, np.errstate(all="warn"):
         warnings.simplefilter("always")
-        model = sm.GLM(endog, X, family=sm.families.Binomial(), offset=offset)
+        model = GLM(endog, X, family=families.Binomial(), offset=offset)
         res = model.fit(tol=GLM_TOL, atol=0.1 * GLM_TOL, rtol=GLM_TOL, maxiter=GLM_MAXITER)
         out: dict[str, Any] = {
             "params": np.asarray(res.params, dtype=float),

@@ -13,7 +13,8 @@ seconds to import and this module sits on the CLI and server start-up path.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from typing import Literal, get_args
 
 import numpy as np
@@ -128,6 +129,10 @@ class TrendFit:
     observed: pd.DataFrame
     fitted: pd.DataFrame
     messages: tuple[str, ...]
+    #: the profile-likelihood intervals on the logit scale ("binomial", and "quasi" when given), so a stored
+    #: fit can hand them to the next ``fit_trend`` of the same counts (``profiles``); not part of the JSON
+    profiles: dict[str, ProfileResult] = field(default_factory=dict, repr=False, compare=False,
+                                               metadata={"json_skip": True})
 
 
 def natural_spline_basis(x: np.ndarray, df: int, *, knots: tuple[float, ...] | None = None
@@ -245,7 +250,8 @@ def _curvature(forced: np.ndarray, totals: np.ndarray, years: np.ndarray, df: in
 
 
 def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
-              alpha: float = 0.05, quasi: bool = False) -> TrendFit:
+              alpha: float = 0.05, quasi: bool = False,
+              profiles: Mapping[str, ProfileResult] | None = None) -> TrendFit:
     """Fit the logistic trend in the forced share over the window of ``cells``.
 
     Parameters
@@ -264,6 +270,9 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
     quasi : bool
         Give the quasi-binomial intervals whatever the dispersion (they are given anyway when the
         dispersion exceeds ``QUASI_DISPERSION`` with at least ``QUASI_MIN_DF`` residual df).
+    profiles : mapping, optional
+        ``TrendFit.profiles`` of an earlier fit of exactly these counts, window and options (a stored
+        fit): used instead of searching for the profile-likelihood ends again, the slowest part of a fit.
 
     Returns
     -------
@@ -304,12 +313,15 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
     usable = not fit.separated and math.isfinite(b) and math.isfinite(se)
 
     conf: dict[str, Interval | None] = {"wald": None, "profile": None}
+    used: dict[str, ProfileResult] = {}
     decade: dict[str, Interval | None] = {"wald": None, "profile": None}
     refit: QuasiTrend | None = None
     dispersion = fit.dispersion
     if usable:
         wald = (b - z * se, b + z * se)
-        prof = profile_interval(forced, totals, design.matrix, j, alpha)
+        known = dict(profiles or {})
+        prof = known.get("binomial") or profile_interval(forced, totals, design.matrix, j, alpha)
+        used = {"binomial": prof}
         messages += _profile_note(prof)
         conf = {"wald": _or_interval(wald), "profile": _or_interval((prof.low, prof.high))}
         decade = {"wald": _or_interval(wald, 10.0), "profile": _or_interval((prof.low, prof.high), 10.0)}
@@ -318,7 +330,9 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
             messages.append("The quasi-binomial intervals need a positive dispersion estimate, which needs "
                             "at least one residual degree of freedom and some residual variation; none is given.")
         elif over or quasi:
-            refit = _quasi(forced, totals, design.matrix, j, b, se, dispersion, alpha, z, asked=not over)
+            used["quasi"] = known.get("quasi") or profile_interval(forced, totals, design.matrix, j, alpha,
+                                                                   dispersion=dispersion)
+            refit = _quasi(used["quasi"], b, se, dispersion, alpha, z, asked=not over)
             messages.append(refit.message)
     else:
         messages.append("The trend cannot be estimated: the forced share is perfectly separated over "
@@ -374,15 +388,15 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
         deviance=fit.deviance, pearson_chi2=fit.pearson_chi2, df_resid=fit.df_resid,
         dispersion=dispersion, llf=fit.llf, converged=fit.converged, separated=fit.separated,
         quasi=refit, curvature=curvature, observed=observed, fitted=fitted,
-        messages=tuple(dict.fromkeys(messages)),
+        messages=tuple(dict.fromkeys(messages)), profiles=used,
     )
 
 
-def _quasi(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, j: int, b: float, se: float,
-           dispersion: float, alpha: float, z: float, *, asked: bool = False) -> QuasiTrend:
+def _quasi(prof: ProfileResult, b: float, se: float, dispersion: float, alpha: float, z: float, *,
+           asked: bool = False) -> QuasiTrend:
+    """The quasi-binomial intervals from the profile with the deviance divided by the dispersion."""
     se_q = se * math.sqrt(dispersion)
     wald = (b - z * se_q, b + z * se_q)
-    prof = profile_interval(forced, totals, X, j, alpha, dispersion=dispersion)
     bounds = (prof.low, prof.high)
     how = ("Wald intervals scaled by sqrt(dispersion) and profile intervals with the deviance difference "
            "divided by the dispersion.")

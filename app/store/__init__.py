@@ -11,30 +11,30 @@ and ``tables`` (the schema).
 
 from __future__ import annotations
 
-from app.store.accounts import Account, AccountQueries
-from app.store.audit import AuditEvent, AuditQueries
-from app.store.briefing import BriefingQueries
-from app.store.cells import CellQueries
-from app.store.departure_query import DepartureFilter, DepartureQueries
-from app.store.mappings import MappingConflict, MappingQueries
-from app.store.profiles import IntakeProfile, ProfileQueries
-from app.store.records import (
-    MAX_ID,
-    BriefingSettings,
-    MappingVersion,
-    RejectedRow,
-    Roster,
-    RosterSettings,
-    Run,
-    StoreError,
-    Universe,
-    now_iso,
-)
-from app.store.rosters import RosterQueries
-from app.store.runs import INTERRUPTED, RunClaimLost, RunQueries
-from app.store.spellings import SpellingQueries
-from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
-from app.store.universe import UniverseQueries
+import importlib
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from app.store.accounts import Account
+    from app.store.audit import AuditEvent
+    from app.store.departure_query import DepartureFilter
+    from app.store.gateway import Store
+    from app.store.mappings import MappingConflict
+    from app.store.profiles import IntakeProfile
+    from app.store.records import (
+        MAX_ID,
+        BriefingSettings,
+        MappingVersion,
+        RejectedRow,
+        Roster,
+        RosterSettings,
+        Run,
+        StoreError,
+        Universe,
+        now_iso,
+    )
+    from app.store.runs import INTERRUPTED, RunClaimLost
+    from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
 
 __all__ = [
     "Account", "AuditEvent", "BriefingSettings", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION",
@@ -42,8 +42,22 @@ __all__ = [
     "RosterSettings", "Run", "RunClaimLost", "Store", "StoreError", "Universe", "departures", "metadata", "now_iso",
 ]
 
+#: where each name lives. Importing ``app.store`` itself costs nothing: a name is imported on first use
+#: (PEP 562), so ``app.store.quick`` (stdlib sqlite3 only) serves ``helmshift fit`` without loading
+#: SQLAlchemy or pandas (issue 13, start-up)
+_HOMES = {
+    "Account": "accounts", "AuditEvent": "audit", "DepartureFilter": "departure_query", "Store": "gateway",
+    "MappingConflict": "mappings", "IntakeProfile": "profiles", "INTERRUPTED": "runs", "RunClaimLost": "runs",
+    **dict.fromkeys(("MAX_ID", "BriefingSettings", "MappingVersion", "RejectedRow", "Roster", "RosterSettings",
+                     "Run", "StoreError", "Universe", "now_iso"), "records"),
+    **dict.fromkeys(("DEPARTURE_FIELDS", "HEAD_REVISION", "departures", "metadata"), "tables"),
+}
 
-class Store(RosterQueries, DepartureQueries, MappingQueries, RunQueries, UniverseQueries, CellQueries,
-            AccountQueries, AuditQueries, BriefingQueries, SpellingQueries,
-            ProfileQueries):
-    """Owns the engine; every read and write of Helmshift goes through one of its methods."""
+
+def __getattr__(name: str) -> Any:
+    home = _HOMES.get(name)
+    if home is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    value = getattr(importlib.import_module(f"{__name__}.{home}"), name)
+    globals()[name] = value
+    return value
