@@ -193,7 +193,7 @@ class CellSampler:
 
 def check_sampler(value: object) -> int:
     """``value`` as one of ``SAMPLERS``, or a ValueError naming them."""
-    if isinstance(value, bool) or value not in SAMPLERS:
+    if isinstance(value, bool) or not isinstance(value, int | np.integer) or value not in SAMPLERS:
         raise ValueError(f"sampler must be one of {', '.join(map(str, SAMPLERS))}; got {value!r}.")
     return int(value)
 
