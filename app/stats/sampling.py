@@ -9,7 +9,8 @@ Reproducibility
 ---------------
 Block k of ``BLOCK_SIZE`` resamples is always drawn and evaluated whole from its own seeded generator
 (:func:`app.stats.draws.block_rng`). Resample i is therefore the same number whatever the chunk size,
-the worker count, or whether it came from one run or from extending a shorter one.
+the worker count, or whether it came from one run or from extending a shorter one, given the firm-draw
+sampler the run records (:mod:`app.stats.draws`: new runs use ``SAMPLER``, an extension its run's own).
 """
 
 from __future__ import annotations
