@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import argparse
 import atexit
+import functools
 import importlib
 import json
 import os
@@ -107,17 +108,27 @@ def design_for(cells: Cells) -> Any:
     return design_matrix(cells.groups, "sector" if cells.by_sector else "linear", window_centre(cells.window))
 
 
-def timed(draw: Any, cells: Cells, unit: str, resamples: int) -> tuple[float, float]:
+def timed(draw: Any, cells: Cells, unit: str, resamples: int, **options: Any) -> tuple[float, float]:
     """(wall seconds, CPU seconds of all threads) of one ``draw_replicates`` run."""
     design = design_for(cells)
     wall, cpu = time.perf_counter(), time.process_time()
-    draw(cells, design, unit=unit, resamples=resamples, seed=1)
+    draw(cells, design, unit=unit, resamples=resamples, seed=1, **options)
     return time.perf_counter() - wall, time.process_time() - cpu
 
 
-def best_of(runs: int, *args: Any) -> tuple[float, float]:
+def best_of(runs: int, *args: Any, **options: Any) -> tuple[float, float]:
     """The fastest of ``runs`` runs by wall clock, with its CPU time."""
-    return min((timed(*args) for _ in range(runs)), key=lambda t: t[0])
+    return min((timed(*args, **options) for _ in range(runs)), key=lambda t: t[0])
+
+
+def interleaved(runs: int, contenders: dict[str, Any]) -> dict[str, tuple[float, float]]:
+    """Each contender (a no-argument callable returning (wall, CPU)) run ``runs`` times, round by round so
+    that all see the same machine load; the fastest by CPU of each, with its wall time."""
+    seen: dict[str, list[tuple[float, float]]] = {name: [] for name in contenders}
+    for _ in range(runs):
+        for name, run in contenders.items():
+            seen[name].append(run())
+    return {name: min(times, key=lambda t: t[1]) for name, times in seen.items()}
 
 
 def obvious_loop(cells: Cells, unit: str, n: int) -> float:
@@ -175,6 +186,7 @@ def main() -> None:
     parser.add_argument("--loop", type=int, default=0, help="resamples timed for the obvious loop (0: skip)")
     parser.add_argument("--scale", default="25000,100000,250000", help="firm counts for the scaling table")
     parser.add_argument("--baseline", default=BASELINE, help="git commit of the previous engine")
+    parser.add_argument("--no-memory", action="store_true", help="skip the memory table")
     parser.add_argument("--memory-child", choices=["current", "previous"], help=argparse.SUPPRESS)
     parser.add_argument("--firms", type=int, default=250_000, help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -205,20 +217,32 @@ def main() -> None:
               f"{p_wall / wall:>9.2f}x {p_cpu / cpu:>8.2f}x")
     print(f"load average after the table {load()}")
 
-    print(f"\nfirm resamples ({B:,}, straight trend) as the roster grows; best of {max(1, args.best - 1)}:")
-    print(f"{'firms':>8} {'departures':>11} {'wall s':>7} {'CPU s':>7} {'CPU/firm vs first':>18}    "
-          f"{'prev wall':>9} {'prev CPU':>8} {'prev CPU/firm vs first':>22}")
+    print(f"\nfirm resamples ({B:,}, straight trend) as the roster grows: the current engine with sampler 2 "
+          f"(new runs) and sampler 1 (runs started before it), and the previous engine, interleaved; "
+          f"least CPU of {max(1, args.best - 1)}; CPU per firm relative to the first size:")
+    print(f"{'firms':>8} {'departures':>11}  " + "  ".join(f"{n + ' wall/CPU s':>22} {'/firm':>6}" for n in
+                                                           ("sampler 2", "sampler 1", "previous")))
     first: dict[str, float] = {}
     for firms in (int(f) for f in args.scale.split(",")):
         cells = make_cells(firms)
-        wall, cpu = best_of(max(1, args.best - 1), engines["current"], cells, "firm", B)
-        p_wall, p_cpu = best_of(max(1, args.best - 1), engines["previous"], cells, "firm", B)
-        first.setdefault("current", cpu / firms)
-        first.setdefault("previous", p_cpu / firms)
-        print(f"{firms:>8,} {int(cells.totals.sum()):>11,} {wall:>7.2f} {cpu:>7.2f} "
-              f"{cpu / firms / first['current']:>17.2f}x    {p_wall:>9.2f} {p_cpu:>8.2f} "
-              f"{p_cpu / firms / first['previous']:>21.2f}x")
+        got = interleaved(max(1, args.best - 1), {
+            "sampler 2": functools.partial(timed, engines["current"], cells, "firm", B, sampler=2),
+            "sampler 1": functools.partial(timed, engines["current"], cells, "firm", B, sampler=1),
+            "previous": functools.partial(timed, engines["previous"], cells, "firm", B)})
+        row = []
+        for name, (wall, cpu) in got.items():
+            first.setdefault(name, cpu / firms)
+            row.append(f"{wall:>10.2f} / {cpu:>6.2f} s {cpu / firms / first[name]:>5.2f}x")
+        print(f"{firms:>8,} {int(cells.totals.sum()):>11,}  " + "  ".join(row) + f"   (load {load()})")
+        if not first.get("threads"):  # two workers against one at the first size (the GIL check)
+            first["threads"] = 1.0
+            th = interleaved(max(1, args.best - 1), {
+                str(w): functools.partial(timed, engines["current"], cells, "firm", B, workers=w) for w in (1, 2)})
+            print(f"{'':>21}at this size, 1 worker {th['1'][0]:.2f} s wall / {th['1'][1]:.2f} s CPU, 2 workers "
+                  f"{th['2'][0]:.2f} s wall / {th['2'][1]:.2f} s CPU (wall ratio {th['1'][0] / th['2'][0]:.2f}x)")
     print(f"load average after the scaling table {load()}")
+    if args.no_memory:
+        return
 
     print(f"\nmemory of bootstrap_trend (unit firm, {B:,} resamples) at 250,000 firms, each engine in a "
           f"fresh process (target < 600 MB peak resident):")

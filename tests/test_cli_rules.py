@@ -123,7 +123,8 @@ def test_fit_adjusted_with_the_firm_bootstrap_records_it(capsys: pytest.CaptureF
     store = Store(f"sqlite:///{db}")
     try:
         run_ = store.get_run(payload["run"])
-        assert run_.params == {"model": "adjusted", "adjust": ["age"], "unit": "firm", "resamples": 500, "seed": 3}
+        assert run_.params == {"model": "adjusted", "adjust": ["age"], "unit": "firm", "resamples": 500, "seed": 3,
+                           "sampler": 2}
     finally:
         store.dispose()
     code, _, err = run(capsys, "fit", "--roster", "1", "--resamples", "500", "--db", db)

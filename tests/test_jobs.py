@@ -196,3 +196,25 @@ def test_sector_model_bootstrap_runs(demo_store: Store) -> None:
     result = run_bootstrap_now(demo_store, inp, unit="firm", resamples=200, seed=12, model="sector")
     direct = bootstrap_trend(cells, design, unit="firm", resamples=200, seed=12)
     assert result["conf_int"]["percentile"] == pytest.approx(list(direct.intervals["percentile"]), rel=1e-12)
+
+
+def test_a_run_keeps_the_sampler_it_was_started_with(demo_store: Store, monkeypatch: pytest.MonkeyPatch) -> None:
+    # oracle: app.stats draws of the same seed by each sampler; a run stored before samplers were recorded
+    # (no "sampler" in its params) drew with sampler 1 and must be continued with it
+    from app.stats import draws
+
+    inp, cells, design = engine_inputs(demo_store)
+    monkeypatch.setattr(draws, "SPAN", max(2, cells.firm_matrix.shape[0] // 3))  # several ranges: samplers differ
+    by = {s: draw_replicates(cells, design, unit="firm", resamples=400, seed=31, sampler=s).estimates for s in (1, 2)}
+    assert not np.array_equal(by[1], by[2])
+    new = run_bootstrap_now(demo_store, inp, unit="firm", resamples=300, seed=31)
+    assert demo_store.get_run(new["run"]).params["sampler"] == 2 == new["sampler"]
+    np.testing.assert_array_equal(demo_store.replicates(new["run"]), by[2][:300])
+    params = bootstrap_params(unit="firm", resamples=300, seed=31)
+    del params["sampler"]
+    old = create_bootstrap_run(demo_store, inp, params)
+    assert execute_bootstrap(demo_store, old)["sampler"] == 1
+    extend_run(demo_store, old, 100)
+    assert "sampler" not in demo_store.get_run(old).params
+    assert execute_bootstrap(demo_store, old)["sampler"] == 1
+    np.testing.assert_array_equal(demo_store.replicates(old), by[1])

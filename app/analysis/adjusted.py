@@ -70,7 +70,7 @@ def run_adjusted(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...]
     boot = None
     if resamples is not None:
         boot = bootstrap_adjusted(data, inp.window, resamples=resamples, seed=seed)
-        params |= {"unit": "firm", "resamples": resamples, "seed": seed}
+        params |= {"unit": "firm", "resamples": resamples, "seed": seed, "sampler": boot.sampler}
     result = adjusted_to_dict(fit, boot.intervals["bca"] if boot else None)
     if boot is not None:
         result["bootstrap"] = {"method": "BCa, firms resampled", "resamples": boot.resamples, "seed": boot.seed,

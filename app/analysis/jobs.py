@@ -175,6 +175,7 @@ def _execute_claimed(store: Store, run_id: int, worker: str, stopping: Callable[
     statistic.original(cells)  # fails fast, before anything is drawn
     strata = strata_for(inp, params, cells)
     target = int(params["resamples"])
+    sampler = int(params.get("sampler", 1))  # runs stored before samplers were recorded drew with sampler 1
     done = len(store.replicates(run_id))
     store.set_run_progress(run_id, done, target)
     spent = float(run.seconds or 0.0)
@@ -184,7 +185,7 @@ def _execute_claimed(store: Store, run_id: int, worker: str, stopping: Callable[
         if stopping is not None and stopping():
             raise RunStopped()
         block = draw_statistic(cells, statistic.evaluate, unit=params["unit"], resamples=min(CHUNK, target - done),
-                               seed=params["seed"], start=done, strata=strata)
+                               seed=params["seed"], start=done, strata=strata, sampler=sampler)
         spent += block.seconds
         # written only while this worker still holds the run, with the progress, in one transaction
         store.append_replicates(run_id, block.estimates, block.failure.tolist(), block.standard_errors,
@@ -194,7 +195,7 @@ def _execute_claimed(store: Store, run_id: int, worker: str, stopping: Callable[
     started = time.perf_counter()
     stored = Replicates(0, estimates, failures, spent, store.replicate_standard_errors(run_id))
     summary = summarise_statistic(cells, statistic, stored, unit=params["unit"], seed=params["seed"],
-                                  stratified=strata is not None)
+                                  stratified=strata is not None, sampler=sampler)
     spent += time.perf_counter() - started
     result = bootstrap_to_dict(summary)
     result["seconds"] = spent

@@ -28,6 +28,7 @@ from app.intake.spreadsheet_safety import safe_csv
 from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, jackknife_statistic
 from app.stats.cells import Cells
 from app.stats.design import window_centre
+from app.stats.draws import SPAN
 from app.stats.intervals import PASS_ELEMENTS
 from app.stats.jackknife import cluster_cases, departure_cases
 from app.store import Run, Store
@@ -220,8 +221,12 @@ def run_params(run: Run, inp: AnalysisInput, cells: Cells, mapping_sha256: str |
                     "stratify": p.get("stratify", "none"), **options,
                     "unit": p["unit"], "resamples": p["resamples"], "seed": p["seed"], "block_size": BLOCK_SIZE,
                     "mc_resamples": MC_RESAMPLES, "mc_pass_elements": PASS_ELEMENTS,
+                    "sampler": p.get("sampler", 1), "sampler_span": SPAN,
                     "seeding": "resample i comes from block i // block_size; block k draws from "
-                               "numpy.random.default_rng(SeedSequence(seed, spawn_key=(k,)))"})
+                               "numpy.random.default_rng(SeedSequence(seed, spawn_key=(k,))); firm draws by "
+                               "sampler 1: per resample integers(0, F, F); sampler 2 (over sampler_span firms): "
+                               "multinomial(F, range sizes / F) per resample over ranges of sampler_span firms, "
+                               "then range by range, resample by resample, that many integers within the range"})
     return out
 
 

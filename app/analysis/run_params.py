@@ -14,6 +14,7 @@ import numpy as np
 from app.analysis.inputs import AnalysisInput
 from app.stats.cells import Cells
 from app.stats.design import window_centre
+from app.stats.draws import SAMPLER, check_sampler
 from app.stats.periods import default_periods, parse_periods
 from app.stats.sectors import fit_sector_trends
 from app.stats.statistics import STATISTICS, Statistic, firm_strata, make_statistic
@@ -40,12 +41,13 @@ SECTOR_MIN_DEPARTURES = 20
 
 def bootstrap_params(*, unit: str, resamples: int, seed: int, model: str = "linear", statistic: str = "slope",
                      sector: str | None = None, sectors: list[str] | None = None, spline_df: int | None = None,
-                     periods: Any = None, stratify: str = "none") -> dict[str, Any]:
+                     periods: Any = None, stratify: str = "none", sampler: int = SAMPLER) -> dict[str, Any]:
     """A bootstrap run's parameters, checked; the statistic's options are stored only for the statistic that
     uses them, and ``statistic``/``stratify`` only when not the default (older runs read the same).
 
     ``periods`` is ``1997-2009:2010-2022`` or two (first, last) pairs; ``sectors`` (equal-trends test) and
-    default ``periods`` are filled in from the data when the run is created."""
+    default ``periods`` are filled in from the data when the run is created. ``sampler`` (the firm-draw scheme,
+    ``app.stats.draws.SAMPLERS``) is always stored: a run without one was drawn by sampler 1."""
     check_choice(unit, UNITS, "unit")
     check_choice(model, ("linear", "sector"), "model")
     check_choice(statistic, STATISTICS, "statistic")
@@ -56,7 +58,8 @@ def bootstrap_params(*, unit: str, resamples: int, seed: int, model: str = "line
         raise ValueError(f"seed must be a non-negative integer below 2**63; got {seed}.")
     if stratify == "sector" and unit != "firm":
         raise ValueError("stratify sector resamples whole firms within their sector; choose unit firm.")
-    params: dict[str, Any] = {"unit": unit, "resamples": int(resamples), "seed": int(seed), "model": model}
+    params: dict[str, Any] = {"unit": unit, "resamples": int(resamples), "seed": int(seed), "model": model,
+                              "sampler": check_sampler(sampler)}
     if statistic != "slope":
         params["statistic"] = statistic
     if stratify != "none":

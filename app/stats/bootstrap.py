@@ -19,7 +19,7 @@ import numpy as np
 
 from app.stats.cells import Cells
 from app.stats.design import Design
-from app.stats.draws import BLOCK_SIZE, draw_cells
+from app.stats.draws import BLOCK_SIZE, SAMPLER, SAMPLERS, draw_cells
 from app.stats.intervals import (
     INTERVAL_METHODS,
     MC_RESAMPLES,
@@ -44,7 +44,7 @@ from app.stats.statistics import Statistic, coefficient_statistic
 from app.types import UNITS, Unit, check_choice
 
 __all__ = [
-    "BLOCK_SIZE", "FAILURE_FLAG_SHARE", "INTERVAL_METHODS", "MAX_RESAMPLES", "MC_RESAMPLES",
+    "BLOCK_SIZE", "FAILURE_FLAG_SHARE", "SAMPLER", "SAMPLERS", "INTERVAL_METHODS", "MAX_RESAMPLES", "MC_RESAMPLES",
     "BootstrapCancelled", "BootstrapIntervals", "BootstrapResult", "IntervalMethod", "Progress",
     "Replicates", "StopCheck", "bootstrap_statistic", "bootstrap_to_dict", "bootstrap_trend", "draw_cells",
     "draw_replicates", "draw_statistic", "extend_bootstrap", "intervals_from_replicates", "jackknife_estimates",
@@ -70,7 +70,8 @@ class BootstrapResult:
     bootstrap distribution is nearer symmetric, so on the odds-ratio scale it is
     ``(OR**2 / exp(q_hi), OR**2 / exp(q_lo))``. ``failures`` holds each resample's failure reason
     (``""`` when it succeeded; its replicate is then finite). Monte Carlo errors on the odds-ratio scale are
-    ``bound x (log-scale MC error)`` (delta method).
+    ``bound x (log-scale MC error)`` (delta method). ``sampler`` is the firm-draw scheme the replicates came
+    from (``app.stats.draws.SAMPLERS``); an extension keeps it.
     """
 
     unit: Unit
@@ -100,6 +101,7 @@ class BootstrapResult:
     estimate_se: float = float("nan")
     standard_errors: np.ndarray | None = None
     stratified: bool = False
+    sampler: int = SAMPLER
 
 
 
@@ -134,7 +136,8 @@ def jackknife_estimates(cells: Cells, design: Design, *, unit: Unit, coefficient
 
 
 def _assemble(statistic: Statistic, unit: Unit, seed: int, alpha: float, estimate: tuple[float, float],
-              reps: Replicates, jk: tuple[np.ndarray, np.ndarray], stratified: bool) -> BootstrapResult:
+              reps: Replicates, jk: tuple[np.ndarray, np.ndarray], stratified: bool, sampler: int = SAMPLER
+              ) -> BootstrapResult:
     theta, failure = reps.estimates, reps.failure
     reasons, counts = np.unique(failure[failure != ""], return_counts=True)
     by_reason = {str(r): int(c) for r, c in zip(reasons, counts, strict=True)}
@@ -154,6 +157,7 @@ def _assemble(statistic: Statistic, unit: Unit, seed: int, alpha: float, estimat
         bias=iv.bias, standard_error=iv.standard_error, jackknife_values=jk[0],
         jackknife_weights=jk[1], seconds=reps.seconds, statistic=statistic.name, label=statistic.label,
         scale=statistic.scale, estimate_se=estimate[1], standard_errors=reps.standard_errors, stratified=stratified,
+        sampler=sampler,
     )
 
 
@@ -170,6 +174,7 @@ def bootstrap_statistic(
     workers: int | None = None,
     progress: Progress | None = None,
     should_stop: StopCheck | None = None,
+    sampler: int = SAMPLER,
 ) -> BootstrapResult:
     """Bootstrap ``statistic`` over ``cells``: draw, evaluate, jackknife, intervals.
 
@@ -190,17 +195,19 @@ def bootstrap_statistic(
     alpha = check_alpha(alpha)
     estimate = statistic.original(cells)
     reps = draw_statistic(cells, statistic.evaluate, unit=unit, resamples=resamples, seed=seed, strata=strata,
-                          chunk_size=chunk_size, workers=workers, progress=progress, should_stop=should_stop)
+                          chunk_size=chunk_size, workers=workers, progress=progress, should_stop=should_stop,
+                          sampler=sampler)
     jk = jackknife_statistic(cells, statistic, unit=unit)
-    return _assemble(statistic, unit, int(seed), alpha, estimate, reps, jk, strata is not None)
+    return _assemble(statistic, unit, int(seed), alpha, estimate, reps, jk, strata is not None, sampler)
 
 
 def summarise_statistic(cells: Cells, statistic: Statistic, replicates: Replicates, *, unit: Unit, seed: int,
-                        alpha: float = 0.05, stratified: bool = False) -> BootstrapResult:
+                        alpha: float = 0.05, stratified: bool = False, sampler: int = SAMPLER) -> BootstrapResult:
     """Intervals and failure counts from stored replicates (e.g. a run drawn in chunks by a job).
 
     The estimate, its standard error and the jackknife are recomputed from ``cells``; ``replicates`` are the
-    concatenated draws for resamples 0 .. B-1 (``standard_errors`` None leaves the studentized interval NaN).
+    concatenated draws for resamples 0 .. B-1 (``standard_errors`` None leaves the studentized interval NaN),
+    drawn by ``sampler``.
     """
     check_choice(unit, UNITS, "unit")
     alpha = check_alpha(alpha)
@@ -212,7 +219,7 @@ def summarise_statistic(cells: Cells, statistic: Statistic, replicates: Replicat
     reps = Replicates(0, theta, why, float(replicates.seconds), None if se is None else np.asarray(se, dtype=float))
     estimate = statistic.original(cells)
     jk = jackknife_statistic(cells, statistic, unit=unit)
-    return _assemble(statistic, unit, int(seed), alpha, estimate, reps, jk, stratified)
+    return _assemble(statistic, unit, int(seed), alpha, estimate, reps, jk, stratified, sampler)
 
 
 def _design_statistic(cells: Cells, design: Design, coefficient: int | None) -> Statistic:
@@ -234,6 +241,7 @@ def bootstrap_trend(
     workers: int | None = None,
     progress: Progress | None = None,
     should_stop: StopCheck | None = None,
+    sampler: int = SAMPLER,
 ) -> BootstrapResult:
     """Bootstrap the odds ratio of one coefficient of ``design`` (the year slope by default).
 
@@ -243,7 +251,8 @@ def bootstrap_trend(
     alpha = check_alpha(alpha)
     statistic = _design_statistic(cells, design, coefficient)
     return bootstrap_statistic(cells, statistic, unit=unit, resamples=resamples, seed=seed, alpha=alpha,
-                               chunk_size=chunk_size, workers=workers, progress=progress, should_stop=should_stop)
+                               chunk_size=chunk_size, workers=workers, progress=progress, should_stop=should_stop,
+                               sampler=sampler)
 
 
 def extend_bootstrap(
@@ -259,7 +268,8 @@ def extend_bootstrap(
 ) -> BootstrapResult:
     """Add ``resamples`` more resamples to an earlier :func:`bootstrap_trend` result, reusing its replicates.
 
-    The combined result equals a single run with ``result.resamples + resamples`` resamples. A ValueError
+    The combined result equals a single run with ``result.resamples + resamples`` resamples, drawn by the
+    sampler the earlier result was drawn by. A ValueError
     when ``cells`` and ``design`` do not reproduce the earlier estimate.
     """
     coef = design.names.index(result.coefficient) if result.coefficient in design.names else -1
@@ -268,13 +278,13 @@ def extend_bootstrap(
     statistic = _design_statistic(cells, design, coef)
     more = draw_statistic(cells, statistic.evaluate, unit=result.unit, resamples=resamples, seed=result.seed,
                           start=result.resamples, chunk_size=chunk_size, workers=workers, progress=progress,
-                          should_stop=should_stop)
+                          should_stop=should_stop, sampler=result.sampler)
     ses = (None if result.standard_errors is None or more.standard_errors is None
            else np.concatenate([result.standard_errors, more.standard_errors]))
     reps = Replicates(0, np.concatenate([result.replicates, more.estimates]),
                       np.concatenate([result.failures, more.failure]), result.seconds + more.seconds, ses)
     return _assemble(statistic, result.unit, result.seed, result.alpha, (result.estimate, result.estimate_se), reps,
-                     (result.jackknife_values, result.jackknife_weights), result.stratified)
+                     (result.jackknife_values, result.jackknife_weights), result.stratified, result.sampler)
 
 
 def bootstrap_to_dict(result: BootstrapResult) -> dict[str, Any]:
@@ -282,7 +292,8 @@ def bootstrap_to_dict(result: BootstrapResult) -> dict[str, Any]:
 
     ``odds_ratio``/``log_odds_ratio`` are the reported value and the estimate for every statistic (for
     one on the identity scale the two are the same number); ``statistic``, ``label`` and ``scale`` say what
-    they are. ``estimate_se`` is the standard error on the original data the studentized interval uses.
+    they are. ``estimate_se`` is the standard error on the original data the studentized interval uses;
+    ``sampler`` the firm-draw scheme (``app.stats.draws.SAMPLERS``).
     """
     def num(x: float) -> float | None:
         return float(x) if np.isfinite(x) else None
@@ -312,6 +323,7 @@ def bootstrap_to_dict(result: BootstrapResult) -> dict[str, Any]:
         "scale": result.scale,
         "estimate_se": num(result.estimate_se),
         "stratified": result.stratified,
+        "sampler": result.sampler,
     }
 
 

@@ -17,15 +17,31 @@ Resamples come in blocks of ``BLOCK_SIZE``; block k draws from
 resample i is the same counts however a run is chunked, threaded or extended
 (:mod:`app.stats.sampling` runs the blocks). How draws are counted and multiplied (pass sizes, the
 product) never changes them.
+
+Samplers (how a block's firm draws are taken from its generator; a run records which, ``SAMPLERS``)
+---------------------------------------------------------------------------------------------------
+* ``1``: resample by resample, ``rng.integers(0, n_firms, size=n_firms)`` each.
+* ``2`` (new runs): the firms are cut into ranges of ``SPAN`` in firm order. A block first draws how many
+  of each resample's ``n_firms`` draws fall in each range, ``rng.multinomial(n_firms, range sizes / n_firms,
+  size=rows)``, then range by range, resample by resample, that many uniform firms within the range. Given
+  the range totals the draws within a range are uniform, so a resample's multiplicities are
+  Multinomial(n_firms, 1 / n_firms) as in sampler 1; only the numbers differ. Counting one range at a time
+  keeps the count vector and the multiplicity block of a pass the size they have at ``SPAN`` firms, so time
+  grows with the number of firms (benchmarks/README.md). With at most ``SPAN`` firms (one range), with
+  strata, and for the departure unit, sampler 2 draws exactly what sampler 1 draws.
 """
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
-from scipy import sparse
 
 from app.stats.cells import Cells
 from app.types import UNITS, Unit, check_choice
+
+if TYPE_CHECKING:
+    from scipy import sparse
 
 #: resamples per independently seeded block; changing it changes every stored run's numbers
 BLOCK_SIZE = 250
@@ -38,6 +54,13 @@ PASS_ROWS = 25
 #: MIN_PASS_ROWS resamples per pass
 PASS_VALUES = 2**21
 MIN_PASS_ROWS = 4
+#: samplers a run can name, and the one new runs use (module docstring); changing SPAN changes sampler 2's
+#: numbers for rosters of more than SPAN firms
+SAMPLERS = (1, 2)
+SAMPLER = 2
+#: firms per range of sampler 2: a range's int64 counts and draws (256 KiB each) stay in a 1 MiB L2 cache,
+#: and a 25,000-firm roster is one range (its draws are sampler 1's)
+SPAN = 2**15
 
 
 def check_count(value: object, what: str, low: int, high: int | None = None) -> int:
@@ -77,7 +100,10 @@ class CellSampler:
     the sparse product from 500 to 100,000 firms (benchmarks/README.md).
     """
 
-    def __init__(self, cells: Cells, unit: Unit, strata: np.ndarray | None = None) -> None:
+    def __init__(self, cells: Cells, unit: Unit, strata: np.ndarray | None = None, sampler: int = SAMPLER) -> None:
+        from scipy import sparse  # here, not at import: run parameters name samplers without loading scipy
+
+        self.sampler = check_sampler(sampler)
         self.counts = np.concatenate([cells.forced, cells.voluntary]).astype(np.int64)
         self.unit = unit
         self.total = int(self.counts.sum())
@@ -108,6 +134,13 @@ class CellSampler:
             starts = np.searchsorted(ordered, ordered, side="left")
             ends = np.searchsorted(ordered, ordered, side="right")
             self.slot_firms, self.slot_low, self.slot_size = order, starts, ends - starts
+        # sampler 2 over more than SPAN firms: the firm ranges, their share of the draws, their columns of firm_t
+        self.ranges: list[tuple[int, int]] = []
+        if sampler == 2 and unit == "firm" and strata is None and self.n_firms > SPAN:
+            assert self.firm_t is not None
+            self.ranges = [(lo, min(lo + SPAN, self.n_firms)) for lo in range(0, self.n_firms, SPAN)]
+            self.range_share = np.array([hi - lo for lo, hi in self.ranges]) / self.n_firms
+            self.range_t = [sparse.csc_matrix(self.firm_t[:, lo:hi]) for lo, hi in self.ranges]
 
     def pass_rows(self, rows: int) -> int:
         """Resamples drawn per pass for a request of ``rows``."""
@@ -125,6 +158,8 @@ class CellSampler:
         """``rows`` resamples of the cell counts, shape (rows, n_cells), from ``rng``."""
         if self.unit == "departure":
             return rng.multinomial(self.total, self.pvals, size=rows).astype(np.float64)
+        if self.ranges:
+            return self._draw_by_range(rng, rows)
         out = np.empty((rows, self.counts.size))
         per_pass = self.pass_rows(rows)
         n_firms = self.n_firms
@@ -137,6 +172,30 @@ class CellSampler:
             mult = block if r == per_pass else np.ascontiguousarray(block[:, :r])
             out[lo:lo + r] = (self.firm_t @ mult).T
         return out
+
+    def _draw_by_range(self, rng: np.random.Generator, rows: int) -> np.ndarray:
+        """Sampler 2 over several firm ranges: draws per range total, then range by range, resample by resample
+        (module docstring). Each range's passes go through that range's columns of the product, summed."""
+        taken = rng.multinomial(self.n_firms, self.range_share, size=rows)
+        out = np.zeros((rows, self.counts.size))
+        per_pass = min(rows, PASS_ROWS)
+        for k, (first, stop) in enumerate(self.ranges):
+            size = stop - first
+            block = np.empty((size, per_pass), dtype=self.dtype)
+            for lo in range(0, rows, per_pass):
+                r = min(per_pass, rows - lo)
+                for j in range(r):
+                    block[:, j] = np.bincount(rng.integers(0, size, size=taken[lo + j, k]), minlength=size)
+                mult = block if r == per_pass else np.ascontiguousarray(block[:, :r])
+                out[lo:lo + r] += (self.range_t[k] @ mult).T
+        return out
+
+
+def check_sampler(value: object) -> int:
+    """``value`` as one of ``SAMPLERS``, or a ValueError naming them."""
+    if isinstance(value, bool) or not isinstance(value, int | np.integer) or value not in SAMPLERS:
+        raise ValueError(f"sampler must be one of {', '.join(map(str, SAMPLERS))}; got {value!r}.")
+    return int(value)
 
 
 def block_rng(seed: int, block: int) -> np.random.Generator:
@@ -154,8 +213,8 @@ def block_rng(seed: int, block: int) -> np.random.Generator:
     return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
 
 
-def draw_cells(cells: Cells, *, unit: Unit, seed: int, block: int) -> np.ndarray:
-    """The resampled cell counts of one block (resamples ``block * BLOCK_SIZE`` onwards).
+def draw_cells(cells: Cells, *, unit: Unit, seed: int, block: int, sampler: int = SAMPLER) -> np.ndarray:
+    """The resampled cell counts of one block (resamples ``block * BLOCK_SIZE`` onwards), by ``sampler``.
 
     Returns
     -------
@@ -166,4 +225,4 @@ def draw_cells(cells: Cells, *, unit: Unit, seed: int, block: int) -> np.ndarray
     check_choice(unit, UNITS, "unit")
     seed = check_count(seed, "seed", 0)
     block = check_count(block, "block", 0)
-    return CellSampler(cells, unit).draw(block_rng(seed, block), BLOCK_SIZE)
+    return CellSampler(cells, unit, sampler=sampler).draw(block_rng(seed, block), BLOCK_SIZE)

@@ -9,7 +9,8 @@ Reproducibility
 ---------------
 Block k of ``BLOCK_SIZE`` resamples is always drawn and evaluated whole from its own seeded generator
 (:func:`app.stats.draws.block_rng`). Resample i is therefore the same number whatever the chunk size,
-the worker count, or whether it came from one run or from extending a shorter one.
+the worker count, or whether it came from one run or from extending a shorter one, given the firm-draw
+sampler the run records (:mod:`app.stats.draws`: new runs use ``SAMPLER``, an extension its run's own).
 """
 
 from __future__ import annotations
@@ -24,7 +25,7 @@ import numpy as np
 
 from app.stats.cells import Cells
 from app.stats.design import Design
-from app.stats.draws import BLOCK_SIZE, CellSampler, block_rng, check_count
+from app.stats.draws import BLOCK_SIZE, SAMPLER, CellSampler, block_rng, check_count
 from app.stats.irls import fit_batch
 from app.types import UNITS, Unit, check_choice
 
@@ -165,6 +166,7 @@ def draw_replicates(
     workers: int | None = None,
     progress: Progress | None = None,
     should_stop: StopCheck | None = None,
+    sampler: int = SAMPLER,
 ) -> Replicates:
     """Draw and fit bootstrap resamples ``start .. start + resamples - 1``.
 
@@ -193,6 +195,9 @@ def draw_replicates(
     progress : callable(done, total), optional
     should_stop : callable() -> bool, optional
         Checked between chunks; ``True`` raises :class:`BootstrapCancelled`.
+    sampler : int
+        How firm draws are taken (``app.stats.draws.SAMPLERS``); new runs use the current one, an
+        extension the one its run started with.
 
     Returns
     -------
@@ -219,7 +224,8 @@ def draw_replicates(
         return theta, why, None
 
     return draw_statistic(cells, evaluate, unit=unit, resamples=resamples, seed=seed, start=start,
-                          chunk_size=chunk_size, workers=workers, progress=progress, should_stop=should_stop)
+                          chunk_size=chunk_size, workers=workers, progress=progress, should_stop=should_stop,
+                          sampler=sampler)
 
 
 def draw_statistic(
@@ -235,6 +241,7 @@ def draw_statistic(
     workers: int | None = None,
     progress: Progress | None = None,
     should_stop: StopCheck | None = None,
+    sampler: int = SAMPLER,
 ) -> Replicates:
     """Draw resamples ``start .. start + resamples - 1`` of ``cells`` and evaluate a statistic on each.
 
@@ -256,7 +263,7 @@ def draw_statistic(
     per_round = -(-check_count(chunk_size or 2000, "chunk_size", 1) // BLOCK_SIZE)
 
     began = time.perf_counter()
-    sampler = CellSampler(cells, unit, strata)
+    drawer = CellSampler(cells, unit, strata, sampler)
     first, last = start // BLOCK_SIZE, (start + n - 1) // BLOCK_SIZE
     blocks = list(range(first, last + 1))
     estimates: list[np.ndarray] = []
@@ -270,9 +277,9 @@ def draw_statistic(
                 raise BootstrapCancelled(done, n)
             batch = blocks[r:r + per_round]
             if pool is None:
-                results = [_block(k, seed, sampler, evaluate) for k in batch]
+                results = [_block(k, seed, drawer, evaluate) for k in batch]
             else:
-                results = list(pool.map(lambda k: _block(k, seed, sampler, evaluate), batch))
+                results = list(pool.map(lambda k: _block(k, seed, drawer, evaluate), batch))
             for theta, why, se in results:
                 estimates.append(theta)
                 failures.append(why)
