@@ -599,15 +599,14 @@ def test_hostile_xlsx_gets_a_clear_400_quickly(tmp_path: Path, kind: str) -> Non
 
 
 def test_xlsx_with_many_rows_is_bounded(tmp_path: Path) -> None:
-    """Well under the byte limits but large once parsed: answered in bounded time, never a 500."""
+    """Well under the byte limits but large once parsed: answered, never a 500. (The time bound itself is
+    tested without a clock in tests/test_hardening.py::test_workbook_parsing_is_bounded_by_time; a wall-clock
+    assertion here failed on a loaded machine and speed belongs in benchmarks/.)"""
     data = many_cells_xlsx(100_000)
     app, store = make_app(tmp_path)
     with TestClient(app) as client:
-        started = time.monotonic()
         r = client.post("/api/rosters", headers=SAME, files={"file": ("big.xlsx", data, "application/octet-stream")})
-        elapsed = time.monotonic() - started
     assert r.status_code in (201, 400), r.status_code
-    assert elapsed < 30, elapsed
     store.dispose()
 
 
