@@ -23,7 +23,7 @@ import pandas as pd
 from app import __version__
 from app.analysis.inputs import AnalysisInput, input_for_run
 from app.analysis.mapping_files import export_mapping_csv
-from app.analysis.run_params import by_sector, statistic_for
+from app.analysis.run_params import cells_for, statistic_for
 from app.intake.spreadsheet_safety import safe_csv
 from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, jackknife_statistic
 from app.stats.cells import Cells
@@ -88,8 +88,10 @@ def finished_run(store: Store, run_id: int) -> Run:
 def run_cells(store: Store, run: Run) -> tuple[AnalysisInput, Cells]:
     """The input and counts a run used, checked against the run's data fingerprint."""
     inp = input_for_run(store, run)
-    sectors = by_sector(run.params) if run.kind == "bootstrap" else run.params.get("model") in ("sector", "by_sector")
-    cells = inp.cells(by_sector=sectors)
+    if run.kind == "bootstrap":
+        cells = cells_for(inp, run.params)
+    else:
+        cells = inp.cells(by_sector=run.params.get("model") in ("sector", "by_sector"))
     if cells.fingerprint() != run.fingerprint:
         raise ValueError(f"The roster's counts no longer match run {run.id}'s data fingerprint, so no pack can "
                          "show what it saw; start a new run.")

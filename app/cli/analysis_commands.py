@@ -91,7 +91,8 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
     payload = run_bootstrap_now(store, inp, unit=args.unit, resamples=args.resamples, seed=args.seed,
                                 model=args.model, statistic=args.statistic, sector=args.sector,
-                                spline_df=args.spline_df, periods=args.periods, stratify=args.stratify)
+                                spline_df=args.spline_df, periods=args.periods, stratify=args.stratify,
+                                adjust=args.adjust)
 
     def bound(v: float | None) -> str:
         return "n/a" if v is None else f"{v:.3f}"  # three decimals, as every page and export
