@@ -13,8 +13,8 @@ import numpy as np
 from app.analysis.adjusted import adjusted_cells
 from app.analysis.cellstore import memoised
 from app.analysis.inputs import AnalysisInput
-from app.analysis.rates import universe_or_error
-from app.stats.adjusted import ADJUSTMENTS, bootstrap_cells, parse_adjust
+from app.analysis.rates import run_rates, universe_or_error
+from app.stats.adjusted import ADJUSTMENTS, bootstrap_cells, fit_adjusted, parse_adjust
 from app.stats.cells import Cells, assign_categories
 from app.stats.design import window_centre
 from app.stats.measures import RATE_NEEDS_FIRMS, adjusted_statistic, rate_cells, rate_ratio_statistic
@@ -22,6 +22,7 @@ from app.stats.periods import default_periods, parse_periods
 from app.stats.sectors import fit_sector_trends
 from app.stats.statistic_names import MEASURE_STATISTICS
 from app.stats.statistics import STATISTICS, Statistic, firm_strata, make_statistic
+from app.store import Store
 from app.types import UNITS, check_choice
 
 #: the most resamples one run may ask for (a bound on time and storage, far above what intervals need)
@@ -159,3 +160,25 @@ def _resolve(inp: AnalysisInput, params: dict[str, Any]) -> dict[str, Any]:
     cells = cells_for(inp, params, firms=False)
     statistic_for(params, cells).original(cells)
     return params
+
+
+def measure_intervals(store: Store, inp: AnalysisInput, params: dict[str, Any]
+                      ) -> tuple[list[tuple[str, tuple[float, float] | None]], str]:
+    """The model-based intervals the pages report for a rate_ratio or adjusted_odds_ratio run's number, and
+    where they come from (for the run page, beside the bootstrap's)."""
+    if params.get("statistic") == "rate_ratio":
+        analysis = run_rates(store, inp, record=False)
+        if analysis.universe.id != params.get("universe_id"):
+            raise ValueError("The roster has another universe since this run; its model-based intervals are not "
+                             "those of this run's firm-years.")
+        forced = analysis.forced
+        if forced is None:
+            raise ValueError(analysis.error or "The forced rate's trend cannot be fitted.")
+        pairs = [("Wald", forced.conf_int["wald"]), ("profile likelihood", forced.conf_int["profile"])]
+        if forced.quasi is not None:
+            pairs.append(("quasi-Poisson profile", forced.quasi.conf_int["profile"]))
+        return pairs, "Poisson fit of the forced rate (model-based)"
+    chosen = parse_adjust(params.get("adjust", ()))
+    fit = memoised(store, ("fit_adjusted", *inp.key, chosen),
+                   lambda: fit_adjusted(adjusted_cells(inp, chosen), inp.window))
+    return [("firm-clustered Wald", fit.cluster_interval)], "adjusted fit (model-based, clustered by firm)"
