@@ -10,6 +10,7 @@ tests/test_cli_rules.py) for the adjusted odds ratio's estimate.
 from __future__ import annotations
 
 import json
+
 import numpy as np
 import pandas as pd
 import pytest

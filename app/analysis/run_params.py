@@ -174,7 +174,8 @@ def measure_intervals(store: Store, inp: AnalysisInput, params: dict[str, Any]
         forced = analysis.forced
         if forced is None:
             raise ValueError(analysis.error or "The forced rate's trend cannot be fitted.")
-        pairs = [("Wald", forced.conf_int["wald"]), ("profile likelihood", forced.conf_int["profile"])]
+        pairs: list[tuple[str, tuple[float, float] | None]] = [("Wald", forced.conf_int["wald"]),
+                                                               ("profile likelihood", forced.conf_int["profile"])]
         if forced.quasi is not None:
             pairs.append(("quasi-Poisson profile", forced.quasi.conf_int["profile"]))
         return pairs, "Poisson fit of the forced rate (model-based)"

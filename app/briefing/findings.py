@@ -17,15 +17,15 @@ import plotly.graph_objects as go
 from app.analysis.inputs import AnalysisInput, input_for_run
 from app.analysis.jobs import replicate_odds_ratios
 from app.analysis.provenance import Provenance, provenance_for
-
-#: the model line of a rate ratio run's provenance (the universe's fingerprint is in the run's parameters)
-RATE_MODEL = "Poisson GLM, forced departures with log firm-years offset, linear in fiscal year"
 from app.analysis.runs import run_sectors, run_trend
 from app.briefing.charts import bootstrap_histogram, coverage_figure, forest_figure, trend_figure
 from app.stats.headline import headline_sentence, interval_label, model_interval
 from app.stats.sectors import SectorTrends
 from app.stats.trend import TrendFit
 from app.store import Run, Store, StoreError
+
+#: the model line of a rate ratio run's provenance (the universe's fingerprint is in the run's parameters)
+RATE_MODEL = "Poisson GLM, forced departures with log firm-years offset, linear in fiscal year"
 
 if TYPE_CHECKING:
     from app.analysis.robustness import Robustness

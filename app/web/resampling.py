@@ -14,7 +14,13 @@ from starlette.concurrency import run_in_threadpool
 from app.analysis.inputs import input_for_run, load_input
 from app.analysis.jobs import create_bootstrap_run, extend_run
 from app.analysis.replication import build_pack, jackknife_csv, replicates_csv, replicates_payload
-from app.analysis.run_params import MAX_RESAMPLES, STRATIFY, bootstrap_params, check_spline_df, measure_intervals
+from app.analysis.run_params import (
+    MAX_RESAMPLES,
+    STRATIFY,
+    bootstrap_params,
+    check_spline_df,
+    measure_intervals,
+)
 from app.analysis.runs import run_trend
 from app.briefing.findings import bootstrap_finding
 from app.stats.statistic_names import STATISTIC_HELP, STATISTICS
