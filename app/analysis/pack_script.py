@@ -401,6 +401,26 @@ def adjusted_refit(folder: Path, params: dict[str, Any], results: dict[str, Any]
     return out
 
 
+def logit_newton(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, start: np.ndarray) -> float:
+    """The year coefficient of the grouped logit by Newton's method from ``start`` (the full fit, which a data
+    set missing one firm is close to), to machine precision: the same maximum likelihood estimate statsmodels
+    finds, without its per-fit overhead (hundreds of leave-one-firm-out refits); statsmodels where a column lost
+    all its departures (then fitted without it)."""
+    beta = start.copy()
+    for _ in range(100):
+        mu = special.expit(X @ beta)
+        hessian = X.T @ (X * (totals * mu * (1 - mu))[:, None])
+        try:
+            step = np.linalg.solve(hessian, X.T @ (forced - totals * mu))
+        except np.linalg.LinAlgError:
+            fit, j = _fit(forced, totals, X, 1)
+            return float(fit.params[j])
+        beta += step
+        if np.max(np.abs(step)) < 1e-14 * max(1.0, float(np.max(np.abs(beta)))):
+            break
+    return float(beta[1])
+
+
 def adjusted_jackknife(folder: Path, params: dict[str, Any]) -> list[tuple[str, float, Any]]:
     """Leave each firm (or departure) out of the adjusted cells, refit, compare with jackknife.csv."""
     cells = counts(read_csv(folder, "cells.csv"))
@@ -423,13 +443,13 @@ def adjusted_jackknife(folder: Path, params: dict[str, Any]) -> list[tuple[str, 
             f, v = forced.copy(), voluntary.copy()
             (f if row.category == "forced" else v)[position[(row.year, row.age_band, row.tenure_band, row.sector)]] -= 1
             cases.append((f, v))
+    full = np.asarray(glm(forced, forced + voluntary, X).params)
     memo: dict[bytes, float] = {}
     worst = 0.0
     for (f, v), reported in zip(cases, floats(jackknife["log_odds_ratio"]), strict=True):
         k = f.tobytes() + v.tobytes()
         if k not in memo:
-            fit, j = _fit(f, f + v, X, 1)
-            memo[k] = float(fit.params[j])
+            memo[k] = logit_newton(f, f + v, X, full)
         worst = max(worst, abs(memo[k] - reported)) if math.isfinite(reported) else math.inf
     return [("jackknife: largest difference over all units", worst, 0.0)]
 
@@ -683,7 +703,8 @@ def main(argv: list[str] | None = None) -> int:
     if as_json:
         print(json.dumps({"run": params["run"], "checks": rows, "ok": all(r["ok"] for r in rows)}))
     else:
-        print(f"Run {params['run']} ({params['kind']}, model {params['model']}): recomputed vs results.json")
+        what = f"statistic {params['statistic']}" if params["kind"] == "bootstrap" else f"model {params['model']}"
+        print(f"Run {params['run']} ({params['kind']}, {what}): recomputed vs results.json")
         for r in rows:
             mine = "n/a" if r["recomputed"] is None else f"{r['recomputed']:.12g}"
             theirs = "n/a" if r["reported"] is None else f"{r['reported']:.12g}"
