@@ -7,6 +7,7 @@ on the demo roster's own records (read with pandas from demo_data/roster.csv, no
 from __future__ import annotations
 
 import json
+import zipfile
 from pathlib import Path
 from typing import Any
 
@@ -131,9 +132,19 @@ def test_fit_adjusted_with_the_firm_bootstrap_records_it(capsys: pytest.CaptureF
     assert code != 0 and "--resamples goes with --model adjusted" in err
 
 
-def test_an_adjusted_run_has_no_replication_pack_yet_and_says_so(capsys: pytest.CaptureFixture[str], db: str,
-                                                                  tmp_path: Path) -> None:
-    code, payload, _ = run(capsys, "fit", "--roster", "1", "--model", "adjusted", "--db", db, "--json")
+def test_an_adjusted_run_exports_a_pack_with_its_cells(capsys: pytest.CaptureFixture[str], db: str,
+                                                      tmp_path: Path) -> None:
+    code, payload, _ = run(capsys, "fit", "--roster", "1", "--model", "adjusted", "--adjust", "age", "--db", db,
+                           "--json")
     assert code == 0
     code, _, err = run(capsys, "run", "export", str(payload["run"]), "--out", str(tmp_path / "p.zip"), "--db", db)
-    assert code != 0 and "is an adjusted trend" in err and not (tmp_path / "p.zip").exists()
+    assert code == 0, err
+    with zipfile.ZipFile(tmp_path / "p.zip") as archive:
+        cells = pd.read_csv(archive.open("cells.csv"), dtype={"age_band": str}, keep_default_na=False)
+        firms = pd.read_csv(archive.open("firm_cells.csv"), keep_default_na=False)
+        params = json.loads(archive.read("params.json"))
+    # the cells hold every departure the fit counted; the firm rows add up to them (hand sums with pandas)
+    assert int((cells["forced"] + cells["voluntary"]).sum()) == payload["departures"]
+    assert int(firms["forced"].sum()) == payload["forced"] and firms["firm_id"].nunique() == payload["firms"]
+    assert params["measure"] == "adjusted" and params["adjust"] == ["age"]
+    assert set(cells["age_band"]) <= {"<50", "50-59", "60-64", "65+"} and set(cells["tenure_band"]) == {""}

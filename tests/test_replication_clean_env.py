@@ -1,6 +1,7 @@
 """The replication pack's reproduce.py in a fresh virtual environment holding only numpy, pandas, scipy and
 statsmodels (no Helmshift): every number it prints equals the run's to 1e-9, for a fit, a firm bootstrap and
-a departure bootstrap of the demo roster. The same library versions as this environment are installed, so a
+a departure bootstrap of the demo roster, and for the rate (Poisson with firm-years) and the adjusted trend, each
+as a fit and as a firm bootstrap of its ratio per year. The same library versions as this environment are installed, so a
 difference would be the pack's fault, not a library's."""
 
 from __future__ import annotations
@@ -19,10 +20,13 @@ import scipy
 import statsmodels
 from conftest import copy_database
 
+from app.analysis.adjusted import run_adjusted
 from app.analysis.inputs import load_input
 from app.analysis.jobs import run_bootstrap_now
+from app.analysis.rates import run_rates
 from app.analysis.replication import build_pack
 from app.analysis.runs import run_trend
+from app.intake.universe import derive_universe
 from app.store import Store
 
 pytestmark = pytest.mark.slow
@@ -56,6 +60,12 @@ def test_reproduce_py_in_a_clean_environment(shared_demo_db: Path, tmp_path: Pat
         inp = load_input(store, 1)
         ids = [run_trend(store, inp).run_id]
         ids += [int(run_bootstrap_now(store, inp, unit=u, resamples=1000, seed=3)["run"]) for u in ("firm", "departure")]
+        # the other measures: the rate (over a universe derived from the roster) and the adjusted trend, each as a
+        # fit and as a firm bootstrap of its ratio per year
+        derive_universe(store, 1)
+        ids += [int(run_rates(store, inp).run_id or 0), run_adjusted(store, inp, "age,tenure,sector").run_id]
+        ids += [int(run_bootstrap_now(store, inp, unit="firm", resamples=1000, seed=3, statistic=name)["run"])
+                for name in ("rate_ratio", "adjusted_odds_ratio")]
         for run_id in ids:
             folder = tmp_path / f"pack-{run_id}"
             with zipfile.ZipFile(io.BytesIO(build_pack(store, run_id).data)) as archive:
@@ -70,7 +80,11 @@ def test_reproduce_py_in_a_clean_environment(shared_demo_db: Path, tmp_path: Pat
             for check in checks.values():
                 assert check["recomputed"] is not None and check["reported"] is not None, check
                 assert abs(check["recomputed"] - check["reported"]) <= 1e-9 * max(1.0, abs(check["reported"])), check
-            if run.kind == "fit":
+            if run.params.get("model") == "rate":
+                assert checks["forced rate: profile low"]["reported"] == run.result["forced"]["conf_int"]["profile"][0]
+            elif run.params.get("model") == "adjusted":
+                assert checks["firm-clustered high"]["reported"] == run.result["conf_int"]["cluster"][1]
+            elif run.kind == "fit":
                 assert checks["profile low, per year"]["reported"] == run.result["conf_int"]["profile"][0]
                 assert checks["Wald high, per decade"]["reported"] == run.result["decade_conf_int"]["wald"][1]
             else:

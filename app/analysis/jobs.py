@@ -32,7 +32,7 @@ from app.analysis.inputs import AnalysisInput, input_for_run
 from app.analysis.run_params import (
     _resolve,
     bootstrap_params,
-    by_sector,
+    cells_for,
     statistic_for,
     strata_for,
 )
@@ -142,7 +142,7 @@ def create_bootstrap_run(store: Store, inp: AnalysisInput, params: dict[str, Any
     """Store a queued run (or one already running and held by ``claimed_by``) with everything needed to
     reproduce it; return its id."""
     params = _resolve(inp, params)
-    cells = inp.group_cells(by_sector=by_sector(params))
+    cells = cells_for(inp, params, firms=False)
     return store.create_run(
         kind="bootstrap", roster_id=inp.roster.id, params=params, fingerprint=cells.fingerprint(),
         mapping_name=inp.mapping.name if inp.mapping else None,
@@ -168,7 +168,7 @@ def _execute_claimed(store: Store, run_id: int, worker: str, stopping: Callable[
     run = store.get_run(run_id)
     params = run.params
     inp = input_for_run(store, run)
-    cells = inp.cells(by_sector=by_sector(params))
+    cells = cells_for(inp, params)
     if cells.fingerprint() != run.fingerprint:
         raise ValueError("The roster's counts no longer match this run's fingerprint; start a new run.")
     statistic = statistic_for(params, cells)
@@ -207,7 +207,9 @@ def extend_run(store: Store, run_id: int, extra: int) -> None:
     """Ask for ``extra`` more resamples; the first ones are kept, the stream continues where it stopped."""
     run = store.get_run(run_id)
     params = dict(run.params)
-    params["resamples"] = bootstrap_params(**{**params, "resamples": int(params["resamples"]) + int(extra)}
+    # the options bootstrap_params checks; what the run filled in at creation (its universe) stays as it is
+    options = {k: v for k, v in params.items() if k not in ("universe_id", "universe_fingerprint")}
+    params["resamples"] = bootstrap_params(**{**options, "resamples": int(params["resamples"]) + int(extra)}
                                            )["resamples"]
     store.update_run_params(run_id, params, status="queued")
 
@@ -342,7 +344,7 @@ def run_bootstrap_now(store: Store, inp: AnalysisInput, *, unit: str, resamples:
     """The command line's synchronous bootstrap: store the run, compute it, return the JSON summary.
 
     ``options`` are :func:`bootstrap_params`' statistic options (statistic, sector, spline_df, periods,
-    stratify)."""
+    stratify, adjust)."""
     params = bootstrap_params(unit=unit, resamples=resamples, seed=seed, model=model, **options)
     worker = worker_name()
     # born held by this process, so a server on the same store cannot claim it between creation and start

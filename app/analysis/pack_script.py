@@ -2,9 +2,11 @@
 
 Usage, in the unzipped pack:   python reproduce.py [PACK_FOLDER] [--json]
 
-It reads cells.csv (and firm_cells.csv), params.json, results.json, and for a bootstrap run
-replicates.csv and jackknife.csv; it refits the model, recomputes the Wald and profile-likelihood
-intervals (and the quasi-binomial ones and the bend test where the run reported them), and recomputes the
+It reads cells.csv (and firm_cells.csv, universe.csv), params.json, results.json, and for a bootstrap run
+replicates.csv and jackknife.csv; it refits the model (the binomial trend in the forced share; for a rate,
+the Poisson trend with log firm-years as offset; for the adjusted trend, the logit on year and the
+adjustments with firm-clustered standard errors), recomputes the Wald and profile-likelihood
+intervals (and the quasi ones and the bend test where the run reported them), and recomputes the
 bootstrapped statistic (odds ratio per year or decade, a sector's slope, the equal-trends or bend
 likelihood-ratio statistic, or the period difference in shares) with its standard error, and the
 percentile, basic, BCa, normal and studentized intervals and their Monte Carlo errors from the stored
@@ -136,6 +138,10 @@ def natural_spline(x: np.ndarray, df: int) -> np.ndarray:
 
 def refit(folder: Path, params: dict[str, Any], results: dict[str, Any]) -> list[tuple[str, float, Any]]:
     """The trend fit's numbers: (name, recomputed, reported)."""
+    if params.get("measure") == "rate":
+        return rate_refit(folder, params, results)
+    if params.get("measure") == "adjusted":
+        return adjusted_refit(folder, params, results)
     cells = counts(read_csv(folder, "cells.csv"))
     model, kind = params["model"], params["kind"]
     if model == "by_sector":
@@ -222,6 +228,230 @@ def sector_checks(cells: pd.DataFrame, params: dict[str, Any], results: dict[str
         out += [("equal-trends LR statistic", statistic, test["statistic"]),
                 ("equal-trends p-value", float(stats.chi2.sf(statistic, j - 1)), test["p"])]
     return out
+
+
+# ---------------------------------------------------------------- rates per firm-year (Poisson, offset)
+
+
+def poisson(events: np.ndarray, exposure: np.ndarray, X: np.ndarray, extra: np.ndarray | None = None,
+            at_estimate: bool = False) -> Any:
+    """Poisson GLM of events with offset log(firm-years) (+ ``extra``) over the years with firm-years, as
+    Helmshift fits the rate trend (statsmodels, tol 1e-12); ``at_estimate``: refitted from the estimate so
+    the standard errors are those at the estimate (as the bootstrap's batched fits report them)."""
+    keep = exposure > 0
+    offset = np.log(exposure[keep]) + (0.0 if extra is None else extra[keep])
+    model = sm.GLM(events[keep], X[keep], family=sm.families.Poisson(), offset=offset)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fit = model.fit(tol=1e-12, maxiter=200)
+        return model.fit(start_params=fit.params, tol=1e-12, maxiter=200) if at_estimate else fit
+
+
+def poisson_profile(events: np.ndarray, exposure: np.ndarray, t: np.ndarray, b: float, se: float, alpha: float,
+                    dispersion: float = 1.0) -> tuple[float, float]:
+    """Profile-likelihood interval of the slope: the intercept refitted for each slope held fixed (an offset)."""
+    ones = np.ones((t.size, 1))
+    best = float(poisson(events, exposure, np.column_stack([ones, t])).deviance)
+    cut = float(stats.chi2.ppf(1.0 - alpha, 1))
+
+    def excess(value: float) -> float:
+        return (float(poisson(events, exposure, ones, extra=value * t).deviance) - best) / dispersion - cut
+
+    ends = []
+    for sign in (-1.0, 1.0):
+        inner, end = b, sign * math.inf
+        for k in BRACKET_STEPS:
+            outer = b + sign * k * se
+            if excess(outer) > 0:
+                end = optimize.brentq(excess, min(inner, outer), max(inner, outer), xtol=1e-13)
+                break
+            inner = outer
+        ends.append(end)
+    return ends[0], ends[1]
+
+
+def rate_refit(folder: Path, params: dict[str, Any], results: dict[str, Any]) -> list[tuple[str, float, Any]]:
+    """The rate ratio per year of the forced (and, for a fit, the voluntary) rate: Poisson GLM with log firm-years
+    as offset; Wald, profile and (where reported) quasi-Poisson intervals; or the bootstrapped statistic."""
+    cells = read_csv(folder, "cells.csv").astype("int64")
+    t = cells["year"].to_numpy(dtype=float) - float(params["centre"])
+    exposure = cells["firm_years"].to_numpy(dtype=float)
+    X = np.column_stack([np.ones_like(t), t])
+    if params["kind"] == "bootstrap":
+        fit = poisson(cells["forced"].to_numpy(dtype=float), exposure, X, at_estimate=True)
+        label = results.get("label", "rate ratio per year")
+        b = float(fit.params[1])
+        return [(f"{label}: estimate (log scale)", b, results["log_odds_ratio"]),
+                (f"{label}: estimate", math.exp(b), results["odds_ratio"]),
+                (f"{label}: standard error", float(fit.bse[1]), results["estimate_se"])]
+    out: list[tuple[str, float, Any]] = []
+    for measure in ("forced", "voluntary"):
+        reported = results[measure]
+        events = cells[measure].to_numpy(dtype=float)
+        alpha = float(reported["alpha"])
+        z = float(stats.norm.ppf(1.0 - alpha / 2.0))
+        fit = poisson(events, exposure, X)
+        b, se = float(fit.params[1]), float(fit.bse[1])
+        low, high = poisson_profile(events, exposure, t, b, se, alpha)
+        df_resid = int(round(float(fit.df_resid)))
+        dispersion = float(fit.pearson_chi2) / df_resid if df_resid > 0 else math.nan
+        out += [(f"{measure} rate: log rate ratio per year", b, reported["log_rr"]),
+                (f"{measure} rate: its standard error", se, reported["se"]),
+                (f"{measure} rate: rate ratio per year", math.exp(b), reported["rate_ratio"]),
+                (f"{measure} rate: Wald low", math.exp(b - z * se), reported["conf_int"]["wald"][0]),
+                (f"{measure} rate: Wald high", math.exp(b + z * se), reported["conf_int"]["wald"][1]),
+                (f"{measure} rate: profile low", math.exp(low), reported["conf_int"]["profile"][0]),
+                (f"{measure} rate: profile high", math.exp(high), reported["conf_int"]["profile"][1]),
+                (f"{measure} rate: deviance", float(fit.deviance), reported["deviance"]),
+                (f"{measure} rate: dispersion X2/df", dispersion, reported["dispersion"])]
+        quasi = reported.get("quasi")
+        if quasi:
+            q_se = se * math.sqrt(dispersion)
+            q_low, q_high = poisson_profile(events, exposure, t, b, q_se, alpha, dispersion)
+            out += [(f"{measure} rate: quasi-Poisson Wald low", math.exp(b - z * q_se), quasi["conf_int"]["wald"][0]),
+                    (f"{measure} rate: quasi-Poisson Wald high", math.exp(b + z * q_se), quasi["conf_int"]["wald"][1]),
+                    (f"{measure} rate: quasi-Poisson profile low", math.exp(q_low), quasi["conf_int"]["profile"][0]),
+                    (f"{measure} rate: quasi-Poisson profile high", math.exp(q_high),
+                     quasi["conf_int"]["profile"][1])]
+    return out
+
+
+def rate_jackknife(folder: Path, params: dict[str, Any]) -> list[tuple[str, float, Any]]:
+    """Leave each universe firm out (its firm-years and its forced departures), refit, compare."""
+    cells = read_csv(folder, "cells.csv").astype("int64")
+    years = cells["year"].to_numpy()
+    position = {int(y): i for i, y in enumerate(years)}
+    t = years.astype(float) - float(params["centre"])
+    X = np.column_stack([np.ones_like(t), t])
+    universe = read_csv(folder, "universe.csv").astype({"year": "int64"})
+    universe = universe.loc[universe["year"].isin(years)]
+    own: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+    for firm, year in universe.itertuples(index=False):
+        pair = own.setdefault(str(firm), (np.zeros(years.size), np.zeros(years.size)))
+        pair[1][position[int(year)]] += 1
+    for firm, year, forced in read_csv(folder, "firm_cells.csv").itertuples(index=False):
+        own[str(firm)][0][position[int(year)]] += int(forced)
+    events, exposure = cells["forced"].to_numpy(dtype=float), cells["firm_years"].to_numpy(dtype=float)
+    jackknife = read_csv(folder, "jackknife.csv")
+    memo: dict[bytes, float] = {}
+    worst = 0.0
+    for unit, reported in zip(jackknife["unit_id"], floats(jackknife["log_odds_ratio"]), strict=True):
+        f, e = events - own[str(unit)][0], exposure - own[str(unit)][1]
+        k = f.tobytes() + e.tobytes()
+        if k not in memo:
+            memo[k] = float(poisson(f, e, X, at_estimate=True).params[1])
+        worst = max(worst, abs(memo[k] - reported)) if math.isfinite(reported) else math.inf
+    return [("jackknife: largest difference over all units", worst, 0.0)]
+
+
+# ---------------------------------------------------------------- the adjusted trend (departure-level logit)
+
+
+def adjusted_design(cells: pd.DataFrame, params: dict[str, Any]) -> np.ndarray:
+    """Intercept, year (from the first year), treatment dummies of each adjustment (its first level present,
+    in band order or sector name order, is the base)."""
+    columns = [np.ones(len(cells)), (cells["year"] - cells["year"].min()).to_numpy(dtype=float)]
+    order = {"age": ("age_band", params["age_bands"]), "tenure": ("tenure_band", params["tenure_bands"]),
+             "sector": ("sector", None)}
+    for name in params["adjust"]:
+        column, levels = order[name]
+        present = [lv for lv in (levels or sorted(cells[column].unique())) if (cells[column] == lv).any()]
+        columns += [(cells[column] == lv).to_numpy(dtype=float) for lv in present[1:]]
+    return np.column_stack(columns)
+
+
+def adjusted_refit(folder: Path, params: dict[str, Any], results: dict[str, Any]) -> list[tuple[str, float, Any]]:
+    """The adjusted fit (statsmodels' binomial GLM on the cells, with its default settings, as Helmshift fits it)
+    and its firm-clustered covariance from the firm x cell counts (sum over a firm's cells of x (f - n mu),
+    corrected by G/(G-1) (N-1)/(N-K), statsmodels' default); or the bootstrapped statistic."""
+    cells = counts(read_csv(folder, "cells.csv"))
+    X = adjusted_design(cells, params)
+    forced, voluntary = cells["forced"].to_numpy(dtype=float), cells["voluntary"].to_numpy(dtype=float)
+    if params["kind"] == "bootstrap":
+        fit, _ = _fit(forced, forced + voluntary, X)
+        label = results.get("label", "adjusted odds ratio per year")
+        b = float(fit.params[1])
+        return [(f"{label}: estimate (log scale)", b, results["log_odds_ratio"]),
+                (f"{label}: estimate", math.exp(b), results["odds_ratio"]),
+                (f"{label}: standard error", float(fit.bse[1]), results["estimate_se"])]
+    beta = np.asarray(sm.GLM(np.column_stack([forced, voluntary]), X, family=sm.families.Binomial()).fit().params)
+    n = forced + voluntary
+    mu = 1.0 / (1.0 + np.exp(-(X @ beta)))
+    bread = np.linalg.inv(X.T @ (X * (n * mu * (1 - mu))[:, None]))
+    firms = counts(read_csv(folder, "firm_cells.csv"))
+    index = {k: i for i, k in enumerate(cells[["year", "age_band", "tenure_band", "sector"]].itertuples(index=False))}
+    cell = np.array([index[k] for k in firms[["year", "age_band", "tenure_band", "sector"]].itertuples(index=False)])
+    residual = (firms["forced"].to_numpy(dtype=float) - (firms["forced"] + firms["voluntary"]).to_numpy(dtype=float)
+                * mu[cell])[:, None] * X[cell]
+    scores = pd.DataFrame(residual).groupby(firms["firm_id"].to_numpy()).sum().to_numpy()
+    groups, nobs, k = scores.shape[0], float(n.sum()), X.shape[1]
+    cov = groups / (groups - 1) * (nobs - 1) / (nobs - k) * bread @ (scores.T @ scores) @ bread
+    se = np.sqrt(np.diag(cov))
+    z = float(stats.norm.ppf(0.975))
+    out: list[tuple[str, float, Any]] = [
+        ("adjusted log odds ratio per year", float(beta[1]), results["coef"]),
+        ("adjusted odds ratio per year", math.exp(beta[1]), results["odds_ratio"]),
+        ("firm-clustered standard error", float(se[1]), results["cluster_se"]),
+        ("firm-clustered low", math.exp(beta[1] - z * se[1]), results["conf_int"]["cluster"][0]),
+        ("firm-clustered high", math.exp(beta[1] + z * se[1]), results["conf_int"]["cluster"][1]),
+        ("departures", nobs, results["departures"]), ("firms", float(groups), results["firms"])]
+    for j, row in enumerate(results["coefficients"]):
+        out += [(f"{row['term']}: log odds", float(beta[j]), row["log_odds"]),
+                (f"{row['term']}: clustered SE", float(se[j]), row["cluster_se"])]
+    return out
+
+
+def logit_newton(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, start: np.ndarray) -> float:
+    """The year coefficient of the grouped logit by Newton's method from ``start`` (the full fit, which a data
+    set missing one firm is close to), to machine precision: the same maximum likelihood estimate statsmodels
+    finds, without its per-fit overhead (hundreds of leave-one-firm-out refits); statsmodels where a column lost
+    all its departures (then fitted without it)."""
+    beta = start.copy()
+    for _ in range(100):
+        mu = special.expit(X @ beta)
+        hessian = X.T @ (X * (totals * mu * (1 - mu))[:, None])
+        try:
+            step = np.linalg.solve(hessian, X.T @ (forced - totals * mu))
+        except np.linalg.LinAlgError:
+            fit, j = _fit(forced, totals, X, 1)
+            return float(fit.params[j])
+        beta += step
+        if np.max(np.abs(step)) < 1e-14 * max(1.0, float(np.max(np.abs(beta)))):
+            break
+    return float(beta[1])
+
+
+def adjusted_jackknife(folder: Path, params: dict[str, Any]) -> list[tuple[str, float, Any]]:
+    """Leave each firm (or departure) out of the adjusted cells, refit, compare with jackknife.csv."""
+    cells = counts(read_csv(folder, "cells.csv"))
+    X = adjusted_design(cells, params)
+    forced, voluntary = cells["forced"].to_numpy(dtype=float), cells["voluntary"].to_numpy(dtype=float)
+    keys = ["year", "age_band", "tenure_band", "sector"]
+    position: dict[tuple[Any, ...], int] = {tuple(k): i for i, k in enumerate(cells[keys].itertuples(index=False))}
+    jackknife = read_csv(folder, "jackknife.csv")
+    if params["unit"] == "firm":
+        left: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+        for row in counts(read_csv(folder, "firm_cells.csv")).itertuples(index=False):
+            f, v = left.setdefault(str(row.firm_id), (forced.copy(), voluntary.copy()))
+            c = position[(row.year, row.age_band, row.tenure_band, row.sector)]
+            f[c] -= row.forced
+            v[c] -= row.voluntary
+        cases = [left[str(u)] for u in jackknife["unit_id"]]
+    else:
+        cases = []
+        for row in jackknife.astype({"year": "int64"}).itertuples(index=False):
+            f, v = forced.copy(), voluntary.copy()
+            (f if row.category == "forced" else v)[position[(row.year, row.age_band, row.tenure_band, row.sector)]] -= 1
+            cases.append((f, v))
+    full = np.asarray(glm(forced, forced + voluntary, X).params)
+    memo: dict[bytes, float] = {}
+    worst = 0.0
+    for (f, v), reported in zip(cases, floats(jackknife["log_odds_ratio"]), strict=True):
+        k = f.tobytes() + v.tobytes()
+        if k not in memo:
+            memo[k] = logit_newton(f, f + v, X, full)
+        worst = max(worst, abs(memo[k] - reported)) if math.isfinite(reported) else math.inf
+    return [("jackknife: largest difference over all units", worst, 0.0)]
 
 
 # ---------------------------------------------------------------- the bootstrapped statistic
@@ -466,12 +696,15 @@ def main(argv: list[str] | None = None) -> int:
     results = json.loads((folder / "results.json").read_text(encoding="utf-8"))
     checks = refit(folder, params, results)
     if params["kind"] == "bootstrap":
-        checks += bootstrap_numbers(folder, params, results) + jackknife_check(folder, params)
+        jackknife = {"rate": rate_jackknife, "adjusted": adjusted_jackknife}.get(params.get("measure", ""),
+                                                                                 jackknife_check)
+        checks += bootstrap_numbers(folder, params, results) + jackknife(folder, params)
     rows = compare(checks)
     if as_json:
         print(json.dumps({"run": params["run"], "checks": rows, "ok": all(r["ok"] for r in rows)}))
     else:
-        print(f"Run {params['run']} ({params['kind']}, model {params['model']}): recomputed vs results.json")
+        what = f"statistic {params['statistic']}" if params["kind"] == "bootstrap" else f"model {params['model']}"
+        print(f"Run {params['run']} ({params['kind']}, {what}): recomputed vs results.json")
         for r in rows:
             mine = "n/a" if r["recomputed"] is None else f"{r['recomputed']:.12g}"
             theirs = "n/a" if r["reported"] is None else f"{r['reported']:.12g}"

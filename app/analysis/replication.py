@@ -23,7 +23,8 @@ import pandas as pd
 from app import __version__
 from app.analysis.inputs import AnalysisInput, input_for_run
 from app.analysis.mapping_files import export_mapping_csv
-from app.analysis.run_params import by_sector, statistic_for
+from app.analysis.measure_packs import adjusted_departures, measure_kind, measure_members
+from app.analysis.run_params import cells_for, statistic_for
 from app.intake.spreadsheet_safety import safe_csv
 from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, jackknife_statistic
 from app.stats.cells import Cells
@@ -41,11 +42,15 @@ RECORD_COLUMNS = ("line", "firm_id", "firm_name", "sector", "year", "date", "rea
 
 FILE_NOTES = {
     "README.txt": "this file",
-    "cells.csv": "the counts the model saw: one row per group (fiscal year, or sector and year), forced and "
-                 "voluntary departures inside the window under the mapping version",
-    "firm_cells.csv": "firm runs: each firm's forced and voluntary departures per group (rows add up to cells.csv)",
+    "cells.csv": "the counts the model saw: one row per group (fiscal year, or sector and year; for a rate: fiscal "
+                 "year with its firm-years; for the adjusted trend: year x age band x tenure band x sector), "
+                 "forced and voluntary departures inside the window under the mapping version",
+    "firm_cells.csv": "firm runs and the adjusted trend: each firm's departures per group (rows add up to cells.csv; "
+                      "for a rate its forced departures per year, its firm-years being in universe.csv)",
     "records.csv": "the departures behind the cells (only when asked for: rosters hold personal data about "
                    "named people; keep this file local)",
+    "universe.csv": "rate runs: every firm-year (firm_id, year) of the universe the rate divides by (the model "
+                    "uses those inside the window)",
     "mapping.csv": "the exact mapping version: reason code, category, label",
     "params.json": "model, statistic and its options, window and its centre, unit, stratification, B, seed, "
                    "block size, alpha, roster and mapping fingerprints, library versions",
@@ -89,8 +94,10 @@ def finished_run(store: Store, run_id: int) -> Run:
 def run_cells(store: Store, run: Run) -> tuple[AnalysisInput, Cells]:
     """The input and counts a run used, checked against the run's data fingerprint."""
     inp = input_for_run(store, run)
-    sectors = by_sector(run.params) if run.kind == "bootstrap" else run.params.get("model") in ("sector", "by_sector")
-    cells = inp.cells(by_sector=sectors)
+    if run.kind == "bootstrap":
+        cells = cells_for(inp, run.params)
+    else:
+        cells = inp.cells(by_sector=run.params.get("model") in ("sector", "by_sector"))
     if cells.fingerprint() != run.fingerprint:
         raise ValueError(f"The roster's counts no longer match run {run.id}'s data fingerprint, so no pack can "
                          "show what it saw; start a new run.")
@@ -144,8 +151,16 @@ def jackknife_rows(store: Store, run: Run) -> list[dict[str, Any]]:
             left[matrix.indices[lo:hi]] -= matrix.data[lo:hi].astype(np.int64)
             rows.append({"unit_id": str(firm), key: _number(value_of[left.tobytes()])})
         return rows
-    counted = _counted(inp, cells)
     n = cells.n_groups
+    if run.params.get("statistic") == "adjusted_odds_ratio":  # cells of year x bands x sector
+        for line, year, age, tenure, sector, category, column in adjusted_departures(
+                inp, cells, run.params.get("adjust", [])).itertuples(index=False):
+            left = total.copy()
+            left[column if category == "forced" else column + n] -= 1
+            rows.append({"unit_id": str(line), "year": int(year), "age_band": age, "tenure_band": tenure,
+                         "sector": sector, "category": category, key: _number(value_of[left.tobytes()])})
+        return rows
+    counted = _counted(inp, cells)
     for line, year, sector, category, column in counted.itertuples(index=False):
         left = total.copy()
         left[column if category == "forced" else column + n] -= 1
@@ -199,7 +214,7 @@ def _libraries() -> dict[str, str]:
             "scipy": scipy.__version__, "statsmodels": statsmodels.__version__, "helmshift": __version__}
 
 
-def run_params(run: Run, inp: AnalysisInput, cells: Cells, mapping_sha256: str | None) -> dict[str, Any]:
+def run_params(run: Run, inp: AnalysisInput, n_groups: int, mapping_sha256: str | None) -> dict[str, Any]:
     """params.json: what fixes every number of the run."""
     p = run.params
     out: dict[str, Any] = {
@@ -210,13 +225,13 @@ def run_params(run: Run, inp: AnalysisInput, cells: Cells, mapping_sha256: str |
                    "accepted": inp.roster.accepted},
         "mapping": None if inp.mapping is None else {"name": inp.mapping.name, "version": inp.mapping.version,
                                                      "csv_sha256": mapping_sha256},
-        "groups": cells.n_groups, "libraries": _libraries(),
+        "groups": n_groups, "libraries": _libraries(),
     }
     if run.kind == "fit":
         out.update({"spline_df": p.get("spline_df"), "quasi": bool(p.get("quasi", False)),
                     "min_departures": p.get("min_departures")})
     else:
-        options: dict[str, Any] = {k: p[k] for k in ("sector", "sectors", "spline_df", "periods") if k in p}
+        options: dict[str, Any] = {k: p[k] for k in ("sector", "sectors", "spline_df", "periods", "adjust") if k in p}
         out.update({"statistic": p.get("statistic", "slope"), "scale": (run.result or {}).get("scale", "log"),
                     "stratify": p.get("stratify", "none"), **options,
                     "unit": p["unit"], "resamples": p["resamples"], "seed": p["seed"], "block_size": BLOCK_SIZE,
@@ -240,6 +255,9 @@ def _readme(run: Run, files: list[str]) -> str:
               "Numbers are written with enough digits to read back exactly; empty cells are missing values."]
     if run.kind == "fit":
         lines.append("A fit run has no replicates or jackknife values.")
+    if run.kind == "fit" and run.params.get("model") == "adjusted" and run.params.get("resamples"):
+        lines.append("The firm bootstrap of this adjusted fit stored no replicates: its interval is in results.json "
+                     "but is not recomputed (a bootstrap run of adjusted_odds_ratio stores them).")
     if run.params.get("model") == "by_sector":
         lines.append("reproduce.py recomputes the straight trend of cells.csv; the per-sector trends and the test "
                      "of equal trends are in results.json but are not recomputed by it.")
@@ -249,22 +267,24 @@ def _readme(run: Run, files: list[str]) -> str:
 def build_pack(store: Store, run_id: int, *, records: bool = False) -> ReplicationPack:
     """The replication pack of a finished run, as zip bytes (the same bytes every time)."""
     run = finished_run(store, run_id)
-    if run.params.get("model") == "adjusted":
-        raise ValueError(f"Run {run.id} is an adjusted trend; replication packs cover the share trends and their "
-                         "bootstrap runs so far (its counts and coefficients are in the run's JSON).")
-    inp, cells = run_cells(store, run)
-    members: dict[str, str] = {}
-    members["cells.csv"] = safe_csv(cells.groups[["year", "sector", "forced", "voluntary"]].itertuples(index=False),
-                                    ["year", "sector", "forced", "voluntary"])
-    if run.kind == "bootstrap" and run.params["unit"] == "firm":
-        members["firm_cells.csv"] = _firm_cells(cells)
+    extra: dict[str, Any] = {}
+    if measure_kind(run) is not None:
+        inp, members, n_groups, extra = measure_members(store, run)
+    else:
+        inp, cells = run_cells(store, run)
+        members = {"cells.csv": safe_csv(cells.groups[["year", "sector", "forced", "voluntary"]].itertuples(index=False),
+                                         ["year", "sector", "forced", "voluntary"])}
+        n_groups = cells.n_groups
+        if run.kind == "bootstrap" and run.params["unit"] == "firm":
+            members["firm_cells.csv"] = _firm_cells(cells)
     if records:
         members["records.csv"] = _records(inp)
     mapping_sha = None
     if inp.mapping is not None:
         members["mapping.csv"] = export_mapping_csv(store, name=inp.mapping.name, version=inp.mapping.version)
         mapping_sha = hashlib.sha256(members["mapping.csv"].encode()).hexdigest()
-    members["params.json"] = json.dumps(run_params(run, inp, cells, mapping_sha), indent=1, sort_keys=True) + "\n"
+    members["params.json"] = json.dumps(run_params(run, inp, n_groups, mapping_sha) | extra, indent=1,
+                                        sort_keys=True) + "\n"
     if run.kind == "bootstrap":
         members["replicates.csv"] = replicates_csv(store, run.id)
         members["jackknife.csv"] = jackknife_csv(store, run.id)
@@ -317,5 +337,7 @@ def jackknife_csv(store: Store, run_id: int) -> str:
     """jackknife.csv of a finished bootstrap run."""
     payload = replicates_payload(store, run_id)
     value = "log_odds_ratio" if payload["scale"] == "log" else "estimate"
-    header = (["unit_id", value] if payload["unit"] == "firm" else ["unit_id", "year", "sector", "category", value])
+    bands = ["age_band", "tenure_band"] if payload["statistic"] == "adjusted_odds_ratio" else []
+    header = (["unit_id", value] if payload["unit"] == "firm"
+              else ["unit_id", "year", *bands, "sector", "category", value])
     return _csv(payload["jackknife"], header)

@@ -24,6 +24,9 @@ from app.stats.sectors import SectorTrends
 from app.stats.trend import TrendFit
 from app.store import Run, Store, StoreError
 
+#: the model line of a rate ratio run's provenance (the universe's fingerprint is in the run's parameters)
+RATE_MODEL = "Poisson GLM, forced departures with log firm-years offset, linear in fiscal year"
+
 if TYPE_CHECKING:
     from app.analysis.robustness import Robustness
 
@@ -115,9 +118,12 @@ def bootstrap_finding(store: Store, run_id: int, method: str = "bca") -> ChartFi
     inp = input_for_run(store, run)
     result = run.result
     label = METHOD_LABELS[method]
-    prov = provenance_for(inp, model=run.params.get("model", "linear"), interval_method=f"bootstrap {label}, 95%",
+    statistic = run.params.get("statistic", "slope")
+    model = {"rate_ratio": RATE_MODEL, "adjusted_odds_ratio": "adjusted"}.get(statistic, run.params.get("model", "linear"))
+    adjust = tuple(run.params["adjust"]) if statistic == "adjusted_odds_ratio" else None
+    prov = provenance_for(inp, model=model, interval_method=f"bootstrap {label}, 95%",
                           resamples=result["resamples"], seed=run.params["seed"], unit=run.params["unit"],
-                          by_sector=run.params.get("model") == "sector")
+                          by_sector=run.params.get("model") == "sector", adjust=adjust)
     lo, hi = result["conf_int"].get(method, (None, None))
     estimate = float(result["odds_ratio"])
     unit = "whole firms" if run.params["unit"] == "firm" else "departures"
@@ -133,12 +139,13 @@ def bootstrap_finding(store: Store, run_id: int, method: str = "bca") -> ChartFi
     fig = bootstrap_histogram(values, estimate, (lo if lo is not None else np.nan, hi if hi is not None else np.nan),
                               method_label=f"95% {label}", title=takeaway, source=prov.short(),
                               what=what[:1].upper() + what[1:], reference=reference,
-                              reference_label="No change (OR = 1)" if logged else "No difference")
+                              reference_label=("No change (ratio 1)" if run.params.get("statistic") == "rate_ratio"
+                                               else "No change (OR = 1)") if logged else "No difference")
     failed = int(result["failed"])
     detail = (f"{'Whole firms were' if run.params['unit'] == 'firm' else 'Departures were'} drawn with replacement "
               f"(seed {run.params['seed']}); {failed:,} resample(s) could not be fitted"
               + (" and are reported, not redrawn." if failed else ".")
-              + (" The dashed line marks no change (odds ratio 1)." if logged else
+              + (" The dashed line marks no change (ratio 1)." if logged else
                  " The dashed line marks no difference." if reference is not None else ""))
     caveat = (f"{failed:,} resample(s) could not be fitted and are left out, not redrawn; with few firms or "
               "few forced departures the interval is itself uncertain.")

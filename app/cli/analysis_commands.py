@@ -114,7 +114,8 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
     seed = args.seed if args.seed is not None else default_seed(inp.roster)
     payload = run_bootstrap_now(store, inp, unit=args.unit, resamples=args.resamples, seed=seed,
                                 model=args.model, statistic=args.statistic, sector=args.sector,
-                                spline_df=args.spline_df, periods=args.periods, stratify=args.stratify)
+                                spline_df=args.spline_df, periods=args.periods, stratify=args.stratify,
+                                adjust=args.adjust)
 
     def bound(v: float | None) -> str:
         return "n/a" if v is None else f"{v:.3f}"  # three decimals, as every page and export

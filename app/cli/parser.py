@@ -185,6 +185,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--stratify", choices=["none", "sector"], default="none",
                    help="sector: draw firms within their sector, so every resample keeps each sector's number "
                         "of firms (unit firm only; default: none)")
+    p.add_argument("--adjust", metavar="age,tenure,sector", default=None,
+                   help="for adjusted_odds_ratio: what the adjusted model adjusts for ('' for none; default: all "
+                        "three)")
     common(p)
     p.set_defaults(func=cmd_bootstrap)
 

@@ -240,13 +240,17 @@ def mix_shift(table: pd.DataFrame, name: str, *, alpha: float = 0.05) -> MixShif
 
 
 def bootstrap_cells(data: AdjustedCells, window: tuple[int, int]) -> tuple[Cells, Design]:
-    """The adjusted model as the bootstrap engine's ``Cells`` (firm x cell matrix: forced cells, then voluntary)
+    """The adjusted model as the bootstrap engine's ``Cells`` (firm x cell matrix: forced cells, then voluntary;
+    ``groups`` also keeps ``age_band`` and ``tenure_band``, so :func:`design` of ``groups`` is the model's design)
     and ``Design`` (slope = the year column), so a firm resample is one count vector of the same cells."""
     x, names = design(data.cells, data.adjust)
     groups = pd.DataFrame({"year": data.cells["year"].to_numpy(dtype=np.int64),
                            "sector": data.cells["sector"].astype(str).to_numpy(),
                            "forced": data.cells["forced"].to_numpy(dtype=np.int64),
-                           "voluntary": data.cells["voluntary"].to_numpy(dtype=np.int64)})
+                           "voluntary": data.cells["voluntary"].to_numpy(dtype=np.int64),
+                           # the bands ride along so the design can be rebuilt from the cells alone
+                           "age_band": data.cells["age_band"].astype(str).to_numpy(),
+                           "tenure_band": data.cells["tenure_band"].astype(str).to_numpy()})
     matrix = sparse.hstack([data.firm_forced, data.firm_voluntary], format="csr").astype(np.int64)
     cells = Cells(groups=groups, firm_ids=data.firm_ids, firm_matrix=matrix, window=window,
                   by_sector="sector" in data.adjust)

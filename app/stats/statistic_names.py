@@ -6,9 +6,11 @@ from __future__ import annotations
 from typing import Literal, get_args
 
 StatisticName = Literal["slope", "decade_odds_ratio", "sector_slope", "heterogeneity", "spline_bend",
-                        "period_difference"]
+                        "period_difference", "rate_ratio", "adjusted_odds_ratio"]
 STATISTICS: tuple[StatisticName, ...] = get_args(StatisticName)
 Scale = Literal["log", "identity"]
+#: statistics built on cells of their own (a universe's firm-years; the adjusted model's cells), not the share's
+MEASURE_STATISTICS: tuple[StatisticName, ...] = ("rate_ratio", "adjusted_odds_ratio")
 
 #: what each statistic is, in the words of the pages (the CLI's --help lists these)
 STATISTIC_HELP: dict[str, str] = {
@@ -18,6 +20,9 @@ STATISTIC_HELP: dict[str, str] = {
     "heterogeneity": "likelihood-ratio statistic of equal trends across the fitted sectors",
     "spline_bend": "likelihood-ratio statistic of the spline bend test (natural cubic spline vs straight trend)",
     "period_difference": "difference in the forced share, second period minus first (a proportion)",
+    "rate_ratio": "forced departures per 100 firm-years, ratio per year (Poisson, firm-years as exposure; needs a "
+                  "universe; firms of the universe resampled with their firm-years)",
+    "adjusted_odds_ratio": "odds ratio per year adjusted for age, tenure and sector (choose with --adjust)",
 }
 
-__all__ = ["STATISTICS", "STATISTIC_HELP", "Scale", "StatisticName"]
+__all__ = ["MEASURE_STATISTICS", "STATISTICS", "STATISTIC_HELP", "Scale", "StatisticName"]

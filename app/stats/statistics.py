@@ -25,7 +25,7 @@ from scipy.special import expit
 from app.stats.cells import Cells
 from app.stats.design import design_matrix
 from app.stats.irls import fit_batch, solve_spd_stack
-from app.stats.statistic_names import STATISTICS, Scale
+from app.stats.statistic_names import MEASURE_STATISTICS, STATISTICS, Scale
 from app.stats.trend import SPLINE_DFS, natural_spline_basis
 
 #: failure reason of a resample in which one period has no counted departure
@@ -221,6 +221,8 @@ def make_statistic(name: str, cells: Cells, *, centre: float, model: str = "line
     """
     if name not in STATISTICS:
         raise ValueError(f"statistic must be one of {', '.join(STATISTICS)}; got {name!r}.")
+    if name in MEASURE_STATISTICS:
+        raise ValueError(f"The {name} statistic is computed on cells of its own: see app.stats.measures.")
     groups = cells.groups
     needs_sectors = name in ("sector_slope", "heterogeneity") or (name in ("slope", "decade_odds_ratio")
                                                                   and model == "sector")

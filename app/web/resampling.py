@@ -13,7 +13,14 @@ from starlette.concurrency import run_in_threadpool
 from app.analysis.inputs import input_for_run, load_input
 from app.analysis.jobs import create_bootstrap_run, extend_run
 from app.analysis.replication import build_pack, jackknife_csv, replicates_csv, replicates_payload
-from app.analysis.run_params import MAX_RESAMPLES, STRATIFY, bootstrap_params, check_spline_df, default_seed
+from app.analysis.run_params import (
+    MAX_RESAMPLES,
+    STRATIFY,
+    bootstrap_params,
+    check_spline_df,
+    default_seed,
+    measure_intervals,
+)
 from app.analysis.runs import run_trend
 from app.briefing.findings import bootstrap_finding
 from app.stats.statistic_names import STATISTIC_HELP, STATISTICS
@@ -128,14 +135,16 @@ def compare_units(store: Store, run: Run, method: str) -> tuple[str | None, bool
 
     Returns the sentence and whether a run to compare with was found.
     """
-    if run.result is None:
+    if run.result is None or run.params.get("statistic") == "rate_ratio":  # a rate resamples firms only
         return None, False
     other_unit = "departure" if run.params["unit"] == "firm" else "firm"
     for other in store.list_runs(run.roster_id, "bootstrap"):
         if (other.status == "done" and other.params.get("unit") == other_unit and other.result
                 and other.fingerprint == run.fingerprint and other.window == run.window
                 and other.mapping_version == run.mapping_version and other.mapping_name == run.mapping_name
-                and other.params.get("model") == run.params.get("model")):
+                and other.params.get("model") == run.params.get("model")
+                and other.params.get("statistic", "slope") == run.params.get("statistic", "slope")
+                and other.params.get("adjust") == run.params.get("adjust")):
             firm, dep = (run, other) if run.params["unit"] == "firm" else (other, run)
             wf = _width(firm.result["conf_int"][method]) if firm.result else None
             wd = _width(dep.result["conf_int"][method]) if dep.result else None
@@ -175,20 +184,29 @@ def run_data(store: Store, run_id: int, method: str = "bca") -> RunPage:
              "source": f"bootstrap, B = {result['resamples']:,}"} for m in METHODS if m in result["conf_int"]]
     if roster is None:
         return RunPage(None, run, method, rows, percent=100, roster_deleted=True, number=number)
-    if run.params.get("statistic", "slope") == "slope":  # model-based intervals of the same number
-        try:
-            inp = input_for_run(store, run)
-            fit = run_trend(store, inp, model=run.params.get("model", "linear")).fit
-            for name in ("wald", "profile"):
-                rows.append({"method": "Wald" if name == "wald" else "profile likelihood",
-                             "interval": fit.conf_int.get(name), "mc_error": None,
-                             "source": "trend fit (model-based)"})
-        except (StoreError, TrendError) as exc:
-            rows.append({"method": "model-based", "interval": None, "mc_error": None, "source": str(exc)})
+    rows += model_rows(store, run)
     fig = bootstrap_finding(store, run.id, method).figure
     comparison, found = compare_units(store, run, method)
     return RunPage(roster, run, method, rows, comparison, found, figure_spec(fig, titled=False), 100,
                    newer_version=newer, number=number)
+
+
+def model_rows(store: Store, run: Run) -> list[dict[str, Any]]:
+    """Model-based intervals of the number a run resampled, where the pages report them (the share's slope,
+    the rate ratio, the adjusted odds ratio), beside the bootstrap's."""
+    statistic = run.params.get("statistic", "slope")
+    try:
+        inp = input_for_run(store, run)
+        if statistic == "slope":
+            ci = run_trend(store, inp, model=run.params.get("model", "linear")).fit.conf_int
+            pairs, source = [("Wald", ci.get("wald")), ("profile likelihood", ci.get("profile"))], "trend fit (model-based)"
+        elif statistic in ("rate_ratio", "adjusted_odds_ratio"):
+            pairs, source = measure_intervals(store, inp, run.params)
+        else:
+            return []
+    except (ValueError, StoreError, TrendError) as exc:
+        return [{"method": "model-based", "interval": None, "mc_error": None, "source": str(exc)}]
+    return [{"method": name, "interval": iv, "mc_error": None, "source": source} for name, iv in pairs]
 
 
 @router.get("/rosters/{roster_id}/resampling", response_class=HTMLResponse, name="resampling_page",
@@ -229,6 +247,8 @@ def _int_field(form: Any, key: str, default: int) -> int:
                                                               "window's last third against the rest)"},
                  "stratify": {"type": "string", "enum": list(STRATIFY), "default": "none",
                               "description": "sector: draw firms within their sector (unit firm)"},
+                 "adjust": {"type": "string", "default": "age,tenure,sector",
+                            "description": "adjusted_odds_ratio: what the model adjusts for (comma-separated)"},
              }))
 async def resampling_start(request: Request, roster_id: int) -> Response:
     """Store the run, hand it to a worker, and go to its page (which shows the progress)."""
@@ -248,7 +268,8 @@ def _resampling_start(request: Request, roster_id: int, form: dict[str, str | Up
                                   statistic=statistic, sector=str(form.get("sector") or "") or None,
                                   spline_df=spline_df if statistic == "spline_bend" else None,
                                   periods=str(form.get("periods") or "").strip() or None,
-                                  stratify=str(form.get("stratify") or "none"))
+                                  stratify=str(form.get("stratify") or "none"),
+                                  adjust=str(form["adjust"]) if "adjust" in form else None)
         inp = load_input(store, roster.id)
         run_id = create_bootstrap_run(store, inp, params)
     except (ValueError, BadRequest) as exc:
