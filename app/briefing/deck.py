@@ -1,6 +1,6 @@
 """The slide deck (16:9 .pptx): title, one slide per finding, methods and provenance, cautions.
 
-Findings of the product (coverage, trend, bootstrap, sectors, robustness) get native, editable charts
+Findings of the product (coverage, trend, bootstrap, sectors, robustness, rates, adjusted) get native, editable charts
 (app.briefing.native_charts); any other figure goes in as a picture. Every slide has speaker notes: the
 method, the interval and the caveat. The analyst's title, author, date and marking sit on the title slide,
 and the marking in every footer.
@@ -89,7 +89,7 @@ def _rgb(hex_colour: str) -> RGBColor:
     return RGBColor.from_string(hex_colour.lstrip("#"))
 
 
-NATIVE = ("coverage", "trend", "bootstrap", "sectors", "robustness")
+NATIVE = ("coverage", "trend", "bootstrap", "sectors", "robustness", "rates", "adjusted")
 
 
 @dataclass(frozen=True)
