@@ -80,6 +80,10 @@ def _run_folder(store: Store, run_id: int) -> tuple[dict[str, bytes], dict[str, 
     except (ValueError, StoreError) as exc:
         # kinds build_pack does not cover yet (e.g. the adjusted trend, rates): the stored numbers only
         run = store.get_run(run_id)
+        model = run.params.get("model")
+        why = (f"this version builds no replication pack for {'rate' if model == 'rate' else 'adjusted'} runs "
+               "(their counts are not the share trend's cells); the stored parameters and results are here"
+               if model in ("rate", "adjusted") else str(exc))
         files = {
             f"{folder}params.json": _json({"run": run.id, "kind": run.kind, "params": run.params,
                                            "roster_id": run.roster_id, "roster_version": run.roster_version,
@@ -87,7 +91,7 @@ def _run_folder(store: Store, run_id: int) -> tuple[dict[str, bytes], dict[str, 
                                            "window": run.window, "fingerprint": run.fingerprint}).encode(),
             f"{folder}results.json": _json(run.result or {}).encode(),
         }
-        entry = {"run": run_id, "folder": folder, "pack_sha256": None, "pack_refused": str(exc),
+        entry = {"run": run_id, "folder": folder, "pack_sha256": None, "pack_refused": why,
                  "files": {name.removeprefix(folder): _sha(data) for name, data in files.items()}}
         return files, entry, None
     files = {}

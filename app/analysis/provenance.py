@@ -98,10 +98,10 @@ class Provenance:
         ]
         if (resampling := self._resampling()) is not None:
             out.append(f"Resampling: {resampling}")
+        if self.brief_pack:  # before the runs' own packs: a slide that must shorten the list keeps it
+            out.append(f"Brief pack (every quoted run's replication pack): sha256 {self.brief_pack}")
         for run_id, sha in self.packs:
             out.append(f"Replication pack of run {run_id}: sha256 {sha}")
-        if self.brief_pack:
-            out.append(f"Brief pack (every quoted run's replication pack): sha256 {self.brief_pack}")
         out.append(f"Made with Helmshift {self.tool_version} on {self._created()}")
         return out
 

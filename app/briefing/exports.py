@@ -262,7 +262,9 @@ def _measure_method(finding: ChartFinding) -> str:
         dropped = sum(n["dropped"].values())
         return (f" Adjusted trend: departure-level logit on fiscal year + {', '.join(n['adjust']) or 'nothing'} "
                 f"(age bands <50, 50\u201359, 60\u201364, 65+; tenure <3, 3\u20136, 7\u201310, >10 years), "
-                f"firm-clustered standard errors; {dropped:,} departures missing an adjusting field left out.")
+                "firm-clustered standard errors; "
+                + (f"{dropped:,} departures missing an adjusting field left out." if dropped
+                   else "no departure lacked an adjusting field."))
     return ""
 
 
