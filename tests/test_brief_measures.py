@@ -236,3 +236,35 @@ def test_briefing_page_offers_the_measures_and_the_brief_pack(measured: Store) -
     inp = load_input(measured, ROSTER)
     assert got.content == brief_pack(measured, inp, ["rates", "adjusted"]).data
     assert web.get(f"/rosters/{ROSTER}/briefing/brief-pack.zip?chart=nope").status_code == 400
+
+
+@pytest.mark.slow
+def test_brief_pdf_states_the_rate_ratio_adjusted_odds_ratio_provenance_and_pack(measured: Store,
+                                                                                  tmp_path: Path) -> None:
+    from test_export import AVAILABLE, WHY, pdf_text  # the export tests' browser check and PDF text reader
+
+    from app.briefing.exports import brief_and_pack
+
+    if not AVAILABLE:
+        pytest.skip(WHY)
+    inp = load_input(measured, ROSTER)
+    pdf, pack = brief_and_pack(measured, inp, ["rates", "adjusted"])
+    text = pdf_text(pdf, tmp_path)
+    a = run_rates(measured, inp)
+    adjusted = run_adjusted(measured, inp, ALL).fit
+    assert a.forced is not None and a.voluntary is not None
+    lo, hi = a.forced.headline_interval()
+    wald = (a.forced.quasi or a.forced).conf_int["wald"]
+    # the estimates table: the analysis functions' numbers at three decimals
+    assert f"Forced rate ratio per year {a.forced.rate_ratio:.3f} {lo:.3f} to {hi:.3f} profile likelihood" in text
+    assert f"{a.forced.rate_ratio:.3f} {wald[0]:.3f} to {wald[1]:.3f} Wald" in text
+    assert f"Voluntary rate ratio per year {a.voluntary.rate_ratio:.3f}" in text
+    c_lo, c_hi = adjusted.cluster_interval
+    assert f"{adjusted.odds_ratio:.3f} {c_lo:.3f} to {c_hi:.3f} firm-clustered Wald" in text
+    assert "the forced rate" in text  # the decomposition sentence (method section)
+    joined = text.replace("- ", "-")
+    for fragment in (f"Universe: universe {a.universe.id}, derived from the roster (approximation)",
+                     a.universe.fingerprint, "Adjustment set: age, tenure, sector",
+                     f"Brief pack (every quoted run's replication pack): sha256 {pack.sha256}",
+                     f"Replication pack of run {run_trend(measured, inp).run_id}: sha256"):
+        assert fragment in joined, fragment

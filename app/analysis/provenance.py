@@ -26,7 +26,7 @@ MODEL_LABELS = {
     "sector": "binomial GLM, sector intercepts + common linear trend in fiscal year",
     "spline": "binomial GLM, linear trend compared with a natural cubic spline in fiscal year",
     "adjusted": "departure-level logit, forced vs voluntary on fiscal year + adjustments, firm-clustered SEs",
-    "rate": "Poisson GLM of forced (and of voluntary) departures on fiscal year, log firm-years as offset",
+    "rate": "Poisson GLM of forced and of voluntary departures on fiscal year, log firm-years offset",
 }
 
 

@@ -79,7 +79,9 @@ def _deck_provenance(findings: Sequence[ChartFinding], fallback: Provenance) -> 
         p = f.provenance
         if f.name in ("rates", "adjusted") and p is not base:
             label = "rates" if f.name == "rates" else "adjusted trend"
-            base = replace(base, model=f"{base.model}; {label}: {p.model}",
+            # the adjustment set has its own line, so the model line leaves it out
+            model = p.model.split(" (adjusted for")[0]
+            base = replace(base, model=f"{base.model}; {label}: {model}",
                            interval_method=f"{base.interval_method}; {label}: {p.interval_method}")
         if f.name == "rates":
             base = replace(base, universe=p.universe, universe_fingerprint=p.universe_fingerprint,
@@ -246,25 +248,22 @@ def brief_and_pack(store: Store, inp: AnalysisInput, charts: Sequence[str] | Non
     figures = [untitled(f.figure) if f.name == "trend" else f.figure for f in findings]
     brief = build_brief(headline=headline_sentence(fit), charts=figures,
                         table=pd.DataFrame(rows), method_text=method, provenance=provenance, signature=sign,
-                        captions=captions, data_text=data_sentence(inp, fit.departures, fit.forced))
+                        captions=captions, data_text=data_sentence(inp, fit.departures, fit.forced),
+                        spare_page=any(f.name in ("rates", "adjusted") for f in findings))
     return brief, pack
 
 
 def _measure_method(finding: ChartFinding) -> str:
-    """The brief's method sentence for a rate or adjusted finding (empty for the others)."""
+    """The brief's method sentence for a rate or adjusted finding (empty for the others); the universe and
+    the adjustment set are named in the footer."""
     if finding.name == "rates":
-        n = finding.numbers
-        return (f" Rates: forced and voluntary departures per 100 firm-years of the {finding.provenance.universe}; "
-                f"Poisson GLMs on fiscal year with log firm-years as offset (quasi-Poisson when overdispersed), "
-                f"exact Poisson (Garwood) intervals per year. {n['sentence']}")
+        return (" Rates: departures per 100 firm-years of the universe; Poisson GLMs on fiscal year with log "
+                "firm-years as offset (quasi-Poisson when overdispersed); exact Poisson intervals per year.")
     if finding.name == "adjusted":
-        n = finding.numbers
-        dropped = sum(n["dropped"].values())
-        return (f" Adjusted trend: departure-level logit on fiscal year + {', '.join(n['adjust']) or 'nothing'} "
-                f"(age bands <50, 50\u201359, 60\u201364, 65+; tenure <3, 3\u20136, 7\u201310, >10 years), "
-                "firm-clustered standard errors; "
-                + (f"{dropped:,} departures missing an adjusting field left out." if dropped
-                   else "no departure lacked an adjusting field."))
+        dropped = sum(finding.numbers["dropped"].values())
+        return (" Adjusted trend: departure-level logit on fiscal year and age, tenure (bands) or sector as set "
+                "in the footer, firm-clustered standard errors"
+                + (f"; {dropped:,} departures lacking an adjusting field left out." if dropped else "."))
     return ""
 
 

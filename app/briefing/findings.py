@@ -250,8 +250,8 @@ def rates_finding(store: Store, inp: AnalysisInput) -> ChartFinding:
     a = run_rates(store, inp)
     if a.error is not None or a.forced is None or a.voluntary is None or a.sentence is None:
         raise RateError(a.error or "The rate trends could not be fitted.")
-    prov = provenance_for(inp, model="rate", interval_method="exact Poisson (Garwood) per year; profile "
-                          "likelihood and Wald for the rate ratios, 95%", universe=a.universe)
+    prov = provenance_for(inp, model="rate", interval_method="exact Poisson per year, profile likelihood and "
+                          "Wald for the rate ratios, 95%", universe=a.universe)
     title = a.sentence.split(" (per 100 firm-years")[0] + "."
     fig = rates_figure(a.table.years, a.forced, a.voluntary, title=title, source=prov.short())
     # the Wald intervals are in the brief's table and the pack; the slide quotes the one headline method
@@ -292,13 +292,15 @@ def adjusted_finding(store: Store, inp: AnalysisInput, adjust: tuple[str, ...] |
         rows.append({"label": f"{label} ({f.departures:,} departures)", "odds_ratio": f.odds_ratio, "low": lo,
                      "high": hi, "group": group})
     table = pd.DataFrame(rows)
-    prov = provenance_for(inp, model="adjusted", adjust=chosen, interval_method="firm-clustered (sandwich) Wald, 95%")
+    prov = provenance_for(inp, model="adjusted", adjust=chosen, interval_method="firm-clustered Wald, 95%")
     sentence = adjusted_sentence(fit)
     title = f"{sentence.split(': odds ratio')[0]}: odds ratio {fit.odds_ratio:.3f} per year"
     mix = mix_section(inp)
     # the slide and brief carry each mix sentence's verdict; the numbers behind it go under the chart and in notes
     verdicts = " ".join(m.split(" (")[0].split(":")[0].rstrip(".") + "." for m in mix.sentences)
-    fig = forest_figure(table, title=title, source=prov.short(), notes=mix.sentences)
+    # under the chart: each mix verdict with its numbers, without the advice that follows (it is in the notes)
+    fig = forest_figure(table, title=title, source=prov.short(),
+                        notes=[m.split("): ")[0] + (")" if "): " in m else "") for m in mix.sentences])
     caveat = ("Adjusting removes only the measured mix (age and tenure bands, sector); departures missing an "
               "adjusting field are left out and counted. " + " ".join(mix.sentences))
     numbers = {"adjust": list(chosen), "odds_ratio": fit.odds_ratio, "cluster_se": fit.cluster_se,
