@@ -236,6 +236,9 @@ def test_briefing_page_offers_the_measures_and_the_brief_pack(measured: Store) -
     inp = load_input(measured, ROSTER)
     assert got.content == brief_pack(measured, inp, ["rates", "adjusted"]).data
     assert web.get(f"/rosters/{ROSTER}/briefing/brief-pack.zip?chart=nope").status_code == 400
+    # the Trend page's Rates section draws the same figure the briefing exports
+    trend = web.get(f"/rosters/{ROSTER}/trend")
+    assert trend.status_code == 200 and 'data-figure-for="fig-rates"' in trend.text
 
 
 @pytest.mark.slow
