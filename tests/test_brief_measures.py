@@ -246,13 +246,16 @@ def test_brief_pdf_states_the_rate_ratio_adjusted_odds_ratio_provenance_and_pack
                                                                                   tmp_path: Path) -> None:
     from test_export import AVAILABLE, WHY, pdf_text  # the export tests' browser check and PDF text reader
 
-    from app.briefing.exports import brief_and_pack
-
     if not AVAILABLE:
         pytest.skip(WHY)
     inp = load_input(measured, ROSTER)
-    pdf, pack = brief_and_pack(measured, inp, ["rates", "adjusted"])
-    text = pdf_text(pdf, tmp_path)
+    # through the command line: --chart is a comma list for the brief too, and --pack writes the brief pack
+    out, zipped = tmp_path / "brief.pdf", tmp_path / "pack.zip"
+    assert main(["export", "--roster", str(ROSTER), "--db", measured.url, "--format", "brief", "--chart",
+                 "rates,adjusted", "--out", str(out), "--pack", str(zipped)]) == 0
+    text = pdf_text(out.read_bytes(), tmp_path)
+    pack = brief_pack(measured, inp, ["rates", "adjusted"])
+    assert zipped.read_bytes() == pack.data
     a = run_rates(measured, inp)
     adjusted = run_adjusted(measured, inp, ALL).fit
     assert a.forced is not None and a.voluntary is not None
