@@ -97,3 +97,41 @@ def test_reproduce_py_in_a_clean_environment(shared_demo_db: Path, tmp_path: Pat
                 assert bca["recomputed"] == pytest.approx(bca["reported"], rel=1e-13, abs=0)
     finally:
         store.dispose()
+
+
+def test_brief_pack_share_trend_folders_reproduce_in_a_clean_environment(shared_demo_db: Path, tmp_path: Path,
+                                                                          clean_python: Path) -> None:
+    """The brief pack (app.analysis.brief_pack): every run folder that holds a replication pack (the share
+    trends: the fit, the sector fit, a firm bootstrap) runs its reproduce.py in the clean environment and
+    matches the run to 1e-9; folders of kinds without a pack yet (rates, adjusted) hold their results."""
+    from app.briefing.exports import brief_pack
+    from app.intake.universe import derive_universe
+
+    store = Store(f"sqlite:///{copy_database(shared_demo_db, tmp_path / 'b.db')}")
+    try:
+        derive_universe(store, 1)
+        inp = load_input(store, 1)
+        boot = int(run_bootstrap_now(store, inp, unit="firm", resamples=500, seed=5)["run"])
+        pack = brief_pack(store, inp, ["trend", "bootstrap", "sectors", "rates", "adjusted"], run_id=boot)
+        folder = tmp_path / "brief-pack"
+        with zipfile.ZipFile(io.BytesIO(pack.data)) as archive:
+            archive.extractall(folder)
+        manifest = json.loads((folder / "manifest.json").read_text())
+        entries = [r for f in manifest["findings"] for r in f["runs"]]
+        packed = [r for r in entries if r["pack_sha256"] is not None]
+        assert {store.get_run(r["run"]).kind for r in packed} == {"fit", "bootstrap"} and len(packed) >= 3
+        for entry in packed:
+            done = subprocess.run([str(clean_python), "reproduce.py", "--json"], cwd=folder / entry["folder"],
+                                  capture_output=True, text=True, timeout=600, env={"PATH": "/usr/bin:/bin"})
+            assert done.returncode == 0, done.stdout[-3000:] + done.stderr[-3000:]
+            report = json.loads(done.stdout)
+            assert report["run"] == entry["run"] and report["ok"]
+            for check in report["checks"]:
+                assert check["recomputed"] is not None and check["reported"] is not None, check
+                assert abs(check["recomputed"] - check["reported"]) <= 1e-9 * max(1.0, abs(check["reported"])), check
+        for entry in entries:
+            if entry["pack_sha256"] is None:  # not yet packable: the run's stored numbers are there
+                results = json.loads((folder / entry["folder"] / "results.json").read_text())
+                assert results == store.get_run(entry["run"]).result
+    finally:
+        store.dispose()

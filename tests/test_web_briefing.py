@@ -30,14 +30,18 @@ def test_page_previews_every_finding(client: Any, demo_store: Store, no_browser:
     response = client.get(f"/rosters/{ROSTER}/briefing")
     assert response.status_code == 200 and response.template.name == "briefing.html"
     page = response.context["page"]
-    # nothing ticked and no bootstrap run: the standard deck of what can be shown, bootstrap left out
-    assert page.chosen == [c for c in CHART_NAMES if c != "bootstrap"] and page.run_id is None
+    # nothing ticked and no bootstrap run: the standard deck of what can be shown, bootstrap left out (and
+    # rates, with no universe yet; the adjusted trend is shown only when ticked)
+    assert page.chosen == [c for c in CHART_NAMES if c not in ("bootstrap", "rates", "adjusted")]
+    assert page.run_id is None
     # ticked explicitly, every finding is previewed, and the one that cannot be shown says why
     page = client.get(f"/rosters/{ROSTER}/briefing?" + "&".join(f"chart={c}" for c in CHART_NAMES)).context["page"]
     assert page.chosen == list(CHART_NAMES)
     items = {i.name: i for i in page.items}
     assert set(items) == set(CHART_NAMES)
     assert "No finished bootstrap run" in items["bootstrap"].error
+    assert "no universe of firm-years yet" in items["rates"].error
+    assert items["adjusted"].error is None and "firm-clustered interval" in items["adjusted"].takeaway
     for name in ("coverage", "trend", "sectors", "robustness"):
         assert items[name].error is None and items[name].takeaway, name
         assert f'data-figure-for="fig-{name}"' in response.text

@@ -10,7 +10,7 @@ from datetime import UTC, datetime
 
 from app import __version__
 from app.analysis.inputs import AnalysisInput
-from app.store import Roster
+from app.store import Roster, Universe
 from app.types import CATEGORIES
 
 #: The standard cautions, shown on pages and in every export.
@@ -26,7 +26,14 @@ MODEL_LABELS = {
     "sector": "binomial GLM, sector intercepts + common linear trend in fiscal year",
     "spline": "binomial GLM, linear trend compared with a natural cubic spline in fiscal year",
     "adjusted": "departure-level logit, forced vs voluntary on fiscal year + adjustments, firm-clustered SEs",
+    "rate": "Poisson GLM of forced and of voluntary departures on fiscal year, log firm-years offset",
 }
+
+
+def universe_label(u: Universe) -> str:
+    """How exports name a universe of firm-years: id, where it came from, size and fingerprint."""
+    kind = "derived from the roster (approximation)" if u.approximate else f"imported from {u.source_name}"
+    return f"universe {u.id}, {kind}: {u.firms:,} firms, {u.firm_years:,} firm-years, fingerprint {u.fingerprint}"
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -53,6 +60,14 @@ class Provenance:
     rules: tuple[str, ...] = ()
     #: how many of the file's rows were used ("670 of 803 rows; 133 rejected, see Rosters"); empty: not stated
     rows_used: str = ""
+    #: the universe of firm-years behind a rate (``universe_label``); empty: no rate quoted
+    universe: str = ""
+    universe_fingerprint: str = ""
+    universe_approximate: bool = False
+    #: the adjusted trend's adjustment set (empty tuple: adjusted for nothing); None: no adjusted trend quoted
+    adjustment: tuple[str, ...] | None = None
+    #: sha256 of the brief pack (the zip of every quoted run's replication pack); empty: none made
+    brief_pack: str = ""
 
     def _created(self) -> str:
         return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
@@ -75,11 +90,16 @@ class Provenance:
             + (f"; classification rules, first match wins: {'; '.join(self.rules)}" if self.rules else ""),
             f"Window: fiscal years {self.window[0]}\u2013{self.window[1]}",
             *([f"Rows used: {self.rows_used}"] if self.rows_used else []),
+            *([f"Universe: {self.universe}"] if self.universe else []),
             f"Model: {self.model}",
+            *([f"Adjustment set: {', '.join(self.adjustment) or 'none (plain trend, firm-clustered SEs)'}"]
+              if self.adjustment is not None else []),
             f"Intervals: {self.interval_method}",
         ]
         if (resampling := self._resampling()) is not None:
             out.append(f"Resampling: {resampling}")
+        if self.brief_pack:  # before the runs' own packs: a slide that must shorten the list keeps it
+            out.append(f"Brief pack (every quoted run's replication pack): sha256 {self.brief_pack}")
         for run_id, sha in self.packs:
             out.append(f"Replication pack of run {run_id}: sha256 {sha}")
         out.append(f"Made with Helmshift {self.tool_version} on {self._created()}")
@@ -95,6 +115,9 @@ class Provenance:
             f"mapping {self.mapping_name} v{self.mapping_version}"
             + (f" with {len(self.rules)} rule{'s' if len(self.rules) > 1 else ''}" if self.rules else ""),
             f"FY{self.window[0]}\u2013{self.window[1]}",
+            *([f"universe [{self.universe_fingerprint[:12]}]"
+               + (" derived from the roster (approximation)" if self.universe_approximate else "")]
+              if self.universe else []),
             self.model,
         ]
         if (resampling := self._resampling()) is not None:
@@ -113,9 +136,11 @@ def rows_used_line(roster: Roster) -> str:
 
 def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method: str = "Wald and profile likelihood",
                    resamples: int | None = None, seed: int | None = None, unit: str | None = None,
-                   by_sector: bool = False, adjust: tuple[str, ...] | None = None) -> Provenance:
+                   by_sector: bool = False, adjust: tuple[str, ...] | None = None,
+                   universe: Universe | None = None) -> Provenance:
     """What every chart, deck and brief states about where its numbers came from (``adjust``: the adjusted
-    trend's adjustment set, named in the model line)."""
+    trend's adjustment set, named in the model line and on its own line; ``universe``: the firm-years behind
+    a rate)."""
     cats = inp.mapping.categories if inp.mapping else {}
     grouped = tuple((c, tuple(sorted(code for code, cat in cats.items() if cat == c))) for c in CATEGORIES)
     return Provenance(
@@ -126,5 +151,8 @@ def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method
                                                  if adjust is not None else ""),
         interval_method=interval_method, resamples=resamples, seed=seed, unit=unit, categories=grouped,
         rules=tuple(r.describe() for r in (inp.mapping.rules if inp.mapping else ())),
-        rows_used=rows_used_line(inp.roster),
+        rows_used=rows_used_line(inp.roster), universe=universe_label(universe) if universe is not None else "",
+        universe_fingerprint=universe.fingerprint if universe is not None else "",
+        universe_approximate=universe.approximate if universe is not None else False,
+        adjustment=tuple(adjust) if adjust is not None else None,
     )

@@ -98,10 +98,12 @@ def render_brief_html(*, headline: str, chart_svgs: Sequence[bytes], table: pd.D
 
 def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFrame, method_text: str,
                 provenance: Provenance, signature: Signature | None = None, captions: Sequence[str] = (),
-                data_text: str = "") -> bytes:
+                data_text: str = "", spare_page: bool = False) -> bytes:
     """An A4 PDF: the analyst's title, byline and marking, the headline, the charts with their takeaways,
     the odds-ratio table, data used and rejected, method, cautions and the provenance footer. One page for
-    one or two charts, one more page for every two more.
+    one or two charts, one more page for every two more; ``spare_page`` (findings with long captions and
+    notes: rates, the adjusted trend): when even the most compact layout overflows, the roomiest layout that
+    fits one page more.
 
     Raises app.briefing.render.ExportUnavailable when charts cannot be rendered (no browser), ValueError when
     there is no chart or the content cannot be fitted on its pages.
@@ -111,7 +113,10 @@ def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFra
     if not charts:
         raise ValueError("build_brief needs at least one chart.")
     pages = math.ceil(len(charts) / 2)
-    for layout in _LAYOUTS:
+    tries = [(layout, pages) for layout in _LAYOUTS]
+    if spare_page:
+        tries += [(layout, pages + 1) for layout in _LAYOUTS]
+    for layout, allowed in tries:
         # the page footer carries the full provenance, so the charts drop their own source line
         svgs = [figure_bytes(without_source(fig), "svg", width=CHART_WIDTH_PX, height=layout.chart_height_px)
                 for fig in charts]
@@ -119,7 +124,7 @@ def build_brief(*, headline: str, charts: Sequence[go.Figure], table: pd.DataFra
                                  provenance=provenance, base_pt=layout.base_pt, max_rows=layout.max_rows,
                                  signature=signature, captions=captions, data_text=data_text)
         document = HTML(string=html, base_url=str(TEMPLATE_DIR)).render()
-        if len(document.pages) <= pages:
+        if len(document.pages) <= allowed:
             return bytes(document.write_pdf())
     raise ValueError(f"The brief does not fit on {pages} A4 page(s) even in its most compact layout; "
                      "shorten the headline or the method text, or tick fewer findings.")

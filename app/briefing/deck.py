@@ -1,6 +1,6 @@
 """The slide deck (16:9 .pptx): title, one slide per finding, methods and provenance, cautions.
 
-Findings of the product (coverage, trend, bootstrap, sectors, robustness) get native, editable charts
+Findings of the product (coverage, trend, bootstrap, sectors, robustness, rates, adjusted) get native, editable charts
 (app.briefing.native_charts); any other figure goes in as a picture. Every slide has speaker notes: the
 method, the interval and the caveat. The analyst's title, author, date and marking sit on the title slide,
 and the marking in every footer.
@@ -89,7 +89,7 @@ def _rgb(hex_colour: str) -> RGBColor:
     return RGBColor.from_string(hex_colour.lstrip("#"))
 
 
-NATIVE = ("coverage", "trend", "bootstrap", "sectors", "robustness")
+NATIVE = ("coverage", "trend", "bootstrap", "sectors", "robustness", "rates", "adjusted")
 
 
 @dataclass(frozen=True)
@@ -210,7 +210,9 @@ def _title(slide: Slide, text: str, stack: _Stack, size: float = 28, max_height:
 def _footer(slide: Slide, provenance: Provenance, number: int, marking: str = "") -> None:
     top = SLIDE_H_IN - 0.42
     width = SLIDE_W_IN - 2 * MARGIN_IN
+    # the brief pack's name goes before the roster, so a long roster name cannot push it off the line
     left_text = ((f"{marking} \u00b7 " if marking else "")
+                 + (f"brief pack sha256 {provenance.brief_pack[:16]} \u00b7 " if provenance.brief_pack else "")
                  + f"{provenance.roster} \u00b7 mapping {provenance.mapping_name} "
                  f"v{provenance.mapping_version} \u00b7 FY{provenance.window[0]}\u2013{provenance.window[1]}")
     fit = fit_text(left_text, width - 0.8, 0.2, 10, min_size=8)

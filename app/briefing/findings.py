@@ -8,18 +8,23 @@ or part of the one-page brief.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Literal, get_args
+from typing import TYPE_CHECKING, Any, Literal, get_args
 
 import numpy as np
 import pandas as pd
 import plotly.graph_objects as go
 
+from app.analysis.adjusted import adjusted_sentence, mix_section, run_adjusted
 from app.analysis.inputs import AnalysisInput, input_for_run
 from app.analysis.jobs import replicate_odds_ratios
 from app.analysis.provenance import Provenance, provenance_for
+from app.analysis.rates import SHARE_VS_RATE, run_rates
 from app.analysis.runs import run_sectors, run_trend
 from app.briefing.charts import bootstrap_histogram, coverage_figure, forest_figure, trend_figure
+from app.briefing.rate_chart import rates_figure
+from app.stats.adjusted import ADJUSTMENTS, parse_adjust
 from app.stats.headline import headline_sentence, interval_label, model_interval
+from app.stats.rate_trend import RateError, RateTrend, rate_trend_to_dict
 from app.stats.sectors import SectorTrends
 from app.stats.trend import TrendFit
 from app.store import Run, Store, StoreError
@@ -30,7 +35,7 @@ RATE_MODEL = "Poisson GLM, forced departures with log firm-years offset, linear 
 if TYPE_CHECKING:
     from app.analysis.robustness import Robustness
 
-ChartName = Literal["coverage", "trend", "bootstrap", "sectors", "robustness"]
+ChartName = Literal["coverage", "trend", "bootstrap", "sectors", "robustness", "rates", "adjusted"]
 CHART_NAMES: tuple[ChartName, ...] = get_args(ChartName)
 METHOD_LABELS = {"percentile": "percentile", "basic": "basic", "bca": "BCa", "normal": "normal",
                  "studentized": "studentized"}
@@ -49,6 +54,10 @@ class ChartFinding:
     caveat: str = ""
     #: the odds-ratio rows behind a forest chart (label, odds_ratio, low, high, group), for the deck's own chart
     rows: pd.DataFrame | None = field(default=None, compare=False)
+    #: the stored runs whose numbers the finding shows (their replication packs go in the brief pack)
+    run_ids: tuple[int, ...] = ()
+    #: the finding's own numbers (JSON-ready), for the brief pack's results.json
+    numbers: dict[str, Any] = field(default_factory=dict, compare=False)
 
 
 def coverage_finding(inp: AnalysisInput) -> ChartFinding:
@@ -68,10 +77,13 @@ def coverage_finding(inp: AnalysisInput) -> ChartFinding:
                           source=prov.short())
     caveat = ("Only forced and voluntary departures are counted; excluded and unmapped codes are not. Years "
               "outside the window are thinly covered, so their shares would rest on few departures.")
-    return ChartFinding("coverage", fig, takeaway, prov, title, caveat)
+    numbers = {"window": list(inp.window), "counted": counted,
+               "years": [{k: int(v) for k, v in row.items()} for row in
+                         inside[["year", "forced", "voluntary", "excluded", "unmapped"]].to_dict("records")]}
+    return ChartFinding("coverage", fig, takeaway, prov, title, caveat, numbers=numbers)
 
 
-def trend_finding_from_fit(inp: AnalysisInput, fit: TrendFit, model: str) -> ChartFinding:
+def trend_finding_from_fit(inp: AnalysisInput, fit: TrendFit, model: str, run_id: int | None = None) -> ChartFinding:
     prov = provenance_for(inp, model=model, interval_method=interval_label(fit), by_sector=model == "sector")
     observed = fit.observed.assign(low=fit.observed["wilson_low"], high=fit.observed["wilson_high"])
     sentence = headline_sentence(fit)
@@ -84,11 +96,13 @@ def trend_finding_from_fit(inp: AnalysisInput, fit: TrendFit, model: str) -> Cha
               else sentence)
     caveat = ("Observational data: a trend is not a cause. The fitted line is straight on the log-odds scale; "
               "years with few departures have wide Wilson intervals.")
-    return ChartFinding("trend", fig, detail, prov, sentence, caveat)
+    return ChartFinding("trend", fig, detail, prov, sentence, caveat,
+                        run_ids=(run_id,) if run_id is not None else ())
 
 
 def trend_finding(store: Store, inp: AnalysisInput, model: str = "linear") -> ChartFinding:
-    return trend_finding_from_fit(inp, run_trend(store, inp, model=model).fit, model)
+    outcome = run_trend(store, inp, model=model)
+    return trend_finding_from_fit(inp, outcome.fit, model, outcome.run_id)
 
 
 def bootstrap_run(store: Store, run_id: int) -> Run:
@@ -149,7 +163,7 @@ def bootstrap_finding(store: Store, run_id: int, method: str = "bca") -> ChartFi
                  " The dashed line marks no difference." if reference is not None else ""))
     caveat = (f"{failed:,} resample(s) could not be fitted and are left out, not redrawn; with few firms or "
               "few forced departures the interval is itself uncertain.")
-    return ChartFinding("bootstrap", fig, detail, prov, takeaway, caveat)
+    return ChartFinding("bootstrap", fig, detail, prov, takeaway, caveat, run_ids=(run.id,))
 
 
 def _pair(p: tuple[float, float] | None) -> tuple[float, float]:
@@ -180,7 +194,7 @@ SECTOR_LABEL_NOTE = ("In brackets after each sector: forced/counted departures i
                      "plus voluntary; excluded and unmapped codes are left out).")
 
 
-def sectors_finding_from(inp: AnalysisInput, result: SectorTrends) -> ChartFinding:
+def sectors_finding_from(inp: AnalysisInput, result: SectorTrends, run_id: int | None = None) -> ChartFinding:
     rows = []
     if result.common is not None and result.common.odds_ratio is not None:
         lo, hi = _pair(result.common.conf_int.get("profile"))
@@ -199,11 +213,12 @@ def sectors_finding_from(inp: AnalysisInput, result: SectorTrends) -> ChartFindi
     caveat = (f"Each row's label gives forced/all departures counted in that sector, e.g. {rows[-1]['label']}. "
               "Sectors too small to fit alone are shown as not estimable; with many sectors some "
               "differences arise by chance.") if len(rows) > 1 else "Too few sectors to compare."
-    return ChartFinding("sectors", fig, verdict, prov, title, caveat, table)
+    return ChartFinding("sectors", fig, verdict, prov, title, caveat, table,
+                        run_ids=(run_id,) if run_id is not None else ())
 
 
 def sectors_finding(store: Store, inp: AnalysisInput, min_departures: int = 20) -> ChartFinding:
-    return sectors_finding_from(inp, run_sectors(store, inp, min_departures=min_departures)[0])
+    return sectors_finding_from(inp, *run_sectors(store, inp, min_departures=min_departures))
 
 
 def robustness_finding_from(inp: AnalysisInput, result: Robustness) -> ChartFinding:
@@ -215,7 +230,10 @@ def robustness_finding_from(inp: AnalysisInput, result: Robustness) -> ChartFind
     fig = forest_figure(table, title=title, source=prov.short())
     caveat = ("Each row is the same trend under another reading of the reason codes. A reading that leaves "
               "counted departures unmapped is marked and does not decide the verdict.")
-    return ChartFinding("robustness", fig, result.sentence, prov, title, caveat, table)
+    numbers = {"sentence": result.sentence,
+               "readings": [{k: (None if isinstance(v, float) and not np.isfinite(v) else v)
+                             for k, v in row.items()} for row in table.to_dict("records")]}
+    return ChartFinding("robustness", fig, result.sentence, prov, title, caveat, table, numbers=numbers)
 
 
 def robustness_finding(store: Store, inp: AnalysisInput, extra: list[str] | None = None,
@@ -227,9 +245,87 @@ def robustness_finding(store: Store, inp: AnalysisInput, extra: list[str] | None
                                                          vary=vary or []))
 
 
+def _ratio_text(fit: RateTrend) -> str:
+    lo, hi = fit.headline_interval()
+    method = "quasi-Poisson profile likelihood" if fit.quasi is not None else "profile likelihood"
+    return f"{fit.rate_ratio:.3f} per year (95% {method} {lo:.3f} to {hi:.3f})"
+
+
+def rates_finding(store: Store, inp: AnalysisInput) -> ChartFinding:
+    """Forced and voluntary rates per 100 firm-years over the roster's universe, both Poisson trends, the
+    decomposition sentence and the share-vs-rate caution. Needs a universe (StoreError names how to get one)."""
+    a = run_rates(store, inp)
+    if a.error is not None or a.forced is None or a.voluntary is None or a.sentence is None:
+        raise RateError(a.error or "The rate trends could not be fitted.")
+    prov = provenance_for(inp, model="rate", interval_method="exact Poisson per year, profile likelihood and "
+                          "Wald for the rate ratios, 95%", universe=a.universe)
+    title = a.sentence.split(" (per 100 firm-years")[0] + "."
+    fig = rates_figure(a.table.years, a.forced, a.voluntary, title=title, source=prov.short())
+    # the Wald intervals are in the brief's table and the pack; the slide quotes the one headline method
+    takeaway = (f"Forced rate ratio {_ratio_text(a.forced)}; voluntary {_ratio_text(a.voluntary)}; over "
+                f"{a.table.firm_years:,} firm-years.")
+    caveat = " ".join([SHARE_VS_RATE, *a.messages])
+    estimates = []
+    for label, fit in (("Forced rate ratio per year", a.forced), ("Voluntary rate ratio per year", a.voluntary)):
+        quasi = " (quasi-Poisson)" if fit.quasi is not None else ""
+        estimates.append({"label": label, "estimate": fit.rate_ratio, "low": fit.headline_interval()[0],
+                          "high": fit.headline_interval()[1], "method": f"profile likelihood{quasi}"})
+        if label.startswith("Forced"):
+            wald = fit.quasi.conf_int["wald"] if fit.quasi is not None else fit.conf_int["wald"]
+            estimates.append({"label": label, "estimate": fit.rate_ratio, "low": wald[0], "high": wald[1],
+                              "method": f"Wald{quasi}"})
+    numbers = {"rate_ratio": a.forced.rate_ratio, "voluntary_rate_ratio": a.voluntary.rate_ratio,
+               "forced": rate_trend_to_dict(a.forced), "voluntary": rate_trend_to_dict(a.voluntary),
+               "sentence": a.sentence, "years": a.years(), "firm_years": a.table.firm_years,
+               "universe": {"id": a.universe.id, "fingerprint": a.universe.fingerprint,
+                            "approximate": a.universe.approximate}, "estimates": estimates}
+    return ChartFinding("rates", fig, takeaway, prov, title, caveat,
+                        run_ids=(a.run_id,) if a.run_id is not None else (), numbers=numbers)
+
+
+def adjusted_finding(store: Store, inp: AnalysisInput, adjust: tuple[str, ...] | str | None = None) -> ChartFinding:
+    """The trend adjusted for the age and tenure mix (and sector), beside the same logit adjusted for nothing,
+    both with firm-clustered intervals; the mix sentences say whether the age and tenure mix moved.
+    ``adjust``: the adjustment set (default: every one, age, tenure and sector)."""
+    chosen = parse_adjust(adjust) if adjust is not None else ADJUSTMENTS
+    plain = run_adjusted(store, inp, ())
+    outcome = run_adjusted(store, inp, chosen)
+    fit = outcome.fit
+    named = ", ".join(chosen) if chosen else "nothing"
+    rows = []
+    for label, f, group in (("Unadjusted (year only)", plain.fit, "unadjusted"),
+                            (f"Adjusted for {named}", fit, "adjusted")):
+        lo, hi = f.cluster_interval
+        rows.append({"label": f"{label} ({f.departures:,} departures)", "odds_ratio": f.odds_ratio, "low": lo,
+                     "high": hi, "group": group})
+    table = pd.DataFrame(rows)
+    prov = provenance_for(inp, model="adjusted", adjust=chosen, interval_method="firm-clustered Wald, 95%")
+    sentence = adjusted_sentence(fit)
+    title = f"{sentence.split(': odds ratio')[0]}: odds ratio {fit.odds_ratio:.3f} per year"
+    mix = mix_section(inp)
+    # the slide and brief carry each mix sentence's verdict; the numbers behind it go under the chart and in notes
+    verdicts = " ".join(m.split(" (")[0].split(":")[0].rstrip(".") + "." for m in mix.sentences)
+    # under the chart: each mix verdict with its numbers, without the advice that follows (it is in the notes)
+    fig = forest_figure(table, title=title, source=prov.short(),
+                        notes=[m.split("): ")[0] + (")" if "): " in m else "") for m in mix.sentences])
+    caveat = ("Adjusting removes only the measured mix (age and tenure bands, sector); departures missing an "
+              "adjusting field are left out and counted. " + " ".join(mix.sentences))
+    numbers = {"adjust": list(chosen), "odds_ratio": fit.odds_ratio, "cluster_se": fit.cluster_se,
+               "conf_int": {"cluster": list(fit.cluster_interval)}, "departures": fit.departures,
+               "dropped": dict(fit.dropped), "unadjusted_odds_ratio": plain.fit.odds_ratio,
+               "unadjusted_conf_int": {"cluster": list(plain.fit.cluster_interval)}, "mix": mix.sentences,
+               "estimates": [{"label": f"Adjusted odds ratio per year ({named})", "estimate": fit.odds_ratio,
+                              "low": fit.cluster_interval[0], "high": fit.cluster_interval[1],
+                              "method": "firm-clustered Wald"}]}
+    return ChartFinding("adjusted", fig, f"{sentence} {verdicts}", prov, title, caveat, table,
+                        run_ids=(plain.run_id, outcome.run_id), numbers=numbers)
+
+
 def build_finding(store: Store, inp: AnalysisInput, chart: str, *, run_id: int | None = None,
-                  method: str = "bca", model: str = "linear") -> ChartFinding:
-    """Any chart by name; ``bootstrap`` uses ``run_id`` or the newest matching finished run."""
+                  method: str = "bca", model: str = "linear",
+                  adjust: tuple[str, ...] | str | None = None) -> ChartFinding:
+    """Any chart by name; ``bootstrap`` uses ``run_id`` or the newest matching finished run; ``adjusted``
+    adjusts for ``adjust`` (default age, tenure and sector)."""
     if chart not in CHART_NAMES:
         raise ValueError(f"chart must be one of {', '.join(CHART_NAMES)}; got {chart!r}.")
     if chart == "coverage":
@@ -246,4 +342,8 @@ def build_finding(store: Store, inp: AnalysisInput, chart: str, *, run_id: int |
         return bootstrap_finding(store, run_id, method)
     if chart == "sectors":
         return sectors_finding(store, inp)
+    if chart == "rates":
+        return rates_finding(store, inp)
+    if chart == "adjusted":
+        return adjusted_finding(store, inp, adjust)
     return robustness_finding(store, inp)

@@ -2,7 +2,7 @@
 
 Each finding's plotly figure is the single source of its numbers: the coverage bars, the trend's observed
 shares, fitted line and band, and the bootstrap replicates are read back out of the figure's traces, and a
-forest chart from the finding's rows, so the slide can never show other numbers than the page.
+forest chart (sectors, robustness, adjusted) from the finding's rows, so the slide can never show other numbers than the page.
 
 python-pptx has no API for error bars, so :func:`_error_bars` writes the DrawingML ``c:errBars`` element
 (ECMA-376 Part 1, 21.2.2.55, custom plus/minus values as literals) into the series by hand.
@@ -28,6 +28,7 @@ from pptx.slide import Slide
 from pptx.util import Inches, Pt
 
 from app.briefing.charts import INK, MUTED, OKABE_ITO, histogram_edges
+from app.briefing.rate_chart import COLOURS, FITTED, OBSERVED
 
 FONT = "Arial"
 
@@ -284,6 +285,58 @@ def forest_chart(slide: Slide, rows: pd.DataFrame, box: tuple[float, float, floa
     return chart
 
 
+def rates_chart(slide: Slide, fig: go.Figure, box: tuple[float, float, float, float]) -> Chart:
+    """Forced and voluntary rates per 100 firm-years with their exact intervals, and both fitted Poisson
+    trends (the rates figure's traces)."""
+    data = XyChartData()
+    for measure in ("forced", "voluntary"):
+        for name in (OBSERVED[measure], FITTED[measure]):
+            trace = _trace(fig, name)
+            series = data.add_series(name, number_format="0.00")
+            for x, y in zip(_floats(trace.x), _floats(trace.y), strict=True):
+                if math.isfinite(y):
+                    series.add_data_point(x, y)
+    chart = _add(slide, XL_CHART_TYPE.XY_SCATTER_LINES_NO_MARKERS, box, data)
+    _house(chart)
+    plotted = chart.plots[0].series
+    for i, measure in enumerate(("forced", "voluntary")):
+        obs, line = plotted[2 * i], plotted[2 * i + 1]
+        colour = COLOURS[measure]
+        obs.format.line.fill.background()
+        obs.marker.style = XL_MARKER_STYLE.CIRCLE
+        obs.marker.size = 7
+        obs.marker.format.fill.solid()
+        obs.marker.format.fill.fore_color.rgb = _rgb(colour)
+        obs.marker.format.line.color.rgb = _rgb("#FFFFFF")
+        trace = _trace(fig, OBSERVED[measure])
+        keep = np.isfinite(np.asarray(trace.y, dtype=float))
+        _error_bars(obs, _floats(np.asarray(trace.error_y.array, dtype=float)[keep]),
+                    _floats(np.asarray(trace.error_y.arrayminus, dtype=float)[keep]), colour, direction="y")
+        line.marker.style = XL_MARKER_STYLE.NONE
+        line.smooth = False
+        line.format.line.color.rgb = _rgb(colour)
+        line.format.line.width = Pt(2.5)
+        if measure == "voluntary":
+            line.format.line.dash_style = MSO_LINE_DASH_STYLE.DASH
+    years = _floats(_trace(fig, OBSERVED["forced"]).x)
+    x_axis, y_axis = chart.category_axis, chart.value_axis
+    unit = 1 if max(years) - min(years) <= 12 else 2 if max(years) - min(years) <= 24 else 5
+    x_axis.minimum_scale = math.floor((min(years) - 1) / unit) * unit
+    x_axis.maximum_scale = math.ceil((max(years) + 1) / unit) * unit
+    x_axis.major_unit = unit
+    x_axis.tick_labels.number_format = "0"
+    x_axis.tick_labels.number_format_is_linked = False
+    x_axis.tick_label_position = XL_TICK_LABEL_POSITION.LOW
+    y_axis.minimum_scale = 0
+    if fig.layout.yaxis.range:
+        y_axis.maximum_scale = float(fig.layout.yaxis.range[1])
+    y_axis.has_major_gridlines = True
+    y_axis.major_gridlines.format.line.color.rgb = _rgb("#E3E6EA")
+    _axis_title(x_axis, "Fiscal year")
+    _axis_title(y_axis, "Departures per 100 firm-years")
+    return chart
+
+
 def native_chart(slide: Slide, name: str, fig: go.Figure, rows: pd.DataFrame | None,
                  box: tuple[float, float, float, float]) -> Chart:
     """The finding ``name``'s chart as a native chart in ``box`` (left, top, width, height in inches)."""
@@ -293,6 +346,8 @@ def native_chart(slide: Slide, name: str, fig: go.Figure, rows: pd.DataFrame | N
         return trend_chart(slide, fig, box)
     if name == "bootstrap":
         return bootstrap_chart(slide, fig, box)
+    if name == "rates":
+        return rates_chart(slide, fig, box)
     if rows is None:
         raise ValueError(f"the {name} finding carries no rows for its forest chart.")
     return forest_chart(slide, rows, box)

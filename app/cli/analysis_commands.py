@@ -147,14 +147,20 @@ def cmd_export(args: argparse.Namespace) -> int:
     from app.briefing.signature import resolve_signature
 
     out = _out_path(args.out)
+    pack_out = _out_path(args.pack, "--pack") if args.pack else None
+    if pack_out is not None and pack_out.resolve() == out.resolve():
+        raise CommandError("--pack and --out name the same file; give the brief pack its own name.")
     store = _store(args)
     inp = load_input(store, args.roster, mapping=args.mapping, window=_parse_years(args.years))
     signature = resolve_signature(store.briefing_settings(inp.roster.id), inp.roster.name, title=args.title,
                                   author=args.author, marking=args.marking, when=args.date)
     charts = None
-    if args.format == "pptx" and args.chart is not None:
+    if args.format in ("pptx", "brief") and args.chart is not None:
         charts = [c.strip() for c in args.chart.split(",") if c.strip()]
-    path = export_to_file(store, inp, fmt=args.format, out=out, chart=args.chart or "trend",
-                          run_id=args.run, signature=signature, charts=charts)
+    path, pack = export_to_file(store, inp, fmt=args.format, out=out, chart=args.chart or "trend",
+                                run_id=args.run, signature=signature, charts=charts, adjust=args.adjust,
+                                pack_out=pack_out)
     print(f"Wrote {path}", file=sys.stderr)
+    if pack is not None and pack_out is not None:
+        print(f"Wrote {pack_out} (brief pack, sha256 {pack.sha256})", file=sys.stderr)
     return 0

@@ -63,13 +63,13 @@ def open_store(url: str, *, create: bool) -> Any:
                            f"{reason}.") from None
 
 
-def _out_path(value: str) -> Path:
+def _out_path(value: str, flag: str = "--out") -> Path:
     """An output file whose folder must already exist (we never create folders on a typo)."""
     out = Path(value).expanduser()
     if out.is_dir():
-        raise CommandError(f"--out names the folder {out}; give a file name inside it.")
+        raise CommandError(f"{flag} names the folder {out}; give a file name inside it.")
     if not out.parent.is_dir():
-        raise CommandError(f"The folder {out.parent} for --out does not exist; create it first or check the path.")
+        raise CommandError(f"The folder {out.parent} for {flag} does not exist; create it first or check the path.")
     return out
 
 

@@ -220,11 +220,17 @@ def build_parser() -> argparse.ArgumentParser:
                                            "that matches the mapping and window)")
     p.add_argument("--format", required=True, choices=["png", "svg", "pdf", "pptx", "brief"],
                    help="png, svg or pdf: one chart; pptx: the slide deck; brief: the PDF brief (required)")
-    p.add_argument("--chart", help="png/svg/pdf: coverage, trend, bootstrap, sectors or robustness (default: "
-                                   "trend); pptx: the findings as a comma list, every one shown or an error "
-                                   "(default: every finding that can be shown); brief: the same comma list "
+    p.add_argument("--chart", help="png/svg/pdf: coverage, trend, bootstrap, sectors, robustness, rates or "
+                                   "adjusted (default: trend); pptx: the findings as a comma list, every one "
+                                   "shown or an error (default: every finding that can be shown; rates when the "
+                                   "roster has a universe; adjusted only when named); brief: the same comma list "
                                    "(default: trend and bootstrap, or coverage without a run)")
+    p.add_argument("--adjust", metavar="LIST", help="the adjusted finding's adjustments, a comma list of age, "
+                                                    "tenure, sector (default: all three)")
     p.add_argument("--out", required=True, help="file to write, whole or not at all (required)")
+    p.add_argument("--pack", metavar="PACK.zip",
+                   help="also write the brief pack: a zip of the replication pack of every run the export quotes, "
+                        "with a manifest of sha256s; the brief's and deck's footers name its sha256 (default: none)")
     p.add_argument("--title", help="title of the brief or deck (default: the one saved on the Briefing page, "
                                    "else 'Forced chief-executive departures: ROSTER')")
     p.add_argument("--author", help="author named on the title slide and the brief (default: the saved one, "

@@ -12,7 +12,7 @@ from starlette.concurrency import run_in_threadpool
 
 from app.analysis.inputs import AnalysisInput, load_input
 from app.analysis.runs import run_trend
-from app.briefing.exports import MEDIA_TYPES, brief_file, chart_file, deck_file, default_charts
+from app.briefing.exports import MEDIA_TYPES, brief_file, brief_pack, chart_file, deck_file, default_charts
 from app.briefing.findings import CHART_NAMES, build_finding, latest_bootstrap
 from app.briefing.render import ExportError, export_available
 from app.briefing.signature import (
@@ -36,7 +36,9 @@ from app.web.schemas import BootstrapRunOut, define, list_of
 router = APIRouter()
 
 CHART_LABELS = {"coverage": "Coverage by year", "trend": "Trend in the forced share",
-                "bootstrap": "Bootstrap odds ratios", "sectors": "Sector trends", "robustness": "Other mappings"}
+                "bootstrap": "Bootstrap odds ratios", "sectors": "Sector trends", "robustness": "Other mappings",
+                "rates": "Turnover rates per 100 firm-years (needs a universe)",
+                "adjusted": "Trend adjusted for age, tenure and sector"}
 
 
 @dataclass(frozen=True)
@@ -225,6 +227,25 @@ def brief_export(request: Request, roster_id: int) -> Response:
     inp = _input(store, roster_id, request)
     data = _export(lambda: brief_file(store, inp, _chosen(request), run_id=_run_arg(request)))
     return _download(data, "brief", f"helmshift-brief-{roster_id}.pdf")
+
+
+@router.get("/rosters/{roster_id}/briefing/brief-pack.zip", name="brief_pack_export", response_class=Response,
+            responses={**download("The brief pack: the replication pack of every run the brief and deck of these "
+                                  "findings quote, with a manifest of sha256s", "application/zip"),
+                       **page_errors(400, 404)},
+            openapi_extra=query(_CHART, _RUN, *WINDOW_QUERY))
+def brief_pack_export(request: Request, roster_id: int) -> Response:
+    """The zip whose sha256 the brief's and deck's footers name, for the same ticked findings."""
+    store = app_store(request)
+    inp = _input(store, roster_id, request)
+    try:
+        pack = brief_pack(store, inp, _chosen(request), run_id=_run_arg(request))
+    except (StoreError, ValueError) as exc:
+        raise BadRequest(str(exc)) from exc
+    response = Response(pack.data, media_type="application/zip",
+                        headers={"content-disposition": f'attachment; filename="helmshift-brief-pack-{roster_id}.zip"'})
+    response.headers["x-pack-sha256"] = pack.sha256
+    return response
 
 
 @router.post("/rosters/{roster_id}/briefing/settings", name="briefing_settings_save", status_code=303,

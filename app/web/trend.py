@@ -12,7 +12,7 @@ from app.analysis.adjusted import MixSection, adjusted_sentence, mix_section, ru
 from app.analysis.inputs import AnalysisInput, load_input
 from app.analysis.rates import RatesSection, rates_section
 from app.analysis.runs import period_comparison, refresh_comparison, run_trend
-from app.briefing.findings import trend_finding_from_fit
+from app.briefing.findings import rates_finding, trend_finding_from_fit
 from app.briefing.mix_chart import mix_figures
 from app.stats.adjusted import AdjustedError, parse_adjust
 from app.stats.headline import headline_fields, headline_sentence
@@ -61,6 +61,8 @@ class TrendPage:
     #: age and tenure mix of counted departures by year, and whether it moved (composition diagnostic)
     mix: MixSection | None = None
     mix_figures: dict[str, FigureSpec] = field(default_factory=dict, metadata={"json_skip": True})
+    #: the rates finding's figure (the one the Briefing exports), when the roster has a universe
+    rates_figure: FigureSpec | None = field(default=None, metadata={"json_skip": True})
     #: the adjustments asked for (``adjust`` query); the adjusted fit only when asked (it reads firm counts)
     adjust: list[str] | None = None
     adjusted: dict[str, Any] | None = None
@@ -131,6 +133,10 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
                        lambda: figure_spec(trend_finding_from_fit(inp, fit, model).figure, titled=False))
     compared, compare_error = _periods(inp, periods)
     runs, numbers = _trend_runs(store, roster.id)
+    rates_spec = None
+    if rates.universe_id is not None and rates.forced is not None and rates.voluntary is not None:
+        rates_spec = page_memo(store, ("trend-rates", *inp.key, rates.universe_id),
+                               lambda: figure_spec(rates_finding(store, inp).figure, titled=False))
     return TrendPage(
         roster=roster, mapping_label=inp.mapping_label, window=inp.window, window_source=inp.window_source,
         model=model, spline_df=spline_df, fit={**fit_to_dict(fit), **headline_fields(fit)},
@@ -138,7 +144,7 @@ def trend_data(store: Store, roster_id: int, *, model: str = "linear", spline_df
         warnings=inp.warnings(), run_id=outcome.run_id, runs=runs, run_numbers=numbers,
         figure=figure, table=_odds_table(fit), quasi=quasi, rates=rates, records_mapping=mapping_ref(inp.mapping),
         periods=compared, periods_error=compare_error, refresh=refresh_comparison(store, inp, outcome.run_id),
-        mix=mix, mix_figures=mix_specs,
+        mix=mix, mix_figures=mix_specs, rates_figure=rates_spec,
         adjust=list(adjust) if adjust is not None else None, adjusted=adjusted, adjusted_error=adjusted_error,
     )
 
