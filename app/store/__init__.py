@@ -20,7 +20,9 @@ from app.store.mappings import MappingConflict, MappingQueries
 from app.store.profiles import IntakeProfile, ProfileQueries
 from app.store.records import (
     MAX_ID,
+    OVERRIDE_NOTE_MAX,
     BriefingSettings,
+    CaseOverride,
     MappingVersion,
     RejectedRow,
     Roster,
@@ -37,8 +39,8 @@ from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metada
 from app.store.universe import UniverseQueries
 
 __all__ = [
-    "Account", "AuditEvent", "BriefingSettings", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION",
-    "INTERRUPTED", "IntakeProfile", "MAX_ID", "MappingConflict", "MappingVersion", "RejectedRow", "Roster",
+    "Account", "AuditEvent", "BriefingSettings", "CaseOverride", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION",
+    "INTERRUPTED", "IntakeProfile", "MAX_ID", "MappingConflict", "MappingVersion", "OVERRIDE_NOTE_MAX", "RejectedRow", "Roster",
     "RosterSettings", "Run", "RunClaimLost", "Store", "StoreError", "Universe", "departures", "metadata", "now_iso",
 ]
 
