@@ -7,10 +7,11 @@ database (one LEFT JOIN on ``mapping_entries`` gives each departure its category
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Collection, Iterator
 from dataclasses import dataclass
 from typing import Any
 
+import pandas as pd
 from sqlalchemy import ColumnElement, Select, and_, func, literal, or_, select
 
 from app.store.cells import version_of
@@ -39,6 +40,11 @@ LISTED_FIELDS: tuple[str, ...] = (
 )
 
 MAX_PER_PAGE = 500
+
+#: what case overrides read of a departure: its identity and its cell key
+IDENTITY_FIELDS: tuple[str, ...] = (
+    "line", "firm_id", "executive", "year", "sector", "reason", "age", "tenure", "interim",
+)
 
 
 @dataclass(frozen=True)
@@ -167,6 +173,37 @@ class DepartureQueries(Gateway):
             result = conn.execution_options(yield_per=batch).execute(stmt)
             for row in result:
                 yield dict(row._mapping)
+
+    def departures_in_years(self, roster_id: int, years: Collection[int], version: int | None = None
+                            ) -> pd.DataFrame:
+        """The departures of a roster version (default: the newest) in the given fiscal years, with their ids,
+        in line order: where case overrides look for the records they name (a few years, not the roster)."""
+        d = departures.c
+        cols = [d.id, *(d[f] for f in IDENTITY_FIELDS)]
+        years = sorted({int(y) for y in years if 0 <= int(y) <= 9999})
+        with self.engine.connect() as conn:
+            rows = conn.execute(select(*cols).where(
+                d.roster_id == roster_id, d.version == version_of(roster_id, version), d.year.in_(years))
+                .order_by(d.line, d.id)).fetchall() if years else []
+        frame = pd.DataFrame.from_records([tuple(r) for r in rows], columns=["id", *IDENTITY_FIELDS])
+        frame["year"] = frame["year"].astype("int64")
+        for c in ("age", "tenure"):
+            frame[c] = pd.to_numeric(frame[c], errors="coerce").astype("float64")
+        return frame
+
+    def get_departure(self, roster_id: int, departure_id: int, version: int | None = None) -> dict[str, Any]:
+        """One departure of a roster version (default: the newest) by id; ``StoreError`` when it is not one."""
+        d = departures.c
+        row = None
+        if 0 < departure_id <= MAX_ID:
+            with self.engine.connect() as conn:
+                row = conn.execute(select(d.id, *(d[f] for f in IDENTITY_FIELDS)).where(
+                    d.id == departure_id, d.roster_id == roster_id,
+                    d.version == version_of(roster_id, version))).first()
+        if row is None:
+            raise StoreError(f"Departure {departure_id} is not a record of the current version of roster "
+                             f"{roster_id}.")
+        return dict(row._mapping)
 
     def departure_facets(self, roster_id: int, version: int | None = None) -> dict[str, list[Any]]:
         """The distinct years, sectors and reason codes of a roster version (default: the newest), for the
