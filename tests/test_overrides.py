@@ -173,4 +173,39 @@ def test_exports_state_the_overrides(store: Store) -> None:
     add_override(store, store.get_roster(roster_id), store.get_mapping("desk map"), f1, "forced",
                  "board statement of 3 May")
     text = provenance_for(load_input(store, roster_id, mapping="desk map", window=WINDOW)).text()
-    assert "1 case override" in text and "board statement of 3 May" in text and "Ann Smith" in text
+    assert "Case overrides: 1 departure" in text and "voluntary \u2192 forced" in text and "board statement of 3 May" in text and "Ann Smith" in text
+
+
+def test_the_brief_the_deck_and_the_pack_carry_the_overrides(store: Store) -> None:
+    import io
+    import shutil
+    import subprocess
+    import zipfile
+
+    from pptx import Presentation
+
+    from app.analysis.replication import build_pack
+    from app.briefing.exports import brief_file, deck_file
+    from app.briefing.render import export_available
+
+    if not export_available()[0]:
+        pytest.skip(export_available()[1])
+    roster_id, f1 = setup(store)
+    add_override(store, store.get_roster(roster_id), store.get_mapping("desk map"), f1, "forced",
+                 "board statement of 3 May")
+    inp = load_input(store, roster_id, mapping="desk map", window=WINDOW)
+    deck = Presentation(io.BytesIO(deck_file(store, inp, ["trend"])))
+    methods = " ".join(sh.text_frame.text for s in deck.slides for sh in s.shapes if sh.has_text_frame
+                       and "Methods" in s.shapes.title.text_frame.text)
+    assert "Case overrides: 1 departure" in methods and "board statement of 3 May" in methods
+    run = run_trend(store, inp)
+    with zipfile.ZipFile(io.BytesIO(build_pack(store, run.run_id).data)) as pack:
+        rows = pd.read_csv(pack.open("overrides.csv"))
+        assert "Ann Smith" not in pack.read("overrides.csv").decode()  # no executive without the records
+    assert rows[["firm_id", "year", "from", "to", "note"]].values.tolist() == [
+        ["F1", 2001, "voluntary", "forced", "board statement of 3 May"]]
+    if shutil.which("pdftotext") is None:
+        pytest.skip("pdftotext (poppler-utils) is not installed")
+    text = " ".join(subprocess.run(["pdftotext", "-layout", "-", "-"], input=brief_file(store, inp),
+                                   capture_output=True, check=True).stdout.decode().split())
+    assert "Mapping overrides: 1 set case by case" in text and "Case overrides: 1 departure" in text

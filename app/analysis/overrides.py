@@ -29,6 +29,8 @@ from app.types import CATEGORIES
 
 #: the columns of a cell key an override's record is located by (those a frame has)
 CELL_KEY = ("firm_id", "year", "sector", "reason", "age", "tenure", "interim")
+#: an override's note as exports quote it (the whole note is in the pack, the JSON and the Reason codes page)
+NOTE_SHOWN = 120
 
 
 @dataclass(frozen=True)
@@ -156,7 +158,7 @@ def override_for(store: Store, roster: Roster, departure_id: int, category: str,
     occurrence = int(keyed.loc[keyed["id"] == departure_id, "_n"].iloc[0])
     executive = " ".join(str(record["executive"] or "").split()) or None
     return CaseOverride(roster_id=roster.id, firm_id=str(record["firm_id"]), executive=executive,
-                        year=int(record["year"]), reason=str(record["reason"]), category=category,  # type: ignore[arg-type]
+                        year=int(record["year"]), reason=str(record["reason"]), category=category,
                         note=note.strip(), author=author, created_at=now_iso(), occurrence=occurrence,
                         departure_id=departure_id, roster_version=roster.version)
 
@@ -185,6 +187,14 @@ def remove_override(store: Store, mapping: MappingVersion, position: int, *, aut
         mapping.name, mapping.categories, mapping.labels, author=author, rules=mapping.rules,
         note=f"case override removed: {gone.describe()} ({gone.category})", based_on=mapping.version,
         overrides=[o for i, o in enumerate(mapping.overrides, start=1) if i != position])
+
+
+def override_line(r: ResolvedOverride) -> str:
+    """One line for exports' methods sections: record, from -> to, note, author and date."""
+    o = r.override
+    moved = f"{r.counted_as} \u2192 {o.category}" if r.applied else f"counted as {o.category}; {r.not_applied}"
+    note = o.note if len(o.note) <= NOTE_SHOWN else o.note[:NOTE_SHOWN - 1].rstrip() + "\u2026"
+    return f"{o.describe()}: {moved} \u2014 \u201c{note}\u201d ({o.author}, {o.created_at[:10]})"
 
 
 def overrides_to_list(resolved: Sequence[ResolvedOverride], mapping: MappingVersion | None) -> list[dict[str, Any]]:

@@ -10,6 +10,7 @@ from datetime import UTC, datetime
 
 from app import __version__
 from app.analysis.inputs import AnalysisInput
+from app.analysis.overrides import override_line
 from app.store import Roster
 from app.types import CATEGORIES
 
@@ -20,6 +21,9 @@ CAUTIONS: tuple[str, ...] = (
     "Years with few departures give wide intervals.",
     "Rosters hold personal data about named people: keep these files local.",
 )
+
+#: overrides listed one by one in an export's methods section (the rest are counted)
+OVERRIDES_LISTED = 5
 
 MODEL_LABELS = {
     "linear": "binomial GLM, logit(forced share) linear in fiscal year",
@@ -53,6 +57,10 @@ class Provenance:
     rules: tuple[str, ...] = ()
     #: how many of the file's rows were used ("670 of 803 rows; 133 rejected, see Rosters"); empty: not stated
     rows_used: str = ""
+    #: the mapping version's case overrides of this roster, one line each (record, from -> to, note, author)
+    overrides: tuple[str, ...] = ()
+    #: how many of them are listed one by one (the rest are counted; a one-page brief may list fewer)
+    overrides_listed: int = OVERRIDES_LISTED
 
     def _created(self) -> str:
         return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
@@ -73,6 +81,7 @@ class Provenance:
             f"Roster: {self.roster} (data fingerprint {self.roster_fingerprint})",
             f"Mapping: {self.mapping_name}, version {self.mapping_version}"
             + (f"; classification rules, first match wins: {'; '.join(self.rules)}" if self.rules else ""),
+            *self._override_lines(),
             f"Window: fiscal years {self.window[0]}\u2013{self.window[1]}",
             *([f"Rows used: {self.rows_used}"] if self.rows_used else []),
             f"Model: {self.model}",
@@ -85,6 +94,17 @@ class Provenance:
         out.append(f"Made with Helmshift {self.tool_version} on {self._created()}")
         return out
 
+    def _override_lines(self) -> list[str]:
+        """One line: how many departures the analyst classified case by case, and the first few of them."""
+        if not self.overrides:
+            return []
+        n, listed = len(self.overrides), max(0, self.overrides_listed)
+        shown = "; ".join(self.overrides[:listed])
+        if n > listed:
+            shown += (f"; \u2026 and {n - listed:,} more" if listed else f"{n:,}") + " listed on the Reason codes page"
+        return [f"Case overrides: {n} departure{'s' if n > 1 else ''} counted as the analyst set, over codes and "
+                f"rules: {shown}"]
+
     def text(self) -> str:
         return "\n".join(self.lines())
 
@@ -93,7 +113,9 @@ class Provenance:
         parts = [
             f"Source: roster {self.roster} [{self.roster_fingerprint[:12]}]",
             f"mapping {self.mapping_name} v{self.mapping_version}"
-            + (f" with {len(self.rules)} rule{'s' if len(self.rules) > 1 else ''}" if self.rules else ""),
+            + (f" with {len(self.rules)} rule{'s' if len(self.rules) > 1 else ''}" if self.rules else "")
+            + (f", {len(self.overrides)} case override{'s' if len(self.overrides) > 1 else ''}"
+               if self.overrides else ""),
             f"FY{self.window[0]}\u2013{self.window[1]}",
             self.model,
         ]
@@ -126,5 +148,5 @@ def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method
                                                  if adjust is not None else ""),
         interval_method=interval_method, resamples=resamples, seed=seed, unit=unit, categories=grouped,
         rules=tuple(r.describe() for r in (inp.mapping.rules if inp.mapping else ())),
-        rows_used=rows_used_line(inp.roster),
+        rows_used=rows_used_line(inp.roster), overrides=tuple(override_line(r) for r in inp.overrides),
     )
