@@ -209,3 +209,20 @@ def test_the_brief_the_deck_and_the_pack_carry_the_overrides(store: Store) -> No
     text = " ".join(subprocess.run(["pdftotext", "-layout", "-", "-"], input=brief_file(store, inp),
                                    capture_output=True, check=True).stdout.decode().split())
     assert "Mapping overrides: 1 set case by case" in text and "Case overrides: 1 departure" in text
+
+
+def test_robustness_reads_the_trend_with_and_without_the_overrides(store: Store) -> None:
+    from app.analysis.robustness import check_robustness
+
+    roster_id, f1 = setup(store)
+    add_override(store, store.get_roster(roster_id), store.get_mapping("desk map"), f1, "forced", "court filing")
+    inp = load_input(store, roster_id, mapping="desk map", window=WINDOW)
+    result = check_robustness(store, inp, ambiguous_excluded=False, vary=["Resigned"])
+    kinds = {v.kind: v for v in result.variants}
+    # hand counts: 4 Dismissed of 11, so 5 forced with the override (F1 moved), 4 without
+    assert (kinds["reference"].departures, kinds["reference"].forced) == (11, 5)
+    assert (kinds["overrides-off"].departures, kinds["overrides-off"].forced) == (11, 4)
+    assert "voluntary \u2192 forced" in kinds["overrides-off"].changes[0]
+    # a reading derived from the mapping keeps the override: Resigned (4 departures) excluded leaves 7, 5 forced
+    excluded = next(v for v in result.variants if v.label == "Resigned as excluded")
+    assert (excluded.departures, excluded.forced) == (7, 5)
