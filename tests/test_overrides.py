@@ -8,6 +8,9 @@ binomial GLM (``statsmodels.api.GLM``) is the reference for the fit a run record
 
 from __future__ import annotations
 
+from pathlib import Path
+from typing import Any
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -226,3 +229,47 @@ def test_robustness_reads_the_trend_with_and_without_the_overrides(store: Store)
     # a reading derived from the mapping keeps the override: Resigned (4 departures) excluded leaves 7, 5 forced
     excluded = next(v for v in result.variants if v.label == "Resigned as excluded")
     assert (excluded.departures, excluded.forced) == (7, 5)
+
+
+def test_the_command_line_adds_lists_and_removes_overrides(capsys: pytest.CaptureFixture[str], tmp_path: Path
+                                                          ) -> None:
+    import json
+
+    from app.cli import main
+
+    db = tmp_path / "cli.db"
+    store = Store(f"sqlite:///{db}")
+    roster_id, _ = setup(store)
+    store.dispose()
+
+    def run(*argv: str) -> tuple[int, Any, str]:
+        code = main([*argv, "--db", str(db)])
+        out, err = capsys.readouterr()
+        return code, (json.loads(out) if code == 0 and "--json" in argv else out), err
+
+    # line 2 of the file (after the header) is F1, Ann Smith, 2001
+    code, added, _ = run("override", "add", "desk", "--line", "2", "--category", "forced", "--note",
+                         "board statement of 3 May", "--mapping", "desk map", "--json")
+    assert code == 0 and added["mapping"] == "desk map:2"
+    assert [(o["record"], o["from"], o["to"]) for o in added["overrides"]] == [
+        ("firm F1, Ann Smith, FY2001", "voluntary", "forced")]
+    code, coverage, _ = run("coverage", "--roster", "desk", "--mapping", "desk map", "--json")
+    # hand count: 2001 holds F1 (now forced) and F2 (Dismissed)
+    assert code == 0 and [(y["forced"], y["voluntary"]) for y in coverage["years"] if y["year"] == 2001] == [(2, 0)]
+    code, text, _ = run("override", "list", "desk", "--mapping", "desk map")
+    assert "1. firm F1, Ann Smith, FY2001: voluntary -> forced" in text
+    code, _, err = run("override", "add", "desk", "--line", "99", "--category", "forced", "--note", "x",
+                       "--mapping", "desk map")
+    assert code == 1 and err.count("\n") == 1 and "no accepted departure on line 99" in err
+    code, _, err = run("override", "add", "desk", "--line", "3", "--category", "forced", "--note", " ",
+                       "--mapping", "desk map")
+    assert code == 1 and "needs a note" in err
+    code, _, err = run("override", "add", "desk", "--category", "forced", "--note", "x", "--mapping", "desk map")
+    assert code == 2 and "--line N" in err
+    code, _, err = run("override", "add", "desk", "--line", "2", "--category", "forced", "--note", "x")
+    assert code == 1 and "has no reason-code mapping yet" in err
+    code, removed, _ = run("override", "remove", "desk", "1", "--mapping", "desk map", "--json")
+    assert code == 0 and removed["mapping"] == "desk map:3" and removed["overrides"] == []
+    code, _, err = run("override", "remove", "desk", "1", "--mapping", "desk map")
+    assert code == 1 and "no override number 1" in err
+    assert roster_id == 1

@@ -25,6 +25,7 @@ import pandas as pd
 from app.analysis.cellstore import categorise, mapping_key, memoised, roster_fingerprint
 from app.intake.refresh import KEYS, identity_keys
 from app.store import CaseOverride, MappingVersion, Roster, Store, StoreError, now_iso
+from app.store.audit import LOCAL_ACTOR, current_actor
 from app.types import CATEGORIES
 
 #: the columns of a cell key an override's record is located by (those a frame has)
@@ -167,6 +168,8 @@ def add_override(store: Store, roster: Roster, mapping: MappingVersion, departur
                  note: str, *, author: str = "analyst") -> MappingVersion:
     """The next version of ``mapping`` with this record counted as ``category`` (replacing an override of
     the same record); refused with ``MappingConflict`` when ``mapping`` is no longer the newest version."""
+    if current_actor() != LOCAL_ACTOR:
+        author = current_actor()  # in team mode and on the command line: who is signed in, not a typed name
     new = override_for(store, roster, departure_id, category, note, author=author)
     kept = [o for o in mapping.overrides if o.identity() != new.identity()]
     return store.save_mapping_version(
@@ -211,3 +214,26 @@ def overrides_to_list(resolved: Sequence[ResolvedOverride], mapping: MappingVers
             "mapping": f"{mapping.name}:{mapping.version}" if mapping else None,
         })
     return out
+
+
+def current_mapping(store: Store, roster: Roster, mapping: str | None = None) -> MappingVersion:
+    """The mapping version overrides of ``roster`` are added to: ``mapping`` (NAME or NAME:VERSION) or the
+    roster's chosen mapping, newest version."""
+    from app.analysis.inputs import parse_mapping_ref  # inputs imports this module
+
+    name = mapping or store.settings(roster.id).mapping_name
+    if not name:
+        raise StoreError(f"Roster {roster.name!r} has no reason-code mapping yet; choose one on the Reason codes "
+                         "page (or name one with --mapping) before overriding a record.")
+    ref, version = parse_mapping_ref(name)
+    return store.get_mapping(ref, version)
+
+
+def departure_at_line(store: Store, roster: Roster, line: int) -> int:
+    """The id of the departure on source line ``line`` of the roster's current version."""
+    records = store.departures(roster.id, version=roster.version)
+    hit = records.loc[records["line"] == line, "id"]
+    if hit.empty:
+        raise StoreError(f"Version {roster.version} of roster {roster.name!r} has no accepted departure on line "
+                         f"{line}.")
+    return int(hit.iloc[0])
