@@ -205,7 +205,7 @@ def test_the_brief_the_deck_and_the_pack_carry_the_overrides(store: Store) -> No
     with zipfile.ZipFile(io.BytesIO(build_pack(store, run.run_id).data)) as pack:
         rows = pd.read_csv(pack.open("overrides.csv"))
         assert "Ann Smith" not in pack.read("overrides.csv").decode()  # no executive without the records
-    assert rows[["firm_id", "year", "from", "to", "note"]].values.tolist() == [
+    assert rows[["firm_id", "year", "counted_as", "category", "note"]].values.tolist() == [
         ["F1", 2001, "voluntary", "forced", "board statement of 3 May"]]
     if shutil.which("pdftotext") is None:
         pytest.skip("pdftotext (poppler-utils) is not installed")
@@ -251,7 +251,7 @@ def test_the_command_line_adds_lists_and_removes_overrides(capsys: pytest.Captur
     code, added, _ = run("override", "add", "desk", "--line", "2", "--category", "forced", "--note",
                          "board statement of 3 May", "--mapping", "desk map", "--json")
     assert code == 0 and added["mapping"] == "desk map:2"
-    assert [(o["record"], o["from"], o["to"]) for o in added["overrides"]] == [
+    assert [(o["record"], o["counted_as"], o["category"]) for o in added["overrides"]] == [
         ("firm F1, Ann Smith, FY2001", "voluntary", "forced")]
     code, coverage, _ = run("coverage", "--roster", "desk", "--mapping", "desk map", "--json")
     # hand count: 2001 holds F1 (now forced) and F2 (Dismissed)

@@ -208,8 +208,8 @@ def overrides_to_list(resolved: Sequence[ResolvedOverride], mapping: MappingVers
         o = r.override
         out.append({
             "position": r.position, "record": o.describe(), "firm_id": o.firm_id, "executive": o.executive,
-            "year": o.year, "reason": o.reason, "from": r.counted_as,
-            "to": o.category, "note": o.note, "author": o.author, "created_at": o.created_at,
+            "year": o.year, "reason": o.reason, "counted_as": r.counted_as,
+            "category": o.category, "note": o.note, "author": o.author, "created_at": o.created_at,
             "departure_id": r.departure_id, "line": r.line, "applied": r.applied, "not_applied": r.not_applied,
             "mapping": f"{mapping.name}:{mapping.version}" if mapping else None,
         })

@@ -198,7 +198,7 @@ def _records(inp: AnalysisInput) -> str:
 def _overrides(inp: AnalysisInput, records: bool) -> str:
     """overrides.csv: executives are named only in a pack that holds the records (personal data)."""
     header = ["position", "firm_id", *(["executive"] if records else []), "year", "reason", "occurrence", "line",
-              "from", "to", "note", "author", "created_at", "applied", "not_applied"]
+              "counted_as", "category", "note", "author", "created_at", "applied", "not_applied"]
     return _csv(overrides_to_list(inp.overrides, inp.mapping), header)
 
 

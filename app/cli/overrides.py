@@ -22,7 +22,8 @@ def _listed(p: dict[str, Any]) -> str:
     lines = [f"Mapping {p['mapping']}: {len(p['overrides'])} case override(s) of roster {p['roster']!r} "
              "(they take precedence over codes and rules)"]
     for o in p["overrides"]:
-        moved = f"{o['from']} -> {o['to']}" if o["applied"] else f"-> {o['to']} ({o['not_applied']})"
+        moved = (f"{o['counted_as']} -> {o['category']}" if o["applied"]
+                 else f"-> {o['category']} ({o['not_applied']})")
         lines.append(f"  {o['position']}. {o['record']}: {moved}; \"{o['note']}\" ({o['author']}, "
                      f"{o['created_at'][:10]})")
     return "\n".join(lines)

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import pandas as pd
-from sqlalchemy import ColumnElement, Select, and_, func, literal, or_, select
+from sqlalchemy import ColumnElement, Select, and_, case, func, literal, or_, select
 
 from app.store.cells import version_of
 from app.store.engine import Gateway
@@ -65,6 +65,9 @@ class DepartureFilter:
     q: str | None = None
     #: the roster version to list (default: the newest)
     version: int | None = None
+    #: (departure id, category) of the mapping version's case overrides in this roster version: they take
+    #: precedence over the code's category (app/analysis/overrides.py)
+    overrides: tuple[tuple[int, str], ...] = ()
 
     def __post_init__(self) -> None:
         if self.category is not None and self.category not in CATEGORY_FILTERS:
@@ -109,6 +112,12 @@ class DepartureQueries(Gateway):
             category = func.coalesce(entry.c.category, UNMAPPED)
             source = departures.outerjoin(
                 entry, and_(entry.c.code == departures.c.reason, entry.c.version_id == version_id))
+            by_category: dict[str, list[int]] = {}
+            for departure_id, cat in flt.overrides:
+                by_category.setdefault(cat, []).append(int(departure_id))
+            if by_category:
+                category = case(*((departures.c.id.in_(ids), literal(cat)) for cat, ids in sorted(by_category.items())),
+                                else_=category)
         d = departures.c
         conditions: list[ColumnElement[bool]] = [d.roster_id == roster_id,
                                                  d.version == version_of(roster_id, flt.version)]
@@ -135,7 +144,7 @@ class DepartureQueries(Gateway):
             texts = (d.firm_id, d.firm_name, d.sector, d.executive, d.reason, d.notes)
             conditions.append(or_(*(func.lower(c).contains(needle, autoescape=True) for c in texts)))
         columns = [d[f] for f in LISTED_FIELDS if f != "category"]
-        return select(*columns, category.label("category")).select_from(source).where(*conditions)
+        return select(*columns, category.label("category"), d.id.label("id")).select_from(source).where(*conditions)
 
     def count_departures(self, roster_id: int, flt: DepartureFilter) -> int:
         inner = self._departure_select(roster_id, flt).subquery()

@@ -20,6 +20,7 @@ from app.web import (
     briefing,
     coverage,
     departures,
+    overrides,
     reason_rules,
     reasons,
     resampling,
@@ -111,7 +112,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
     for module in (auth, accounts, rosters, roster_upload, roster_versions, reasons, reason_rules, coverage,
-                   departures, trend, resampling, sectors, briefing, universe):
+                   departures, overrides, trend, resampling, sectors, briefing, universe):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)
