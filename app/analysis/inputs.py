@@ -125,6 +125,17 @@ def parse_mapping_ref(ref: str) -> tuple[str, int | None]:
     return ref, None
 
 
+def current_mapping(store: Store, roster: Roster, mapping: str | None = None) -> MappingVersion:
+    """The mapping version overrides of ``roster`` are added to: ``mapping`` (NAME or NAME:VERSION) or the
+    roster's chosen mapping, newest version."""
+    name = mapping or store.settings(roster.id).mapping_name
+    if not name:
+        raise StoreError(f"Roster {roster.name!r} has no reason-code mapping yet; choose one on the Reason codes "
+                         "page before overriding a record.")
+    ref, version = parse_mapping_ref(name)
+    return store.get_mapping(ref, version)
+
+
 def load_input(
     store: Store,
     roster_ref: int | str,

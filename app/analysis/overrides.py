@@ -216,19 +216,6 @@ def overrides_to_list(resolved: Sequence[ResolvedOverride], mapping: MappingVers
     return out
 
 
-def current_mapping(store: Store, roster: Roster, mapping: str | None = None) -> MappingVersion:
-    """The mapping version overrides of ``roster`` are added to: ``mapping`` (NAME or NAME:VERSION) or the
-    roster's chosen mapping, newest version."""
-    from app.analysis.inputs import parse_mapping_ref  # inputs imports this module
-
-    name = mapping or store.settings(roster.id).mapping_name
-    if not name:
-        raise StoreError(f"Roster {roster.name!r} has no reason-code mapping yet; choose one on the Reason codes "
-                         "page (or name one with --mapping) before overriding a record.")
-    ref, version = parse_mapping_ref(name)
-    return store.get_mapping(ref, version)
-
-
 def departure_at_line(store: Store, roster: Roster, line: int) -> int:
     """The id of the departure on source line ``line`` of the roster's current version."""
     records = store.departures(roster.id, version=roster.version)

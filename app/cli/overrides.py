@@ -32,6 +32,7 @@ def _listed(p: dict[str, Any]) -> str:
 def register(sub: Any, common: Callable[..., None], store_of: StoreOf, emit: Emit) -> None:
     """Add ``override add``, ``override list`` and ``override remove`` to the command line's subparsers."""
     from app.analysis import overrides as ov
+    from app.analysis.inputs import current_mapping
 
     def payload(store: Any, roster: Any, mapping: Any) -> dict[str, Any]:
         resolved = ov.resolve_overrides(store, roster, mapping)
@@ -43,7 +44,7 @@ def register(sub: Any, common: Callable[..., None], store_of: StoreOf, emit: Emi
             raise CommandError("Name the record with --line N (its line in the roster file) or --id N, not both.")
         store = store_of(args)
         roster = store.get_roster(args.roster)
-        mapping = ov.current_mapping(store, roster, args.mapping)
+        mapping = current_mapping(store, roster, args.mapping)
         record = args.id if args.id is not None else ov.departure_at_line(store, roster, args.line)
         saved = ov.add_override(store, roster, mapping, record, args.category, args.note,
                                 author=args.author or getpass.getuser())
@@ -53,13 +54,13 @@ def register(sub: Any, common: Callable[..., None], store_of: StoreOf, emit: Emi
     def listing(args: argparse.Namespace) -> int:
         store = store_of(args)
         roster = store.get_roster(args.roster)
-        emit(args, payload(store, roster, ov.current_mapping(store, roster, args.mapping)), _listed)
+        emit(args, payload(store, roster, current_mapping(store, roster, args.mapping)), _listed)
         return 0
 
     def remove(args: argparse.Namespace) -> int:
         store = store_of(args)
         roster = store.get_roster(args.roster)
-        saved = ov.remove_override(store, ov.current_mapping(store, roster, args.mapping), args.number,
+        saved = ov.remove_override(store, current_mapping(store, roster, args.mapping), args.number,
                                    author=getpass.getuser(), roster=roster)
         emit(args, payload(store, roster, saved), _listed)
         return 0

@@ -15,9 +15,9 @@ from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse, RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
 
+from app.analysis.inputs import current_mapping
 from app.analysis.overrides import (
     add_override,
-    current_mapping,
     overrides_to_list,
     remove_override,
     resolve_overrides,
