@@ -187,7 +187,8 @@ RobustnessOut = define(Robustness, extra="allow")
 
 __all__ = ["BootstrapResultOut", "BootstrapRunOut", "CoverageYear", "CurvatureOut", "ErrorBody",
            "FittedYear", "GLOSSARY", "HealthBody", "HeterogeneityOut", "Interval", "IntervalRow", "MODELS",
-           "MappingDiffOut", "MappingVersionOut", "OverrideMark", "OverrideOut", "ObservedYear", "OddsRow", "Percent", "QuasiTrendOut",
+           "MappingDiffOut", "MappingVersionOut", "ObservedYear", "OddsRow", "OverrideMark", "OverrideOut",
+           "Percent", "QuasiTrendOut",
            "QuasiTrendSummary", "RejectedRowOut", "RobustnessOut", "RosterImportBody", "RosterOut",
            "RunOut", "SectorCount", "SectorTrendOut", "SectorTrendsOut", "TrendFitOut", "TrendFitSummary",
            "ValidationErrorBody", "ValidationIssue", "VariantOut", "WindowSuggestionOut", "YearFlagOut",
