@@ -120,17 +120,21 @@ def apply_overrides(frame: pd.DataFrame, resolved: Sequence[ResolvedOverride]) -
     columns = [(i, c) for i, c in enumerate(CELL_KEY) if c in frame]
     counts = frame["departures"].to_numpy(dtype=np.int64).copy()
     categories = frame["category"].to_numpy(dtype=object)
+    # one pass over the frame to index its rows by key (missing values as None), then a look-up per override:
+    # a mask per override would cost overrides x cells (benchmarks/README.md)
+    # (only the rows of the overrides' years: the year is part of every key)
+    near = np.flatnonzero(frame["year"].isin({m.key[1] for m in moves if m.key is not None}).to_numpy())
+    part = frame.iloc[near]
+    plain = [part[c].astype(object).where(part[c].notna(), None).tolist() for _, c in columns]
+    rows_of: dict[tuple[Any, ...], list[int]] = {}
+    for row, key in zip(near.tolist(), zip(*plain, strict=True), strict=True):
+        rows_of.setdefault(key, []).append(row)
     taken: list[int] = []
     moved_to: list[str] = []
     for move in moves:
         assert move.key is not None
-        hit = counts > 0
-        for i, c in columns:
-            value, col = move.key[i], frame[c]
-            same = col.isna() if value is None else (col == value)
-            hit &= np.asarray(pd.Series(same).fillna(False), dtype=bool)
-        rows = np.flatnonzero(hit)
-        if not len(rows) or categories[rows[0]] == move.override.category:
+        rows = [r for r in rows_of.get(tuple(move.key[i] for i, _ in columns), ()) if counts[r] > 0]
+        if not rows or categories[rows[0]] == move.override.category:
             continue  # already counted as the override says (or outside this frame)
         counts[rows[0]] -= 1
         taken.append(int(rows[0]))
