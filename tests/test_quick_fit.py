@@ -136,6 +136,30 @@ def test_quick_path_stands_aside(shared_demo_db: Path, tmp_path: Path) -> None:
     assert open_quick(url) is None
 
 
+def test_quick_path_stands_aside_for_case_overrides(shared_demo_db: Path, tmp_path: Path) -> None:
+    """A case override moves one departure between categories, which only the ordinary path applies: with one
+    on the mapping version, a fit recorded by the ordinary path is not printed again by the quick path (its
+    plain cells would give other counts)."""
+    from app.analysis.overrides import add_override
+
+    db = copy_database(shared_demo_db, tmp_path / "demo.db")
+    url = f"sqlite:///{db}"
+    store = Store(url)
+    inp = load_input(store, DEMO)
+    assert inp.mapping is not None
+    voluntary = inp.counts.loc[inp.counts["category"] == "voluntary"]
+    record = store.departures(inp.roster.id)
+    departure_id = int(record.loc[record["reason"].isin(voluntary["code"]) & record["year"].between(*inp.window),
+                                  "id"].iloc[0])
+    add_override(store, inp.roster, inp.mapping, departure_id, "forced", "board statement of 3 May")
+    overridden = fit_summary(store, load_input(store, DEMO), reuse=False)
+    plain = fit_summary(store, load_input(store, DEMO, mapping=f"{inp.mapping.name}:{inp.mapping.version}"),
+                        reuse=False)
+    assert overridden["forced"] == plain["forced"] + 1  # counted by hand: one voluntary departure now forced
+    assert quick_summary(url, DEMO) is None
+    store.dispose()
+
+
 def test_head_revision_and_limits_agree_with_the_store() -> None:
     assert head_revision() == HEAD_REVISION
     assert QUICK_MAX_ID == MAX_ID

@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from app.analysis.cellstore import categorise, detail_counts, in_window, memoised
+from app.analysis.cellstore import detail_counts, in_window, memoised
 from app.analysis.inputs import AnalysisInput
 from app.analysis.runs import _record_run
 from app.stats.adjusted import (
@@ -40,7 +40,7 @@ def adjusted_cells(inp: AnalysisInput, adjust: tuple[str, ...]) -> AdjustedCells
     """Forced and voluntary departures of the window, collapsed to the adjusted model's cells (memoised)."""
     def compute() -> AdjustedCells:
         firms = inp.store.firm_cell_counts(inp.roster.id, inp.roster.version, detail=True)
-        frame = categorise(firms, inp.mapping)[0]
+        frame = inp.categorised(firms)
         frame = in_window(frame, inp.window)
         frame = frame.loc[frame["category"].isin(["forced", "voluntary"])]
         return collapse(frame, adjust)
@@ -137,7 +137,7 @@ def _shares(table: pd.DataFrame) -> list[dict[str, Any]]:
 def mix_section(inp: AnalysisInput) -> MixSection:
     """The diagnostic on Trend: from the per-roster detailed cells (no firm counts, no records)."""
     def compute() -> tuple[MixSection, list[MixShift]]:
-        frame = categorise(detail_counts(inp.store, inp.roster), inp.mapping)[0]
+        frame = inp.categorised(detail_counts(inp.store, inp.roster))
         frame = in_window(frame, inp.window)
         frame = frame.loc[frame["category"].isin(["forced", "voluntary"])]
         tables = {name: mix_by_year(frame, name) for name in ("age", "tenure")}

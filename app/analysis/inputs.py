@@ -22,6 +22,7 @@ from app.analysis.cellstore import (
     roster_fingerprint,
     unmapped_codes,
 )
+from app.analysis.overrides import ResolvedOverride, apply_overrides, not_applied, resolve_overrides
 from app.analysis.quick_fit import parse_mapping_ref, warning_notes
 from app.stats.cells import Cells
 from app.stats.coverage import WindowSuggestion, YearFlag, flag_years, suggest_window
@@ -63,8 +64,18 @@ class AnalysisInput:
     def records(self) -> pd.DataFrame:
         """Every accepted departure with its ``category`` (a full read of the roster: jobs and exports only)."""
         records = self.store.departures(self.roster.id, version=self.roster.version)
-        records["category"] = categorise(records, self.mapping)[0]["category"].to_numpy()
+        records["category"] = self.categorised(records)["category"].to_numpy()
         return records
+
+    @cached_property
+    def overrides(self) -> tuple[ResolvedOverride, ...]:
+        """The mapping version's case overrides of this roster, located in this roster version."""
+        return resolve_overrides(self.store, self.roster, self.mapping)
+
+    def categorised(self, frame: pd.DataFrame) -> pd.DataFrame:
+        """``frame`` (cells or records of this roster version) with each row's ``category``: its code's, then
+        the mapping's rules, then the case overrides (which take precedence)."""
+        return apply_overrides(categorise(frame, self.mapping)[0], self.overrides)
 
     def in_window(self) -> pd.DataFrame:
         """The records inside the window (reads the whole roster; pages use ``counts`` instead)."""
@@ -84,7 +95,7 @@ class AnalysisInput:
         """The group counts and the firm x cell matrix (reads the firm counts: for bootstrap jobs)."""
         rules = self.mapping is not None and bool(self.mapping.rules)
         firms = self.store.firm_cell_counts(self.roster.id, self.roster.version, detail=rules)
-        return cells_from_counts(categorise(firms, self.mapping)[0], self.window, by_sector=by_sector)
+        return cells_from_counts(self.categorised(firms), self.window, by_sector=by_sector)
 
     def counts_nothing(self) -> bool:
         """True when the mapping counts no departure as forced or voluntary (every code excluded)."""
@@ -92,8 +103,25 @@ class AnalysisInput:
 
     def warnings(self) -> list[str]:
         unmapped = self.unmapped_codes()
-        return warning_notes(self.mapping is not None and self.counts_nothing(),
-                             [(str(c), int(n)) for c, n in zip(unmapped["code"], unmapped["count"], strict=True)])
+        notes = warning_notes(self.mapping is not None and self.counts_nothing(),
+                              [(str(c), int(n)) for c, n in zip(unmapped["code"], unmapped["count"], strict=True)])
+        if missing := not_applied(self.overrides):
+            notes.append(f"{len(missing)} case override(s) of this mapping name departures that version "
+                         f"{self.roster.version} of the roster does not hold, so they are not applied: "
+                         + "; ".join(r.override.describe() for r in missing[:5])
+                         + ("; \u2026" if len(missing) > 5 else "") + ".")
+        return notes
+
+
+def current_mapping(store: Store, roster: Roster, mapping: str | None = None) -> MappingVersion:
+    """The mapping version overrides of ``roster`` are added to: ``mapping`` (NAME or NAME:VERSION) or the
+    roster's chosen mapping, newest version."""
+    name = mapping or store.settings(roster.id).mapping_name
+    if not name:
+        raise StoreError(f"Roster {roster.name!r} has no reason-code mapping yet; choose one on the Reason codes "
+                         "page before overriding a record.")
+    ref, version = parse_mapping_ref(name)
+    return store.get_mapping(ref, version)
 
 
 def load_input(
@@ -126,6 +154,10 @@ def load_input(
             "the Reason codes page or run `helmshift mapping import`."
         )
     counts = categorised_counts(store, roster, version)
+    if resolved := resolve_overrides(store, roster, version):
+        plain = counts
+        counts = memoised(store, ("overridden", roster.id, roster_fingerprint(roster), mapping_key(version)),
+                          lambda: apply_overrides(plain, resolved))
     if counts.empty:
         raise StoreError(f"Roster {roster.name!r} has no accepted departures.")
     key = ("coverage", roster.id, roster_fingerprint(roster), mapping_key(version), threshold)

@@ -10,6 +10,7 @@ from datetime import UTC, datetime
 
 from app import __version__
 from app.analysis.inputs import AnalysisInput
+from app.analysis.overrides import override_line
 from app.store import Roster, Universe
 from app.types import CATEGORIES
 
@@ -20,6 +21,9 @@ CAUTIONS: tuple[str, ...] = (
     "Years with few departures give wide intervals.",
     "Rosters hold personal data about named people: keep these files local.",
 )
+
+#: overrides listed one by one in an export's methods section (the rest are counted)
+OVERRIDES_LISTED = 5
 
 MODEL_LABELS = {
     "linear": "binomial GLM, logit(forced share) linear in fiscal year",
@@ -68,6 +72,10 @@ class Provenance:
     adjustment: tuple[str, ...] | None = None
     #: sha256 of the brief pack (the zip of every quoted run's replication pack); empty: none made
     brief_pack: str = ""
+    #: the mapping version's case overrides of this roster, one line each (record, from -> to, note, author)
+    overrides: tuple[str, ...] = ()
+    #: how many of them are listed one by one (the rest are counted; a one-page brief may list fewer)
+    overrides_listed: int = OVERRIDES_LISTED
 
     def _created(self) -> str:
         return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
@@ -88,6 +96,7 @@ class Provenance:
             f"Roster: {self.roster} (data fingerprint {self.roster_fingerprint})",
             f"Mapping: {self.mapping_name}, version {self.mapping_version}"
             + (f"; classification rules, first match wins: {'; '.join(self.rules)}" if self.rules else ""),
+            *self._override_lines(),
             f"Window: fiscal years {self.window[0]}\u2013{self.window[1]}",
             *([f"Rows used: {self.rows_used}"] if self.rows_used else []),
             *([f"Universe: {self.universe}"] if self.universe else []),
@@ -105,6 +114,17 @@ class Provenance:
         out.append(f"Made with Helmshift {self.tool_version} on {self._created()}")
         return out
 
+    def _override_lines(self) -> list[str]:
+        """One line: how many departures the analyst classified case by case, and the first few of them."""
+        if not self.overrides:
+            return []
+        n, listed = len(self.overrides), max(0, self.overrides_listed)
+        shown = "; ".join(self.overrides[:listed])
+        if n > listed:
+            shown += (f"; \u2026 and {n - listed:,} more" if listed else f"{n:,}") + " listed on the Reason codes page"
+        return [f"Case overrides: {n} departure{'s' if n > 1 else ''} counted as the analyst set, over codes and "
+                f"rules: {shown}"]
+
     def text(self) -> str:
         return "\n".join(self.lines())
 
@@ -113,7 +133,9 @@ class Provenance:
         parts = [
             f"Source: roster {self.roster} [{self.roster_fingerprint[:12]}]",
             f"mapping {self.mapping_name} v{self.mapping_version}"
-            + (f" with {len(self.rules)} rule{'s' if len(self.rules) > 1 else ''}" if self.rules else ""),
+            + (f" with {len(self.rules)} rule{'s' if len(self.rules) > 1 else ''}" if self.rules else "")
+            + (f", {len(self.overrides)} case override{'s' if len(self.overrides) > 1 else ''}"
+               if self.overrides else ""),
             f"FY{self.window[0]}\u2013{self.window[1]}",
             *([f"universe [{self.universe_fingerprint[:12]}]"
                + (" derived from the roster (approximation)" if self.universe_approximate else "")]
@@ -155,4 +177,5 @@ def provenance_for(inp: AnalysisInput, *, model: str = "linear", interval_method
         universe_fingerprint=universe.fingerprint if universe is not None else "",
         universe_approximate=universe.approximate if universe is not None else False,
         adjustment=tuple(adjust) if adjust is not None else None,
+        overrides=tuple(override_line(r) for r in inp.overrides),
     )

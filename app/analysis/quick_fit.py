@@ -129,7 +129,8 @@ def _summary(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None
         mapping = reader.mapping(*parse_mapping_ref(mapping_ref))
     else:
         mapping = reader.mapping(chosen_mapping) if chosen_mapping else None
-    if mapping is None or mapping.has_rules:  # refused, or rules need the detailed cells: the ordinary path
+    # refused, or rules need the detailed cells, or case overrides move single departures: the ordinary path
+    if mapping is None or mapping.has_rules or mapping.has_overrides:
         return None
     cells = reader.cells(roster.id, roster.version)
     if not cells:

@@ -24,6 +24,7 @@ from app import __version__
 from app.analysis.inputs import AnalysisInput, input_for_run
 from app.analysis.mapping_files import export_mapping_csv
 from app.analysis.measure_packs import adjusted_departures, measure_kind, measure_members
+from app.analysis.overrides import overrides_to_list
 from app.analysis.run_params import cells_for, statistic_for
 from app.intake.spreadsheet_safety import safe_csv
 from app.stats.bootstrap import BLOCK_SIZE, MC_RESAMPLES, jackknife_statistic
@@ -52,6 +53,10 @@ FILE_NOTES = {
     "universe.csv": "rate runs: every firm-year (firm_id, year) of the universe the rate divides by (the model "
                     "uses those inside the window)",
     "mapping.csv": "the exact mapping version: reason code, category, label",
+    "overrides.csv": "the mapping version's case overrides of this roster: the departure (firm id, fiscal year, "
+                     "reason code, roster line; the executive only with the records), the category its code and "
+                     "rules give it and the one the analyst set, the note, author and date, and whether it "
+                     "applied to this roster version; cells.csv already counts them",
     "params.json": "model, statistic and its options, window and its centre, unit, stratification, B, seed, "
                    "block size, alpha, roster and mapping fingerprints, library versions",
     "replicates.csv": "one row per resample in order: index, the statistic (log odds ratio and odds ratio, or "
@@ -206,6 +211,13 @@ def _records(inp: AnalysisInput) -> str:
     return safe_csv(frame[list(RECORD_COLUMNS)].itertuples(index=False), list(RECORD_COLUMNS))
 
 
+def _overrides(inp: AnalysisInput, records: bool) -> str:
+    """overrides.csv: executives are named only in a pack that holds the records (personal data)."""
+    header = ["position", "firm_id", *(["executive"] if records else []), "year", "reason", "occurrence", "line",
+              "counted_as", "category", "note", "author", "created_at", "applied", "not_applied"]
+    return _csv(overrides_to_list(inp.overrides, inp.mapping), header)
+
+
 def _libraries() -> dict[str, str]:
     import scipy
     import statsmodels
@@ -224,7 +236,8 @@ def run_params(run: Run, inp: AnalysisInput, n_groups: int, mapping_sha256: str 
         "roster": {"id": inp.roster.id, "name": inp.roster.name, "file_sha256": inp.roster.sha256,
                    "accepted": inp.roster.accepted},
         "mapping": None if inp.mapping is None else {"name": inp.mapping.name, "version": inp.mapping.version,
-                                                     "csv_sha256": mapping_sha256},
+                                                     "csv_sha256": mapping_sha256,
+                                                     "case_overrides": len(inp.overrides)},
         "groups": n_groups, "libraries": _libraries(),
     }
     if run.kind == "fit":
@@ -283,6 +296,8 @@ def build_pack(store: Store, run_id: int, *, records: bool = False) -> Replicati
     if inp.mapping is not None:
         members["mapping.csv"] = export_mapping_csv(store, name=inp.mapping.name, version=inp.mapping.version)
         mapping_sha = hashlib.sha256(members["mapping.csv"].encode()).hexdigest()
+    if inp.overrides:
+        members["overrides.csv"] = _overrides(inp, records)
     members["params.json"] = json.dumps(run_params(run, inp, n_groups, mapping_sha) | extra, indent=1,
                                         sort_keys=True) + "\n"
     if run.kind == "bootstrap":

@@ -2,7 +2,9 @@
 
 Variants: the roster's mapping (the reference), any other saved mapping versions the analyst names,
 one chosen code moved to each other category, every ambiguous code treated as excluded, the reading without
-the mapping version's classification rules (when it has any) and, on request, with the academic preset.
+the mapping version's classification rules (when it has any), the reading without its case overrides (when it
+has any; every other reading of the roster's mapping keeps them, and another saved mapping brings its own) and,
+on request, with the academic preset.
 Each variant is fitted on the same window; the differences from the reference are spelled out.
 
 A reading must not mislead: other mappings are offered by default only when they give a category to every
@@ -22,6 +24,7 @@ import pandas as pd
 
 from app.analysis.cellstore import categorise_with, cells_from_counts, detail_counts, memoised
 from app.analysis.inputs import AnalysisInput, parse_mapping_ref
+from app.analysis.overrides import ResolvedOverride, apply_overrides, resolve_overrides
 from app.analysis.rules import PRESET_NAME, PRESET_SOURCE, preset_rules, with_preset
 from app.intake.reasons import diff_mappings, suggest_categories
 from app.stats.trend import TrendError, TrendFit, fit_trend
@@ -120,21 +123,23 @@ def _bootstrap_interval(store: Store, inp: AnalysisInput, name: str, version: in
 def _fit_variant(inp: AnalysisInput, categories: Mapping[str, str], label: str, kind: str,
                  changes: tuple[str, ...], boot: tuple[tuple[float, float] | None, str],
                  rules: tuple[ClassificationRule, ...] = (), *,
-                 counted: Mapping[str, int] | None = None, ref: str | None = None) -> Variant:
+                 counted: Mapping[str, int] | None = None, ref: str | None = None,
+                 overrides: tuple[ResolvedOverride, ...] = ()) -> Variant:
     def fit_variant() -> tuple[int, int, TrendFit | str]:
         if rules:  # rules read the age/tenure/interim key of the cells
             counts = categorise_with(detail_counts(inp.store, inp.roster), categories, rules)[0]
-            cells = cells_from_counts(counts, inp.window)
-        else:
-            cells = cells_from_counts(inp.counts, inp.window, categories=categories)
+        else:  # read afresh through ``categories``: the input's own case overrides are not carried along
+            counts = categorise_with(inp.counts, categories, ())[0]
+        # case overrides last: they take precedence over codes and rules (app.analysis.overrides)
+        cells = cells_from_counts(apply_overrides(counts, overrides), inp.window)
         try:
             return int(cells.totals.sum()), int(cells.forced.sum()), fit_trend(cells, "linear")
         except TrendError as exc:
             return int(cells.totals.sum()), int(cells.forced.sum()), str(exc)
 
     # the same reading of the codes on the same counts and window gives the same fit: memoised
-    departures, forced, fit = memoised(inp.store, ("variant", *inp.key, tuple(sorted(categories.items())), rules),
-                                       fit_variant)
+    departures, forced, fit = memoised(inp.store, ("variant", *inp.key, tuple(sorted(categories.items())), rules,
+                                                   overrides), fit_variant)
     unmapped = sum(_unmapped(counted or {}, categories).values())
     if isinstance(fit, str):
         return Variant(label, kind, changes, departures, forced, None, None, None, None, boot[1], fit, unmapped, ref)
@@ -168,6 +173,7 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
         raise ValueError("Robustness needs a reference mapping; choose one on the Reason codes page.")
     base: dict[str, str] = dict(inp.mapping.categories)
     rules = inp.mapping.rules
+    mine = inp.overrides  # every reading of this mapping keeps its case overrides, but the one without them
     roster_codes = set(inp.counts["reason"].astype(str))
     counted = counted_codes(inp, base)
     left_out: list[tuple[str, str]] = []
@@ -175,17 +181,23 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
         extra_mappings, left_out = offered_mappings(store, inp)
     variants = [_fit_variant(inp, base, inp.mapping_label, "reference", ("the roster's mapping",),
                              _bootstrap_interval(store, inp, inp.mapping.name, inp.mapping.version), rules,
-                             ref=f"{inp.mapping.name}:{inp.mapping.version}")]
+                             ref=f"{inp.mapping.name}:{inp.mapping.version}", overrides=mine)]
     no_boot = (None, "not bootstrapped (a generated variant)")
     if rules:
         variants.append(_fit_variant(inp, base, "without rules (codes alone)", "rules-off",
-                                     tuple(f"dropped rule: {r.describe()}" for r in rules), no_boot))
+                                     tuple(f"dropped rule: {r.describe()}" for r in rules), no_boot,
+                                     overrides=mine))
+    if applied := tuple(r for r in mine if r.applied):
+        variants.append(_fit_variant(inp, base, "without case overrides", "overrides-off",
+                                     tuple(f"dropped override: {r.override.describe()} "
+                                           f"({r.counted_as} \u2192 {r.override.category})" for r in applied),
+                                     no_boot, rules))
     if preset:
         added = with_preset(rules, preset_rules(inp.mapping, roster_codes))
         if added != rules:
             variants.append(_fit_variant(inp, base, f"with the preset: {PRESET_NAME}", "rules-preset",
                                          tuple(f"added rule: {r.describe()} ({PRESET_SOURCE})"
-                                               for r in added[len(rules):]), no_boot, added))
+                                               for r in added[len(rules):]), no_boot, added, overrides=mine))
     for ref in extra_mappings or []:
         name, version = parse_mapping_ref(ref)
         other = store.get_mapping(name, version)
@@ -195,7 +207,8 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
                                      _describe(base, dict(other.categories), roster_codes)
                                      + tuple(f"rule: {r.describe()}" for r in other.rules if r not in rules),
                                      _bootstrap_interval(store, inp, other.name, other.version), other.rules,
-                                     counted=counted, ref=f"{other.name}:{other.version}"))
+                                     counted=counted, ref=f"{other.name}:{other.version}",
+                                     overrides=resolve_overrides(store, inp.roster, other)))
     for code in vary or []:
         if code not in roster_codes:
             raise ValueError(f"Reason code {code!r} does not occur in roster {inp.roster.name!r}.")
@@ -205,14 +218,14 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
                 continue
             moved = base | {code: target}
             variants.append(_fit_variant(inp, moved, f"{code} as {target}", "moved",
-                                         (f"{code}: {current} → {target}",), no_boot, rules))
+                                         (f"{code}: {current} → {target}",), no_boot, rules, overrides=mine))
     if ambiguous_excluded:
         ambiguous = sorted(c for c, s in suggest_categories(sorted(roster_codes)).items() if s.ambiguous)
         changed = {c: "excluded" for c in ambiguous if base.get(c) != "excluded"}
         if changed:
             variants.append(_fit_variant(inp, base | changed, "ambiguous codes excluded", "ambiguous-excluded",
                                          tuple(f"{c}: {base.get(c, 'unmapped')} → excluded" for c in changed),
-                                         no_boot, rules))
+                                         no_boot, rules, overrides=mine))
     return replace(_verdict(inp, _merge_identical(variants)), left_out=tuple(left_out))
 
 

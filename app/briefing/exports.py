@@ -179,7 +179,17 @@ def data_sentence(inp: AnalysisInput, departures: int, forced: int) -> str:
     return (f"Rows used and rejected: {r.accepted:,} of {r.rows_total:,} rows of {r.source_name} were accepted "
             f"and {r.rejected:,} rejected" + (f" ({r.duplicates:,} duplicates)" if r.duplicates else "")
             + f". In {lo}\u2013{hi}, {departures:,} departures are counted ({forced:,} forced); "
-            f"{excluded:,} with excluded codes and {unmapped:,} with unmapped codes are not counted.")
+            f"{excluded:,} with excluded codes and {unmapped:,} with unmapped codes are not counted."
+            + _overrides_sentence(inp))
+
+
+def _overrides_sentence(inp: AnalysisInput) -> str:
+    applied = sum(r.applied for r in inp.overrides)
+    missing = len(inp.overrides) - applied
+    if not inp.overrides:
+        return ""
+    return (f" Mapping overrides: {applied:,} set case by case (see the provenance below)"
+            + (f"; {missing:,} not applied (record not in this roster version)" if missing else "") + ".")
 
 
 def brief_file(store: Store, inp: AnalysisInput, charts: Sequence[str] | None = None, *,
@@ -246,11 +256,20 @@ def brief_and_pack(store: Store, inp: AnalysisInput, charts: Sequence[str] | Non
     sign = signature_for(store, inp, signature)
     captions = [sign.takeaway(f.name, f.takeaway) for f in findings]
     figures = [untitled(f.figure) if f.name == "trend" else f.figure for f in findings]
-    brief = build_brief(headline=headline_sentence(fit), charts=figures,
-                        table=pd.DataFrame(rows), method_text=method, provenance=provenance, signature=sign,
-                        captions=captions, data_text=data_sentence(inp, fit.departures, fit.forced),
-                        spare_page=any(f.name in ("rates", "adjusted") for f in findings))
-    return brief, pack
+    # the footer lists the case overrides one by one; when they push the brief past its pages, fewer are
+    # listed (the rest counted, all of them on the Reason codes page and in the replication pack)
+    for listed in sorted({provenance.overrides_listed, min(2, provenance.overrides_listed), 0}, reverse=True):
+        try:
+            brief = build_brief(headline=headline_sentence(fit), charts=figures, table=pd.DataFrame(rows),
+                                method_text=method, provenance=replace(provenance, overrides_listed=listed),
+                                signature=sign, captions=captions,
+                                data_text=data_sentence(inp, fit.departures, fit.forced),
+                                spare_page=any(f.name in ("rates", "adjusted") for f in findings))
+            return brief, pack
+        except ValueError:
+            if listed == 0 or not provenance.overrides:
+                raise
+    raise AssertionError("unreachable")  # the loop returns or raises
 
 
 def _measure_method(finding: ChartFinding) -> str:

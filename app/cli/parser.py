@@ -241,6 +241,7 @@ def build_parser() -> argparse.ArgumentParser:
     common(p, json_flag=False)
     p.set_defaults(func=cmd_export)
 
+    from app.cli.overrides import register as register_overrides
     from app.cli.profiles import register as register_profiles
     from app.cli.roster import register as register_roster
     from app.cli.team import register
@@ -248,6 +249,7 @@ def build_parser() -> argparse.ArgumentParser:
     register(sub, common, _store, _emit)
     register_roster(sub, common, _store, _emit)
     register_profiles(sub, common, _store, _emit)
+    register_overrides(sub, common, _store, _emit)
     return parser
 
 

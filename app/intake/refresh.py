@@ -104,6 +104,12 @@ def _keyed(frame: pd.DataFrame) -> pd.DataFrame:
 KEYS = ["_firm", "_exec", "_year", "_code", "_n"]
 
 
+def identity_keys(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` (with ``line``, ``firm_id``, ``executive``, ``year``, ``reason``) sorted by line, with the
+    identity columns of :data:`KEYS`: what case overrides name a departure by (app/analysis/overrides.py)."""
+    return _keyed(frame)
+
+
 def _differs(a: pd.Series, b: pd.Series) -> np.ndarray:
     """Element-wise "not the same value", treating two missing values as equal."""
     if pd.api.types.is_numeric_dtype(a) and pd.api.types.is_numeric_dtype(b):

@@ -23,7 +23,9 @@ if TYPE_CHECKING:
     from app.store.profiles import IntakeProfile
     from app.store.records import (
         MAX_ID,
+        OVERRIDE_NOTE_MAX,
         BriefingSettings,
+        CaseOverride,
         MappingVersion,
         RejectedRow,
         Roster,
@@ -37,8 +39,8 @@ if TYPE_CHECKING:
     from app.store.tables import DEPARTURE_FIELDS, HEAD_REVISION, departures, metadata
 
 __all__ = [
-    "Account", "AuditEvent", "BriefingSettings", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION",
-    "INTERRUPTED", "IntakeProfile", "MAX_ID", "MappingConflict", "MappingVersion", "RejectedRow", "Roster",
+    "Account", "AuditEvent", "BriefingSettings", "CaseOverride", "DEPARTURE_FIELDS", "DepartureFilter", "HEAD_REVISION",
+    "INTERRUPTED", "IntakeProfile", "MAX_ID", "MappingConflict", "MappingVersion", "OVERRIDE_NOTE_MAX", "RejectedRow", "Roster",
     "RosterSettings", "Run", "RunClaimLost", "Store", "StoreError", "Universe", "departures", "metadata", "now_iso",
 ]
 
@@ -48,7 +50,7 @@ __all__ = [
 _HOMES = {
     "Account": "accounts", "AuditEvent": "audit", "DepartureFilter": "departure_query", "Store": "gateway",
     "MappingConflict": "mappings", "IntakeProfile": "profiles", "INTERRUPTED": "runs", "RunClaimLost": "runs",
-    **dict.fromkeys(("MAX_ID", "BriefingSettings", "MappingVersion", "RejectedRow", "Roster", "RosterSettings",
+    **dict.fromkeys(("MAX_ID", "OVERRIDE_NOTE_MAX", "BriefingSettings", "CaseOverride", "MappingVersion", "RejectedRow", "Roster", "RosterSettings",
                      "Run", "StoreError", "Universe", "now_iso"), "records"),
     **dict.fromkeys(("DEPARTURE_FIELDS", "HEAD_REVISION", "departures", "metadata"), "tables"),
 }

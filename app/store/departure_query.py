@@ -7,11 +7,12 @@ database (one LEFT JOIN on ``mapping_entries`` gives each departure its category
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Collection, Iterator
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import ColumnElement, Select, and_, func, literal, or_, select
+import pandas as pd
+from sqlalchemy import ColumnElement, Select, and_, case, func, literal, or_, select
 
 from app.store.cells import version_of
 from app.store.engine import Gateway
@@ -40,6 +41,11 @@ LISTED_FIELDS: tuple[str, ...] = (
 
 MAX_PER_PAGE = 500
 
+#: what case overrides read of a departure: its identity and its cell key
+IDENTITY_FIELDS: tuple[str, ...] = (
+    "line", "firm_id", "executive", "year", "sector", "reason", "age", "tenure", "interim",
+)
+
 
 @dataclass(frozen=True)
 class DepartureFilter:
@@ -59,6 +65,9 @@ class DepartureFilter:
     q: str | None = None
     #: the roster version to list (default: the newest)
     version: int | None = None
+    #: (departure id, category) of the mapping version's case overrides in this roster version: they take
+    #: precedence over the code's category (app/analysis/overrides.py)
+    overrides: tuple[tuple[int, str], ...] = ()
 
     def __post_init__(self) -> None:
         if self.category is not None and self.category not in CATEGORY_FILTERS:
@@ -103,6 +112,12 @@ class DepartureQueries(Gateway):
             category = func.coalesce(entry.c.category, UNMAPPED)
             source = departures.outerjoin(
                 entry, and_(entry.c.code == departures.c.reason, entry.c.version_id == version_id))
+            by_category: dict[str, list[int]] = {}
+            for departure_id, cat in flt.overrides:
+                by_category.setdefault(cat, []).append(int(departure_id))
+            if by_category:
+                category = case(*((departures.c.id.in_(ids), literal(cat)) for cat, ids in sorted(by_category.items())),
+                                else_=category)
         d = departures.c
         conditions: list[ColumnElement[bool]] = [d.roster_id == roster_id,
                                                  d.version == version_of(roster_id, flt.version)]
@@ -129,7 +144,7 @@ class DepartureQueries(Gateway):
             texts = (d.firm_id, d.firm_name, d.sector, d.executive, d.reason, d.notes)
             conditions.append(or_(*(func.lower(c).contains(needle, autoescape=True) for c in texts)))
         columns = [d[f] for f in LISTED_FIELDS if f != "category"]
-        return select(*columns, category.label("category")).select_from(source).where(*conditions)
+        return select(*columns, category.label("category"), d.id.label("id")).select_from(source).where(*conditions)
 
     def count_departures(self, roster_id: int, flt: DepartureFilter) -> int:
         inner = self._departure_select(roster_id, flt).subquery()
@@ -167,6 +182,37 @@ class DepartureQueries(Gateway):
             result = conn.execution_options(yield_per=batch).execute(stmt)
             for row in result:
                 yield dict(row._mapping)
+
+    def departures_in_years(self, roster_id: int, years: Collection[int], version: int | None = None
+                            ) -> pd.DataFrame:
+        """The departures of a roster version (default: the newest) in the given fiscal years, with their ids,
+        in line order: where case overrides look for the records they name (a few years, not the roster)."""
+        d = departures.c
+        cols = [d.id, *(d[f] for f in IDENTITY_FIELDS)]
+        years = sorted({int(y) for y in years if 0 <= int(y) <= 9999})
+        with self.engine.connect() as conn:
+            rows = conn.execute(select(*cols).where(
+                d.roster_id == roster_id, d.version == version_of(roster_id, version), d.year.in_(years))
+                .order_by(d.line, d.id)).fetchall() if years else []
+        frame = pd.DataFrame.from_records([tuple(r) for r in rows], columns=["id", *IDENTITY_FIELDS])
+        frame["year"] = frame["year"].astype("int64")
+        for c in ("age", "tenure"):
+            frame[c] = pd.to_numeric(frame[c], errors="coerce").astype("float64")
+        return frame
+
+    def get_departure(self, roster_id: int, departure_id: int, version: int | None = None) -> dict[str, Any]:
+        """One departure of a roster version (default: the newest) by id; ``StoreError`` when it is not one."""
+        d = departures.c
+        row = None
+        if 0 < departure_id <= MAX_ID:
+            with self.engine.connect() as conn:
+                row = conn.execute(select(d.id, *(d[f] for f in IDENTITY_FIELDS)).where(
+                    d.id == departure_id, d.roster_id == roster_id,
+                    d.version == version_of(roster_id, version))).first()
+        if row is None:
+            raise StoreError(f"Departure {departure_id} is not a record of the current version of roster "
+                             f"{roster_id}.")
+        return dict(row._mapping)
 
     def departure_facets(self, roster_id: int, version: int | None = None) -> dict[str, list[Any]]:
         """The distinct years, sectors and reason codes of a roster version (default: the newest), for the

@@ -18,12 +18,15 @@ from app.store.audit import LOCAL_ACTOR, current_actor, record_event
 from app.store.engine import Gateway
 from app.store.records import (
     MAX_ID,
+    OVERRIDE_NOTE_MAX,
+    CaseOverride,
     MappingVersion,
     StoreError,
     now_iso,
 )
 from app.store.tables import (
     mapping_entries,
+    mapping_overrides,
     mapping_rules,
     mapping_versions,
     mappings,
@@ -71,14 +74,20 @@ class MappingQueries(Gateway):
         note: str = "",
         rules: Sequence[ClassificationRule] = (),
         based_on: int | None = None,
+        overrides: Sequence[CaseOverride] | None = None,
     ) -> MappingVersion:
         """Save ``categories`` (code -> category) and its classification ``rules`` (in evaluation order) as the
         next version of mapping ``name``. With ``based_on`` (the version the edit started from; 0 for a mapping
         that did not exist yet) the save is refused with :class:`MappingConflict` when a newer version was saved
-        meanwhile: two analysts saving at once get two versions or a conflict, never a silently lost edit."""
-        bad = sorted({c for c in [*categories.values(), *(r.category for r in rules)] if c not in CATEGORIES})
+        meanwhile: two analysts saving at once get two versions or a conflict, never a silently lost edit.
+
+        ``overrides`` (case-level, :class:`CaseOverride`) are the new version's; ``None`` carries the newest
+        version's overrides forward, so an edit of codes or rules never drops an analyst's override."""
+        bad = sorted({c for c in [*categories.values(), *(r.category for r in rules),
+                                  *(o.category for o in overrides or ())] if c not in CATEGORIES})
         if bad:
             raise StoreError(f"Unknown categories {bad}; allowed: {', '.join(CATEGORIES)}.")
+        check_overrides(overrides or ())
         labels = labels or {}
         if current_actor() != LOCAL_ACTOR:
             author = current_actor()  # in team mode the signed-in account is the author, not a typed name
@@ -108,8 +117,16 @@ class MappingQueries(Gateway):
                      "comparison": r.comparison, "value": int(r.value), "category": r.category}
                     for i, r in enumerate(rules, start=1)
                 ])
+            if overrides is None and last:
+                overrides = _read_overrides(conn, _version_id(conn, mapping_id, int(last)))
+            if overrides:
+                conn.execute(insert(mapping_overrides), [
+                    {"version_id": version_id, "position": i, **_override_row(o)}
+                    for i, o in enumerate(overrides, start=1)
+                ])
             record_event(conn, "mapping_version", f"mapping:{name}:{version}",
-                         {"codes": len(categories), "rules": len(rules), "note": note})
+                         {"codes": len(categories), "rules": len(rules), "overrides": len(overrides or ()),
+                          "note": note})
         return self.get_mapping(name, version)
 
     def list_mappings(self) -> list[tuple[str, int]]:
@@ -153,10 +170,46 @@ class MappingQueries(Gateway):
             rules = conn.execute(
                 select(mapping_rules).where(mapping_rules.c.version_id == row.id).order_by(mapping_rules.c.position)
             ).fetchall()
+            overrides = _read_overrides(conn, int(row.id))
         return MappingVersion(
+            overrides=overrides,
             name=name, version=int(row.version), created_at=row.created_at, author=row.author,
             note=row.note, categories={e.code: e.category for e in entries},
             labels={e.code: e.label for e in entries if e.label},
             rules=tuple(ClassificationRule(r.code, r.field, r.comparison, int(r.value), r.category)
                         for r in rules),
         )
+
+
+# -- case-level overrides (issue 15) --------------------------------------------------------------------
+_OVERRIDE_FIELDS = ("roster_id", "firm_id", "executive", "year", "reason", "occurrence", "departure_id",
+                    "roster_version", "category", "note", "author", "created_at")
+
+
+def check_overrides(overrides: Sequence[CaseOverride]) -> None:
+    """Refuse overrides without a note, with an over-long note, or two naming the same departure."""
+    seen: set[tuple[Any, ...]] = set()
+    for o in overrides:
+        if not o.note.strip():
+            raise StoreError(f"The override of {o.describe()} needs a note saying why (e.g. the source).")
+        if len(o.note) > OVERRIDE_NOTE_MAX:
+            raise StoreError(f"The note of the override of {o.describe()} has {len(o.note):,} characters; "
+                             f"at most {OVERRIDE_NOTE_MAX} are kept.")
+        if o.identity() in seen:
+            raise StoreError(f"Two overrides name the same departure ({o.describe()}); keep one.")
+        seen.add(o.identity())
+
+
+def _override_row(o: CaseOverride) -> dict[str, Any]:
+    return {f: getattr(o, f) for f in _OVERRIDE_FIELDS}
+
+
+def _version_id(conn: Connection, mapping_id: int, version: int) -> int:
+    return int(conn.execute(select(mapping_versions.c.id).where(
+        mapping_versions.c.mapping_id == mapping_id, mapping_versions.c.version == version)).scalar_one())
+
+
+def _read_overrides(conn: Connection, version_id: int) -> tuple[CaseOverride, ...]:
+    rows = conn.execute(select(mapping_overrides).where(mapping_overrides.c.version_id == version_id)
+                        .order_by(mapping_overrides.c.position)).fetchall()
+    return tuple(CaseOverride(**{f: getattr(r, f) for f in _OVERRIDE_FIELDS}) for r in rows)

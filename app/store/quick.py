@@ -49,6 +49,8 @@ class QuickMapping:
     version: int
     categories: dict[str, str]
     has_rules: bool
+    #: case overrides move single departures between categories: only the ordinary path applies them
+    has_overrides: bool = False
 
 
 class QuickReader:
@@ -96,7 +98,8 @@ class QuickReader:
         entries = self._rows("SELECT code, category FROM mapping_entries WHERE version_id = ? ORDER BY code",
                              version_id)
         rules = self._rows("SELECT count(*) FROM mapping_rules WHERE version_id = ?", version_id)[0][0]
-        return QuickMapping(name, int(number), {str(c): str(k) for c, k in entries}, bool(rules))
+        overrides = self._rows("SELECT count(*) FROM mapping_overrides WHERE version_id = ?", version_id)[0][0]
+        return QuickMapping(name, int(number), {str(c): str(k) for c, k in entries}, bool(rules), bool(overrides))
 
     def cells(self, roster_id: int, version: int) -> list[tuple[int, str | None, str, int]]:
         """``Store.cell_counts``: departures per (year, sector, reason) of one roster version."""

@@ -64,6 +64,50 @@ class MappingVersion:
     labels: dict[str, str]
     #: classification rules pinned to this version, in evaluation order (first match wins)
     rules: tuple[ClassificationRule, ...] = ()
+    #: case-level overrides pinned to this version (they take precedence over codes and rules)
+    overrides: tuple[CaseOverride, ...] = ()
+
+
+#: the longest note an override may carry (it is quoted in exports' methods sections)
+OVERRIDE_NOTE_MAX = 500
+
+
+@dataclass(frozen=True)
+class CaseOverride:
+    """One departure of one roster counted as ``category`` by a mapping version, whatever its code and the
+    rules say, with the analyst's ``note`` (required: why, e.g. "board statement of 3 May").
+
+    The departure is named by the identity that survives roster refreshes (app/intake/refresh.py): firm id,
+    executive and fiscal year, or firm id, fiscal year and reason code where the executive is not given, and
+    ``occurrence`` (the n-th such record in source-line order, from 0); ``departure_id`` and
+    ``roster_version`` say which stored record it was set on.
+    """
+
+    roster_id: int
+    firm_id: str
+    executive: str | None
+    year: int
+    reason: str
+    category: Category
+    note: str
+    author: str
+    created_at: str
+    occurrence: int = 0
+    departure_id: int | None = None
+    roster_version: int | None = None
+
+    def identity(self) -> tuple[int, str, str, int, str, int]:
+        """What makes two overrides name the same departure (the refresh identity, normalised)."""
+        executive = " ".join((self.executive or "").split()).casefold()
+        reason = "" if executive else " ".join(self.reason.split()).casefold()
+        return (self.roster_id, " ".join(self.firm_id.split()), executive, int(self.year), reason,
+                int(self.occurrence))
+
+    def describe(self) -> str:
+        """The record in words: "firm F001, A. Person, FY2012"."""
+        who = f", {self.executive}" if self.executive else f", code {self.reason!r}"
+        nth = f" (record {self.occurrence + 1} of that kind)" if self.occurrence else ""
+        return f"firm {self.firm_id}{who}, FY{self.year}{nth}"
 
 
 @dataclass(frozen=True)

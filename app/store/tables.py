@@ -25,7 +25,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0013"
+HEAD_REVISION = "0014"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -146,6 +146,31 @@ mapping_rules = Table(
     Column("comparison", String, nullable=False),
     Column("value", Integer, nullable=False),
     Column("category", String, nullable=False),
+    UniqueConstraint("version_id", "position"),
+)
+
+# Case-level overrides of a mapping version (issue 15): one departure of one roster counted as ``category``
+# whatever its code and the rules say. A saved version never changes: adding or removing an override saves the
+# next version with the same codes, labels and rules. No foreign key to rosters: like runs, a version stays
+# readable after its roster is deleted. The departure is named by its refresh identity (app/intake/refresh.py)
+# so the override follows it into the roster's next version; ``departure_id`` is the record it was set on.
+mapping_overrides = Table(
+    "mapping_overrides", metadata,
+    Column("version_id", Integer, ForeignKey("mapping_versions.id", ondelete="CASCADE"), nullable=False,
+           index=True),
+    Column("position", Integer, nullable=False),
+    Column("roster_id", Integer, nullable=False),
+    Column("firm_id", String, nullable=False),
+    Column("executive", String),
+    Column("year", Integer, nullable=False),
+    Column("reason", String, nullable=False),
+    Column("occurrence", Integer, nullable=False, server_default="0"),
+    Column("departure_id", Integer),
+    Column("roster_version", Integer),
+    Column("category", String, nullable=False),
+    Column("note", Text, nullable=False),
+    Column("author", String, nullable=False),
+    Column("created_at", String, nullable=False),
     UniqueConstraint("version_id", "position"),
 )
 

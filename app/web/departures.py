@@ -7,7 +7,7 @@ import io
 import json
 import math
 from collections.abc import Iterable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 from urllib.parse import urlencode
 
@@ -15,6 +15,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 
 from app.analysis.inputs import parse_mapping_ref
+from app.analysis.overrides import resolve_overrides
 from app.intake.spreadsheet_safety import safe_csv
 from app.store import MAX_ID, DepartureFilter, MappingVersion, Roster, Store, StoreError
 from app.store.departure_query import CATEGORY_FILTERS, LISTED_FIELDS, MAX_PER_PAGE, SORT_KEYS
@@ -61,6 +62,12 @@ class DeparturesPage:
     reasons: list[str]
     categories: tuple[str, ...] = CATEGORY_FILTERS
     query: str = ""
+    #: the mapping version counted with, when it is its mapping's newest: a record's category can then be set
+    #: for it ("set category for this mapping" saves the next version); None: no override form
+    override_mapping: str | None = None
+    override_version: int | None = None
+    #: the mapping version's case overrides of this roster that name no record of its current version
+    overrides_not_applied: list[str] = field(default_factory=list)
 
 
 DeparturesBody = define(DeparturesPage, "DeparturesBody", fields={
@@ -76,6 +83,9 @@ class _Request:
     flt: DepartureFilter
     filters: dict[str, Any]
     sort: str
+    version: MappingVersion | None = None
+    marks: dict[int, dict[str, Any]] = field(default_factory=dict)
+    missing: list[str] = field(default_factory=list)
 
 
 def _int_param(request: Request, name: str, what: str, *, low: int = 0, high: int = MAX_ID) -> int | None:
@@ -104,6 +114,7 @@ def _read(store: Store, request: Request, roster_id: int) -> _Request:
             filters[param] = values[fieldname] = text
     ref = request.query_params.get("mapping", "").strip() or store.settings(roster.id).mapping_name
     mapping: tuple[str, int] | None = None
+    version: MappingVersion | None = None
     if ref:
         name, number = parse_mapping_ref(ref)
         try:
@@ -116,12 +127,19 @@ def _read(store: Store, request: Request, roster_id: int) -> _Request:
     if sort.lstrip("-") not in SORT_KEYS:
         raise BadRequest(f"sort must be one of {', '.join(SORT_KEYS)} (a leading '-' sorts descending); "
                          f"got {sort!r}.")
+    # case overrides count a record as the analyst set it, over its code: the list shows the same category
+    resolved = resolve_overrides(store, roster, version)
+    marks = {r.departure_id: {"position": r.position, "category": r.override.category, "note": r.override.note,
+                              "author": r.override.author, "created_at": r.override.created_at}
+             for r in resolved if r.departure_id is not None}
     try:
-        flt = DepartureFilter(mapping=mapping, **values)
+        flt = DepartureFilter(mapping=mapping, overrides=tuple((i, str(m["category"])) for i, m in marks.items()),
+                              **values)
     except StoreError as exc:
         raise BadRequest(str(exc)) from exc
     label = f"{mapping[0]} v{mapping[1]}" if mapping else "no mapping"
-    return _Request(roster, label, flt, filters, sort)
+    missing = [f"{r.override.describe()} ({r.override.category})" for r in resolved if not r.applied]
+    return _Request(roster, label, flt, filters, sort, version, marks, missing)
 
 
 def departures_data(store: Store, request: Request, roster_id: int) -> DeparturesPage:
@@ -138,11 +156,20 @@ def departures_data(store: Store, request: Request, roster_id: int) -> Departure
         raise BadRequest(f"page {page} is past the last page ({pages}) of {found.total} departure(s).")
     facets = store.departure_facets(asked.roster.id)
     params = {**asked.filters, **({"sort": asked.sort} if asked.sort != "line" else {})}
+    rows = [{**row, "override": asked.marks.get(row["id"])} for row in found.rows]
+    newest = asked.version is not None and asked.version.version == _newest(store, asked.version.name)
     return DeparturesPage(
         roster=asked.roster, mapping_label=asked.mapping_label, filters=asked.filters, sort=asked.sort,
-        page=page, per_page=per_page, pages=pages, total=found.total, departures=found.rows,
+        page=page, per_page=per_page, pages=pages, total=found.total, departures=rows,
         years=facets["years"], sectors=facets["sectors"], reasons=facets["reasons"], query=urlencode(params),
+        override_mapping=asked.version.name if newest and asked.version else None,
+        override_version=asked.version.version if newest and asked.version else None,
+        overrides_not_applied=asked.missing,
     )
+
+
+def _newest(store: Store, name: str) -> int:
+    return dict(store.list_mappings()).get(name, 0)
 
 
 _QUERY = query(

@@ -12,6 +12,7 @@ from starlette.concurrency import run_in_threadpool
 from app.analysis.cellstore import code_counts, memoised, roster_fingerprint, window_code_counts
 from app.analysis.inputs import load_input
 from app.analysis.mapping_files import export_mapping_csv, import_mapping_file
+from app.analysis.overrides import overrides_to_list, resolve_overrides
 from app.intake.codes import code_key
 from app.intake.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
 from app.store import MAX_ID, MappingConflict, MappingVersion, Roster, Store, StoreError
@@ -83,6 +84,8 @@ class ReasonsPage:
     preset: list[str] = field(default_factory=list)
     preset_name: str = ""
     preset_source: str = ""
+    #: the mapping version's case overrides of this roster (app.analysis.overrides.overrides_to_list)
+    overrides: list[dict[str, Any]] = field(default_factory=list)
 
 
 ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
@@ -149,6 +152,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
         unmapped_departures=sum(r.count for r in unmapped), using_suggestion=mapping is None,
         compare=compare if diff else None, diff=diff, message=message, error=error,
         **rules_view(store, roster, mapping, [r.code for r in rows]),
+        overrides=overrides_to_list(resolve_overrides(store, roster, mapping), mapping),
     )
 
 

@@ -193,7 +193,8 @@ RobustnessOut = define(Robustness, extra="allow")
 
 __all__ = ["BootstrapResultOut", "BootstrapRunOut", "CoverageYear", "CurvatureOut", "ErrorBody",
            "FittedYear", "GLOSSARY", "HealthBody", "HeterogeneityOut", "Interval", "IntervalRow", "MODELS",
-           "MappingDiffOut", "MappingVersionOut", "ObservedYear", "OddsRow", "Percent", "QuasiTrendOut",
+           "MappingDiffOut", "MappingVersionOut", "ObservedYear", "OddsRow", "OverrideMark", "OverrideOut",
+           "Percent", "QuasiTrendOut",
            "QuasiTrendSummary", "RejectedRowOut", "RobustnessOut", "RosterImportBody", "RosterOut",
            "RunOut", "SectorCount", "SectorTrendOut", "SectorTrendsOut", "TrendFitOut", "TrendFitSummary",
            "ValidationErrorBody", "ValidationIssue", "VariantOut", "WindowSuggestionOut", "YearFlagOut",
@@ -203,8 +204,42 @@ __all__ = ["BootstrapResultOut", "BootstrapRunOut", "CoverageYear", "CurvatureOu
 # -- a run's replicates and jackknife values, as data for other tools (built as dicts, not dataclasses) ---------
 
 
+class OverrideMark(_Exact):
+    """A case override on a listed departure: what the mapping version counts it as, and why."""
+
+    position: int = Field(description="the override's number in the mapping version (what a removal names)")
+    category: Literal["forced", "voluntary", "excluded"]
+    note: str
+    author: str
+    created_at: str
+
+
+class OverrideOut(_Exact):
+    """One case override of a roster in a mapping version (rows built by app.analysis.overrides)."""
+
+    position: int = Field(description="number in the mapping version's list, from 1")
+    record: str = Field(description="the departure in words: firm, executive (or code), fiscal year")
+    firm_id: str
+    executive: str | None
+    year: int
+    reason: str
+    counted_as: str | None = Field(description="the category its code and the rules give it (None: not applied)")
+    category: Literal["forced", "voluntary", "excluded"] = Field(description="what the override counts it as")
+    note: str
+    author: str
+    created_at: str
+    departure_id: int | None = Field(description="the record in the roster's current version (None: not applied)")
+    line: int | None
+    applied: bool
+    not_applied: str = Field(description="why the override names no record of this roster version ('' if applied)")
+    mapping: str | None
+
+
 class DepartureOut(_Exact):
     """One departure in the record browser (rows are built from a SQL query, not a dataclass)."""
+
+    id: int = Field(description="the record's id in this roster version (what an override is set on)")
+    override: OverrideMark | None = Field(default=None, description="the case override counting this record, if any")
 
     line: int = Field(description="line of the departure in the imported file")
     year: int
