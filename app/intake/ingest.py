@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from datetime import date
 from typing import Any
 
+from app.intake.announced import KeptWithWarning
 from app.intake.codes import CodeGroup
 from app.intake.dates import date_rule, fiscal_rule
 from app.intake.rawtable import DEFAULT_LIMITS, RawTable, ReadLimits, RosterFileError, looks_like_data
@@ -122,6 +123,8 @@ class Review:
     messages: tuple[str, ...]
     #: the file's header names (what an intake profile recognises a source by)
     headers: tuple[str, ...] = ()
+    #: accepted rows that lost a field (an announcement date unreadable or after the exit), with their lines
+    kept_with_warnings: tuple[KeptWithWarning, ...] = ()
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -139,6 +142,8 @@ class Review:
             "role_guesses": {r: {"column": g.header, "confidence": g.confidence, "why": g.why}
                              for r, g in self.guesses.items()},
             "date_rule": self.date_rule, "fiscal_year_end": self.fy_end, "messages": list(self.messages),
+            "kept_with_warnings": [{"reason": w.reason, "count": w.count, "lines": list(w.lines)}
+                                   for w in self.kept_with_warnings],
         }
 
 
@@ -304,6 +309,7 @@ def _review(p: _Prepared, date_order: DateOrder, fy_end: int) -> Review:
         roles=p.roles, guesses=p.guesses,
         date_rule=date_rule(label, fy_end) if "date" in p.roles else fiscal_rule(fy_end),
         fy_end=fy_end, messages=tuple(t.messages + p.notes + c.messages), headers=tuple(t.headers),
+        kept_with_warnings=tuple(c.kept_with_warnings),
     )
 
 

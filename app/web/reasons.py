@@ -83,6 +83,14 @@ class ReasonsPage:
     preset: list[str] = field(default_factory=list)
     preset_name: str = ""
     preset_source: str = ""
+    #: the fields the rules table offers (notice_days only for a roster with announcement dates)
+    rule_fields: tuple[str, ...] = ("age", "tenure", "interim")
+    #: why notice_days is not offered ("" when it is)
+    notice_note: str = ""
+    #: the notice preset's rules when this version does not hold them yet (empty: not on offer)
+    notice_preset: list[str] = field(default_factory=list)
+    notice_preset_name: str = ""
+    notice_preset_source: str = ""
 
 
 ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
