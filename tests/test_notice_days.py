@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import random
+import sqlite3
 from datetime import date, datetime, timedelta
 from pathlib import Path
 from typing import Any
@@ -276,3 +277,37 @@ def test_review_step_lists_the_kept_rows_with_their_lines() -> None:
     listed = review.as_dict()["kept_with_warnings"]
     assert {w["reason"]: (w["count"], w["lines"]) for w in listed} == {
         UNREADABLE: (1, [7]), AFTER_EXIT: (1, [6]), COARSE: (1, [8])}
+
+
+def test_a_refresh_that_changes_an_announcement_reports_it(store: Store) -> None:
+    first = imported(store)
+    rows = [r if r[0] != "A2" else (*r[:4], "2019-05-01", "%Y-%m-%d", r[6]) for r in ROWS]
+    second = import_roster(store, roster_csv(rows), "dated-2.csv", into=first.roster.id)
+    assert (second.version, second.added, second.removed, second.changed) == (2, 0, 0, 1)
+    records = store.departures(first.roster.id)
+    assert int(records.loc[records["firm_id"] == "A2", "notice_days"].iloc[0]) == (
+        date(2019, 6, 30) - date(2019, 5, 1)).days
+    # version 1 keeps its own notice (a run on it reopens on its rows)
+    old = store.departures(first.roster.id, version=1)
+    assert int(old.loc[old["firm_id"] == "A2", "notice_days"].iloc[0]) == hand_notice(ROWS[1])
+
+
+@pytest.mark.sqlite_only
+def test_a_roster_stored_before_revision_0014_reads_null_notice(tmp_path: Path) -> None:
+    path = tmp_path / "old.db"
+    con = sqlite3.connect(path)
+    con.executescript((Path(__file__).parent / "data" / "store-0.1.sql").read_text(encoding="utf-8"))
+    con.close()
+    store = Store(f"sqlite:///{path}")
+    try:
+        roster = store.get_roster("Legacy roster")
+        assert store.departures(roster.id)["notice_days"].isna().all()
+        cells = store.cell_counts(roster.id, detail=True)
+        assert len(cells) and cells["notice_days"].isna().all()
+        rule = make_rule("Retired", "notice_days", "below", 183, "forced")
+        mapping = store.save_mapping_version("legacy-map", store.get_mapping("legacy-map").categories, rules=(rule,))
+        [effect] = rules_to_list(store, roster, mapping)
+        retired = int((store.departures(roster.id)["reason"] == "Retired").sum())
+        assert (effect["matched"], effect["missing"]) == (0, retired) and retired > 0
+    finally:
+        store.dispose()

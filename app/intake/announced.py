@@ -26,6 +26,10 @@ import pandas as pd
 
 from app.intake.dates import parse_dates
 
+#: how the confirm page and the dry run state the rule
+NOTICE_RULE = ("Announcement dates are read the same way; notice days (exit minus announcement) are counted where "
+               "both are whole days. A row whose announcement cannot be read, or comes after the exit, is kept "
+               "without notice days and listed below.")
 UNREADABLE = "announcement date unreadable (kept without notice days)"
 AFTER_EXIT = "announcement date after the exit date (kept without notice days)"
 COARSE = "no notice days: the exit or announcement date is not a whole day"

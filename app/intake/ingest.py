@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 from datetime import date
 from typing import Any
 
-from app.intake.announced import KeptWithWarning
+from app.intake.announced import NOTICE_RULE, KeptWithWarning
 from app.intake.codes import CodeGroup
 from app.intake.dates import date_rule, fiscal_rule
 from app.intake.rawtable import DEFAULT_LIMITS, RawTable, ReadLimits, RosterFileError, looks_like_data
@@ -307,7 +307,8 @@ def _review(p: _Prepared, date_order: DateOrder, fy_end: int) -> Review:
         blank_rows=t.blank_rows, footer_lines=tuple(t.footer_lines), skipped_above=tuple(t.skipped_above),
         rejected_groups=tuple(groups), code_groups=tuple(c.code_groups), fixes=tuple(_fixes(p, groups, date_order)),
         roles=p.roles, guesses=p.guesses,
-        date_rule=date_rule(label, fy_end) if "date" in p.roles else fiscal_rule(fy_end),
+        date_rule=(date_rule(label, fy_end) if "date" in p.roles else fiscal_rule(fy_end)) + (
+            " " + NOTICE_RULE if "announced" in p.roles else ""),
         fy_end=fy_end, messages=tuple(t.messages + p.notes + c.messages), headers=tuple(t.headers),
         kept_with_warnings=tuple(c.kept_with_warnings),
     )
