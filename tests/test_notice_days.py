@@ -125,8 +125,15 @@ def test_cli_column_announced_and_the_dry_run(tmp_path: Path, capsys: pytest.Cap
     # lines are 1-based lines of the file (the header is line 1): rows A6, A5 and A7 are the 7th, 6th, 8th lines
     assert kept == {UNREADABLE: [7], AFTER_EXIT: [6], COARSE: [8]}
     assert main(["import", str(path), "--db", str(tmp_path / "cli.db"), "--json",
-                 "--column", "announced=Board Date"]) == 0
+                 "--column", "announced=Board Date", "--save-profile", "board desk"]) == 0
     assert json.loads(capsys.readouterr().out)["accepted"] == len(ROWS)
+    # the intake profile keeps the choice: next week's file from the same desk reads it without the flag
+    path.write_bytes(roster_csv(ROWS[:6], header="Ticker,Exit Reason,Exit Date,Board Date,Age"))
+    assert main(["import", str(path), "--dry-run", "--json", "--db", str(tmp_path / "cli.db"),
+                 "--profile", "board desk"]) == 0
+    again = json.loads(capsys.readouterr().out)
+    assert again["profile"] == "board desk" and again["role_guesses"]["announced"] == {
+        "column": "Board Date", "confidence": "high", "why": "chosen by you"}
 
 
 # -- dates and the stored notice ------------------------------------------------------------------------------
