@@ -14,7 +14,8 @@ since it is a valid departure whatever its notice, and dropping it would move ev
   "announcement date after the exit date";
 - notice days only where both dates are whole days: a month-and-year or bare-year date on either side gives
   no notice days (a month's uncertainty is up to 30 days, too coarse for a threshold such as 183 days), and
-  such rows are counted too. An announcement on the exit day gives 0.
+  such rows are counted too (as are announcements of rows with no exit date: still in post, or a year
+  column only). An announcement on the exit day gives 0.
 """
 
 from __future__ import annotations
@@ -32,7 +33,7 @@ NOTICE_RULE = ("Announcement dates are read the same way; notice days (exit minu
                "without notice days and listed below.")
 UNREADABLE = "announcement date unreadable (kept without notice days)"
 AFTER_EXIT = "announcement date after the exit date (kept without notice days)"
-COARSE = "no notice days: the exit or announcement date is not a whole day"
+COARSE = "no notice days: the exit or announcement date is only a month or a year, or there is no exit date"
 
 
 @dataclass(frozen=True)

@@ -282,8 +282,8 @@ def check_rows(
         "year": fiscal, "date": iso, "reason": shown, "reason_raw": raw_reason,
         "executive": text("executive"), "age": num["age"], "tenure": num["tenure"], "interim": interim,
         "notes": text("notes"),
-        "announced": notice.iso if notice else np.full(n, None, dtype=object),
-        "notice_days": notice.notice_days if notice else np.full(n, np.nan),
+        "announced": notice.iso if notice is not None else np.full(n, None, dtype=object),
+        "notice_days": notice.notice_days if notice is not None else np.full(n, np.nan),
         "raw": np.array(raw, dtype=object),
     })[keep].reset_index(drop=True)
     records["year"] = records["year"].astype("int64")
