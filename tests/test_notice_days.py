@@ -318,3 +318,13 @@ def test_a_roster_stored_before_revision_0014_reads_null_notice(tmp_path: Path) 
         assert (effect["matched"], effect["missing"]) == (0, retired) and retired > 0
     finally:
         store.dispose()
+
+
+def test_the_confirm_page_review_shows_the_kept_rows(store: Store) -> None:
+    client = make_client(store)
+    preview = client.post("/rosters/upload", files={"file": ("dated.csv", roster_csv(ROWS), "text/csv")})
+    page = preview.context["page"]
+    assert page.roles["announced"] == "Date Announced"
+    form = {"token": page.token, "name": page.name} | {f"role_{r}": h for r, h in page.roles.items() if h}
+    html = client.post("/rosters/review", data=form).text
+    assert "Kept, with a field left empty" in html and UNREADABLE in html and "Announcement dates are read" in html
