@@ -12,7 +12,7 @@ UNMAPPED = "unmapped"
 
 Role = Literal[
     "firm_id", "firm_name", "sector", "year", "date", "reason",
-    "executive", "age", "tenure", "interim", "notes",
+    "executive", "age", "tenure", "interim", "notes", "announced",
 ]
 ROLES: tuple[Role, ...] = get_args(Role)
 REQUIRED_ROLES: tuple[Role, ...] = ("firm_id", "reason")
@@ -49,7 +49,8 @@ class ClassificationRule:
 
     Age and tenure compare in completed years (``below 60``: younger than 60; ``at_least 65``: 65 or older),
     so a rule reads the same whether applied to a record or to the cell store's whole-year keys; interim
-    compares with ``equals`` 1 (interim) or 0. Rules of a mapping version are evaluated in order and the
+    compares with ``equals`` 1 (interim) or 0; ``notice_days`` (exit date minus announcement date, whole days,
+    only where the roster has announcement dates) with ``below`` or ``at_least``. Rules of a mapping version are evaluated in order and the
     first that matches decides; a departure without the field is not matched by the rule (and is counted).
     """
 
@@ -64,5 +65,7 @@ class ClassificationRule:
         if self.field == "interim":
             subject = "interim" if self.value else "not interim"
             return f"{self.code!r} counts as {self.category} when {subject}"
-        unit = " years" if self.field in ("age", "tenure") else " days"
-        return f"{self.code!r} counts as {self.category} when {self.field} is {words} {self.value}{unit}"
+        if self.field == "notice_days":
+            return (f"{self.code!r} counts as {self.category} when announced {words} {self.value} days before "
+                    "the exit")
+        return f"{self.code!r} counts as {self.category} when {self.field} is {words} {self.value} years"

@@ -31,15 +31,19 @@ def test_make_rule_checks_every_part() -> None:
     assert make_rule("Retired", "Age", "at least", "65", "excluded") == ClassificationRule(
         "Retired", "age", "at_least", 65, "excluded")
     assert make_rule("X", "interim", "equals", "yes", "excluded").value == 1
-    with pytest.raises(RuleError, match="announcement date"):
-        make_rule("Retired", "notice_days", "below", 180, "forced")
+    assert make_rule("Retired", "notice_days", "below", "183", "forced") == ClassificationRule(
+        "Retired", "notice_days", "below", 183, "forced")
+    with pytest.raises(RuleError, match="notice_days compares with below or at_least"):
+        make_rule("Retired", "notice_days", "equals", 0, "forced")
+    with pytest.raises(RuleError, match="whole days"):
+        make_rule("Retired", "notice_days", "below", "182.5", "forced")
     with pytest.raises(RuleError, match="age compares with below or at_least"):
         make_rule("Retired", "age", "equals", 60, "forced")
     with pytest.raises(RuleError, match="whole number"):
         make_rule("Retired", "age", "below", "59.5", "forced")
     with pytest.raises(RuleError, match="category must be one of"):
         make_rule("Retired", "age", "below", 60, "sacked")
-    with pytest.raises(RuleError, match="field must be one of age, tenure, interim"):
+    with pytest.raises(RuleError, match="field must be one of age, tenure, interim, notice_days"):
         make_rule("Retired", "salary", "below", 60, "forced")
 
 

@@ -77,9 +77,10 @@ def test_rules_csv_download_and_import(client: Any, demo_store: Store) -> None:
     got = client.get(f"/mapping-rules/demo standard.csv?version={version}")
     assert got.status_code == 200 and got.text == csv_text
     bad = client.post(f"/rosters/{ROSTER}/rules/import",
-                      files={"file": ("bad.csv", b"code,field,comparison,value,category\nRetired,notice_days,below,90,forced\n")},
+                      files={"file": ("bad.csv", b"code,field,comparison,value,category\nRetired,notice_days,equals,90,forced\n")},
                       follow_redirects=False)
-    assert bad.status_code == 400 and "announcement date" in bad.text and "Nothing was saved" in bad.text
+    assert bad.status_code == 400 and "notice_days compares with below or at_least" in bad.text
+    assert "Nothing was saved" in bad.text
     assert demo_store.get_mapping("demo standard").version == version
     assert client.get("/mapping-rules/no such mapping.csv").status_code == 404
 

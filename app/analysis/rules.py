@@ -36,6 +36,41 @@ def preset_rules(mapping: MappingVersion | None, codes: Iterable[str]) -> tuple[
                  for code in retirement_codes(mapping, codes))
 
 
+#: the second preset, for rosters with announcement dates: the convention's notice test as far as single-field
+#: rules, first match wins, can state it
+NOTICE_PRESET_NAME = "retirement below 60 counts as forced unless announced at least six months ahead"
+NOTICE_DAYS = 183  # about six months (365.25 / 2, rounded up)
+NOTICE_PRESET_SOURCE = (
+    "the academic convention (Parrino 1997, Journal of Financial Economics 46): a retirement before 60 counts as "
+    "forced unless it was announced at least about six months ahead. Two rules per retirement code, in this "
+    f"order: announced at least {NOTICE_DAYS} days ahead keeps the code's category; otherwise below 60 counts "
+    "as forced. A retirement below 60 with no usable announcement date therefore counts as forced, as in the "
+    "convention (only a long notice shows a planned retirement); one with no age keeps its category. Not "
+    "captured: the press reading behind each code, departures with no stated reason, and reclassifying an "
+    "executive who takes a comparable post elsewhere; these stay with the codes and the mapping")
+
+
+def notice_preset_rules(mapping: MappingVersion | None, codes: Iterable[str]) -> tuple[ClassificationRule, ...]:
+    """The notice preset for these codes. "Below 60 and announced less than 183 days ahead" is a conjunction;
+    with first-match-wins single-field rules it is written as a guard (a long notice keeps the code's own
+    category, or voluntary for a code without one) followed by the age rule, which only the rest reaches."""
+    categories = mapping.categories if mapping else {}
+    out: list[ClassificationRule] = []
+    for code in retirement_codes(mapping, codes):
+        keep = categories.get(code)
+        out.append(ClassificationRule(code, "notice_days", "at_least", NOTICE_DAYS,
+                                      keep if keep in ("forced", "voluntary", "excluded") else "voluntary"))
+        out.append(ClassificationRule(code, "age", "below", PRESET_AGE, "forced"))
+    return tuple(out)
+
+
+def with_notice_preset(rules: Sequence[ClassificationRule],
+                       preset: Sequence[ClassificationRule]) -> tuple[ClassificationRule, ...]:
+    """``rules`` without the preset's own rules, then the preset: its guard must come before its age rule, so
+    an age rule already present (the plain preset) moves after the guard."""
+    return tuple(r for r in rules if r not in preset) + tuple(preset)
+
+
 def with_preset(rules: Sequence[ClassificationRule],
                 preset: Sequence[ClassificationRule]) -> tuple[ClassificationRule, ...]:
     """``rules`` followed by the preset rules not already among them (earlier rules keep precedence)."""

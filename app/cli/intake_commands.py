@@ -117,6 +117,8 @@ def cmd_import(args: argparse.Namespace) -> int:
             f"{p['still_in_post']} still in post.",
             *(f"  rejected {g['count']}x: {g['reason']} (e.g. line "
               f"{', '.join(str(e['line']) for e in g['examples'])})" for g in p["rejected_groups"]),
+            *(f"  kept {w['count']}x: {w['reason']} (lines {', '.join(map(str, w['lines'][:10]))}"
+              f"{', ...' if w['count'] > 10 else ''})" for w in p["kept_with_warnings"]),
             *(f"  fix: {f}" for f in p["fixes"]),
             *(f"  saved profile {n!r} matches these headers: --profile {n!r}" for n in p["profiles_proposed"]
               if n != p["profile"]),

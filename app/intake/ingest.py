@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from datetime import date
 from typing import Any
 
+from app.intake.announced import NOTICE_RULE, KeptWithWarning
 from app.intake.codes import CodeGroup
 from app.intake.dates import date_rule, fiscal_rule
 from app.intake.rawtable import DEFAULT_LIMITS, RawTable, ReadLimits, RosterFileError, looks_like_data
@@ -127,6 +128,8 @@ class Review:
     messages: tuple[str, ...]
     #: the file's header names (what an intake profile recognises a source by)
     headers: tuple[str, ...] = ()
+    #: accepted rows that lost a field (an announcement date unreadable or after the exit), with their lines
+    kept_with_warnings: tuple[KeptWithWarning, ...] = ()
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -144,6 +147,8 @@ class Review:
             "role_guesses": {r: {"column": g.header, "confidence": g.confidence, "why": g.why}
                              for r, g in self.guesses.items()},
             "date_rule": self.date_rule, "fiscal_year_end": self.fy_end, "messages": list(self.messages),
+            "kept_with_warnings": [{"reason": w.reason, "count": w.count, "lines": list(w.lines)}
+                                   for w in self.kept_with_warnings],
         }
 
 
@@ -309,8 +314,10 @@ def _review(p: _Prepared, date_order: DateOrder, fy_end: int) -> Review:
         blank_rows=t.blank_rows, footer_lines=tuple(t.footer_lines), skipped_above=tuple(t.skipped_above),
         rejected_groups=tuple(groups), code_groups=tuple(c.code_groups), fixes=tuple(_fixes(p, groups, date_order)),
         roles=p.roles, guesses=p.guesses,
-        date_rule=date_rule(label, fy_end) if "date" in p.roles else fiscal_rule(fy_end),
+        date_rule=(date_rule(label, fy_end) if "date" in p.roles else fiscal_rule(fy_end)) + (
+            " " + NOTICE_RULE if "announced" in p.roles else ""),
         fy_end=fy_end, messages=tuple(t.messages + p.notes + c.messages), headers=tuple(t.headers),
+        kept_with_warnings=tuple(c.kept_with_warnings),
     )
 
 

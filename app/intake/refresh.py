@@ -23,10 +23,10 @@ from app.stats.cells import code_key
 from app.store import Roster, Store, StoreError
 
 #: the fields that make a record *changed* when they differ between versions (besides the identity)
-COMPARED = ("firm_name", "sector", "date", "reason", "age", "tenure", "interim", "notes")
+COMPARED = ("firm_name", "sector", "date", "reason", "age", "tenure", "interim", "notes", "announced")
 #: the fields a diff lists for each record
 SHOWN = ("line", "firm_id", "firm_name", "sector", "year", "date", "executive", "reason", "age", "tenure",
-         "interim", "notes")
+         "interim", "notes", "announced")
 
 IDENTITY_RULE = ("A departure is the same one in both versions when its firm id, executive and fiscal year "
                  "match (firm id, fiscal year and reason code where the executive is not given).")

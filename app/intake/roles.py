@@ -24,7 +24,7 @@ from app.types import REQUIRED_ROLES, ROLES
 ROLE_LABELS = {
     "firm_id": "firm id", "firm_name": "firm name", "sector": "sector", "year": "fiscal year",
     "date": "departure date", "reason": "reason code", "executive": "executive", "age": "age",
-    "tenure": "tenure", "interim": "interim flag", "notes": "notes",
+    "tenure": "tenure", "interim": "interim flag", "notes": "notes", "announced": "announcement date",
 }
 
 # whole headers, normalised
@@ -50,9 +50,14 @@ HEADER_WORDS: dict[str, tuple[str, ...]] = {
                "yearsasceo", "yearsinseat", "seat", "timeinpost", "yearsinthejob"),
     "interim": ("interim", "isinterim", "interimflag", "acting", "actingceo", "interimceo"),
     "notes": ("notes", "note", "comment", "comments", "remarks", "remark", "details"),
+    # the day the departure was announced (notice_days = exit date minus this); "notice" alone is left out:
+    # a "Notice (days)" column holds a number of days, not a date
+    "announced": ("announced", "announcement", "announcementdate", "dateannounced", "announceddate",
+                  "dateofannouncement", "announcedon", "noticedate", "dateofnotice", "announcementday", "dateannouncement"),
 }
 # single words inside a longer header, tried in this order (age before executive: "CEO age")
 WORD_HINTS: tuple[tuple[str, frozenset[str]], ...] = (
+    ("announced", frozenset({"announced", "announcement", "announce"})),  # before date: "Date announced"
     ("age", frozenset({"age"})),
     ("tenure", frozenset({"tenure", "seat"})),
     ("interim", frozenset({"interim", "acting"})),
@@ -160,6 +165,42 @@ def _content_guesses(columns: Mapping[str, Sequence[str]], taken: set[str], max_
     return out
 
 
+def _announcement_by_values(guesses: dict[str, RoleGuess], others: list[RoleGuess],
+                            columns: Mapping[str, Sequence[str]], max_year: int, *, exit_by_values: bool) -> None:
+    """A second date column is the announcement date when its dates come on or before the exit dates.
+
+    Of two date columns found by their values alone, the earlier one (on or before the other in at least
+    80% of the rows where both read) is the announcement and the later the exit; a departure date named by
+    its header stays the exit, and a column of later dates is then left alone.
+    """
+    exit_guess = guesses["date"]
+
+    def dates(header: str) -> pd.Series:
+        s = pd.Series([str(v).strip() for v in columns[header]], dtype=object)
+        iso = parse_dates(s, max_year=max_year).iso
+        return iso.where(iso.str.len() == 10)  # whole days only: a month cannot be ordered against a day
+
+    for other in others:
+        a, b = dates(other.header), dates(exit_guess.header)
+        both = a.notna() & b.notna()
+        if both.sum() < 2:
+            continue
+        earlier = _share(a[both] <= b[both])
+        if earlier >= 0.8:
+            guesses["announced"] = RoleGuess("announced", other.header, "low", f"a second date column whose "
+                                             f"dates come on or before “{exit_guess.header}” in {earlier:.0%} "
+                                             "of rows")
+            return
+        later = _share(b[both] <= a[both])
+        if later >= 0.8 and exit_by_values:
+            guesses["date"] = RoleGuess("date", other.header, "medium", other.why + ", the later of two date "
+                                        "columns")
+            guesses["announced"] = RoleGuess("announced", exit_guess.header, "low", "a second date column "
+                                             f"whose dates come on or before “{other.header}” in {later:.0%} "
+                                             "of rows")
+            return
+
+
 def guess_roles(
     headers: Sequence[str], columns: Mapping[str, Sequence[str]] | None = None, *, max_year: int = 2100,
 ) -> tuple[dict[str, RoleGuess], list[str]]:
@@ -184,10 +225,14 @@ def guess_roles(
                          f"using {header!r}; choose another explicitly if that is wrong.")
     if columns:
         taken = {g.header for g in guesses.values()}
-        for g in _content_guesses(columns, taken, max_year):
+        content = _content_guesses(columns, taken, max_year)
+        for g in content:
             if g.role not in guesses and g.header not in taken and not (g.role == "year" and "date" in guesses):
                 guesses[g.role] = g
                 taken.add(g.header)
+        if "announced" not in guesses and "date" in guesses:
+            _announcement_by_values(guesses, [g for g in content if g.role == "date" and g.header not in taken],
+                                    columns, max_year, exit_by_values=guesses["date"] in content)
     if "firm_id" not in guesses and "firm_name" in guesses:
         named = guesses.pop("firm_name")
         guesses["firm_id"] = RoleGuess("firm_id", named.header, "low",

@@ -21,6 +21,7 @@ from typing import Literal, get_args
 import numpy as np
 import pandas as pd
 
+from app.intake.announced import KeptWithWarning, read_announcements
 from app.intake.codes import CodeGroup, group_spellings
 from app.intake.dates import DATE_FORMATS, parse_dates
 from app.intake.rawtable import DEFAULT_LIMITS, RawTable, ReadLimits
@@ -57,6 +58,8 @@ class Checked:
     #: the date reading not chosen, and how many rows it would rescue ("" = no date column / no gain)
     other_order: str = ""
     other_order_rescues: int = 0
+    #: accepted rows that lost a field (an unreadable or late announcement date), with their lines
+    kept_with_warnings: list[KeptWithWarning] = field(default_factory=list)
 
 
 # Speed: a 100,000-row roster has few distinct values per typed column (years, dates, ages, flags), so
@@ -75,7 +78,7 @@ class _Problems:
 
 
 #: roles parsed per distinct value; the free-text roles are only stripped
-_TYPED_ROLES = ("year", "date", "reason", "age", "tenure", "interim")
+_TYPED_ROLES = ("year", "date", "reason", "age", "tenure", "interim", "announced")
 
 
 @dataclass(frozen=True)
@@ -222,6 +225,7 @@ def check_rows(
         p.add((year < 1900) | (year > max_year), lambda i: f"year {year[i]:.0f} is outside 1900..{max_year}")
     iso = np.full(n, None, dtype=object)
     date_year = np.full(n, np.nan)
+    announced_order: str = date_order  # the announcement column follows the exit dates' proven order
     if "date" in roles:
         c = col["date"]
         parsed = parse_dates(c.uniq, date_order, max_year=max_year, fy_end=fy_end)
@@ -234,6 +238,8 @@ def check_rows(
         if parsed.message:
             messages.append(f"Dates in column {roles['date']!r}: {parsed.message}")
         order_label = parsed.order_label
+        if date_order != "auto" or parsed.day_first or parsed.month_first:
+            announced_order = parsed.order
         if parsed.order == "dmy" or parsed.order == "mdy":
             other: DateOrder = "mdy" if parsed.order == "dmy" else "dmy"
             alt = parse_dates(c.uniq, other, max_year=max_year, fy_end=fy_end)
@@ -270,6 +276,8 @@ def check_rows(
         p.add(c.take((c.uniq != "") & flags.isna()), lambda i: (
             f"interim flag {col['interim'].value(i)!r} not recognised; use yes/no, true/false, 1/0, y/n "
             "or leave it blank"))
+    notice = (read_announcements(col["announced"].uniq, col["announced"].codes, iso, order=announced_order,
+                                 max_year=max_year, fy_end=fy_end) if "announced" in roles else None)
     for pos in repeats_header:
         p.by_row[pos] = ["repeats the header row (were two files joined together?)"]
 
@@ -298,11 +306,19 @@ def check_rows(
     if groups:
         messages.append(f"{len(groups):,} reason code(s) were written in more than one spelling (case, spaces, "
                         "dashes or quotes); each is one code under its most frequent spelling.")
+    warnings = notice.warnings(lines, keep) if notice is not None else []
+    messages += [f"{w.count:,} row(s): {w.reason}; line{'s' if w.count > 1 else ''} {_lines(w.lines)}."
+                 for w in warnings]
+    if notice is not None and notice.message:
+        messages.append(f"Column {roles['announced']!r}, {notice.message}")
     columns_out = {
         "line": lines, "firm_id": firm_id, "firm_name": text("firm_name"), "sector": text("sector"),
         "year": fiscal, "date": iso, "reason": shown, "reason_raw": raw_reason,
         "executive": text("executive"), "age": num["age"], "tenure": num["tenure"], "interim": interim,
-        "notes": text("notes"), "raw": raw,
+        "notes": text("notes"),
+        "announced": notice.iso if notice is not None else np.full(len(lines), None, dtype=object),
+        "notice_days": notice.notice_days if notice is not None else np.full(len(lines), np.nan),
+        "raw": raw,
     }
     del raw, columns
     by_header.clear()  # the grid of text cells goes with it
@@ -312,5 +328,13 @@ def check_rows(
                             for k, v in columns_out.items()}, copy=False)
     del columns_out
     records["year"] = records["year"].astype("int64")
+    records["notice_days"] = records["notice_days"].astype("Int64")
     return Checked(records, rejected, duplicates, messages, still_in_post=int(np.sum(serving & keep)), code_groups=groups,
-                   order_label=order_label, other_order=other_label, other_order_rescues=other_rescues)
+                   order_label=order_label, other_order=other_label, other_order_rescues=other_rescues,
+                   kept_with_warnings=warnings)
+
+
+def _lines(lines: tuple[int, ...], shown: int = 10) -> str:
+    """"4, 9, 12" or "4, 9, ... (and 30 more)": a message names a few lines, the review lists them all."""
+    head = ", ".join(map(str, lines[:shown]))
+    return head if len(lines) <= shown else f"{head} (and {len(lines) - shown:,} more)"

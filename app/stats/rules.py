@@ -1,8 +1,9 @@
-"""Classification rules: a code's category reassigned by a departure's age, tenure or interim flag.
+"""Classification rules: a code's category reassigned by a departure's age, tenure, interim flag or notice days.
 
 The same function reads one row per record (``age`` 58.7) or one row per cell of the cell store (``age``
 58, whole years, with a ``departures`` weight): rules compare completed years, and for a whole-number
-threshold ``v`` "age below v" is "floor(age) below v", so both paths give the same categories.
+threshold ``v`` "age below v" is "floor(age) below v", so both paths give the same categories. Notice days
+(exit minus announcement date) are whole days on both paths.
 Written by hand: it is a few vectorised comparisons, and no library evaluates this small rule table.
 """
 
@@ -17,9 +18,10 @@ import pandas as pd
 from app.types import CATEGORIES, RULE_COMPARISONS, RULE_FIELDS, ClassificationRule
 
 #: thresholds the rule table accepts (whole years or days; interim 0 or 1)
-VALUE_RANGE = {"age": (0, 120), "tenure": (0, 80), "interim": (0, 1)}
+VALUE_RANGE = {"age": (0, 120), "tenure": (0, 80), "interim": (0, 1), "notice_days": (0, 3660)}
 #: what each field may be compared with
-COMPARISONS = {"age": ("below", "at_least"), "tenure": ("below", "at_least"), "interim": ("equals",)}
+COMPARISONS = {"age": ("below", "at_least"), "tenure": ("below", "at_least"), "interim": ("equals",),
+               "notice_days": ("below", "at_least")}
 
 
 class RuleError(ValueError):
@@ -33,11 +35,7 @@ def make_rule(code: str, field: str, comparison: str, value: str | int | float, 
         raise RuleError("The rule's code is empty.")
     field = str(field).strip().lower()
     if field not in RULE_FIELDS:
-        raise RuleError(f"field must be one of {', '.join(f for f in RULE_FIELDS if f != 'notice_days')}; "
-                        f"got {field!r}.")
-    if field == "notice_days":
-        raise RuleError("field notice_days needs an announcement date, which rosters do not record yet; "
-                        "use age, tenure or interim.")
+        raise RuleError(f"field must be one of {', '.join(RULE_FIELDS)}; got {field!r}.")
     comparison = str(comparison).strip().lower().replace(" ", "_")
     if comparison not in RULE_COMPARISONS or comparison not in COMPARISONS[field]:
         raise RuleError(f"{field} compares with {' or '.join(COMPARISONS[field])}; got {comparison!r}.")
@@ -60,7 +58,8 @@ def _whole(value: str | int | float, field: str) -> int:
     except ValueError:
         raise RuleError(f"{field} value must be a whole number; got {value!r}.") from None
     if not np.isfinite(number) or number != int(number):
-        raise RuleError(f"{field} value must be a whole number (thresholds are in whole years); got {value!r}.")
+        unit = "days" if field == "notice_days" else "years"
+        raise RuleError(f"{field} value must be a whole number (thresholds are in whole {unit}); got {value!r}.")
     return int(number)
 
 
@@ -76,7 +75,8 @@ class RuleEffect:
 
 
 def field_values(frame: pd.DataFrame, field: str) -> np.ndarray:
-    """The field in completed units as floats (NaN where missing): floor of age/tenure, 0/1 for interim."""
+    """The field in completed units as floats (NaN where missing): floor of age/tenure, 0/1 for interim, whole
+    notice days as stored."""
     column = frame[field]
     present = column.notna().to_numpy()
     values = np.full(len(frame), np.nan)

@@ -40,8 +40,9 @@ from app.store.tables import (
     universe_firm_years,
 )
 
-#: the key's detail (issue 16): age and tenure in completed years, the interim flag; None where missing
-DETAIL_COLUMNS = ("age", "tenure", "interim")
+#: the key's detail (issue 16): age and tenure in completed years, the interim flag, the notice in whole days
+#: (exit minus announcement); None where missing
+DETAIL_COLUMNS = ("age", "tenure", "interim", "notice_days")
 
 
 def version_of(roster_id: int, version: int | None) -> ColumnElement[int]:
@@ -64,7 +65,7 @@ def completed(column: Any) -> Any:
 def fill_cells(conn: Connection, roster_id: int, version: int = 1) -> None:
     """Count one roster version's departures into the three cell tables, inside the caller's transaction."""
     d = departures.c
-    keys = (d.year, d.sector, d.reason, completed(d.age), completed(d.tenure), d.interim)
+    keys = (d.year, d.sector, d.reason, completed(d.age), completed(d.tenure), d.interim, d.notice_days)
     names = ("year", "sector", "reason", *DETAIL_COLUMNS, "departures")
     plain = (d.year, d.sector, d.reason)
     which = (d.roster_id == roster_id, d.version == version)
@@ -137,7 +138,7 @@ def _frame(rows: Sequence[Any], columns: tuple[str, ...]) -> pd.DataFrame:
     for c in ("sector", "reason", "firm_id"):
         if c in frame:
             frame[c] = frame[c].astype(object)
-    for c in ("age", "tenure"):
+    for c in ("age", "tenure", "notice_days"):
         if c in frame:
             frame[c] = frame[c].astype("Int64")
     if "interim" in frame:
@@ -152,8 +153,9 @@ class CellQueries(Gateway):
         """Departures per (year, sector, reason) of one roster version (default: the newest); ``sector`` is
         None where the record had none.
 
-        With ``detail`` the key also holds ``age``, ``tenure`` (completed years) and ``interim`` (missing
-        values are <NA>). Sorted by the key (missing values last, on every backend). Rebuilds the cells of a roster stored without them.
+        With ``detail`` the key also holds ``age``, ``tenure`` (completed years), ``interim`` and
+        ``notice_days`` (missing values are <NA>). Sorted by the key (missing values last, on every backend).
+        Rebuilds the cells of a roster stored without them.
         """
         return self._read_cells(roster_detail_cells if detail else roster_cells, roster_id, (), detail, version)
 

@@ -65,6 +65,8 @@ class RosterQueries(Gateway):
         """
         if "reason_raw" not in records.columns and "reason" in records.columns:
             records = records.assign(reason_raw=records["reason"])
+        # optional fields (issue 16): records from a file without announcement dates may leave them out
+        records = records.assign(**{c: None for c in ("announced", "notice_days") if c not in records.columns})
         missing = [c for c in DEPARTURE_FIELDS if c not in records.columns]
         if missing:
             raise StoreError(f"records lack columns {missing}")

@@ -25,7 +25,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0014"
+HEAD_REVISION = "0015"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -70,7 +70,7 @@ roster_versions = Table(
 
 DEPARTURE_FIELDS = (
     "line", "firm_id", "firm_name", "sector", "year", "date", "reason", "reason_raw", "executive",
-    "age", "tenure", "interim", "notes", "raw",
+    "age", "tenure", "interim", "notes", "announced", "notice_days", "raw",
 )
 
 departures = Table(
@@ -91,6 +91,10 @@ departures = Table(
     Column("interim", Boolean),
     Column("notes", Text),
     Column("raw", Text, nullable=False),  # the original row as JSON, for provenance
+    Column("announced", String),  # ISO date (or year-month) the departure was announced, or NULL (issue 16)
+    # exit date minus announcement date in whole days; NULL unless both are whole days and the announcement
+    # is not after the exit (app/intake/announced.py)
+    Column("notice_days", Integer),
     Column("version", Integer, nullable=False, server_default="1"),  # the roster version this row belongs to
     Index("ix_departures_roster_version", "roster_id", "version"),
 )
@@ -276,9 +280,10 @@ universe_rejected = Table(
 
 
 def CELL_DETAIL_COLUMNS() -> tuple[Column[int], ...]:  # noqa: N802 - reads as the constant it stands for
-    """Age and tenure in completed years and the interim flag (NULL where the record has none): the cell
-    key's detail, so classification rules and the adjusted trend need no record reads (issue 16)."""
-    return (Column("age", Integer), Column("tenure", Integer), Column("interim", Boolean))
+    """Age and tenure in completed years, the interim flag and the notice in days (NULL where the record has
+    none): the cell key's detail, so classification rules and the adjusted trend need no record reads (issue 16)."""
+    return (Column("age", Integer), Column("tenure", Integer), Column("interim", Boolean),
+            Column("notice_days", Integer))
 
 
 # The cell store (issue 13). Counts per (year, sector, reason code) do not depend on the mapping (a mapping

@@ -14,11 +14,15 @@ from starlette.concurrency import run_in_threadpool
 
 from app.analysis.mapping_files import export_rules_csv
 from app.analysis.rules import (
+    NOTICE_PRESET_NAME,
+    NOTICE_PRESET_SOURCE,
     PRESET_NAME,
     PRESET_SOURCE,
+    notice_preset_rules,
     preset_rules,
     rules_to_list,
     save_rules,
+    with_notice_preset,
     with_preset,
 )
 from app.intake.reasons import MappingFileError
@@ -32,16 +36,33 @@ from app.web.route_docs import FILE, GUARDS, download, form_body, page_errors, q
 
 router = APIRouter()
 
-RULE_FIELDS_OFFERED = ("age", "tenure", "interim")
+RULE_FIELDS_OFFERED = ("age", "tenure", "interim", "notice_days")
 RULE_COMPARISONS_OFFERED = ("below", "at_least", "equals")
+NO_ANNOUNCEMENTS = ("This roster has no announcement dates, so rules on notice_days (days from the announcement "
+                    "to the exit) are not offered; import a file with an announcement-date column to use them.")
+
+
+def has_announcements(roster: Roster) -> bool:
+    """True when the roster's newest version was imported with an announcement-date column."""
+    return "announced" in roster.columns
 
 
 def rules_view(store: Store, roster: Roster, mapping: MappingVersion | None, codes: list[str]) -> dict[str, Any]:
-    """What the page shows about rules: each rule with what it moved, and the preset on offer."""
+    """What the page shows about rules: each rule with what it moved, the fields on offer (notice_days only
+    where the roster has announcement dates, or a rule already uses it), and the presets on offer."""
     preset = preset_rules(mapping, codes)
     missing = [r for r in preset if mapping is None or r not in mapping.rules]
+    dated = has_announcements(roster)
+    used = bool(mapping and any(r.field == "notice_days" for r in mapping.rules))
+    notice = notice_preset_rules(mapping, codes) if dated else ()
+    notice_added = bool(mapping) and with_notice_preset(mapping.rules if mapping else (), notice) == (
+        mapping.rules if mapping else ())
     return {"rules": rules_to_list(store, roster, mapping),
-            "preset": [r.describe() for r in missing], "preset_name": PRESET_NAME, "preset_source": PRESET_SOURCE}
+            "preset": [r.describe() for r in missing], "preset_name": PRESET_NAME, "preset_source": PRESET_SOURCE,
+            "rule_fields": RULE_FIELDS_OFFERED if dated or used else RULE_FIELDS_OFFERED[:3],
+            "notice_note": "" if dated else NO_ANNOUNCEMENTS,
+            "notice_preset": [] if notice_added else [r.describe() for r in notice],
+            "notice_preset_name": NOTICE_PRESET_NAME, "notice_preset_source": NOTICE_PRESET_SOURCE}
 
 
 def _mapping_of(store: Store, roster_id: int) -> tuple[Roster, MappingVersion]:
@@ -85,7 +106,8 @@ _RULE_ROW = {
     "^rule-[0-9]+-code$": {"type": "string", "description": "the reason code a rule applies to ..."},
     "^rule-[0-9]+-field$": {"type": "string", "enum": list(RULE_FIELDS_OFFERED)},
     "^rule-[0-9]+-comparison$": {"type": "string", "enum": list(RULE_COMPARISONS_OFFERED)},
-    "^rule-[0-9]+-value$": {"type": "string", "description": "whole years (age, tenure) or 1/0 (interim)"},
+    "^rule-[0-9]+-value$": {"type": "string", "description": "whole years (age, tenure), days (notice_days) or "
+                            "1/0 (interim)"},
     "^rule-[0-9]+-category$": {"type": "string", "enum": list(CATEGORIES)},
     "^rule-[0-9]+-drop$": {"type": "string", "description": "present: remove this rule"},
 }
@@ -114,23 +136,33 @@ def _rules_save(request: Request, roster_id: int, form: Any) -> RedirectResponse
 
 @router.post("/rosters/{roster_id}/rules/preset", name="rules_preset", status_code=303,
              response_class=RedirectResponse, responses=redirect("the Reason codes page", page_errors(400, 404)),
-             openapi_extra=form_body({}))
+             openapi_extra=form_body({"which": {"type": "string", "enum": ["age", "notice"], "default": "age",
+                                               "description": "notice: the preset with the notice test"}}))
 async def rules_preset(request: Request, roster_id: int) -> RedirectResponse:
-    """Add the academic preset (retirement below 60 counts as forced) after the existing rules."""
-    await read_form(request)
-    return await run_in_threadpool(_rules_preset, request, roster_id)
+    """Add the academic preset (retirement below 60 counts as forced) after the existing rules; with
+    ``which=notice``, the preset with the notice test (rosters with announcement dates)."""
+    form = await read_form(request)
+    return await run_in_threadpool(_rules_preset, request, roster_id, form)
 
 
-def _rules_preset(request: Request, roster_id: int) -> RedirectResponse:
+def _rules_preset(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
     store = app_store(request)
     roster, mapping = _mapping_of(store, roster_id)
-    preset = preset_rules(mapping, store.reason_counts(roster.id)["code"].astype(str))
+    which = str(form.get("which") or "age")
+    if which not in ("age", "notice"):
+        raise BadRequest(f"which must be age or notice; got {which!r}.")
+    codes = store.reason_counts(roster.id)["code"].astype(str)
+    if which == "notice" and not has_announcements(roster):
+        raise BadRequest(NO_ANNOUNCEMENTS)
+    preset = (notice_preset_rules if which == "notice" else preset_rules)(mapping, codes)
     if not preset:
         raise BadRequest("No reason code of this roster reads as a retirement; add the rule by hand.")
-    rules = with_preset(mapping.rules, preset)
+    rules = (with_notice_preset if which == "notice" else with_preset)(mapping.rules, preset)
     if rules == mapping.rules:
         raise BadRequest("The preset's rules are already in this mapping version.")
-    save_rules(store, mapping, rules, note=f"added the preset: {PRESET_NAME}, {PRESET_SOURCE}")
+    note = (f"added the preset: {NOTICE_PRESET_NAME} (the academic convention, Parrino 1997, Journal of "
+            "Financial Economics 46)" if which == "notice" else f"added the preset: {PRESET_NAME}, {PRESET_SOURCE}")
+    save_rules(store, mapping, rules, note=note)
     return _back(request, roster)
 
 

@@ -86,6 +86,14 @@ class ReasonsPage:
     preset_source: str = ""
     #: the mapping version's case overrides of this roster (app.analysis.overrides.overrides_to_list)
     overrides: list[dict[str, Any]] = field(default_factory=list)
+    #: the fields the rules table offers (notice_days only for a roster with announcement dates)
+    rule_fields: tuple[str, ...] = ("age", "tenure", "interim")
+    #: why notice_days is not offered ("" when it is)
+    notice_note: str = ""
+    #: the notice preset's rules when this version does not hold them yet (empty: not on offer)
+    notice_preset: list[str] = field(default_factory=list)
+    notice_preset_name: str = ""
+    notice_preset_source: str = ""
 
 
 ReasonsBody = define(ReasonsPage, "ReasonsBody", descriptions={
