@@ -102,6 +102,14 @@ def _completed_values(values: pd.Series) -> np.ndarray:
     return mapped[codes]
 
 
+def _whole_values(values: pd.Series) -> np.ndarray:
+    """Whole numbers (notice days) as Python ints, None where missing: what SQLite's GROUP BY hands back."""
+    out = np.full(len(values), None, dtype=object)
+    present = values.notna().to_numpy()
+    out[present] = [int(v) for v in values[present]]
+    return out
+
+
 def _insert_counts(conn: Connection, table: Table, keys: pd.DataFrame, by: list[str], ids: dict[str, int]) -> None:
     counted = keys.groupby(by, dropna=False, sort=False).size().reset_index(name="departures")
     bulk_insert(conn, table, counted, ids)
@@ -118,6 +126,8 @@ def fill_cells_from_records(conn: Connection, roster_id: int, version: int, reco
         "year": records["year"].astype("int64"), "sector": records["sector"].astype(object),
         "reason": records["reason"].astype(object), "age": _completed_values(records["age"]),
         "tenure": _completed_values(records["tenure"]), "interim": records["interim"].astype(object),
+        "notice_days": _whole_values(records["notice_days"]) if "notice_days" in records
+        else np.full(len(records), None, dtype=object),
         "firm_id": records["firm_id"].astype(object),
         "spelling": raw.astype(object).where(raw.notna(), records["reason"]),
     })
