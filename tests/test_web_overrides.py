@@ -42,6 +42,8 @@ def test_set_a_category_from_a_record_then_every_page_counts_it(empty_client: An
     assert [(r["id"], r["override"]["note"]) for r in marked] == [(f1, "board statement of 3 May")]
     listed = client.get(f"/api/rosters/{roster_id}/overrides").json()
     assert listed["mapping"] == "desk map:2"
+    # a mapping that is not stored is not found (404), as on every other route (found by the live fuzzer)
+    assert client.get(f"/api/rosters/{roster_id}/overrides?mapping=no+such+map").status_code == 404
     assert [(o["record"], o["counted_as"], o["category"], o["applied"]) for o in listed["overrides"]] == [
         ("firm F1, Ann Smith, FY2001", "voluntary", "forced", True)]
     reasons = client.get(f"/rosters/{roster_id}/reasons").text

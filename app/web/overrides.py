@@ -179,6 +179,6 @@ def overrides_api(request: Request, roster_id: int) -> JSONResponse:
         return as_json(overrides_list(store, roster, None))
     try:
         mapping = current_mapping(store, roster, ref)
-    except StoreError as exc:
-        raise BadRequest(str(exc)) from exc
+    except StoreError as exc:  # a mapping (or version) that is not stored: not found, as everywhere else
+        raise NotFound(str(exc)) from exc
     return as_json(overrides_list(store, roster, mapping))
