@@ -255,7 +255,8 @@ def _prepare(
 ) -> _Prepared:
     check_choice(date_order, DATE_ORDERS, "date_order")
     _check_fy_end(fy_end)
-    table = read_table(data, filename, encoding=encoding, sheet=sheet, limits=limits, header_row=header_row)
+    table = read_table(data, filename, encoding=encoding, sheet=sheet, limits=limits, header_row=header_row,
+                       columnar=True)
     if not roles and prior_roles and set(prior_roles.values()) <= set(table.headers):
         # a refresh whose file has the same headers keeps the roles the roster was imported with
         roles = dict(prior_roles)

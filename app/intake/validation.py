@@ -163,21 +163,27 @@ def check_rows(
     max_year = (today or date.today()).year + 1
     messages: list[str] = []
     order_label, other_label, other_rescues = "", "", 0
-    total = len(table.rows)
-    grid = np.empty((total, len(table.headers)), dtype=object)
-    if total:
-        grid[:] = table.rows  # every row has the header's width (``add_row``)
-    columns = [grid[:, j] for j in range(grid.shape[1])]
-    del grid
-    if release_rows:
-        del table.rows[ROLE_SAMPLE:]
+    if table.columns is not None and table.column_lines is not None:  # read by pandas (``fastcsv``)
+        columns, all_lines = table.columns, table.column_lines
+        if release_rows:
+            table.columns = table.column_lines = None
+    else:
+        grid = np.empty((len(table.rows), len(table.headers)), dtype=object)
+        if len(table.rows):
+            grid[:] = table.rows  # every row has the header's width (``add_row``)
+        columns = [grid[:, j] for j in range(grid.shape[1])]
+        all_lines = np.array(table.lines, dtype=np.int64)
+        del grid
+        if release_rows:
+            del table.rows[ROLE_SAMPLE:]
+    total = len(all_lines)
     # the raw JSON is needed for every row anyway, and equal rows give equal JSON: hashing these
     # strings finds exact duplicates more cheaply than hashing row tuples
     raw_all = _raw_json(table.headers, columns)
     # first occurrence of each distinct row: filling the dict from the end leaves the earliest index
     first_seen = dict(zip(reversed(raw_all), range(total - 1, -1, -1), strict=True))
     duplicates = total - len(first_seen)
-    lines = np.array(table.lines, dtype=np.int64)
+    lines = all_lines
     if duplicates:
         kept = np.array(sorted(first_seen.values()), dtype=np.int64)
         columns, lines = [c[kept] for c in columns], lines[kept]
