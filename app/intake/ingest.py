@@ -276,7 +276,7 @@ def _prepare(
         raise RosterFileError(f"The file has a header row (line {table.header_line}) but no data rows.")
     # the rows live on as typed records: their text is let go during validation
     checked = check_rows(table, resolved, date_order=date_order, limits=limits, today=today, fy_end=fy_end,
-                         release_rows=True)
+                         release_rows=True, lazy_raw=True)
     return _Prepared(table, resolved, notes, guesses, checked)
 
 
@@ -369,6 +369,7 @@ def import_roster(
         name=target.name if target else name or default_roster_name(store, filename), source_name=filename,
         sha256=sha, rows_total=len(c.records) + len(c.rejected) + c.duplicates, duplicates=c.duplicates,
         columns=p.roles, records=c.records, rejected=c.rejected, into=target.id if target else None,
+        raw=c.raw_json,
     )
     added, removed, changed = roster.accepted, 0, 0
     if roster.version > 1:
