@@ -40,7 +40,8 @@ def clean_bytes(data: bytes, used: str, text: str, delimiter: str) -> bool:
         return False
     if delimiter == '"' or delimiter in "\r\n":
         return False
-    closed = re.compile(rb'"(?:[^"\r\n]|"")*"(?=' + re.escape(delimiter.encode()) + rb"|[\r\n]|\Z)")
+    # a quoted cell, closed on its line before a delimiter or the line end (possessive: no backtracking)
+    closed = re.compile(rb'"(?:[^"\r\n]++|"")*+"(?=' + re.escape(delimiter.encode()) + rb"|[\r\n]|\Z)")
     pos = 0
     while pos < len(data):
         end = data.find(b"\n", pos + _CHUNK)

@@ -124,8 +124,21 @@ ROLE_SAMPLE = 500
 _JSON_BLOCK = 100_000
 
 
+#: cells looked at to tell a column of mostly distinct values
+_PROBE = 2_000
+
+
 def _shared_map(values: np.ndarray, fn: Callable[[str], object]) -> np.ndarray:
-    """``fn`` applied to every cell, computed once per distinct value (most roster columns repeat)."""
+    """``fn`` applied to every cell, computed once per distinct value (most roster columns repeat).
+
+    A column whose first cells are mostly distinct (names, notes) is mapped cell by cell: hashing a million
+    distinct strings to find the few repeats costs more than it saves.
+    """
+    head = values[:_PROBE]
+    if len(values) > 2 * _PROBE and len(set(head.tolist())) * 2 > len(head):
+        out = np.empty(len(values), dtype=object)
+        out[:] = [fn(u) for u in values.tolist()]
+        return out
     codes, uniq = pd.factorize(values)
     mapped = np.empty(len(uniq), dtype=object)
     mapped[:] = [fn(u) for u in uniq]
