@@ -202,9 +202,9 @@ def check_rows(
     total = len(all_lines)
     # exact duplicates: pandas compares the rows column by column (hashing each row's JSON instead would
     # need every row's JSON at once)
-    grid = pd.DataFrame(dict(enumerate(columns)), copy=False)
-    first = ~grid.duplicated(keep="first").to_numpy() if total else np.zeros(0, dtype=bool)
-    del grid
+    as_frame = pd.DataFrame(dict(enumerate(columns)), copy=False)
+    first = ~as_frame.duplicated(keep="first").to_numpy() if total else np.zeros(0, dtype=bool)
+    del as_frame
     duplicates = total - int(np.sum(first))
     lines = all_lines
     if duplicates:
