@@ -127,3 +127,28 @@ def test_line_starts_and_blank_cells() -> None:
     data = b"a\nbb\n\nccc"
     assert fastcsv._line_starts(data, 0).tolist() == [0, 2, 5, 6]
     assert fastcsv._blank(np.array(["", " ", "x", "\t"], dtype=object)).tolist() == [True, True, False, True]
+
+
+def test_raw_json_built_per_batch_is_each_stored_rows_own(store, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """The raw column, built a batch at a time, is ``json.dumps`` of the row the csv module reads on that line."""
+    import csv
+    import io
+    import json
+
+    from app.intake.ingest import import_roster
+    from app.store import engine
+
+    monkeypatch.setattr(engine, "BATCH_ROWS", 3)  # several batches, rejected and duplicate rows in between
+    header = ["Issuer Code", "FY", "Exit Reason", "Comment"]
+    body = [["F1", "2001", "Retired", "a, b"], ["F2", "20x1", "Fired", ""], ["F3", "2003", "Fired", 'q "x"'],
+            ["F1", "2001", "Retired", "a, b"], ["F4", "2004", "Health", ""], ["", "2005", "Retired", "n"],
+            ["F5", "2005", " Retired ", "é"], ["F6", "2006", "Fired", ""], ["F7", "2007", "Fired", "z"]]
+    out = io.StringIO()
+    csv.writer(out, lineterminator="\n").writerows([header, *body])
+    report = import_roster(store, out.getvalue().encode(), "r.csv")
+    frame = store.departures(report.roster.id, with_raw=True)
+    by_line = {i + 2: dict(zip(header, row, strict=True)) for i, row in enumerate(body)}
+    assert list(frame["line"]) == [2, 4, 6, 8, 9, 10]  # line 3: bad year, 5: a duplicate, 7: no firm id
+    for line, raw in zip(frame["line"], frame["raw"], strict=True):
+        assert json.loads(raw) == by_line[line] and raw == json.dumps(by_line[line], ensure_ascii=False)
+    assert [(r.line, json.loads(r.raw)) for r in report.rejected_rows] == [(3, by_line[3]), (7, by_line[7])]
