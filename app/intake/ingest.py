@@ -260,7 +260,8 @@ def _prepare(
 ) -> _Prepared:
     check_choice(date_order, DATE_ORDERS, "date_order")
     _check_fy_end(fy_end)
-    table = read_table(data, filename, encoding=encoding, sheet=sheet, limits=limits, header_row=header_row)
+    table = read_table(data, filename, encoding=encoding, sheet=sheet, limits=limits, header_row=header_row,
+                       columnar=True)
     if not roles and prior_roles and set(prior_roles.values()) <= set(table.headers):
         # a refresh whose file has the same headers keeps the roles the roster was imported with
         roles = dict(prior_roles)
@@ -280,7 +281,7 @@ def _prepare(
         raise RosterFileError(f"The file has a header row (line {table.header_line}) but no data rows.")
     # the rows live on as typed records: their text is let go during validation
     checked = check_rows(table, resolved, date_order=date_order, limits=limits, today=today, fy_end=fy_end,
-                         release_rows=True)
+                         release_rows=True, lazy_raw=True)
     return _Prepared(table, resolved, notes, guesses, checked)
 
 
@@ -375,6 +376,7 @@ def import_roster(
         name=target.name if target else name or default_roster_name(store, filename), source_name=filename,
         sha256=sha, rows_total=len(c.records) + len(c.rejected) + c.duplicates, duplicates=c.duplicates,
         columns=p.roles, records=c.records, rejected=c.rejected, into=target.id if target else None,
+        raw=c.raw_json,
     )
     added, removed, changed = roster.accepted, 0, 0
     if roster.version > 1:

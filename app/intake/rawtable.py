@@ -68,6 +68,10 @@ class RawTable:
     #: how the header row was chosen ("found": scored; "given": the analyst's choice) and why
     header_how: str = "found"
     header_why: str = ""
+    #: read by pandas (``app.intake.fastcsv``): every kept row as columns and their line numbers; ``rows`` and
+    #: ``lines`` then hold only the first rows (role detection, previews)
+    columns: list[np.ndarray] | None = None
+    column_lines: np.ndarray | None = None
 
 
 _DATA_LIKE = re.compile(r"[-+]?\d[\d.,/: -]*")

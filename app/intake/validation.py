@@ -60,6 +60,14 @@ class Checked:
     other_order_rescues: int = 0
     #: accepted rows that lost a field (an unreadable or late announcement date), with their lines
     kept_with_warnings: list[KeptWithWarning] = field(default_factory=list)
+    #: with ``lazy_raw``: the header and the accepted rows' cells, from which ``raw_json`` builds the ``raw``
+    #: column a slice at a time (all 1,000,000 rows' JSON at once is ~250 MB)
+    raw_headers: list[str] = field(default_factory=list)
+    raw_columns: list[np.ndarray] = field(default_factory=list)
+
+    def raw_json(self, start: int, stop: int) -> list[str]:
+        """The ``raw`` values of accepted records ``start:stop`` (what ``records["raw"]`` holds otherwise)."""
+        return _raw_json(self.raw_headers, [c[start:stop] for c in self.raw_columns])
 
 
 # Speed: a 100,000-row roster has few distinct values per typed column (years, dates, ages, flags), so
@@ -119,8 +127,21 @@ ROLE_SAMPLE = 500
 _JSON_BLOCK = 100_000
 
 
+#: cells looked at to tell a column of mostly distinct values
+_PROBE = 2_000
+
+
 def _shared_map(values: np.ndarray, fn: Callable[[str], object]) -> np.ndarray:
-    """``fn`` applied to every cell, computed once per distinct value (most roster columns repeat)."""
+    """``fn`` applied to every cell, computed once per distinct value (most roster columns repeat).
+
+    A column whose first cells are mostly distinct (names, notes) is mapped cell by cell: hashing a million
+    distinct strings to find the few repeats costs more than it saves.
+    """
+    head = values[:_PROBE]
+    if len(values) > 2 * _PROBE and len(set(head.tolist())) * 2 > len(head):
+        out = np.empty(len(values), dtype=object)
+        out[:] = [fn(u) for u in values.tolist()]
+        return out
     codes, uniq = pd.factorize(values)
     mapped = np.empty(len(uniq), dtype=object)
     mapped[:] = [fn(u) for u in uniq]
@@ -157,54 +178,55 @@ def validate(
 def check_rows(
     table: RawTable, roles: dict[str, str], *, date_order: DateOrder = "auto",
     limits: ReadLimits = DEFAULT_LIMITS, today: date | None = None, fy_end: int = 12, release_rows: bool = False,
+    lazy_raw: bool = False,
 ) -> Checked:
     """Validate every row. Exact duplicate rows are dropped first (counted, never rejected).
 
     ``release_rows``: the caller needs ``table.rows`` no more than their first ``ROLE_SAMPLE``; the rest are let go
-    once the columns are built (on 1,000,000 rows the row lists alone are ~150 MB).
+    once the columns are built (on 1,000,000 rows the row lists alone are ~150 MB). ``lazy_raw``: ``records``
+    has no ``raw`` column; ``Checked.raw_json`` gives it a slice at a time.
     """
     max_year = (today or date.today()).year + 1
     messages: list[str] = []
     order_label, other_label, other_rescues = "", "", 0
-    total = len(table.rows)
-    grid = np.empty((total, len(table.headers)), dtype=object)
-    if total:
-        grid[:] = table.rows  # every row has the header's width (``add_row``)
-    columns = [grid[:, j] for j in range(grid.shape[1])]
-    del grid
-    if release_rows:
-        del table.rows[ROLE_SAMPLE:]
-    # the raw JSON is needed for every row anyway, and equal rows give equal JSON: hashing these
-    # strings finds exact duplicates more cheaply than hashing row tuples
-    raw_all = _raw_json(table.headers, columns)
-    # first occurrence of each distinct row: filling the dict from the end leaves the earliest index
-    first_seen = dict(zip(reversed(raw_all), range(total - 1, -1, -1), strict=True))
-    duplicates = total - len(first_seen)
-    lines = np.array(table.lines, dtype=np.int64)
-    if duplicates:
-        kept = np.array(sorted(first_seen.values()), dtype=np.int64)
-        columns, lines = [c[kept] for c in columns], lines[kept]
-        raw = [raw_all[i] for i in kept]
-        messages.append(f"{duplicates:,} exact duplicate row(s) were counted and stored once.")
+    if table.columns is not None and table.column_lines is not None:  # read by pandas (``fastcsv``)
+        columns, all_lines = table.columns, table.column_lines
+        if release_rows:
+            table.columns = table.column_lines = None
     else:
-        raw = raw_all
-    del first_seen, raw_all
+        grid = np.empty((len(table.rows), len(table.headers)), dtype=object)
+        if len(table.rows):
+            grid[:] = table.rows  # every row has the header's width (``add_row``)
+        columns = [grid[:, j] for j in range(grid.shape[1])]
+        all_lines = np.array(table.lines, dtype=np.int64)
+        del grid
+        if release_rows:
+            del table.rows[ROLE_SAMPLE:]
+    total = len(all_lines)
+    # exact duplicates: pandas compares the rows column by column (hashing each row's JSON instead would
+    # need every row's JSON at once)
+    as_frame = pd.DataFrame(dict(enumerate(columns)), copy=False)
+    first = ~as_frame.duplicated(keep="first").to_numpy() if total else np.zeros(0, dtype=bool)
+    del as_frame
+    duplicates = total - int(np.sum(first))
+    lines = all_lines
+    if duplicates:
+        columns, lines = [c[first] for c in columns], lines[first]
+        messages.append(f"{duplicates:,} exact duplicate row(s) were counted and stored once.")
     if table.blank_rows:
         messages.append(f"{table.blank_rows:,} blank row(s) were skipped.")
     n = len(lines)
     by_header = dict(zip(table.headers, columns, strict=True))
     p = _Problems()
-    # a row's raw JSON is at least as long as any of its cells: one pass over the rows rules out overlong cells
-    any_long = n > 0 and max(map(len, raw)) > limits.max_cell_chars
     for h, cells in by_header.items():
         if table.may_hold_nul and "\x00" in "".join(cells):
             p.add(np.array(["\x00" in c for c in cells]), f"NUL byte in column {h!r}")
-        if any_long and max(map(len, cells)) > limits.max_cell_chars:
+        if n and max(map(len, cells)) > limits.max_cell_chars:
             lengths = np.fromiter(map(len, cells), dtype=np.int64, count=n)
             p.add(lengths > limits.max_cell_chars, _worded(
                 f"cell in column {h!r} has {{:,}} characters (limit {limits.max_cell_chars:,})", lengths.__getitem__))
-    first = table.headers[0]
-    maybe_header = np.flatnonzero(_shared_map(by_header[first], str.strip) == first)
+    head0 = table.headers[0]
+    maybe_header = np.flatnonzero(_shared_map(by_header[head0], str.strip) == head0)
     repeats_header = [int(i) for i in maybe_header
                       if all(by_header[h][i].strip() == h for h in table.headers)]
 
@@ -281,8 +303,10 @@ def check_rows(
     for pos in repeats_header:
         p.by_row[pos] = ["repeats the header row (were two files joined together?)"]
 
-    rejected = [RejectedRow(line=int(lines[i]), raw=raw[i], reason="; ".join(msgs))
-                for i, msgs in p.by_row.items()]
+    bad = list(p.by_row)
+    bad_raw = _raw_json(table.headers, [c[bad] for c in columns])
+    rejected = [RejectedRow(line=int(lines[i]), raw=r, reason="; ".join(msgs))
+                for (i, msgs), r in zip(p.by_row.items(), bad_raw, strict=True)]
     rejected = sorted(table.bad_rows + rejected, key=lambda r: r.line)
     keep = np.ones(n, dtype=bool)
     keep[list(p.by_row)] = False
@@ -318,20 +342,23 @@ def check_rows(
         "notes": text("notes"),
         "announced": notice.iso if notice is not None else np.full(len(lines), None, dtype=object),
         "notice_days": notice.notice_days if notice is not None else np.full(len(lines), np.nan),
-        "raw": raw,
     }
-    del raw, columns
+    raw_columns = [c[keep] for c in columns]
+    if not lazy_raw:
+        columns_out["raw"] = np.array(_raw_json(table.headers, raw_columns), dtype=object)
+    del columns
     by_header.clear()  # the grid of text cells goes with it
     # each column filtered once, then the frame built without a second copy (on 1,000,000 rows every copy of
     # the object columns is ~100 MB)
-    records = pd.DataFrame({k: np.asarray(v, dtype=object if k == "raw" else None)[keep]
-                            for k, v in columns_out.items()}, copy=False)
+    records = pd.DataFrame({k: v if k == "raw" else np.asarray(v)[keep] for k, v in columns_out.items()},
+                           copy=False)
     del columns_out
     records["year"] = records["year"].astype("int64")
     records["notice_days"] = records["notice_days"].astype("Int64")
     return Checked(records, rejected, duplicates, messages, still_in_post=int(np.sum(serving & keep)), code_groups=groups,
                    order_label=order_label, other_order=other_label, other_order_rescues=other_rescues,
-                   kept_with_warnings=warnings)
+                   kept_with_warnings=warnings,
+                   raw_headers=list(table.headers) if lazy_raw else [], raw_columns=raw_columns if lazy_raw else [])
 
 
 def _lines(lines: tuple[int, ...], shown: int = 10) -> str:

@@ -4,7 +4,7 @@
 from __future__ import annotations
 
 import json
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 import pandas as pd
@@ -55,19 +55,21 @@ class RosterQueries(Gateway):
         records: pd.DataFrame,
         rejected: Sequence[RejectedRow],
         into: int | None = None,
+        raw: Callable[[int, int], Sequence[str]] | None = None,
     ) -> Roster:
         """Store one roster (or, with ``into``, the next version of that roster) with all its accepted and
         rejected rows in a single transaction.
 
         ``records`` has the columns of ``DEPARTURE_FIELDS``. Either everything lands or nothing does. A new
         version leaves the earlier ones stored (their departures, rejected rows and cells) and becomes the
-        roster's newest; ``name`` is ignored then.
+        roster's newest; ``name`` is ignored then. ``raw``: gives the ``raw`` column for records ``start:stop``
+        when ``records`` has none (built a batch at a time, not held for every row at once).
         """
         if "reason_raw" not in records.columns and "reason" in records.columns:
             records = records.assign(reason_raw=records["reason"])
         # optional fields (issue 16): records from a file without announcement dates may leave them out
         records = records.assign(**{c: None for c in ("announced", "notice_days") if c not in records.columns})
-        missing = [c for c in DEPARTURE_FIELDS if c not in records.columns]
+        missing = [c for c in DEPARTURE_FIELDS if c not in records.columns and not (c == "raw" and raw)]
         if missing:
             raise StoreError(f"records lack columns {missing}")
         figures = {"source_name": source_name, "sha256": sha256, "imported_at": now_iso(),
@@ -98,7 +100,7 @@ class RosterQueries(Gateway):
                                                         author=current_actor(), **figures))
             if len(records):
                 bulk_insert(conn, departures, records, {"roster_id": roster_id, "version": version},
-                            columns=list(DEPARTURE_FIELDS))
+                            columns=list(DEPARTURE_FIELDS), computed={"raw": raw} if raw else None)
                 fill_cells_from_records(conn, roster_id, version, records)
             if rejected:
                 conn.execute(
