@@ -240,11 +240,13 @@ class CellQueries(Gateway):
         per roster firm-year; the universe's firm-years are not read), so the categorised firm cells (rules and
         case overrides applied) can be split into inside and outside the universe."""
         c, u = roster_firm_cells.c, universe_firm_years.c
-        inside = exists().where(u.universe_id == universe_id, u.firm_id == c.firm_id, u.year == c.year)
-        flag = case((inside, 1), else_=0).label("inside")
-        query = (select(c.firm_id, c.year, flag)
+        # a left join, not EXISTS per firm-year: about 1.6x faster on SQLite (benchmarks/bench_rates_rules.py)
+        joined = roster_firm_cells.outerjoin(
+            universe_firm_years, and_(u.universe_id == universe_id, u.firm_id == c.firm_id, u.year == c.year))
+        flag = func.max(case((u.year.is_not(None), 1), else_=0)).label("inside")
+        query = (select(c.firm_id, c.year, flag).select_from(joined)
                  .where(c.roster_id == roster_id, c.version == version_of(roster_id, version))
-                 .group_by(c.firm_id, c.year, flag).order_by(c.firm_id, c.year))
+                 .group_by(c.firm_id, c.year).order_by(c.firm_id, c.year))
         with self.engine.connect() as conn:
             rows = conn.execute(query).all()
         frame = pd.DataFrame.from_records([tuple(r) for r in rows], columns=["firm_id", "year", "inside"])
