@@ -4,8 +4,8 @@ finding and the pack of a rate run).
 
 The roster and its universe are invented here by a seeded generator. Oracles: a pandas count over the generated
 rows (not read back from the store), classified by ``app.stats.rules.apply_rules`` and then the overrides set by
-hand; statsmodels' Poisson GLM with log firm-years as offset (tests/data/README.md "Rates with an exposure
-offset") and its binomial GLM for the share inside the universe; the pack's reproduce.py (statsmodels refits).
+hand; statsmodels' Poisson GLM with log firm-years as offset (tests/data/README.md "Poisson trend with an
+exposure offset") and its binomial GLM for the share inside the universe; the pack's reproduce.py (statsmodels refits).
 """
 
 from __future__ import annotations
@@ -209,3 +209,27 @@ def reproduce(data: bytes) -> dict[str, Any]:
         payload["status"] = status
         payload["cells"] = pd.read_csv(folder / "cells.csv")
     return payload
+
+
+def test_pages_show_the_reclassified_rates_without_reading_the_records(store: Store, built: dict[str, Any]) -> None:
+    """The Trend and Coverage pages' Rates sections (their /api twins) show the pandas count with the rule and
+    the overrides, read from the cells: no whole roster and no list of the universe's firm-years is read."""
+    import re
+
+    from conftest import make_client
+    from sqlalchemy import event
+
+    store.update_settings(built["roster"], mapping_name="rr map", window=WINDOW)
+    expected = per_year(oracle(built["rows"], built["overrides"]), "forced")
+    seen: list[str] = []
+    event.listen(store.engine, "before_cursor_execute",
+                 lambda conn, cursor, statement, *args: seen.append(" ".join(statement.split())))
+    client = make_client(store)
+    for page in ("trend", "coverage"):
+        response = client.get(f"/api/rosters/{built['roster']}/{page}")
+        assert response.status_code == 200, response.text
+        assert [r["forced"] for r in response.json()["rates"]["years"]] == expected, page
+    # locating the overrides reads the departures of their years only (app.analysis.overrides, memoised)
+    assert not [s for s in seen if s.startswith("SELECT") and re.search(r"\bFROM departures\b", s)
+                and "departures.year IN" not in s]
+    assert not [s for s in seen if re.search(r"SELECT universe_firm_years\.firm_id, universe_firm_years\.year", s)]
