@@ -91,11 +91,24 @@ class AnalysisInput:
         cells = memoised(self.store, ("cells", *self.key, by_sector), lambda: cells_from_counts(self.counts, self.window, by_sector=by_sector))
         return replace(cells, groups=cells.groups.copy())
 
-    def cells(self, *, by_sector: bool = False) -> Cells:
-        """The group counts and the firm x cell matrix (reads the firm counts: for bootstrap jobs)."""
+    @property
+    def reclassifies(self) -> bool:
+        """True when the mapping version moves departures away from their code's category: it has rules, or
+        case overrides applied to this roster version (then counts keyed by code alone are not enough)."""
+        return (self.mapping is not None and bool(self.mapping.rules)) or any(r.applied for r in self.overrides)
+
+    def categorised_firms(self) -> pd.DataFrame:
+        """The firm cells of this roster version (per firm, year, sector, code[, age, tenure, interim, notice
+        days]) with each row's ``category`` as the share counts it: code, then rules, then case overrides.
+        Reads the firm counts (jobs, and the rates of a version that reclassifies); not memoised (callers
+        memoise what they derive)."""
         rules = self.mapping is not None and bool(self.mapping.rules)
         firms = self.store.firm_cell_counts(self.roster.id, self.roster.version, detail=rules)
-        return cells_from_counts(self.categorised(firms), self.window, by_sector=by_sector)
+        return self.categorised(firms)
+
+    def cells(self, *, by_sector: bool = False) -> Cells:
+        """The group counts and the firm x cell matrix (reads the firm counts: for bootstrap jobs)."""
+        return cells_from_counts(self.categorised_firms(), self.window, by_sector=by_sector)
 
     def counts_nothing(self) -> bool:
         """True when the mapping counts no departure as forced or voluntary (every code excluded)."""

@@ -29,8 +29,8 @@ from app.stats.trend import TrendError, fit_trend
 from app.stats.trend_report import json_interval, json_number
 from app.store import Store, StoreError, Universe
 
-__all__ = ["SHARE_VS_RATE", "RateAnalysis", "RatesSection", "UniverseFlags", "rate_summary", "rates_section",
-           "run_rates", "universe_flags", "universe_overview", "universe_or_error"]
+__all__ = ["SHARE_VS_RATE", "RateAnalysis", "RatesSection", "UniverseFlags", "categorised_universe_firms",
+           "rate_summary", "rates_section", "run_rates", "universe_flags", "universe_overview", "universe_or_error"]
 
 #: shown wherever a rate appears (pages, command output)
 SHARE_VS_RATE = ("Share vs rate: the forced share (forced / counted departures) can rise while the forced rate "
@@ -125,15 +125,49 @@ class _UniverseCounts:
 
 def _universe_counts(store: Store, inp: AnalysisInput, universe: Universe, window: tuple[int, int] | None
                      ) -> _UniverseCounts:
-    def compute() -> _UniverseCounts:
+    """Counts against the universe with each departure categorised as the share categorises it (code, then the
+    mapping's rules, then its case overrides): by code alone in SQL when the mapping reclassifies nothing,
+    else from the categorised firm cells split by the inside flag of their firm-year (issue 16)."""
+    roster_id, version = inp.roster.id, inp.roster.version
+
+    def by_code() -> _UniverseCounts:
         categories = inp.mapping.categories if inp.mapping else {}
-        counts = store.universe_cell_counts(inp.roster.id, universe.id)
+        counts = store.universe_cell_counts(roster_id, universe.id, version)
         counts = counts.assign(category=assign_categories(counts["reason"], categories))
-        outside = store.firms_outside_universe(inp.roster.id, universe.id, window)
+        outside = store.firms_outside_universe(roster_id, universe.id, window, version)
         outside = outside.assign(category=assign_categories(outside["reason"], categories))
         return _UniverseCounts(counts, store.universe_exposure(universe.id), outside)
+
+    def reclassified() -> _UniverseCounts:
+        firms = categorised_universe_firms(store, inp, universe.id)
+        counts = (firms.groupby(["year", "reason", "inside", "category"], sort=True)["departures"].sum()
+                  .reset_index())
+        counts = counts.loc[counts["departures"] > 0].reset_index(drop=True)
+        missing = set(store.firms_outside_universe(roster_id, universe.id, window, version)["firm_id"].astype(str))
+        rows = firms.loc[firms["firm_id"].astype(str).isin(missing)]
+        if window is not None:
+            rows = rows.loc[rows["year"].between(*window)]
+        outside = (rows[["firm_id", "reason", "category"]].drop_duplicates()
+                   .sort_values(["firm_id", "reason", "category"]).reset_index(drop=True))
+        return _UniverseCounts(counts, store.universe_exposure(universe.id), outside)
+
     # a universe id names one stored set of firm-years (never changed, never reused)
-    return memoised(store, ("universe_counts", *inp.key, universe.id, window), compute)
+    return memoised(store, ("universe_counts", *inp.key, universe.id, window),
+                    reclassified if inp.reclassifies else by_code)
+
+
+def categorised_universe_firms(store: Store, inp: AnalysisInput, universe_id: int) -> pd.DataFrame:
+    """The input's categorised firm cells (``AnalysisInput.categorised_firms``: code, rules, case overrides)
+    with ``inside``: whether the cell's (firm, year) is one of the universe's firm-years (flagged in SQL).
+    What the Rates section and the rate_ratio bootstrap's cells both count, so each classifies a departure as
+    the share does. Not memoised (one row per firm cell): callers memoise what they derive from it."""
+    firms = inp.categorised_firms()
+    flags = store.universe_firm_year_flags(inp.roster.id, universe_id, inp.roster.version)
+    keyed = firms[["firm_id", "year"]].astype({"firm_id": str, "year": "int64"})
+    flags = flags.astype({"firm_id": str, "year": "int64"})
+    # one flag per firm-year, so the left join keeps the firm cells' rows and order
+    inside = keyed.merge(flags, on=["firm_id", "year"], how="left")["inside"]
+    return firms.assign(inside=inside.eq(True).to_numpy(dtype=bool))
 
 
 def _flags(inp: AnalysisInput, found: _UniverseCounts, window: tuple[int, int] | None) -> UniverseFlags:

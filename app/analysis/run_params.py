@@ -16,7 +16,7 @@ from app.analysis.cellstore import memoised
 from app.analysis.inputs import AnalysisInput
 from app.analysis.rates import run_rates, universe_or_error
 from app.stats.adjusted import ADJUSTMENTS, bootstrap_cells, fit_adjusted, parse_adjust
-from app.stats.cells import Cells, assign_categories
+from app.stats.cells import Cells
 from app.stats.design import window_centre
 from app.stats.draws import SAMPLER, check_sampler
 from app.stats.measures import RATE_NEEDS_FIRMS, adjusted_statistic, rate_cells, rate_ratio_statistic
@@ -136,12 +136,12 @@ def cells_for(inp: AnalysisInput, params: dict[str, Any], *, firms: bool = True)
 def rate_run_cells(inp: AnalysisInput, universe_id: int) -> Cells:
     """Universe firms x (forced departures per year, firm-years per year) over the window (memoised).
 
-    Departures are categorised by their codes, as the Rates section counts them, so the original estimate is
-    the rate ratio the Rates section reports."""
+    Departures are categorised as the share and the Rates section categorise them (code, then the mapping's
+    rules, then its case overrides: ``AnalysisInput.categorised_firms``), so the original estimate is the rate
+    ratio the Rates section reports."""
     def compute() -> Cells:
-        firms = inp.store.firm_cell_counts(inp.roster.id, inp.roster.version)
-        categories = inp.mapping.categories if inp.mapping else {}
-        forced = firms.loc[(assign_categories(firms["reason"], categories) == "forced").to_numpy()]
+        firms = inp.categorised_firms()
+        forced = firms.loc[(firms["category"] == "forced").to_numpy()]
         return rate_cells(inp.store.universe_firm_years(universe_id), forced, inp.window)
     return memoised(inp.store, ("rate_cells", *inp.key, universe_id), compute)
 
