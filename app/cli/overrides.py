@@ -30,16 +30,22 @@ def _listed(p: dict[str, Any]) -> str:
 
 
 def register(sub: Any, common: Callable[..., None], store_of: StoreOf, emit: Emit) -> None:
-    """Add ``override add``, ``override list`` and ``override remove`` to the command line's subparsers."""
-    from app.analysis import overrides as ov
-    from app.analysis.inputs import current_mapping
+    """Add ``override add``, ``override list`` and ``override remove`` to the command line's subparsers.
+
+    The analysis modules (numpy, pandas) are imported when a command runs, not when the parser is built, so
+    every other command (``helmshift fit``'s quick path above all) starts without them."""
 
     def payload(store: Any, roster: Any, mapping: Any) -> dict[str, Any]:
+        from app.analysis import overrides as ov
+
         resolved = ov.resolve_overrides(store, roster, mapping)
         return {"roster": roster.name, "roster_id": roster.id, "mapping": f"{mapping.name}:{mapping.version}",
                 "overrides": ov.overrides_to_list(resolved, mapping)}
 
     def add(args: argparse.Namespace) -> int:
+        from app.analysis import overrides as ov
+        from app.analysis.inputs import current_mapping
+
         if (args.id is None) == (args.line is None):
             raise CommandError("Name the record with --line N (its line in the roster file) or --id N, not both.")
         store = store_of(args)
@@ -52,12 +58,17 @@ def register(sub: Any, common: Callable[..., None], store_of: StoreOf, emit: Emi
         return 0
 
     def listing(args: argparse.Namespace) -> int:
+        from app.analysis.inputs import current_mapping
+
         store = store_of(args)
         roster = store.get_roster(args.roster)
         emit(args, payload(store, roster, current_mapping(store, roster, args.mapping)), _listed)
         return 0
 
     def remove(args: argparse.Namespace) -> int:
+        from app.analysis import overrides as ov
+        from app.analysis.inputs import current_mapping
+
         store = store_of(args)
         roster = store.get_roster(args.roster)
         saved = ov.remove_override(store, current_mapping(store, roster, args.mapping), args.number,
