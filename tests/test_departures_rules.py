@@ -170,3 +170,34 @@ def test_every_linked_count_equals_the_linked_lists_total_with_rules(demo_store:
     assert "demo ruled:2" in refs, refs  # the reading with the rule and the override
     for href, shown in links:
         assert _total(client, 1, _params(href)) == int(shown.replace(",", "")), href
+
+
+# -- interim and notice-day rules: the other two fields ---------------------------------------------------
+NOTICE_CSV = (
+    "firm_id,year,date,announced,reason,interim\n"
+    "B1,2001,2001-06-30,2001-01-01,Retired,yes\n"   # 180 days' notice (< 183); interim: rule 2 -> excluded
+    "B2,2001,2001-06-30,2000-06-01,Retired,yes\n"   # 394 days: rule 1 -> voluntary before the interim rule
+    "B3,2001,2001-06-30,2001-06-20,Retired,no\n"    # 10 days, not interim: rule 3 -> forced
+    "B4,2001,2001-06-30,,Retired,no\n"              # no notice, not interim: its code, voluntary
+    "B5,2001,2001-06-30,,Retired,yes\n"             # no notice, interim: rule 2 -> excluded
+    "B6,2001,2001-06-30,2001-05-31,Retired,\n"      # exactly 30 days (not below 30), no flag: voluntary
+)
+NOTICE_RULES = (ClassificationRule("Retired", "notice_days", "at_least", 183, "voluntary"),
+                ClassificationRule("Retired", "interim", "equals", 1, "excluded"),
+                ClassificationRule("Retired", "notice_days", "below", 30, "forced"))
+NOTICE_EXPECTED = {"B1": "excluded", "B2": "voluntary", "B3": "forced", "B4": "voluntary", "B5": "excluded",
+                   "B6": "voluntary"}
+
+
+def test_interim_and_notice_day_rules_classify_as_by_hand(store: Store) -> None:
+    roster = import_roster(store, NOTICE_CSV.encode(), "notice.csv", name="notice").roster
+    store.save_mapping_version("notice map", {"Retired": "voluntary"}, rules=NOTICE_RULES)
+    store.update_settings(roster.id, mapping_name="notice map")
+    client = make_client(store)
+    body = client.get(f"/api/rosters/{roster.id}/departures").json()
+    assert {d["firm_id"]: d["category"] for d in body["departures"]} == NOTICE_EXPECTED
+    table = client.get(f"/api/rosters/{roster.id}/coverage").json()["table"]
+    row = next(r for r in table if r["year"] == 2001)
+    for category in ("forced", "voluntary", "excluded"):
+        by_hand = sum(c == category for c in NOTICE_EXPECTED.values())
+        assert row[category] == by_hand == _total(client, roster.id, {"year": 2001, "category": category})
