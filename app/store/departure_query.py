@@ -1,8 +1,12 @@
 """Filtered, sorted, paged reads of a roster's departures: the record browser and its exports.
 
-Every filter, the category lookup through a mapping version, the sort and the page are done by the
-database (one LEFT JOIN on ``mapping_entries`` gives each departure its category), so a roster of
-100,000 departures is never read into Python to show 50 of them.
+Every filter, the category, the sort and the page are done by the database, so a roster of 100,000
+departures is never read into Python to show 50 of them. A departure's category is one CASE expression that
+classifies as the counts do (app.analysis.cellstore ``categorise`` and app.analysis.overrides): a case
+override of the record first, then the mapping version's classification rules in order (first match wins; a
+record without the rule's field is not matched), then its code's category. The caller gives the category of
+each stored code spelling (``DepartureFilter.codes``: the counts match codes by code key, which SQL cannot
+compute) and the rules; see app.analysis.browse.
 """
 
 from __future__ import annotations
@@ -14,11 +18,11 @@ from typing import Any
 import pandas as pd
 from sqlalchemy import ColumnElement, Select, and_, case, func, literal, or_, select
 
-from app.store.cells import version_of
+from app.store.cells import completed, version_of
 from app.store.engine import Gateway
 from app.store.records import MAX_ID, StoreError
-from app.store.tables import departures, mapping_entries, mapping_versions, mappings
-from app.types import CATEGORIES, UNMAPPED
+from app.store.tables import departures, mapping_entries, mapping_rules, mapping_versions, mappings
+from app.types import CATEGORIES, UNMAPPED, ClassificationRule
 
 #: the category values a filter accepts: the mapping's categories, "unmapped", and "counted"
 #: (forced or voluntary: the departures every model counts)
@@ -68,6 +72,11 @@ class DepartureFilter:
     #: (departure id, category) of the mapping version's case overrides in this roster version: they take
     #: precedence over the code's category (app/analysis/overrides.py)
     overrides: tuple[tuple[int, str], ...] = ()
+    #: (stored reason code, category) for the roster version's codes under the mapping version, matched as the
+    #: counts match them (by code key); None: the store matches the version's entries by exact spelling
+    codes: tuple[tuple[str, str], ...] | None = None
+    #: the mapping version's classification rules in evaluation order (None: read from the mapping version)
+    rules: tuple[ClassificationRule, ...] | None = None
 
     def __post_init__(self) -> None:
         if self.category is not None and self.category not in CATEGORY_FILTERS:
@@ -82,6 +91,29 @@ class DepartureFilter:
 class DeparturePage:
     total: int
     rows: list[dict[str, Any]]
+
+
+def _grouped(pairs: Collection[tuple[Any, str]]) -> dict[str, list[Any]]:
+    """category -> the keys (departure ids or codes) that have it, in the given order."""
+    out: dict[str, list[Any]] = {}
+    for key, cat in pairs:
+        out.setdefault(str(cat), []).append(key)
+    return out
+
+
+def _rule_test(rule: ClassificationRule) -> ColumnElement[bool]:
+    """The rule's comparison in SQL, as app.stats.rules.apply_rules makes it: age and tenure in completed years
+    (``completed``, as the cell store keys them), interim 1/0, notice in whole days. A NULL field makes the
+    comparison NULL, so the CASE goes on to the next rule: a record without the field keeps its category."""
+    d = departures.c
+    if rule.field == "interim":
+        return d.interim == bool(rule.value)
+    value = completed(d[rule.field]) if rule.field in ("age", "tenure") else d[rule.field]
+    if rule.comparison == "below":
+        return value < rule.value
+    if rule.comparison == "at_least":
+        return value >= rule.value
+    return value == rule.value
 
 
 class DepartureQueries(Gateway):
@@ -102,22 +134,39 @@ class DepartureQueries(Gateway):
             raise StoreError(f"No version {version} of mapping {name!r} is stored.")
         return int(row.id)
 
-    def _departure_select(self, roster_id: int, flt: DepartureFilter) -> Select[Any]:
+    def _version_classification(self, version_id: int) -> tuple[tuple[tuple[str, str], ...],
+                                                                tuple[ClassificationRule, ...]]:
+        """A mapping version's (code, category) entries and its rules in order, as stored."""
+        with self.engine.connect() as conn:
+            entries = conn.execute(select(mapping_entries.c.code, mapping_entries.c.category)
+                                   .where(mapping_entries.c.version_id == version_id)).fetchall()
+            rules = conn.execute(select(mapping_rules).where(mapping_rules.c.version_id == version_id)
+                                 .order_by(mapping_rules.c.position)).fetchall()
+        return (tuple((str(e.code), str(e.category)) for e in entries),
+                tuple(ClassificationRule(r.code, r.field, r.comparison, int(r.value), r.category) for r in rules))
+
+    def _category(self, flt: DepartureFilter) -> ColumnElement[Any]:
+        """Each departure's category as the counts classify it: override, then rules, then its code."""
         version_id = self._mapping_version_id(flt.mapping)
-        entry = mapping_entries.alias("entry")
         if version_id is None:
-            category: ColumnElement[Any] = literal(UNMAPPED)
-            source: Any = departures
-        else:
-            category = func.coalesce(entry.c.category, UNMAPPED)
-            source = departures.outerjoin(
-                entry, and_(entry.c.code == departures.c.reason, entry.c.version_id == version_id))
-            by_category: dict[str, list[int]] = {}
-            for departure_id, cat in flt.overrides:
-                by_category.setdefault(cat, []).append(int(departure_id))
-            if by_category:
-                category = case(*((departures.c.id.in_(ids), literal(cat)) for cat, ids in sorted(by_category.items())),
-                                else_=category)
+            return literal(UNMAPPED)
+        codes, rules = flt.codes, flt.rules
+        if codes is None or rules is None:
+            stored_codes, stored_rules = self._version_classification(version_id)
+            codes = stored_codes if codes is None else codes
+            rules = stored_rules if rules is None else rules
+        d = departures.c
+        whens: list[tuple[ColumnElement[bool], Any]] = []
+        for cat, ids in sorted(_grouped(flt.overrides).items()):
+            whens.append((d.id.in_(ids), literal(cat)))
+        for rule in rules:
+            whens.append((and_(d.reason == rule.code, _rule_test(rule)), literal(rule.category)))
+        for cat, reasons in sorted(_grouped(codes).items()):
+            whens.append((d.reason.in_(reasons), literal(cat)))
+        return case(*whens, else_=literal(UNMAPPED)) if whens else literal(UNMAPPED)
+
+    def _departure_select(self, roster_id: int, flt: DepartureFilter) -> Select[Any]:
+        category = self._category(flt)
         d = departures.c
         conditions: list[ColumnElement[bool]] = [d.roster_id == roster_id,
                                                  d.version == version_of(roster_id, flt.version)]
@@ -144,7 +193,7 @@ class DepartureQueries(Gateway):
             texts = (d.firm_id, d.firm_name, d.sector, d.executive, d.reason, d.notes)
             conditions.append(or_(*(func.lower(c).contains(needle, autoescape=True) for c in texts)))
         columns = [d[f] for f in LISTED_FIELDS if f != "category"]
-        return select(*columns, category.label("category"), d.id.label("id")).select_from(source).where(*conditions)
+        return select(*columns, category.label("category"), d.id.label("id")).where(*conditions)
 
     def count_departures(self, roster_id: int, flt: DepartureFilter) -> int:
         inner = self._departure_select(roster_id, flt).subquery()

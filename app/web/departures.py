@@ -14,6 +14,7 @@ from urllib.parse import urlencode
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 
+from app.analysis.browse import departure_filter
 from app.analysis.inputs import parse_mapping_ref
 from app.analysis.overrides import resolve_overrides
 from app.intake.spreadsheet_safety import safe_csv
@@ -133,8 +134,8 @@ def _read(store: Store, request: Request, roster_id: int) -> _Request:
                               "author": r.override.author, "created_at": r.override.created_at}
              for r in resolved if r.departure_id is not None}
     try:
-        flt = DepartureFilter(mapping=mapping, overrides=tuple((i, str(m["category"])) for i, m in marks.items()),
-                              **values)
+        # the same classification as the counts that link here: override, then rules, then code (by code key)
+        flt = departure_filter(store, roster, version, resolved, **values)
     except StoreError as exc:
         raise BadRequest(str(exc)) from exc
     label = f"{mapping[0]} v{mapping[1]}" if mapping else "no mapping"
