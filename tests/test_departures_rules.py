@@ -56,10 +56,10 @@ ROBUSTNESS_LINK = re.compile(r'<a href="([^"]+)" title="the (?:forced|counted) d
                              r'([\d,]+)</a>')
 
 
-def built(store: Store) -> int:
+def built(store: Store, rules: tuple[ClassificationRule, ...] = RULES) -> int:
     """The small roster with the mapping version (rules, and two overrides) as its settings' mapping."""
     roster = import_roster(store, (HEADER + ROWS).encode(), "rules.csv", name="rules").roster
-    mapping = store.save_mapping_version("rule map", CATEGORIES, rules=RULES)
+    mapping = store.save_mapping_version("rule map", CATEGORIES, rules=rules)
     ids = store.departures(roster.id).set_index("firm_id")["id"]
     mapping = add_override(store, roster, mapping, int(ids["A1"]), "voluntary", "board statement: a retirement")
     add_override(store, roster, mapping, int(ids["A8"]), "forced", "press release of the board")
@@ -93,6 +93,23 @@ def test_each_record_gets_the_category_the_rules_and_overrides_give(store: Store
     # sorted by category: the SQL sort uses the same CASE (alphabetical: excluded, forced, unmapped, voluntary)
     ordered = client.get(f"/api/rosters/{roster_id}/departures", params={"sort": "category", "per_page": 100})
     assert [d["category"] for d in ordered.json()["departures"]] == sorted(EXPECTED.values())
+
+
+def test_rules_name_their_code_in_any_spelling(store: Store) -> None:
+    """A rule written "RETIRED  " (as a rules CSV typed by hand may have it) reaches the roster's "Retired"
+    records, in the counts and in the browser alike: rules match codes by code key, as mappings do. Expected
+    categories: the same hand counts as for the rules spelled as stored."""
+    respelled = tuple(ClassificationRule("RETIRED  ", r.field, r.comparison, r.value, r.category) for r in RULES)
+    roster_id = built(store, respelled)
+    client = make_client(store)
+    body = client.get(f"/api/rosters/{roster_id}/departures", params={"per_page": 100}).json()
+    assert {d["firm_id"]: d["category"] for d in body["departures"]} == EXPECTED
+    years = {f"A{i}": int(row.split(",")[3]) for i, row in enumerate(ROWS.splitlines(), start=1)}
+    table = {row["year"]: row for row in client.get(f"/api/rosters/{roster_id}/coverage").json()["table"]}
+    for year in (2001, 2002):
+        for category in ("forced", "excluded"):
+            assert table[year][category] == sum(1 for f, c in EXPECTED.items()
+                                                if c == category and years[f] == year), (year, category)
 
 
 def test_coverage_counts_equal_the_linked_lists_and_the_hand_counts(store: Store) -> None:

@@ -17,7 +17,9 @@ import pandas as pd
 from app.analysis.cellstore import roster_counts
 from app.analysis.overrides import ResolvedOverride
 from app.stats.cells import assign_categories
+from app.stats.codekeys import code_key
 from app.store import DepartureFilter, MappingVersion, Roster, Store
+from app.types import ClassificationRule
 
 
 def code_categories(store: Store, roster: Roster, mapping: MappingVersion | None,
@@ -32,6 +34,21 @@ def code_categories(store: Store, roster: Roster, mapping: MappingVersion | None
     return tuple(zip(reasons.tolist(), categories.tolist(), strict=True))
 
 
+def spelled_rules(rules: Sequence[ClassificationRule],
+                   codes: Sequence[tuple[str, str]]) -> tuple[ClassificationRule, ...]:
+    """Each rule once per stored spelling of its code (matched by code key, as ``apply_rules`` matches), in the
+    rules' order: the store's CASE compares stored codes exactly. A rule whose code the roster does not hold
+    is kept as written (it matches nothing, as in the counts)."""
+    spellings: dict[str, list[str]] = {}
+    for stored, _ in codes:
+        spellings.setdefault(code_key(stored), []).append(stored)
+    out: list[ClassificationRule] = []
+    for rule in rules:
+        for stored in spellings.get(code_key(rule.code), [rule.code]):
+            out.append(ClassificationRule(stored, rule.field, rule.comparison, rule.value, rule.category))
+    return tuple(out)
+
+
 def departure_filter(store: Store, roster: Roster, mapping: MappingVersion | None,
                      resolved: Sequence[ResolvedOverride] = (), **values: Any) -> DepartureFilter:
     """A ``DepartureFilter`` on ``values`` (year, sector, category, ...) whose categories are the counts'.
@@ -40,7 +57,7 @@ def departure_filter(store: Store, roster: Roster, mapping: MappingVersion | Non
     raises ``StoreError`` for a bad filter value.
     """
     overrides = tuple((int(r.departure_id), r.override.category) for r in resolved if r.departure_id is not None)
+    codes = code_categories(store, roster, mapping, values.get("version"))
     return DepartureFilter(
         mapping=(mapping.name, mapping.version) if mapping else None, overrides=overrides if mapping else (),
-        codes=code_categories(store, roster, mapping, values.get("version")),
-        rules=tuple(mapping.rules) if mapping else (), **values)
+        codes=codes, rules=spelled_rules(mapping.rules, codes) if mapping else (), **values)

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from app.stats.codekeys import code_key
 from app.types import CATEGORIES, RULE_COMPARISONS, RULE_FIELDS, ClassificationRule
 
 #: thresholds the rule table accepts (whole years or days; interim 0 or 1)
@@ -94,7 +95,10 @@ def apply_rules(frame: pd.DataFrame, categories: np.ndarray,
     result = np.asarray(categories, dtype=object).copy()
     weight = (frame["departures"].to_numpy(dtype=np.int64) if "departures" in frame
               else np.ones(len(frame), dtype=np.int64))
-    reason = frame["reason"].astype(str).to_numpy()
+    # a rule names its code as the mapping does: matched by code key, like the mapping's categories, so a
+    # rule for "RETIRED" reaches a roster that stores the code as "Retired"
+    reasons = frame["reason"].astype(str)
+    reason = reasons.map({r: code_key(r) for r in reasons.unique()}).to_numpy(dtype=object)
     decided = np.zeros(len(frame), dtype=bool)
     effects: list[RuleEffect] = []
     cache: dict[str, np.ndarray] = {}
@@ -103,7 +107,7 @@ def apply_rules(frame: pd.DataFrame, categories: np.ndarray,
             cache[rule.field] = (field_values(frame, rule.field) if rule.field in frame
                                  else np.full(len(frame), np.nan))
         values = cache[rule.field]
-        reach = (reason == rule.code) & ~decided
+        reach = (reason == code_key(rule.code)) & ~decided
         present = ~np.isnan(values)
         with np.errstate(invalid="ignore"):
             test = {"below": values < rule.value, "at_least": values >= rule.value,
