@@ -37,6 +37,22 @@ QUASI_DISPERSION, QUASI_MIN_DF = 1.5, 5
 BRACKET_STEPS = (0.5, 1.0, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0, 24.0, 32.0, 64.0)
 
 
+def bracketed_ends(excess, b: float, se: float) -> tuple[float, float]:
+    """Both ends of a profile interval: where ``excess`` (deviance rise over the cut) crosses zero on each side
+    of the estimate ``b``, bracketed outwards in steps of ``se`` (an open end is infinite)."""
+    ends = []
+    for sign in (-1.0, 1.0):
+        inner, end = b, sign * math.inf
+        for k in BRACKET_STEPS:
+            outer = b + sign * k * se
+            if excess(outer) > 0:
+                end = optimize.brentq(excess, min(inner, outer), max(inner, outer), xtol=1e-13)
+                break
+            inner = outer
+        ends.append(end)
+    return ends[0], ends[1]
+
+
 def read_csv(folder: Path, name: str) -> pd.DataFrame:
     """A pack CSV, every cell as text (empty = missing); ``floats``/ints convert the columns wanted."""
     return pd.read_csv(folder / name, dtype=str, keep_default_na=False)
@@ -110,17 +126,7 @@ def profile(forced: np.ndarray, totals: np.ndarray, X: np.ndarray, j: int, alpha
         return float((glm(forced, totals, others, offset=value * column).deviance - full.deviance)
                      / dispersion - cut)
 
-    ends = []
-    for sign in (-1.0, 1.0):
-        inner, end = b, sign * math.inf
-        for k in BRACKET_STEPS:
-            outer = b + sign * k * se
-            if excess(outer) > 0:
-                end = optimize.brentq(excess, min(inner, outer), max(inner, outer), xtol=1e-13)
-                break
-            inner = outer
-        ends.append(end)
-    return ends[0], ends[1]
+    return bracketed_ends(excess, b, se)
 
 
 def natural_spline(x: np.ndarray, df: int) -> np.ndarray:
@@ -257,17 +263,7 @@ def poisson_profile(events: np.ndarray, exposure: np.ndarray, t: np.ndarray, b: 
     def excess(value: float) -> float:
         return (float(poisson(events, exposure, ones, extra=value * t).deviance) - best) / dispersion - cut
 
-    ends = []
-    for sign in (-1.0, 1.0):
-        inner, end = b, sign * math.inf
-        for k in BRACKET_STEPS:
-            outer = b + sign * k * se
-            if excess(outer) > 0:
-                end = optimize.brentq(excess, min(inner, outer), max(inner, outer), xtol=1e-13)
-                break
-            inner = outer
-        ends.append(end)
-    return ends[0], ends[1]
+    return bracketed_ends(excess, b, se)
 
 
 def rate_refit(folder: Path, params: dict[str, Any], results: dict[str, Any]) -> list[tuple[str, float, Any]]:

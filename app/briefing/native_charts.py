@@ -33,6 +33,19 @@ from app.briefing.rate_chart import COLOURS, FITTED, OBSERVED
 FONT = "Arial"
 
 
+
+def _year_axis(x_axis: Any, years: list[float]) -> None:
+    """A fiscal-year value axis: ticks every 1, 2 or 5 years by the span, at whole multiples of the step at
+    both ends (so every tick sits on a year and is labelled with it), labels below the plot."""
+    span = max(years) - min(years)
+    unit = 1 if span <= 12 else 2 if span <= 24 else 5
+    x_axis.minimum_scale = math.floor((min(years) - 1) / unit) * unit
+    x_axis.maximum_scale = math.ceil((max(years) + 1) / unit) * unit
+    x_axis.major_unit = unit
+    x_axis.tick_labels.number_format = "0"
+    x_axis.tick_labels.number_format_is_linked = False
+    x_axis.tick_label_position = XL_TICK_LABEL_POSITION.LOW
+
 def _rgb(hex_colour: str) -> RGBColor:
     return RGBColor.from_string(hex_colour.lstrip("#"))
 
@@ -184,15 +197,7 @@ def trend_chart(slide: Slide, fig: go.Figure, box: tuple[float, float, float, fl
         series.smooth = False
     years = _floats(fitted.x) + _floats(observed.x)
     x_axis, y_axis = chart.category_axis, chart.value_axis
-    span = max(years) - min(years)
-    unit = 1 if span <= 12 else 2 if span <= 24 else 5
-    # whole multiples of the tick step at both ends, so every tick sits on a year and is labelled with it
-    x_axis.minimum_scale = math.floor((min(years) - 1) / unit) * unit
-    x_axis.maximum_scale = math.ceil((max(years) + 1) / unit) * unit
-    x_axis.major_unit = unit
-    x_axis.tick_labels.number_format = "0"
-    x_axis.tick_labels.number_format_is_linked = False
-    x_axis.tick_label_position = XL_TICK_LABEL_POSITION.LOW
+    _year_axis(x_axis, years)
     y_axis.minimum_scale = 0
     y_axis.maximum_scale = float(fig.layout.yaxis.range[1]) if fig.layout.yaxis.range else 1.0
     y_axis.tick_labels.number_format = "0%"
@@ -320,13 +325,7 @@ def rates_chart(slide: Slide, fig: go.Figure, box: tuple[float, float, float, fl
             line.format.line.dash_style = MSO_LINE_DASH_STYLE.DASH
     years = _floats(_trace(fig, OBSERVED["forced"]).x)
     x_axis, y_axis = chart.category_axis, chart.value_axis
-    unit = 1 if max(years) - min(years) <= 12 else 2 if max(years) - min(years) <= 24 else 5
-    x_axis.minimum_scale = math.floor((min(years) - 1) / unit) * unit
-    x_axis.maximum_scale = math.ceil((max(years) + 1) / unit) * unit
-    x_axis.major_unit = unit
-    x_axis.tick_labels.number_format = "0"
-    x_axis.tick_labels.number_format_is_linked = False
-    x_axis.tick_label_position = XL_TICK_LABEL_POSITION.LOW
+    _year_axis(x_axis, years)
     y_axis.minimum_scale = 0
     if fig.layout.yaxis.range:
         y_axis.maximum_scale = float(fig.layout.yaxis.range[1])
