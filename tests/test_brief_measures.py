@@ -21,7 +21,6 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 from conftest import make_client
-from pptx import Presentation
 from pptx.enum.chart import XL_CHART_TYPE
 from pptx.oxml.ns import qn
 
@@ -35,6 +34,7 @@ from app.briefing.findings import build_finding
 from app.cli import main
 from app.intake.universe import derive_universe
 from app.store import Store, StoreError
+from tests.test_signed_exports import _charts, _notes, _slides, _text
 
 ROSTER = 1
 ALL = ("age", "tenure", "sector")
@@ -45,22 +45,6 @@ def measured(demo_store: Store) -> Store:
     """The demo roster with a universe derived from it (labelled an approximation)."""
     derive_universe(demo_store, ROSTER)
     return demo_store
-
-
-def _slides(data: bytes) -> list[Any]:
-    return list(Presentation(io.BytesIO(data)).slides)
-
-
-def _text(slide: Any) -> str:
-    return " ".join(sh.text_frame.text.replace("\n", " ") for sh in slide.shapes if sh.has_text_frame)
-
-
-def _notes(slide: Any) -> str:
-    return str(slide.notes_slide.notes_text_frame.text) if slide.has_notes_slide else ""
-
-
-def _charts(slide: Any) -> list[Any]:
-    return [sh.chart for sh in slide.shapes if sh.has_chart]
 
 
 def _values(series: Any, tag: str) -> list[float]:
