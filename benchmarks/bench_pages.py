@@ -47,8 +47,9 @@ def load() -> str:
 
 # -- the roster ----------------------------------------------------------------------------------
 def build_database(path: Path, rows: int) -> None:
-    """Import generated rosters (seed 1, 2, ...) as one file of at least ``rows`` lines into ``path``."""
-    sys.path.insert(0, str(ROOT))
+    """Import generated rosters (seed 1, 2, ...) as one file of at least ``rows`` lines into ``path``, with the
+    code of the tree this runs in (the current working directory)."""
+    sys.path.insert(0, str(Path.cwd()))
     sys.path.insert(0, str(ROOT / "demo_data"))
     import pandas as pd
     from generate import generate_roster  # type: ignore[import-not-found]
@@ -166,15 +167,18 @@ def main() -> None:
     parser.add_argument("--before", default=BEFORE, help="git revision to compare with")
     parser.add_argument("--resamples", type=int, default=20_000)
     parser.add_argument("--child", type=Path, help=argparse.SUPPRESS)
+    parser.add_argument("--build", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.build:
+        build_database(args.build, args.rows)
+        return
     if args.child:
         print(json.dumps(measure(args.child, args.resamples)))
         return
 
-    cache = Path(tempfile.gettempdir()) / f"helmshift-bench-pages-{args.rows}.db"
-    if not cache.exists():
-        build_database(cache, args.rows)
     print(f"{os.cpu_count()} CPUs; load average at start {load()}", flush=True)
+    before_rev = subprocess.run(["git", "rev-parse", "--short", args.before], cwd=ROOT, check=True,
+                                capture_output=True, text=True).stdout.strip()
     with tempfile.TemporaryDirectory(prefix="helmshift-before-") as tmp:
         before_tree = Path(tmp) / "tree"
         before_tree.mkdir()
@@ -182,7 +186,16 @@ def main() -> None:
         subprocess.run(["tar", "-x", "-C", str(before_tree)], input=archive.stdout, check=True)
         results = {}
         for label, tree in (("before", before_tree), ("after", ROOT)):
-            db = Path(tmp) / f"{label}.db"  # each tree gets its own copy (the newer one migrates its copy)
+            # each tree imports the same generated rosters with its own code (an older tree cannot open a
+            # database at a newer schema); cached per revision in the temp folder
+            tag = before_rev if label == "before" else "current"
+            cache = Path(tempfile.gettempdir()) / f"helmshift-bench-pages-{args.rows}-{tag}.db"
+            if not cache.exists() or label == "after":
+                cache.unlink(missing_ok=True)
+                subprocess.run([sys.executable, str(Path(__file__).resolve()), "--build", str(cache),
+                                "--rows", str(args.rows)], cwd=tree, check=True,
+                               env={**os.environ, "PYTHONPATH": str(tree)})
+            db = Path(tmp) / f"{label}.db"
             shutil.copyfile(cache, db)
             results[label] = run_tree(tree, db, args.resamples)
             print(f"measured {label} ({args.before if label == 'before' else 'this tree'}); load {load()}",

@@ -95,12 +95,17 @@ def period_comparison(inp: AnalysisInput, periods: tuple[tuple[int, int], tuple[
     Periods may reach outside the analysis window: they count every forced and voluntary departure of
     their years under the input's mapping. Raises ``PeriodError`` for periods that cannot be compared.
     """
-    years = inp.counts["year"]
-    # every year of the roster, read from the cell store (no read of the records)
-    groups = cells_from_counts(inp.counts, (int(years.min()), int(years.max()))).groups
-    counts = groups.assign(total=groups["forced"] + groups["voluntary"])
     first, second = periods if periods is not None else default_periods(inp.window)
-    return compare_periods(counts, first, second)
+
+    def compare() -> PeriodComparison:
+        years = inp.counts["year"]
+        # every year of the roster, read from the cell store (no read of the records)
+        groups = cells_from_counts(inp.counts, (int(years.min()), int(years.max()))).groups
+        counts = groups.assign(total=groups["forced"] + groups["voluntary"])
+        return compare_periods(counts, first, second)
+
+    # memoised: its profile-likelihood interval was ~60% of a warm Trend visit (benchmarks/README.md)
+    return memoised(inp.store, ("periods", *inp.key, first, second), compare)
 
 
 def fit_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", by_sector: bool = False,

@@ -7,11 +7,14 @@ import math
 from datetime import datetime
 from pathlib import Path
 from typing import Any
+from weakref import ref
 
 from fastapi import Request
 from fastapi.responses import HTMLResponse, JSONResponse
 from fastapi.templating import Jinja2Templates
+from jinja2 import pass_context
 from markupsafe import Markup
+from starlette.datastructures import URL, URLPath
 
 from app import __version__
 from app.jsonable import jsonable
@@ -22,6 +25,36 @@ STATIC_DIR = Path(__file__).resolve().parents[2] / "static"
 templates = Jinja2Templates(directory=str(TEMPLATE_DIR))
 templates.env.autoescape = True
 templates.env.globals["tool_version"] = __version__
+
+# Starlette's ``url_for`` asks the router to find the route by name on every call, and FastAPI's router walks
+# every route (and its version contexts) to do so: ~0.5 ms a call, and a Coverage page with 150 count links
+# spent most of its rendering there (benchmarks/README.md, bench_pages.py). A router's routes are fixed once the
+# app is built, so a name and its path parameters always give the same path: kept per router (bounded), made
+# absolute against each request's own base URL exactly as ``Request.url_for`` does.
+# keyed by id (FastAPI's routers are not hashable), each entry dropped when its router is collected
+_PATHS: dict[int, tuple[ref[Any], dict[tuple[str, tuple[tuple[str, Any], ...]], URLPath]]] = {}
+_MAX_PATHS = 20_000
+
+
+@pass_context
+def _url_for(context: dict[str, Any], name: str, /, **path_params: Any) -> URL:
+    request: Request = context["request"]
+    router = request.scope.get("router") or request.scope["app"]
+    held = _PATHS.get(id(router))
+    if held is None or held[0]() is not router:
+        key_id = id(router)
+        held = _PATHS[key_id] = (ref(router, lambda _gone: _PATHS.pop(key_id, None)), {})
+    paths = held[1]
+    key = (name, tuple(sorted(path_params.items())))
+    path = paths.get(key)
+    if path is None:
+        if len(paths) >= _MAX_PATHS:
+            paths.clear()
+        path = paths[key] = router.url_path_for(name, **path_params)
+    return path.make_absolute_url(base_url=request.base_url)
+
+
+templates.env.globals["url_for"] = _url_for
 
 
 def _fmt_pct(value: float | None, digits: int = 1) -> str:
