@@ -224,3 +224,65 @@ def test_cli_import_into_and_roster_diff(capsys: pytest.CaptureFixture[str], tmp
     assert code == 0 and "version 1 -> 2: 1 added, 1 removed, 2 changed" in text
     code, _, err = cli(capsys, "roster", "diff", "desk", "--from", "1", "--to", "5", "--db", db)
     assert code != 0 and "no version 5" in err
+
+
+# -- two processes on one store ------------------------------------------------------------------------
+def _version_file(tmp_path: Path, k: int) -> Path:
+    """V2 with one more invented departure per file, so each refresh differs from the one before it."""
+    path = tmp_path / f"week{k}.csv"
+    path.write_text(V2 + f"G{k},Extra {k},Energy,2007,2007-0{k}-01,Resigned,Exec {k}\n")
+    return path
+
+
+def test_refreshes_of_one_roster_from_three_processes_take_successive_versions(db_url: str, tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    first = tmp_path / "w1.csv"
+    first.write_text(V1)
+    base = [sys.executable, "-m", "app.cli", "import"]
+    done = subprocess.run([*base, str(first), "--db", db_url, "--name", "desk", "--json"], capture_output=True,
+                          text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    # three refreshes at once: each must become its own version (before the fix two of them read the same
+    # current version and one failed with a raw UNIQUE-constraint traceback)
+    procs = [subprocess.Popen([*base, str(_version_file(tmp_path, k)), "--db", db_url, "--into", "desk", "--json"],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for k in (1, 2, 3)]
+    reports = []
+    for proc in procs:
+        out, err = proc.communicate(timeout=180)
+        assert proc.returncode == 0, err[-2000:]
+        reports.append(json.loads(out))
+    assert sorted(r["version"] for r in reports) == [2, 3, 4]
+    store = Store(db_url)
+    try:
+        versions = store.roster_versions(store.get_roster("desk").id)
+        assert [v.version for v in versions] == [1, 2, 3, 4]
+        # each report's diff is against the version just before it, whichever process stored that one
+        # (worked out by hand: V2 against V1 is 1 added, 1 removed, 2 changed, plus the file's extra row;
+        # against another week's file: its own extra row added, the other's removed)
+        for report in reports:
+            expected = (2, 1, 2) if report["version"] == 2 else (1, 1, 0)
+            assert (report["added"], report["removed"], report["changed"]) == expected, report
+    finally:
+        store.dispose()
+
+
+def test_two_processes_naming_one_new_roster_alike_get_one_roster_and_one_clear_error(db_url: str,
+                                                                                     tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    files = [_version_file(tmp_path, k) for k in (4, 5)]
+    procs = [subprocess.Popen([sys.executable, "-m", "app.cli", "import", str(f), "--db", db_url, "--name", "same",
+                               "--json"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for f in files]
+    results = [(p.returncode, *p.communicate(timeout=180)) for p in procs]
+    results = [(p.returncode, out, err) for p, (_, out, err) in zip(procs, results, strict=True)]
+    assert sorted(code for code, _, _ in results) == [0, 1], results
+    code, _, err = next(r for r in results if r[0] == 1)
+    assert "A roster named 'same' already exists" in err and "Traceback" not in err
+    store = Store(db_url)
+    try:
+        assert [r.name for r in store.list_rosters()] == ["same"]
+    finally:
+        store.dispose()

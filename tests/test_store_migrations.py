@@ -123,3 +123,33 @@ def test_an_unknown_legacy_version_is_refused_in_one_sentence(tmp_path: Path) ->
     con.close()
     with pytest.raises(StoreError, match="schema version 7"):
         Store(f"sqlite:///{path}")
+
+
+OPEN_STORE = ("import sys; from app.store import Store; s = Store(sys.argv[1]); "
+              "print(s.schema_version(), len(s.list_rosters())); s.dispose()")
+
+
+@pytest.mark.parametrize("start", ["new", "0.1"])
+def test_several_processes_opening_one_file_at_once_create_or_upgrade_it_once(tmp_path: Path, start: str) -> None:
+    # before the write lock was taken first, two processes opening a new file at once both created the tables
+    # and one stopped with "table alembic_version already exists"
+    import subprocess
+    import sys
+
+    for attempt in range(2):
+        path = tmp_path / f"{start}-{attempt}.db"
+        if start == "0.1":
+            con = sqlite3.connect(path)
+            con.executescript(LEGACY_DUMP.read_text(encoding="utf-8"))
+            con.close()
+        procs = [subprocess.Popen([sys.executable, "-c", OPEN_STORE, f"sqlite:///{path}"], stdout=subprocess.PIPE,
+                                  stderr=subprocess.PIPE, text=True) for _ in range(3)]
+        for proc in procs:
+            out, err = proc.communicate(timeout=120)
+            assert proc.returncode == 0, err[-1500:]
+            assert out.split() == [str(int(HEAD_REVISION)), "1" if start == "0.1" else "0"]
+        store = Store(f"sqlite:///{path}")
+        try:
+            assert store.integrity_check() == "ok"
+        finally:
+            store.dispose()

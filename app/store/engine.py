@@ -145,6 +145,11 @@ class Gateway:
                 conn.commit()
             try:
                 with conn.begin():
+                    if sqlite:
+                        # the write lock first: two processes opening one new or old file at once would
+                        # otherwise both see no tables (or an old revision) and both create or upgrade them
+                        # ("table alembic_version already exists"); the second now waits, then finds it done
+                        conn.exec_driver_sql("BEGIN IMMEDIATE")
                     self._migrate_in(conn)
                     if sqlite:
                         broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()

@@ -17,6 +17,7 @@ from sqlalchemy import (
     select,
     update,
 )
+from sqlalchemy.exc import IntegrityError
 
 from app.store.audit import current_actor, record_event
 from app.store.cells import fill_cells_from_records, version_of
@@ -75,26 +76,44 @@ class RosterQueries(Gateway):
         figures = {"source_name": source_name, "sha256": sha256, "imported_at": now_iso(),
                    "rows_total": rows_total, "accepted": len(records), "rejected": len(rejected),
                    "duplicates": duplicates, "columns": json.dumps(dict(columns))}
+        taken = StoreError(f"A roster named {name!r} already exists; choose another name.")
+        try:
+            return self._save_import(name, figures, records, rejected, into, raw, taken)
+        except IntegrityError as exc:
+            # another process stored a roster of this name between our check and our insert
+            if into is None:
+                with self.engine.connect() as conn:
+                    if conn.execute(select(rosters.c.id).where(rosters.c.name == name)).first():
+                        raise taken from exc
+            raise
+
+    def _save_import(self, name: str, figures: dict[str, Any], records: pd.DataFrame,
+                     rejected: Sequence[RejectedRow], into: int | None,
+                     raw: Callable[[int, int], Sequence[str]] | None, taken: StoreError) -> Roster:
         with self._tx() as conn:
             if into is None:
                 if conn.execute(select(rosters.c.id).where(rosters.c.name == name)).first():
-                    raise StoreError(f"A roster named {name!r} already exists; choose another name.")
+                    raise taken
                 version = 1
                 roster_id = int(conn.execute(insert(rosters).values(name=name, version=1, **figures))
                                 .inserted_primary_key[0])  # type: ignore[index]
                 conn.execute(insert(roster_settings).values(roster_id=roster_id))
                 record_event(conn, "import", f"roster:{roster_id}", {
-                    "name": name, "source": source_name, "accepted": len(records), "rejected": len(rejected)})
+                    "name": name, "source": figures["source_name"], "accepted": len(records), "rejected": len(rejected)})
             else:
                 roster_id = int(into)
+                # the next version number is taken by an atomic increment, this transaction's first write: a
+                # refresh of the same roster by another process waits for it and then takes the number after
+                # (reading the number first let two processes both take it: tests/test_reliability.py)
+                conn.execute(update(rosters).where(rosters.c.id == roster_id)
+                             .values(version=rosters.c.version + 1, **figures))
                 current = conn.execute(select(rosters.c.version, rosters.c.name)
                                        .where(rosters.c.id == roster_id)).first()
                 if current is None:
                     raise StoreError(f"No roster number {roster_id} is stored; it may have been deleted.")
-                version = int(current.version) + 1
-                conn.execute(update(rosters).where(rosters.c.id == roster_id).values(version=version, **figures))
+                version = int(current.version)
                 record_event(conn, "import_version", f"roster:{roster_id}", {
-                    "name": current.name, "version": version, "source": source_name,
+                    "name": current.name, "version": version, "source": figures["source_name"],
                     "accepted": len(records), "rejected": len(rejected)})
             conn.execute(insert(roster_versions).values(roster_id=roster_id, version=version,
                                                         author=current_actor(), **figures))
