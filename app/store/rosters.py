@@ -104,7 +104,7 @@ class RosterQueries(Gateway):
                 roster_id = int(into)
                 # the next version number is taken by an atomic increment, this transaction's first write: a
                 # refresh of the same roster by another process waits for it and then takes the number after
-                # (reading the number first let two processes both take it: tests/test_reliability.py)
+                # (reading the number first let two processes both take it: tests/test_roster_versions.py)
                 conn.execute(update(rosters).where(rosters.c.id == roster_id)
                              .values(version=rosters.c.version + 1, **figures))
                 current = conn.execute(select(rosters.c.version, rosters.c.name)
