@@ -48,6 +48,10 @@ def test_every_page_fits_phone_and_desktop_widths(demo_db: Path, live_server: An
                     # the navigation is one row, not a column as tall as the screen
                     assert page.locator("header.topbar").bounding_box()["height"] < 130, (path, width)
                 if width == 390:
+                    # a "what changed and why" field gets a row of its own, not a few letters beside the names
+                    page.goto(server.base_url + "/rosters/1/reasons")
+                    for field in ("#note", "#rules-note"):
+                        assert page.locator(field).bounding_box()["width"] > 250, field
                     page.goto(server.base_url + "/rosters/1/trend")
                     page.wait_for_selector("#fig-trend[data-state='drawn']")
                     legend = page.evaluate("document.getElementById('fig-trend').layout.legend.orientation")

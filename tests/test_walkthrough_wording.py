@@ -44,3 +44,27 @@ def test_one_footer_line_is_one_line(empty_client: Any) -> None:
     notes = " ".join(review.messages)
     assert "Line 7 after the data looks like a footer (source, notes or totals) and was left out, not rejected." \
         in notes, notes
+
+
+def test_a_browser_change_on_a_served_store_is_the_local_analysts(tmp_path: Any, live_server: Any) -> None:
+    """`helmshift serve` runs its commands as "USER (command line)"; the pages' changes must not inherit that
+    (the walk-through's first mapping read "saved by root (command line)" after a save in the browser)."""
+    import httpx
+
+    from app.store import Store
+
+    db = tmp_path / "served.db"
+    Store(f"sqlite:///{db}").dispose()
+    server = live_server(db)
+    r = httpx.post(f"{server.base_url}/api/rosters", files={"file": ("awkward.csv", AWKWARD)}, timeout=120)
+    assert r.status_code == 201, r.text
+    roster_id = r.json()["id"]
+    window = httpx.post(f"{server.base_url}/rosters/{roster_id}/window", data={"window_from": "2014",
+                        "window_to": "2016"}, headers={"origin": server.base_url}, timeout=60)
+    assert window.status_code in (200, 303), window.text
+    store = Store(f"sqlite:///{db}")
+    try:
+        users = {(e.action, e.user) for e in store.audit_events()}
+    finally:
+        store.dispose()
+    assert ("import", "local analyst") in users and ("roster_settings", "local analyst") in users, users
