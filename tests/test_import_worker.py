@@ -280,3 +280,87 @@ def test_a_server_killed_mid_import_takes_its_worker_with_it(tmp_path: Path, liv
     thread.join(60)
     assert table_counts(url) == {"rosters": 0, "roster_versions": 0, "departures": 0, "rejected_rows": 0,
                                  "audit_events": 0}
+
+
+def _workers(server_pid: int) -> set[int]:
+    """The import workers of a live server: forks of its forkserver, so grandchildren of the server."""
+    below = _descendants(server_pid)
+    return below - {pid for pid in below if _parent(pid) == server_pid}
+
+
+def _parent(pid: int) -> int | None:
+    try:
+        return int(Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[1])
+    except OSError:
+        return None
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="reads the process tree from /proc")
+def test_a_dying_worker_fails_only_its_own_import(tmp_path: Path, live_server: Any) -> None:
+    """kill -9 of one worker mid-import (as the out-of-memory killer would): that import answers 503 and
+    leaves nothing; the import running beside it on the other worker is stored; the next import succeeds."""
+    import httpx
+
+    db = tmp_path / "served.db"
+    url = f"sqlite:///{db}"
+    Store(url).dispose()
+    server = live_server(db)
+    answers: dict[str, httpx.Response] = {}
+
+    def upload(name: str, data: bytes) -> None:
+        answers[name] = httpx.post(f"{server.base_url}/api/rosters", files={"file": (f"{name}.csv", data)},
+                                   data={"name": name}, timeout=300)
+
+    big = threading.Thread(target=upload, args=("big", roster_csv(200_000, executive=True)))
+    big.start()
+    deadline = time.monotonic() + 300
+    while not _writer_active(url):  # the big import is inside its write transaction
+        assert time.monotonic() < deadline and big.is_alive(), "the big import was not seen writing"
+        time.sleep(0.005)
+    (doomed,) = _workers(server.proc.pid)
+    # 3,000 rows with an executive each: none rejected, none a duplicate (hand count as in roster_csv)
+    beside = threading.Thread(target=upload, args=("beside", roster_csv(3_000, executive=True)))
+    beside.start()
+    while len(_workers(server.proc.pid)) < 2:  # the second worker has taken the other import
+        assert time.monotonic() < deadline and beside.is_alive(), "no second worker took the other import"
+        time.sleep(0.005)
+    assert big.is_alive(), "the big import ended before its worker could be killed"
+    os.kill(doomed, signal.SIGKILL)
+    big.join(300)
+    beside.join(300)
+
+    assert answers["big"].status_code == 503 and "nothing was stored" in answers["big"].json()["error"]
+    assert answers["beside"].status_code == 201, answers["beside"].text
+    assert answers["beside"].json()["accepted"] == 3_000
+    upload("after", roster_csv(50))
+    assert answers["after"].status_code == 201, answers["after"].text
+    store = Store(url)
+    try:
+        assert sorted((r.name, r.accepted) for r in store.list_rosters()) == [("after", 50), ("beside", 3_000)]
+        assert table_counts(url)["departures"] == 3_050
+    finally:
+        store.dispose()
+    assert doomed not in _workers(server.proc.pid)
+
+
+def test_two_imports_after_a_worker_died_idle_both_get_a_worker(empty_client: TestClient, store: Store) -> None:
+    """Two requests arriving together after the idle workers were killed: each gets a fresh worker, neither
+    answers 503, and never more than two workers run."""
+    barrier = threading.Barrier(2)
+    answers: dict[int, Any] = {}
+
+    def upload(i: int) -> None:
+        barrier.wait()
+        answers[i] = empty_client.post("/api/rosters", files={"file": (f"t{i}.csv", roster_csv(3_000 + i))})
+
+    for round_ in range(3):
+        for pid in import_worker.worker_pids():
+            os.kill(pid, signal.SIGKILL)
+        threads = [threading.Thread(target=upload, args=(i,)) for i in (2 * round_, 2 * round_ + 1)]
+        for thread in threads:
+            thread.start()
+        for thread in threads:
+            thread.join(120)
+        assert len(import_worker.worker_pids()) <= import_worker.WORKERS
+    assert sorted(r.status_code for r in answers.values()) == [201] * 6, [r.text for r in answers.values()]
+    assert sorted(r.accepted for r in store.list_rosters()) == [3_000 + i for i in range(6)]

@@ -129,7 +129,8 @@ def test_title_and_footer_left_out_with_notes(store: Store) -> None:
     report = import_roster(store, data, "f.csv", today=TODAY)
     assert (report.header_row, report.accepted, report.rejected) == (3, 4, 0)
     notes = " ".join(report.messages)
-    assert "line 1 above it" in notes and "lines 9-10 after the data look like a footer" in notes
+    assert "line 1 above it (a title block or notes) was left out" in notes
+    assert "Lines 9-10 after the data look like a footer" in notes and "were left out, not rejected" in notes
 
 
 def test_footer_like_line_inside_the_data_is_not_dropped(store: Store) -> None:

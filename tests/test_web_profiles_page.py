@@ -73,7 +73,7 @@ def test_unknown_profile_is_404(empty_client: Any) -> None:
 
 
 def test_deleting_is_a_team_mode_admin_write_like_every_delete() -> None:
-    # the role rules classify by method and path (app/web/auth.py): every .../delete is for admins
+    # app/web/auth.py's ROLE_TABLE: deleting a profile (the desk's shared recipe) is an admin's
     assert required_role("POST", "/profiles/3/delete") == "admin"
     assert required_role("GET", "/profiles") == "viewer" and required_role("GET", "/api/profiles") == "viewer"
 

@@ -29,6 +29,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
     from app.config import Settings
     from app.demo import load_demo
+    from app.store.audit import LOCAL_ACTOR, acting_as
     from app.web.app import create_app
 
     db = args.db
@@ -61,8 +62,10 @@ def cmd_serve(args: argparse.Namespace) -> int:
     server = uvicorn.Server(uvicorn.Config(app, log_level="warning"))
     shown = f"[{args.host}]" if ":" in args.host else args.host
     print(f"Helmshift {__version__} on http://{shown}:{args.port}/", file=sys.stderr)  # bound: announce
-    # uvicorn shuts down gracefully, then re-raises Ctrl-C / SIGINT: an ordinary stop, not an error
-    with contextlib.suppress(KeyboardInterrupt):
+    # uvicorn shuts down gracefully, then re-raises Ctrl-C / SIGINT: an ordinary stop, not an error.
+    # Requests inherit this context: a change made in the browser is the local analyst's (or, in team mode, the
+    # signed-in account's), not "... (command line)" as the commands that ran before the server are.
+    with contextlib.suppress(KeyboardInterrupt), acting_as(LOCAL_ACTOR):
         server.run(sockets=[sock])
     return 0
 

@@ -181,10 +181,13 @@ def _json_list(raw: str) -> str:
 
 def _note(table: RawTable) -> None:
     if table.skipped_above:
+        one = len(table.skipped_above) == 1
         table.messages.append(
             f"The header is line {table.header_line}; {_lines_label(table.skipped_above)} above it "
-            "(a title block or notes) were left out.")
+            f"(a title block or notes) {'was' if one else 'were'} left out.")
     if table.footer_lines:
+        one = len(table.footer_lines) == 1
+        label = _lines_label(table.footer_lines)
         table.messages.append(
-            f"{_lines_label(table.footer_lines)} after the data look like a footer (source, notes or totals) "
-            "and were left out, not rejected.")
+            f"{label[0].upper()}{label[1:]} after the data {'looks' if one else 'look'} like a footer (source, "
+            f"notes or totals) and {'was' if one else 'were'} left out, not rejected.")

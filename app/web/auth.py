@@ -5,12 +5,15 @@ and API needs a signed-in session (a signed, expiring cookie) or an API token (`
 and each request is checked against the role it needs:
 
 * viewer: read every page and API, download exports;
-* analyst: also import, map, set windows, start, stop and extend runs (every other POST);
-* admin: also delete (any path ending in ``/delete``), read the audit trail and manage accounts
-  (``/accounts``, :mod:`app.web.accounts`).
+* analyst: also import, map (codes, rules, case overrides: adding and removing one), set windows, start,
+  stop and extend runs;
+* admin: also delete what others rely on (a roster, an intake profile, an account), read the audit trail
+  and manage accounts (``/accounts``, :mod:`app.web.accounts`).
 
-Plain ASGI middleware, like :mod:`app.web.security`, so that no route can be forgotten: the role a request
-needs follows from its method and path, and ``tests/test_roles.py`` walks the whole route table.
+Plain ASGI middleware, like :mod:`app.web.security`, so that no route can be forgotten: :data:`ROLE_TABLE`
+names the role of every route that changes something (and of the admin pages); any other GET needs a viewer,
+and any other change an admin. ``tests/test_roles.py`` fails when a route of the app is missing from the table
+or the table names a route the app no longer has, and walks the whole route table for every role.
 """
 
 from __future__ import annotations
@@ -46,7 +49,57 @@ SESSION_SECONDS = 12 * 3600
 SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
 PUBLIC_PREFIXES = ("/static/", "/vendor/")
 PUBLIC_PATHS = frozenset({"/login", "/api/health"})
-ADMIN_PATH = re.compile(r"(/delete$)|(^/(api/)?audit$)|(^/accounts(/|$))")
+
+#: Who may do what, route by route (paths as the routers write them). Why each delete is where it is:
+#: removing a case override saves the mapping's next version without it (every earlier version, and every run
+#: made with it, stays), so it is as reversible as adding one and belongs to the analyst who may add one;
+#: deleting a roster removes records other analysts' work reads, an intake profile is the desk's shared
+#: recipe for a source's files, and accounts are the admin's to manage, so those three stay with admins.
+ROLE_TABLE: dict[tuple[str, str], AccountRole] = {
+    # admin pages
+    ("GET", "/accounts"): "admin",
+    ("GET", "/audit"): "admin",
+    ("GET", "/api/audit"): "admin",
+    ("POST", "/accounts"): "admin",
+    ("POST", "/accounts/{name}/role"): "admin",
+    ("POST", "/accounts/{name}/delete"): "admin",
+    ("POST", "/rosters/{roster_id}/delete"): "admin",
+    ("POST", "/profiles/{profile_id}/delete"): "admin",
+    # the analyst's work: imports, mappings, rules, overrides, windows, runs
+    ("POST", "/api/rosters"): "analyst",
+    ("POST", "/rosters/upload"): "analyst",
+    ("POST", "/rosters/review"): "analyst",
+    ("POST", "/rosters/confirm"): "analyst",
+    ("POST", "/rosters/{roster_id}/universe"): "analyst",
+    ("POST", "/rosters/{roster_id}/universe/derive"): "analyst",
+    ("POST", "/rosters/{roster_id}/reasons"): "analyst",
+    ("POST", "/rosters/{roster_id}/mapping/import"): "analyst",
+    ("POST", "/rosters/{roster_id}/mapping/select"): "analyst",
+    ("POST", "/rosters/{roster_id}/rules"): "analyst",
+    ("POST", "/rosters/{roster_id}/rules/import"): "analyst",
+    ("POST", "/rosters/{roster_id}/rules/preset"): "analyst",
+    ("POST", "/rosters/{roster_id}/overrides"): "analyst",
+    ("POST", "/api/rosters/{roster_id}/overrides"): "analyst",
+    ("POST", "/rosters/{roster_id}/overrides/delete"): "analyst",
+    ("POST", "/rosters/{roster_id}/window"): "analyst",
+    ("POST", "/rosters/{roster_id}/briefing/settings"): "analyst",
+    ("POST", "/rosters/{roster_id}/resampling"): "analyst",
+    ("POST", "/runs/{run_id}/cancel"): "analyst",
+    ("POST", "/runs/{run_id}/extend"): "analyst",
+    # everyone signed in
+    ("POST", "/logout"): "viewer",
+}
+
+
+def _pattern(template: str) -> re.Pattern[str]:
+    """A route's path template as a regular expression (``{name}`` is one path segment)."""
+    parts = re.split(r"\{[^}/]+\}", template)
+    return re.compile("[^/]+".join(re.escape(part) for part in parts) + r"\Z")
+
+
+_ROLE_PATTERNS: dict[str, list[tuple[re.Pattern[str], AccountRole]]] = {}
+for (_method, _template), _role in ROLE_TABLE.items():
+    _ROLE_PATTERNS.setdefault(_method, []).append((_pattern(_template), _role))
 #: how long the "is any account there?" answer is reused (team mode switches on within this time)
 _ACCOUNTS_TTL = 2.0
 
@@ -55,11 +108,12 @@ def required_role(method: str, path: str) -> AccountRole | None:
     """The least role a request needs in team mode; ``None`` for the sign-in page and static files."""
     if path in PUBLIC_PATHS or path.startswith(PUBLIC_PREFIXES):
         return None
-    if ADMIN_PATH.search(path):
-        return "admin"
-    if method.upper() in SAFE_METHODS or path == "/logout":
-        return "viewer"
-    return "analyst"
+    method = method.upper()
+    for pattern, role in _ROLE_PATTERNS.get("GET" if method in SAFE_METHODS else method, ()):
+        if pattern.match(path):
+            return role
+    # a read is a viewer's; a change nobody put in the table is refused below admin until someone decides
+    return "viewer" if method in SAFE_METHODS else "admin"
 
 
 def _serializer(store: Store) -> URLSafeTimedSerializer:

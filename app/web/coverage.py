@@ -19,7 +19,7 @@ from app.web.departures import mapping_ref
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.forms import Upload, read_form
-from app.web.rendering import as_json, render
+from app.web.rendering import as_json, context_line, render
 from app.web.route_docs import api_errors, form_body, page_errors, query, redirect
 from app.web.schemas import CoverageYear, define, list_of
 
@@ -86,7 +86,7 @@ _THRESHOLD = query(("threshold", {"type": "number", "minimum": 0.05, "maximum": 
 def coverage_page(request: Request, roster_id: int) -> HTMLResponse:
     page = coverage_data(app_store(request), roster_id, threshold=_threshold(request))
     return render(request, "coverage.html", page, roster=page.roster, active="coverage",
-                  context_line=f"mapping {page.mapping_label} · window {page.window[0]}–{page.window[1]}")
+                  context_line=context_line(page.mapping_label, page.window))
 
 
 @router.get("/api/rosters/{roster_id}/coverage", name="coverage_api", response_model=None,

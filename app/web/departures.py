@@ -21,7 +21,7 @@ from app.intake.spreadsheet_safety import safe_csv
 from app.store import MAX_ID, DepartureFilter, MappingVersion, Roster, Store, StoreError
 from app.store.departure_query import CATEGORY_FILTERS, LISTED_FIELDS, MAX_PER_PAGE, SORT_KEYS
 from app.web.deps import BadRequest, NotFound, app_store
-from app.web.rendering import as_json, render
+from app.web.rendering import as_json, context_line, render
 from app.web.route_docs import YEAR, api_errors, download, page_errors, query
 from app.web.schemas import DepartureOut, define, list_of
 
@@ -197,7 +197,7 @@ _QUERY = query(
 def departures_page(request: Request, roster_id: int) -> HTMLResponse:
     page = departures_data(app_store(request), request, roster_id)
     return render(request, "departures.html", page, roster=page.roster, active="departures_page",
-                  context_line=f"mapping {page.mapping_label}")
+                  context_line=context_line(page.mapping_label))
 
 
 @router.get("/api/rosters/{roster_id}/departures", name="departures_api", response_model=None,

@@ -2,7 +2,7 @@
 
 Reading, checking and framing a 400,000-row roster keeps pandas and the row checks busy for seconds with the
 GIL held; in a thread of the server that stalls every other request (issue 11: /api/health waited up to 1.3 s).
-Here the work runs in a small pool of worker processes (created on first use, shut down with the app) that
+Here the work runs in a few worker processes (each created on first use, shut down with the app) that
 open their own store from the database URL and write the import in their own single transaction. The parent
 thread only waits for the answer, with the GIL released.
 
@@ -14,7 +14,10 @@ thread only waits for the answer, with the GIL released.
   survive pickling as they are.
 * A worker that dies (killed, out of memory) has its transaction rolled back by the database (SQLite's
   journal, PostgreSQL's closed connection); the caller gets :class:`WorkerLost` and the routes answer 503 with
-  one sentence. The broken pool is dropped and the next import gets a fresh one.
+  one sentence. Only that caller: each worker has an executor of its own (see "the workers" below), which is
+  replaced for the next import, while an import on the other worker carries on. A worker that had died idle
+  before it began the task (each counts the tasks it begins in memory shared with the server) is no loss:
+  the task is handed to a fresh worker once instead.
 * The start method is "forkserver" where it exists (Linux, macOS), with this module preloaded in the server
   process, so a new worker is a fork of an interpreter that has already imported pandas; "spawn" elsewhere.
   Never "fork": the server has threads (the job runner, the thread pool) that a fork would copy mid-step.
@@ -30,6 +33,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import queue
 import select
 import threading
 import time
@@ -90,6 +94,9 @@ class _Failure:
 
 def _work(task: str, db_url: str | None, actor: str, args: tuple[Any, ...], kwargs: dict[str, Any]) -> Any:
     """Runs in the worker (or, for an in-memory store, in the caller): one import, universe import or dry run."""
+    if _begun is not None:  # before any work: a worker that dies after this line may have written something
+        with _begun.get_lock():
+            _begun.value += 1
     try:
         with acting_as(actor):
             if task == "review":
@@ -113,8 +120,19 @@ def _work(task: str, db_url: str | None, actor: str, args: tuple[Any, ...], kwar
         return _Failure("other", f"{type(exc).__name__}: {exc}")
 
 
+#: in a worker: its slot's count of tasks begun, shared with the server (set by :func:`_start_worker`)
+_begun: Any = None
+
+
+def _start_worker(server_pid: int, begun: Any) -> None:
+    """The workers' initializer: count the tasks begun where the server can read it, and watch the server."""
+    global _begun
+    _begun = begun
+    _watch_server(server_pid)
+
+
 def _watch_server(server_pid: int) -> None:
-    """The workers' initializer: a daemon thread that ends this worker as soon as ``server_pid`` is gone."""
+    """A daemon thread that ends this worker as soon as ``server_pid`` is gone."""
 
     def watch() -> None:
         try:
@@ -134,10 +152,60 @@ def _watch_server(server_pid: int) -> None:
     threading.Thread(target=watch, name="helmshift-server-watch", daemon=True).start()
 
 
-# -- the pool ------------------------------------------------------------------------------------------------
+# -- the workers ----------------------------------------------------------------------------------------------
+#
+# Each worker process lives in its own one-process executor (a "slot"). concurrent.futures treats a pool whose
+# worker died as broken as a whole: it fails every task in it and terminates the other workers. With one pool
+# of two, an import killed by the out-of-memory killer took down the analyst's colleague's import running next
+# to it. With a slot per worker, only the dead worker's own task fails (503); its slot gets a fresh executor
+# for the next task, and a task on the other slot never notices. A caller holds a slot from submit to answer,
+# so no two tasks share one; a third caller waits for a free slot (as it waited in the pool's queue before).
+
+
+class _Slot:
+    """One worker process at most, in an executor of its own, used by one caller at a time."""
+
+    def __init__(self) -> None:
+        # guarded by _lock (shutdown() runs in another thread): the executor and its worker's tasks-begun count
+        self.executor: ProcessPoolExecutor | None = None
+        self.begun: Any = None
+
+    def ready(self) -> tuple[ProcessPoolExecutor, Any]:
+        """This slot's executor and its count of tasks begun; a new one if it has none or its worker has died."""
+        with _lock:
+            executor = self.executor
+            if executor is not None and not _alive(executor):
+                self.executor = None  # died idle (killed, out of memory): nothing of anyone's was running
+                executor.shutdown(wait=False, cancel_futures=True)
+                executor = None
+            if executor is None:
+                context = _context()
+                self.begun = context.Value("q", 0)
+                executor = self.executor = ProcessPoolExecutor(
+                    max_workers=1, mp_context=context, initializer=_start_worker,
+                    initargs=(os.getpid(), self.begun))
+            return executor, self.begun
+
+    def drop(self, executor: ProcessPoolExecutor) -> None:
+        """Forget a broken or shut-down executor (the next task here makes a new one)."""
+        with _lock:
+            if self.executor is executor:
+                self.executor = None
+        executor.shutdown(wait=False, cancel_futures=True)
+
+
+def _alive(executor: ProcessPoolExecutor) -> bool:
+    """False once the executor's worker has ended (a worker starts with the first task, so none is alive)."""
+    processes = getattr(executor, "_processes", None) or {}
+    return all(process.is_alive() for process in list(processes.values()))
+
 
 _lock = threading.Lock()
-_pool: ProcessPoolExecutor | None = None
+_slots = tuple(_Slot() for _ in range(WORKERS))
+# last in, first out: a lone caller keeps reusing the same warm worker; the second starts only on overlap
+_free: queue.LifoQueue[_Slot] = queue.LifoQueue()
+for _slot in reversed(_slots):
+    _free.put(_slot)
 
 
 def _context() -> Any:
@@ -148,39 +216,22 @@ def _context() -> Any:
     return multiprocessing.get_context("spawn")
 
 
-def _current_pool() -> ProcessPoolExecutor:
-    global _pool
-    with _lock:
-        if _pool is None:
-            _pool = ProcessPoolExecutor(max_workers=WORKERS, mp_context=_context(), initializer=_watch_server,
-                                        initargs=(os.getpid(),))
-        return _pool
-
-
-def _drop(pool: ProcessPoolExecutor) -> None:
-    """Forget a broken pool (the next task makes a new one)."""
-    global _pool
-    with _lock:
-        if _pool is pool:
-            _pool = None
-    pool.shutdown(wait=False, cancel_futures=True)
-
-
 def shutdown() -> None:
     """Stop the workers (the app's shutdown): an import under way finishes first, queued ones are cancelled."""
-    global _pool
     with _lock:
-        pool, _pool = _pool, None
-    if pool is not None:
-        pool.shutdown(wait=True, cancel_futures=True)
+        executors = [slot.executor for slot in _slots if slot.executor is not None]
+        for slot in _slots:
+            slot.executor = None
+    for executor in executors:
+        executor.shutdown(wait=True, cancel_futures=True)
 
 
 def worker_pids() -> list[int]:
     """The worker processes alive now (for tests and diagnostics)."""
     with _lock:
-        pool = _pool
-    processes = getattr(pool, "_processes", None) or {}
-    return [pid for pid, process in list(processes.items()) if process.is_alive()]
+        executors = [slot.executor for slot in _slots if slot.executor is not None]
+    processes = [item for executor in executors for item in list((getattr(executor, "_processes", None) or {}).items())]
+    return [pid for pid, process in processes if process.is_alive()]
 
 
 def _shared_url(url: str) -> str | None:
@@ -209,22 +260,30 @@ def _run(task: str, db_url: str | None, *args: Any, **kwargs: Any) -> Any:
 
 
 def _submit_and_wait(task: str, url: str | None, actor: str, args: tuple[Any, ...], kwargs: dict[str, Any]) -> Any:
-    for attempt in (1, 2):
-        pool = _current_pool()
-        try:
-            future: Future[Any] = pool.submit(_work, task, url, actor, args, kwargs)
-        except (BrokenProcessPool, RuntimeError):
-            # broken by another task's worker, or shut down meanwhile: nothing ran yet, so a new pool may try
-            _drop(pool)
-            if attempt == 2:
+    slot = _free.get()  # waits while every worker is busy with another caller's task
+    try:
+        for attempt in (1, 2):
+            executor, begun = slot.ready()
+            before = begun.value
+            try:
+                future: Future[Any] = executor.submit(_work, task, url, actor, args, kwargs)
+            except (BrokenProcessPool, RuntimeError):
+                # its worker died idle or the app shut it down meanwhile: nothing ran yet, so a new one may try
+                slot.drop(executor)
+                continue
+            try:
+                return future.result()
+            except BrokenProcessPool:
+                slot.drop(executor)  # only this slot: a task on the other one runs on
+                if begun.value == before and attempt == 1:
+                    continue  # the worker died (idle, unnoticed yet) before it began this task: nothing ran
                 raise WorkerLost() from None
-            continue
-        try:
-            return future.result()
-        except (BrokenProcessPool, CancelledError):
-            _drop(pool)
-            raise WorkerLost() from None
-    raise WorkerLost()  # not reached: the loop returns or raises
+            except CancelledError:  # the app is shutting down
+                slot.drop(executor)
+                raise WorkerLost() from None
+        raise WorkerLost()
+    finally:
+        _free.put(slot)
 
 
 # -- what the routes call --------------------------------------------------------------------------------------

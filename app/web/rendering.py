@@ -110,6 +110,15 @@ templates.env.filters["num"] = _fmt_num
 templates.env.filters["ratio"] = _fmt_ratio
 
 
+def context_line(mapping_label: str, window: tuple[int, int] | None = None) -> str:
+    """The grey line under the navigation: the mapping and window a page works with, in words when there is
+    none yet (a new roster read "mapping no mapping · window 0–0")."""
+    parts = ["no mapping chosen yet" if mapping_label == "no mapping" else f"mapping {mapping_label}"]
+    if window and all(window):
+        parts.append(f"window {window[0]}–{window[1]}")
+    return " · ".join(parts)
+
+
 def render(request: Request, template: str, page: Any, *, status: int = 200, **extra: Any) -> HTMLResponse:
     """Render ``template`` with the page dataclass as ``page``; the CSP nonce comes from the middleware."""
     context = {"page": page, "nonce": request.scope.get("state", {}).get("csp_nonce", ""), **extra}

@@ -23,7 +23,7 @@ from app.store import Roster, Run, Store, StoreError
 from app.web.departures import mapping_ref
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.figures import FigureSpec, figure_spec, page_memo
-from app.web.rendering import as_json, render
+from app.web.rendering import as_json, context_line, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, json_or_validation_error, page_errors, query
 from app.web.run_numbers import ordinals, trend_fits
 from app.web.schemas import OddsRow, TrendFitSummary, define, list_of, variant
@@ -230,7 +230,7 @@ _TREND_QUERY = query(("model", {"type": "string", "enum": list(TREND_KINDS), "de
 def trend_page(request: Request, roster_id: int) -> HTMLResponse:
     page = trend_data(app_store(request), roster_id, **_request_args(request))
     return render(request, "trend.html", page, roster=page.roster, active="trend_page", cautions_open=True,
-                  context_line=f"mapping {page.mapping_label} · window {page.window[0]}–{page.window[1]}")
+                  context_line=context_line(page.mapping_label, page.window))
 
 
 @router.get("/api/rosters/{roster_id}/trend", name="trend_api", response_model=None,
