@@ -40,11 +40,15 @@ def adjusted_cells(inp: AnalysisInput, adjust: tuple[str, ...]) -> AdjustedCells
     """Forced and voluntary departures of the window, collapsed to the adjusted model's cells (memoised)."""
     def compute() -> AdjustedCells:
         firms = inp.store.firm_cell_counts(inp.roster.id, inp.roster.version, detail=True)
-        frame = inp.categorised(firms)
-        frame = in_window(frame, inp.window)
-        frame = frame.loc[frame["category"].isin(["forced", "voluntary"])]
-        return collapse(frame, adjust)
+        return adjusted_cells_from(inp.categorised(firms), inp.window, adjust)
     return memoised(inp.store, ("adjusted_cells", *inp.key, adjust), compute)
+
+
+def adjusted_cells_from(firms: pd.DataFrame, window: tuple[int, int], adjust: tuple[str, ...]) -> AdjustedCells:
+    """The adjusted model's cells of categorised firm cells (detailed key, with ``category``): the window's
+    forced and voluntary departures, collapsed. Shared by the saved mapping's fit and the robustness readings."""
+    frame = in_window(firms, window)
+    return collapse(frame.loc[frame["category"].isin(["forced", "voluntary"])], adjust)
 
 
 def _fingerprint(data: AdjustedCells) -> str:

@@ -130,14 +130,15 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
 
 def cmd_robustness(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
-    from app.analysis.runs import robustness_summary
+    from app.analysis.robustness import robustness_summary
 
     store = _store(args)
     mappings = args.mapping or []
     inp = load_input(store, args.roster, mapping=mappings[0] if mappings else None,
                      window=_parse_years(args.years))
-    payload = robustness_summary(store, inp, extra_mappings=mappings[1:], vary=args.vary or [], preset=args.preset)
-    _emit(args, payload, lambda p: p["sentence"])
+    payload = robustness_summary(store, inp, extra_mappings=mappings[1:], vary=args.vary or [], preset=args.preset,
+                                 adjust=args.adjust)
+    _emit(args, payload, lambda p: "\n".join([p["sentence"], p["rate_sentence"], p["adjusted_sentence"]]))
     return 0
 
 
