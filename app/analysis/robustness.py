@@ -36,7 +36,8 @@ from app.analysis.robustness_measures import (
     RateReading,
     adjusted_reading_to_dict,
     default_adjust,
-    measure_verdict,
+    measure_verdicts,
+    measures_takeaway,
     rate_to_dict,
 )
 from app.analysis.rules import PRESET_NAME, PRESET_SOURCE, preset_rules, with_preset
@@ -93,7 +94,19 @@ class Robustness:
     #: and the adjustment set
     universe: str | None = None
     universe_fingerprint: str | None = None
+    universe_approximate: bool = False
     adjust: tuple[str, ...] = ()
+
+    @property
+    def measured(self) -> bool:
+        """True when the readings carry the rate ratio and the adjusted odds ratio (``check_robustness``'s
+        ``measures``)."""
+        return bool(self.adjusted_sentence)
+
+    def measures_takeaway(self) -> str:
+        """One short clause per measure for a slide or a brief caption (``measures_takeaway``)."""
+        return measures_takeaway([(v.rate, v.adjusted) for v in self.variants
+                                  if v.unmapped == 0 or v.kind == "reference"])
 
 
 def counted_codes(inp: AnalysisInput, categories: Mapping[str, str]) -> dict[str, int]:
@@ -279,20 +292,12 @@ def _measure_verdicts(inp: AnalysisInput, result: Robustness, universe: Universe
                       adjust: tuple[str, ...]) -> Robustness:
     """The rate ratio's and the adjusted odds ratio's sentences over the readings of the share's verdict."""
     judged = [v for v in result.variants if v.unmapped == 0 or v.kind == "reference"]
-    span = f"{inp.window[0]}\u2013{inp.window[1]}"
-    rates = [(v.label, v.rate.rate_ratio, v.rate.profile or v.rate.wald, v.rate.error)
-             for v in judged if v.rate is not None]
-    adjusted = [(v.label, v.adjusted.odds_ratio, v.adjusted.cluster, v.adjusted.error)
-                for v in judged if v.adjusted is not None]
-    named = ", ".join(adjust) if adjust else "nothing (the plain logit)"
-    rate_sentence, rate_holds = measure_verdict("forced rate per firm-year", "profile interval of the rate ratio",
-                                                "rate ratio", span, rates)
-    adj_sentence, adj_holds = measure_verdict(f"odds that a departure was forced, adjusted for {named},",
-                                              "firm-clustered interval", "adjusted odds ratio", span, adjusted,
-                                              plural=True)
+    rate_sentence, rate_holds, adj_sentence, adj_holds = measure_verdicts(
+        f"{inp.window[0]}\u2013{inp.window[1]}", [(v.label, v.rate, v.adjusted) for v in judged], adjust)
     return replace(result, rate_sentence=rate_sentence, rate_holds=rate_holds, adjusted_sentence=adj_sentence,
                    adjusted_holds=adj_holds, universe=universe_label(universe) if universe is not None else None,
-                   universe_fingerprint=universe.fingerprint if universe is not None else None, adjust=adjust)
+                   universe_fingerprint=universe.fingerprint if universe is not None else None,
+                   universe_approximate=universe is not None and universe.approximate, adjust=adjust)
 
 
 def _merge_identical(variants: list[Variant]) -> list[Variant]:

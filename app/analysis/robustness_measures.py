@@ -223,6 +223,41 @@ def measure_verdict(what: str, interval_name: str, ratio_name: str, span: str,
     return sentence, holds
 
 
+def measure_verdicts(span: str, readings: Sequence[tuple[str, RateReading | None, AdjustedReading | None]],
+                     adjust: tuple[str, ...]) -> tuple[str, bool | None, str, bool | None]:
+    """Both measures' sentences and ``holds`` over the readings of the share's verdict (reference first)."""
+    rates = [(label, r.rate_ratio, r.profile or r.wald, r.error) for label, r, _ in readings if r is not None]
+    adjusted = [(label, a.odds_ratio, a.cluster, a.error) for label, _, a in readings if a is not None]
+    named = ", ".join(adjust) if adjust else "nothing (the plain logit)"
+    rate_sentence, rate_holds = measure_verdict("forced rate per firm-year", "profile interval of the rate ratio",
+                                                "rate ratio", span, rates)
+    adj_sentence, adj_holds = measure_verdict(f"odds that a departure was forced, adjusted for {named},",
+                                              "firm-clustered interval", "adjusted odds ratio", span, adjusted,
+                                              plural=True)
+    return rate_sentence, rate_holds, adj_sentence, adj_holds
+
+
+def measures_takeaway(readings: Sequence[tuple[RateReading | None, AdjustedReading | None]]) -> str:
+    """One short clause per measure for a slide or a brief caption: the reference reading's direction and how
+    many readings agree, or why the measure could not be fitted (reference first)."""
+    parts = []
+    for name, values in (
+            ("forced rate ratio", [(r.rate_ratio, r.profile or r.wald, r.error) for r, _ in readings if r]),
+            ("adjusted odds ratio", [(a.odds_ratio, a.cluster, a.error) for _, a in readings if a])):
+        if not values:
+            continue
+        estimate, interval, error = values[0]
+        if estimate is None:
+            parts.append(f"{name}: not fitted ({error})")
+            continue
+        ref = _direction(interval)
+        same = sum(e is not None and _direction(iv) == ref for e, iv, _ in values)
+        word = {1: "rising", -1: "falling", 0: "no clear change"}[ref]
+        parts.append(f"{name}: {word} ({same} of {len(values)} readings agree)")
+    text = "; ".join(parts)
+    return f"{text[:1].upper()}{text[1:]}." if text else ""
+
+
 def rate_to_dict(r: RateReading | None) -> dict[str, Any] | None:
     if r is None:
         return None
