@@ -10,8 +10,8 @@ overrides):
   (tests/data/README.md "Poisson trend with an exposure offset"), and its quasi-Poisson refit (``scale="X2"``)
   when the project reports a quasi-Poisson interval;
 - statsmodels' record-level binomial GLM on year + age band + tenure band + sector with
-  ``cov_type="cluster"`` by firm and its default small-sample correction (tests/data/README.md "Firm-clustered
-  standard errors").
+  ``cov_type="cluster"`` by firm and its default small-sample correction (tests/data/README.md "Adjusted
+  trend"; both entries list this file under "Robustness readings").
 The bands are the issue's (age <50, 50-59, 60-64, 65+; tenure <3, 3-6, 7-10, >10 completed years), cut here by
 hand with pandas.
 """
