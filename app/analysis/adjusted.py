@@ -23,7 +23,6 @@ from app.stats.adjusted import (
     AdjustedCells,
     AdjustedFit,
     MixShift,
-    bootstrap_adjusted,
     collapse,
     fit_adjusted,
     mix_by_year,
@@ -62,24 +61,15 @@ class AdjustedOutcome:
     result: dict[str, Any]
 
 
-def run_adjusted(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...], *,
-                 resamples: int | None = None, seed: int = 20261201) -> AdjustedOutcome:
-    """Fit the adjusted trend and record it as a run (params: model, adjust, and the bootstrap's resamples
-    and seed when asked; the mapping version pins the rules). ``resamples``: also the firm bootstrap (BCa)."""
+def run_adjusted(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...]) -> AdjustedOutcome:
+    """Fit the adjusted trend and record it as a run (params: model and adjust; the mapping version pins the
+    rules). Its firm bootstrap is a bootstrap run of its own (``adjusted_summary``)."""
     chosen = parse_adjust(adjust)
     started = time.perf_counter()
     data = adjusted_cells(inp, chosen)
     fit = memoised(store, ("fit_adjusted", *inp.key, chosen), lambda: fit_adjusted(data, inp.window))
     params: dict[str, Any] = {"model": MODEL, "adjust": list(chosen)}
-    boot = None
-    if resamples is not None:
-        boot = bootstrap_adjusted(data, inp.window, resamples=resamples, seed=seed)
-        params |= {"unit": "firm", "resamples": resamples, "seed": seed, "sampler": boot.sampler}
-    result = adjusted_to_dict(fit, boot.intervals["bca"] if boot else None)
-    if boot is not None:
-        result["bootstrap"] = {"method": "BCa, firms resampled", "resamples": boot.resamples, "seed": boot.seed,
-                               "failed": boot.failed, "percentile": json_interval(boot.intervals["percentile"]),
-                               "seconds": boot.seconds}
+    result = adjusted_to_dict(fit)
     run_id = _record_run(store, inp, params, _fingerprint(data), result, time.perf_counter() - started)
     return AdjustedOutcome(fit, run_id, result)
 
@@ -114,11 +104,26 @@ def adjusted_sentence(fit: AdjustedFit) -> str:
 
 def adjusted_summary(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...], *,
                      resamples: int | None = None, seed: int = 20261201) -> dict[str, Any]:
-    """The command line's ``fit --model adjusted --json`` object."""
-    outcome = run_adjusted(store, inp, adjust, resamples=resamples, seed=seed)
+    """The command line's ``fit --model adjusted --json`` object. With ``resamples``, the firm bootstrap runs
+    as the Resampling page's and the jobs' ``adjusted_odds_ratio`` statistic does (a recorded bootstrap run with
+    its replicates, so its run page, histogram, extension and replication pack work; the same seed gives the
+    same numbers); its id is ``bootstrap_run`` and its BCa interval ``conf_int.bootstrap``."""
+    outcome = run_adjusted(store, inp, adjust)
+    result = dict(outcome.result)
+    if resamples is not None:
+        # imported here: app.analysis.jobs reads the adjusted cells from this module (run_params)
+        from app.analysis.jobs import run_bootstrap_now
+
+        boot = run_bootstrap_now(store, inp, unit="firm", resamples=resamples, seed=seed,
+                                 statistic="adjusted_odds_ratio", adjust=list(outcome.fit.adjust))
+        result["conf_int"] = {**result["conf_int"], "bootstrap": boot["conf_int"]["bca"]}
+        result["bootstrap"] = {"method": "BCa, firms resampled", "run": boot["run"], "resamples": boot["resamples"],
+                               "seed": boot["seed"], "failed": boot["failed"], "sampler": boot["sampler"],
+                               "percentile": boot["conf_int"]["percentile"], "seconds": boot["seconds"]}
+        result["bootstrap_run"] = boot["run"]
     return {"roster": inp.roster.name, "mapping": inp.mapping_label,
             "rules": [r.describe() for r in (inp.mapping.rules if inp.mapping else ())],
-            **outcome.result, "sentence": adjusted_sentence(outcome.fit), "run": outcome.run_id}
+            **result, "sentence": adjusted_sentence(outcome.fit), "run": outcome.run_id}
 
 
 @dataclass(frozen=True)

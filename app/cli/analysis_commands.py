@@ -72,7 +72,15 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
         seed = args.seed if args.seed is not None else default_seed(inp.roster)
         adjusted_payload = adjusted_summary(store, inp, args.adjust, resamples=args.resamples, seed=seed)
-        _emit(args, adjusted_payload, lambda p: p["sentence"])
+
+        def adjusted_text(p: dict[str, Any]) -> str:
+            if "bootstrap" not in p:
+                return str(p["sentence"])
+            b, (lo, hi) = p["bootstrap"], p["conf_int"]["bootstrap"]
+            interval = "n/a" if lo is None or hi is None else f"{lo:.3f} to {hi:.3f}"
+            return (f"{p['sentence']}\nFirm bootstrap (run {b['run']}, B={b['resamples']}, seed {b['seed']}): BCa 95% "
+                    f"{interval}; {b['failed']} failed resamples.")
+        _emit(args, adjusted_payload, adjusted_text)
         return 0
     payload: dict[str, Any] | None = None
     if not args.compare and args.by != "sector":
