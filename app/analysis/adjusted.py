@@ -102,28 +102,13 @@ def adjusted_sentence(fit: AdjustedFit) -> str:
                if dropped else "") + ").")
 
 
-def adjusted_summary(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...], *,
-                     resamples: int | None = None, seed: int = 20261201) -> dict[str, Any]:
-    """The command line's ``fit --model adjusted --json`` object. With ``resamples``, the firm bootstrap runs
-    as the Resampling page's and the jobs' ``adjusted_odds_ratio`` statistic does (a recorded bootstrap run with
-    its replicates, so its run page, histogram, extension and replication pack work; the same seed gives the
-    same numbers); its id is ``bootstrap_run`` and its BCa interval ``conf_int.bootstrap``."""
+def adjusted_summary(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...]) -> dict[str, Any]:
+    """The command line's ``fit --model adjusted --json`` object (its firm bootstrap:
+    ``app.analysis.adjusted_bootstrap.adjusted_fit_summary``)."""
     outcome = run_adjusted(store, inp, adjust)
-    result = dict(outcome.result)
-    if resamples is not None:
-        # imported here: app.analysis.jobs reads the adjusted cells from this module (run_params)
-        from app.analysis.jobs import run_bootstrap_now
-
-        boot = run_bootstrap_now(store, inp, unit="firm", resamples=resamples, seed=seed,
-                                 statistic="adjusted_odds_ratio", adjust=list(outcome.fit.adjust))
-        result["conf_int"] = {**result["conf_int"], "bootstrap": boot["conf_int"]["bca"]}
-        result["bootstrap"] = {"method": "BCa, firms resampled", "run": boot["run"], "resamples": boot["resamples"],
-                               "seed": boot["seed"], "failed": boot["failed"], "sampler": boot["sampler"],
-                               "percentile": boot["conf_int"]["percentile"], "seconds": boot["seconds"]}
-        result["bootstrap_run"] = boot["run"]
     return {"roster": inp.roster.name, "mapping": inp.mapping_label,
             "rules": [r.describe() for r in (inp.mapping.rules if inp.mapping else ())],
-            **result, "sentence": adjusted_sentence(outcome.fit), "run": outcome.run_id}
+            **outcome.result, "sentence": adjusted_sentence(outcome.fit), "run": outcome.run_id}
 
 
 @dataclass(frozen=True)

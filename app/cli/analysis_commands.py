@@ -64,14 +64,14 @@ def cmd_fit(args: argparse.Namespace) -> int:
         _emit(args, rate_summary(store, inp), lambda p: f"{p['sentence']}\n{p['caution']}")
         return 0
     if args.model == "adjusted":
-        from app.analysis.adjusted import adjusted_summary
+        from app.analysis.adjusted_bootstrap import adjusted_fit_summary
 
         if args.by or args.compare:
             raise CommandError("--model adjusted adjusts for sector itself (--adjust); drop --by and --compare.")
         from app.analysis.run_params import default_seed
 
         seed = args.seed if args.seed is not None else default_seed(inp.roster)
-        adjusted_payload = adjusted_summary(store, inp, args.adjust, resamples=args.resamples, seed=seed)
+        adjusted_payload = adjusted_fit_summary(store, inp, args.adjust, resamples=args.resamples, seed=seed)
 
         def adjusted_text(p: dict[str, Any]) -> str:
             if "bootstrap" not in p:
