@@ -128,7 +128,8 @@ class MeasureContext:
     def _rate(self, firms: pd.DataFrame) -> RateReading:
         if self.universe is None:
             return RateReading(None, None, None, False, 0, 0, 0,
-                               "no universe of firm-years: import or derive one on the Universe page")
+                               "no universe of firm-years: import one (helmshift universe import) or derive one "
+                               "on the Universe page")
         table = universe_rate_table(firms, self.exposure(), self.inp.window)
         forced = int(table.years["forced"].sum())
         try:
