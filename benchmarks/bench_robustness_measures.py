@@ -87,11 +87,11 @@ def main() -> None:
                     store.dispose()
             return run
 
-        readings = len(cold(True)().variants)
+        labels = [v.label for v in cold(True)().variants]
         before = timed(cold(False))
         after = timed(cold(True))
         obvious = timed(cold(True, shared=False))
-        print(f"{readings} readings (reference, without rules, preset, Retired moved twice, ambiguous excluded)")
+        print(f"{len(labels)} readings shown (identical ones merged): {'; '.join(labels)}")
         print(f"cold check, share only (previous path): wall {before[0]:.2f} s, CPU {before[1]:.2f} s")
         print(f"cold check with rate ratio + adjusted OR per reading: wall {after[0]:.2f} s, CPU {after[1]:.2f} s "
               f"({after[0] / before[0]:.2f}x the previous path's wall)")
