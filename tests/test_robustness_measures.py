@@ -266,18 +266,20 @@ def test_page_json_cli_and_finding_show_the_measures(store: Store, built: dict[s
     ref = result.variants[0]
     assert ref.rate is not None and ref.adjusted is not None and ref.rate.rate_ratio and ref.adjusted.odds_ratio
     client = make_client(store)
-    page = client.get(f"/rosters/{roster}/robustness?vary=Resigned&adjusting=1&adjust=age&adjust=tenure"
-                      "&adjust=sector")
+    query = "vary=Resigned&measures=1&adjusting=1&adjust=age&adjust=tenure&adjust=sector"
+    page = client.get(f"/rosters/{roster}/robustness?{query}")
     assert page.status_code == 200
     html = page.text
     assert result.rate_sentence.split(" (")[0] in html and "firm-clustered" in html
     assert f"{ref.rate.rate_ratio:.3f}" in html and f"{ref.adjusted.odds_ratio:.3f}" in html
-    body = client.get(f"/api/rosters/{roster}/robustness?vary=Resigned&adjusting=1&adjust=age&adjust=tenure"
-                      "&adjust=sector").json()["result"]
+    body = client.get(f"/api/rosters/{roster}/robustness?{query}").json()["result"]
     assert body["rate_sentence"] == result.rate_sentence and body["adjust"] == list(ALL)
     assert body["variants"][0]["rate"]["rate_ratio"] == pytest.approx(ref.rate.rate_ratio, rel=1e-12)
     assert body["variants"][0]["adjusted"]["odds_ratio"] == pytest.approx(ref.adjusted.odds_ratio, rel=1e-12)
-    assert client.get(f"/api/rosters/{roster}/robustness?adjusting=1&adjust=colour").status_code == 400
+    assert client.get(f"/api/rosters/{roster}/robustness?measures=1&adjusting=1&adjust=colour").status_code == 400
+    # without measures=1 the page reads no firm counts and says how to ask for them
+    plain = client.get(f"/api/rosters/{roster}/robustness?vary=Resigned").json()["result"]
+    assert plain["rate_sentence"] == "" and plain["variants"][0]["rate"] is None
     schema = client.get("/openapi.json").json()["components"]["schemas"]
     assert {"rate", "adjusted"} <= set(schema["VariantOut"]["properties"])
     assert {"rate_sentence", "adjusted_sentence", "universe_fingerprint", "adjust"} <= \
