@@ -123,8 +123,12 @@ def test_no_page_reads_the_records(demo_store: Store) -> None:
         assert client.get(f"/api/rosters/{ROSTER}{page}").status_code in (200, 404), page
     assert reads(seen, "roster_cells") >= 1  # the pages did read the cell store
     assert reads(seen, "departures") == 0
-    # the roster page's distinct firms (in all and per sector): two queries, once, then memoised
-    assert reads(seen, "roster_firm_cells") == 2
+    # the roster page's distinct firms (in all and per sector): two queries, once, then memoised; and the
+    # Briefing preview's robustness finding, whose readings carry the adjusted odds ratio (issue 16): the firm
+    # cells once per check, the readings' measures memoised (the Robustness page reads them only with measures=1)
+    assert reads(seen, "roster_firm_cells") == 3
+    assert client.get(f"/rosters/{ROSTER}/briefing").status_code == 200
+    assert reads(seen, "roster_firm_cells") == 3  # a second visit: memoised
 
 
 def test_the_command_line_bootstrap_reads_the_firm_counts_once(demo_store: Store) -> None:

@@ -123,9 +123,12 @@ def test_fit_adjusted_with_the_firm_bootstrap_records_it(capsys: pytest.CaptureF
     assert payload["bootstrap"]["resamples"] == 500 and payload["bootstrap"]["seed"] == 3
     store = Store(f"sqlite:///{db}")
     try:
-        run_ = store.get_run(payload["run"])
-        assert run_.params == {"model": "adjusted", "adjust": ["age"], "unit": "firm", "resamples": 500, "seed": 3,
-                           "sampler": 2}
+        assert store.get_run(payload["run"]).params == {"model": "adjusted", "adjust": ["age"]}
+        # the bootstrap is a bootstrap run of the adjusted_odds_ratio statistic, with its replicates
+        boot = store.get_run(payload["bootstrap_run"])
+        assert boot.kind == "bootstrap" and boot.params["statistic"] == "adjusted_odds_ratio"
+        assert boot.params["adjust"] == ["age"] and boot.params["resamples"] == 500 and boot.params["seed"] == 3
+        assert len(store.replicates(boot.id)) == 500
     finally:
         store.dispose()
     code, _, err = run(capsys, "fit", "--roster", "1", "--resamples", "500", "--db", db)

@@ -23,7 +23,6 @@ from app.stats.adjusted import (
     AdjustedCells,
     AdjustedFit,
     MixShift,
-    bootstrap_adjusted,
     collapse,
     fit_adjusted,
     mix_by_year,
@@ -40,11 +39,15 @@ def adjusted_cells(inp: AnalysisInput, adjust: tuple[str, ...]) -> AdjustedCells
     """Forced and voluntary departures of the window, collapsed to the adjusted model's cells (memoised)."""
     def compute() -> AdjustedCells:
         firms = inp.store.firm_cell_counts(inp.roster.id, inp.roster.version, detail=True)
-        frame = inp.categorised(firms)
-        frame = in_window(frame, inp.window)
-        frame = frame.loc[frame["category"].isin(["forced", "voluntary"])]
-        return collapse(frame, adjust)
+        return adjusted_cells_from(inp.categorised(firms), inp.window, adjust)
     return memoised(inp.store, ("adjusted_cells", *inp.key, adjust), compute)
+
+
+def adjusted_cells_from(firms: pd.DataFrame, window: tuple[int, int], adjust: tuple[str, ...]) -> AdjustedCells:
+    """The adjusted model's cells of categorised firm cells (detailed key, with ``category``): the window's
+    forced and voluntary departures, collapsed. Shared by the saved mapping's fit and the robustness readings."""
+    frame = in_window(firms, window)
+    return collapse(frame.loc[frame["category"].isin(["forced", "voluntary"])], adjust)
 
 
 def _fingerprint(data: AdjustedCells) -> str:
@@ -58,24 +61,15 @@ class AdjustedOutcome:
     result: dict[str, Any]
 
 
-def run_adjusted(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...], *,
-                 resamples: int | None = None, seed: int = 20261201) -> AdjustedOutcome:
-    """Fit the adjusted trend and record it as a run (params: model, adjust, and the bootstrap's resamples
-    and seed when asked; the mapping version pins the rules). ``resamples``: also the firm bootstrap (BCa)."""
+def run_adjusted(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...]) -> AdjustedOutcome:
+    """Fit the adjusted trend and record it as a run (params: model and adjust; the mapping version pins the
+    rules). Its firm bootstrap is a bootstrap run of its own (``adjusted_summary``)."""
     chosen = parse_adjust(adjust)
     started = time.perf_counter()
     data = adjusted_cells(inp, chosen)
     fit = memoised(store, ("fit_adjusted", *inp.key, chosen), lambda: fit_adjusted(data, inp.window))
     params: dict[str, Any] = {"model": MODEL, "adjust": list(chosen)}
-    boot = None
-    if resamples is not None:
-        boot = bootstrap_adjusted(data, inp.window, resamples=resamples, seed=seed)
-        params |= {"unit": "firm", "resamples": resamples, "seed": seed, "sampler": boot.sampler}
-    result = adjusted_to_dict(fit, boot.intervals["bca"] if boot else None)
-    if boot is not None:
-        result["bootstrap"] = {"method": "BCa, firms resampled", "resamples": boot.resamples, "seed": boot.seed,
-                               "failed": boot.failed, "percentile": json_interval(boot.intervals["percentile"]),
-                               "seconds": boot.seconds}
+    result = adjusted_to_dict(fit)
     run_id = _record_run(store, inp, params, _fingerprint(data), result, time.perf_counter() - started)
     return AdjustedOutcome(fit, run_id, result)
 
@@ -108,10 +102,10 @@ def adjusted_sentence(fit: AdjustedFit) -> str:
                if dropped else "") + ").")
 
 
-def adjusted_summary(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...], *,
-                     resamples: int | None = None, seed: int = 20261201) -> dict[str, Any]:
-    """The command line's ``fit --model adjusted --json`` object."""
-    outcome = run_adjusted(store, inp, adjust, resamples=resamples, seed=seed)
+def adjusted_summary(store: Store, inp: AnalysisInput, adjust: str | tuple[str, ...]) -> dict[str, Any]:
+    """The command line's ``fit --model adjusted --json`` object (its firm bootstrap:
+    ``app.analysis.adjusted_bootstrap.adjusted_fit_summary``)."""
+    outcome = run_adjusted(store, inp, adjust)
     return {"roster": inp.roster.name, "mapping": inp.mapping_label,
             "rules": [r.describe() for r in (inp.mapping.rules if inp.mapping else ())],
             **outcome.result, "sentence": adjusted_sentence(outcome.fit), "run": outcome.run_id}

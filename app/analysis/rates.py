@@ -30,7 +30,8 @@ from app.stats.trend_report import json_interval, json_number
 from app.store import Store, StoreError, Universe
 
 __all__ = ["SHARE_VS_RATE", "RateAnalysis", "RatesSection", "UniverseFlags", "categorised_universe_firms",
-           "rate_summary", "rates_section", "run_rates", "universe_flags", "universe_overview", "universe_or_error"]
+           "mark_inside", "rate_summary", "rates_section", "run_rates", "universe_flags", "universe_overview",
+           "universe_or_error", "universe_rate_table"]
 
 #: shown wherever a rate appears (pages, command output)
 SHARE_VS_RATE = ("Share vs rate: the forced share (forced / counted departures) can rise while the forced rate "
@@ -140,9 +141,7 @@ def _universe_counts(store: Store, inp: AnalysisInput, universe: Universe, windo
 
     def reclassified() -> _UniverseCounts:
         firms = categorised_universe_firms(store, inp, universe.id)
-        counts = (firms.groupby(["year", "reason", "inside", "category"], sort=True)["departures"].sum()
-                  .reset_index())
-        counts = counts.loc[counts["departures"] > 0].reset_index(drop=True)
+        counts = _inside_counts(firms)
         missing = set(store.firms_outside_universe(roster_id, universe.id, window, version)["firm_id"].astype(str))
         rows = firms.loc[firms["firm_id"].astype(str).isin(missing)]
         if window is not None:
@@ -161,13 +160,34 @@ def categorised_universe_firms(store: Store, inp: AnalysisInput, universe_id: in
     with ``inside``: whether the cell's (firm, year) is one of the universe's firm-years (flagged in SQL).
     What the Rates section and the rate_ratio bootstrap's cells both count, so each classifies a departure as
     the share does. Not memoised (one row per firm cell): callers memoise what they derive from it."""
-    firms = inp.categorised_firms()
+    return mark_inside(store, inp, universe_id, inp.categorised_firms())
+
+
+def mark_inside(store: Store, inp: AnalysisInput, universe_id: int, firms: pd.DataFrame) -> pd.DataFrame:
+    """``firms`` (firm cells of the input's roster version) with ``inside``: whether the cell's (firm, year)
+    is one of the universe's firm-years (flagged in SQL). The robustness readings flag the firm cells once and
+    categorise them per reading (app.analysis.robustness_measures)."""
     flags = store.universe_firm_year_flags(inp.roster.id, universe_id, inp.roster.version)
     keyed = firms[["firm_id", "year"]].astype({"firm_id": str, "year": "int64"})
     flags = flags.astype({"firm_id": str, "year": "int64"})
     # one flag per firm-year, so the left join keeps the firm cells' rows and order
     inside = keyed.merge(flags, on=["firm_id", "year"], how="left")["inside"]
     return firms.assign(inside=inside.eq(True).to_numpy(dtype=bool))
+
+
+def _inside_counts(firms: pd.DataFrame) -> pd.DataFrame:
+    """Categorised firm cells with ``inside`` summed to (year, reason, inside, category) counts."""
+    counts = (firms.groupby(["year", "reason", "inside", "category"], sort=True)["departures"].sum()
+              .reset_index())
+    return counts.loc[counts["departures"] > 0].reset_index(drop=True)
+
+
+def universe_rate_table(firms: pd.DataFrame, exposure: pd.Series, window: tuple[int, int]) -> RateTable:
+    """The rate table of categorised firm cells with ``inside`` (``mark_inside``) over ``exposure`` (firm-years
+    per year): what ``run_rates`` tabulates for a version that reclassifies, for a reading that is not a saved
+    version (robustness)."""
+    empty = pd.DataFrame({"firm_id": [], "reason": [], "category": []})
+    return _rate_table(_UniverseCounts(_inside_counts(firms), exposure, empty), window)
 
 
 def _flags(inp: AnalysisInput, found: _UniverseCounts, window: tuple[int, int] | None) -> UniverseFlags:

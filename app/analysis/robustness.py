@@ -5,7 +5,10 @@ one chosen code moved to each other category, every ambiguous code treated as ex
 the mapping version's classification rules (when it has any), the reading without its case overrides (when it
 has any; every other reading of the roster's mapping keeps them, and another saved mapping brings its own) and,
 on request, with the academic preset.
-Each variant is fitted on the same window; the differences from the reference are spelled out.
+Each variant is fitted on the same window; the differences from the reference are spelled out. Each reading
+also carries the forced rate ratio per year (when the roster has a universe of firm-years) and the adjusted odds
+ratio per year (the analyst's adjustment set), classified exactly as its share
+(:mod:`app.analysis.robustness_measures`), each with its own verdict sentence.
 
 A reading must not mislead: other mappings are offered by default only when they give a category to every
 code the reference counts (forced or voluntary) in the window (:func:`offered_mappings` says which were left
@@ -17,6 +20,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
+from functools import partial
 from typing import Any, Literal
 
 import numpy as np
@@ -25,10 +29,22 @@ import pandas as pd
 from app.analysis.cellstore import categorise_with, cells_from_counts, detail_counts, memoised
 from app.analysis.inputs import AnalysisInput, parse_mapping_ref
 from app.analysis.overrides import ResolvedOverride, apply_overrides, resolve_overrides
+from app.analysis.provenance import universe_label
+from app.analysis.robustness_measures import (
+    AdjustedReading,
+    MeasureContext,
+    RateReading,
+    adjusted_reading_to_dict,
+    default_adjust,
+    measure_verdicts,
+    measures_takeaway,
+    rate_to_dict,
+)
 from app.analysis.rules import PRESET_NAME, PRESET_SOURCE, preset_rules, with_preset
 from app.intake.reasons import diff_mappings, suggest_categories
+from app.stats.adjusted import parse_adjust
 from app.stats.trend import TrendError, TrendFit, fit_trend
-from app.store import Store
+from app.store import Store, Universe
 from app.types import CATEGORIES, ClassificationRule
 
 
@@ -51,6 +67,10 @@ class Variant:
     unmapped: int = 0
     #: NAME:VERSION of the stored mapping behind the reading (for links to its departures), None if generated
     mapping_ref: str | None = None
+    #: the forced rate ratio per year under this reading (None: measures not asked for)
+    rate: RateReading | None = None
+    #: the adjusted odds ratio per year under this reading (None: measures not asked for)
+    adjusted: AdjustedReading | None = None
 
 
 @dataclass(frozen=True)
@@ -64,6 +84,29 @@ class Robustness:
     sentence: str
     #: (NAME:VERSION, why) of the saved mappings not offered because they leave counted codes unmapped
     left_out: tuple[tuple[str, str], ...] = ()
+    #: does the direction of the forced rate ratio / the adjusted odds ratio hold in every reading? (None: the
+    #: reference reading's measure could not be fitted, or measures were not asked for)
+    rate_sentence: str = ""
+    rate_holds: bool | None = None
+    adjusted_sentence: str = ""
+    adjusted_holds: bool | None = None
+    #: provenance of the two measures: the universe of firm-years (label and fingerprint; None without one)
+    #: and the adjustment set
+    universe: str | None = None
+    universe_fingerprint: str | None = None
+    universe_approximate: bool = False
+    adjust: tuple[str, ...] = ()
+
+    @property
+    def measured(self) -> bool:
+        """True when the readings carry the rate ratio and the adjusted odds ratio (``check_robustness``'s
+        ``measures``)."""
+        return bool(self.adjusted_sentence)
+
+    def measures_takeaway(self) -> str:
+        """One short clause per measure for a slide or a brief caption (``measures_takeaway``)."""
+        return measures_takeaway([(v.rate, v.adjusted) for v in self.variants
+                                  if v.unmapped == 0 or v.kind == "reference"])
 
 
 def counted_codes(inp: AnalysisInput, categories: Mapping[str, str]) -> dict[str, int]:
@@ -124,7 +167,7 @@ def _fit_variant(inp: AnalysisInput, categories: Mapping[str, str], label: str, 
                  changes: tuple[str, ...], boot: tuple[tuple[float, float] | None, str],
                  rules: tuple[ClassificationRule, ...] = (), *,
                  counted: Mapping[str, int] | None = None, ref: str | None = None,
-                 overrides: tuple[ResolvedOverride, ...] = ()) -> Variant:
+                 overrides: tuple[ResolvedOverride, ...] = (), ctx: MeasureContext | None = None) -> Variant:
     def fit_variant() -> tuple[int, int, TrendFit | str]:
         if rules:  # rules read the age/tenure/interim key of the cells
             counts = categorise_with(detail_counts(inp.store, inp.roster), categories, rules)[0]
@@ -141,11 +184,15 @@ def _fit_variant(inp: AnalysisInput, categories: Mapping[str, str], label: str, 
     departures, forced, fit = memoised(inp.store, ("variant", *inp.key, tuple(sorted(categories.items())), rules,
                                                    overrides), fit_variant)
     unmapped = sum(_unmapped(counted or {}, categories).values())
+    # the rate ratio and the adjusted odds ratio of the same reading (codes, rules, overrides)
+    measures = ctx.measures(categories, rules, overrides) if ctx is not None else None
+    rate, adjusted = (measures.rate, measures.adjusted) if measures is not None else (None, None)
     if isinstance(fit, str):
-        return Variant(label, kind, changes, departures, forced, None, None, None, None, boot[1], fit, unmapped, ref)
+        return Variant(label, kind, changes, departures, forced, None, None, None, None, boot[1], fit, unmapped, ref,
+                       rate, adjusted)
     return Variant(label, kind, changes, departures, forced, fit.odds_ratio, fit.conf_int.get("wald"),
                    fit.conf_int.get("profile"), boot[0], boot[1],
-                   "; ".join(fit.messages) if fit.separated else None, unmapped, ref)
+                   "; ".join(fit.messages) if fit.separated else None, unmapped, ref, rate, adjusted)
 
 
 def _direction(v: Variant) -> int:
@@ -162,9 +209,14 @@ def _direction(v: Variant) -> int:
 
 def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[str] | Literal["covering"] | None = None,
                      vary: list[str] | None = None, ambiguous_excluded: bool = True,
-                     preset: bool = False) -> Robustness:
+                     preset: bool = False, adjust: str | tuple[str, ...] | None = None,
+                     measures: bool = True) -> Robustness:
     """Fit the straight trend under each variant of the mapping (see module docstring); with ``preset``, also
     with the academic preset's rules added (retirement below 60 counts as forced).
+
+    ``measures``: also the forced rate ratio (when the roster has a universe) and the adjusted odds ratio per
+    year of every reading; ``adjust``: the adjustment set (default: age, tenure and sector where the roster has
+    those columns).
 
     ``extra_mappings="covering"``: every other saved mapping that covers the counted codes; the rest are
     listed in ``left_out`` with the reason.
@@ -179,23 +231,27 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
     left_out: list[tuple[str, str]] = []
     if extra_mappings == "covering":
         extra_mappings, left_out = offered_mappings(store, inp)
-    variants = [_fit_variant(inp, base, inp.mapping_label, "reference", ("the roster's mapping",),
+    chosen_adjust = parse_adjust(adjust) if adjust is not None else default_adjust(inp.roster)
+    universe = store.current_universe(inp.roster.id) if measures else None
+    ctx = MeasureContext(inp, universe, chosen_adjust) if measures else None
+    fit = partial(_fit_variant, ctx=ctx)
+    variants = [fit(inp, base, inp.mapping_label, "reference", ("the roster's mapping",),
                              _bootstrap_interval(store, inp, inp.mapping.name, inp.mapping.version), rules,
                              ref=f"{inp.mapping.name}:{inp.mapping.version}", overrides=mine)]
     no_boot = (None, "not bootstrapped (a generated variant)")
     if rules:
-        variants.append(_fit_variant(inp, base, "without rules (codes alone)", "rules-off",
+        variants.append(fit(inp, base, "without rules (codes alone)", "rules-off",
                                      tuple(f"dropped rule: {r.describe()}" for r in rules), no_boot,
                                      overrides=mine))
     if applied := tuple(r for r in mine if r.applied):
-        variants.append(_fit_variant(inp, base, "without case overrides", "overrides-off",
+        variants.append(fit(inp, base, "without case overrides", "overrides-off",
                                      tuple(f"dropped override: {r.override.describe()} "
                                            f"({r.counted_as} \u2192 {r.override.category})" for r in applied),
                                      no_boot, rules))
     if preset:
         added = with_preset(rules, preset_rules(inp.mapping, roster_codes))
         if added != rules:
-            variants.append(_fit_variant(inp, base, f"with the preset: {PRESET_NAME}", "rules-preset",
+            variants.append(fit(inp, base, f"with the preset: {PRESET_NAME}", "rules-preset",
                                          tuple(f"added rule: {r.describe()} ({PRESET_SOURCE})"
                                                for r in added[len(rules):]), no_boot, added, overrides=mine))
     for ref in extra_mappings or []:
@@ -203,7 +259,7 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
         other = store.get_mapping(name, version)
         if other.name == inp.mapping.name and other.version == inp.mapping.version:
             continue
-        variants.append(_fit_variant(inp, dict(other.categories), f"{other.name} v{other.version}", "mapping",
+        variants.append(fit(inp, dict(other.categories), f"{other.name} v{other.version}", "mapping",
                                      _describe(base, dict(other.categories), roster_codes)
                                      + tuple(f"rule: {r.describe()}" for r in other.rules if r not in rules),
                                      _bootstrap_interval(store, inp, other.name, other.version), other.rules,
@@ -217,16 +273,31 @@ def check_robustness(store: Store, inp: AnalysisInput, *, extra_mappings: list[s
             if target == current:
                 continue
             moved = base | {code: target}
-            variants.append(_fit_variant(inp, moved, f"{code} as {target}", "moved",
+            variants.append(fit(inp, moved, f"{code} as {target}", "moved",
                                          (f"{code}: {current} → {target}",), no_boot, rules, overrides=mine))
     if ambiguous_excluded:
         ambiguous = sorted(c for c, s in suggest_categories(sorted(roster_codes)).items() if s.ambiguous)
         changed = {c: "excluded" for c in ambiguous if base.get(c) != "excluded"}
         if changed:
-            variants.append(_fit_variant(inp, base | changed, "ambiguous codes excluded", "ambiguous-excluded",
+            variants.append(fit(inp, base | changed, "ambiguous codes excluded", "ambiguous-excluded",
                                          tuple(f"{c}: {base.get(c, 'unmapped')} → excluded" for c in changed),
                                          no_boot, rules, overrides=mine))
-    return replace(_verdict(inp, _merge_identical(variants)), left_out=tuple(left_out))
+    result = replace(_verdict(inp, _merge_identical(variants)), left_out=tuple(left_out))
+    if ctx is None:
+        return result
+    return _measure_verdicts(inp, result, universe, chosen_adjust)
+
+
+def _measure_verdicts(inp: AnalysisInput, result: Robustness, universe: Universe | None,
+                      adjust: tuple[str, ...]) -> Robustness:
+    """The rate ratio's and the adjusted odds ratio's sentences over the readings of the share's verdict."""
+    judged = [v for v in result.variants if v.unmapped == 0 or v.kind == "reference"]
+    rate_sentence, rate_holds, adj_sentence, adj_holds = measure_verdicts(
+        f"{inp.window[0]}\u2013{inp.window[1]}", [(v.label, v.rate, v.adjusted) for v in judged], adjust)
+    return replace(result, rate_sentence=rate_sentence, rate_holds=rate_holds, adjusted_sentence=adj_sentence,
+                   adjusted_holds=adj_holds, universe=universe_label(universe) if universe is not None else None,
+                   universe_fingerprint=universe.fingerprint if universe is not None else None,
+                   universe_approximate=universe is not None and universe.approximate, adjust=adjust)
 
 
 def _merge_identical(variants: list[Variant]) -> list[Variant]:
@@ -296,18 +367,45 @@ def robustness_to_dict(result: Robustness) -> dict[str, Any]:
             "forced": v.forced, "odds_ratio": v.odds_ratio,
             "conf_int": {"wald": pair(v.wald), "profile": pair(v.profile), "bootstrap": pair(v.bootstrap)},
             "bootstrap_note": v.bootstrap_note, "error": v.error, "unmapped": v.unmapped,
-            "mapping": v.mapping_ref,
+            "mapping": v.mapping_ref, "rate": rate_to_dict(v.rate), "adjusted": adjusted_reading_to_dict(v.adjusted),
         } for v in result.variants],
         "left_out": [{"mapping": ref, "reason": why} for ref, why in result.left_out],
+        "rate_sentence": result.rate_sentence, "rate_holds": result.rate_holds,
+        "adjusted_sentence": result.adjusted_sentence, "adjusted_holds": result.adjusted_holds,
+        "provenance": {"universe": result.universe, "universe_fingerprint": result.universe_fingerprint,
+                       "adjust": list(result.adjust)},
     }
 
 
 def robustness_rows(result: Robustness) -> pd.DataFrame:
-    """Forest-plot rows: one per variant, the reference first and marked as the common row."""
+    """Forest-plot rows: one per variant, the reference first and marked as the common row (``label``,
+    ``odds_ratio``, ``low``, ``high``, ``group``: the share), then each reading's forced rate ratio and adjusted
+    odds ratio with their intervals (profile, firm-clustered; NaN where not fitted) and why not."""
+    def pair(p: tuple[float, float] | None) -> tuple[float, float]:
+        return (float(p[0]), float(p[1])) if p is not None else (np.nan, np.nan)
+
     rows = []
     for v in result.variants:
-        lo, hi = v.profile if v.profile else (np.nan, np.nan)
+        lo, hi = pair(v.profile)
         label = f"{v.label} (leaves {v.unmapped:,} unmapped)" if v.unmapped else v.label
-        rows.append({"label": label, "odds_ratio": v.odds_ratio if v.odds_ratio is not None else np.nan,
-                     "low": lo, "high": hi, "group": "Reference mapping" if v.kind == "reference" else "Other reading"})
+        row: dict[str, Any] = {
+            "label": label, "odds_ratio": v.odds_ratio if v.odds_ratio is not None else np.nan,
+            "low": lo, "high": hi, "group": "Reference mapping" if v.kind == "reference" else "Other reading"}
+        if v.rate is not None:
+            r_lo, r_hi = pair(v.rate.profile or v.rate.wald)
+            row |= {"rate_ratio": v.rate.rate_ratio if v.rate.rate_ratio is not None else np.nan,
+                    "rate_low": r_lo, "rate_high": r_hi, "rate_note": v.rate.error or ""}
+        if v.adjusted is not None:
+            a_lo, a_hi = pair(v.adjusted.cluster)
+            row |= {"adjusted_odds_ratio": v.adjusted.odds_ratio if v.adjusted.odds_ratio is not None else np.nan,
+                    "adjusted_low": a_lo, "adjusted_high": a_hi, "adjusted_note": v.adjusted.error or ""}
+        rows.append(row)
     return pd.DataFrame(rows)
+
+
+def robustness_summary(store: Store, inp: AnalysisInput, *, extra_mappings: list[str], vary: list[str],
+                       preset: bool = False, adjust: str | tuple[str, ...] | None = None) -> dict[str, Any]:
+    """The command line's ``robustness --json`` object (moved here from app.analysis.runs, which the rate and
+    adjusted measures of the readings import)."""
+    result = check_robustness(store, inp, extra_mappings=extra_mappings, vary=vary, preset=preset, adjust=adjust)
+    return {"roster": inp.roster.name, "mapping": inp.mapping_label, **robustness_to_dict(result)}

@@ -8,7 +8,6 @@ from typing import Any
 
 from app.analysis.cellstore import cells_from_counts, memoised
 from app.analysis.inputs import AnalysisInput
-from app.analysis.robustness import check_robustness, robustness_to_dict
 from app.analysis.stored_fits import (
     PROFILE_KEY,
     engine_tag,
@@ -136,13 +135,6 @@ def fit_summary(store: Store, inp: AnalysisInput, *, model: str = "linear", by_s
         payload["heterogeneity"] = view["heterogeneity"]
         payload["sector_messages"] = list(sectors.messages)
     return payload
-
-
-def robustness_summary(store: Store, inp: AnalysisInput, *, extra_mappings: list[str],
-                       vary: list[str], preset: bool = False) -> dict[str, Any]:
-    """The command line's ``robustness --json`` object."""
-    result = check_robustness(store, inp, extra_mappings=extra_mappings, vary=vary, preset=preset)
-    return {"roster": inp.roster.name, "mapping": inp.mapping_label, **robustness_to_dict(result)}
 
 
 def coverage_summary(inp: AnalysisInput, *, threshold: float = 0.5) -> dict[str, Any]:

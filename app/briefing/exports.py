@@ -88,6 +88,13 @@ def _deck_provenance(findings: Sequence[ChartFinding], fallback: Provenance) -> 
                            universe_approximate=p.universe_approximate)
         if f.name == "adjusted":
             base = replace(base, adjustment=p.adjustment)
+    robust = next((f.provenance for f in findings if f.name == "robustness"), None)
+    if robust is not None:  # the readings' rate ratios and adjusted odds ratios: their universe and set
+        if robust.universe and not base.universe:
+            base = replace(base, universe=robust.universe, universe_fingerprint=robust.universe_fingerprint,
+                           universe_approximate=robust.universe_approximate)
+        if robust.adjustment is not None and base.adjustment is None:
+            base = replace(base, adjustment=robust.adjustment)
     return base
 
 
@@ -283,6 +290,10 @@ def _measure_method(finding: ChartFinding) -> str:
         return (" Adjusted trend: departure-level logit on fiscal year and age, tenure (bands) or sector as set "
                 "in the footer, firm-clustered standard errors"
                 + (f"; {dropped:,} departures lacking an adjusting field left out." if dropped else "."))
+    if finding.name == "robustness" and "adjusted_sentence" in finding.numbers:
+        return (" Robustness: each reading of the codes also gives the forced rate ratio (Poisson, log firm-years "
+                "as offset) and the adjusted odds ratio (firm-clustered), counting departures as its share does. "
+                + " ".join(finding.numbers[k] for k in ("rate_sentence", "adjusted_sentence")))
     return ""
 
 

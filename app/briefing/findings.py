@@ -7,7 +7,7 @@ or part of the one-page brief.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Any, Literal, get_args
 
 import numpy as np
@@ -221,28 +221,52 @@ def sectors_finding(store: Store, inp: AnalysisInput, min_departures: int = 20) 
     return sectors_finding_from(inp, *run_sectors(store, inp, min_departures=min_departures))
 
 
+#: the robustness finding's interval methods when its readings carry the rate and adjusted measures
+ROBUSTNESS_MEASURES_METHOD = ("profile likelihood, 95%; each reading's forced rate ratio: Poisson GLM with log "
+                              "firm-years as offset, profile likelihood (quasi-Poisson when overdispersed); its "
+                              "adjusted odds ratio: firm-clustered Wald, 95%")
+
+
 def robustness_finding_from(inp: AnalysisInput, result: Robustness) -> ChartFinding:
+    """The share's forest chart under each reading; with measures, the readings' rate ratios and adjusted odds
+    ratios in the rows, their verdicts in the takeaway and notes, the universe and adjustment set in the
+    provenance."""
     from app.analysis.robustness import robustness_rows
 
     prov = provenance_for(inp, interval_method="profile likelihood, 95%")
+    if result.measured:
+        prov = replace(prov, interval_method=ROBUSTNESS_MEASURES_METHOD, universe=result.universe or "",
+                       universe_fingerprint=result.universe_fingerprint or "",
+                       universe_approximate=result.universe_approximate, adjustment=result.adjust)
     title = result.sentence.split(": ")[0].split(", but")[0]
     table = robustness_rows(result)
+    # the chart draws the share's odds ratios (label, odds_ratio, low, high, group); the other columns are data
     fig = forest_figure(table, title=title, source=prov.short())
     caveat = ("Each row is the same trend under another reading of the reason codes. A reading that leaves "
               "counted departures unmapped is marked and does not decide the verdict.")
-    numbers = {"sentence": result.sentence,
-               "readings": [{k: (None if isinstance(v, float) and not np.isfinite(v) else v)
-                             for k, v in row.items()} for row in table.to_dict("records")]}
-    return ChartFinding("robustness", fig, result.sentence, prov, title, caveat, table, numbers=numbers)
+    takeaway = result.sentence
+    if result.measured:
+        caveat += f" {result.rate_sentence} {result.adjusted_sentence}"
+        takeaway += f" {result.measures_takeaway()}"
+    numbers: dict[str, Any] = {
+        "sentence": result.sentence,
+        "readings": [{k: (None if isinstance(v, float) and not np.isfinite(v) else v)
+                      for k, v in row.items()} for row in table.to_dict("records")]}
+    if result.measured:
+        numbers |= {"rate_sentence": result.rate_sentence, "rate_holds": result.rate_holds,
+                    "adjusted_sentence": result.adjusted_sentence, "adjusted_holds": result.adjusted_holds,
+                    "universe_fingerprint": result.universe_fingerprint, "adjust": list(result.adjust)}
+    return ChartFinding("robustness", fig, takeaway, prov, title, caveat, table, numbers=numbers)
 
 
 def robustness_finding(store: Store, inp: AnalysisInput, extra: list[str] | None = None,
-                       vary: list[str] | None = None) -> ChartFinding:
+                       vary: list[str] | None = None, adjust: tuple[str, ...] | str | None = None) -> ChartFinding:
+    """``adjust``: the readings' adjustment set (default: age, tenure and sector where the roster has them)."""
     from app.analysis.robustness import check_robustness
 
     # by default, only the saved mappings that give every counted code a category (the rest are left out)
     return robustness_finding_from(inp, check_robustness(store, inp, extra_mappings=extra or "covering",
-                                                         vary=vary or []))
+                                                         vary=vary or [], adjust=adjust))
 
 
 def _ratio_text(fit: RateTrend) -> str:
@@ -346,4 +370,4 @@ def build_finding(store: Store, inp: AnalysisInput, chart: str, *, run_id: int |
         return rates_finding(store, inp)
     if chart == "adjusted":
         return adjusted_finding(store, inp, adjust)
-    return robustness_finding(store, inp)
+    return robustness_finding(store, inp, adjust=adjust)

@@ -64,15 +64,23 @@ def cmd_fit(args: argparse.Namespace) -> int:
         _emit(args, rate_summary(store, inp), lambda p: f"{p['sentence']}\n{p['caution']}")
         return 0
     if args.model == "adjusted":
-        from app.analysis.adjusted import adjusted_summary
+        from app.analysis.adjusted_bootstrap import adjusted_fit_summary
 
         if args.by or args.compare:
             raise CommandError("--model adjusted adjusts for sector itself (--adjust); drop --by and --compare.")
         from app.analysis.run_params import default_seed
 
         seed = args.seed if args.seed is not None else default_seed(inp.roster)
-        adjusted_payload = adjusted_summary(store, inp, args.adjust, resamples=args.resamples, seed=seed)
-        _emit(args, adjusted_payload, lambda p: p["sentence"])
+        adjusted_payload = adjusted_fit_summary(store, inp, args.adjust, resamples=args.resamples, seed=seed)
+
+        def adjusted_text(p: dict[str, Any]) -> str:
+            if "bootstrap" not in p:
+                return str(p["sentence"])
+            b, (lo, hi) = p["bootstrap"], p["conf_int"]["bootstrap"]
+            interval = "n/a" if lo is None or hi is None else f"{lo:.3f} to {hi:.3f}"
+            return (f"{p['sentence']}\nFirm bootstrap (run {b['run']}, B={b['resamples']}, seed {b['seed']}): BCa 95% "
+                    f"{interval}; {b['failed']} failed resamples.")
+        _emit(args, adjusted_payload, adjusted_text)
         return 0
     payload: dict[str, Any] | None = None
     if not args.compare and args.by != "sector":
@@ -130,14 +138,15 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
 
 def cmd_robustness(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
-    from app.analysis.runs import robustness_summary
+    from app.analysis.robustness import robustness_summary
 
     store = _store(args)
     mappings = args.mapping or []
     inp = load_input(store, args.roster, mapping=mappings[0] if mappings else None,
                      window=_parse_years(args.years))
-    payload = robustness_summary(store, inp, extra_mappings=mappings[1:], vary=args.vary or [], preset=args.preset)
-    _emit(args, payload, lambda p: p["sentence"])
+    payload = robustness_summary(store, inp, extra_mappings=mappings[1:], vary=args.vary or [], preset=args.preset,
+                                 adjust=args.adjust)
+    _emit(args, payload, lambda p: "\n".join([p["sentence"], p["rate_sentence"], p["adjusted_sentence"]]))
     return 0
 
 

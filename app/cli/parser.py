@@ -208,6 +208,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--preset", action="store_true",
                    help="also read the codes with the academic preset (retirement below 60 counts as forced, "
                         "Parrino 1997; default: off)")
+    p.add_argument("--adjust", metavar="age,tenure,sector", default=None,
+                   help="the adjusted odds ratio of each reading adjusts for these ('' for none; default: age, "
+                        "tenure and sector where the roster has them)")
     p.add_argument("--years", metavar="FROM-TO", help="analysis window, e.g. 1998-2022 (default: the roster's saved window, else the suggested one)")
     common(p)
     p.set_defaults(func=cmd_robustness)

@@ -11,9 +11,11 @@ from fastapi.responses import HTMLResponse, JSONResponse
 from app.analysis.cellstore import roster_counts
 from app.analysis.inputs import load_input
 from app.analysis.robustness import Robustness, check_robustness, offered_mappings
+from app.analysis.robustness_measures import default_adjust
 from app.analysis.rules import PRESET_NAME, PRESET_SOURCE
 from app.analysis.runs import run_sectors
 from app.briefing.findings import robustness_finding_from, sectors_finding_from
+from app.stats.adjusted import AdjustedError, parse_adjust
 from app.stats.sectors import SectorTrends
 from app.store import Roster, Store, StoreError
 from app.web.departures import mapping_ref
@@ -61,6 +63,11 @@ class RobustnessPage:
     #: the academic preset (retirement below 60 counts as forced) is among the readings
     preset: bool = False
     preset_label: str = f"{PRESET_NAME}: {PRESET_SOURCE}"
+    #: what each reading's adjusted odds ratio adjusts for (the analyst's choice, else the roster's fields)
+    adjust: list[str] = field(default_factory=list)
+    #: the readings also carry the forced rate ratio and the adjusted odds ratio (asked for: they read the firm
+    #: counts, as the adjusted trend on Trend does)
+    measures: bool = False
 
 
 RobustnessBody = define(RobustnessPage, "RobustnessBody",
@@ -96,10 +103,12 @@ def sectors_data(store: Store, roster_id: int, *, min_departures: int = 20) -> S
 
 
 def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: list[str],
-                    preset: bool = False) -> RobustnessPage:
+                    preset: bool = False, adjust: tuple[str, ...] | None = None,
+                    measures: bool = False) -> RobustnessPage:
     roster = _roster(store, roster_id)
     names = store.list_mappings()
     codes = sorted(set(roster_counts(store, roster)["reason"].astype(str)))
+    chosen_adjust = adjust if adjust is not None else default_adjust(roster)
     try:
         inp = load_input(store, roster.id)
         chosen: list[str] | Literal["covering"] = extra or "covering"  # default: mappings covering the codes
@@ -108,18 +117,23 @@ def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: lis
         # the variants read stored bootstrap runs: their state is part of the key
         runs = tuple((r.id, r.finished_at, r.progress_done) for r in store.list_runs(roster.id, "bootstrap")
                      if r.status == "done")
-        key = (*inp.key, tuple(extra), chosen == "covering", tuple(vary), runs, preset)
+        # the rate ratios read the roster's current universe (a new import is a new id, never reused)
+        universe = store.current_universe(roster.id)
+        key = (*inp.key, tuple(extra), chosen == "covering", tuple(vary), runs, preset, chosen_adjust,
+               universe.id if universe is not None else None, measures)
         result = page_memo(store, ("robustness", *key),
-                           lambda: check_robustness(store, inp, extra_mappings=chosen, vary=vary, preset=preset))
+                           lambda: check_robustness(store, inp, extra_mappings=chosen, vary=vary, preset=preset,
+                                                    adjust=chosen_adjust, measures=measures))
     except (StoreError, ValueError) as exc:
-        return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc), preset=preset)
+        return RobustnessPage(roster, "no mapping", None, names, extra, vary, codes, str(exc), preset=preset,
+                              adjust=list(chosen_adjust), measures=measures)
     if all(v.odds_ratio is None for v in result.variants):  # nothing to draw: the table says why
         return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, None,
-                              inp.warnings(), preset=preset)
+                              inp.warnings(), preset=preset, adjust=list(chosen_adjust), measures=measures)
     figure = page_memo(store, ("robustness-figure", *key),
                        lambda: figure_spec(robustness_finding_from(inp, result).figure, titled=False))
     return RobustnessPage(roster, inp.mapping_label, result, names, extra, vary, codes, None, figure,
-                          inp.warnings(), preset=preset)
+                          inp.warnings(), preset=preset, adjust=list(chosen_adjust), measures=measures)
 
 
 def _min_departures(request: Request) -> int:
@@ -137,7 +151,15 @@ _ROBUSTNESS_QUERY = query(
     ("vary", {"type": "array", "items": {"type": "string"}},
      "reason codes whose category to move (repeatable)"),
     ("preset", {"type": "integer", "enum": [0, 1], "default": 0},
-     "1: also read the codes with the academic preset (retirement below 60 counts as forced)"))
+     "1: also read the codes with the academic preset (retirement below 60 counts as forced)"),
+    ("measures", {"type": "integer", "enum": [0, 1], "default": 0},
+     "1: each reading also gives the forced rate ratio (with a universe) and the adjusted odds ratio per year "
+     "(reads the firm counts)"),
+    ("adjusting", {"type": "integer", "enum": [0, 1], "default": 0},
+     "1: the ``adjust`` values are the adjustment set (none given: adjust for nothing); 0: age, tenure and "
+     "sector where the roster has them"),
+    ("adjust", {"type": "array", "items": {"type": "string", "enum": ["age", "tenure", "sector"]}},
+     "what each reading's adjusted odds ratio adjusts for (repeatable, with adjusting=1)"))
 
 
 @router.get("/rosters/{roster_id}/sectors", response_class=HTMLResponse, name="sectors_page",
@@ -158,8 +180,21 @@ def _robustness_args(request: Request) -> dict[str, Any]:
     preset = request.query_params.get("preset", "0")
     if preset not in ("0", "1"):
         raise BadRequest(f"preset must be 0 or 1; got {preset!r}.")
+    measures = request.query_params.get("measures", "0")
+    if measures not in ("0", "1"):
+        raise BadRequest(f"measures must be 0 or 1; got {measures!r}.")
+    adjusting = request.query_params.get("adjusting", "0")
+    if adjusting not in ("0", "1"):
+        raise BadRequest(f"adjusting must be 0 or 1; got {adjusting!r}.")
+    adjust = None
+    if adjusting == "1":
+        try:
+            adjust = parse_adjust(request.query_params.getlist("adjust"))
+        except AdjustedError as exc:
+            raise BadRequest(str(exc)) from None
     return {"extra": [m for m in request.query_params.getlist("mapping") if m],
-            "vary": [c for c in request.query_params.getlist("vary") if c], "preset": preset == "1"}
+            "vary": [c for c in request.query_params.getlist("vary") if c], "preset": preset == "1",
+            "adjust": adjust, "measures": measures == "1"}
 
 
 @router.get("/rosters/{roster_id}/robustness", response_class=HTMLResponse, name="robustness_page",
