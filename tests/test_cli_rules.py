@@ -125,7 +125,7 @@ def test_fit_adjusted_with_the_firm_bootstrap_records_it(capsys: pytest.CaptureF
     try:
         run_ = store.get_run(payload["run"])
         assert run_.params == {"model": "adjusted", "adjust": ["age"], "unit": "firm", "resamples": 500, "seed": 3,
-                           "sampler": 2}
+                           "sampler": 3}
     finally:
         store.dispose()
     code, _, err = run(capsys, "fit", "--roster", "1", "--resamples", "500", "--db", db)
