@@ -21,7 +21,7 @@ product) never changes them.
 Samplers (how a block's firm draws are taken from its generator; a run records which, ``SAMPLERS``)
 ---------------------------------------------------------------------------------------------------
 * ``1``: resample by resample, ``rng.integers(0, n_firms, size=n_firms)`` each.
-* ``2`` (new runs): the firms are cut into ranges of ``SPAN`` in firm order. A block first draws how many
+* ``2``: the firms are cut into ranges of ``SPAN`` in firm order. A block first draws how many
   of each resample's ``n_firms`` draws fall in each range, ``rng.multinomial(n_firms, range sizes / n_firms,
   size=rows)``, then range by range, resample by resample, that many uniform firms within the range. Given
   the range totals the draws within a range are uniform, so a resample's multiplicities are
