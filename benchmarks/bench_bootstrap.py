@@ -16,7 +16,7 @@ on a shared machine the CPU column and the ratio in the same run are the steadie
 Optionally (``--loop N``) the obvious per-resample loop (gather DataFrame rows, ``pd.crosstab``,
 statsmodels ``GLM.fit``) is timed on N resamples and scaled to 10,000.
 
-Run: ``python benchmarks/bench_bootstrap.py [--resamples 10000] [--best 3] [--loop 0]``
+Run: ``python benchmarks/bench_bootstrap.py [--resamples 10000] [--best 3] [--loop 0] [--pieces 3] [--no-memory]``
 """
 
 from __future__ import annotations
@@ -154,6 +154,62 @@ def obvious_loop(cells: Cells, unit: str, n: int) -> float:
     return (time.process_time() - cpu) / n
 
 
+def pieces(cells: Cells, resamples: int, runs: int) -> None:
+    """CPU seconds of each piece of 10,000 firm resamples drawn and fitted in one thread, by sampler 2 and 3:
+    the firm draws, their counting (bincount into the multiplicity block), the transpose of a pass (sampler 3),
+    the sparse product and the batched fit. Least of ``runs`` rounds, interleaved."""
+    from app.stats.draws import BLOCK_SIZE, PASS_ROWS, CellSampler, block_rng, uniform_below
+    from app.stats.sampling import fit_cells
+
+    design = design_for(cells)
+    X = np.asarray(design.matrix, dtype=float)
+    n = cells.firm_matrix.shape[0]
+    sampler = CellSampler(cells, "firm", sampler=3)
+    assert sampler.firm_t is not None and len(sampler.ranges) == 1
+    blocks = max(1, resamples // BLOCK_SIZE)
+    work = np.empty(n, dtype=np.int64)
+    rows = np.empty((PASS_ROWS, n), dtype=sampler.dtype)
+    block = np.empty((n, PASS_ROWS), dtype=sampler.dtype)
+    best: dict[str, float] = {}
+
+    def clock(name: str, since: float) -> float:
+        now = time.process_time()
+        best[name] = best.get(name, 0.0) + now - since
+        return now
+
+    seen: list[dict[str, float]] = []
+    for _ in range(runs):
+        best = {}
+        for k in range(blocks):
+            rng = block_rng(1, k)
+            bits = np.random.SFC64(rng.bit_generator.seed_seq)
+            out = np.empty((BLOCK_SIZE, sampler.counts.size))
+            for lo in range(0, BLOCK_SIZE, PASS_ROWS):
+                for j in range(PASS_ROWS):
+                    t = time.process_time()
+                    drawn = rng.integers(0, n, size=n)
+                    t = clock("sampler 2: integers (PCG64, int64)", t)
+                    block[:, j] = np.bincount(drawn, minlength=n)
+                    t = clock("sampler 2: bincount into a column", t)
+                    drawn = uniform_below(bits, n, n, work)
+                    t = clock("sampler 3: uniform_below (SFC64 words)", t)
+                    rows[j] = np.bincount(drawn, minlength=n)
+                    clock("sampler 3: bincount into a row", t)
+                t = time.process_time()
+                np.copyto(block, rows.T)
+                t = clock("sampler 3: transpose of the pass", t)
+                out[lo:lo + PASS_ROWS] = (sampler.firm_t @ block).T
+                clock("both: sparse product (float32, 25 columns)", t)
+            t = time.process_time()
+            fit_cells(X, out, design.slope)
+            clock("both: batched IRLS fit", t)
+        seen.append(best)
+    print(f"\npieces of {blocks * BLOCK_SIZE:,} firm resamples at {n:,} firms, one thread, CPU s (least of {runs} "
+          f"rounds; load {load()}):")
+    for name in seen[0]:
+        print(f"  {name:<45} {min(b[name] for b in seen):>6.3f}")
+
+
 def memory_child(engine: str, firms: int, resamples: int, baseline: str) -> None:
     """Run one firm bootstrap in this (fresh) process and print its memory as JSON."""
     module = baseline_engine(baseline) if engine == "previous" else None
@@ -187,6 +243,7 @@ def main() -> None:
     parser.add_argument("--scale", default="25000,100000,250000", help="firm counts for the scaling table")
     parser.add_argument("--baseline", default=BASELINE, help="git commit of the previous engine")
     parser.add_argument("--no-memory", action="store_true", help="skip the memory table")
+    parser.add_argument("--pieces", type=int, default=0, help="rounds of the piece-by-piece profile (0: skip)")
     parser.add_argument("--memory-child", choices=["current", "previous"], help=argparse.SUPPRESS)
     parser.add_argument("--firms", type=int, default=250_000, help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -202,30 +259,34 @@ def main() -> None:
     small, sector = make_cells(25_000), make_cells(25_000, by_sector=True)
     print(f"roster: {int(small.totals.sum()):,} departures, {small.firm_matrix.shape[0]:,} firms, "
           f"{small.n_groups} years, {sector.n_groups} sector-years")
+    if args.pieces:
+        pieces(small, B, args.pieces)
     for draw in engines.values():  # warm-up: thread pool, BLAS, page faults
         timed(draw, small, "firm", 500)
-    tasks = [("straight trend, departures", small, "departure", 0.1),
-             ("straight trend, firms", small, "firm", 1.0),
-             ("sector-adjusted, firms", sector, "firm", 5.0)]
+    tasks = [("straight trend, departures", small, "departure", 0.1, {}),
+             ("straight trend, firms", small, "firm", 1.0, {}),
+             ("  the same by sampler 2", small, "firm", 1.0, {"sampler": 2}),
+             ("sector-adjusted, firms", sector, "firm", 5.0, {})]
     print(f"\n{'task (' + format(B, ',') + ' resamples)':<30} {'wall s':>7} {'CPU s':>7} {'target':>7}    "
           f"{'prev wall':>9} {'prev CPU':>8} {'wall ratio':>10} {'CPU ratio':>9}")
-    for label, cells, unit, target in tasks:
-        wall, cpu = best_of(args.best, engines["current"], cells, unit, B)
+    for label, cells, unit, target, options in tasks:
+        wall, cpu = best_of(args.best, engines["current"], cells, unit, B, **options)
         p_wall, p_cpu = best_of(args.best, engines["previous"], cells, unit, B)
         flag = "ok" if wall < target else "SLOW"
         print(f"{label:<30} {wall:>7.3f} {cpu:>7.3f} {target:>6.1f} {flag:<4} {p_wall:>9.3f} {p_cpu:>8.3f} "
               f"{p_wall / wall:>9.2f}x {p_cpu / cpu:>8.2f}x")
     print(f"load average after the table {load()}")
 
-    print(f"\nfirm resamples ({B:,}, straight trend) as the roster grows: the current engine with sampler 2 "
-          f"(new runs) and sampler 1 (runs started before it), and the previous engine, interleaved; "
+    print(f"\nfirm resamples ({B:,}, straight trend) as the roster grows: the current engine with sampler 3 "
+          f"(new runs), samplers 2 and 1 (runs started before it), and the previous engine, interleaved; "
           f"least CPU of {max(1, args.best - 1)}; CPU per firm relative to the first size:")
     print(f"{'firms':>8} {'departures':>11}  " + "  ".join(f"{n + ' wall/CPU s':>22} {'/firm':>6}" for n in
-                                                           ("sampler 2", "sampler 1", "previous")))
+                                                           ("sampler 3", "sampler 2", "sampler 1", "previous")))
     first: dict[str, float] = {}
     for firms in (int(f) for f in args.scale.split(",")):
         cells = make_cells(firms)
         got = interleaved(max(1, args.best - 1), {
+            "sampler 3": functools.partial(timed, engines["current"], cells, "firm", B, sampler=3),
             "sampler 2": functools.partial(timed, engines["current"], cells, "firm", B, sampler=2),
             "sampler 1": functools.partial(timed, engines["current"], cells, "firm", B, sampler=1),
             "previous": functools.partial(timed, engines["previous"], cells, "firm", B)})
@@ -256,7 +317,7 @@ def main() -> None:
     if args.loop:
         print(f"\nobvious loop (gather rows, pd.crosstab, statsmodels GLM.fit), CPU timed on {args.loop} "
               f"resamples and scaled to {B:,}:")
-        for label, cells, unit, _ in tasks[:2]:
+        for label, cells, unit, _, _ in tasks[:2]:
             per = obvious_loop(cells, unit, args.loop)
             cpu = best_of(1, engines["current"], cells, unit, B)[1]
             print(f"  {label:<30} {per * B:>8.0f} CPU s, {per * B / cpu:,.0f}x the current engine's CPU")

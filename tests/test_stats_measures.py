@@ -116,8 +116,8 @@ def test_rate_ratio_resamples_equal_statsmodels_on_the_same_drawn_firms() -> Non
     estimate, se = statistic.original(cells)
     b, bse = sm_rate(cells.forced.astype(float), cells.voluntary.astype(float), years.astype(float))
     assert estimate == pytest.approx(b, abs=1e-8) and se == pytest.approx(bse, rel=1e-6)  # oracle: statsmodels
-    reps = draw_statistic(cells, statistic.evaluate, unit="firm", resamples=60, seed=17, workers=1)
-    rng = block_rng(17, 0)  # the engine's documented stream: rng.integers(0, n_firms, n_firms) per resample
+    reps = draw_statistic(cells, statistic.evaluate, unit="firm", resamples=60, seed=17, workers=1, sampler=1)
+    rng = block_rng(17, 0)  # sampler 1's documented stream: rng.integers(0, n_firms, n_firms) per resample
     resample = LoopResampler(fy.loc[fy["year"].between(*WINDOW)], dep, cells.firm_ids, years)
     for i in range(60):
         draw = rng.integers(0, len(cells.firm_ids), size=len(cells.firm_ids))
@@ -159,8 +159,9 @@ def test_adjusted_odds_ratio_resamples_equal_statsmodels_on_the_same_drawn_firms
     params, _, _ = statsmodels_fit(records, adjust)
     assert statistic.original(cells)[0] == pytest.approx(float(params["year"]), abs=1e-8)  # oracle: statsmodels
     assert statistic.original(cells)[0] == pytest.approx(fit_adjusted(data, (2000, 2015)).coef, abs=1e-10)
-    reps = draw_statistic(cells, statistic.evaluate, unit="firm", resamples=BLOCK_SIZE, seed=3, workers=1)
-    rng = block_rng(3, 0)
+    reps = draw_statistic(cells, statistic.evaluate, unit="firm", resamples=BLOCK_SIZE, seed=3, workers=1,
+                         sampler=1)
+    rng = block_rng(3, 0)  # sampler 1's documented stream: rng.integers(0, n_firms, n_firms) per resample
     kept = records.dropna(subset=list(adjust)).reset_index(drop=True)
     positions = kept.groupby("firm_id").indices
     for i in range(8):

@@ -138,7 +138,7 @@ def test_firm_draws_are_the_counted_uniform_draws_whatever_the_pass_size(monkeyp
         monkeypatch.setattr(draws, "PASS_ROWS", pass_rows)
         monkeypatch.setattr(draws, "PASS_VALUES", pass_values)
         monkeypatch.setattr(draws, "MIN_PASS_ROWS", min_rows)
-        np.testing.assert_array_equal(draw_cells(cells, unit="firm", seed=6, block=1), expected)
+        np.testing.assert_array_equal(draw_cells(cells, unit="firm", seed=6, block=1, sampler=1), expected)
 
 
 def test_original_fit_is_checked_before_anything_is_drawn(monkeypatch: pytest.MonkeyPatch) -> None:

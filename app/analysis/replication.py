@@ -254,7 +254,12 @@ def run_params(run: Run, inp: AnalysisInput, n_groups: int, mapping_sha256: str 
                                "numpy.random.default_rng(SeedSequence(seed, spawn_key=(k,))); firm draws by "
                                "sampler 1: per resample integers(0, F, F); sampler 2 (over sampler_span firms): "
                                "multinomial(F, range sizes / F) per resample over ranges of sampler_span firms, "
-                               "then range by range, resample by resample, that many integers within the range"})
+                               "then range by range, resample by resample, that many integers within the range; "
+                               "sampler 3: as sampler 2 (ranges also at F <= sampler_span, one range, no "
+                               "multinomial) with numpy.random.SFC64(the block's SeedSequence) for the multinomial "
+                               "and the firms: a firm within a range of S firms is w // (2**32 // S) for the next "
+                               "32-bit word w (low, then high half of each random_raw() output), a word >= "
+                               "S * (2**32 // S) replaced by the low half of the next random_raw() until below"})
     return out
 
 

@@ -21,7 +21,7 @@ product) never changes them.
 Samplers (how a block's firm draws are taken from its generator; a run records which, ``SAMPLERS``)
 ---------------------------------------------------------------------------------------------------
 * ``1``: resample by resample, ``rng.integers(0, n_firms, size=n_firms)`` each.
-* ``2`` (new runs): the firms are cut into ranges of ``SPAN`` in firm order. A block first draws how many
+* ``2``: the firms are cut into ranges of ``SPAN`` in firm order. A block first draws how many
   of each resample's ``n_firms`` draws fall in each range, ``rng.multinomial(n_firms, range sizes / n_firms,
   size=rows)``, then range by range, resample by resample, that many uniform firms within the range. Given
   the range totals the draws within a range are uniform, so a resample's multiplicities are
@@ -29,10 +29,17 @@ Samplers (how a block's firm draws are taken from its generator; a run records w
   keeps the count vector and the multiplicity block of a pass the size they have at ``SPAN`` firms, so time
   grows with the number of firms (benchmarks/README.md). With at most ``SPAN`` firms (one range), with
   strata, and for the departure unit, sampler 2 draws exactly what sampler 1 draws.
+* ``3`` (new runs): the ranges and order of sampler 2, but the firm draws come from an SFC64 generator
+  seeded by the block's own ``SeedSequence(seed, spawn_key=(block,))``: the range totals by
+  ``Generator(SFC64).multinomial`` (skipped with one range), then each uniform firm within a range of ``S`` firms
+  from one 32-bit word ``w`` of ``SFC64.random_raw`` (the low half of each 64-bit output, then the high half) as
+  ``w // (2**32 // S)``, redrawn while ``w >= S * (2**32 // S)`` (:func:`uniform_below`), so every firm is drawn
+  with probability exactly ``1 / S``. Departures and strata draw as sampler 1.
 """
 
 from __future__ import annotations
 
+import sys
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -56,9 +63,9 @@ PASS_VALUES = 2**21
 MIN_PASS_ROWS = 4
 #: samplers a run can name, and the one new runs use (module docstring); changing SPAN changes sampler 2's
 #: numbers for rosters of more than SPAN firms
-SAMPLERS = (1, 2)
-SAMPLER = 2
-#: firms per range of sampler 2: a range's int64 counts and draws (256 KiB each) stay in a 1 MiB L2 cache,
+SAMPLERS = (1, 2, 3)
+SAMPLER = 3
+#: firms per range of samplers 2 and 3: a range's int64 counts and draws (256 KiB each) stay in a 1 MiB L2 cache,
 #: and a 25,000-firm roster is one range (its draws are sampler 1's)
 SPAN = 2**15
 
@@ -136,11 +143,12 @@ class CellSampler:
             self.slot_firms, self.slot_low, self.slot_size = order, starts, ends - starts
         # sampler 2 over more than SPAN firms: the firm ranges, their share of the draws, their columns of firm_t
         self.ranges: list[tuple[int, int]] = []
-        if sampler == 2 and unit == "firm" and strata is None and self.n_firms > SPAN:
+        if (sampler == 2 and self.n_firms > SPAN or sampler == 3) and unit == "firm" and strata is None:
             assert self.firm_t is not None
             self.ranges = [(lo, min(lo + SPAN, self.n_firms)) for lo in range(0, self.n_firms, SPAN)]
             self.range_share = np.array([hi - lo for lo, hi in self.ranges]) / self.n_firms
-            self.range_t = [sparse.csc_matrix(self.firm_t[:, lo:hi]) for lo, hi in self.ranges]
+            self.range_t = [self.firm_t] if len(self.ranges) == 1 else [
+                sparse.csc_matrix(self.firm_t[:, lo:hi]) for lo, hi in self.ranges]
 
     def pass_rows(self, rows: int) -> int:
         """Resamples drawn per pass for a request of ``rows``."""
@@ -158,6 +166,8 @@ class CellSampler:
         """``rows`` resamples of the cell counts, shape (rows, n_cells), from ``rng``."""
         if self.unit == "departure":
             return rng.multinomial(self.total, self.pvals, size=rows).astype(np.float64)
+        if self.sampler == 3 and self.ranges:
+            return self._draw_sampler_3(rng, rows)
         if self.ranges:
             return self._draw_by_range(rng, rows)
         out = np.empty((rows, self.counts.size))
@@ -189,6 +199,82 @@ class CellSampler:
                 mult = block if r == per_pass else np.ascontiguousarray(block[:, :r])
                 out[lo:lo + r] += (self.range_t[k] @ mult).T
         return out
+
+    def _draw_sampler_3(self, rng: np.random.Generator, rows: int) -> np.ndarray:
+        """Sampler 3 (module docstring): sampler 2's ranges and order, firms drawn by :func:`uniform_below` from an
+        SFC64 generator on ``rng``'s seed sequence. Each resample's counts go into a row of a reused float32 buffer
+        (a contiguous write) and the pass is transposed into the firm-major block once: writing each count vector
+        into a column of the block strides through memory and cost as much as drawing the firms."""
+        seeds = rng.bit_generator.seed_seq  # the block's SeedSequence(seed, spawn_key=(block,)) (block_rng)
+        assert isinstance(seeds, np.random.SeedSequence)
+        bits = np.random.SFC64(seeds)
+        if len(self.ranges) > 1:
+            taken = np.random.Generator(bits).multinomial(self.n_firms, self.range_share, size=rows)
+        else:
+            taken = np.full((rows, 1), self.n_firms)
+        out = np.zeros((rows, self.counts.size))
+        per_pass = min(rows, PASS_ROWS)
+        widest = max(hi - lo for lo, hi in self.ranges)
+        work = np.empty(int(taken.max()), dtype=np.int64)
+        counted = np.empty((per_pass, widest), dtype=self.dtype)
+        for k, (first, stop) in enumerate(self.ranges):
+            size = stop - first
+            block = np.empty((size, per_pass), dtype=self.dtype)
+            for lo in range(0, rows, per_pass):
+                r = min(per_pass, rows - lo)
+                for j in range(r):
+                    counted[j, :size] = np.bincount(uniform_below(bits, size, int(taken[lo + j, k]), work),
+                                                    minlength=size)
+                mult = block if r == per_pass else np.empty((size, r), dtype=self.dtype)
+                np.copyto(mult, counted[:r, :size].T)
+                out[lo:lo + r] += (self.range_t[k] @ mult).T
+        return out
+
+
+def uniform_below(bits: np.random.BitGenerator, bound: int, size: int, work: np.ndarray) -> np.ndarray:
+    """``size`` independent integers drawn exactly uniformly from ``0 .. bound - 1`` (``1 <= bound < 2**32``), as int64.
+
+    Division with rejection (common practice; e.g. Knuth, TAOCP vol. 2, 3.4.1): with ``q = 2**32 // bound``, a
+    32-bit word ``w`` below ``bound * q`` gives ``w // q``, each value from exactly ``q`` words, and a word at
+    or above ``bound * q`` (probability below ``bound / 2**32``) is redrawn. Words are the successive 32-bit
+    halves of ``bits.random_raw((size + 1) // 2)``, low half first (an odd size leaves the last high half
+    unused); each rejected position, in order, then takes the low half of one further ``random_raw()`` output
+    at a time until one is accepted. numpy's ``Generator.integers(0, bound, dtype=np.uint32)`` is exact too
+    (Lemire's rule) but works one value at a time and measured 2-3x the time of these whole-array operations
+    (benchmarks/README.md, sampler 3), so the rule is written out here.
+
+    Parameters
+    ----------
+    bits : numpy.random.BitGenerator
+    bound : int
+    size : int
+    work : numpy.ndarray of int64
+        Scratch space of at least ``size`` values, reused between calls (fresh arrays cost page faults).
+
+    Returns
+    -------
+    numpy.ndarray of int64, shape (size,)
+        A view of ``work``, valid until the next call with it.
+    """
+    out = work[:size]
+    if size == 0 or bound == 1:
+        out[...] = 0
+        return out
+    words = bits.random_raw((size + 1) // 2).view(np.uint32)
+    if sys.byteorder != "little":  # the halves in the order defined above: low, then high
+        words = words.reshape(-1, 2)[:, ::-1].ravel()
+    words = words[:size]
+    q = (1 << 32) // bound
+    limit = bound * q
+    if limit < 1 << 32 and int(words.max()) >= limit:
+        for i in np.flatnonzero(words >= limit):
+            word = int(bits.random_raw()) & 0xFFFFFFFF
+            while word >= limit:
+                word = int(bits.random_raw()) & 0xFFFFFFFF
+            words[i] = word
+    np.floor_divide(words, np.uint32(q), out=words)  # in place: the words are this call's own array
+    out[...] = words
+    return out
 
 
 def check_sampler(value: object) -> int:
