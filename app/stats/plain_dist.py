@@ -127,19 +127,18 @@ def beta_cdf(x: float, a: float, b: float) -> float:
     return regularized_beta(x, a, b)[0]
 
 
-def beta_ppf(q: float, a: float, b: float, *, upper: bool = False) -> float:
+def beta_ppf(q: float, a: float, b: float, *, upper: bool = False, start: float | None = None) -> float:
     """The x with P(X <= x) = q for X ~ Beta(a, b) (``scipy.stats.beta.ppf``); with ``upper``, the x with
     P(X > x) = q (``scipy.stats.beta.isf``).
 
     Newton's method on the tail probability, kept inside a bracket that bisection shrinks whenever a Newton
-    step would leave it, until the step is below 4 ulp of x: the answer is as precise as the tail
+    step would leave it, until the step is below 1e-14 x: the answer is as precise as the tail
     probability itself (about 1e-13 relative for the counts of a roster year).
     """
     if not (0.0 < q < 1.0 and a > 0.0 and b > 0.0):
         raise ValueError("beta_ppf needs 0 < q < 1 and positive shape parameters.")
     lo, hi = 0.0, 1.0
-    mean = a / (a + b)
-    x = mean
+    x = start if start is not None and 0.0 < start < 1.0 else a / (a + b)
     for _ in range(400):
         below, above = regularized_beta(x, a, b)
         excess = (above - q) if upper else (below - q)  # decreasing in x with ``upper``, increasing without
@@ -153,7 +152,8 @@ def beta_ppf(q: float, a: float, b: float, *, upper: bool = False) -> float:
         new = x - excess / density * (-1.0 if upper else 1.0) if density > 0.0 else 0.5 * (lo + hi)
         if not lo < new < hi:  # also NaN: a step the bracket cannot hold is a bisection
             new = 0.5 * (lo + hi)
-        if abs(new - x) <= 4.0 * math.ulp(x) or hi - lo <= 4.0 * math.ulp(x):
+        # Newton converges quadratically: a step below 1e-14 x leaves an error far below that
+        if abs(new - x) <= 1e-14 * x or hi - lo <= 4.0 * math.ulp(x):
             return new
         x = new
     raise ArithmeticError(f"The beta quantile did not converge at q={q}, a={a}, b={b}.")
@@ -176,6 +176,8 @@ def wilson(forced: int, total: int, alpha: float) -> tuple[float, float]:
 def clopper_pearson(forced: int, total: int, alpha: float) -> tuple[float, float]:
     """Clopper-Pearson (exact) interval: the alpha/2 quantile of Beta(x, n - x + 1) and the upper alpha/2
     quantile of Beta(x + 1, n - x) (common practice); exactly 0 at x = 0 and exactly 1 at x = n."""
-    low = 0.0 if forced == 0 else beta_ppf(alpha / 2.0, forced, total - forced + 1.0)
-    high = 1.0 if forced == total else beta_ppf(alpha / 2.0, forced + 1.0, total - forced, upper=True)
+    near = wilson(forced, total, alpha)  # within a few per cent of the exact bounds: Newton's start
+    low = 0.0 if forced == 0 else beta_ppf(alpha / 2.0, forced, total - forced + 1.0, start=near[0])
+    high = 1.0 if forced == total else beta_ppf(alpha / 2.0, forced + 1.0, total - forced, upper=True,
+                                                start=near[1])
     return low, high

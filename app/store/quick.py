@@ -151,6 +151,7 @@ def record_fit_run(url: str, *, roster_id: int, roster_version: int, params: dic
     try:
         conn.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT * 1000}")
         conn.execute("PRAGMA foreign_keys=ON")
+        conn.execute("PRAGMA synchronous=NORMAL")  # as the Store's connections (app.store.engine)
         conn.execute("BEGIN IMMEDIATE")
         try:
             stamped = [row[0] for row in conn.execute("SELECT version_num FROM alembic_version")]
