@@ -153,8 +153,29 @@ def test_constants_agree_with_the_trend_module() -> None:
     assert trend_line.THIN_YEAR == trend_module.THIN_YEAR
 
 
-@pytest.mark.parametrize(("model", "quasi"), [("linear", False), ("linear", True), ("spline", False)])
-def test_fit_trend_takes_the_plain_engine_and_equals_the_statsmodels_path(model: str, quasi: bool,
+def _dataset(kind: str) -> tuple[list[int], list[int], list[int]]:
+    """Invented yearly counts: a plain trend, overdispersed years (quasi-binomial intervals given anyway),
+    thin years (the imprecise-share note), and four years (too few for a 3-df spline)."""
+    if kind == "overdispersed":
+        rng = np.random.default_rng(RNG_SEED + 11)
+        years = list(range(1995, 2020))
+        totals = rng.integers(300, 900, len(years))
+        share = np.clip(0.25 + 0.004 * np.arange(len(years)) + rng.normal(0.0, 0.06, len(years)), 0.05, 0.95)
+        forced = rng.binomial(totals, share)
+        return years, [int(f) for f in forced], [int(n - f) for n, f in zip(totals, forced, strict=True)]
+    if kind == "thin":
+        years, forced, voluntary = _counts(RNG_SEED + 3, years=12, size=60)
+        return years, [1, 0, 2, *forced[3:]], [3, 4, 5, *voluntary[3:]]
+    if kind == "four years":
+        return [2001, 2002, 2003, 2004], [20, 25, 31, 30], [80, 70, 72, 61]
+    return _counts(RNG_SEED + 7, size=900, slope=0.03)
+
+
+@pytest.mark.parametrize(("kind", "model", "quasi"), [
+    ("trend", "linear", False), ("trend", "linear", True), ("trend", "spline", False),
+    ("overdispersed", "linear", False), ("overdispersed", "spline", False), ("thin", "linear", False),
+    ("four years", "spline", False)])
+def test_fit_trend_takes_the_plain_engine_and_equals_the_statsmodels_path(kind: str, model: str, quasi: bool,
                                                                         monkeypatch: pytest.MonkeyPatch) -> None:
     """``fit_trend`` for the straight and spline trend now comes from ``fit_line``; the statsmodels path it
     replaced (still taken where ``fit_line`` declines) gives every number to 1e-10 and every string exactly."""
@@ -164,15 +185,25 @@ def test_fit_trend_takes_the_plain_engine_and_equals_the_statsmodels_path(model:
     from app.stats.cells import Cells
     from app.stats.trend_report import fit_to_dict
 
-    years, forced, voluntary = _counts(RNG_SEED + 7, size=900, slope=0.03)
+    years, forced, voluntary = _dataset(kind)
     groups = pd.DataFrame({"year": years, "sector": "", "forced": np.asarray(forced, dtype=np.int64),
                            "voluntary": np.asarray(voluntary, dtype=np.int64)})
     cells = Cells(groups=groups, firm_ids=np.array([], dtype=object),
                   firm_matrix=sparse.csr_matrix((0, 2 * len(groups)), dtype=np.int64),
                   window=(years[0], years[-1]), by_sector=False)
-    plain = fit_to_dict(trend_module.fit_trend(cells, model, quasi=quasi))  # type: ignore[arg-type]
+    used: list[object] = []
+    real = trend_module.fit_line
+    monkeypatch.setattr(trend_module, "fit_line", lambda *a, **k: used.append(real(*a, **k)) or used[-1])
+    plain = trend_module.fit_trend(cells, model, quasi=quasi)  # type: ignore[arg-type]
+    assert used and used[0] is not None  # the plain engine answered
     monkeypatch.setattr(trend_module, "fit_line", lambda *a, **k: None)
-    reference = fit_to_dict(trend_module.fit_trend(cells, model, quasi=quasi))  # type: ignore[arg-type]
+    reference = trend_module.fit_trend(cells, model, quasi=quasi)  # type: ignore[arg-type]
+    if kind == "overdispersed":
+        assert plain.quasi is not None and plain.dispersion > trend_module.QUASI_DISPERSION
+    if kind == "thin":
+        assert any("fewer than 10" in m for m in plain.messages)
+    if kind == "four years":
+        assert plain.curvature is None and any("Too few years" in m for m in plain.messages)
 
     def same(a: object, b: object, where: str) -> None:
         if isinstance(a, dict) and isinstance(b, dict):
@@ -184,8 +215,26 @@ def test_fit_trend_takes_the_plain_engine_and_equals_the_statsmodels_path(model:
             for i, (x, y) in enumerate(zip(a, b, strict=True)):
                 same(x, y, f"{where}[{i}]")
         elif isinstance(a, float) and isinstance(b, float):
-            assert a == pytest.approx(b, rel=1e-10, abs=1e-300), where
+            # rel 1e-10; an interval end that is 0 or 1 in theory is rounding noise on either side
+            assert a == pytest.approx(b, rel=1e-10, abs=1e-15), where
         else:
             assert a == b and type(a) is type(b), where
 
-    same(plain, reference, "fit")
+    same(fit_to_dict(plain), fit_to_dict(reference), "fit")
+
+
+def test_separated_counts_take_the_statsmodels_path(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Every late year all forced: ``fit_line`` declines and ``fit_trend`` reports separation as before."""
+    import pandas as pd
+    from scipy import sparse
+
+    from app.stats.cells import Cells
+
+    groups = pd.DataFrame({"year": [2001, 2002, 2003, 2004], "sector": "",
+                           "forced": np.array([0, 0, 9, 8], dtype=np.int64),
+                           "voluntary": np.array([7, 9, 0, 0], dtype=np.int64)})
+    cells = Cells(groups=groups, firm_ids=np.array([], dtype=object),
+                  firm_matrix=sparse.csr_matrix((0, 8), dtype=np.int64), window=(2001, 2004), by_sector=False)
+    assert trend_line.fit_line([2001, 2002, 2003, 2004], [0, 0, 9, 8], [7, 9, 0, 0], (2001, 2004)) is None
+    fit = trend_module.fit_trend(cells)
+    assert fit.separated and fit.odds_ratio is None

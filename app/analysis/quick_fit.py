@@ -134,7 +134,9 @@ def quick_summary(url: str, roster_ref: int | str, *, mapping: str | None = None
         reader.close()
     try:
         return _fit_and_record(url, found, params, actor or LOCAL_ACTOR)
-    except (sqlite3.Error, ArithmeticError):  # locked past the timeout, or a search that failed: ordinary path
+    except (sqlite3.Error, ArithmeticError, ValueError):
+        # locked past the timeout, a search that did not converge, a number out of range: the ordinary path
+        # (statsmodels where the plain engine declines) answers or says what is wrong; nothing was written
         return None
 
 

@@ -258,10 +258,7 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
                          f"{cells.window[1]}.")
     _check_data(groups, cells.window)
     if model != "sector":  # the engine's own plain-Python fit; statsmodels below only where it declines
-        line = fit_line(groups["year"].astype(int).tolist(), groups["forced"].astype(int).tolist(),
-                        groups["voluntary"].astype(int).tolist(), cells.window, model, spline_df=spline_df,
-                        alpha=alpha, quasi=quasi,
-                        profiles={k: (p.low, p.high, p.message) for k, p in (profiles or {}).items()})
+        line = _plain_line(groups, cells.window, model, spline_df, alpha, quasi, profiles)
         if line is not None:
             return _from_line(line, cells.window)
     messages: list[str] = []
@@ -378,6 +375,17 @@ def _quasi(prof: ProfileResult, b: float, se: float, dispersion: float, alpha: f
                       decade_conf_int={"wald": _or_interval(wald, 10.0),
                                        "profile": _or_interval(bounds, 10.0)},
                       message=message)
+
+
+def _plain_line(groups: pd.DataFrame, window: tuple[int, int], model: TrendKind, spline_df: int, alpha: float,
+                quasi: bool, profiles: Mapping[str, ProfileResult] | None) -> LineTrend | None:
+    """:func:`app.stats.trend_line.fit_line` of year groups; None where it declines or its search fails."""
+    try:
+        return fit_line(groups["year"].astype(int).tolist(), groups["forced"].astype(int).tolist(),
+                        groups["voluntary"].astype(int).tolist(), window, model, spline_df=spline_df, alpha=alpha,
+                        quasi=quasi, profiles={k: (p.low, p.high, p.message) for k, p in (profiles or {}).items()})
+    except ArithmeticError:  # a root or quantile search that did not converge: the statsmodels path below
+        return None
 
 
 def _from_line(line: LineTrend, window: tuple[int, int]) -> TrendFit:
