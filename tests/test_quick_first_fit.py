@@ -20,7 +20,7 @@ from typing import Any
 
 import pytest
 from conftest import copy_database
-from test_quick_fit import CASES, DEMO, ROOT, _ordinary
+from test_quick_fit import CASES, DEMO, ROOT, _ordinary, generated_roster_db
 
 from app.analysis.inputs import input_for_run, load_input
 from app.analysis.quick_fit import LOCAL_ACTOR, quick_summary
@@ -59,27 +59,31 @@ def test_local_actor_agrees_with_the_store() -> None:
     assert LOCAL_ACTOR == STORE_LOCAL_ACTOR
 
 
-def test_first_fit_prints_and_records_what_the_ordinary_path_does(shared_demo_db: Path, tmp_path: Path) -> None:
+@pytest.mark.parametrize("roster", ["demo", "generated"])
+def test_first_fit_prints_and_records_what_the_ordinary_path_does(shared_demo_db: Path, tmp_path: Path,
+                                                                  roster: str) -> None:
     """Every case of test_quick_fit, in turn on two copies: byte-identical JSON (numbers, sentences, headline,
-    run id), the same run rows (params, fingerprint, window, versions, author, result with its profile ends
-    and engine tag) and the same audit events; then every reader of the app takes the quick path's run."""
-    quick_db = copy_database(shared_demo_db, tmp_path / "quick.db")
-    plain_db = copy_database(shared_demo_db, tmp_path / "ordinary.db")
+    warnings, run id), the same run rows (params, fingerprint, window, versions, author, result with its
+    profile ends and engine tag) and the same audit events; then every reader of the app takes the quick
+    path's run. On the demo roster and on a generated one whose second mapping leaves codes unmapped."""
+    source, name = (shared_demo_db, DEMO) if roster == "demo" else generated_roster_db(tmp_path)
+    quick_db = copy_database(source, tmp_path / "quick.db")
+    plain_db = copy_database(source, tmp_path / "ordinary.db")
     quick_url = f"sqlite:///{quick_db}"
     ordinary = Store(f"sqlite:///{plain_db}")
     reader = Store(quick_url)
     try:
         for case in CASES:
-            assert quick_summary(quick_url, DEMO, **case) is None  # nothing recorded: without fit_new, no answer
-            first = quick_summary(quick_url, DEMO, fit_new=True, **case)
+            assert quick_summary(quick_url, name, **case) is None  # nothing recorded: without fit_new, no answer
+            first = quick_summary(quick_url, name, fit_new=True, **case)
             assert first is not None, case
-            expected = _ordinary(ordinary, DEMO, case, reuse=False)
+            expected = _ordinary(ordinary, name, case, reuse=False)
             assert json.dumps(first) == json.dumps(expected), case
             # the quick path's run serves the next call on both paths, printing the same bytes
-            assert quick_summary(quick_url, DEMO, **case) == first
-            assert json.dumps(_ordinary(reader, DEMO, case, reuse=True)) == json.dumps(first), case
+            assert quick_summary(quick_url, name, **case) == first
+            assert json.dumps(_ordinary(reader, name, case, reuse=True)) == json.dumps(first), case
             # a second first fit of the same counts records nothing new (as ``_record_run``)
-            assert quick_summary(quick_url, DEMO, fit_new=True, **case) == first
+            assert quick_summary(quick_url, name, fit_new=True, **case) == first
         assert _runs(quick_db) == _runs(plain_db)
         assert _audit(quick_db) == _audit(plain_db)
         for run in reader.list_runs(kind="fit"):  # the Store reads every run; the run's input reopens

@@ -76,8 +76,8 @@ def test_quick_path_prints_the_recorded_fit_on_the_demo(shared_demo_db: Path, tm
     _check_every_case(copy_database(shared_demo_db, tmp_path / "demo.db"), DEMO)
 
 
-def test_quick_path_on_a_generated_roster_with_unmapped_codes(tmp_path: Path) -> None:
-    """Another seed of the generator, a mapping that leaves codes out (the warning must match), by id."""
+def generated_roster_db(tmp_path: Path) -> tuple[Path, str]:
+    """Another seed of the generator, with a mapping that leaves codes out; the store and the roster's id."""
     from app.analysis.mapping_files import import_mapping_file
     from app.intake.ingest import import_roster
 
@@ -93,7 +93,12 @@ def test_quick_path_on_a_generated_roster_with_unmapped_codes(tmp_path: Path) ->
     inp = load_input(store, report.roster.id, mapping="demo strict")
     assert inp.warnings(), "the partial mapping must leave codes unmapped for this test to check the warning"
     store.dispose()
-    _check_every_case(db, str(report.roster.id))
+    return db, str(report.roster.id)
+
+
+def test_quick_path_on_a_generated_roster_with_unmapped_codes(tmp_path: Path) -> None:
+    """Another seed of the generator, a mapping that leaves codes out (the warning must match), by id."""
+    _check_every_case(*generated_roster_db(tmp_path))
 
 
 def test_fingerprint_equals_pandas_csv(shared_demo_db: Path, tmp_path: Path) -> None:

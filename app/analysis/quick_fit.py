@@ -1,11 +1,14 @@
-"""A fit already recorded for the same counts, printed again in plain Python (issue 13: ``helmshift fit`` < 0.5 s).
+"""``helmshift fit`` of the straight or spline trend in plain Python (issue 13: ``helmshift fit`` < 0.5 s).
 
 ``helmshift fit`` with the straight or spline trend first looks here. From a SQLite store at the schema's head
 (``app.store.quick``: stdlib ``sqlite3``), it reads the roster, its mapping version and its cells, applies
 the same steps as ``load_input`` and ``stored_summary`` in plain Python (categories by code key, the
 coverage window rule of ``app.stats.window_rule``, the unmapped-code warning, the counts' fingerprint) and,
 when a finished fit run of these counts, window, options and statistics code exists, returns the payload
-``fit_summary`` would print. It imports neither numpy, pandas, SQLAlchemy, scipy nor statsmodels, which
+``fit_summary`` would print. With ``fit_new`` (the command line) counts no run records yet are fitted by
+``app.stats.trend_line`` (the engine ``fit_trend`` itself uses for these models, so the numbers are the
+ordinary path's to the last digit) and recorded through ``app.store.quick.record_fit_run`` as ``run_trend``
+records them. It imports neither numpy, pandas, SQLAlchemy, scipy nor statsmodels, which
 together take seconds to import on the 2-core machine. Anything it does not handle (another backend, a
 mapping with classification rules, no matching run, an input ``load_input`` would refuse) gives None, and
 the caller takes the ordinary path, which also says what is wrong. tests/test_quick_fit.py checks every

@@ -6,8 +6,10 @@ one intercept per sector with a common slope (``"sector"``), and a natural cubic
 trend's odds ratio stays the headline. Its plain-language sentence and JSON form live in
 :mod:`app.stats.trend_report`.
 
-statsmodels and scipy.stats are imported lazily (inside the functions): together they cost about two
-seconds to import and this module sits on the CLI and server start-up path.
+The straight and spline trends are computed by :mod:`app.stats.trend_line` (plain Python, the engine the
+first ``helmshift fit`` prints without importing numpy); the statsmodels code below fits the sector model
+and whatever ``trend_line`` declines (separation, no convergence). statsmodels and scipy.stats are imported
+lazily (inside the functions): together they cost about two seconds to import.
 """
 
 from __future__ import annotations
