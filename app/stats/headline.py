@@ -20,7 +20,6 @@ __all__ = ["FittedShare", "INTERVAL_METHOD", "fitted_share", "headline_fields", 
            "interval_label", "model_interval"]
 
 
-
 @dataclass(frozen=True)
 class FittedShare:
     """The fitted forced share in one year, with its delta-method band (logit scale, transformed back)."""
