@@ -14,6 +14,7 @@ import pytest
 from conftest import copy_database
 
 import app.stats.trend as trend_module
+import app.stats.trend_line as trend_line
 from app.analysis.inputs import load_input
 from app.analysis.runs import run_trend
 from app.analysis.stored_fits import PROFILE_KEY
@@ -26,15 +27,21 @@ DEMO = "Demo index (invented)"
 
 @pytest.fixture
 def searches(monkeypatch: pytest.MonkeyPatch) -> list[float]:
-    """Counts the profile searches ``fit_trend`` makes (the dispersion of each)."""
+    """Counts the profile searches ``fit_trend`` makes (the dispersion of each): the straight and spline trend
+    search in ``app.stats.trend_line`` (``profile_ends``), the statsmodels path in ``profile_interval``."""
     calls: list[float] = []
-    real = trend_module.profile_interval
+    real, real_plain = trend_module.profile_interval, trend_line.profile_ends
 
     def counted(*args: Any, **kwargs: Any) -> Any:
         calls.append(kwargs.get("dispersion", 1.0))
         return real(*args, **kwargs)
 
+    def counted_plain(*args: Any, **kwargs: Any) -> Any:
+        calls.append(args[6] if len(args) > 6 else kwargs.get("dispersion", 1.0))
+        return real_plain(*args, **kwargs)
+
     monkeypatch.setattr(trend_module, "profile_interval", counted)
+    monkeypatch.setattr(trend_line, "profile_ends", counted_plain)
     return calls
 
 

@@ -1,11 +1,14 @@
-"""A fit already recorded for the same counts, printed again in plain Python (issue 13: ``helmshift fit`` < 0.5 s).
+"""``helmshift fit`` of the straight or spline trend in plain Python (issue 13: ``helmshift fit`` < 0.5 s).
 
 ``helmshift fit`` with the straight or spline trend first looks here. From a SQLite store at the schema's head
 (``app.store.quick``: stdlib ``sqlite3``), it reads the roster, its mapping version and its cells, applies
 the same steps as ``load_input`` and ``stored_summary`` in plain Python (categories by code key, the
 coverage window rule of ``app.stats.window_rule``, the unmapped-code warning, the counts' fingerprint) and,
 when a finished fit run of these counts, window, options and statistics code exists, returns the payload
-``fit_summary`` would print. It imports neither numpy, pandas, SQLAlchemy, scipy nor statsmodels, which
+``fit_summary`` would print. With ``fit_new`` (the command line) counts no run records yet are fitted by
+``app.stats.trend_line`` (the engine ``fit_trend`` itself uses for these models, so the numbers are the
+ordinary path's to the last digit) and recorded through ``app.store.quick.record_fit_run`` as ``run_trend``
+records them. It imports neither numpy, pandas, SQLAlchemy, scipy nor statsmodels, which
 together take seconds to import on the 2-core machine. Anything it does not handle (another backend, a
 mapping with classification rules, no matching run, an input ``load_input`` would refuse) gives None, and
 the caller takes the ordinary path, which also says what is wrong. tests/test_quick_fit.py checks every
@@ -22,6 +25,8 @@ import hashlib
 import io
 import math
 import sqlite3
+import time
+from dataclasses import dataclass
 from functools import cache
 from pathlib import Path
 from typing import Any
@@ -29,7 +34,7 @@ from typing import Any
 from app import __version__
 from app.stats.codekeys import code_key
 from app.stats.window_rule import longest_run
-from app.store.quick import QuickReader, open_quick
+from app.store.quick import QuickMapping, QuickReader, QuickRoster, open_quick, record_fit_run
 from app.types import UNMAPPED
 
 STATS_DIR = Path(__file__).resolve().parents[1] / "stats"
@@ -39,6 +44,8 @@ SUMMARY_KEYS = ("fitted_share", "headline")
 PROFILE_KEY = "profile_bounds"
 #: the coverage rule ``load_input`` applies by default (not_excluded basis)
 DEFAULT_THRESHOLD = 0.5
+#: who a run is recorded as when no one is named (``app.store.audit.LOCAL_ACTOR``, kept equal by a test)
+LOCAL_ACTOR = "local analyst"
 NOTHING_COUNTED = ("The mapping counts no departure as forced or voluntary (every code is excluded), so there is "
                    "nothing to fit; change the categories on the Reason codes page.")
 
@@ -104,23 +111,63 @@ def _plain(value: Any) -> Any:
 
 def quick_summary(url: str, roster_ref: int | str, *, mapping: str | None = None,
                   window: tuple[int, int] | None = None, model: str = "linear", spline_df: int = 3,
-                  quasi: bool = False) -> dict[str, Any] | None:
-    """What ``fit_summary(..., reuse=True)`` prints for a recorded fit, or None (take the ordinary path)."""
+                  quasi: bool = False, fit_new: bool = False, actor: str | None = None) -> dict[str, Any] | None:
+    """What ``fit_summary(..., reuse=True)`` prints for a recorded fit, or None (take the ordinary path).
+
+    With ``fit_new`` counts that no run records yet are fitted here (``app.stats.trend_line``, the engine the
+    ordinary path uses for these models) and recorded as the ordinary path records them, with ``actor`` as the
+    run's author and in the audit trail: what ``fit_summary(..., reuse=False)`` prints.
+    """
     if model not in ("linear", "spline"):
         return None
     reader = open_quick(url)
     if reader is None:
         return None
     try:
-        return _summary(reader, roster_ref, mapping, window, fit_params(model, spline_df, quasi))
+        found = _input(reader, roster_ref, mapping, window)
+        if found is None:
+            return None
+        params = fit_params(model, spline_df, quasi)
+        served = _served(reader, found, params)
+        if served is not None or not fit_new:
+            return served
     except sqlite3.Error:  # a locked or unreadable file: the ordinary path waits for it or says what is wrong
         return None
     finally:
         reader.close()
+    try:
+        return _fit_and_record(url, found, params, actor or LOCAL_ACTOR)
+    except (sqlite3.Error, ArithmeticError, ValueError):
+        # locked past the timeout, a search that did not converge, a number out of range: the ordinary path
+        # (statsmodels where the plain engine declines) answers or says what is wrong; nothing was written
+        return None
 
 
-def _summary(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None, given: tuple[int, int] | None,
-             params: dict[str, Any]) -> dict[str, Any] | None:
+@dataclass(frozen=True)
+class QuickInput:
+    """What ``load_input`` gives a fit: the roster, mapping version, window, yearly counts and warnings."""
+
+    roster: QuickRoster
+    mapping: QuickMapping
+    window: tuple[int, int]
+    rows: list[tuple[int, str, int, int]]
+    fingerprint: str
+    warnings: list[str]
+
+    def header(self, run_id: int) -> dict[str, Any]:
+        return {"roster": self.roster.name, "mapping": f"{self.mapping.name} v{self.mapping.version}", "run": run_id}
+
+    def matches(self, run: dict[str, Any], params: dict[str, Any]) -> bool:
+        """``app.analysis.stored_fits.matches`` (and the keys a served fit needs)."""
+        result = run["result"]
+        return (run["fingerprint"] == self.fingerprint and run["params"] == params and run["window"] == self.window
+                and run["roster_version"] == self.roster.version and run["mapping_name"] == self.mapping.name
+                and run["mapping_version"] == self.mapping.version and isinstance(result, dict)
+                and result.get("engine") == engine_tag() and all(key in result for key in SUMMARY_KEYS))
+
+
+def _input(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None, given: tuple[int, int] | None
+           ) -> QuickInput | None:
     roster = reader.roster(roster_ref)
     if roster is None:
         return None
@@ -169,21 +216,47 @@ def _summary(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None
             unmapped[reason] = unmapped.get(reason, 0) + n
     rows = [(year, "", f, v) for year, (f, v) in sorted(groups.items())]
     fingerprint = groups_csv_fingerprint(rows)
-    tag = engine_tag()
-    for run in reader.fit_runs(roster.id):  # newest first, as ``stored_fit`` takes the highest id
-        result = run["result"]
-        if (run["fingerprint"] == fingerprint and run["params"] == params and run["window"] == window
-                and run["roster_version"] == roster.version and run["mapping_name"] == mapping.name
-                and run["mapping_version"] == mapping.version and isinstance(result, dict)
-                and result.get("engine") == tag and all(key in result for key in SUMMARY_KEYS)):
+    nothing = not any(category in ("forced", "voluntary") for _, _, category, _ in categorised)
+    listed = sorted(((code, n) for code, n in unmapped.items() if n > 0), key=lambda item: (-item[1], item[0]))
+    return QuickInput(roster, mapping, window, rows, fingerprint, warning_notes(nothing, listed))
+
+
+def _served(reader: QuickReader, inp: QuickInput, params: dict[str, Any]) -> dict[str, Any] | None:
+    """``stored_summary``: the newest matching fit run's payload, or None."""
+    for run in reader.fit_runs(inp.roster.id):  # newest first, as ``stored_fit`` takes the highest id
+        if inp.matches(run, params):
+            result = run["result"]
             break
     else:
         return None
-    nothing = not any(category in ("forced", "voluntary") for _, _, category, _ in categorised)
-    listed = sorted(((code, n) for code, n in unmapped.items() if n > 0), key=lambda item: (-item[1], item[0]))
     # the same keys in the same order as ``stored_summary``
     payload = {k: v for k, v in result.items() if k not in ("engine", PROFILE_KEY, "fitted_share", "headline")}
-    payload.update({"roster": roster.name, "mapping": f"{mapping.name} v{mapping.version}", "run": run["id"],
-                    "sentence": result["sentence"], "warnings": warning_notes(nothing, listed),
+    payload.update({**inp.header(run["id"]), "sentence": result["sentence"], "warnings": inp.warnings,
                     "fitted_share": result["fitted_share"], "headline": result["headline"]})
+    return dict(_plain(payload))
+
+
+def _fit_and_record(url: str, inp: QuickInput, params: dict[str, Any], actor: str) -> dict[str, Any] | None:
+    """``fit_summary(..., reuse=False)`` for the straight or spline trend: fit, record the run, print."""
+    from app.stats.trend_line import fit_line, line_payload  # only a first fit needs the model code
+
+    started = time.perf_counter()
+    line = fit_line([r[0] for r in inp.rows], [r[2] for r in inp.rows], [r[3] for r in inp.rows], inp.window,
+                    params["model"], spline_df=params.get("spline_df", 3), quasi=bool(params.get("quasi")))
+    if line is None:  # separation, no convergence, too few years, ...: the ordinary path says what is wrong
+        return None
+    fitted = line_payload(line)
+    # what ``run_trend`` records: the printed fit, the profile ends for the next fit, the engine tag
+    profiles = {name: [low if math.isfinite(low) else None, high if math.isfinite(high) else None, message]
+                for name, (low, high, message) in line.profiles.items()}
+    result = {**fitted, PROFILE_KEY: profiles, "engine": engine_tag()}
+    run_id = record_fit_run(url, roster_id=inp.roster.id, roster_version=inp.roster.version, params=params,
+                            fingerprint=inp.fingerprint, mapping=(inp.mapping.name, inp.mapping.version),
+                            window=inp.window, result=result, seconds=time.perf_counter() - started, actor=actor,
+                            existing=lambda run: inp.matches(run, params))
+    if run_id is None:
+        return None
+    payload = {k: v for k, v in fitted.items() if k not in ("fitted_share", "headline")}
+    payload.update({**inp.header(run_id), "sentence": fitted["sentence"], "warnings": inp.warnings,
+                    "fitted_share": fitted["fitted_share"], "headline": fitted["headline"]})
     return dict(_plain(payload))

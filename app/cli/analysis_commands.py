@@ -32,16 +32,20 @@ def cmd_coverage(args: argparse.Namespace) -> int:
 
 
 def quick_fit(args: argparse.Namespace) -> int | None:
-    """``helmshift fit`` printed from a recorded fit of the same counts without importing numpy, pandas,
-    SQLAlchemy or the model code (``app.analysis.quick_fit``); None when that path does not apply."""
+    """``helmshift fit`` of the straight or spline trend without importing numpy, pandas, SQLAlchemy or
+    statsmodels (``app.analysis.quick_fit``): a recorded fit of the same counts printed again, or new counts
+    fitted by the engine's plain-Python trend and recorded; None when that path does not apply."""
     if args.measure != "share" or args.by or args.compare or args.resamples is not None:
         return None
+    import getpass
+
     from app.analysis.quick_fit import quick_summary
     from app.config import database_url
 
     window = _parse_years(args.years)
     payload = quick_summary(database_url(args.db), args.roster, mapping=args.mapping, window=window,
-                            model=args.model, spline_df=args.spline_df, quasi=args.quasi)
+                            model=args.model, spline_df=args.spline_df, quasi=args.quasi, fit_new=True,
+                            actor=f"{getpass.getuser()} (command line)")  # as ``main`` records CLI changes
     if payload is None:
         return None
     print(json.dumps(payload) if args.json else payload["headline"])

@@ -14,12 +14,10 @@ from typing import Any
 
 from app.stats.trend import TrendFit
 from app.stats.trend_report import trend_sentence
+from app.stats.trend_words import INTERVAL_METHOD, headline_words, interval_words
 
 __all__ = ["FittedShare", "INTERVAL_METHOD", "fitted_share", "headline_fields", "headline_sentence",
            "interval_label", "model_interval"]
-
-#: the one interval method every model headline, table caption and takeaway names
-INTERVAL_METHOD = "profile likelihood"
 
 
 @dataclass(frozen=True)
@@ -61,17 +59,7 @@ def model_interval(fit: TrendFit) -> tuple[float, float] | None:
 
 def interval_label(fit: TrendFit) -> str:
     """E.g. "95% profile-likelihood interval" (", allowing for overdispersion" when the fit widened it)."""
-    level = f"{round((1.0 - fit.alpha) * 100):g}%"
-    return f"{level} {INTERVAL_METHOD.replace(' ', '-')} interval" + (
-        ", allowing for overdispersion" if fit.quasi is not None else "")
-
-
-def _whole_pct(share: float) -> int:
-    return int(math.floor(share * 100.0 + 0.5))
-
-
-def _ratio(value: float) -> str:
-    return "unbounded" if math.isinf(value) else f"{value:.3f}"
+    return interval_words(fit.alpha, fit.quasi is not None)
 
 
 def headline_sentence(fit: TrendFit) -> str:
@@ -86,20 +74,8 @@ def headline_sentence(fit: TrendFit) -> str:
     if ends is None or fit.odds_ratio is None or interval is None:
         return trend_sentence(fit)
     first, last = ends
-    a, b = _whole_pct(first.share), _whole_pct(last.share)
-    change = b - a
-    points = "percentage point" if abs(change) == 1 else "percentage points"
-    low, high = interval
-    odds = (f"the odds ratio per year is {_ratio(fit.odds_ratio)} ({interval_label(fit)} "
-            f"{_ratio(low)} to {_ratio(high)})")
-    share = "the fitted share of departures that were forced"
-    span = f"{fit.window[0]}–{fit.window[1]}"
-    if low > 1.0 or high < 1.0:
-        verb = "rose" if low > 1.0 else "fell"
-        return (f"Across {span}, {share} {verb} from {a}% in {first.year} to {b}% in {last.year} "
-                f"({change:+d} {points}); {odds}.")
-    return (f"Across {span}, {share} went from {a}% in {first.year} to {b}% in {last.year} "
-            f"({change:+d} {points}), but this is no clear change: {odds}, which includes 1.")
+    return headline_words(fit.window, fit.alpha, fit.odds_ratio, interval, fit.quasi is not None,
+                          (first.year, first.share), (last.year, last.share))
 
 
 def headline_fields(fit: TrendFit) -> dict[str, Any]:

@@ -6,8 +6,10 @@ one intercept per sector with a common slope (``"sector"``), and a natural cubic
 trend's odds ratio stays the headline. Its plain-language sentence and JSON form live in
 :mod:`app.stats.trend_report`.
 
-statsmodels and scipy.stats are imported lazily (inside the functions): together they cost about two
-seconds to import and this module sits on the CLI and server start-up path.
+The straight and spline trends are computed by :mod:`app.stats.trend_line` (plain Python, the engine the
+first ``helmshift fit`` prints without importing numpy); the statsmodels code below fits the sector model
+and whatever ``trend_line`` declines (separation, no convergence). statsmodels and scipy.stats are imported
+lazily (inside the functions): together they cost about two seconds to import.
 """
 
 from __future__ import annotations
@@ -24,6 +26,8 @@ from app.stats.cells import Cells
 from app.stats.design import design_matrix, window_centre
 from app.stats.profile import GroupedFit, ProfileResult, fit_grouped_binomial, profile_interval
 from app.stats.proportions import share_intervals
+from app.stats.spline import SPLINE_DFS, natural_spline_basis
+from app.stats.trend_line import LineTrend, fit_line
 from app.types import check_choice
 
 TrendKind = Literal["linear", "sector", "spline"]
@@ -35,8 +39,6 @@ TREND_KINDS: tuple[TrendKind, ...] = get_args(TrendKind)
 #: with fewer than 5 df the dispersion estimate itself is too noisy to act on.
 QUASI_DISPERSION = 1.5
 QUASI_MIN_DF = 5
-#: spline df the bend test accepts; more than 6 would chase year-to-year noise in a 20-30 year window
-SPLINE_DFS = (2, 3, 4, 5, 6)
 #: years with fewer counted departures than this get a note that their share is imprecise
 THIN_YEAR = 10
 
@@ -133,46 +135,6 @@ class TrendFit:
     #: fit can hand them to the next ``fit_trend`` of the same counts (``profiles``); not part of the JSON
     profiles: dict[str, ProfileResult] = field(default_factory=dict, repr=False, compare=False,
                                                metadata={"json_skip": True})
-
-
-def natural_spline_basis(x: np.ndarray, df: int, *, knots: tuple[float, ...] | None = None
-                         ) -> tuple[np.ndarray, tuple[float, ...]]:
-    """Natural cubic spline basis in ``x`` without the constant column.
-
-    Knots sit at the 0, 1/df, ..., 1 quantiles of the distinct values of ``x`` (boundary knots at
-    the ends). The basis is the truncated-power form of Hastie, Tibshirani & Friedman, *The
-    Elements of Statistical Learning*, eq. 5.4-5.5: column 1 is linear in ``x`` (rescaled to
-    [0, 1] for conditioning) so a model with a constant plus this basis nests the straight trend.
-
-    Parameters
-    ----------
-    x : numpy.ndarray
-        Covariate values (years).
-    df : int
-        Columns returned (2 to 6); the spline has df + 1 knots.
-    knots : tuple of float, optional
-        Reuse the knots of an earlier call (e.g. to evaluate a fitted spline at new years).
-
-    Returns
-    -------
-    (numpy.ndarray of shape (len(x), df), tuple of float knots)
-    """
-    if df not in SPLINE_DFS:
-        raise ValueError(f"spline_df must be one of {', '.join(map(str, SPLINE_DFS))}; got {df!r}.")
-    x = np.asarray(x, dtype=float)
-    if knots is not None and len(knots) != df + 1:
-        raise ValueError(f"A spline with {df} df needs {df + 1} knots; got {len(knots)}.")
-    knots_ = np.quantile(np.unique(x), np.linspace(0.0, 1.0, df + 1)) if knots is None else np.asarray(knots)
-    if len(np.unique(knots_)) < len(knots_):
-        raise ValueError(f"A spline with {df} df needs at least {df + 1} distinct years.")
-    lo, span = knots_[0], knots_[-1] - knots_[0]
-    u, k = (x - lo) / span, (knots_ - lo) / span
-
-    def d(j: int) -> np.ndarray:
-        return (np.clip(u - k[j], 0, None) ** 3 - np.clip(u - k[-1], 0, None) ** 3) / (k[-1] - k[j])
-
-    columns = [u] + [d(j) - d(len(k) - 2) for j in range(len(k) - 2)]
-    return np.column_stack(columns), tuple(float(v) for v in knots_)
 
 
 def _year_groups(groups: pd.DataFrame) -> pd.DataFrame:
@@ -297,6 +259,10 @@ def fit_trend(cells: Cells, model: TrendKind = "linear", *, spline_df: int = 3,
         raise TrendError(f"There are no forced or voluntary departures in {cells.window[0]}-"
                          f"{cells.window[1]}.")
     _check_data(groups, cells.window)
+    if model != "sector":  # the engine's own plain-Python fit; statsmodels below only where it declines
+        line = _plain_line(groups, cells.window, model, spline_df, alpha, quasi, profiles)
+        if line is not None:
+            return _from_line(line, cells.window)
     messages: list[str] = []
     if model == "sector":
         groups, messages = _drop_one_sided_sectors(groups)
@@ -411,3 +377,37 @@ def _quasi(prof: ProfileResult, b: float, se: float, dispersion: float, alpha: f
                       decade_conf_int={"wald": _or_interval(wald, 10.0),
                                        "profile": _or_interval(bounds, 10.0)},
                       message=message)
+
+
+def _plain_line(groups: pd.DataFrame, window: tuple[int, int], model: TrendKind, spline_df: int, alpha: float,
+                quasi: bool, profiles: Mapping[str, ProfileResult] | None) -> LineTrend | None:
+    """:func:`app.stats.trend_line.fit_line` of year groups; None where it declines or its search fails."""
+    try:
+        return fit_line(groups["year"].astype(int).tolist(), groups["forced"].astype(int).tolist(),
+                        groups["voluntary"].astype(int).tolist(), window, model, spline_df=spline_df, alpha=alpha,
+                        quasi=quasi, profiles={k: (p.low, p.high, p.message) for k, p in (profiles or {}).items()})
+    except ArithmeticError:  # a root or quantile search that did not converge: the statsmodels path below
+        return None
+
+
+def _from_line(line: LineTrend, window: tuple[int, int]) -> TrendFit:
+    """A ``TrendFit`` of the plain-Python straight or spline trend (:mod:`app.stats.trend_line`)."""
+    fit, q, c = line.fit, line.quasi, line.curvature
+    b = line.log_or
+    quasi = None if q is None else QuasiTrend(q["dispersion"], q["se"], q["conf_int"], q["decade_conf_int"],
+                                              q["message"])
+    curvature = None if c is None else Curvature(c["spline_df"], tuple(c["knots"]), c["deviance"], c["statistic"],
+                                                 c["df"], c["p"])
+    observed = pd.DataFrame(line.observed)
+    return TrendFit(
+        model=line.model, window=window, centre=line.centre, alpha=line.alpha,  # type: ignore[arg-type]
+        n_groups=len(line.observed), n_years=len(line.observed), departures=int(observed["total"].sum()),
+        forced=int(observed["forced"].sum()), coefficients=pd.DataFrame(line.coefficients),
+        covariance=pd.DataFrame(fit.cov, index=list(line.names), columns=list(line.names)),
+        log_or=b, se=line.se, odds_ratio=math.exp(b), conf_int=dict(line.conf_int),
+        decade_odds_ratio=math.exp(10.0 * b), decade_conf_int=dict(line.decade_conf_int), deviance=fit.deviance,
+        pearson_chi2=fit.pearson_chi2, df_resid=fit.df_resid, dispersion=fit.dispersion, llf=fit.llf,
+        converged=True, separated=False, quasi=quasi, curvature=curvature, observed=observed,
+        fitted=pd.DataFrame(line.fitted), messages=line.messages,
+        profiles={k: ProfileResult(*v) for k, v in line.profiles.items()},
+    )

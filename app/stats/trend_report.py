@@ -12,49 +12,19 @@ import numpy as np
 import pandas as pd
 
 from app.stats.trend import Interval, TrendFit
+from app.stats.trend_words import trend_words
 
 __all__ = ["fit_to_dict", "json_interval", "json_number", "trend_sentence"]
-
-
-def _pct(value: float) -> str:
-    if math.isinf(value):
-        return "an unbounded amount"
-    return f"{value:.1f}%" if abs(value) >= 0.1 else f"{value:.2g}%"
-
-
-def _change(ratio: float) -> str:
-    """Describe an odds ratio per year as a signed change, e.g. 'a rise of 2.1%'."""
-    if ratio >= 1.0:
-        return f"a rise of {_pct((ratio - 1.0) * 100.0)}"
-    return f"a fall of {_pct((1.0 - ratio) * 100.0)}"
 
 
 def trend_sentence(fit: TrendFit) -> str:
     """One plain-language sentence on the yearly change in the odds of a forced departure.
 
     Uses the profile interval (the quasi-binomial one when overdispersion triggered a refit).
-    Says "no clear change" whenever the interval includes an odds ratio of 1.
+    Says "no clear change" whenever the interval includes an odds ratio of 1 (``trend_words``).
     """
-    span = f"{fit.window[0]}\u2013{fit.window[1]}"
-    level = f"{round((1.0 - fit.alpha) * 100):g}%"
     interval = fit.quasi.conf_int["profile"] if fit.quasi is not None else fit.conf_int["profile"]
-    if fit.odds_ratio is None or interval is None:
-        return (f"Across {span}, the trend in the odds that a departure was forced cannot be estimated: "
-                "the forced share is perfectly separated by year, so any single number would mislead.")
-    low, high = interval
-    kind = f"{level} profile interval" + (", allowing for overdispersion," if fit.quasi is not None else "")
-    ratio = fit.odds_ratio
-    if low > 1.0:
-        ends = f"{_pct((low - 1.0) * 100.0)} to {_pct((high - 1.0) * 100.0)}"
-        return (f"Across {span}, the odds that a departure was forced rose by about "
-                f"{_pct((ratio - 1.0) * 100.0)} a year ({kind} {ends}).")
-    if high < 1.0:
-        ends = f"{_pct((1.0 - high) * 100.0)} to {_pct((1.0 - low) * 100.0)}"
-        return (f"Across {span}, the odds that a departure was forced fell by about "
-                f"{_pct((1.0 - ratio) * 100.0)} a year ({kind} {ends}).")
-    return (f"Across {span}, there was no clear change in the odds that a departure was forced: the "
-            f"estimate is {_change(ratio)} a year, but the {kind.replace(',', '').rstrip()} runs from "
-            f"{_change(low)} to {_change(high)}.")
+    return trend_words(fit.window, fit.alpha, fit.odds_ratio, interval, fit.quasi is not None)
 
 
 def json_number(value: float | None) -> float | None:

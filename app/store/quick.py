@@ -1,10 +1,12 @@
-"""A read-only look into a SQLite store through the standard library alone: what a repeated fit needs.
+"""A look into a SQLite store through the standard library alone: what ``helmshift fit`` needs (issue 13).
 
-``helmshift fit`` on counts it has already fitted prints the recorded run again (issue 13, start-up under
-0.5 s). SQLAlchemy and pandas alone take longer than that to import on the 2-core machine, so this module
-reads the few rows involved (roster, its settings, a mapping version, the roster's cells, its fit runs) with
-``sqlite3``. It writes nothing. It answers only for a SQLite file stamped at the schema's head revision
-(found from the revision files, so it never reads a schema older or newer than the one it was written for);
+``helmshift fit`` on counts it has already fitted prints the recorded run again, and on new counts fits them
+and records the run, in under 0.5 s. SQLAlchemy and pandas alone take longer than that to import on the
+2-core machine, so this module reads the few rows involved (roster, its settings, a mapping version, the
+roster's cells, its fit runs) with ``sqlite3`` on a read-only connection, and :func:`record_fit_run` writes
+a finished fit run (and its audit event) exactly as ``Store.create_run`` + ``finish_run`` would, in one
+transaction. It answers only for a SQLite file stamped at the schema's head revision (found from the
+revision files, so it never reads or writes a schema older or newer than the one it was written for);
 everywhere else ``open_quick`` returns None and the caller takes the ordinary path through ``Store``.
 The queries mirror the ``Store`` methods named in each docstring; tests/test_quick_fit.py compares them.
 """
@@ -14,9 +16,10 @@ from __future__ import annotations
 import json
 import re
 import sqlite3
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import closing
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 from urllib.parse import unquote
@@ -25,6 +28,8 @@ VERSIONS = Path(__file__).resolve().parent / "migrations" / "versions"
 _REVISION = re.compile(r"""^revision\s*=\s*["']([^"']+)["']""", re.MULTILINE)
 #: ids above this are "unknown" on every backend (``app.store.records.MAX_ID``, kept equal by a test)
 MAX_ID = 2**31 - 1
+#: seconds a writer waits for another's lock (``app.store.engine``: ``timeout=30``, ``busy_timeout=30000``)
+BUSY_TIMEOUT = 30
 
 
 def head_revision() -> str | None:
@@ -109,13 +114,75 @@ class QuickReader:
 
     def fit_runs(self, roster_id: int) -> Iterator[dict[str, Any]]:
         """The roster's finished fit runs, newest first (``Store.list_runs(roster_id, "fit")``, done only)."""
-        for row in self._rows(
-                "SELECT id, params, fingerprint, window_from, window_to, roster_version, mapping_name, "
-                "mapping_version, result FROM runs WHERE roster_id = ? AND kind = 'fit' AND status = 'done' "
-                "AND result IS NOT NULL ORDER BY id DESC", roster_id):
-            yield {"id": int(row[0]), "params": json.loads(row[1]), "fingerprint": row[2],
-                   "window": (row[3], row[4]) if row[3] is not None else None, "roster_version": row[5],
-                   "mapping_name": row[6], "mapping_version": row[7], "result": json.loads(row[8])}
+        yield from fit_runs(self.conn, roster_id)
+
+
+def fit_runs(conn: sqlite3.Connection, roster_id: int) -> Iterator[dict[str, Any]]:
+    """The finished fit runs of a roster on ``conn``, newest first, as plain values."""
+    with closing(conn.execute(
+            "SELECT id, params, fingerprint, window_from, window_to, roster_version, mapping_name, "
+            "mapping_version, result FROM runs WHERE roster_id = ? AND kind = 'fit' AND status = 'done' "
+            "AND result IS NOT NULL ORDER BY id DESC", (roster_id,))) as cursor:
+        rows = cursor.fetchall()
+    for row in rows:
+        yield {"id": int(row[0]), "params": json.loads(row[1]), "fingerprint": row[2],
+               "window": (row[3], row[4]) if row[3] is not None else None, "roster_version": row[5],
+               "mapping_name": row[6], "mapping_version": row[7], "result": json.loads(row[8])}
+
+
+def now_iso() -> str:
+    """``app.store.records.now_iso``: UTC to the second."""
+    return datetime.now(UTC).replace(microsecond=0).isoformat()
+
+
+def record_fit_run(url: str, *, roster_id: int, roster_version: int, params: dict[str, Any], fingerprint: str,
+                   mapping: tuple[str, int], window: tuple[int, int], result: dict[str, Any], seconds: float,
+                   actor: str, existing: Callable[[dict[str, Any]], bool]) -> int | None:
+    """Record a finished fit run as ``app.analysis.runs._record_run`` does through ``Store`` (``create_run``:
+    the row and its ``run_start`` audit event; ``finish_run``: result, seconds, status done), in one
+    ``BEGIN IMMEDIATE`` transaction, so a second writer waits for the first (busy timeout as the Store's) and
+    run ids come from the table's AUTOINCREMENT (never reused). Returns the id of the run, or of a matching
+    run (``existing``) another process recorded meanwhile; None when the file is not at the head revision or
+    the roster has changed since it was read (the caller then takes the ordinary path)."""
+    path = sqlite_path(url)
+    if path is None or not path.is_file():
+        return None
+    conn = sqlite3.connect(str(path), timeout=BUSY_TIMEOUT, isolation_level=None)
+    try:
+        conn.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT * 1000}")
+        conn.execute("PRAGMA foreign_keys=ON")
+        conn.execute("PRAGMA synchronous=NORMAL")  # as the Store's connections (app.store.engine)
+        conn.execute("BEGIN IMMEDIATE")
+        try:
+            stamped = [row[0] for row in conn.execute("SELECT version_num FROM alembic_version")]
+            version = conn.execute("SELECT version FROM rosters WHERE id = ?", (roster_id,)).fetchall()
+            if stamped != [head_revision()] or [tuple(row) for row in version] != [(roster_version,)]:
+                conn.execute("ROLLBACK")
+                return None
+            for run in fit_runs(conn, roster_id):
+                if existing(run):
+                    conn.execute("COMMIT")
+                    return int(run["id"])
+            at = now_iso()
+            cursor = conn.execute(
+                "INSERT INTO runs (kind, roster_id, status, created_at, finished_at, mapping_name, mapping_version, "
+                "window_from, window_to, params, fingerprint, progress_done, progress_total, cancel_requested, "
+                "result, seconds, author, roster_version) VALUES ('fit', ?, 'done', ?, ?, ?, ?, ?, ?, ?, ?, 0, 0, 0, "
+                "?, ?, ?, ?)",
+                (roster_id, at, at, mapping[0], mapping[1], window[0], window[1], json.dumps(dict(params)),
+                 fingerprint, json.dumps(dict(result)), seconds, actor, roster_version))
+            run_id = int(cursor.lastrowid or 0)
+            conn.execute("INSERT INTO audit_events (at, actor, action, target, detail) VALUES (?, ?, ?, ?, ?)",
+                         (at, actor, "run_start", f"run:{run_id}",
+                          json.dumps({"kind": "fit", "roster": roster_id, **params}, sort_keys=True, default=str)))
+            conn.execute("COMMIT")
+            return run_id
+        except BaseException:
+            if conn.in_transaction:
+                conn.execute("ROLLBACK")
+            raise
+    finally:
+        conn.close()
 
 
 def sqlite_path(url: str) -> Path | None:
