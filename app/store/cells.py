@@ -162,7 +162,7 @@ def _insert_detail(conn: Connection, keys: pd.DataFrame, ids: dict[str, int]) ->
 
 
 #: what the detailed and firm cells are counted from
-_KEY_FIELDS = ("firm_id", "year", "sector", "reason", "reason_raw", "age", "tenure", "interim", "notice_days")
+_KEY_FIELDS = ("firm_id", "year", "sector", "reason", "age", "tenure", "interim", "notice_days")
 #: departures read at a time when building the detailed cells
 _READ_CHUNK = 100_000
 
@@ -170,7 +170,7 @@ _READ_CHUNK = 100_000
 def _shared_strings(frame: pd.DataFrame) -> pd.DataFrame:
     """The text columns of a chunk with one string object per distinct value (the driver makes one per cell:
     ~300 MB on 1,000,000 departures)."""
-    for c in ("firm_id", "sector", "reason", "reason_raw"):
+    for c in ("firm_id", "sector", "reason"):
         codes, uniq = pd.factorize(frame[c].to_numpy(dtype=object), use_na_sentinel=True)
         values = np.empty(len(uniq) + 1, dtype=object)
         values[:-1] = uniq

@@ -56,9 +56,9 @@ def upgrade() -> None:
                                     "ORDER BY roster_id, version")).all()
     for roster_id, version in versions:
         # streamed (a server-side cursor on PostgreSQL): one version's rows are never all in memory at once
-        result = conn.execution_options(stream_results=True, yield_per=BATCH).execute(
-            sa.text("SELECT line, raw FROM departures WHERE roster_id = :r AND version = :v ORDER BY line"),
-            {"r": roster_id, "v": version})
+        result = conn.execute(
+            sa.text("SELECT line, raw FROM departures WHERE roster_id = :r AND version = :v ORDER BY line")
+            .execution_options(stream_results=True, yield_per=BATCH), {"r": roster_id, "v": version})
         batches = []
         for seq, part in enumerate(result.partitions(BATCH)):
             lines, rows = [int(r[0]) for r in part], [str(r[1]) for r in part]
