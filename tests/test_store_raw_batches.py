@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 import pandas as pd
+import pytest
 from alembic import command
 from alembic.config import Config
 from sqlalchemy import MetaData, create_engine, inspect, select, text
@@ -144,3 +145,70 @@ def test_raw_batches_hold_lines_and_cells_by_column(store: Store, monkeypatch: A
         {"Firm": "D", "FY": "2004", "Reason": "Health", "Note": 'q"'}]
     frame = store.departures(roster.id, with_raw=True)
     assert isinstance(frame, pd.DataFrame) and json.loads(frame["raw"].iloc[0])["Note"] == "x, y"
+
+
+def _cell_rows(store: Store) -> dict[str, list[tuple[Any, ...]]]:
+    with store.engine.connect() as conn:
+        return {t: _rows(conn, t) for t in (*CELL_TABLES, "roster_cell_builds")}
+
+
+ROSTER_CSV = ("Firm,FY,Reason,Age,Tenure\n" + "".join(
+    f"F{i % 13},{2000 + i % 9},{('Retired', 'Dismissed', 'Health')[i % 3]},{40 + i % 30},{i % 11}\n"
+    for i in range(400))).encode()
+
+
+def test_two_stores_building_the_cells_at_once_leave_one_set(store: Store) -> None:
+    """Two gateways (as two server processes would) ask for the detailed cells of a fresh version at once."""
+    import threading
+
+    roster = import_roster(store, ROSTER_CSV, "two.csv").roster
+    other = Store(store.url)
+    try:
+        barrier = threading.Barrier(2)
+        errors: list[BaseException] = []
+
+        def read(s: Store) -> None:
+            try:
+                barrier.wait()
+                s.firm_cell_counts(roster.id, detail=True)
+            except BaseException as exc:  # noqa: BLE001 - reported below
+                errors.append(exc)
+
+        threads = [threading.Thread(target=read, args=(s,)) for s in (store, other)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+        assert errors == []
+        built = _cell_rows(store)
+        assert len(built["roster_cell_builds"]) == 1
+        with store.engine.begin() as conn:  # the reference: one build on its own
+            for table in ("roster_detail_cells", "roster_firm_cells", "roster_cell_builds"):
+                conn.execute(text(f"DELETE FROM {table}"))
+        store.ensure_detail_cells(roster.id)
+        again = _cell_rows(store)
+        assert {k: v for k, v in again.items() if k != "roster_cell_builds"} == {
+            k: v for k, v in built.items() if k != "roster_cell_builds"}
+    finally:
+        other.dispose()
+
+
+def test_a_build_that_fails_half_way_leaves_nothing_and_the_next_read_builds(store: Store, monkeypatch: Any) -> None:
+    from app.store import cells
+
+    roster = import_roster(store, ROSTER_CSV, "half.csv").roster
+    real = cells._insert_counts
+
+    def failing(conn: Any, table: Any, *args: Any) -> None:
+        if table.name == "roster_firm_cells":  # after the mark and the detailed cells were written
+            raise RuntimeError("killed")
+        real(conn, table, *args)
+
+    monkeypatch.setattr(cells, "_insert_counts", failing)
+    with pytest.raises(RuntimeError, match="killed"):
+        store.cell_counts(roster.id, detail=True)
+    rows = _cell_rows(store)
+    assert rows["roster_detail_cells"] == rows["roster_firm_cells"] == rows["roster_cell_builds"] == []
+    monkeypatch.setattr(cells, "_insert_counts", real)
+    detail = store.cell_counts(roster.id, detail=True)
+    assert int(detail["departures"].sum()) == 400 and len(_cell_rows(store)["roster_cell_builds"]) == 1
