@@ -6,7 +6,11 @@ memory does not count for the other, and in the same run:
 
 1. a bare ``pandas.read_csv`` of the file (all columns as text): the reference;
 2. ``import_roster`` end to end (read, header and roles, validate, store in one transaction, cells);
-3. ``review_roster``, the dry run (everything but storing).
+3. ``review_roster``, the dry run (everything but storing);
+4. with ``--before REV``: ``import_roster`` of that revision's tree (``git archive``), in a fresh process too;
+5. the first read of the detailed and firm cells of the imported roster (built on first read since
+   revision 0016, ``Store.ensure_detail_cells``): what the first Trend, rules, roster-page or bootstrap visit
+   after an import pays once.
 
 Each prints wall and CPU seconds and the process's peak resident memory (``VmHWM`` from /proc/self/status;
 the file's bytes, held by the caller as a web upload is, included). Targets (issue 14): the import under
@@ -96,27 +100,58 @@ def child(task: str, path: str, db: str) -> dict[str, object]:
     return out
 
 
-def _run(task: str, path: Path, db: Path) -> dict[str, float]:
-    done = subprocess.run([sys.executable, __file__, "--child", task, str(path), str(db)],
-                          check=True, capture_output=True, text=True)
+def first_read(db: str) -> dict[str, object]:
+    """The first read of the detailed and firm cells of the roster just imported into ``db`` (fresh process)."""
+    from app.store import Store
+
+    store = Store(f"sqlite:///{db}")
+    start, cpu = time.perf_counter(), time.process_time()
+    store.ensure_detail_cells(1)
+    out: dict[str, object] = dict(store.cell_table_rows(1))
+    out.update(wall=time.perf_counter() - start, cpu=time.process_time() - cpu, peak_mb=_peak_mb())
+    return out
+
+
+def _run(task: str, path: Path, db: Path, tree: Path | None = None) -> dict[str, float]:
+    script = Path(__file__) if tree is None else tree / "benchmarks" / "bench_import.py"
+    env = {**os.environ, "PYTHONPATH": str(script.parents[1])}
+    if db.exists() and task != "first_read":
+        db.unlink()
+    done = subprocess.run([sys.executable, str(script), "--child", task, str(path), str(db)],
+                          check=True, capture_output=True, text=True, env=env)
     return json.loads(done.stdout.strip().splitlines()[-1])  # type: ignore[no-any-return]
+
+
+def _tree(rev: str, into: Path) -> Path:
+    """The files of revision ``rev`` of this repository, extracted under ``into``."""
+    root = Path(__file__).resolve().parents[1]
+    archive = subprocess.run(["git", "-C", str(root), "archive", "--format=tar", rev], check=True,
+                             capture_output=True).stdout
+    into.mkdir()
+    subprocess.run(["tar", "-x", "-C", str(into)], input=archive, check=True)
+    return into
 
 
 def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--rows", type=int, default=1_000_000)
+    parser.add_argument("--before", metavar="REV", help="also time that revision's import_roster (git archive)")
     parser.add_argument("--child", nargs=3, metavar=("TASK", "FILE", "DB"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
-        print(json.dumps(child(*args.child)))
+        print(json.dumps(first_read(args.child[2]) if args.child[0] == "first_read" else child(*args.child)))
         return
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "roster.csv"
         path.write_bytes(make_roster(args.rows))
         print(f"roster: {args.rows:,} rows, {path.stat().st_size / 1e6:.1f} MB; load average before: "
               f"{' '.join(f'{x:.2f}' for x in os.getloadavg())} on {os.cpu_count()} cores")
-        results = {task: _run(task, path, Path(tmp) / "bench.db") for task in ("read_csv", "import", "review")}
+        db = Path(tmp) / "bench.db"
+        results = {task: _run(task, path, db) for task in ("read_csv", "import", "first_read", "review")}
+        if args.before:
+            results["before"] = _run("import", path, db, _tree(args.before, Path(tmp) / "before"))
         base = results["read_csv"]
+        cells = results.pop("first_read")
         for task, r in results.items():
             counts = "" if task == "read_csv" else (
                 f"; {r['accepted']:,} accepted, {r['rejected']:,} rejected, {r['duplicates']:,} duplicates")
@@ -124,8 +159,13 @@ def main() -> None:
                 f"; {r['wall'] / base['wall']:.1f}x read_csv wall, {r['cpu'] / base['cpu']:.1f}x CPU")
             print(f"  {task:<8} {r['wall']:7.2f} s wall {r['cpu']:7.2f} s CPU  peak {r['peak_mb']:6.0f} MB{ratio}"
                   f"{counts}")
+        print(f"  first read of the detailed and firm cells after the import: {cells['wall']:.2f} s wall "
+              f"{cells['cpu']:.2f} s CPU, peak {cells['peak_mb']:.0f} MB; rows "
+              f"{ {k: v for k, v in cells.items() if k.startswith('roster_')} }")
         print(f"  load average after: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
         imp = results["import"]
+        if "before" in results:
+            print(f"  import CPU against {args.before}'s: {imp['cpu'] / results['before']['cpu']:.2f}x")
         print(f"  targets: peak < 1024 MB -> {'met' if imp['peak_mb'] < 1024 else 'MISSED'}; "
               f"< 10x read_csv -> {'met' if imp['cpu'] < 10 * base['cpu'] else 'MISSED'} (CPU), "
               f"{'met' if imp['wall'] < 10 * base['wall'] else 'MISSED'} (wall)")

@@ -122,16 +122,24 @@ def test_no_page_reads_the_records(demo_store: Store) -> None:
         assert client.get(f"/rosters/{ROSTER}{page}").status_code == 200, page
         assert client.get(f"/api/rosters/{ROSTER}{page}").status_code in (200, 404), page
     assert reads(seen, "roster_cells") >= 1  # the pages did read the cell store
-    assert reads(seen, "departures") == 0
+    # the records are read once: the first page that needs the detailed or firm cells builds them
+    # (revision 0016: not stored by the import), in one transaction with their mark
+    assert reads(seen, "departures") == 1
+    assert reads(seen, "roster_cell_builds") >= 1
     # the roster page's distinct firms (in all and per sector): two queries, once, then memoised; and the
     # Briefing preview's robustness finding, whose readings carry the adjusted odds ratio (issue 16): the firm
     # cells once per check, the readings' measures memoised (the Robustness page reads them only with measures=1)
     assert reads(seen, "roster_firm_cells") == 3
     assert client.get(f"/rosters/{ROSTER}/briefing").status_code == 200
     assert reads(seen, "roster_firm_cells") == 3  # a second visit: memoised
+    seen.clear()
+    for page in PAGES:  # built: no page reads the records again
+        assert client.get(f"/rosters/{ROSTER}{page}").status_code == 200, page
+    assert reads(seen, "departures") == 0
 
 
 def test_the_command_line_bootstrap_reads_the_firm_counts_once(demo_store: Store) -> None:
+    demo_store.ensure_detail_cells(ROSTER)  # built once per roster version (their first read), not per job
     seen = selects(demo_store)
     result = run_bootstrap_now(demo_store, load_input(demo_store, ROSTER), unit="firm", resamples=300, seed=5)
     assert result["resamples"] == 300
@@ -246,7 +254,7 @@ def test_no_page_reads_the_records_with_a_universe(demo_store: Store, partial_un
     for page in (*PAGES, "/universe"):
         assert client.get(f"/rosters/{ROSTER}{page}").status_code == 200, page
         assert client.get(f"/api/rosters/{ROSTER}{page}").status_code in (200, 404), page
-    assert reads(seen, "departures") == 0
+    assert reads(seen, "departures") == 1  # the one build of the detailed and firm cells (their first read)
     assert reads(seen, "roster_firm_cells") >= 1  # the rates were counted from the firm cells
     # the firm-years are counted in SQL, never read as a list
     assert not [s for s in seen if re.search(r"SELECT universe_firm_years\.firm_id, universe_firm_years\.year", s)]
@@ -266,14 +274,21 @@ def test_cells_read_missing_values_last_on_every_backend(store: Store, tmp_path:
 
 
 def test_cells_filled_at_import_equal_the_databases_own_group_by(store: Store) -> None:
-    """The import counts its cells in pandas; the reference is the database's GROUP BY over the stored
-    departures (``fill_cells``, the migration's path). Ages and tenures with fractions, missing values, a
+    """The import counts its cells in pandas, and so does the first read of the detailed and firm cells (from
+    the stored records); the reference is the database's GROUP BY over the stored departures (``fill_cells``,
+    the migration's path). Ages and tenures with fractions, missing values, a
     missing sector, interim flags and several spellings of one code all take part."""
     from sqlalchemy import select
 
     from app.intake.ingest import import_roster
     from app.store.cells import fill_cells
-    from app.store.tables import roster_cells, roster_detail_cells, roster_firm_cells, roster_spellings
+    from app.store.tables import (
+        roster_cell_builds,
+        roster_cells,
+        roster_detail_cells,
+        roster_firm_cells,
+        roster_spellings,
+    )
 
     rng = np.random.default_rng(5)
     lines = ["Firm,FY,Reason,Sector,Age,Tenure,Interim"]
@@ -284,6 +299,7 @@ def test_cells_filled_at_import_equal_the_databases_own_group_by(store: Store) -
                      f"{rng.choice(['Retired', 'retired ', 'Dismissed', 'Health'])},"
                      f"{rng.choice(['', 'Mining', 'Retail'])},{age},{tenure},{rng.choice(['yes', 'no', ''])}")
     report = import_roster(store, "\n".join(lines).encode(), "cells.csv")
+    store.ensure_detail_cells(report.roster.id)  # the detailed and firm cells: counted from the stored records
     tables = (roster_cells, roster_detail_cells, roster_spellings, roster_firm_cells)
 
     def rows() -> dict[str, list[tuple[Any, ...]]]:
@@ -294,7 +310,7 @@ def test_cells_filled_at_import_equal_the_databases_own_group_by(store: Store) -
     from_import = rows()
     assert all(from_import.values())
     with store.engine.begin() as conn:
-        for t in tables:
+        for t in (*tables, roster_cell_builds):
             conn.execute(t.delete())
         fill_cells(conn, report.roster.id, report.version)
     assert rows() == from_import

@@ -136,9 +136,10 @@ def test_raw_json_built_per_batch_is_each_stored_rows_own(store, monkeypatch) ->
     import json
 
     from app.intake.ingest import import_roster
-    from app.store import engine
+    from app.store import engine, raw_rows
 
     monkeypatch.setattr(engine, "BATCH_ROWS", 3)  # several batches, rejected and duplicate rows in between
+    monkeypatch.setattr(raw_rows, "RAW_BATCH", 3)
     header = ["Issuer Code", "FY", "Exit Reason", "Comment"]
     body = [["F1", "2001", "Retired", "a, b"], ["F2", "20x1", "Fired", ""], ["F3", "2003", "Fired", 'q "x"'],
             ["F1", "2001", "Retired", "a, b"], ["F4", "2004", "Health", ""], ["", "2005", "Retired", "n"],

@@ -221,6 +221,7 @@ def test_pages_show_the_reclassified_rates_without_reading_the_records(store: St
 
     store.update_settings(built["roster"], mapping_name="rr map", window=WINDOW)
     expected = per_year(oracle(built["rows"], built["overrides"]), "forced")
+    store.ensure_detail_cells(built["roster"])  # once per roster version, on their first read (test_cellstore.py)
     seen: list[str] = []
     event.listen(store.engine, "before_cursor_execute",
                  lambda conn, cursor, statement, *args: seen.append(" ".join(statement.split())))

@@ -104,6 +104,7 @@ def test_robustness_reads_with_and_without_rules_and_the_preset(client: Any, dem
 
 
 def test_trend_shows_the_mix_and_fits_the_adjusted_trend_only_when_asked(client: Any, demo_store: Store) -> None:
+    demo_store.ensure_detail_cells(ROSTER)  # once per roster version, on their first read (tests/test_cellstore.py)
     seen = selects(demo_store)
     page = client.get(f"/api/rosters/{ROSTER}/trend").json()
     assert page["adjusted"] is None and len(page["mix"]["sentences"]) == 2

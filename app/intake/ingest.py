@@ -376,7 +376,7 @@ def import_roster(
         name=target.name if target else name or default_roster_name(store, filename), source_name=filename,
         sha256=sha, rows_total=len(c.records) + len(c.rejected) + c.duplicates, duplicates=c.duplicates,
         columns=p.roles, records=c.records, rejected=c.rejected, into=target.id if target else None,
-        raw=c.raw_json,
+        raw=c.raw_cells,
     )
     added, removed, changed = roster.accepted, 0, 0
     if roster.version > 1:

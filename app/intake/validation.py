@@ -10,12 +10,10 @@ excludes such codes from every model.
 
 from __future__ import annotations
 
-import json
 import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import date
-from json.encoder import encode_basestring
 from typing import Literal, get_args
 
 import numpy as np
@@ -26,6 +24,7 @@ from app.intake.codes import CodeGroup, group_spellings
 from app.intake.dates import DATE_FORMATS, parse_dates
 from app.intake.rawtable import DEFAULT_LIMITS, RawTable, ReadLimits
 from app.store import RejectedRow
+from app.store.raw_rows import RawCells, row_json, shared_map
 
 DateOrder = Literal["auto", "dmy", "mdy"]
 DATE_ORDERS: tuple[DateOrder, ...] = get_args(DateOrder)
@@ -60,14 +59,9 @@ class Checked:
     other_order_rescues: int = 0
     #: accepted rows that lost a field (an unreadable or late announcement date), with their lines
     kept_with_warnings: list[KeptWithWarning] = field(default_factory=list)
-    #: with ``lazy_raw``: the header and the accepted rows' cells, from which ``raw_json`` builds the ``raw``
-    #: column a slice at a time (all 1,000,000 rows' JSON at once is ~250 MB)
-    raw_headers: list[str] = field(default_factory=list)
-    raw_columns: list[np.ndarray] = field(default_factory=list)
-
-    def raw_json(self, start: int, stop: int) -> list[str]:
-        """The ``raw`` values of accepted records ``start:stop`` (what ``records["raw"]`` holds otherwise)."""
-        return _raw_json(self.raw_headers, [c[start:stop] for c in self.raw_columns])
+    #: with ``lazy_raw``: the header and the accepted rows' cells, which the store keeps per batch as they are
+    #: (``app.store.raw_rows``) instead of a ``raw`` column (all 1,000,000 rows' JSON at once is ~250 MB)
+    raw_cells: RawCells | None = None
 
 
 # Speed: a 100,000-row roster has few distinct values per typed column (years, dates, ages, flags), so
@@ -123,46 +117,9 @@ def _numbers(s: pd.Series) -> pd.Series:
 
 #: rows an import keeps of the table's text after validation (what role detection samples)
 ROLE_SAMPLE = 500
-#: rows whose raw JSON is built at a time: bounds the per-cell strings alive at once
-_JSON_BLOCK = 100_000
-
-
-#: cells looked at to tell a column of mostly distinct values
-_PROBE = 2_000
-
-
-def _shared_map(values: np.ndarray, fn: Callable[[str], object]) -> np.ndarray:
-    """``fn`` applied to every cell, computed once per distinct value (most roster columns repeat).
-
-    A column whose first cells are mostly distinct (names, notes) is mapped cell by cell: hashing a million
-    distinct strings to find the few repeats costs more than it saves.
-    """
-    head = values[:_PROBE]
-    if len(values) > 2 * _PROBE and len(set(head.tolist())) * 2 > len(head):
-        out = np.empty(len(values), dtype=object)
-        out[:] = [fn(u) for u in values.tolist()]
-        return out
-    codes, uniq = pd.factorize(values)
-    mapped = np.empty(len(uniq), dtype=object)
-    mapped[:] = [fn(u) for u in uniq]
-    return mapped[codes]
-
-
 def _stripped(values: np.ndarray) -> np.ndarray:
     """Cells stripped of surrounding spaces, "" as None."""
-    return _shared_map(values, lambda u: u.strip() or None)
-
-
-def _raw_json(headers: list[str], columns: list[np.ndarray]) -> list[str]:
-    """``json.dumps(dict(zip(headers, row)), ensure_ascii=False)`` for every row, column-wise, in blocks."""
-    template = "{" + ", ".join(json.dumps(h, ensure_ascii=False).replace("%", "%%") + ": %s"
-                               for h in headers) + "}"
-    out: list[str] = []
-    n = len(columns[0]) if columns else 0
-    for start in range(0, n, _JSON_BLOCK):
-        encoded = [_shared_map(col[start:start + _JSON_BLOCK], encode_basestring) for col in columns]
-        out.extend(template % r for r in zip(*encoded, strict=True))
-    return out
+    return shared_map(values, lambda u: u.strip() or None)
 
 
 def validate(
@@ -184,7 +141,7 @@ def check_rows(
 
     ``release_rows``: the caller needs ``table.rows`` no more than their first ``ROLE_SAMPLE``; the rest are let go
     once the columns are built (on 1,000,000 rows the row lists alone are ~150 MB). ``lazy_raw``: ``records``
-    has no ``raw`` column; ``Checked.raw_json`` gives it a slice at a time.
+    has no ``raw`` column; ``Checked.raw_cells`` holds the accepted rows' cells instead.
     """
     max_year = (today or date.today()).year + 1
     messages: list[str] = []
@@ -226,13 +183,13 @@ def check_rows(
             p.add(lengths > limits.max_cell_chars, _worded(
                 f"cell in column {h!r} has {{:,}} characters (limit {limits.max_cell_chars:,})", lengths.__getitem__))
     head0 = table.headers[0]
-    maybe_header = np.flatnonzero(_shared_map(by_header[head0], str.strip) == head0)
+    maybe_header = np.flatnonzero(shared_map(by_header[head0], str.strip) == head0)
     repeats_header = [int(i) for i in maybe_header
                       if all(by_header[h][i].strip() == h for h in table.headers)]
 
     col = {role: _Column.of(by_header[h])
            for role, h in roles.items() if role in _TYPED_ROLES}
-    firm_id = _shared_map(by_header[roles["firm_id"]], str.strip)
+    firm_id = shared_map(by_header[roles["firm_id"]], str.strip)
     p.add(firm_id == "", f"missing firm id (column {roles['firm_id']!r} is empty)")
     reason = col["reason"]
     p.add(reason.take(reason.uniq == ""), f"missing reason code (column {roles['reason']!r} is empty)")
@@ -304,7 +261,7 @@ def check_rows(
         p.by_row[pos] = ["repeats the header row (were two files joined together?)"]
 
     bad = list(p.by_row)
-    bad_raw = _raw_json(table.headers, [c[bad] for c in columns])
+    bad_raw = row_json(table.headers, [c[bad] for c in columns])
     rejected = [RejectedRow(line=int(lines[i]), raw=r, reason="; ".join(msgs))
                 for (i, msgs), r in zip(p.by_row.items(), bad_raw, strict=True)]
     rejected = sorted(table.bad_rows + rejected, key=lambda r: r.line)
@@ -345,7 +302,7 @@ def check_rows(
     }
     raw_columns = [c[keep] for c in columns]
     if not lazy_raw:
-        columns_out["raw"] = np.array(_raw_json(table.headers, raw_columns), dtype=object)
+        columns_out["raw"] = np.array(row_json(table.headers, raw_columns), dtype=object)
     del columns
     by_header.clear()  # the grid of text cells goes with it
     # each column filtered once, then the frame built without a second copy (on 1,000,000 rows every copy of
@@ -358,7 +315,7 @@ def check_rows(
     return Checked(records, rejected, duplicates, messages, still_in_post=int(np.sum(serving & keep)), code_groups=groups,
                    order_label=order_label, other_order=other_label, other_order_rescues=other_rescues,
                    kept_with_warnings=warnings,
-                   raw_headers=list(table.headers) if lazy_raw else [], raw_columns=raw_columns if lazy_raw else [])
+                   raw_cells=RawCells(list(table.headers), raw_columns) if lazy_raw else None)
 
 
 def _lines(lines: tuple[int, ...], shown: int = 10) -> str:

@@ -1,9 +1,12 @@
 """The cell store: per-roster-version counts by (year, sector, reason code), and the same counts per firm.
 
-Filled once when a roster is imported (``fill_cells``, inside the import's transaction) and by the schema
-migration for rosters stored before the cell store existed. Pages read ``cell_counts`` (a few thousand rows
-whatever the roster's size); only jobs read ``firm_cell_counts``; nothing on a normal request reads the
-departures themselves.
+The plain cells and the code spellings are filled when a roster is imported (inside the import's
+transaction). The detailed cells and the firm cells, whose keys hold nearly one row per departure on a large
+roster, are built on their first read (``ensure_detail_cells``: one transaction of their own, marked in
+``roster_cell_builds``), so a 1,000,000-row import does not store ~1.8 million cell rows that only rules, the
+mix diagnostic, firm counts and jobs read (benchmarks/README.md, bench_import.py). Pages read ``cell_counts``
+(a few thousand rows whatever the roster's size); nothing on a normal request reads the departures
+themselves, except the one build of a version's detailed cells.
 """
 
 from __future__ import annotations
@@ -28,10 +31,13 @@ from sqlalchemy import (
     literal,
     select,
 )
+from sqlalchemy.exc import IntegrityError
 
 from app.store.engine import Gateway, bulk_insert
+from app.store.records import now_iso
 from app.store.tables import (
     departures,
+    roster_cell_builds,
     roster_cells,
     roster_detail_cells,
     roster_firm_cells,
@@ -62,8 +68,9 @@ def completed(column: Any) -> Any:
     return case((column.is_(None), None), (whole > column, whole - 1), else_=whole)
 
 
-def fill_cells(conn: Connection, roster_id: int, version: int = 1) -> None:
-    """Count one roster version's departures into the three cell tables, inside the caller's transaction."""
+def fill_cells(conn: Connection, roster_id: int, version: int = 1, *, detail: bool = True) -> None:
+    """Count one roster version's departures into the cell tables and the spellings, inside the caller's
+    transaction; without ``detail`` the detailed and firm cells are left to their first read."""
     d = departures.c
     keys = (d.year, d.sector, d.reason, completed(d.age), completed(d.tenure), d.interim, d.notice_days)
     names = ("year", "sector", "reason", *DETAIL_COLUMNS, "departures")
@@ -73,15 +80,18 @@ def fill_cells(conn: Connection, roster_id: int, version: int = 1) -> None:
         ["roster_id", "version", "year", "sector", "reason", "departures"],
         select(d.roster_id, d.version, *plain, func.count()).where(*which)
         .group_by(d.roster_id, d.version, *plain)))
-    conn.execute(insert(roster_detail_cells).from_select(
-        ["roster_id", "version", *names],
-        select(d.roster_id, d.version, *keys, func.count()).where(*which)
-        .group_by(d.roster_id, d.version, *keys)))
     spelling = func.coalesce(d.reason_raw, d.reason)
     conn.execute(insert(roster_spellings).from_select(
         ["roster_id", "version", "reason", "spelling", "departures"],
         select(d.roster_id, d.version, d.reason, spelling, func.count()).where(*which)
         .group_by(d.roster_id, d.version, d.reason, spelling)))
+    if not detail:
+        return
+    conn.execute(insert(roster_cell_builds).values(roster_id=roster_id, version=version, built_at=now_iso()))
+    conn.execute(insert(roster_detail_cells).from_select(
+        ["roster_id", "version", *names],
+        select(d.roster_id, d.version, *keys, func.count()).where(*which)
+        .group_by(d.roster_id, d.version, *keys)))
     conn.execute(insert(roster_firm_cells).from_select(
         ["roster_id", "version", "firm_id", *names],
         select(d.roster_id, d.version, d.firm_id, *keys, func.count()).where(*which)
@@ -115,14 +125,9 @@ def _insert_counts(conn: Connection, table: Table, keys: pd.DataFrame, by: list[
     bulk_insert(conn, table, counted, ids)
 
 
-def fill_cells_from_records(conn: Connection, roster_id: int, version: int, records: pd.DataFrame) -> None:
-    """The counts of ``fill_cells``, computed from the records just inserted (``DEPARTURE_FIELDS``), not re-read.
-
-    SQLite groups by sorting the whole version in a temporary B-tree, four times: ~37 s of a 1,000,000-row
-    import; pandas' hash group-by over the frame in memory gives the same counts in a few seconds.
-    """
+def _keys(records: pd.DataFrame) -> pd.DataFrame:
     raw = records["reason_raw"] if "reason_raw" in records else records["reason"]
-    keys = pd.DataFrame({
+    return pd.DataFrame({
         "year": records["year"].astype("int64"), "sector": records["sector"].astype(object),
         "reason": records["reason"].astype(object), "age": _completed_values(records["age"]),
         "tenure": _completed_values(records["tenure"]), "interim": records["interim"].astype(object),
@@ -131,12 +136,47 @@ def fill_cells_from_records(conn: Connection, roster_id: int, version: int, reco
         "firm_id": records["firm_id"].astype(object),
         "spelling": raw.astype(object).where(raw.notna(), records["reason"]),
     })
+
+
+def fill_cells_from_records(conn: Connection, roster_id: int, version: int, records: pd.DataFrame, *,
+                            detail: bool = False) -> None:
+    """The counts of ``fill_cells``, computed from the records just inserted (``DEPARTURE_FIELDS``), not re-read;
+    the detailed and firm cells only with ``detail`` (else on their first read, ``ensure_detail_cells``).
+
+    SQLite groups by sorting the whole version in a temporary B-tree, four times: ~37 s of a 1,000,000-row
+    import; pandas' hash group-by over the frame in memory gives the same counts in a few seconds.
+    """
+    keys = _keys(records)
     ids = {"roster_id": int(roster_id), "version": int(version)}
-    detail = ["year", "sector", "reason", *DETAIL_COLUMNS]
     _insert_counts(conn, roster_cells, keys, ["year", "sector", "reason"], ids)
-    _insert_counts(conn, roster_detail_cells, keys, detail, ids)
     _insert_counts(conn, roster_spellings, keys, ["reason", "spelling"], ids)
+    if detail:
+        _insert_detail(conn, keys, ids)
+
+
+def _insert_detail(conn: Connection, keys: pd.DataFrame, ids: dict[str, int]) -> None:
+    conn.execute(insert(roster_cell_builds).values(**ids, built_at=now_iso()))
+    detail = ["year", "sector", "reason", *DETAIL_COLUMNS]
+    _insert_counts(conn, roster_detail_cells, keys, detail, ids)
     _insert_counts(conn, roster_firm_cells, keys, ["firm_id", *detail], ids)
+
+
+#: what the detailed and firm cells are counted from
+_KEY_FIELDS = ("firm_id", "year", "sector", "reason", "age", "tenure", "interim", "notice_days")
+#: departures read at a time when building the detailed cells
+_READ_CHUNK = 100_000
+
+
+def _shared_strings(frame: pd.DataFrame) -> pd.DataFrame:
+    """The text columns of a chunk with one string object per distinct value (the driver makes one per cell:
+    ~300 MB on 1,000,000 departures)."""
+    for c in ("firm_id", "sector", "reason"):
+        codes, uniq = pd.factorize(frame[c].to_numpy(dtype=object), use_na_sentinel=True)
+        values = np.empty(len(uniq) + 1, dtype=object)
+        values[:-1] = uniq
+        values[-1] = None
+        frame[c] = values[codes]
+    return frame
 
 
 def _frame(rows: Sequence[Any], columns: tuple[str, ...]) -> pd.DataFrame:
@@ -192,13 +232,52 @@ class CellQueries(Gateway):
                 # roster whose detailed key has ~one cell per departure (benchmarks/bench_rules_adjusted.py)
                 return list(conn.execute(query).cursor.fetchall())
 
+        if table is not roster_cells:
+            self.ensure_detail_cells(roster_id, version)
         rows = fetch()
         if not rows and self._repair_cells(roster_id, version):
             rows = fetch()
         return _frame(rows, tuple(k.name for k in key) + ("departures",))
 
+    def ensure_detail_cells(self, roster_id: int, version: int | None = None) -> None:
+        """Build the detailed and firm cells of a roster version (default: the newest) unless they are built.
+
+        Counted in pandas from the version's departures (as the import counts the plain cells) and stored with
+        their ``roster_cell_builds`` mark in one transaction of their own: a build killed half-way leaves
+        nothing, and the next read builds again. Two processes building at once: the mark's primary key makes
+        the second one's transaction fail as a whole, and the first's cells (the same counts) stand.
+        """
+        b, d = roster_cell_builds.c, departures.c
+        with self.engine.connect() as conn:
+            number = conn.execute(select(version_of(roster_id, version))).scalar()
+            if number is None or conn.execute(select(b.roster_id).where(
+                    b.roster_id == roster_id, b.version == number)).first() is not None:
+                return
+            cursor = conn.execute(select(*[d[f] for f in _KEY_FIELDS])
+                                  .where(d.roster_id == roster_id, d.version == number)).cursor
+            chunks = []
+            while rows := cursor.fetchmany(_READ_CHUNK):
+                chunks.append(_shared_strings(pd.DataFrame.from_records(rows, columns=list(_KEY_FIELDS))))
+                del rows
+        records = (pd.concat(chunks, ignore_index=True) if chunks
+                   else pd.DataFrame({f: pd.Series([], dtype=object) for f in _KEY_FIELDS}))
+        del chunks
+        records["year"] = records["year"].astype("int64")
+        for c in ("age", "tenure", "notice_days"):
+            records[c] = pd.to_numeric(records[c], errors="coerce").astype("float64")
+        # SQLite hands back booleans as 0/1: the cells hold True/False (a PostgreSQL boolean refuses 0/1)
+        records["interim"] = np.array([None if v is None or v != v else bool(v) for v in records["interim"]],
+                                      dtype=object)
+        try:
+            with self._tx() as conn:
+                _insert_detail(conn, _keys(records), {"roster_id": int(roster_id), "version": int(number)})
+        except IntegrityError:  # built meanwhile by another process, or the roster was deleted: nothing to add
+            return
+
     def cell_table_rows(self, roster_id: int) -> dict[str, int]:
-        """Stored rows of each cell table for one roster (the cost of the detailed key: benchmarks, tests)."""
+        """Stored rows of each cell table for one roster (the cost of the detailed key: benchmarks, tests); builds
+        the detailed cells of its newest version first."""
+        self.ensure_detail_cells(roster_id)
         with self.engine.connect() as conn:
             return {t.name: int(conn.execute(select(func.count()).select_from(t)
                                              .where(t.c.roster_id == roster_id)).scalar_one())
@@ -208,6 +287,7 @@ class CellQueries(Gateway):
                     version: int | None = None) -> tuple[int, pd.DataFrame]:
         """Distinct firms of a roster version (default: the newest), and per sector (``missing`` stands for
         none): ``sector``, ``departures``, ``firms``, sorted by sector."""
+        self.ensure_detail_cells(roster_id, version)
         c = roster_firm_cells.c
         sector = func.coalesce(c.sector, missing)
         which = (c.roster_id == roster_id, c.version == version_of(roster_id, version))
@@ -223,6 +303,7 @@ class CellQueries(Gateway):
         """Departures per (year, reason, inside) of one roster version (default: the newest): ``inside`` is 1
         where the departure's (firm, year) is one of the universe's firm-years, else 0. Counted in SQL from the
         firm cells (a few hundred rows back)."""
+        self.ensure_detail_cells(roster_id, version)
         c, u = roster_firm_cells.c, universe_firm_years.c
         inside = exists().where(u.universe_id == universe_id, u.firm_id == c.firm_id, u.year == c.year)
         flag = case((inside, 1), else_=0).label("inside")
@@ -239,6 +320,7 @@ class CellQueries(Gateway):
         ``inside``: whether it is one of the universe's firm-years. Flagged in SQL from the firm cells (one row
         per roster firm-year; the universe's firm-years are not read), so the categorised firm cells (rules and
         case overrides applied) can be split into inside and outside the universe."""
+        self.ensure_detail_cells(roster_id, version)
         c, u = roster_firm_cells.c, universe_firm_years.c
         # a left join, not EXISTS per firm-year: about 1.6x faster on SQLite (benchmarks/bench_rates_rules.py)
         joined = roster_firm_cells.outerjoin(
@@ -265,6 +347,7 @@ class CellQueries(Gateway):
                                window: tuple[int, int] | None = None, version: int | None = None) -> pd.DataFrame:
         """Distinct (``firm_id``, ``reason``) of the roster's departures whose firm has no firm-year in the universe
         (both read inside ``window`` when given), sorted: the firms a universe misses, before categories."""
+        self.ensure_detail_cells(roster_id, version)
         c, u = roster_firm_cells.c, universe_firm_years.c
         held = [u.universe_id == universe_id, u.firm_id == c.firm_id]
         where = [c.roster_id == roster_id, c.version == version_of(roster_id, version)]
@@ -290,7 +373,7 @@ class CellQueries(Gateway):
             if conn.execute(select(d.id).where(d.roster_id == roster_id, d.version == number)
                             .limit(1)).first() is None:
                 return False
-            for table in (roster_detail_cells, roster_firm_cells, roster_spellings):
-                conn.execute(table.delete().where(table.c.roster_id == roster_id, table.c.version == number))
-            fill_cells(conn, roster_id, int(number))
+            conn.execute(roster_spellings.delete().where(roster_spellings.c.roster_id == roster_id,
+                                                         roster_spellings.c.version == number))
+            fill_cells(conn, roster_id, int(number), detail=False)  # the detailed cells: ensure_detail_cells
         return True

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any, cast
@@ -44,11 +44,10 @@ BATCH_ROWS = 50_000
 
 def bulk_insert(
     conn: Connection, table: Table, frame: pd.DataFrame, same: dict[str, Any] | None = None,
-    columns: list[str] | None = None, computed: dict[str, Callable[[int, int], Sequence[Any]]] | None = None,
+    columns: list[str] | None = None,
 ) -> None:
     """Insert ``frame``'s rows (its ``columns``, default all, plus the columns ``same``, one value for every
-    row) inside the caller's transaction, ``BATCH_ROWS`` at a time, missing values as NULL. A column named in
-    ``computed`` is not read from ``frame``: its function gives the values of rows ``start:stop`` per batch.
+    row) inside the caller's transaction, ``BATCH_ROWS`` at a time, missing values as NULL.
 
     SQLAlchemy's per-row parameter processing costs ~3x the insert itself on 100,000 rows, so for positional
     DBAPI parameter styles the rows go to ``executemany`` as plain tuples; batches keep the tuples of a
@@ -63,11 +62,6 @@ def bulk_insert(
         part = frame.iloc[start:start + BATCH_ROWS]
         cells: dict[str, Any] = dict(same)
         for name in picked:
-            if computed and name in computed:
-                made = np.empty(len(part), dtype=object)
-                made[:] = computed[name](start, start + len(part))
-                cells[name] = made
-                continue
             column = part[name]
             if column.dtype == object:  # text: NaN (a group-by's missing key) becomes NULL too
                 values = column.to_numpy()

@@ -4,7 +4,7 @@
 from __future__ import annotations
 
 import json
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import pandas as pd
@@ -22,6 +22,7 @@ from sqlalchemy.exc import IntegrityError
 from app.store.audit import current_actor, record_event
 from app.store.cells import fill_cells_from_records, version_of
 from app.store.engine import Gateway, bulk_insert
+from app.store.raw_rows import RawCells, read_raw, store_raw
 from app.store.records import (
     MAX_ID,
     RejectedRow,
@@ -32,6 +33,7 @@ from app.store.records import (
 )
 from app.store.tables import (
     DEPARTURE_FIELDS,
+    STORED_FIELDS,
     departures,
     rejected_rows,
     roster_settings,
@@ -56,21 +58,21 @@ class RosterQueries(Gateway):
         records: pd.DataFrame,
         rejected: Sequence[RejectedRow],
         into: int | None = None,
-        raw: Callable[[int, int], Sequence[str]] | None = None,
+        raw: RawCells | None = None,
     ) -> Roster:
         """Store one roster (or, with ``into``, the next version of that roster) with all its accepted and
         rejected rows in a single transaction.
 
         ``records`` has the columns of ``DEPARTURE_FIELDS``. Either everything lands or nothing does. A new
         version leaves the earlier ones stored (their departures, rejected rows and cells) and becomes the
-        roster's newest; ``name`` is ignored then. ``raw``: gives the ``raw`` column for records ``start:stop``
-        when ``records`` has none (built a batch at a time, not held for every row at once).
+        roster's newest; ``name`` is ignored then. ``raw``: the records' cells as the file had them, when
+        ``records`` has no ``raw`` column (stored per batch in ``departure_raw``, never as one JSON text per row).
         """
         if "reason_raw" not in records.columns and "reason" in records.columns:
             records = records.assign(reason_raw=records["reason"])
         # optional fields (issue 16): records from a file without announcement dates may leave them out
         records = records.assign(**{c: None for c in ("announced", "notice_days") if c not in records.columns})
-        missing = [c for c in DEPARTURE_FIELDS if c not in records.columns and not (c == "raw" and raw)]
+        missing = [c for c in DEPARTURE_FIELDS if c not in records.columns and not (c == "raw" and raw is not None)]
         if missing:
             raise StoreError(f"records lack columns {missing}")
         figures = {"source_name": source_name, "sha256": sha256, "imported_at": now_iso(),
@@ -119,7 +121,9 @@ class RosterQueries(Gateway):
                                                         author=current_actor(), **figures))
             if len(records):
                 bulk_insert(conn, departures, records, {"roster_id": roster_id, "version": version},
-                            columns=list(DEPARTURE_FIELDS), computed={"raw": raw} if raw else None)
+                            columns=list(STORED_FIELDS))
+                store_raw(conn, roster_id, version, records["line"].to_numpy(),
+                          raw if raw is not None else list(records["raw"]))
                 fill_cells_from_records(conn, roster_id, version, records)
             if rejected:
                 conn.execute(
@@ -209,15 +213,21 @@ class RosterQueries(Gateway):
 
     def departures(self, roster_id: int, *, with_raw: bool = False, version: int | None = None) -> pd.DataFrame:
         """All accepted departures of a roster version (default: the newest), one row each, in source-line
-        order."""
-        cols = [departures.c[f] for f in DEPARTURE_FIELDS if with_raw or f != "raw"]
+        order; ``with_raw`` adds ``raw``, each row as the file had it (JSON)."""
+        cols = [departures.c[f] for f in STORED_FIELDS]
         with self.engine.connect() as conn:
+            number = conn.execute(select(version_of(roster_id, version))).scalar()
             result = conn.execute(
                 select(departures.c.id, *cols).where(departures.c.roster_id == roster_id,
-                                                     departures.c.version == version_of(roster_id, version))
+                                                     departures.c.version == number)
                 .order_by(departures.c.line)
             )
             frame = pd.DataFrame(result.fetchall(), columns=list(result.keys()))
+            if with_raw:
+                # a batch at a time, in stored order (app/store/raw_rows.py); matched to records by source line
+                by_line = {line: raw for lines, rows in read_raw(conn, roster_id, int(number or 0))
+                           for line, raw in zip(lines, rows, strict=True)}
+                frame["raw"] = [by_line.get(int(line)) for line in frame["line"]]
         frame["year"] = frame["year"].astype("int64")
         for c in ("age", "tenure"):
             frame[c] = pd.to_numeric(frame[c], errors="coerce").astype("float64")

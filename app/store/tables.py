@@ -25,7 +25,7 @@ from sqlalchemy import (
 metadata = MetaData()
 
 #: the newest revision in app/store/migrations/versions (tests/test_store_migrations.py checks they agree)
-HEAD_REVISION = "0015"
+HEAD_REVISION = "0016"
 
 #: Alembic's own bookkeeping table, declared so that a fresh database is created and stamped in one go
 alembic_version = Table("alembic_version", metadata, Column("version_num", String(32), primary_key=True))
@@ -73,10 +73,15 @@ DEPARTURE_FIELDS = (
     "age", "tenure", "interim", "notes", "announced", "notice_days", "raw",
 )
 
+#: the stored columns of ``departures`` (``raw``, the row as the file had it, lives in ``departure_raw``)
+STORED_FIELDS = tuple(f for f in DEPARTURE_FIELDS if f != "raw")
+
 departures = Table(
     "departures", metadata,
     Column("id", Integer, primary_key=True),
-    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False, index=True),
+    # no index of its own on roster_id: ix_departures_roster_version starts with it (one index less to keep
+    # up on a 1,000,000-row import, revision 0016)
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False),
     Column("line", Integer, nullable=False),
     Column("firm_id", String, nullable=False),
     Column("firm_name", String),
@@ -90,13 +95,27 @@ departures = Table(
     Column("tenure", Float),
     Column("interim", Boolean),
     Column("notes", Text),
-    Column("raw", Text, nullable=False),  # the original row as JSON, for provenance
     Column("announced", String),  # ISO date (or year-month) the departure was announced, or NULL (issue 16)
     # exit date minus announcement date in whole days; NULL unless both are whole days and the announcement
     # is not after the exit (app/intake/announced.py)
     Column("notice_days", Integer),
     Column("version", Integer, nullable=False, server_default="1"),  # the roster version this row belongs to
     Index("ix_departures_roster_version", "roster_id", "version"),
+)
+
+# The original rows of a roster version as JSON (provenance), one row per insert batch of up to 50,000
+# departures: zlib-compressed JSON holding the batch's source lines and either the file's header and the rows'
+# cells column by column (an import) or each row's JSON text (rows moved here by revision 0016). A TEXT column
+# per departure cost ~2.5 s of a 1,000,000-row import and ~250 MB of the file (app/store/raw_rows.py).
+departure_raw = Table(
+    "departure_raw", metadata,
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), nullable=False),
+    Column("version", Integer, nullable=False),
+    Column("seq", Integer, nullable=False),  # 0, 1, ... in source-line order
+    Column("first_line", Integer, nullable=False),
+    Column("rows", Integer, nullable=False),
+    Column("data", LargeBinary, nullable=False),
+    UniqueConstraint("roster_id", "version", "seq"),
 )
 
 rejected_rows = Table(
@@ -337,6 +356,16 @@ roster_firm_cells = Table(
     *CELL_DETAIL_COLUMNS(),
     Column("departures", Integer, nullable=False),
     Column("version", Integer, nullable=False, server_default="1"),
+)
+
+# Which roster versions have their detailed and firm cells (the two tables above with ~one row per departure on
+# a large roster): built on first read, in a transaction of their own, not by the import (revision 0016,
+# app/store/cells.py ``ensure_detail_cells``). The primary key makes two processes building at once harmless.
+roster_cell_builds = Table(
+    "roster_cell_builds", metadata,
+    Column("roster_id", Integer, ForeignKey("rosters.id", ondelete="CASCADE"), primary_key=True),
+    Column("version", Integer, primary_key=True),
+    Column("built_at", String, nullable=False),
 )
 
 # -- team mode: accounts, their API tokens, the audit trail, and secrets shared by every server process ------
