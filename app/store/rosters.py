@@ -91,7 +91,7 @@ class RosterQueries(Gateway):
 
     def _save_import(self, name: str, figures: dict[str, Any], records: pd.DataFrame,
                      rejected: Sequence[RejectedRow], into: int | None,
-                     raw: Callable[[int, int], Sequence[str]] | None, taken: StoreError) -> Roster:
+                     raw: RawCells | None, taken: StoreError) -> Roster:
         with self._tx() as conn:
             if into is None:
                 if conn.execute(select(rosters.c.id).where(rosters.c.name == name)).first():
