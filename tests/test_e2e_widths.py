@@ -26,6 +26,17 @@ CLIPPED = """() => [...document.querySelectorAll('main *')].filter(e => {
 }).map(e => e.tagName + '.' + e.className + ' ' + e.scrollWidth + ' > ' + e.clientWidth)"""
 
 
+#: chart text (annotations: row labels, values, notes, source line; axis tick labels) outside its chart's box: at
+#: 390 px the forest charts' label and value columns and every chart's source line ran off both edges
+OUTSIDE = """() => [...document.querySelectorAll('.chart')].flatMap(chart => {
+  const box = chart.getBoundingClientRect();
+  return [...chart.querySelectorAll('g.annotation-text-g text, g.ytick text, g.xtick text')].filter(t => {
+    const r = t.getBoundingClientRect();
+    return r.width > 0 && (r.left < box.left - 2 || r.right > box.right + 2);
+  }).map(t => chart.id + ': ' + t.textContent.slice(0, 40));
+})"""
+
+
 @pytest.mark.slow
 def test_every_page_fits_phone_and_desktop_widths(demo_db: Path, live_server: Any) -> None:
     sync_playwright = _need_browser()
@@ -43,6 +54,7 @@ def test_every_page_fits_phone_and_desktop_widths(demo_db: Path, live_server: An
                         chart_id = chart.get_attribute("id")
                         page.wait_for_selector(f"#{chart_id}[data-state='drawn']", timeout=60_000)
                     assert page.evaluate("document.documentElement.scrollWidth") <= width, (path, width)
+                    assert page.evaluate(OUTSIDE) == [], (path, width)
                     if width == 1440:  # at a desktop's width no box scrolls sideways: a column would be cut off
                         assert page.evaluate(CLIPPED) == [], (path, width)
                     # the navigation is one row, not a column as tall as the screen

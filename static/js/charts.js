@@ -54,6 +54,59 @@
         return Object.assign({}, a, { font: Object.assign({}, a.font || {}, { size: 9 }) });
       });
     }
+    if (layout.yaxis && layout.yaxis.tickmode === 'array' && layout.xaxis && layout.xaxis.type === 'log') {
+      forestRows(layout);
+    }
+    rewrapFooter(layout);
+  }
+  // The source line and notes under the plot were wrapped for the desktop width: on a phone they are wrapped
+  // again for it, and the bottom margin grows by the lines that adds (source at the very bottom, notes on it).
+  function rewrapFooter(layout) {
+    var anns = layout.annotations || [];
+    var source = anns.filter(function (a) { return a.name === 'source'; })[0];
+    if (!source || !layout.margin) { return; }
+    var notes = anns.filter(function (a) { return a.name === 'notes'; })[0];
+    var lines = function (t) { return t ? String(t).split('<br>').length : 0; };
+    var before = lines(source.text) + lines(notes && notes.text);
+    var sourcePx = (layout.meta && layout.meta.source_px) || 0;
+    var oldLine = sourcePx && lines(source.text) ? sourcePx / lines(source.text) : 13;
+    var lineH = 12;  // a 9 px note line
+    source.text = wrap(String(source.text).split('<br>').join(' '), 62);
+    if (notes) { notes.text = wrap(String(notes.text).split('<br>').join(' '), 62); }
+    var bottom = Math.round(layout.margin.b - before * oldLine + (lines(source.text) + lines(notes && notes.text)) * lineH);
+    bottom = Math.max(bottom, 40);
+    if (layout.height && bottom > layout.margin.b) { layout.height += bottom - layout.margin.b; }  // the plot keeps its room
+    layout.margin.b = bottom;
+    source.yshift = -(layout.margin.b - 6);
+    if (notes) { notes.yshift = -(layout.margin.b - 6 - lines(source.text) * lineH); }
+  }
+  // A forest chart (one labelled row per odds ratio, the values in a column right of the plot) has no room
+  // for a label column and a value column beside the plot on a phone: each row's label goes above its
+  // interval and its value under it, both inside the plot, and the log-scale ticks thin out.
+  function forestRows(layout) {
+    var ya = layout.yaxis, xa = layout.xaxis, oldLeft = (layout.margin && layout.margin.l) || 0, left = 12;
+    var rows = [];
+    (ya.tickvals || []).forEach(function (pos, i) {
+      rows.push({ x: 0, xref: 'paper', xanchor: 'left', y: pos, yref: 'y', yanchor: 'bottom', yshift: 9,
+        text: ya.ticktext[i], showarrow: false, align: 'left', font: { size: 11 } });
+    });
+    layout.annotations = (layout.annotations || []).map(function (a) {
+      if (a.xref === 'paper' && a.x === 1 && a.xanchor === 'left') {  // the value column and its heading
+        return Object.assign({}, a, { xanchor: 'right', xshift: 0, yanchor: a.yref === 'y' ? 'top' : 'bottom',
+          yshift: a.yref === 'y' ? -9 : 0 });
+      }
+      if (a.name === 'source' || a.name === 'notes') {  // in line with the title again, from the new margin
+        return Object.assign({}, a, { xshift: (a.xshift || 0) + (oldLeft - left) });
+      }
+      return a;
+    }).concat(rows);
+    layout.yaxis = Object.assign({}, ya, { showticklabels: false });
+    if (xa.tickvals && xa.tickvals.length > 3) {
+      layout.xaxis = Object.assign({}, xa, { tickvals: xa.tickvals.filter(function (_, i) { return i % 2 === 0; }) });
+    }
+    layout.margin = Object.assign({}, layout.margin, { l: left, r: 12 });
+    var n = (ya.tickvals || []).length;
+    layout.height = Math.max(layout.height || 0, layout.margin.t + layout.margin.b + 56 * n + 40);
   }
   // A bar of a chart with data-records-url opens the departures behind it: its year, and its category when
   // the trace is one (trace names start with the category: "Forced", "Excluded (not counted)", ...).
