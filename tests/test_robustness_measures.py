@@ -277,6 +277,8 @@ def test_page_json_cli_and_finding_show_the_measures(store: Store, built: dict[s
     assert body["variants"][0]["rate"]["rate_ratio"] == pytest.approx(ref.rate.rate_ratio, rel=1e-12)
     assert body["variants"][0]["adjusted"]["odds_ratio"] == pytest.approx(ref.adjusted.odds_ratio, rel=1e-12)
     assert client.get(f"/api/rosters/{roster}/robustness?measures=1&adjusting=1&adjust=colour").status_code == 400
+    # a value the schema refuses is refused without adjusting=1 too (live-server fuzzing found it accepted)
+    assert client.get(f"/api/rosters/{roster}/robustness?adjust=colour").status_code == 400
     # without measures=1 the page reads no firm counts and says how to ask for them
     plain = client.get(f"/api/rosters/{roster}/robustness?vary=Resigned").json()["result"]
     assert plain["rate_sentence"] == "" and plain["variants"][0]["rate"] is None

@@ -123,6 +123,8 @@ def test_trend_shows_the_mix_and_fits_the_adjusted_trend_only_when_asked(client:
     assert run.params == {"model": "adjusted", "adjust": ["age", "tenure"]}
     assert run.result is not None and run.result["odds_ratio"] == a["odds_ratio"]
     assert client.get(f"/api/rosters/{ROSTER}/trend?adjusted=1&adjust=income").status_code == 400
+    # a value the schema refuses is refused without adjusted=1 too, as the schema says
+    assert client.get(f"/api/rosters/{ROSTER}/trend?adjust=income").status_code == 400
 
 
 def test_provenance_names_the_rules_and_the_adjustment_set(client: Any, demo_store: Store) -> None:

@@ -186,12 +186,12 @@ def _robustness_args(request: Request) -> dict[str, Any]:
     adjusting = request.query_params.get("adjusting", "0")
     if adjusting not in ("0", "1"):
         raise BadRequest(f"adjusting must be 0 or 1; got {adjusting!r}.")
-    adjust = None
-    if adjusting == "1":
-        try:
-            adjust = parse_adjust(request.query_params.getlist("adjust"))
-        except AdjustedError as exc:
-            raise BadRequest(str(exc)) from None
+    given = request.query_params.getlist("adjust")
+    try:  # checked whenever given (a value the schema refuses is a 400 even without adjusting=1)
+        parsed = parse_adjust(given) if given or adjusting == "1" else None
+    except AdjustedError as exc:
+        raise BadRequest(str(exc)) from None
+    adjust = parsed if adjusting == "1" else None
     return {"extra": [m for m in request.query_params.getlist("mapping") if m],
             "vary": [c for c in request.query_params.getlist("vary") if c], "preset": preset == "1",
             "adjust": adjust, "measures": measures == "1"}

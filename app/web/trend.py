@@ -199,11 +199,13 @@ def _request_args(request: Request) -> dict[str, Any]:
     adjusted = request.query_params.get("adjusted", "0")
     if adjusted not in ("0", "1"):
         raise BadRequest(f"adjusted must be 0 or 1; got {adjusted!r}.")
-    if adjusted == "1":
+    given = request.query_params.getlist("adjust")
+    if adjusted == "1" or given:  # checked whenever given, as the schema says, used only with adjusted=1
         try:
-            adjust = parse_adjust(request.query_params.getlist("adjust"))
+            parsed = parse_adjust(given)
         except AdjustedError as exc:
             raise BadRequest(str(exc)) from None
+        adjust = parsed if adjusted == "1" else None
     return {"model": request.query_params.get("model", "linear"),
             "spline_df": int(df) if df.isdigit() else -1, "window": _years(request), "quasi": quasi == "1",
             "periods": _period_args(request), "adjust": adjust}
