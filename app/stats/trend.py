@@ -27,7 +27,7 @@ from app.stats.design import design_matrix, window_centre
 from app.stats.profile import GroupedFit, ProfileResult, fit_grouped_binomial, profile_interval
 from app.stats.proportions import share_intervals
 from app.stats.spline import SPLINE_DFS, natural_spline_basis
-from app.stats.trend_line import LineTrend, fit_line
+from app.stats.trend_line import LineTrend, fit_line, quasi_message
 from app.types import check_choice
 
 TrendKind = Literal["linear", "sector", "spline"]
@@ -364,14 +364,7 @@ def _quasi(prof: ProfileResult, b: float, se: float, dispersion: float, alpha: f
     se_q = se * math.sqrt(dispersion)
     wald = (b - z * se_q, b + z * se_q)
     bounds = (prof.low, prof.high)
-    how = ("Wald intervals scaled by sqrt(dispersion) and profile intervals with the deviance difference "
-           "divided by the dispersion.")
-    if asked:
-        message = (f"Quasi-binomial intervals are given as asked (Pearson dispersion {dispersion:.2f}, below "
-                   f"the {QUASI_DISPERSION} at which they are given anyway): {how}")
-    else:
-        message = (f"The counts vary more than a binomial model allows (Pearson dispersion "
-                   f"{dispersion:.2f}), so quasi-binomial intervals are also given: {how}")
+    message = quasi_message(dispersion, asked)
     return QuasiTrend(dispersion=dispersion, se=se_q,
                       conf_int={"wald": _or_interval(wald), "profile": _or_interval(bounds)},
                       decade_conf_int={"wald": _or_interval(wald, 10.0),

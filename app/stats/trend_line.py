@@ -105,18 +105,22 @@ def _exp_pair(bounds: tuple[float, float], per: float = 1.0) -> tuple[float, flo
     return (math.exp(per * bounds[0]), math.exp(per * bounds[1]))
 
 
+def quasi_message(dispersion: float, asked: bool) -> str:
+    """Why quasi-binomial intervals are given and how they are made (one wording for every trend model)."""
+    how = ("Wald intervals scaled by sqrt(dispersion) and profile intervals with the deviance difference "
+           "divided by the dispersion.")
+    if asked:
+        return (f"Quasi-binomial intervals are given as asked (Pearson dispersion {dispersion:.2f}, below "
+                f"the {QUASI_DISPERSION} at which they are given anyway): {how}")
+    return (f"The counts vary more than a binomial model allows (Pearson dispersion "
+            f"{dispersion:.2f}), so quasi-binomial intervals are also given: {how}")
+
+
 def _quasi(ends: Ends, b: float, se: float, dispersion: float, z: float, asked: bool) -> dict[str, Any]:
     """``app.stats.trend._quasi``: Wald scaled by sqrt(dispersion), profile with the deviance divided by it."""
     se_q = se * math.sqrt(dispersion)
     wald = (b - z * se_q, b + z * se_q)
-    how = ("Wald intervals scaled by sqrt(dispersion) and profile intervals with the deviance difference "
-           "divided by the dispersion.")
-    if asked:
-        message = (f"Quasi-binomial intervals are given as asked (Pearson dispersion {dispersion:.2f}, below "
-                   f"the {QUASI_DISPERSION} at which they are given anyway): {how}")
-    else:
-        message = (f"The counts vary more than a binomial model allows (Pearson dispersion "
-                   f"{dispersion:.2f}), so quasi-binomial intervals are also given: {how}")
+    message = quasi_message(dispersion, asked)
     return {"dispersion": dispersion, "se": se_q,
             "conf_int": {"wald": _exp_pair(wald), "profile": _exp_pair(ends[:2])},
             "decade_conf_int": {"wald": _exp_pair(wald, 10.0), "profile": _exp_pair(ends[:2], 10.0)},
