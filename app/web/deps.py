@@ -8,6 +8,7 @@ from typing import TYPE_CHECKING
 from fastapi import Request
 
 from app.config import Settings
+from app.stats.adjusted import AdjustedError, parse_adjust
 from app.store import Store
 from app.web.uploads import UploadStash
 
@@ -49,3 +50,25 @@ def app_uploads(request: Request) -> UploadStash:
 def app_jobs(request: Request) -> JobRunner:
     jobs: JobRunner = request.app.state.jobs
     return jobs
+
+
+def flag_arg(request: Request, name: str) -> bool:
+    """A 0/1 query switch (absent: 0); anything else is a 400 naming it."""
+    value = request.query_params.get(name, "0")
+    if value not in ("0", "1"):
+        raise BadRequest(f"{name} must be 0 or 1; got {value!r}.")
+    return value == "1"
+
+
+def adjust_arg(request: Request, switch: str) -> tuple[str, ...] | None:
+    """The ``adjust`` values as an adjustment set when the ``switch`` flag is 1, else None. The values are checked
+    whenever given, as the schema says: one outside it is a 400 even with the switch off."""
+    on = flag_arg(request, switch)
+    given = request.query_params.getlist("adjust")
+    if not (on or given):
+        return None
+    try:
+        parsed = parse_adjust(given)
+    except AdjustedError as exc:
+        raise BadRequest(str(exc)) from None
+    return parsed if on else None

@@ -15,11 +15,10 @@ from app.analysis.robustness_measures import default_adjust
 from app.analysis.rules import PRESET_NAME, PRESET_SOURCE
 from app.analysis.runs import run_sectors
 from app.briefing.findings import robustness_finding_from, sectors_finding_from
-from app.stats.adjusted import AdjustedError, parse_adjust
 from app.stats.sectors import SectorTrends
 from app.store import Roster, Store, StoreError
 from app.web.departures import mapping_ref
-from app.web.deps import BadRequest, NotFound, app_store
+from app.web.deps import BadRequest, NotFound, adjust_arg, app_store, flag_arg
 from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.rendering import as_json, render
 from app.web.route_docs import api_errors, page_errors, query
@@ -177,24 +176,12 @@ def sectors_api(request: Request, roster_id: int) -> JSONResponse:
 
 
 def _robustness_args(request: Request) -> dict[str, Any]:
-    preset = request.query_params.get("preset", "0")
-    if preset not in ("0", "1"):
-        raise BadRequest(f"preset must be 0 or 1; got {preset!r}.")
-    measures = request.query_params.get("measures", "0")
-    if measures not in ("0", "1"):
-        raise BadRequest(f"measures must be 0 or 1; got {measures!r}.")
-    adjusting = request.query_params.get("adjusting", "0")
-    if adjusting not in ("0", "1"):
-        raise BadRequest(f"adjusting must be 0 or 1; got {adjusting!r}.")
-    given = request.query_params.getlist("adjust")
-    try:  # checked whenever given (a value the schema refuses is a 400 even without adjusting=1)
-        parsed = parse_adjust(given) if given or adjusting == "1" else None
-    except AdjustedError as exc:
-        raise BadRequest(str(exc)) from None
-    adjust = parsed if adjusting == "1" else None
+    preset = flag_arg(request, "preset")
+    measures = flag_arg(request, "measures")
+    adjust = adjust_arg(request, "adjusting")
     return {"extra": [m for m in request.query_params.getlist("mapping") if m],
-            "vary": [c for c in request.query_params.getlist("vary") if c], "preset": preset == "1",
-            "adjust": adjust, "measures": measures == "1"}
+            "vary": [c for c in request.query_params.getlist("vary") if c], "preset": preset,
+            "adjust": adjust, "measures": measures}
 
 
 @router.get("/rosters/{roster_id}/robustness", response_class=HTMLResponse, name="robustness_page",

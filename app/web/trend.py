@@ -14,14 +14,14 @@ from app.analysis.rates import RatesSection, rates_section
 from app.analysis.runs import period_comparison, refresh_comparison, run_trend
 from app.briefing.findings import rates_finding, trend_finding_from_fit
 from app.briefing.mix_chart import mix_figures
-from app.stats.adjusted import AdjustedError, parse_adjust
+from app.stats.adjusted import AdjustedError
 from app.stats.headline import headline_fields, headline_sentence
 from app.stats.periods import PeriodError, Span, parse_periods
 from app.stats.trend import SPLINE_DFS, TREND_KINDS, TrendError, TrendFit
 from app.stats.trend_report import fit_to_dict
 from app.store import Roster, Run, Store, StoreError
 from app.web.departures import mapping_ref
-from app.web.deps import BadRequest, NotFound, app_store
+from app.web.deps import BadRequest, NotFound, adjust_arg, app_store, flag_arg
 from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.rendering import as_json, context_line, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, json_or_validation_error, page_errors, query
@@ -192,22 +192,10 @@ def _period_args(request: Request) -> tuple[Span, Span] | None:
 
 def _request_args(request: Request) -> dict[str, Any]:
     df = request.query_params.get("spline_df", "3")
-    quasi = request.query_params.get("quasi", "0")
-    if quasi not in ("0", "1"):
-        raise BadRequest(f"quasi must be 0 or 1; got {quasi!r}.")
-    adjust = None
-    adjusted = request.query_params.get("adjusted", "0")
-    if adjusted not in ("0", "1"):
-        raise BadRequest(f"adjusted must be 0 or 1; got {adjusted!r}.")
-    given = request.query_params.getlist("adjust")
-    if adjusted == "1" or given:  # checked whenever given, as the schema says, used only with adjusted=1
-        try:
-            parsed = parse_adjust(given)
-        except AdjustedError as exc:
-            raise BadRequest(str(exc)) from None
-        adjust = parsed if adjusted == "1" else None
+    quasi = flag_arg(request, "quasi")
+    adjust = adjust_arg(request, "adjusted")
     return {"model": request.query_params.get("model", "linear"),
-            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request), "quasi": quasi == "1",
+            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request), "quasi": quasi,
             "periods": _period_args(request), "adjust": adjust}
 
 
