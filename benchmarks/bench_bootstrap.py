@@ -265,7 +265,7 @@ def main() -> None:
         timed(draw, small, "firm", 500)
     tasks = [("straight trend, departures", small, "departure", 0.1, {}),
              ("straight trend, firms", small, "firm", 1.0, {}),
-             ("  the same by sampler 2", small, "firm", 1.0, {"sampler": 2}),
+             ("  the same by sampler 3", small, "firm", 1.0, {"sampler": 3}),
              ("sector-adjusted, firms", sector, "firm", 5.0, {})]
     print(f"\n{'task (' + format(B, ',') + ' resamples)':<30} {'wall s':>7} {'CPU s':>7} {'target':>7}    "
           f"{'prev wall':>9} {'prev CPU':>8} {'wall ratio':>10} {'CPU ratio':>9}")
@@ -277,17 +277,17 @@ def main() -> None:
               f"{p_wall / wall:>9.2f}x {p_cpu / cpu:>8.2f}x")
     print(f"load average after the table {load()}")
 
-    print(f"\nfirm resamples ({B:,}, straight trend) as the roster grows: the current engine with sampler 3 "
-          f"(new runs), samplers 2 and 1 (runs started before it), and the previous engine, interleaved; "
+    print(f"\nfirm resamples ({B:,}, straight trend) as the roster grows: the current engine with sampler 4 "
+          f"(new runs), samplers 3 and 1 (runs started before it), and the previous engine, interleaved; "
           f"least CPU of {max(1, args.best - 1)}; CPU per firm relative to the first size:")
     print(f"{'firms':>8} {'departures':>11}  " + "  ".join(f"{n + ' wall/CPU s':>22} {'/firm':>6}" for n in
-                                                           ("sampler 3", "sampler 2", "sampler 1", "previous")))
+                                                           ("sampler 4", "sampler 3", "sampler 1", "previous")))
     first: dict[str, float] = {}
     for firms in (int(f) for f in args.scale.split(",")):
         cells = make_cells(firms)
         got = interleaved(max(1, args.best - 1), {
+            "sampler 4": functools.partial(timed, engines["current"], cells, "firm", B, sampler=4),
             "sampler 3": functools.partial(timed, engines["current"], cells, "firm", B, sampler=3),
-            "sampler 2": functools.partial(timed, engines["current"], cells, "firm", B, sampler=2),
             "sampler 1": functools.partial(timed, engines["current"], cells, "firm", B, sampler=1),
             "previous": functools.partial(timed, engines["previous"], cells, "firm", B)})
         row = []

@@ -129,7 +129,7 @@ def test_fit_adjusted_with_the_firm_bootstrap_records_it(capsys: pytest.CaptureF
         assert boot.kind == "bootstrap" and boot.params["statistic"] == "adjusted_odds_ratio"
         assert boot.params["adjust"] == ["age"] and boot.params["resamples"] == 500 and boot.params["seed"] == 3
         assert len(store.replicates(boot.id)) == 500
-        assert boot.params["sampler"] == 3  # new runs draw firms with sampler 3
+        assert boot.params["sampler"] == 4  # new runs draw firms with sampler 4
     finally:
         store.dispose()
     code, _, err = run(capsys, "fit", "--roster", "1", "--resamples", "500", "--db", db)

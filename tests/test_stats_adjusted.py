@@ -146,8 +146,8 @@ def test_firm_bootstrap_of_the_adjusted_model_refits_what_statsmodels_fits() -> 
     """Each firm resample is the model refitted to the resampled firms' departures: check resample 0 against
     statsmodels on the records of the drawn firms (with their multiplicity), and that the engine's cells add up."""
     from app.stats.adjusted import bootstrap_adjusted, bootstrap_cells
-    from app.stats.sampling import BLOCK_SIZE, SAMPLER, block_rng
-    from tests.test_stats_samplers import below_by_definition
+    from app.stats.sampling import BLOCK_SIZE, SAMPLER
+    from tests.test_stats_poisson_draws import multiplicities_by_definition
 
     records = invented_records(seed=5, n=1500, firms=90)
     adjust = ("age", "tenure")
@@ -158,11 +158,9 @@ def test_firm_bootstrap_of_the_adjusted_model_refits_what_statsmodels_fits() -> 
     result = bootstrap_adjusted(data, (2000, 2015), resamples=BLOCK_SIZE, seed=11, workers=1)
     assert result.coefficient == "year"
     assert result.estimate == pytest.approx(fit_adjusted(data, (2000, 2015)).coef, abs=1e-8)
-    # resample 0: new runs draw firms by sampler 3 (app/stats/draws.py), written out in its own test module
-    assert SAMPLER == 3
-    bits = np.random.SFC64(block_rng(11, 0).bit_generator.seed_seq)
-    draw = below_by_definition(bits, len(data.firm_ids), len(data.firm_ids))
-    multiplicity = np.bincount(draw, minlength=len(data.firm_ids))
+    # resample 0: new runs draw firms by sampler 4 (app/stats/poisson_draws.py), written out in its own test module
+    assert SAMPLER == 4
+    multiplicity = multiplicities_by_definition(11, 0, len(data.firm_ids))[0]
     kept = records.dropna(subset=list(adjust))
     weights = kept["firm_id"].map(dict(zip(data.firm_ids, multiplicity, strict=True))).to_numpy(dtype=float)
     rows = kept.loc[weights > 0]

@@ -218,8 +218,8 @@ def test_multiplicities_over_ranges_are_multinomial_with_equal_shares(monkeypatc
 
 def test_a_bad_sampler_is_named() -> None:
     cells, _ = small_cells()
-    for bad in (0, 4, True, "2", 2.0):
-        with pytest.raises(ValueError, match="sampler must be one of 1, 2, 3"):
+    for bad in (0, 5, True, "2", 2.0):
+        with pytest.raises(ValueError, match="sampler must be one of 1, 2, 3, 4"):
             CellSampler(cells, "firm", sampler=bad)  # type: ignore[arg-type]
 
 
@@ -229,7 +229,7 @@ def test_new_results_name_their_sampler_and_an_extension_keeps_it(monkeypatch: p
     cells, design = small_cells()
     assert cells.firm_matrix.shape[0] > 2 * 40
     new = bootstrap_trend(cells, design, unit="firm", resamples=300, seed=5)
-    assert new.sampler == SAMPLER == 3 and bootstrap_to_dict(new)["sampler"] == 3
+    assert new.sampler == SAMPLER == 4 and bootstrap_to_dict(new)["sampler"] == 4
     old = bootstrap_trend(cells, design, unit="firm", resamples=300, seed=5, sampler=1)
     assert not np.array_equal(old.replicates, new.replicates)
     extended = extend_bootstrap(old, cells, design, resamples=250)

@@ -29,12 +29,17 @@ Samplers (how a block's firm draws are taken from its generator; a run records w
   keeps the count vector and the multiplicity block of a pass the size they have at ``SPAN`` firms, so time
   grows with the number of firms (benchmarks/README.md). With at most ``SPAN`` firms (one range), with
   strata, and for the departure unit, sampler 2 draws exactly what sampler 1 draws.
-* ``3`` (new runs): the ranges and order of sampler 2, but the firm draws come from an SFC64 generator
+* ``3``: the ranges and order of sampler 2, but the firm draws come from an SFC64 generator
   seeded by the block's own ``SeedSequence(seed, spawn_key=(block,))``: the range totals by
   ``Generator(SFC64).multinomial`` (skipped with one range), then each uniform firm within a range of ``S`` firms
   from one 32-bit word ``w`` of ``SFC64.random_raw`` (the low half of each 64-bit output, then the high half) as
   ``w // (2**32 // S)``, redrawn while ``w >= S * (2**32 // S)`` (:func:`uniform_below`), so every firm is drawn
   with probability exactly ``1 / S``. Departures and strata draw as sampler 1.
+* ``4`` (new runs): the multiplicities of each resample as Poisson(1) counts per firm, settled to exactly
+  ``n_firms`` draws by adding or removing ~sqrt(n_firms) uniform balls, from an SFC64 generator on the
+  block's seed sequence, in groups of 25 resamples (:mod:`app.stats.poisson_draws` defines the stream).
+  Multinomial(n_firms, 1 / n_firms) as the others, without scattering n_firms draws per resample. Departures
+  and strata draw as sampler 1.
 """
 
 from __future__ import annotations
@@ -45,6 +50,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from app.stats.cells import Cells
+from app.stats.poisson_draws import GROUP, PoissonTable, draw_group
 from app.types import UNITS, Unit, check_choice
 
 if TYPE_CHECKING:
@@ -63,8 +69,8 @@ PASS_VALUES = 2**21
 MIN_PASS_ROWS = 4
 #: samplers a run can name, and the one new runs use (module docstring); changing SPAN changes sampler 2's
 #: numbers for rosters of more than SPAN firms
-SAMPLERS = (1, 2, 3)
-SAMPLER = 3
+SAMPLERS = (1, 2, 3, 4)
+SAMPLER = 4
 #: firms per range of samplers 2 and 3: a range's int64 counts and draws (256 KiB each) stay in a 1 MiB L2 cache,
 #: and a 25,000-firm roster is one range (its draws are sampler 1's)
 SPAN = 2**15
@@ -141,6 +147,8 @@ class CellSampler:
             starts = np.searchsorted(ordered, ordered, side="left")
             ends = np.searchsorted(ordered, ordered, side="right")
             self.slot_firms, self.slot_low, self.slot_size = order, starts, ends - starts
+        if sampler == 4 and unit == "firm" and strata is None:
+            self.poisson_table = PoissonTable.for_firms(self.n_firms)
         # sampler 2 over more than SPAN firms: the firm ranges, their share of the draws, their columns of firm_t
         self.ranges: list[tuple[int, int]] = []
         if (sampler == 2 and self.n_firms > SPAN or sampler == 3) and unit == "firm" and strata is None:
@@ -166,6 +174,8 @@ class CellSampler:
         """``rows`` resamples of the cell counts, shape (rows, n_cells), from ``rng``."""
         if self.unit == "departure":
             return rng.multinomial(self.total, self.pvals, size=rows).astype(np.float64)
+        if self.sampler == 4 and self.slot_size is None:
+            return self._draw_sampler_4(rng, rows)
         if self.sampler == 3 and self.ranges:
             return self._draw_sampler_3(rng, rows)
         if self.ranges:
@@ -228,6 +238,19 @@ class CellSampler:
                 mult = block if r == per_pass else np.empty((size, r), dtype=self.dtype)
                 np.copyto(mult, counted[:r, :size].T)
                 out[lo:lo + r] += (self.range_t[k] @ mult).T
+        return out
+
+
+    def _draw_sampler_4(self, rng: np.random.Generator, rows: int) -> np.ndarray:
+        """Sampler 4 (:mod:`app.stats.poisson_draws`): group by group of resamples, the multiplicities drawn
+        straight into the firm-major block of the product."""
+        seeds = rng.bit_generator.seed_seq  # the block's SeedSequence(seed, spawn_key=(block,)) (block_rng)
+        assert isinstance(seeds, np.random.SeedSequence) and self.firm_t is not None
+        bits = np.random.SFC64(seeds)
+        out = np.empty((rows, self.counts.size))
+        for lo in range(0, rows, GROUP):
+            block = draw_group(bits, self.poisson_table, min(GROUP, rows - lo))
+            out[lo:lo + block.shape[1]] = (self.firm_t @ block.astype(self.dtype, copy=False)).T
         return out
 
 
