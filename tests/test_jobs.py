@@ -205,11 +205,12 @@ def test_a_run_keeps_the_sampler_it_was_started_with(demo_store: Store, monkeypa
 
     inp, cells, design = engine_inputs(demo_store)
     monkeypatch.setattr(draws, "SPAN", max(2, cells.firm_matrix.shape[0] // 3))  # several ranges: samplers differ
-    by = {s: draw_replicates(cells, design, unit="firm", resamples=400, seed=31, sampler=s).estimates for s in (1, 2, 3)}
-    assert not np.array_equal(by[1], by[2]) and not np.array_equal(by[2], by[3])
+    by = {s: draw_replicates(cells, design, unit="firm", resamples=400, seed=31, sampler=s).estimates
+          for s in (1, 2, 3, 4)}
+    assert not np.array_equal(by[1], by[2]) and not np.array_equal(by[2], by[3]) and not np.array_equal(by[3], by[4])
     new = run_bootstrap_now(demo_store, inp, unit="firm", resamples=300, seed=31)
     assert demo_store.get_run(new["run"]).params["sampler"] == 4 == new["sampler"]
-    np.testing.assert_array_equal(demo_store.replicates(new["run"]), by[3][:300])
+    np.testing.assert_array_equal(demo_store.replicates(new["run"]), by[4][:300])
     params = bootstrap_params(unit="firm", resamples=300, seed=31)
     del params["sampler"]
     old = create_bootstrap_run(demo_store, inp, params)
