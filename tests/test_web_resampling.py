@@ -27,7 +27,7 @@ def test_start_runs_and_the_run_page_shows_intervals(client: Any, demo_store: St
     run_id = start(client, unit="firm", resamples="300", seed="2024")
     run = demo_store.get_run(run_id)
     assert run.status == "done" and run.params == {"unit": "firm", "resamples": 300, "seed": 2024,
-                                                    "model": "linear", "sampler": 3}
+                                                    "model": "linear", "sampler": 4}
     response = client.get(f"/runs/{run_id}")
     assert response.status_code == 200 and response.template.name == "run.html"
     page = response.context["page"]
@@ -140,7 +140,7 @@ def test_a_run_of_another_statistic_within_sectors_is_stored_and_shown(client: A
     run_id = start(client, unit="firm", resamples="250", seed="77", statistic="period_difference",
                    periods="1998-2010:2011-2022", stratify="sector")
     run = demo_store.get_run(run_id)
-    assert run.params == {"unit": "firm", "resamples": 250, "seed": 77, "model": "linear", "sampler": 3,
+    assert run.params == {"unit": "firm", "resamples": 250, "seed": 77, "model": "linear", "sampler": 4,
                           "statistic": "period_difference", "stratify": "sector",
                           "periods": [[1998, 2010], [2011, 2022]]}
     inp = load_input(demo_store, ROSTER)
