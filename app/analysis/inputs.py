@@ -10,8 +10,10 @@ from dataclasses import dataclass, field, replace
 from functools import cached_property
 from typing import Any, Literal
 
+import numpy as np
 import pandas as pd
 
+from app.analysis.browse import in_post_counts
 from app.analysis.cellstore import (
     categorise,
     categorised_counts,
@@ -25,7 +27,7 @@ from app.analysis.cellstore import (
 from app.analysis.overrides import ResolvedOverride, apply_overrides, not_applied, resolve_overrides
 from app.analysis.quick_fit import parse_mapping_ref, warning_notes
 from app.stats.cells import Cells
-from app.stats.coverage import WindowSuggestion, YearFlag, flag_years, suggest_window
+from app.stats.coverage import COUNT_COLUMNS, WindowSuggestion, YearFlag, flag_years, suggest_window
 from app.store import MappingVersion, Roster, Run, Store, StoreError
 
 WindowSource = Literal["given", "chosen", "suggested"]
@@ -50,6 +52,11 @@ class AnalysisInput:
     suggestion: WindowSuggestion
     flags: list[YearFlag]
     store: Store = field(repr=False, compare=False)
+    #: rows still in post (no departure date, a code saying the executive has not left): no departure of any
+    #: year, so ``coverage`` leaves them out and pages name them apart (``counts`` still holds them)
+    in_post: int = 0
+    #: of those, how many the mapping counts as forced or voluntary (the models then count them)
+    in_post_counted: int = 0
 
     @property
     def mapping_label(self) -> str:
@@ -118,6 +125,11 @@ class AnalysisInput:
         unmapped = self.unmapped_codes()
         notes = warning_notes(self.mapping is not None and self.counts_nothing(),
                               [(str(c), int(n)) for c, n in zip(unmapped["code"], unmapped["count"], strict=True)])
+        if self.in_post_counted:
+            notes.append(f"{self.in_post_counted:,} row(s) still in post (no departure date, a code saying the "
+                         f"executive has not left) are counted as forced or voluntary by mapping {self.mapping_label}; "
+                         "they are not departures, so the trend counts them but Coverage does not. Map their code "
+                         "to excluded.")
         if missing := not_applied(self.overrides):
             notes.append(f"{len(missing)} case override(s) of this mapping name departures that version "
                          f"{self.roster.version} of the roster does not hold, so they are not applied: "
@@ -174,7 +186,8 @@ def load_input(
     if counts.empty:
         raise StoreError(f"Roster {roster.name!r} has no accepted departures.")
     key = ("coverage", roster.id, roster_fingerprint(roster), mapping_key(version), threshold)
-    table, suggestion, flags = memoised(store, key, lambda: _coverage(counts, threshold))
+    table, suggestion, flags, (in_post, in_post_counted) = memoised(
+        store, key, lambda: _coverage(counts, in_post_counts(store, roster, version, resolved), threshold))
     source: WindowSource
     if window is not None:
         first, last = int(counts["year"].min()), int(counts["year"].max())
@@ -189,17 +202,36 @@ def load_input(
     else:
         window, source = suggestion.window, "suggested"
     return AnalysisInput(roster, version, counts.copy(), window, source, table.copy(), suggestion, list(flags),
-                         store)
+                         store, in_post, in_post_counted)
 
 
-def _coverage(counts: pd.DataFrame, threshold: float) -> tuple[pd.DataFrame, WindowSuggestion, list[YearFlag]]:
-    table = coverage_from_counts(counts)
+def _coverage(counts: pd.DataFrame, in_post: pd.DataFrame, threshold: float
+              ) -> tuple[pd.DataFrame, WindowSuggestion, list[YearFlag], tuple[int, int]]:
+    table = departures_only(coverage_from_counts(counts), in_post)
+    rows = (int(in_post["departures"].sum()),
+            int(in_post.loc[in_post["category"].isin(["forced", "voluntary"]), "departures"].sum()))
     try:
-        return table, suggest_window(table, threshold=threshold), flag_years(table, threshold=threshold)
+        return table, suggest_window(table, threshold=threshold), flag_years(table, threshold=threshold), rows
     except ValueError:
         # a valid mapping that excludes every code: nothing to suggest from; every page shows the whole
         # span and says why no trend can be fitted (NOTHING_COUNTED), instead of failing
-        return table, _whole_span(table, threshold), []
+        return table, _whole_span(table, threshold), [], rows
+
+
+def departures_only(table: pd.DataFrame, in_post: pd.DataFrame) -> pd.DataFrame:
+    """The coverage ``table`` without the still-in-post rows (``in_post``: per year and category): they are no
+    departure of the year they are filed under. Years at either end left with no record are dropped (unless
+    every year would be), so the span is the departures'."""
+    if in_post.empty:
+        return table
+    less = (in_post.pivot_table(index="year", columns="category", values="departures", aggfunc="sum")
+            .reindex(index=table["year"], columns=list(COUNT_COLUMNS)).fillna(0).to_numpy(dtype=np.int64))
+    out = table.copy()
+    for i, column in enumerate(COUNT_COLUMNS):
+        out[column] = out[column].to_numpy(dtype=np.int64) - less[:, i]
+    out["departures"] = out["departures"].to_numpy(dtype=np.int64) - less.sum(axis=1)
+    kept = out.index[out["departures"] > 0]
+    return out if kept.empty else out.loc[kept.min():kept.max()].reset_index(drop=True)
 
 
 def _whole_span(table: pd.DataFrame, threshold: float) -> WindowSuggestion:
