@@ -40,11 +40,11 @@ WORDS: dict[Category, tuple[str, ...]] = {
     "excluded": (
         "still in post", "incumbent", "serving", "unknown", "data error", "n a", "not applicable",
         "interim term", "interim ended", "duplicate", "death", "died", "deceased", "passed away", "illness",
-        "health", "medical", "merger", "merged", "acquisition", "acquir", "takeover", "taken over",
+        "health", "medical", "merger", "merged", "acquisition", "acquire", "acquiring", "takeover", "taken over",
     ),
 }
 AMBIGUITY_MARKERS: tuple[str, ...] = (
-    "pressure", "merger", "merged", "acquisition", "acquir", "takeover", "taken over", "restructur",
+    "pressure", "merger", "merged", "acquisition", "acquire", "acquiring", "takeover", "taken over", "restructur",
     "mutual agreement", "mutually", "agreed", "disagreement", "reorgani", "spin off", "role eliminated",
 )
 #: what the analyst should know about a suggestion from these words: the practice it follows (said on the page)
@@ -53,7 +53,7 @@ PRACTICE_NOTES: tuple[tuple[tuple[str, ...], str], ...] = (
      "a resignation counts as voluntary unless a source says it was forced"),
     (("death", "died", "deceased", "passed away", "illness", "health", "medical"),
      "a death or an illness is left out, as nobody decided it (some analysts count it as voluntary)"),
-    (("merger", "merged", "acquisition", "acquir", "takeover", "taken over"),
+    (("merger", "merged", "acquisition", "acquire", "acquiring", "takeover", "taken over"),
      "a departure at a merger or takeover is left out, as control changed hands (it can hide a forced exit)"),
 )
 
@@ -97,11 +97,15 @@ def suggest_category(code: str) -> Suggestion:
     category: Category | None = cats[0] if len(cats) == 1 else None
     ambiguous = bool(markers) or len(cats) > 1
     described = "; ".join(f"{cat} words: {', '.join(hits[cat])}" for cat in cats)
-    notes = [note for words, note in PRACTICE_NOTES if any(w in matched for w in words)]
+    # the practice behind a one-category suggestion (with two, the analyst weighs the words themselves)
+    notes = [note for listed, note in PRACTICE_NOTES if len(cats) == 1 and any(w in matched for w in listed)]
+    # a marker that is also one of the category's words (a merger) is explained by its note, not repeated
+    doubtful = tuple(m for m in markers if m not in words)
     if len(cats) > 1:
         why = f"matches more than one category ({described}); left unmapped for the analyst to decide."
     elif markers and category:
-        why = f"{described}, but {', '.join(markers)} can mean otherwise; please confirm."
+        why = (f"{described}, but {', '.join(doubtful)} can mean otherwise; please confirm." if doubtful
+               else f"{described}; please confirm.")
     elif markers:
         why = f"mentions {', '.join(markers)}, which could be any category; left unmapped."
     elif category:
