@@ -63,6 +63,11 @@ class AnalysisInput:
         return f"{self.mapping.name} v{self.mapping.version}" if self.mapping else "no mapping"
 
     @property
+    def mapping_words(self) -> str:
+        """``mapping NAME vN``, or "no mapping chosen" (exports and source lines: never "mapping none v0")."""
+        return f"mapping {self.mapping_label}" if self.mapping else "no mapping chosen"
+
+    @property
     def key(self) -> tuple[Any, ...]:
         """What this input's values depend on: roster version, mapping version and window (memo keys)."""
         return (self.roster.id, roster_fingerprint(self.roster), mapping_key(self.mapping), self.window)
