@@ -138,3 +138,24 @@ def test_the_quick_fit_suggests_the_window_coverage_suggests(tmp_path: Path) -> 
         payload: dict[str, Any] | None = quick_summary(store.url, 1, fit_new=True)
         assert payload is not None
         assert tuple(payload["window"]) == load_input(store, 1).window == (2000, 2009)
+
+
+def test_unmapped_codes_count_departures_only(tmp_path: Path) -> None:
+    # before a mapping every code is unmapped: the warning names the departures' codes, not the sitting chiefs'
+    text = roster_csv(in_post_year="")
+    expected, _ = reference(text)
+    inp = load_input(build(tmp_path, text, mapping=None), 1, require_mapping=False)
+    unmapped = dict(zip(inp.unmapped_codes()["code"], inp.unmapped_codes()["count"], strict=True))
+    lo, hi = inp.window
+    assert sum(unmapped.values()) == int(expected.loc[lo:hi].to_numpy().sum())
+    assert set(unmapped) == {"Retired", "Dismissed"}
+
+
+def test_the_quick_fit_warns_of_the_same_unmapped_codes(tmp_path: Path) -> None:
+    # the sitting chiefs' codes left unmapped: no departure has them, so neither path warns of them
+    store = build(tmp_path, roster_csv(in_post_year=""), mapping={"Retired": "voluntary", "Dismissed": "forced"})
+    inp = load_input(store, 1)
+    assert inp.in_post == 40 and inp.unmapped_codes().empty and inp.warnings() == []
+    payload = quick_summary(store.url, 1, fit_new=True)
+    assert payload is not None and payload["warnings"] == inp.warnings() == []
+    assert tuple(payload["window"]) == inp.window

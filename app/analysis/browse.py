@@ -52,11 +52,11 @@ def in_post_codes(reasons: Sequence[str]) -> tuple[str, ...]:
 
 def in_post_counts(store: Store, roster: Roster, mapping: MappingVersion | None,
                    resolved: Sequence[ResolvedOverride] = ()) -> pd.DataFrame:
-    """``year``, ``category``, ``departures``: the roster version's still-in-post rows per (stored) year and
-    category, classified as the counts classify them; empty when the roster has none."""
+    """``year``, ``reason``, ``category``, ``departures``: the roster version's still-in-post rows per (stored)
+    year, code and category, classified as the counts classify them; empty when the roster has none."""
     if not in_post_codes(stored_codes(store, roster)):
-        return pd.DataFrame({"year": pd.Series(dtype="int64"), "category": pd.Series(dtype=object),
-                             "departures": pd.Series(dtype="int64")})
+        return pd.DataFrame({"year": pd.Series(dtype="int64"), "reason": pd.Series(dtype=object),
+                             "category": pd.Series(dtype=object), "departures": pd.Series(dtype="int64")})
     flt = departure_filter(store, roster, mapping, resolved, version=roster.version, in_post="only")
     return store.category_counts(roster.id, flt)
 

@@ -52,11 +52,23 @@ class AnalysisInput:
     suggestion: WindowSuggestion
     flags: list[YearFlag]
     store: Store = field(repr=False, compare=False)
-    #: rows still in post (no departure date, a code saying the executive has not left): no departure of any
-    #: year, so ``coverage`` leaves them out and pages name them apart (``counts`` still holds them)
-    in_post: int = 0
-    #: of those, how many the mapping counts as forced or voluntary (the models then count them)
-    in_post_counted: int = 0
+    #: rows still in post (no departure date, a code saying the executive has not left) per ``year``, ``reason``
+    #: and ``category``, as ``departures``: no departure of any year, so ``coverage`` and the unmapped codes
+    #: leave them out and pages name them apart (``counts`` still holds them); None: not counted
+    in_post_rows: pd.DataFrame | None = field(default=None, repr=False, compare=False)
+
+    @property
+    def in_post(self) -> int:
+        """How many rows are still in post."""
+        return 0 if self.in_post_rows is None else int(self.in_post_rows["departures"].sum())
+
+    @property
+    def in_post_counted(self) -> int:
+        """How many of them the mapping counts as forced or voluntary (the models then count them)."""
+        if self.in_post_rows is None:
+            return 0
+        rows = self.in_post_rows
+        return int(rows.loc[rows["category"].isin(["forced", "voluntary"]), "departures"].sum())
 
     @property
     def mapping_label(self) -> str:
@@ -96,7 +108,13 @@ class AnalysisInput:
 
     def unmapped_codes(self) -> pd.DataFrame:
         """Codes without a category that occur inside the window, with their counts, most common first."""
-        return unmapped_codes(self.counts, self.window)
+        if not self.in_post:
+            return unmapped_codes(self.counts, self.window)
+        rows = self.in_post_rows
+        assert rows is not None
+        less = rows.assign(departures=-rows["departures"])[["year", "reason", "category", "departures"]]
+        return unmapped_codes(pd.concat([self.counts[["year", "reason", "category", "departures"]], less]),
+                              self.window)
 
     def group_cells(self, *, by_sector: bool = False) -> Cells:
         """The group counts of the window, without the firm matrix: for fits and fingerprints (memoised)."""
@@ -191,7 +209,7 @@ def load_input(
     if counts.empty:
         raise StoreError(f"Roster {roster.name!r} has no accepted departures.")
     key = ("coverage", roster.id, roster_fingerprint(roster), mapping_key(version), threshold)
-    table, suggestion, flags, (in_post, in_post_counted) = memoised(
+    table, suggestion, flags, in_post = memoised(
         store, key, lambda: _coverage(counts, in_post_counts(store, roster, version, resolved), threshold))
     source: WindowSource
     if window is not None:
@@ -207,24 +225,22 @@ def load_input(
     else:
         window, source = suggestion.window, "suggested"
     return AnalysisInput(roster, version, counts.copy(), window, source, table.copy(), suggestion, list(flags),
-                         store, in_post, in_post_counted)
+                         store, in_post)
 
 
 def _coverage(counts: pd.DataFrame, in_post: pd.DataFrame, threshold: float
-              ) -> tuple[pd.DataFrame, WindowSuggestion, list[YearFlag], tuple[int, int]]:
+              ) -> tuple[pd.DataFrame, WindowSuggestion, list[YearFlag], pd.DataFrame]:
     table = departures_only(coverage_from_counts(counts), in_post)
-    rows = (int(in_post["departures"].sum()),
-            int(in_post.loc[in_post["category"].isin(["forced", "voluntary"]), "departures"].sum()))
     try:
-        return table, suggest_window(table, threshold=threshold), flag_years(table, threshold=threshold), rows
+        return table, suggest_window(table, threshold=threshold), flag_years(table, threshold=threshold), in_post
     except ValueError:
         # a valid mapping that excludes every code: nothing to suggest from; every page shows the whole
         # span and says why no trend can be fitted (NOTHING_COUNTED), instead of failing
-        return table, _whole_span(table, threshold), [], rows
+        return table, _whole_span(table, threshold), [], in_post
 
 
 def departures_only(table: pd.DataFrame, in_post: pd.DataFrame) -> pd.DataFrame:
-    """The coverage ``table`` without the still-in-post rows (``in_post``: per year and category): they are no
+    """The coverage ``table`` without the still-in-post rows (``in_post``: per year, [reason,] category): they are no
     departure of the year they are filed under. Years at either end left with no record are dropped (unless
     every year would be), so the span is the departures'."""
     if in_post.empty:

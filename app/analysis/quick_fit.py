@@ -228,6 +228,9 @@ def _input(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None, 
             counts[category == "voluntary"] += n
         elif category == UNMAPPED:
             unmapped[reason] = unmapped.get(reason, 0) + n
+    for year, reason, n in in_post:  # no departures: not among the window's unmapped codes either
+        if window[0] <= year <= window[1] and reason in unmapped:
+            unmapped[reason] -= n
     rows = [(year, "", f, v) for year, (f, v) in sorted(groups.items())]
     fingerprint = groups_csv_fingerprint(rows)
     nothing = not any(category in ("forced", "voluntary") for _, _, category, _ in categorised)

@@ -187,8 +187,6 @@ def data_sentence(inp: AnalysisInput, departures: int, forced: int) -> str:
             f"and {r.rejected:,} rejected" + (f" ({r.duplicates:,} duplicates)" if r.duplicates else "")
             + f". In {lo}\u2013{hi}, {departures:,} departures are counted ({forced:,} forced); "
             f"{excluded:,} with excluded codes and {unmapped:,} with unmapped codes are not counted."
-            + (f" {inp.in_post:,} row{'' if inp.in_post == 1 else 's'} still in post (no departure date) "
-               f"{'is' if inp.in_post == 1 else 'are'} not departures and no year counts them." if inp.in_post else "")
             + _overrides_sentence(inp))
 
 

@@ -216,15 +216,15 @@ class DepartureQueries(Gateway):
         return select(*columns, category.label("category"), d.id.label("id")).where(*conditions)
 
     def category_counts(self, roster_id: int, flt: DepartureFilter) -> pd.DataFrame:
-        """``year``, ``category``, ``departures``: the matching departures counted per year and category (each
-        classified as the list classifies it), sorted by year and category."""
+        """``year``, ``reason``, ``category``, ``departures``: the matching departures counted per year, code and
+        category (each classified as the list classifies it), sorted by those."""
         inner = self._departure_select(roster_id, flt).subquery()
+        key = (inner.c.year, inner.c.reason, inner.c.category)
         with self.engine.connect() as conn:
-            rows = conn.execute(select(inner.c.year, inner.c.category, func.count())
-                                .group_by(inner.c.year, inner.c.category)
-                                .order_by(inner.c.year, inner.c.category)).fetchall()
-        frame = pd.DataFrame.from_records([tuple(r) for r in rows], columns=["year", "category", "departures"])
-        return frame.astype({"year": "int64", "category": object, "departures": "int64"})
+            rows = conn.execute(select(*key, func.count()).group_by(*key).order_by(*key)).fetchall()
+        frame = pd.DataFrame.from_records([tuple(r) for r in rows],
+                                          columns=["year", "reason", "category", "departures"])
+        return frame.astype({"year": "int64", "reason": object, "category": object, "departures": "int64"})
 
     def count_departures(self, roster_id: int, flt: DepartureFilter) -> int:
         inner = self._departure_select(roster_id, flt).subquery()
