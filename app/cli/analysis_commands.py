@@ -144,7 +144,7 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
 
 def cmd_robustness(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
-    from app.analysis.robustness import robustness_summary
+    from app.analysis.robustness_report import robustness_summary
 
     store = _store(args)
     mappings = args.mapping or []
