@@ -70,7 +70,7 @@ def test_coverage_leaves_the_rows_still_in_post_out_of_every_year(tmp_path: Path
     text = roster_csv(in_post_year=in_post_year)
     expected, in_post = reference(text)
     inp = load_input(build(tmp_path, text), 1)
-    assert inp.in_post == in_post == 40 and inp.in_post_counted == 0
+    assert inp.in_post == in_post == 40
     # the span is the departures' (2011 holds only sitting chiefs: it is no year of the table)
     assert inp.coverage["year"].tolist() == expected.index.tolist() == list(range(2000, 2011))
     assert inp.coverage["departures"].tolist() == expected.sum(axis=1).tolist()
@@ -120,14 +120,25 @@ def test_the_record_browser_and_its_exports_agree_with_coverage(tmp_path: Path) 
     assert "left out here" in client.get("/rosters/1/departures?year=2010").text
 
 
-def test_a_mapping_that_counts_them_is_named_and_the_quick_fit_steps_aside(tmp_path: Path) -> None:
+def test_rows_the_mapping_counts_are_departures_after_all(tmp_path: Path) -> None:
+    # the analyst's mapping counts "Still in post" as voluntary (a case override could do the same for one row):
+    # those 30 rows are then departures of the year they are filed under, on Coverage, in the list and in the
+    # models alike; the ten "Incumbent" rows stay apart
+    text = roster_csv(in_post_year="")
     counted = {**MAPPING, "Still in post": "voluntary"}
-    store = build(tmp_path, roster_csv(in_post_year=""), mapping=counted)
+    store = build(tmp_path, text, mapping=counted)
     inp = load_input(store, 1)
-    assert inp.in_post == 40 and inp.in_post_counted == 30  # "Still in post" rows; the "Incumbent" ten stay out
-    assert any("30 row(s) still in post" in w and "Map their code to excluded" in w for w in inp.warnings())
-    # the quick path cannot say so: it leaves the fit to the ordinary path
-    assert quick_summary(store.url, 1, fit_new=True) is None
+    assert inp.in_post == 10
+    frame = pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False)
+    kept = frame.loc[frame["Reason"] != "Incumbent"].assign(year=lambda f: f["FY"].replace("", "2010").astype(int))
+    expected = pd.crosstab(kept["year"], kept["Reason"].map(counted))
+    assert inp.coverage["voluntary"].tolist() == expected["voluntary"].tolist()
+    assert int(inp.coverage.loc[inp.coverage["year"] == 2010, "departures"].iloc[0]) == 4 + 30
+    client = make_client(store)
+    assert client.get("/api/rosters/1/departures?year=2010").json()["total"] == 34
+    assert client.get("/api/rosters/1/departures?in_post=only").json()["total"] == 10
+    payload = quick_summary(store.url, 1, fit_new=True)
+    assert payload is not None and tuple(payload["window"]) == inp.window
 
 
 def test_the_quick_fit_suggests_the_window_coverage_suggests(tmp_path: Path) -> None:

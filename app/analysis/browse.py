@@ -7,8 +7,9 @@ in order, and its case overrides located in the roster version. The store applie
 then code, so "category=forced" lists exactly the departures a forced count counted.
 
 Rows still in post (no departure date, a code whose words say the executive has not left:
-``app.intake.in_post.is_still_in_post``) are not departures: every year filter leaves them out, and Coverage
-counts them apart (``in_post_counts``), so a year's count and the records it links to agree.
+``app.intake.in_post.is_still_in_post``), unless the mapping or a case override counts them as forced or
+voluntary, are not departures: every year filter leaves them out, and Coverage counts them apart
+(``in_post_counts``), so a year's count and the records it links to agree.
 """
 
 from __future__ import annotations
@@ -53,7 +54,8 @@ def in_post_codes(reasons: Sequence[str]) -> tuple[str, ...]:
 def in_post_counts(store: Store, roster: Roster, mapping: MappingVersion | None,
                    resolved: Sequence[ResolvedOverride] = ()) -> pd.DataFrame:
     """``year``, ``reason``, ``category``, ``departures``: the roster version's still-in-post rows per (stored)
-    year, code and category, classified as the counts classify them; empty when the roster has none."""
+    year, code and category (excluded or unmapped: a row counted as forced or voluntary is a departure), classified
+    as the counts classify them; empty when the roster has none."""
     if not in_post_codes(stored_codes(store, roster)):
         return pd.DataFrame({"year": pd.Series(dtype="int64"), "reason": pd.Series(dtype=object),
                              "category": pd.Series(dtype=object), "departures": pd.Series(dtype="int64")})

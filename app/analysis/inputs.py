@@ -52,23 +52,16 @@ class AnalysisInput:
     suggestion: WindowSuggestion
     flags: list[YearFlag]
     store: Store = field(repr=False, compare=False)
-    #: rows still in post (no departure date, a code saying the executive has not left) per ``year``, ``reason``
-    #: and ``category``, as ``departures``: no departure of any year, so ``coverage`` and the unmapped codes
-    #: leave them out and pages name them apart (``counts`` still holds them); None: not counted
+    #: rows still in post (no departure date, a code saying the executive has not left, not counted as forced or
+    #: voluntary by the mapping or a case override) per ``year``, ``reason`` and ``category``, as ``departures``:
+    #: no departure of any year, so ``coverage`` and the unmapped codes leave them out and pages name them apart
+    #: (``counts`` still holds them, as excluded or unmapped: no model counts them); None: not counted
     in_post_rows: pd.DataFrame | None = field(default=None, repr=False, compare=False)
 
     @property
     def in_post(self) -> int:
         """How many rows are still in post."""
         return 0 if self.in_post_rows is None else int(self.in_post_rows["departures"].sum())
-
-    @property
-    def in_post_counted(self) -> int:
-        """How many of them the mapping counts as forced or voluntary (the models then count them)."""
-        if self.in_post_rows is None:
-            return 0
-        rows = self.in_post_rows
-        return int(rows.loc[rows["category"].isin(["forced", "voluntary"]), "departures"].sum())
 
     @property
     def mapping_label(self) -> str:
@@ -148,11 +141,6 @@ class AnalysisInput:
         unmapped = self.unmapped_codes()
         notes = warning_notes(self.mapping is not None and self.counts_nothing(),
                               [(str(c), int(n)) for c, n in zip(unmapped["code"], unmapped["count"], strict=True)])
-        if self.in_post_counted:
-            notes.append(f"{self.in_post_counted:,} row(s) still in post (no departure date, a code saying the "
-                         f"executive has not left) are counted as forced or voluntary by mapping {self.mapping_label}; "
-                         "they are not departures, so the trend counts them but Coverage does not. Map their code "
-                         "to excluded.")
         if missing := not_applied(self.overrides):
             notes.append(f"{len(missing)} case override(s) of this mapping name departures that version "
                          f"{self.roster.version} of the roster does not hold, so they are not applied: "

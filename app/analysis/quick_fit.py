@@ -192,9 +192,10 @@ def _input(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None, 
     # still-in-post rows are no departure of any year: Coverage (``departures_only``) leaves them out
     in_post = reader.undated_counts(roster.id, roster.version, sorted({r for _, r, _, _ in categorised
                                                                       if is_still_in_post(r)}))
+    # a row the mapping counts as forced or voluntary is taken as a departure after all (as the store does)
+    in_post = [(year, reason, n) for year, reason, n in in_post
+               if by_key.get(code_key(reason), UNMAPPED) not in ("forced", "voluntary")]
     in_post_categorised = [(year, by_key.get(code_key(reason), UNMAPPED), n) for year, reason, n in in_post]
-    if any(category in ("forced", "voluntary") for _, category, _ in in_post_categorised):
-        return None  # the ordinary path says that the mapping counts them
     if given is not None:
         if given[0] > last or given[1] < first:
             return None

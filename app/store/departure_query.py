@@ -9,8 +9,9 @@ each stored code spelling (``DepartureFilter.codes``: the counts match codes by 
 compute) and the rules; see app.analysis.browse.
 
 Rows still in post (no departure date, a code that says the executive has not left: ``in_post_codes``, which
-the caller reads from the code's words) are not departures of any year: a year filter leaves them out, and
-``in_post="only"`` lists them alone, as Coverage counts them apart.
+the caller reads from the code's words, and not counted as forced or voluntary by the mapping or a case
+override) are not departures of any year: a year filter leaves them out, and ``in_post="only"`` lists them
+alone, as Coverage counts them apart.
 """
 
 from __future__ import annotations
@@ -184,7 +185,9 @@ class DepartureQueries(Gateway):
         d = departures.c
         conditions: list[ColumnElement[bool]] = [d.roster_id == roster_id,
                                                  d.version == version_of(roster_id, flt.version)]
-        in_post = and_(d.date.is_(None), d.reason.in_(flt.in_post_codes)) if flt.in_post_codes else None
+        # a row the mapping or a case override counts as forced or voluntary is taken as a departure after all
+        in_post = (and_(d.date.is_(None), d.reason.in_(flt.in_post_codes), category.notin_(["forced", "voluntary"]))
+                   if flt.in_post_codes else None)
         if flt.in_post == "only":
             conditions.append(in_post if in_post is not None else literal(False))
         elif in_post is not None and (flt.in_post == "none" or flt.year is not None or flt.year_from is not None
