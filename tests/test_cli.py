@@ -98,8 +98,14 @@ def test_coverage_json(capsys: pytest.CaptureFixture[str], db: str, demo_truth: 
     assert payload["suggested_window"] == list(demo_truth["full_coverage"])
     keys = {"year", "departures", "forced", "voluntary", "excluded", "unmapped"}
     assert all(set(y) >= keys for y in payload["years"])
-    per_year = demo_clean.groupby("year").size()  # pandas
+    # pandas: the kept rows per year, but for the rows still in post (no exit date, "Still in post"), which are
+    # no departure of any year and are counted apart
+    in_post = (demo_clean["Exit Date"] == "") & (demo_clean["Exit Reason"] == "Still in post")
+    per_year = demo_clean.loc[~in_post].groupby("year").size()
     assert {y["year"]: y["departures"] for y in payload["years"]} == per_year.to_dict()
+    assert payload["still_in_post"] == int(in_post.sum()) == 132
+    code, text, _ = run(capsys, "coverage", "--roster", ROSTER, "--db", db)
+    assert code == 0 and "132 row(s) still in post, not departures" in text
 
 
 def test_fit_json_and_by_sector(capsys: pytest.CaptureFixture[str], db: str, demo_clean: pd.DataFrame) -> None:

@@ -219,6 +219,8 @@ def test_pages_show_the_reclassified_rates_without_reading_the_records(store: St
     from conftest import make_client
     from sqlalchemy import event
 
+    from tests.test_cellstore import in_post_count
+
     store.update_settings(built["roster"], mapping_name="rr map", window=WINDOW)
     expected = per_year(oracle(built["rows"], built["overrides"]), "forced")
     store.ensure_detail_cells(built["roster"])  # once per roster version, on their first read (test_cellstore.py)
@@ -230,7 +232,8 @@ def test_pages_show_the_reclassified_rates_without_reading_the_records(store: St
         response = client.get(f"/api/rosters/{built['roster']}/{page}")
         assert response.status_code == 200, response.text
         assert [r["forced"] for r in response.json()["rates"]["years"]] == expected, page
-    # locating the overrides reads the departures of their years only (app.analysis.overrides, memoised)
+    # locating the overrides reads the departures of their years only (app.analysis.overrides, memoised); the
+    # rows still in post are counted per year in SQL (a few rows back, tests/test_cellstore.py in_post_count)
     assert not [s for s in seen if s.startswith("SELECT") and re.search(r"\bFROM departures\b", s)
-                and "departures.year IN" not in s]
+                and "departures.year IN" not in s and not in_post_count(s)]
     assert not [s for s in seen if re.search(r"SELECT universe_firm_years\.firm_id, universe_firm_years\.year", s)]

@@ -11,7 +11,8 @@ from conftest import read_mapping, statsmodels_trend, year_counts
 
 from app.analysis.inputs import load_input
 from app.analysis.jobs import run_bootstrap_now
-from app.analysis.robustness import check_robustness, robustness_rows, robustness_to_dict
+from app.analysis.robustness import check_robustness
+from app.analysis.robustness_report import robustness_rows, robustness_to_dict
 from app.stats.cells import assign_categories, build_cells
 from app.stats.trend import fit_trend
 from app.store import Store

@@ -33,7 +33,8 @@ from app.analysis.adjusted import run_adjusted
 from app.analysis.inputs import load_input
 from app.analysis.overrides import add_override
 from app.analysis.rates import run_rates
-from app.analysis.robustness import Robustness, Variant, check_robustness, robustness_to_dict
+from app.analysis.robustness import Robustness, Variant, check_robustness
+from app.analysis.robustness_report import robustness_to_dict
 from app.analysis.rules import save_rules
 from app.briefing.findings import robustness_finding
 from app.cli import main

@@ -5,6 +5,11 @@ the counts use: the category of each code spelling the roster version stores, ma
 (``app.stats.cells.assign_categories``, as ``categorise`` does), the mapping version's classification rules
 in order, and its case overrides located in the roster version. The store applies override, then rules,
 then code, so "category=forced" lists exactly the departures a forced count counted.
+
+Rows still in post (no departure date, a code whose words say the executive has not left:
+``app.intake.in_post.is_still_in_post``), unless the mapping or a case override counts them as forced or
+voluntary, are not departures: every year filter leaves them out, and Coverage counts them apart
+(``in_post_counts``), so a year's count and the records it links to agree.
 """
 
 from __future__ import annotations
@@ -16,10 +21,18 @@ import pandas as pd
 
 from app.analysis.cellstore import roster_counts
 from app.analysis.overrides import ResolvedOverride
+from app.intake.in_post import is_still_in_post
 from app.stats.cells import assign_categories
 from app.stats.codekeys import code_key
 from app.store import DepartureFilter, MappingVersion, Roster, Store
 from app.types import ClassificationRule
+
+
+def stored_codes(store: Store, roster: Roster, version: int | None = None) -> list[str]:
+    """The distinct reason codes (as stored) of a roster version (default: the roster's), sorted."""
+    counts = (roster_counts(store, roster) if version is None or version == roster.version
+              else store.cell_counts(roster.id, version))
+    return sorted({str(r) for r in counts["reason"].dropna()})
 
 
 def code_categories(store: Store, roster: Roster, mapping: MappingVersion | None,
@@ -27,11 +40,27 @@ def code_categories(store: Store, roster: Roster, mapping: MappingVersion | None
     """(stored reason code, category) for every code of the roster version, read as the counts read it."""
     if mapping is None:
         return ()
-    counts = (roster_counts(store, roster) if version is None or version == roster.version
-              else store.cell_counts(roster.id, version))
-    reasons = pd.Series(sorted({str(r) for r in counts["reason"].dropna()}), dtype=object)
+    reasons = pd.Series(stored_codes(store, roster, version), dtype=object)
     categories = assign_categories(reasons, mapping.categories)
     return tuple(zip(reasons.tolist(), categories.tolist(), strict=True))
+
+
+def in_post_codes(reasons: Sequence[str]) -> tuple[str, ...]:
+    """The stored reason codes whose words say the executive is still in post (their undated rows are no
+    departure), sorted."""
+    return tuple(sorted({str(r) for r in reasons if is_still_in_post(str(r))}))
+
+
+def in_post_counts(store: Store, roster: Roster, mapping: MappingVersion | None,
+                   resolved: Sequence[ResolvedOverride] = ()) -> pd.DataFrame:
+    """``year``, ``reason``, ``category``, ``departures``: the roster version's still-in-post rows per (stored)
+    year, code and category (excluded or unmapped: a row counted as forced or voluntary is a departure), classified
+    as the counts classify them; empty when the roster has none."""
+    if not in_post_codes(stored_codes(store, roster)):
+        return pd.DataFrame({"year": pd.Series(dtype="int64"), "reason": pd.Series(dtype=object),
+                             "category": pd.Series(dtype=object), "departures": pd.Series(dtype="int64")})
+    flt = departure_filter(store, roster, mapping, resolved, version=roster.version, in_post="only")
+    return store.category_counts(roster.id, flt)
 
 
 def spelled_rules(rules: Sequence[ClassificationRule],
@@ -60,4 +89,5 @@ def departure_filter(store: Store, roster: Roster, mapping: MappingVersion | Non
     codes = code_categories(store, roster, mapping, values.get("version"))
     return DepartureFilter(
         mapping=(mapping.name, mapping.version) if mapping else None, overrides=overrides if mapping else (),
-        codes=codes, rules=spelled_rules(mapping.rules, codes) if mapping else (), **values)
+        in_post_codes=in_post_codes(stored_codes(store, roster, values.get("version"))), codes=codes,
+        rules=spelled_rules(mapping.rules, codes) if mapping else (), **values)

@@ -10,8 +10,10 @@ from dataclasses import dataclass, field, replace
 from functools import cached_property
 from typing import Any, Literal
 
+import numpy as np
 import pandas as pd
 
+from app.analysis.browse import in_post_counts
 from app.analysis.cellstore import (
     categorise,
     categorised_counts,
@@ -25,7 +27,7 @@ from app.analysis.cellstore import (
 from app.analysis.overrides import ResolvedOverride, apply_overrides, not_applied, resolve_overrides
 from app.analysis.quick_fit import parse_mapping_ref, warning_notes
 from app.stats.cells import Cells
-from app.stats.coverage import WindowSuggestion, YearFlag, flag_years, suggest_window
+from app.stats.coverage import COUNT_COLUMNS, WindowSuggestion, YearFlag, flag_years, suggest_window
 from app.store import MappingVersion, Roster, Run, Store, StoreError
 
 WindowSource = Literal["given", "chosen", "suggested"]
@@ -50,10 +52,25 @@ class AnalysisInput:
     suggestion: WindowSuggestion
     flags: list[YearFlag]
     store: Store = field(repr=False, compare=False)
+    #: rows still in post (no departure date, a code saying the executive has not left, not counted as forced or
+    #: voluntary by the mapping or a case override) per ``year``, ``reason`` and ``category``, as ``departures``:
+    #: no departure of any year, so ``coverage`` and the unmapped codes leave them out and pages name them apart
+    #: (``counts`` still holds them, as excluded or unmapped: no model counts them); None: not counted
+    in_post_rows: pd.DataFrame | None = field(default=None, repr=False, compare=False)
+
+    @property
+    def in_post(self) -> int:
+        """How many rows are still in post."""
+        return 0 if self.in_post_rows is None else int(self.in_post_rows["departures"].sum())
 
     @property
     def mapping_label(self) -> str:
         return f"{self.mapping.name} v{self.mapping.version}" if self.mapping else "no mapping"
+
+    @property
+    def mapping_words(self) -> str:
+        """``mapping NAME vN``, or "no mapping chosen" (exports and source lines: never "mapping none v0")."""
+        return f"mapping {self.mapping_label}" if self.mapping else "no mapping chosen"
 
     @property
     def key(self) -> tuple[Any, ...]:
@@ -84,7 +101,13 @@ class AnalysisInput:
 
     def unmapped_codes(self) -> pd.DataFrame:
         """Codes without a category that occur inside the window, with their counts, most common first."""
-        return unmapped_codes(self.counts, self.window)
+        if not self.in_post:
+            return unmapped_codes(self.counts, self.window)
+        rows = self.in_post_rows
+        assert rows is not None
+        less = rows.assign(departures=-rows["departures"])[["year", "reason", "category", "departures"]]
+        return unmapped_codes(pd.concat([self.counts[["year", "reason", "category", "departures"]], less]),
+                              self.window)
 
     def group_cells(self, *, by_sector: bool = False) -> Cells:
         """The group counts of the window, without the firm matrix: for fits and fingerprints (memoised)."""
@@ -174,7 +197,8 @@ def load_input(
     if counts.empty:
         raise StoreError(f"Roster {roster.name!r} has no accepted departures.")
     key = ("coverage", roster.id, roster_fingerprint(roster), mapping_key(version), threshold)
-    table, suggestion, flags = memoised(store, key, lambda: _coverage(counts, threshold))
+    table, suggestion, flags, in_post = memoised(
+        store, key, lambda: _coverage(counts, in_post_counts(store, roster, version, resolved), threshold))
     source: WindowSource
     if window is not None:
         first, last = int(counts["year"].min()), int(counts["year"].max())
@@ -189,17 +213,34 @@ def load_input(
     else:
         window, source = suggestion.window, "suggested"
     return AnalysisInput(roster, version, counts.copy(), window, source, table.copy(), suggestion, list(flags),
-                         store)
+                         store, in_post)
 
 
-def _coverage(counts: pd.DataFrame, threshold: float) -> tuple[pd.DataFrame, WindowSuggestion, list[YearFlag]]:
-    table = coverage_from_counts(counts)
+def _coverage(counts: pd.DataFrame, in_post: pd.DataFrame, threshold: float
+              ) -> tuple[pd.DataFrame, WindowSuggestion, list[YearFlag], pd.DataFrame]:
+    table = departures_only(coverage_from_counts(counts), in_post)
     try:
-        return table, suggest_window(table, threshold=threshold), flag_years(table, threshold=threshold)
+        return table, suggest_window(table, threshold=threshold), flag_years(table, threshold=threshold), in_post
     except ValueError:
         # a valid mapping that excludes every code: nothing to suggest from; every page shows the whole
         # span and says why no trend can be fitted (NOTHING_COUNTED), instead of failing
-        return table, _whole_span(table, threshold), []
+        return table, _whole_span(table, threshold), [], in_post
+
+
+def departures_only(table: pd.DataFrame, in_post: pd.DataFrame) -> pd.DataFrame:
+    """The coverage ``table`` without the still-in-post rows (``in_post``: per year, [reason,] category): they are no
+    departure of the year they are filed under. Years at either end left with no record are dropped (unless
+    every year would be), so the span is the departures'."""
+    if in_post.empty:
+        return table
+    less = (in_post.pivot_table(index="year", columns="category", values="departures", aggfunc="sum")
+            .reindex(index=table["year"], columns=list(COUNT_COLUMNS)).fillna(0).to_numpy(dtype=np.int64))
+    out = table.copy()
+    for i, column in enumerate(COUNT_COLUMNS):
+        out[column] = out[column].to_numpy(dtype=np.int64) - less[:, i]
+    out["departures"] = out["departures"].to_numpy(dtype=np.int64) - less.sum(axis=1)
+    kept = out.index[out["departures"] > 0]
+    return out if kept.empty else out.loc[kept.min():kept.max()].reset_index(drop=True)
 
 
 def _whole_span(table: pd.DataFrame, threshold: float) -> WindowSuggestion:

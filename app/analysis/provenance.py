@@ -40,6 +40,10 @@ def universe_label(u: Universe) -> str:
     return f"universe {u.id}, {kind}: {u.firms:,} firms, {u.firm_years:,} firm-years, fingerprint {u.fingerprint}"
 
 
+#: what a source line says when no mapping is chosen (a version number of 0 would read as a real version)
+NO_MAPPING = "no mapping chosen"
+
+
 @dataclass(frozen=True, kw_only=True)
 class Provenance:
     """Everything a reader needs to reproduce an exported number."""
@@ -77,6 +81,11 @@ class Provenance:
     #: how many of them are listed one by one (the rest are counted; a one-page brief may list fewer)
     overrides_listed: int = OVERRIDES_LISTED
 
+    @property
+    def mapping_label(self) -> str:
+        """``mapping NAME vN``, or "no mapping chosen" (version 0: saved versions count from 1)."""
+        return f"mapping {self.mapping_name} v{self.mapping_version}" if self.mapping_version else NO_MAPPING
+
     def _created(self) -> str:
         return self.created.strftime("%Y-%m-%d %H:%M %Z").strip()
 
@@ -94,7 +103,8 @@ class Provenance:
         """One labelled line per fact, for the methods slide and the brief's footer."""
         out = [
             f"Roster: {self.roster} (data fingerprint {self.roster_fingerprint})",
-            f"Mapping: {self.mapping_name}, version {self.mapping_version}"
+            (f"Mapping: {self.mapping_name}, version {self.mapping_version}" if self.mapping_version
+             else "Mapping: none chosen (every reason code is unmapped, so nothing is counted)")
             + (f"; classification rules, first match wins: {'; '.join(self.rules)}" if self.rules else ""),
             *self._override_lines(),
             f"Window: fiscal years {self.window[0]}\u2013{self.window[1]}",
@@ -132,7 +142,7 @@ class Provenance:
         """The one-line form for a chart's source line."""
         parts = [
             f"Source: roster {self.roster} [{self.roster_fingerprint[:12]}]",
-            f"mapping {self.mapping_name} v{self.mapping_version}"
+            self.mapping_label
             + (f" with {len(self.rules)} rule{'s' if len(self.rules) > 1 else ''}" if self.rules else "")
             + (f", {len(self.overrides)} case override{'s' if len(self.overrides) > 1 else ''}"
                if self.overrides else ""),

@@ -32,6 +32,7 @@ from pathlib import Path
 from typing import Any
 
 from app import __version__
+from app.intake.in_post import is_still_in_post
 from app.stats.codekeys import code_key
 from app.stats.window_rule import longest_run
 from app.store.quick import QuickMapping, QuickReader, QuickRoster, open_quick, record_fit_run
@@ -188,6 +189,13 @@ def _input(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None, 
                    for year, _sector, reason, n in cells]
 
     first, last = min(c[0] for c in categorised), max(c[0] for c in categorised)
+    # still-in-post rows are no departure of any year: Coverage (``departures_only``) leaves them out
+    in_post = reader.undated_counts(roster.id, roster.version, sorted({r for _, r, _, _ in categorised
+                                                                      if is_still_in_post(r)}))
+    # a row the mapping counts as forced or voluntary is taken as a departure after all (as the store does)
+    in_post = [(year, reason, n) for year, reason, n in in_post
+               if by_key.get(code_key(reason), UNMAPPED) not in ("forced", "voluntary")]
+    in_post_categorised = [(year, by_key.get(code_key(reason), UNMAPPED), n) for year, reason, n in in_post]
     if given is not None:
         if given[0] > last or given[1] < first:
             return None
@@ -195,10 +203,17 @@ def _input(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None, 
     elif chosen_window is not None:
         window = chosen_window
     else:
+        records = [0] * (last - first + 1)
         covered = [0] * (last - first + 1)  # every year of the span, gaps as zero (basis: all but excluded)
-        for year, _reason, category, n in categorised:
+        for year, category, n in [(y, c, n) for y, _r, c, n in categorised] + [(y, c, -n) for y, c, n
+                                                                                 in in_post_categorised]:
+            records[year - first] += n
             if category != "excluded":
                 covered[year - first] += n
+        held = [i for i, n in enumerate(records) if n > 0]
+        if held:  # the span of years that hold a departure, as the coverage table's
+            covered = covered[held[0]:held[-1] + 1]
+            first += held[0]
         if sum(covered) <= 0:
             return None
         _median, _cutoff, _passes, (lo, hi) = longest_run(covered, DEFAULT_THRESHOLD)
@@ -214,6 +229,9 @@ def _input(reader: QuickReader, roster_ref: int | str, mapping_ref: str | None, 
             counts[category == "voluntary"] += n
         elif category == UNMAPPED:
             unmapped[reason] = unmapped.get(reason, 0) + n
+    for year, reason, n in in_post:  # no departures: not among the window's unmapped codes either
+        if window[0] <= year <= window[1] and reason in unmapped:
+            unmapped[reason] -= n
     rows = [(year, "", f, v) for year, (f, v) in sorted(groups.items())]
     fingerprint = groups_csv_fingerprint(rows)
     nothing = not any(category in ("forced", "voluntary") for _, _, category, _ in categorised)

@@ -148,6 +148,7 @@ def coverage_summary(inp: AnalysisInput, *, threshold: float = 0.5) -> dict[str,
         "roster": inp.roster.name, "mapping": inp.mapping_label, "years": years,
         "suggested_window": list(suggestion.window), "rule": suggestion.rule,
         "window": list(inp.window), "window_source": inp.window_source,
+        "still_in_post": inp.in_post,
         "flags": [{"year": f.year, "kind": f.kind, "message": f.message} for f in inp.flags],
         "warnings": inp.warnings(),
     }

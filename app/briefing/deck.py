@@ -213,8 +213,8 @@ def _footer(slide: Slide, provenance: Provenance, number: int, marking: str = ""
     # the brief pack's name goes before the roster, so a long roster name cannot push it off the line
     left_text = ((f"{marking} \u00b7 " if marking else "")
                  + (f"brief pack sha256 {provenance.brief_pack[:16]} \u00b7 " if provenance.brief_pack else "")
-                 + f"{provenance.roster} \u00b7 mapping {provenance.mapping_name} "
-                 f"v{provenance.mapping_version} \u00b7 FY{provenance.window[0]}\u2013{provenance.window[1]}")
+                 + f"{provenance.roster} \u00b7 {provenance.mapping_label} "
+                 f"\u00b7 FY{provenance.window[0]}\u2013{provenance.window[1]}")
     fit = fit_text(left_text, width - 0.8, 0.2, 10, min_size=8)
     _fill(_box(slide, MARGIN_IN, top, width - 0.8, 0.2), _Fit(fit.lines[:1], fit.size), colour=MUTED)
     _fill(_box(slide, SLIDE_W_IN - MARGIN_IN - 0.6, top, 0.6, 0.2), _Fit((str(number),), 10), colour=MUTED,
@@ -252,8 +252,7 @@ def _title_slide(prs: object, title: str, subtitle: str, provenance: Provenance,
     meta = "\n".join([
         (f"Prepared by {byline.author}, " if byline.author else "Prepared ") + f"{when.day} {when:%B %Y}",
         f"Roster: {provenance.roster}",
-        f"Fiscal years {provenance.window[0]}\u2013{provenance.window[1]} \u00b7 mapping "
-        f"{provenance.mapping_name} v{provenance.mapping_version}",
+        f"Fiscal years {provenance.window[0]}\u2013{provenance.window[1]} \u00b7 {provenance.mapping_label}",
     ])
     meta_fit = fit_text(meta, width, max(0.5, stack.left), 16, min_size=12)
     _fill(_box(slide, MARGIN_IN, stack.take(meta_fit.height_in), width, meta_fit.height_in), meta_fit)
@@ -310,7 +309,7 @@ def _methods_slide(prs: object, provenance: Provenance, number: int, marking: st
     else:
         body = "The categories of this mapping version were not supplied with the export."
     _column(slide, MARGIN_IN + col_w + gap, stack.cursor, col_w, stack.left,
-            f"Mapping {provenance.mapping_name} v{provenance.mapping_version}: reason codes by category",
+            f"{provenance.mapping_label.capitalize()}: reason codes by category",
             body, 15)
     _footer(slide, provenance, number, marking)
     rows = f"Rows used: {provenance.rows_used}. " if provenance.rows_used else ""

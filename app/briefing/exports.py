@@ -111,7 +111,7 @@ def _packed(store: Store, inp: AnalysisInput, findings: Sequence[ChartFinding]) 
 
 def pack_of(store: Store, inp: AnalysisInput, findings: Sequence[ChartFinding]) -> BriefPack:
     """The brief pack of these findings (the same bytes for the same findings, runs and data)."""
-    heading = (f"{inp.roster.name} \u00b7 mapping {inp.mapping_label} \u00b7 fiscal years "
+    heading = (f"{inp.roster.name} \u00b7 {inp.mapping_words} \u00b7 fiscal years "
                f"{inp.window[0]}\u2013{inp.window[1]}")
     return build_brief_pack(store, _packed(store, inp, findings), heading=heading)
 
@@ -130,7 +130,7 @@ def speaker_notes(finding: ChartFinding, takeaway: str) -> str:
     lines = [f"Finding: {finding.title or finding.name}", f"Takeaway on the slide: {takeaway}"]
     if takeaway != finding.takeaway:
         lines.append(f"Computed takeaway: {finding.takeaway}")
-    lines += [f"Method: {prov.model}; mapping {prov.mapping_name} v{prov.mapping_version}, fiscal years "
+    lines += [f"Method: {prov.model}; {prov.mapping_label}, fiscal years "
               f"{prov.window[0]}\u2013{prov.window[1]}.", f"Interval: {prov.interval_method}."]
     if prov.resamples is not None:
         lines.append(f"Resampling: B = {prov.resamples:,}, by {prov.unit}, seed {prov.seed}.")
@@ -172,7 +172,7 @@ def deck_and_pack(store: Store, inp: AnalysisInput, charts: Sequence[str] | None
         slides.append(Finding(title=f.title or f.name, takeaway=takeaway, figure=f.figure, name=f.name,
                               rows=f.rows, notes=speaker_notes(f, takeaway)))
     deck = build_deck(slides, provenance, title=sign.title,
-                      subtitle=f"Fiscal years {inp.window[0]}\u2013{inp.window[1]} \u00b7 mapping {inp.mapping_label}",
+                      subtitle=f"Fiscal years {inp.window[0]}\u2013{inp.window[1]} \u00b7 {inp.mapping_words}",
                       byline=Byline(author=sign.author, marking=sign.marking, date=sign.date))
     return deck, pack
 

@@ -231,7 +231,7 @@ def robustness_finding_from(inp: AnalysisInput, result: Robustness) -> ChartFind
     """The share's forest chart under each reading; with measures, the readings' rate ratios and adjusted odds
     ratios in the rows, their verdicts in the takeaway and notes, the universe and adjustment set in the
     provenance."""
-    from app.analysis.robustness import robustness_rows
+    from app.analysis.robustness_report import robustness_rows
 
     prov = provenance_for(inp, interval_method="profile likelihood, 95%")
     if result.measured:

@@ -27,6 +27,8 @@ def cmd_coverage(args: argparse.Namespace) -> int:
         [f"{'year':>6} {'all':>5} {'forced':>7} {'volunt.':>7} {'excl.':>6} {'unmap.':>6}"]
         + [f"{y['year']:>6} {y['departures']:>5} {y['forced']:>7} {y['voluntary']:>7} {y['excluded']:>6} "
            f"{y['unmapped']:>6}" for y in p["years"]]
+        + ([f"{p['still_in_post']:,} row(s) still in post, not departures (no departure date; the code says the "
+             "executive has not left): no year counts them."] if p["still_in_post"] else [])
         + [f"Suggested window: {p['suggested_window'][0]}\u2013{p['suggested_window'][1]} ({p['rule']})"]))
     return 0
 
@@ -142,7 +144,7 @@ def cmd_bootstrap(args: argparse.Namespace) -> int:
 
 def cmd_robustness(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
-    from app.analysis.robustness import robustness_summary
+    from app.analysis.robustness_report import robustness_summary
 
     store = _store(args)
     mappings = args.mapping or []

@@ -19,6 +19,7 @@ from typing import Any
 from app.intake.announced import NOTICE_RULE, KeptWithWarning
 from app.intake.codes import CodeGroup
 from app.intake.dates import date_rule, fiscal_rule
+from app.intake.in_post import is_still_in_post
 from app.intake.rawtable import DEFAULT_LIMITS, RawTable, ReadLimits, RosterFileError, looks_like_data
 from app.intake.readers import read_table
 from app.intake.refresh import diff_versions
@@ -30,7 +31,6 @@ from app.intake.validation import (
     Checked,
     DateOrder,
     check_rows,
-    is_still_in_post,
     validate,
 )
 from app.store import RejectedRow, Roster, Store, StoreError

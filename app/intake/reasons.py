@@ -16,29 +16,45 @@ from app.intake.spreadsheet_safety import FORMULA_TRIGGERS, neutralise_formula
 from app.stats.cells import code_key
 from app.types import CATEGORIES, Category
 
-# Word lists: common practice in governance research, not a standard. Each entry is matched at the
-# start of a word ("dismiss" matches "dismissed", "dismissal"); entries of three letters or fewer must
-# match a whole word. A departure "under pressure" is read as forced, but "pressure" is also an
-# ambiguity marker, so such codes are always flagged for the analyst.
+# Word lists: common practice in governance research (the usual reading of forced-turnover studies, from
+# memory), not a standard; every suggestion is a starting point the analyst confirms before it is saved. Each
+# entry is matched at the start of a word ("dismiss" matches "dismissed", "dismissal"); entries of three
+# letters or fewer must match a whole word. A departure "under pressure" is read as forced, but "pressure" is
+# also an ambiguity marker, so such codes are always flagged for the analyst.
 WORDS: dict[Category, tuple[str, ...]] = {
     "forced": (
         "dismiss", "removed", "removal", "oust", "fired", "terminated", "termination", "sacked",
         "forced", "activist", "no confidence", "under pressure", "pushed out", "misconduct",
-        "for cause", "replaced by board", "asked to leave",
+        "for cause", "replaced by board", "asked to leave", "asked to resign", "let go",
     ),
+    # A departure is voluntary unless a source says it was forced: a plain resignation counts as voluntary.
     "voluntary": (
-        "retire", "new role", "another post", "other position", "another company", "death", "died",
-        "deceased", "illness", "health", "personal reasons", "family", "succession plan",
+        "retire", "resign", "step down", "stood down", "step aside", "new role", "new job", "another post", "another job", "other position",
+        "another company", "other opportunit", "left for", "left to join", "personal reasons", "family",
+        "succession plan",
     ),
-    # Interim chiefs leaving at the end of an agreed term did not depart by anyone's decision.
+    # Interim chiefs leaving at the end of an agreed term did not depart by anyone's decision. A death or an
+    # illness is neither the board's decision nor a career move, and a departure when the firm merges or is
+    # taken over follows a change of control: such departures are usually left out of forced-versus-voluntary
+    # comparisons (a merger is also flagged, as it can hide a forced exit).
     "excluded": (
         "still in post", "incumbent", "serving", "unknown", "data error", "n a", "not applicable",
-        "interim term", "interim ended", "duplicate",
+        "interim term", "interim ended", "duplicate", "death", "died", "deceased", "passed away", "illness",
+        "health", "medical", "merger", "merged", "acquisition", "acquire", "acquiring", "takeover", "taken over",
     ),
 }
 AMBIGUITY_MARKERS: tuple[str, ...] = (
-    "pressure", "merger", "acquisition", "takeover", "restructur", "mutual agreement", "mutually",
-    "agreed", "disagreement", "reorgani", "spin off", "role eliminated",
+    "pressure", "merger", "merged", "acquisition", "acquire", "acquiring", "takeover", "taken over", "restructur",
+    "mutual agreement", "mutually", "agreed", "disagreement", "reorgani", "spin off", "role eliminated",
+)
+#: what the analyst should know about a suggestion from these words: the practice it follows (said on the page)
+PRACTICE_NOTES: tuple[tuple[tuple[str, ...], str], ...] = (
+    (("resign", "step down", "stood down", "step aside"),
+     "a resignation counts as voluntary unless a source says it was forced"),
+    (("death", "died", "deceased", "passed away", "illness", "health", "medical"),
+     "a death or an illness is left out, as nobody decided it (some analysts count it as voluntary)"),
+    (("merger", "merged", "acquisition", "acquire", "acquiring", "takeover", "taken over"),
+     "a departure at a merger or takeover is left out, as control changed hands (it can hide a forced exit)"),
 )
 
 
@@ -81,16 +97,23 @@ def suggest_category(code: str) -> Suggestion:
     category: Category | None = cats[0] if len(cats) == 1 else None
     ambiguous = bool(markers) or len(cats) > 1
     described = "; ".join(f"{cat} words: {', '.join(hits[cat])}" for cat in cats)
+    # the practice behind a one-category suggestion (with two, the analyst weighs the words themselves)
+    notes = [note for listed, note in PRACTICE_NOTES if len(cats) == 1 and any(w in matched for w in listed)]
+    # a marker that is also one of the category's words (a merger) is explained by its note, not repeated
+    doubtful = tuple(m for m in markers if m not in words)
     if len(cats) > 1:
-        why = f"matches more than one category ({described}); the analyst decides."
+        why = f"matches more than one category ({described}); left unmapped for the analyst to decide."
     elif markers and category:
-        why = f"{described}, but {', '.join(markers)} can mean otherwise; please confirm."
+        why = (f"{described}, but {', '.join(doubtful)} can mean otherwise; please confirm." if doubtful
+               else f"{described}; please confirm.")
     elif markers:
         why = f"mentions {', '.join(markers)}, which could be any category; left unmapped."
     elif category:
         why = f"{described}."
     else:
         why = "no known words; left unmapped."
+    if notes:
+        why += " Common practice: " + "; ".join(notes) + "."
     return Suggestion(code=code, category=category, matched=matched, ambiguous=ambiguous, why=why)
 
 

@@ -10,7 +10,6 @@ excludes such codes from every model.
 
 from __future__ import annotations
 
-import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import date
@@ -22,6 +21,7 @@ import pandas as pd
 from app.intake.announced import KeptWithWarning, read_announcements
 from app.intake.codes import CodeGroup, group_spellings
 from app.intake.dates import DATE_FORMATS, parse_dates
+from app.intake.in_post import is_still_in_post
 from app.intake.rawtable import DEFAULT_LIMITS, RawTable, ReadLimits
 from app.store import RejectedRow
 from app.store.raw_rows import RawCells, row_json, shared_map
@@ -29,18 +29,8 @@ from app.store.raw_rows import RawCells, row_json, shared_map
 DateOrder = Literal["auto", "dmy", "mdy"]
 DATE_ORDERS: tuple[DateOrder, ...] = get_args(DateOrder)
 
-_STILL_IN_POST = re.compile(
-    r"still\s+(?:in\s+(?:post|office|role)|serving|there)|incumbent|\bserving\b|\bin\s+(?:office|post)\b"
-    r"|currently\s+(?:ceo|in)",
-    re.IGNORECASE,
-)
 _INTERIM_VALUES = {"yes": True, "y": True, "true": True, "1": True, "no": False, "n": False,
                    "false": False, "0": False}
-
-
-def is_still_in_post(reason: str) -> bool:
-    """True when a reason code says the executive has not left ("still in post", "incumbent", ...)."""
-    return bool(_STILL_IN_POST.search(reason))
 
 
 @dataclass

@@ -7,13 +7,18 @@ override of the record first, then the mapping version's classification rules in
 record without the rule's field is not matched), then its code's category. The caller gives the category of
 each stored code spelling (``DepartureFilter.codes``: the counts match codes by code key, which SQL cannot
 compute) and the rules; see app.analysis.browse.
+
+Rows still in post (no departure date, a code that says the executive has not left: ``in_post_codes``, which
+the caller reads from the code's words, and not counted as forced or voluntary by the mapping or a case
+override) are not departures of any year: a year filter leaves them out, and ``in_post="only"`` lists them
+alone, as Coverage counts them apart.
 """
 
 from __future__ import annotations
 
 from collections.abc import Collection, Iterator
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Literal, get_args
 
 import pandas as pd
 from sqlalchemy import ColumnElement, Select, and_, case, func, literal, or_, select
@@ -44,6 +49,10 @@ LISTED_FIELDS: tuple[str, ...] = (
 )
 
 MAX_PER_PAGE = 500
+
+InPost = Literal["only", "none"]
+#: the still-in-post filter: ``only`` those rows, ``none`` of them (a year filter implies ``none``)
+IN_POST_FILTERS: tuple[InPost, ...] = get_args(InPost)
 
 #: what case overrides read of a departure: its identity and its cell key
 IDENTITY_FIELDS: tuple[str, ...] = (
@@ -77,8 +86,14 @@ class DepartureFilter:
     codes: tuple[tuple[str, str], ...] | None = None
     #: the mapping version's classification rules in evaluation order (None: read from the mapping version)
     rules: tuple[ClassificationRule, ...] | None = None
+    #: the stored reason codes that say the executive is still in post; their undated rows are not departures
+    in_post_codes: tuple[str, ...] = ()
+    #: ``only``: list the still-in-post rows alone; ``none``: leave them out (as any year filter does)
+    in_post: InPost | None = None
 
     def __post_init__(self) -> None:
+        if self.in_post is not None and self.in_post not in IN_POST_FILTERS:
+            raise StoreError(f"in_post must be one of {', '.join(IN_POST_FILTERS)}; got {self.in_post!r}.")
         if self.category is not None and self.category not in CATEGORY_FILTERS:
             raise StoreError(f"category must be one of {', '.join(CATEGORY_FILTERS)}; got {self.category!r}.")
         for name in ("year", "year_from", "year_to"):
@@ -170,6 +185,14 @@ class DepartureQueries(Gateway):
         d = departures.c
         conditions: list[ColumnElement[bool]] = [d.roster_id == roster_id,
                                                  d.version == version_of(roster_id, flt.version)]
+        # a row the mapping or a case override counts as forced or voluntary is taken as a departure after all
+        in_post = (and_(d.date.is_(None), d.reason.in_(flt.in_post_codes), category.notin_(["forced", "voluntary"]))
+                   if flt.in_post_codes else None)
+        if flt.in_post == "only":
+            conditions.append(in_post if in_post is not None else literal(False))
+        elif in_post is not None and (flt.in_post == "none" or flt.year is not None or flt.year_from is not None
+                                      or flt.year_to is not None):
+            conditions.append(~in_post)
         if flt.year is not None:
             conditions.append(d.year == flt.year)
         if flt.year_from is not None:
@@ -194,6 +217,17 @@ class DepartureQueries(Gateway):
             conditions.append(or_(*(func.lower(c).contains(needle, autoescape=True) for c in texts)))
         columns = [d[f] for f in LISTED_FIELDS if f != "category"]
         return select(*columns, category.label("category"), d.id.label("id")).where(*conditions)
+
+    def category_counts(self, roster_id: int, flt: DepartureFilter) -> pd.DataFrame:
+        """``year``, ``reason``, ``category``, ``departures``: the matching departures counted per year, code and
+        category (each classified as the list classifies it), sorted by those."""
+        inner = self._departure_select(roster_id, flt).subquery()
+        key = (inner.c.year, inner.c.reason, inner.c.category)
+        with self.engine.connect() as conn:
+            rows = conn.execute(select(*key, func.count()).group_by(*key).order_by(*key)).fetchall()
+        frame = pd.DataFrame.from_records([tuple(r) for r in rows],
+                                          columns=["year", "reason", "category", "departures"])
+        return frame.astype({"year": "int64", "reason": object, "category": object, "departures": "int64"})
 
     def count_departures(self, roster_id: int, flt: DepartureFilter) -> int:
         inner = self._departure_select(roster_id, flt).subquery()

@@ -112,6 +112,16 @@ class QuickReader:
             "SELECT year, sector, reason, departures FROM roster_cells WHERE roster_id = ? AND version = ? "
             "ORDER BY year, sector, reason", roster_id, version)]
 
+    def undated_counts(self, roster_id: int, version: int, reasons: list[str]) -> list[tuple[int, str, int]]:
+        """Rows with no departure date per (year, reason) among ``reasons`` of one roster version: the
+        still-in-post rows ``app.analysis.browse.in_post_counts`` counts (no rules or overrides here)."""
+        if not reasons:
+            return []
+        marks = ", ".join("?" * len(reasons))
+        return [(int(y), str(r), int(n)) for y, r, n in self._rows(
+            f"SELECT year, reason, count(*) FROM departures WHERE roster_id = ? AND version = ? AND date IS NULL "
+            f"AND reason IN ({marks}) GROUP BY year, reason ORDER BY year, reason", roster_id, version, *reasons)]
+
     def fit_runs(self, roster_id: int) -> Iterator[dict[str, Any]]:
         """The roster's finished fit runs, newest first (``Store.list_runs(roster_id, "fit")``, done only)."""
         yield from fit_runs(self.conn, roster_id)

@@ -29,6 +29,7 @@ from app.web import (
     roster_upload,
     roster_versions,
     rosters,
+    run_files,
     sectors,
     trend,
     universe,
@@ -115,7 +116,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
     for module in (auth, accounts, rosters, roster_upload, roster_versions, reasons, reason_rules, coverage,
-                   departures, trend, resampling, sectors, briefing, universe, profiles, overrides):
+                   departures, trend, resampling, run_files, sectors, briefing, universe, profiles, overrides):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)

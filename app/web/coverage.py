@@ -43,6 +43,9 @@ class CoveragePage:
     #: turnover per 100 firm-years over the roster's universe (no trend here; Trend fits it)
     rates: RatesSection | None = None
     records_mapping: str | None = field(default=None, metadata={"json_skip": True})
+    #: rows still in post (no departure date, a code saying the executive has not left): no departure of any
+    #: year, so no year of ``table`` counts them
+    still_in_post: int = 0
 
 
 CoverageBody = define(CoveragePage, "CoverageBody", fields={"table": list_of(CoverageYear)})
@@ -63,6 +66,7 @@ def _page(inp: AnalysisInput, threshold: float, rates: RatesSection | None = Non
         roster=inp.roster, mapping_label=inp.mapping_label, table=inp.coverage, suggestion=inp.suggestion,
         flags=inp.flags, window=inp.window, window_source=inp.window_source, threshold=threshold,
         warnings=inp.warnings(), figure=figure, rates=rates, records_mapping=mapping_ref(inp.mapping),
+        still_in_post=inp.in_post,
     )
 
 

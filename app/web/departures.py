@@ -7,7 +7,7 @@ import io
 import json
 import math
 from collections.abc import Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 from urllib.parse import urlencode
 
@@ -19,7 +19,13 @@ from app.analysis.inputs import parse_mapping_ref
 from app.analysis.overrides import resolve_overrides
 from app.intake.spreadsheet_safety import safe_csv
 from app.store import MAX_ID, DepartureFilter, MappingVersion, Roster, Store, StoreError
-from app.store.departure_query import CATEGORY_FILTERS, LISTED_FIELDS, MAX_PER_PAGE, SORT_KEYS
+from app.store.departure_query import (
+    CATEGORY_FILTERS,
+    IN_POST_FILTERS,
+    LISTED_FIELDS,
+    MAX_PER_PAGE,
+    SORT_KEYS,
+)
 from app.web.deps import BadRequest, NotFound, app_store
 from app.web.rendering import as_json, context_line, render
 from app.web.route_docs import YEAR, api_errors, download, page_errors, query
@@ -30,7 +36,8 @@ router = APIRouter()
 PER_PAGE = 50
 
 #: query parameter -> DepartureFilter field, for the text filters
-_TEXT_PARAMS = {"sector": "sector", "category": "category", "reason": "reason", "firm": "firm", "q": "q"}
+_TEXT_PARAMS = {"sector": "sector", "category": "category", "reason": "reason", "firm": "firm", "q": "q",
+                "in_post": "in_post"}
 _YEAR_PARAMS = {"year": "year", "from": "year_from", "to": "year_to"}
 
 HEADERS = {
@@ -69,6 +76,9 @@ class DeparturesPage:
     override_version: int | None = None
     #: the mapping version's case overrides of this roster that name no record of its current version
     overrides_not_applied: list[str] = field(default_factory=list)
+    #: rows of the roster still in post (no departure date, a code saying the executive has not left): no
+    #: departure of any year, so a year filter leaves them out; ``in_post=only`` lists them
+    in_post_rows: int = 0
 
 
 DeparturesBody = define(DeparturesPage, "DeparturesBody", fields={
@@ -156,6 +166,10 @@ def departures_data(store: Store, request: Request, roster_id: int) -> Departure
     if page > pages:
         raise BadRequest(f"page {page} is past the last page ({pages}) of {found.total} departure(s).")
     facets = store.departure_facets(asked.roster.id)
+    in_post = (store.count_departures(asked.roster.id, replace(asked.flt, in_post="only", year=None, year_from=None,
+                                                                year_to=None, sector=None, category=None,
+                                                                reason=None, firm=None, q=None))
+               if asked.flt.in_post_codes else 0)
     params = {**asked.filters, **({"sort": asked.sort} if asked.sort != "line" else {})}
     rows = [{**row, "override": asked.marks.get(row["id"])} for row in found.rows]
     newest = asked.version is not None and asked.version.version == _newest(store, asked.version.name)
@@ -165,7 +179,7 @@ def departures_data(store: Store, request: Request, roster_id: int) -> Departure
         years=facets["years"], sectors=facets["sectors"], reasons=facets["reasons"], query=urlencode(params),
         override_mapping=asked.version.name if newest and asked.version else None,
         override_version=asked.version.version if newest and asked.version else None,
-        overrides_not_applied=asked.missing,
+        overrides_not_applied=asked.missing, in_post_rows=in_post,
     )
 
 
@@ -181,6 +195,9 @@ _QUERY = query(
     ("category", {"type": "string", "enum": list(CATEGORY_FILTERS)},
      "category under the mapping; counted = forced or voluntary"),
     ("reason", {"type": "string"}, "only this reason code"),
+    ("in_post", {"type": "string", "enum": list(IN_POST_FILTERS)},
+     "rows still in post (no departure date, a code saying the executive has not left): only them, or none of "
+     "them; a year filter leaves them out, as they are no departure of any year"),
     ("firm", {"type": "string"}, "firm id or firm name, exactly"),
     ("q", {"type": "string"}, "text anywhere in firm, sector, executive, reason code or notes"),
     ("mapping", {"type": "string"}, "NAME or NAME:VERSION giving codes their category; the roster's by default"),

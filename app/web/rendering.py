@@ -102,6 +102,13 @@ def _fmt_count(value: int | None) -> str:
     return "n/a" if value is None else f"{int(value):,}"
 
 
+def mapping_words(mapping_label: str, capital: bool = False) -> str:
+    """``mapping NAME vN``, or "no mapping chosen yet" for a page's "no mapping" (never "mapping no mapping")."""
+    words = "no mapping chosen yet" if mapping_label == "no mapping" else f"mapping {mapping_label}"
+    return words[:1].upper() + words[1:] if capital else words
+
+
+templates.env.filters["mapping_words"] = mapping_words
 templates.env.filters["when"] = _fmt_when
 templates.env.filters["count"] = _fmt_count
 templates.env.filters["script_json"] = _script_json
@@ -113,7 +120,7 @@ templates.env.filters["ratio"] = _fmt_ratio
 def context_line(mapping_label: str, window: tuple[int, int] | None = None) -> str:
     """The grey line under the navigation: the mapping and window a page works with, in words when there is
     none yet (a new roster read "mapping no mapping · window 0–0")."""
-    parts = ["no mapping chosen yet" if mapping_label == "no mapping" else f"mapping {mapping_label}"]
+    parts = [mapping_words(mapping_label)]
     if window and all(window):
         parts.append(f"window {window[0]}–{window[1]}")
     return " · ".join(parts)
