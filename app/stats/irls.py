@@ -256,6 +256,20 @@ class _Work:
         return 2.0 * terms.sum(axis=-1)
 
 
+def _start_floor(resid: np.ndarray, totals: np.ndarray, scratch: np.ndarray) -> np.ndarray:
+    """A number below the deviance at the start, computed as :class:`_Work` computes it, for each row.
+
+    Pinsker's inequality bounds each group's deviance ``2 n KL(y, mu)`` below by ``4 n (y - mu)**2 =
+    4 resid**2 / n`` (``resid = f - n mu``). The computed deviance differs from the exact one by rounding
+    alone: at the start ``f / (n mu)`` and ``v / (n (1 - mu))`` lie in ``[0, 4/3]``, so every term is at most
+    ``0.38 n`` in size and the error is far below ``1e-12 * sum(n)``; the margin taken here is a million times
+    that. Groups must all hold departures.
+    """
+    squares = np.multiply(resid, resid, out=scratch)
+    squares /= totals
+    return 4.0 * squares.sum(axis=1) * (1.0 - 1e-6) - 1e-6 * totals.sum(axis=1)
+
+
 def _iterate(
     X: np.ndarray, forced: np.ndarray, totals: np.ndarray, active: np.ndarray, tol: float,
     max_iter: int, beta: np.ndarray, deviance: np.ndarray, iterations: np.ndarray, code: np.ndarray,
@@ -270,7 +284,9 @@ def _iterate(
     written into work arrays (``out=``); the deviance's residuals ``f - n mu`` become the next working
     response and the separation test's ``mu (1 - mu)`` the next weights; the row-by-row failure tests
     run only when one test over the whole stack says some row may have failed; results are written
-    when rows finish, and the stack is cut down only when some rows finish and others go on.
+    when rows finish, and the stack is cut down only when some rows finish and others go on. The
+    deviance at statsmodels' start, which only the stopping test of step 1 reads, is computed only for
+    rows where a bound without logarithms (:func:`_start_floor`) leaves that test undecided.
     """
     f, n = forced[active], totals[active]
     occupied = n > 0
@@ -288,7 +304,15 @@ def _iterate(
             eta[warm] = start[warm] @ X.T
             mu[warm] = expit(eta[warm])
         work = _Work(f.shape)
-        dev = work.deviance(f, v, n_safe, mu)
+        floor = None
+        if start is None and full:
+            # from statsmodels' start the deviance is nearly always far above the first step's, so the rule
+            # cannot stop at step 1; it is computed (below) only for rows where a cheap bound allows that
+            np.subtract(f, np.multiply(n, mu, out=work.fitted), out=work.resid)
+            floor = _start_floor(work.resid, n, work.ratio)
+            dev = np.full(f.shape[0], np.inf)  # |new - inf| passes no stopping rule
+        else:
+            dev = work.deviance(f, v, n_safe, mu)
         var = mu * (1.0 - mu)
         rows = active
         for it in range(1, max_iter + 1):
@@ -301,6 +325,11 @@ def _iterate(
             mu = expit(eta, out=mu)
             new_dev = work.deviance(f, v, n_safe, mu)
             var = np.multiply(mu, np.subtract(1.0, mu, out=var), out=var)
+            if floor is not None:
+                near = new_dev + 2.0 * tol * (np.abs(new_dev) + 0.1) > floor
+                if near.any():  # the start's deviance, as the plain loop computes it, where it can matter
+                    dev[near] = _Work(f[near].shape).deviance(f[near], v[near], n[near], (y[near] + 0.5) / 2.0)
+                floor = None
             bad = edge = None
             if full and math.isfinite(new_beta.sum() + new_dev.sum()) and var.min() >= SEPARATION_VARIANCE:
                 # every row finite and clear of 0 and 1 (a non-finite number makes a sum non-finite, NaN
