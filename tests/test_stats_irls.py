@@ -12,6 +12,7 @@ from app.stats.bootstrap import BLOCK_SIZE, draw_cells, draw_replicates
 from app.stats.cells import build_cells
 from app.stats.design import design_matrix, window_centre
 from app.stats.irls import BatchFit, arrow_design, fit_batch, solve_arrow_stack, solve_spd_stack
+from app.stats.irls_steps import ArrowStep
 
 
 def clustered_roster(seed: int, firms: int = 120, years: int = 8, sectors: int = 3) -> pd.DataFrame:
@@ -168,6 +169,30 @@ def test_arrow_solver_matches_numpy_on_arrow_matrices() -> None:
     assert np.isnan(solve_arrow_stack(arrow, weights, rhs)[0]).all()
     assert np.isfinite(solve_arrow_stack(arrow, weights, rhs)[1:]).all()
     assert np.isnan(solve_spd_stack(xtwx[:1] * 0, rhs[:1])).all()
+
+
+def test_one_block_step_equals_the_arrow_solver_bit_for_bit() -> None:
+    # oracles: solve_arrow_stack (the general arrow elimination) and numpy.linalg.solve on X' W X
+    rng = np.random.default_rng(5)
+    t = np.arange(9) - 4.0
+    X = np.column_stack([np.ones(9), t])
+    arrow = arrow_design(X)
+    assert arrow is not None
+    weights = rng.uniform(0.1, 50.0, size=(60, 9))
+    weights[0] = 0.0                    # no weight at all: singular
+    weights[1] = 0.0
+    weights[1, 4] = 3.0                 # weight on one year only: the slope is not identified
+    rhs = rng.normal(size=(60, 2))
+    step = ArrowStep(arrow)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        got = step.solve(weights, rhs)
+        expected = solve_arrow_stack(arrow, weights, rhs)
+    np.testing.assert_array_equal(got, expected)
+    assert np.isnan(got[:2]).all() and np.isfinite(got[2:]).all()
+    xtwx = np.einsum("kg,gi,gj->kij", weights[2:], X, X)
+    np.testing.assert_allclose(got[2:], np.linalg.solve(xtwx, rhs[2:, :, None])[:, :, 0], rtol=1e-10, atol=1e-12)
+    eta = np.empty((60, 9))
+    np.testing.assert_array_equal(step.linear(got, eta)[2:], got[2:, arrow.block] + got[2:, -1:] * t)
 
 
 @pytest.mark.parametrize("model", ["linear", "sector"])

@@ -101,23 +101,21 @@ class ArrowStep:
         """New coefficients, shape (n_fits, n_params); NaN rows where the system is singular."""
         if not self.one_block:
             return solve_arrow_stack(self.arrow, weights, xtwz)
-        ones, t = self.arrow.indicators, self.arrow.covariate
+        ones = self.arrow.indicators
         d = (weights @ ones)[:, 0]
-        b = ((weights * t) @ ones)[:, 0]
+        b = ((weights * self.arrow.covariate) @ ones)[:, 0]
         c = weights @ self.squares
-        u, v = xtwz[:, 0], xtwz[:, 1]
-        scale = np.maximum(d, np.abs(c))
-        singular = ~(scale > 0)
-        singular |= ~(d > 1e-13 * scale)
         ratio = b / d
         schur = c - ratio * b
-        singular |= ~(schur > 1e-13 * scale)
+        # the pivot tests of solve_arrow_stack in one: d and the Schur complement above 1e-13 of the scale
+        # (NaN fails; a zero scale leaves d <= 0, which fails too)
+        regular = np.minimum(d, schur) > 1e-13 * np.maximum(d, np.abs(c))
+        u, v = xtwz[:, 0], xtwz[:, 1]
         out = np.empty_like(xtwz)
-        last = out[:, 1]
-        np.divide(v - ratio * u, schur, out=last)
+        last = np.divide(v - ratio * u, schur, out=out[:, 1])
         np.subtract(u / d, ratio * last, out=out[:, 0])
-        if singular.any():
-            out[singular] = np.nan
+        if not regular.all():
+            out[~regular] = np.nan
         return out
 
     def linear(self, beta: np.ndarray, out: np.ndarray) -> np.ndarray:
