@@ -138,8 +138,7 @@ class GeneralStep:
         return solve_spd_stack((weights @ self.outer).reshape(-1, self.p, self.p), xtwz)
 
     def linear(self, beta: np.ndarray, out: np.ndarray) -> np.ndarray:
-        out[...] = beta @ self.X.T
-        return out
+        return np.matmul(beta, self.X.T, out=out)
 
 
 def solve_spd_stack(a: np.ndarray, b: np.ndarray) -> np.ndarray:
