@@ -6,11 +6,13 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from scipy.special import expit, xlog1py
 
 from app.stats.bootstrap import BLOCK_SIZE, draw_cells, draw_replicates
 from app.stats.cells import build_cells
 from app.stats.design import design_matrix, window_centre
-from app.stats.irls import arrow_design, fit_batch, solve_arrow_stack, solve_spd_stack
+from app.stats.irls import BatchFit, arrow_design, fit_batch, solve_arrow_stack, solve_spd_stack
+from app.stats.irls_steps import ArrowStep
 
 
 def clustered_roster(seed: int, firms: int = 120, years: int = 8, sectors: int = 3) -> pd.DataFrame:
@@ -169,6 +171,30 @@ def test_arrow_solver_matches_numpy_on_arrow_matrices() -> None:
     assert np.isnan(solve_spd_stack(xtwx[:1] * 0, rhs[:1])).all()
 
 
+def test_one_block_step_equals_the_arrow_solver_bit_for_bit() -> None:
+    # oracles: solve_arrow_stack (the general arrow elimination) and numpy.linalg.solve on X' W X
+    rng = np.random.default_rng(5)
+    t = np.arange(9) - 4.0
+    X = np.column_stack([np.ones(9), t])
+    arrow = arrow_design(X)
+    assert arrow is not None
+    weights = rng.uniform(0.1, 50.0, size=(60, 9))
+    weights[0] = 0.0                    # no weight at all: singular
+    weights[1] = 0.0
+    weights[1, 4] = 3.0                 # weight on one year only: the slope is not identified
+    rhs = rng.normal(size=(60, 2))
+    step = ArrowStep(arrow)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        got = step.solve(weights, rhs)
+        expected = solve_arrow_stack(arrow, weights, rhs)
+    np.testing.assert_array_equal(got, expected)
+    assert np.isnan(got[:2]).all() and np.isfinite(got[2:]).all()
+    xtwx = np.einsum("kg,gi,gj->kij", weights[2:], X, X)
+    np.testing.assert_allclose(got[2:], np.linalg.solve(xtwx, rhs[2:, :, None])[:, :, 0], rtol=1e-10, atol=1e-12)
+    eta = np.empty((60, 9))
+    np.testing.assert_array_equal(step.linear(got, eta)[2:], got[2:, arrow.block] + got[2:, -1:] * t)
+
+
 @pytest.mark.parametrize("model", ["linear", "sector"])
 @pytest.mark.parametrize("unit", ["departure", "firm"])
 def test_arrow_path_equals_general_path_and_statsmodels(model: str, unit: str) -> None:
@@ -200,3 +226,120 @@ def test_arrow_path_names_the_same_failures_as_the_general_path() -> None:
     np.testing.assert_allclose(fast.beta[2], general.beta[2], rtol=1e-10)
     with pytest.raises(ValueError, match="solver must be one of auto, general"):
         fit_batch(X, forced, totals, solver="lapack")  # type: ignore[arg-type]
+
+
+# ---------------------------------------------------------------- the loop against the plain loop
+
+def plain_irls(X: np.ndarray, forced: np.ndarray, totals: np.ndarray, general: bool = False,
+               max_iter: int = 50) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The oracle for stored numbers: the plain batched IRLS loop (statsmodels' start, R's relative rule, a
+    fresh array per operation, every row's tests every step), as fit_batch ran it before its work arrays.
+
+    Fits every row (the pre-fit checks of fit_batch are not repeated here). Returns beta, deviance,
+    iterations and failure reasons.
+    """
+    m, p = forced.shape[0], X.shape[1]
+    arrow = arrow_design(X)
+    outer = (X[:, :, None] * X[:, None, :]).reshape(X.shape[0], p * p)
+    beta, dev_out = np.full((m, p), np.nan), np.full(m, np.nan)
+    its, failure = np.zeros(m, dtype=np.int64), np.full(m, "", dtype="<U14")
+    f, n, rows = forced, totals, np.arange(m)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        y = np.where(n > 0, f / n, 0.0)
+        v, n_safe = n - f, np.where(n > 0, n, 1.0)
+
+        def deviance(mu: np.ndarray) -> np.ndarray:
+            fitted = n_safe * mu
+            return 2.0 * (xlog1py(f, (f - fitted) / fitted)
+                          + xlog1py(v, (v - (n_safe - fitted)) / (n_safe - fitted))).sum(axis=-1)
+
+        mu = (y + 0.5) / 2.0
+        eta = np.log(mu / (1.0 - mu))
+        dev = deviance(mu)
+        for it in range(1, max_iter + 1):
+            weights = n * (mu * (1.0 - mu))
+            xtwz = (weights * eta + (f - n * mu)) @ X
+            if general or arrow is None:
+                new_beta = solve_spd_stack((weights @ outer).reshape(-1, p, p), xtwz)
+                eta = new_beta @ X.T
+            else:
+                new_beta = solve_arrow_stack(arrow, weights, xtwz)
+                eta = new_beta[:, arrow.block] + new_beta[:, -1:] * arrow.covariate
+            mu = expit(eta)
+            new_dev = deviance(mu)
+            finite = np.isfinite(new_beta).all(axis=1)
+            edge = finite & ((n > 0) & (mu * (1.0 - mu) < 1e-9)).any(axis=1)
+            bad = ~finite | (~edge & ~np.isfinite(new_dev))
+            done = ~bad & ~edge & (np.abs(new_dev - dev) < 1e-10 * (np.abs(new_dev) + 0.1))
+            beta[rows], dev_out[rows], its[rows] = new_beta, new_dev, it
+            failure[rows[bad]], failure[rows[edge]] = "non_finite", "separation"
+            keep = ~(bad | edge | done)
+            rows, f, n, y, eta, mu, v, n_safe = (a[keep] for a in (rows, f, n, y, eta, mu, v, n_safe))
+            dev = new_dev[keep]
+            if not rows.size:
+                break
+    failure[rows] = "not_converged"
+    beta[failure != ""] = np.nan
+    return beta, dev_out, its, failure
+
+
+def assert_same_as_plain(fit: BatchFit, plain: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]) -> None:
+    """Bit for bit, on the rows fit_batch did fit (the others failed its pre-fit checks)."""
+    fitted = ~np.isin(fit.failure, ["no_forced", "no_voluntary", "rank_deficient"])
+    assert fitted.any()
+    beta, deviance, iterations, failure = plain
+    np.testing.assert_array_equal(fit.beta[fitted], beta[fitted])
+    np.testing.assert_array_equal(fit.deviance[fitted], deviance[fitted])
+    np.testing.assert_array_equal(fit.iterations[fitted], iterations[fitted])
+    np.testing.assert_array_equal(fit.failure[fitted], failure[fitted])
+
+
+@pytest.mark.parametrize("model", ["linear", "sector"])
+@pytest.mark.parametrize("unit", ["departure", "firm"])
+@pytest.mark.parametrize("firms", [12, 400])
+def test_the_loop_gives_the_plain_loops_numbers_bit_for_bit(model: str, unit: str, firms: int) -> None:
+    # oracles: the plain loop above (stored runs keep their numbers) and statsmodels GLM(Binomial) per fit;
+    # 12 firms over 8 years give empty years, separated and barely separated resamples
+    cells = build_cells(clustered_roster(3, firms=firms, sectors=3), by_sector=(model == "sector"))
+    design = design_matrix(cells.groups, model, window_centre(cells.window))  # type: ignore[arg-type]
+    X = np.asarray(design.matrix, dtype=float)
+    counts = draw_cells(cells, unit=unit, seed=11, block=0)  # type: ignore[arg-type]
+    g = cells.n_groups
+    forced, totals = counts[:, :g], counts[:, :g] + counts[:, g:]
+    for solver, general in (("auto", False), ("general", True)):
+        fit = fit_batch(X, forced, totals, solver=solver)  # type: ignore[arg-type]
+        assert_same_as_plain(fit, plain_irls(X, forced, totals, general=general))
+    if firms == 12:
+        assert (totals == 0).any() and "separation" in fit.failure
+    for i in np.flatnonzero(fit.converged)[:15]:
+        np.testing.assert_allclose(fit.beta[i], statsmodels_slope(X, forced[i], totals[i]), rtol=1e-9, atol=1e-9)
+
+
+def test_the_start_deviance_is_computed_where_step_one_can_stop() -> None:
+    # hand-derived: a forced share of exactly 1/2 in every year is statsmodels' start itself, so step 1
+    # changes nothing and the rule stops there (the start's deviance, 0, must be computed); the other rows
+    # start far from their fit (oracle for all: the plain loop)
+    X = np.column_stack([np.ones(6), np.arange(6) - 2.5])
+    totals = np.array([[40, 60, 80, 20, 10, 50], [40, 60, 80, 20, 10, 50], [4000, 6000, 8000, 2000, 1000, 5000.0]])
+    forced = np.array([[20, 30, 40, 10, 5, 25], [9, 20, 35, 10, 6, 40], [900, 2000, 3500, 1000, 600, 4000.0]])
+    fit = fit_batch(X, forced, totals)
+    assert fit.iterations[0] == 1 and fit.deviance[0] == 0.0 and np.array_equal(fit.beta[0], [0.0, 0.0])
+    assert (fit.iterations[1:] > 2).all()
+    assert_same_as_plain(fit, plain_irls(X, forced, totals))
+    # a start given as NaN is statsmodels' start without the bound: the same numbers
+    cold = fit_batch(X, forced, totals, start=np.full(2, np.nan))
+    np.testing.assert_array_equal(cold.beta, fit.beta)
+    np.testing.assert_array_equal(cold.iterations, fit.iterations)
+
+
+def test_failures_are_reported_as_by_the_plain_loop() -> None:
+    # hand-built: separation, quasi-separation, an ordinary fit, and iterations running out (max_iter=2)
+    t = np.arange(6) - 2.5
+    X = np.column_stack([np.ones(6), t])
+    n = np.tile(np.full(6, 5.0), (4, 1))
+    forced = np.array([[5, 5, 5, 0, 0, 0], [5, 5, 3, 0, 0, 0], [3, 1, 2, 2, 4, 1], [1, 1, 2, 3, 4, 4]], dtype=float)
+    for max_iter in (2, 50):
+        fit = fit_batch(X, forced, n, max_iter=max_iter)
+        assert_same_as_plain(fit, plain_irls(X, forced, n, max_iter=max_iter))
+    assert fit_batch(X, forced, n, max_iter=2).failure.tolist() == ["not_converged"] * 4
+    assert fit.failure.tolist() == ["separation", "separation", "", ""]

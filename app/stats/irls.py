@@ -7,13 +7,27 @@ iteration instead of one statsmodels fit per resample.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Literal, get_args
 
 import numpy as np
 from scipy.special import expit, xlog1py
 
+from app.stats.irls_steps import (
+    ArrowDesign,
+    ArrowStep,
+    GeneralStep,
+    arrow_design,
+    solve_arrow_stack,
+    solve_spd_stack,
+)
 from app.types import check_choice
+
+__all__ = [
+    "FAILURE_REASONS", "SOLVERS", "ArrowDesign", "BatchFit", "arrow_design", "binomial_deviance",
+    "converged_relative", "fit_batch", "solve_arrow_stack", "solve_spd_stack",
+]
 
 FailureReason = Literal[
     "no_forced", "no_voluntary", "rank_deficient", "separation", "non_finite", "not_converged",
@@ -168,192 +182,186 @@ def fit_batch(
     n_fits, n_groups = forced.shape
     if start is not None:
         start = np.broadcast_to(np.asarray(start, dtype=float), (n_fits, X.shape[1]))
-    n_params = X.shape[1]
-    failure = np.full(n_fits, "", dtype="<U14")
-    failure[(forced.sum(axis=1) == totals.sum(axis=1))] = "no_voluntary"
-    failure[forced.sum(axis=1) == 0] = "no_forced"
-    unsupported = (totals @ (X != 0)) == 0  # a column with no departures under it is unidentified
-    failure[(failure == "") & unsupported.any(axis=1)] = "rank_deficient"
+    prepared = _prepare(X, solver)
+    kept = forced.sum(axis=1)
+    code = np.zeros(n_fits, dtype=np.int8)  # 0: fitted, k: FAILURE_REASONS[k - 1]
+    code[kept == totals.sum(axis=1)] = _CODE["no_voluntary"]
+    code[kept == 0] = _CODE["no_forced"]
+    unsupported = ((totals @ prepared.support) == 0).any(axis=1)  # a column with no departures under it
+    code[(code == 0) & unsupported] = _CODE["rank_deficient"]     # is unidentified
 
-    beta = np.full((n_fits, n_params), np.nan)
+    beta = np.full((n_fits, X.shape[1]), np.nan)
     deviance = np.full(n_fits, np.nan)
     iterations = np.zeros(n_fits, dtype=np.int64)
-    active = np.flatnonzero(failure == "")
-    converged = np.zeros(n_fits, dtype=bool)
+    active = np.flatnonzero(code == 0)
     if active.size:
-        arrow = arrow_design(X) if solver == "auto" else None
-        _iterate(X, forced, totals, active, tol, max_iter, beta, deviance, iterations, converged, failure,
-                 arrow, None if start is None else start[active])
-    beta[failure != ""] = np.nan
-    return BatchFit(beta=beta, converged=failure == "", failure=failure, deviance=deviance,
+        _iterate(X, forced, totals, active, tol, max_iter, beta, deviance, iterations, code, prepared.step,
+                 None if start is None else start[active])
+    failed = code != 0
+    beta[failed] = np.nan
+    return BatchFit(beta=beta, converged=~failed, failure=_LABELS[code], deviance=deviance,
                     iterations=iterations)
 
 
+_CODE = {reason: k + 1 for k, reason in enumerate(FAILURE_REASONS)}
+_LABELS = np.array(["", *FAILURE_REASONS], dtype="<U14")
+
+
 @dataclass(frozen=True)
-class ArrowDesign:
-    """A design of block indicators plus one last covariate column, e.g. one intercept per sector
-    and a common year slope (the linear trend is the one-block case).
+class _Prepared:
+    """What a design needs for every batch of fits: its step solver, and which columns each group
+    supports (``X != 0``) for the identifiability test."""
 
-    Its ``X' W X`` is an arrow matrix: diagonal over the indicator columns plus a dense last row
-    and column, so every IRLS step is solved through the Schur complement of that diagonal in
-    O(n_params) instead of a general p x p elimination.
+    step: ArrowStep | GeneralStep
+    support: np.ndarray
 
-    Attributes
-    ----------
-    block : numpy.ndarray of int, shape (n_groups,)
-        Indicator column that is 1 in each row.
-    covariate : numpy.ndarray, shape (n_groups,)
-        The last column of the design.
-    indicators : numpy.ndarray, shape (n_groups, n_params - 1)
-        The indicator columns, contiguous.
+
+def _prepare(X: np.ndarray, solver: Solver) -> _Prepared:
+    """The step solver for ``X`` (an arrow design's closed form unless ``solver="general"``) and its
+    support, kept for reuse: a bootstrap fits block after block of resamples on one design."""
+    key = (solver, X.shape, X.tobytes())
+    prepared = _PREPARED.get(key)
+    if prepared is None:
+        arrow = arrow_design(X) if solver == "auto" else None
+        prepared = _Prepared(GeneralStep(X) if arrow is None else ArrowStep(arrow), (X != 0).astype(float))
+        if len(_PREPARED) >= 64:
+            _PREPARED.clear()
+        _PREPARED[key] = prepared
+    return prepared
+
+
+_PREPARED: dict[tuple[str, tuple[int, ...], bytes], _Prepared] = {}
+
+
+class _Work:
+    """Work arrays for a stack of fits, shape (n_fits, n_groups), written in place every iteration.
+
+    ``resid`` carries ``f - n mu`` from one iteration's deviance to the next one's working response.
     """
 
-    block: np.ndarray
-    covariate: np.ndarray
-    indicators: np.ndarray
+    def __init__(self, shape: tuple[int, ...], resid: np.ndarray | None = None) -> None:
+        self.weights, self.z, self.fitted, self.ratio, self.other = (np.empty(shape) for _ in range(5))
+        self.resid = np.empty(shape) if resid is None else resid
+
+    def deviance(self, forced: np.ndarray, voluntary: np.ndarray, totals: np.ndarray, mu: np.ndarray) -> np.ndarray:
+        """:func:`binomial_deviance` for totals that are all positive (see ``_iterate``), the same
+        operations in the same order; leaves ``totals * mu`` in ``fitted`` and ``forced - totals * mu`` in
+        ``resid``."""
+        fitted = np.multiply(totals, mu, out=self.fitted)
+        np.subtract(forced, fitted, out=self.resid)
+        terms = xlog1py(forced, np.divide(self.resid, fitted, out=self.ratio), out=self.ratio)
+        fitted = np.subtract(totals, fitted, out=self.other)
+        np.subtract(voluntary, fitted, out=self.z)
+        terms += xlog1py(voluntary, np.divide(self.z, fitted, out=self.z), out=self.z)
+        return 2.0 * terms.sum(axis=-1)
 
 
-def arrow_design(X: np.ndarray) -> ArrowDesign | None:
-    """Detect an arrow design: columns ``0 .. p-2`` are 0/1 with exactly one 1 per row.
+def _start_floor(resid: np.ndarray, totals: np.ndarray, scratch: np.ndarray) -> np.ndarray:
+    """A number below the deviance at the start, computed as :class:`_Work` computes it, for each row.
 
-    Returns None for any other design (which then takes the general solver).
+    Pinsker's inequality bounds each group's deviance ``2 n KL(y, mu)`` below by ``4 n (y - mu)**2 =
+    4 resid**2 / n`` (``resid = f - n mu``). The computed deviance differs from the exact one by rounding
+    alone: at the start ``f / (n mu)`` and ``v / (n (1 - mu))`` lie in ``[0, 4/3]``, so every term is at most
+    ``0.38 n`` in size and the error is far below ``1e-12 * sum(n)``; the margin taken here is a million times
+    that. Groups must all hold departures.
     """
-    X = np.asarray(X, dtype=float)
-    if X.ndim != 2 or X.shape[1] < 2 or X.shape[0] == 0:
-        return None
-    indicators = X[:, :-1]
-    # (== comparisons, not np.isin: this runs once per batch of fits, and isin's set machinery cost ~5% of a
-    # 10,000-resample departure bootstrap)
-    if not (((indicators == 0.0) | (indicators == 1.0)).all() and (indicators.sum(axis=1) == 1.0).all()):
-        return None
-    return ArrowDesign(block=np.argmax(indicators, axis=1), covariate=np.ascontiguousarray(X[:, -1]),
-                       indicators=np.ascontiguousarray(indicators))
-
-
-def solve_arrow_stack(arrow: ArrowDesign, weights: np.ndarray, xtwz: np.ndarray) -> np.ndarray:
-    """Solve ``(X' W_k X) beta_k = xtwz_k`` for every row ``k`` of ``weights`` on an arrow design.
-
-    This is the elimination :func:`solve_spd_stack` performs on the same matrices (indicator
-    pivots first; their columns do not interact), written out: the last pivot is the Schur
-    complement ``c - sum_s b_s**2 / d_s`` with ``d_s`` the weight of block ``s``, ``b_s`` its
-    weighted covariate sum and ``c`` the weighted sum of squared covariates. Systems that are not
-    numerically positive definite (same pivot test as :func:`solve_spd_stack`) give a NaN row.
-    """
-    t = arrow.covariate
-    d = weights @ arrow.indicators
-    b = (weights * t) @ arrow.indicators
-    c = weights @ (t * t)
-    u, v = xtwz[:, :-1], xtwz[:, -1]
-    scale = np.maximum(d.max(axis=1), np.abs(c))
-    singular = ~(scale > 0) | ~(d > 1e-13 * scale[:, None]).all(axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = b / d
-        schur = c - (ratio * b).sum(axis=1)
-        singular |= ~(schur > 1e-13 * scale)
-        last = (v - (ratio * u).sum(axis=1)) / schur
-        out = np.empty_like(xtwz)
-        out[:, :-1] = u / d - ratio * last[:, None]
-    out[:, -1] = last
-    out[singular] = np.nan
-    return out
+    squares = np.multiply(resid, resid, out=scratch)
+    squares /= totals
+    return 4.0 * squares.sum(axis=1) * (1.0 - 1e-6) - 1e-6 * totals.sum(axis=1)
 
 
 def _iterate(
     X: np.ndarray, forced: np.ndarray, totals: np.ndarray, active: np.ndarray, tol: float,
-    max_iter: int, beta: np.ndarray, deviance: np.ndarray, iterations: np.ndarray,
-    converged: np.ndarray, failure: np.ndarray, arrow: ArrowDesign | None,
+    max_iter: int, beta: np.ndarray, deviance: np.ndarray, iterations: np.ndarray, code: np.ndarray,
+    step: ArrowStep | GeneralStep,
     start: np.ndarray | None = None,
 ) -> None:
-    """Run IRLS on the rows in ``active``, writing results into the output arrays in place."""
-    n_params = X.shape[1]
-    # X_i X_j per group, so that X' W X for every fit is one matrix product
-    outer = None if arrow is not None else (X[:, :, None] * X[:, None, :]).reshape(X.shape[0], n_params**2)
+    """Run IRLS on the rows in ``active``, writing results and failure codes into the output arrays in place.
+
+    The arithmetic is the plain loop's (weights ``n mu (1 - mu)``, working response, solve, ``mu``,
+    deviance, tests) operation for operation, so the estimates are the same bit for bit. What is saved
+    is numpy calls, which at a few thousand numbers per array cost more than the arithmetic: arrays are
+    written into work arrays (``out=``); the deviance's residuals ``f - n mu`` become the next working
+    response and the separation test's ``mu (1 - mu)`` the next weights; the row-by-row failure tests
+    run only when one test over the whole stack says some row may have failed; results are written
+    when rows finish, and the stack is cut down only when some rows finish and others go on. The
+    deviance at statsmodels' start, which only the stopping test of step 1 reads, is computed only for
+    rows where a bound without logarithms (:func:`_start_floor`) leaves that test undecided.
+    """
     f, n = forced[active], totals[active]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        y = np.where(n > 0, f / n, 0.0)
-    # the deviance is evaluated every iteration, so its group masks are folded in once here:
-    # a group without departures gets total 1 in the denominators, where its zero counts make
-    # every term 0 (``xlog1py(0, x) = 0``)
-    v = n - f
-    n_safe = np.where(n > 0, n, 1.0)
-    mu = (y + 0.5) / 2.0
-    eta = np.log(mu / (1.0 - mu))
-    if start is not None:
-        warm = np.isfinite(start).all(axis=1)
-        eta[warm] = start[warm] @ X.T
-        mu[warm] = expit(eta[warm])
-    dev = _deviance(f, v, n_safe, mu)
-    rows = active
-    for it in range(1, max_iter + 1):
-        var = mu * (1.0 - mu)
-        weights = n * var
-        # X'W z with z = eta + (y - mu) / var, written without the division
-        xtwz = (weights * eta + (f - n * mu)) @ X
-        if arrow is None:
-            assert outer is not None
-            new_beta = solve_spd_stack((weights @ outer).reshape(-1, n_params, n_params), xtwz)
-            eta = new_beta @ X.T
+    occupied = n > 0
+    full = bool(occupied.all())  # the usual case: no group of any fit is empty
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        y = np.where(occupied, f / n, 0.0)
+        v = n - f
+        # a group without departures gets total 1 in the deviance's denominators, where its zero counts
+        # make every term 0 (``xlog1py(0, x) = 0``)
+        n_safe = n if full else np.where(occupied, n, 1.0)
+        mu = (y + 0.5) / 2.0
+        eta = np.log(mu / (1.0 - mu))
+        if start is not None:
+            warm = np.isfinite(start).all(axis=1)
+            eta[warm] = start[warm] @ X.T
+            mu[warm] = expit(eta[warm])
+        work = _Work(f.shape)
+        floor = None
+        if start is None and full:
+            # from statsmodels' start the deviance is nearly always far above the first step's, so the rule
+            # cannot stop at step 1; it is computed (below) only for rows where a cheap bound allows that
+            np.subtract(f, np.multiply(n, mu, out=work.fitted), out=work.resid)
+            floor = _start_floor(work.resid, n, work.ratio)
+            dev = np.full(f.shape[0], np.inf)  # |new - inf| passes no stopping rule
         else:
-            new_beta = solve_arrow_stack(arrow, weights, xtwz)
-            eta = new_beta[:, arrow.block] + new_beta[:, -1:] * arrow.covariate
-        mu = expit(eta)
-        new_dev = _deviance(f, v, n_safe, mu)
-        finite = np.isfinite(new_beta).all(axis=1)
-        # fitted shares at 0 or 1 mean the coefficients are running off to infinity: stop there
-        # rather than let p(1 - p) underflow into a division by zero
-        edge = finite & ((n > 0) & (mu * (1.0 - mu) < SEPARATION_VARIANCE)).any(axis=1)
-        bad = ~finite | (~edge & ~np.isfinite(new_dev))
-        done = ~bad & ~edge & converged_relative(dev, new_dev, tol)
-        beta[rows] = new_beta
-        deviance[rows] = new_dev
-        iterations[rows] = it
-        failure[rows[bad]] = "non_finite"
-        failure[rows[edge]] = "separation"
-        finished = bad | edge | done
-        converged[rows[done]] = True
-        if finished.all():
-            rows = rows[:0]
-            break
-        keep = ~finished
-        rows, f, n, y, eta, mu = rows[keep], f[keep], n[keep], y[keep], eta[keep], mu[keep]
-        v, n_safe = v[keep], n_safe[keep]
-        dev = new_dev[keep]
+            dev = work.deviance(f, v, n_safe, mu)
+        var = mu * (1.0 - mu)
+        rows = active
+        for it in range(1, max_iter + 1):
+            weights = np.multiply(n, var, out=work.weights)
+            # X'W z with z = eta + (y - mu) / var, written without the division
+            z = np.multiply(weights, eta, out=work.z)
+            z += work.resid if full else f - n * mu
+            new_beta = step.solve(weights, z @ X)
+            eta = step.linear(new_beta, eta)
+            mu = expit(eta, out=mu)
+            new_dev = work.deviance(f, v, n_safe, mu)
+            var = np.multiply(mu, np.subtract(1.0, mu, out=var), out=var)
+            if floor is not None:
+                near = new_dev + 2.0 * tol * (np.abs(new_dev) + 0.1) > floor
+                if near.any():  # the start's deviance, as the plain loop computes it, where it can matter
+                    dev[near] = _Work(f[near].shape).deviance(f[near], v[near], n[near], (y[near] + 0.5) / 2.0)
+                floor = None
+            bad = edge = None
+            if full and math.isfinite(new_beta.sum() + new_dev.sum()) and var.min() >= SEPARATION_VARIANCE:
+                # every row finite and clear of 0 and 1 (a non-finite number makes a sum non-finite, NaN
+                # makes the minimum NaN): the row-by-row tests below would find no failure
+                finished = converged_relative(dev, new_dev, tol)
+            else:
+                finite = np.isfinite(new_beta).all(axis=1)
+                # fitted shares at 0 or 1 mean the coefficients are running off to infinity: stop there
+                # rather than let p(1 - p) underflow into a division by zero
+                edge = finite & (occupied & (var < SEPARATION_VARIANCE)).any(axis=1)
+                bad = ~finite | (~edge & ~np.isfinite(new_dev))
+                finished = bad | edge | converged_relative(dev, new_dev, tol)
+            last = it == max_iter
+            if not (last or finished.any()):
+                dev = new_dev
+                continue
+            every = last or bool(finished.all())
+            pick = slice(None) if every else finished
+            beta[rows[pick]] = new_beta[pick]
+            deviance[rows[pick]] = new_dev[pick]
+            iterations[rows[pick]] = it
+            if bad is not None and edge is not None:
+                code[rows[bad]] = _CODE["non_finite"]
+                code[rows[edge]] = _CODE["separation"]
+            keep = ~finished
+            if every:
+                rows = rows[keep]
+                break
+            rows, f, n, v, eta, mu, var, occupied = (a[keep] for a in (rows, f, n, v, eta, mu, var, occupied))
+            n_safe = n if full else n_safe[keep]
+            dev = new_dev[keep]
+            work = _Work(f.shape, work.resid[keep])
     # statsmodels would report these with huge coefficients and a warning at best; here they are
     # named so that no such estimate passes as a bootstrap replicate
-    failure[rows] = "not_converged"
-
-
-def _deviance(forced: np.ndarray, voluntary: np.ndarray, totals: np.ndarray, mu: np.ndarray) -> np.ndarray:
-    """:func:`binomial_deviance` for totals that are all positive (see ``_iterate``)."""
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        fitted = totals * mu
-        dev = xlog1py(forced, (forced - fitted) / fitted)
-        fitted = totals - fitted
-        dev += xlog1py(voluntary, (voluntary - fitted) / fitted)
-    return 2.0 * dev.sum(axis=-1)
-
-
-def solve_spd_stack(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Solve each symmetric positive definite system ``a[k] x = b[k]``.
-
-    Gaussian elimination without pivoting (safe for positive definite matrices), vectorised over
-    the stack: a few numpy calls per column instead of one LAPACK call per system, and each
-    system's arithmetic does not depend on the others. A system that is not numerically
-    positive definite gives a NaN row.
-    """
-    m = np.concatenate([a, b[:, :, None]], axis=2)
-    p = a.shape[1]
-    scale = np.abs(np.diagonal(a, axis1=1, axis2=2)).max(axis=1)
-    singular = ~(scale > 0)
-    for k in range(p):
-        pivot = m[:, k, k]
-        singular |= ~(pivot > 1e-13 * scale)
-        pivot = np.where(singular, 1.0, pivot)
-        m[:, k, k:] /= pivot[:, None]
-        if k + 1 < p:
-            m[:, k + 1:, k:] -= m[:, k + 1:, k, None] * m[:, k, None, k:]
-    x = np.empty_like(b)
-    for k in range(p - 1, -1, -1):
-        x[:, k] = m[:, k, p] - (m[:, k, k + 1:p] * x[:, k + 1:]).sum(axis=1)
-    x[singular] = np.nan
-    return x
+    code[rows] = _CODE["not_converged"]
