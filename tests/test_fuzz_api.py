@@ -114,7 +114,9 @@ def _collect_garbage_inside_the_test() -> Iterator[None]:
 
 
 @schema.parametrize()
-@settings(max_examples=25, derandomize=True, database=None, deadline=None,
+# 15 cases per operation (25 until session 5, when this file took ~7 minutes of CPU on a loaded 2-core machine;
+# the 500s it found are pinned by their own tests in test_openapi.py)
+@settings(max_examples=15, derandomize=True, database=None, deadline=None,
           suppress_health_check=list(HealthCheck))
 def test_api_operation(case: Any) -> None:
     case.call_and_validate(checks=[not_a_server_error, response_schema_conformance])
