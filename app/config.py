@@ -17,7 +17,7 @@ def _positive_int(name: str, default: int) -> int:
     value = os.environ.get(name, "").strip().replace("_", "")
     if not value:
         return default
-    if not value.isdigit() or int(value) < 1:
+    if not value.isdecimal() or int(value) < 1:
         raise ValueError(f"{name} must be a whole number above 0; got {os.environ[name]!r}.")
     return int(value)
 

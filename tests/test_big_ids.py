@@ -47,3 +47,13 @@ def test_big_version_numbers_are_unknown_too(client: Any) -> None:
         r = client.get(f"/rosters/1/departures?mapping=demo standard:{big}")
         assert r.status_code in (400, 404), r.text[:200]
         assert client.get(f"/rosters/1/reasons?a=1&b={big}").status_code == 404
+
+
+def test_a_version_that_is_not_a_version_number_is_refused(client: Any) -> None:
+    # live schema fuzzing (session 5) found version=-1 answered with the latest version: the schema says 1 or more
+    for bad in ("-1", "0", "abc", "²", "1.5", "-134661706707"):
+        for path in ("/mappings/demo standard.csv", "/mapping-rules/demo standard.csv"):
+            r = client.get(path, params={"version": bad}, headers={"accept": "application/json"})
+            assert r.status_code == 400, (path, bad, r.status_code)
+            assert "version number (1 or more)" in r.json()["error"]
+    assert client.get("/mappings/demo standard.csv", params={"version": "1"}).status_code == 200

@@ -81,7 +81,7 @@ def worker_name() -> str:
 def _dead_here(worker: str) -> bool:
     """True when ``worker`` ran on this machine in a process that no longer exists."""
     parts = worker.rsplit(":", 2)  # host names, boot ids and namespace numbers hold no colon
-    if len(parts) != 3 or parts[0] != _machine() or not parts[1].isdigit():
+    if len(parts) != 3 or parts[0] != _machine() or not parts[1].isdecimal():
         return False
     pid = parts[1]
     if int(pid) == os.getpid():  # this very process: its runs are alive, or handled by its own shutdown

@@ -72,7 +72,7 @@ def fit_params(model: str, spline_df: int, quasi: bool) -> dict[str, Any]:
 def parse_mapping_ref(ref: str) -> tuple[str, int | None]:
     """``NAME`` or ``NAME:VERSION``."""
     name, sep, version = ref.rpartition(":")
-    if sep and version.isdigit():
+    if sep and version.isdecimal():
         return name, int(version)
     return ref, None
 

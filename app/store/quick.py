@@ -74,7 +74,7 @@ class QuickReader:
     def roster(self, ref: int | str) -> QuickRoster | None:
         """``Store.get_roster(ref)`` (newest version): by id when ``ref`` is a number in range, else by name."""
         row = None
-        if (isinstance(ref, int) or str(ref).isdigit()) and 0 < int(ref) <= MAX_ID:
+        if (isinstance(ref, int) or str(ref).isdecimal()) and 0 < int(ref) <= MAX_ID:
             row = next(iter(self._rows("SELECT id, name, version FROM rosters WHERE id = ?", int(ref))), None)
         if row is None:
             row = next(iter(self._rows("SELECT id, name, version FROM rosters WHERE name = ?", str(ref))), None)

@@ -158,7 +158,7 @@ class RosterQueries(Gateway):
         naming what was asked for."""
         with self.engine.connect() as conn:
             row = None
-            numeric = isinstance(ref, int) or (isinstance(ref, str) and ref.isdigit())
+            numeric = isinstance(ref, int) or (isinstance(ref, str) and ref.isdecimal())
             if numeric and 0 < int(ref) <= MAX_ID:
                 row = conn.execute(select(rosters).where(rosters.c.id == int(ref))).first()
             if row is None:

@@ -141,7 +141,7 @@ def _run_arg(request: Request) -> int | None:
     raw = request.query_params.get("run")
     if not raw:
         return None
-    if not raw.isdigit():
+    if not raw.isdecimal():
         raise BadRequest(f"run must be a run number; got {raw!r}.")
     return int(raw)
 
@@ -169,7 +169,7 @@ def briefing_api(request: Request, roster_id: int) -> JSONResponse:
 def _input(store: Store, roster_id: int, request: Request) -> AnalysisInput:
     roster = _roster(store, roster_id)
     lo, hi = request.query_params.get("from"), request.query_params.get("to")
-    window = (int(lo), int(hi)) if lo and hi and lo.isdigit() and hi.isdigit() else None
+    window = (int(lo), int(hi)) if lo and hi and lo.isdecimal() and hi.isdecimal() else None
     try:
         return load_input(store, roster.id, window=window)
     except StoreError as exc:
@@ -285,6 +285,6 @@ def _briefing_settings_save(request: Request, roster_id: int, form: dict[str, st
         raise BadRequest(f"The briefing settings were not saved: {exc}") from exc
     # back to the same ticks and run: rebuilt from known values only, never followed as an address
     back = parse_qsl(str(form.get("back") or ""))
-    params = [(k, v) for k, v in back if (k == "chart" and v in CHART_NAMES) or (k == "run" and v.isdigit())]
+    params = [(k, v) for k, v in back if (k == "chart" and v in CHART_NAMES) or (k == "run" and v.isdecimal())]
     url = request.url_for("briefing_page", roster_id=roster.id)
     return RedirectResponse(f"{url}?{urlencode([*params, ('saved', '1')])}", status_code=303)

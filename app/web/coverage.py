@@ -102,7 +102,7 @@ def coverage_api(request: Request, roster_id: int) -> JSONResponse:
 
 def _year(form: Any, key: str) -> int:
     raw = str(form.get(key) or "").strip()
-    if not raw.isdigit():
+    if not raw.isdecimal():
         raise BadRequest(f"The window's {key.replace('window_', '')} year must be a year such as 1998; got {raw!r}.")
     return int(raw)
 

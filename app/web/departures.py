@@ -103,7 +103,7 @@ def _int_param(request: Request, name: str, what: str, *, low: int = 0, high: in
     raw = request.query_params.get(name, "").strip()
     if not raw:
         return None
-    if not raw.isdigit() or not low <= int(raw) <= high:
+    if not raw.isdecimal() or not low <= int(raw) <= high:
         raise BadRequest(f"{name} must be {what}; got {raw!r}.")
     return int(raw)
 

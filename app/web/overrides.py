@@ -63,7 +63,7 @@ def _number(form: dict[str, str | Upload], name: str, what: str, *, required: bo
     raw = str(form.get(name) or "").strip()
     if not raw and not required:
         return None
-    if not raw.isdigit() or not 0 < int(raw) <= MAX_ID:
+    if not raw.isdecimal() or not 0 < int(raw) <= MAX_ID:
         raise BadRequest(f"{name} must be {what}; got {raw!r}. Nothing was saved.")
     return int(raw)
 

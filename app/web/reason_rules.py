@@ -79,7 +79,7 @@ def _mapping_of(store: Store, roster_id: int) -> tuple[Roster, MappingVersion]:
 def _form_rules(form: dict[str, Any]) -> tuple[ClassificationRule, ...]:
     """Rows ``rule-N-code|field|comparison|value|category`` in N order; a row with ``rule-N-drop`` or with
     no code and no value is left out; a bad row is refused with its number."""
-    numbers = sorted({int(k.split("-")[1]) for k in form if k.startswith("rule-") and k.split("-")[1].isdigit()})
+    numbers = sorted({int(k.split("-")[1]) for k in form if k.startswith("rule-") and k.split("-")[1].isdecimal()})
     rules: list[ClassificationRule] = []
     for n in numbers:
         cell = {part: str(form.get(f"rule-{n}-{part}") or "").strip()
@@ -192,11 +192,13 @@ def _rules_import(request: Request, roster_id: int, form: Any) -> RedirectRespon
 
 @router.get("/mapping-rules/{name:path}.csv", name="rules_csv", response_class=Response,
             responses={**download("The version's rules as code,field,comparison,value,category", "text/csv"),
-                       **page_errors(404)},
+                       **page_errors(400, 404)},
             openapi_extra=query(("version", {"type": "integer", "minimum": 1}, "default: the latest")))
 def rules_csv(request: Request, name: str) -> Response:
     raw = request.query_params.get("version")
-    version = int(raw) if raw and raw.isdigit() else None
+    if raw and not (raw.isdecimal() and int(raw) >= 1):  # refused, not read as "the latest"
+        raise BadRequest(f"version must be a rules version number (1 or more); got {raw!r}.")
+    version = int(raw) if raw else None
     if version is not None and version > MAX_ID:
         raise NotFound(f"No version {version} of mapping {name!r} is stored.")
     try:

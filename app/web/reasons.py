@@ -168,7 +168,7 @@ def _compare_arg(request: Request) -> tuple[int, int] | None:
     """Versions ``a`` and ``b`` to compare; a value that is not a version number is refused, not ignored."""
     a, b = request.query_params.get("a"), request.query_params.get("b")
     for key, raw in (("a", a), ("b", b)):
-        if raw and not (raw.isdigit() and int(raw) >= 1):
+        if raw and not (raw.isdecimal() and int(raw) >= 1):
             raise BadRequest(f"{key} must be a mapping version number (1 or more); got {raw!r}.")
     if a and b:
         return int(a), int(b)
@@ -232,7 +232,7 @@ def _based_on(form: dict[str, str | Upload], name: str) -> int | None:
     """The version the form was filled from, when it is saved under the same mapping name (a save under
     another name is a deliberate "save as" and is not checked)."""
     raw = str(form.get("based_on") or "").strip()
-    if raw and (not raw.isdigit() or int(raw) > MAX_ID):
+    if raw and (not raw.isdecimal() or int(raw) > MAX_ID):
         raise BadRequest(f"based_on must be a mapping version number (0 or more); got {raw!r}. Nothing was saved.")
     if not raw or str(form.get("based_on_mapping") or "") != name:
         return None
@@ -362,12 +362,14 @@ def _mapping_import(request: Request, roster_id: int, form: dict[str, str | Uplo
 
 @router.get("/mappings/{name:path}.csv", name="mapping_csv", response_class=Response,
             responses={**download("The mapping version as code,category,label", "text/csv"),
-                       **page_errors(404)},
+                       **page_errors(400, 404)},
             openapi_extra=query(("version", {"type": "integer", "minimum": 1}, "default: the latest")))
 def mapping_csv(request: Request, name: str) -> Response:
     """A mapping version as CSV; ``name`` may hold any character, slashes included."""
     raw = request.query_params.get("version")
-    version = int(raw) if raw and raw.isdigit() else None
+    if raw and not (raw.isdecimal() and int(raw) >= 1):  # refused, not read as "the latest" (live fuzzing found it)
+        raise BadRequest(f"version must be a mapping version number (1 or more); got {raw!r}.")
+    version = int(raw) if raw else None
     if version is not None and version > MAX_ID:  # SQLite cannot even look such a number up
         raise NotFound(f"No version {version} of mapping {name!r} is stored.")
     try:

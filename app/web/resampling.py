@@ -224,7 +224,7 @@ def runs_api(request: Request, roster_id: int) -> JSONResponse:
 
 def _int_field(form: Any, key: str, default: int) -> int:
     raw = str(form.get(key) or default).strip().replace(",", "").replace("_", "")
-    if not raw.isdigit():
+    if not raw.isdecimal():
         raise BadRequest(f"{key} must be a whole number; got {raw!r}.")
     return int(raw)
 

@@ -139,14 +139,14 @@ def _intake_options(form: dict[str, str | Upload]) -> tuple[int | None, DateOrde
     raw_header = str(form.get("header_row") or "").strip()
     header_row: int | None = None
     if raw_header:
-        if not raw_header.isdigit() or not 1 <= int(raw_header) <= 1_000_000:
+        if not raw_header.isdecimal() or not 1 <= int(raw_header) <= 1_000_000:
             raise RosterFileError(f"The header row must be a line number (1, 2, ...); got {raw_header[:20]!r}.")
         header_row = int(raw_header)
     order = str(form.get("date_order") or "auto")
     if order not in DATE_ORDERS:
         raise RosterFileError(f"Date reading must be one of {', '.join(DATE_ORDERS)}; got {order[:20]!r}.")
     raw_fy = str(form.get("fy_end") or "12")
-    if not raw_fy.isdigit() or not 1 <= int(raw_fy) <= 12:
+    if not raw_fy.isdecimal() or not 1 <= int(raw_fy) <= 12:
         raise RosterFileError(f"The fiscal-year end must be a month number 1..12; got {raw_fy[:20]!r}.")
     return header_row, order, int(raw_fy)
 
@@ -182,7 +182,7 @@ def _into(form: dict[str, str | Upload]) -> int | None:
     raw = str(form.get("into") or "").strip()
     if not raw:
         return None
-    if not raw.isdigit() or len(raw) > 18:
+    if not raw.isdecimal() or len(raw) > 18:
         raise RosterFileError(f"into must be the id of a stored roster; got {raw[:40]!r}.")
     return int(raw)
 

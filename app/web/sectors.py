@@ -137,7 +137,7 @@ def robustness_data(store: Store, roster_id: int, *, extra: list[str], vary: lis
 
 def _min_departures(request: Request) -> int:
     raw = request.query_params.get("min_departures", "20")
-    if not raw.isdigit() or not 1 <= int(raw) <= 10_000:
+    if not raw.isdecimal() or not 1 <= int(raw) <= 10_000:
         raise BadRequest(f"min_departures must be a whole number from 1 to 10000; got {raw!r}.")
     return int(raw)
 

@@ -64,7 +64,7 @@ def _host_port(value: str, scheme: str = "http") -> tuple[str, int | None]:
     if not rest:
         return host, DEFAULT_PORTS.get(scheme)
     port_text = rest.removeprefix(":")
-    return host, int(port_text) if rest.startswith(":") and port_text.isdigit() else None
+    return host, int(port_text) if rest.startswith(":") and port_text.isdecimal() else None
 
 
 class SecurityMiddleware:
@@ -91,7 +91,7 @@ class SecurityMiddleware:
                 await _plain(send, 403, problem)
                 return
             declared = headers.get("content-length")
-            if declared and declared.isdigit() and int(declared) > self.upload_limit:
+            if declared and declared.isdecimal() and int(declared) > self.upload_limit:
                 await _plain(send, 413, self._too_large())
                 return
             receive = self._limited(receive)

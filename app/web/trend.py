@@ -81,7 +81,7 @@ def _years(request: Request) -> tuple[int, int] | None:
     lo, hi = request.query_params.get("from"), request.query_params.get("to")
     if not lo and not hi:
         return None
-    if not (lo and hi and lo.isdigit() and hi.isdigit()) or int(lo) > int(hi):
+    if not (lo and hi and lo.isdecimal() and hi.isdecimal()) or int(lo) > int(hi):
         raise BadRequest("The window needs a first and a last fiscal year, first before last (e.g. 1998 and 2022).")
     return int(lo), int(hi)
 
@@ -195,7 +195,7 @@ def _request_args(request: Request) -> dict[str, Any]:
     quasi = flag_arg(request, "quasi")
     adjust = adjust_arg(request, "adjusted")
     return {"model": request.query_params.get("model", "linear"),
-            "spline_df": int(df) if df.isdigit() else -1, "window": _years(request), "quasi": quasi,
+            "spline_df": int(df) if df.isdecimal() else -1, "window": _years(request), "quasi": quasi,
             "periods": _period_args(request), "adjust": adjust}
 
 
