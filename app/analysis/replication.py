@@ -261,7 +261,7 @@ def run_params(run: Run, inp: AnalysisInput, n_groups: int, mapping_sha256: str 
                                "32-bit word w (low, then high half of each random_raw() output), a word >= "
                                "S * (2**32 // S) replaced by the low half of the next random_raw() until below; "
                                "sampler 4: numpy.random.SFC64(the block's SeedSequence), groups of 25 resamples, "
-                               "each firm a Poisson((F - a) / F) count (a = ceil(6 sqrt(F))) from a 16-bit word, "
+                               "each firm a Poisson((F - a) / F) count (a = ceil(3 sqrt(F))) from a 16-bit word, "
                                "then F - T uniform firms added (or T - F distinct balls removed) so every resample "
                                "holds F firms; the stream is defined in app/stats/poisson_draws.py"})
     return out

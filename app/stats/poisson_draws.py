@@ -8,14 +8,14 @@ matters, and the multiplicities are Multinomial(F, 1/F). Drawing ``F`` firm numb
 the firm bootstrap (benchmarks/README.md). Sampler 4 gets the same distribution with little scattering:
 
 1. Every firm gets an independent Poisson(lam) count ``m_f``, ``lam = (F - a) / F`` with
-   ``a = ceil(6 sqrt(F))`` (``lam = 0`` when that is negative), read off a 16-bit word through a table: a
+   ``a = ceil(3 sqrt(F))`` (``lam = 0`` when that is negative), read off a 16-bit word through a table: a
    whole-array lookup, written straight into the firm-major block the product reads.
 2. The total ``T = sum(m)`` is Poisson(lam F), and given ``T`` the counts are Multinomial(T, 1/F): ``T``
    balls, each in a uniformly chosen firm. ``F - T`` more balls go to uniformly drawn firms, giving ``F``
    balls each uniform over the firms: Multinomial(F, 1/F) (the "Poissonization" argument, common practice;
    e.g. Devroye, *Non-Uniform Random Variate Generation*, 1986, ch. XI, cited from memory). Only about
-   ``a`` balls are scattered per resample. In the rare case ``T > F`` (probability about 1e-9: ``T`` is six
-   standard deviations short of ``F`` on average), ``T - F`` distinct balls chosen uniformly among the ``T``
+   ``a`` balls are scattered per resample. When ``T > F`` (probability about 0.13%: ``T`` falls three standard
+   deviations short of ``F`` on average), ``T - F`` distinct balls chosen uniformly among the ``T``
    are taken out instead, which leaves ``F`` uniform balls as well.
 
 Exactness: each Poisson(lam) probability is realised to within 2**-64 (64-bit thresholds of the
@@ -56,8 +56,8 @@ UNSETTLED = 255
 
 
 def shortfall(n_firms: int) -> int:
-    """``a = ceil(6 sqrt(F))``, capped at ``F``: the Poisson counts' expected shortfall below ``F`` balls."""
-    return min(n_firms, math.isqrt(36 * n_firms - 1) + 1) if n_firms else 0
+    """``a = ceil(3 sqrt(F))``, capped at ``F``: the Poisson counts' expected shortfall below ``F`` balls."""
+    return min(n_firms, math.isqrt(9 * n_firms - 1) + 1) if n_firms else 0
 
 
 def poisson_thresholds(numerator: int, denominator: int) -> np.ndarray:
@@ -145,7 +145,9 @@ def below_each(bits: np.random.BitGenerator, bounds: np.ndarray) -> np.ndarray:
     if size == 0:
         return np.zeros(0, dtype=np.int64)
     raw = bits.random_raw((size + 1) // 2)
-    words = np.column_stack([raw & np.uint64(0xFFFFFFFF), raw >> np.uint64(32)]).ravel()[:size]
+    if sys.byteorder != "little":
+        raw = raw.byteswap()  # so the uint32 view below reads each output's low half first
+    words = raw.view("<u4")[:size].astype(np.uint64)
     same = bounds.min() == bounds.max()  # the usual case (every slot adds a firm): one divisor, numpy's fast division
     q = np.uint64((1 << 32) // int(bounds[0])) if same else np.uint64(1 << 32) // bounds.astype(np.uint64)
     limit = q * np.uint64(int(bounds[0])) if same else q * bounds.astype(np.uint64)
@@ -202,7 +204,7 @@ def settle(bits: np.random.BitGenerator, counts: np.ndarray) -> None:
         drawn[again] = below_each(bits, bounds[again])
     np.add.at(counts.reshape(-1), drawn[adding] * rows + column[adding], np.float32(1))  # 1-d, same dtype: fast path
     ends = np.cumsum(np.abs(gap))  # the slots run resample by resample
-    for j in np.flatnonzero(gap < 0):  # about one resample in a billion
+    for j in np.flatnonzero(gap < 0):  # about one resample in 700
         balls = drawn[ends[j] + gap[j]:ends[j]]
         firms = np.searchsorted(np.cumsum(counts[:, j], dtype=np.int64), balls, side="right")
         np.subtract.at(counts[:, j], firms, np.float32(1))
