@@ -169,6 +169,29 @@ def test_timeout_raises_and_the_next_export_still_works() -> None:
     assert figure_bytes(small_figure("after"), "svg").startswith(b"<svg")
 
 
+@needs_browser
+def test_a_tab_whose_page_script_is_missing_is_replaced_by_a_fresh_browser(monkeypatch: pytest.MonkeyPatch) -> None:
+    # seen once in a suite run under heavy load: kaleido's tab ran the render before its page script loaded
+    from app.briefing import render
+
+    original, calls, engines = render._Engine.render, [], []
+
+    def flaky(self: object, fig: dict[str, object], opts: dict[str, object], timeout: float) -> bytes:
+        calls.append(1)
+        engines.append(id(self))
+        if len(calls) == 1:
+            raise RuntimeError("{'description': 'ReferenceError: kaleido_scopes is not defined'}")
+        return original(self, fig, opts, timeout)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(render._Engine, "render", flaky)
+    assert figure_bytes(small_figure("retried"), "svg").startswith(b"<svg")
+    assert len(calls) == 2 and engines[0] != engines[1]
+    calls.clear()
+    monkeypatch.setattr(render._Engine, "render", lambda *a: (_ for _ in ()).throw(RuntimeError("another error")))
+    with pytest.raises(RuntimeError, match="another error"):  # any other failure is not retried
+        figure_bytes(small_figure("failed"), "svg")
+
+
 # --- deck ------------------------------------------------------------------------------------------
 
 def _rect(shape: object) -> tuple[int, int, int, int]:

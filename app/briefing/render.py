@@ -118,6 +118,8 @@ class _Engine:
 
 _LOCK = threading.Lock()
 _engine: _Engine | None = None
+#: what kaleido's JavascriptError says when its tab runs a render before its page script has loaded
+_PAGE_NOT_READY = "kaleido_scopes is not defined"
 
 
 def _get_engine(browser: str) -> _Engine:
@@ -175,7 +177,18 @@ def figure_bytes(fig: go.Figure, fmt: Format, *, width: int = 1100, height: int 
         engine = _get_engine(browser)
         remaining = max(0.001, timeout - (time.monotonic() - started))
         try:
-            return engine.render(fig.to_dict(), opts, remaining)
+            try:
+                return engine.render(fig.to_dict(), opts, remaining)
+            except Exception as exc:
+                if _PAGE_NOT_READY not in str(exc):
+                    raise
+                # kaleido's tab answered before its page script loaded (seen once under heavy load, in a
+                # suite run): the tab is unusable, so a fresh browser renders it, once
+                engine.close()
+                _engine = None
+                engine = _get_engine(browser)
+                remaining = max(0.001, timeout - (time.monotonic() - started))
+                return engine.render(fig.to_dict(), opts, remaining)
         except concurrent.futures.TimeoutError:
             # the browser may be wedged mid-render: start a fresh one next time
             engine.close()
