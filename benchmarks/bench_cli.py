@@ -2,7 +2,7 @@
 
 Run: ``python benchmarks/bench_cli.py [--rows 100000] [--before REV] [--repeat 5]``
 
-The roster is the one ``bench_pages.py`` builds (cached in the temp folder: ~99,400 departures, ~25,000 firms,
+The roster is the one ``bench_pages.py`` builds (each tree imports it with its own code, cached per revision in the temp folder: ~99,400 departures, ~25,000 firms,
 30 years, the demo mappings). ``--before`` (default ``7d99e8f``, main when the fit-fast work began) is written
 out with ``git archive`` into a temporary folder; both trees then run as fresh processes (``python -m app.cli
 fit --db ... --roster 1 --json``, ``PYTHONPATH`` = the tree) over copies of the same database, interleaved
@@ -38,7 +38,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_pages import build_database  # noqa: E402
+from bench_pages import tree_database  # noqa: E402
 
 #: main when the fit-fast work began (a repeated fit printed the recorded run through SQLAlchemy and pandas);
 #: 73ffe36 is main before any start-up work (every fit imported scipy.stats and statsmodels)
@@ -94,9 +94,6 @@ def main() -> None:
     parser.add_argument("--before", default=BEFORE, help="git revision to compare with")
     parser.add_argument("--repeat", type=int, default=5)
     args = parser.parse_args()
-    cache = Path(tempfile.gettempdir()) / f"helmshift-bench-pages-{args.rows}.db"
-    if not cache.exists():
-        build_database(cache, args.rows)
     print(f"{os.cpu_count()} CPUs; load average at start {load()}", flush=True)
     with tempfile.TemporaryDirectory(prefix="helmshift-bench-cli-") as tmp:
         work = Path(tmp)
@@ -105,14 +102,11 @@ def main() -> None:
         archive = subprocess.run(["git", "archive", args.before], cwd=ROOT, check=True, capture_output=True)
         subprocess.run(["tar", "-x", "-C", str(before_tree)], input=archive.stdout, check=True)
         trees = {"before": before_tree, "after": ROOT}
-        # a migrated copy per tree (opening it the first time may upgrade the schema: not part of the timing)
-        base = {}
-        for label, tree in trees.items():
-            base[label] = work / f"{label}-base.db"
-            shutil.copyfile(cache, base[label])
-            subprocess.run([sys.executable, "-c", "import sys; from app.store import Store; Store(sys.argv[1])",
-                            f"sqlite:///{base[label]}"], cwd=tree, env={**os.environ, "PYTHONPATH": str(tree)},
-                           check=True)
+        before_rev = subprocess.run(["git", "rev-parse", "--short", args.before], cwd=ROOT, check=True,
+                                    capture_output=True, text=True).stdout.strip()
+        # each tree's copy of the generated rosters, imported by its own code (bench_pages.tree_database)
+        base = {label: tree_database(tree, before_rev if label == "before" else None, args.rows)
+                for label, tree in trees.items()}
         times: dict[tuple[str, str], list[tuple[float, float]]] = {(t, k): [] for t in trees
                                                                    for k in ("first", "repeat")}
         outputs: dict[str, dict[str, object]] = {}

@@ -161,6 +161,17 @@ def run_tree(tree: Path, db: Path, resamples: int) -> dict[str, object]:
     return dict(json.loads(result.stdout.strip().splitlines()[-1]))
 
 
+def tree_database(tree: Path, revision: str | None, rows: int) -> Path:
+    """The generated roster imported by ``tree``'s own code (an older tree cannot open a database at a newer
+    schema): cached per revision in the temp folder; this tree's (``revision`` None) is built afresh."""
+    cache = Path(tempfile.gettempdir()) / f"helmshift-bench-pages-{rows}-{revision or 'current'}.db"
+    if not cache.exists() or revision is None:
+        cache.unlink(missing_ok=True)
+        subprocess.run([sys.executable, str(Path(__file__).resolve()), "--build", str(cache), "--rows", str(rows)],
+                       cwd=tree, check=True, env={**os.environ, "PYTHONPATH": str(tree)})
+    return cache
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, default=100_000)
@@ -188,13 +199,7 @@ def main() -> None:
         for label, tree in (("before", before_tree), ("after", ROOT)):
             # each tree imports the same generated rosters with its own code (an older tree cannot open a
             # database at a newer schema); cached per revision in the temp folder
-            tag = before_rev if label == "before" else "current"
-            cache = Path(tempfile.gettempdir()) / f"helmshift-bench-pages-{args.rows}-{tag}.db"
-            if not cache.exists() or label == "after":
-                cache.unlink(missing_ok=True)
-                subprocess.run([sys.executable, str(Path(__file__).resolve()), "--build", str(cache),
-                                "--rows", str(args.rows)], cwd=tree, check=True,
-                               env={**os.environ, "PYTHONPATH": str(tree)})
+            cache = tree_database(tree, before_rev if label == "before" else None, args.rows)
             db = Path(tmp) / f"{label}.db"
             shutil.copyfile(cache, db)
             results[label] = run_tree(tree, db, args.resamples)
