@@ -20,6 +20,7 @@ from sqlalchemy import event
 from app.analysis.cellstore import (
     cells_from_counts,
     code_counts,
+    code_counts_apart,
     coverage_from_counts,
     unmapped_codes,
 )
@@ -89,6 +90,15 @@ def test_coverage_and_code_tables_equal_the_record_path(demo_store: Store, mappi
     sql = demo_store.reason_counts(ROSTER).astype({"count": np.int64, "first_year": np.int64,
                                                    "last_year": np.int64})
     pd.testing.assert_frame_equal(code_counts(inp.counts), sql)
+    # apart: per code its departures (the records less those still in post, years of the departures) and the
+    # rows still in post, counted from the records with pandas
+    apart = code_counts_apart(inp.counts, inp.in_post_rows).set_index("code")
+    for code, rows in kept.groupby("reason"):
+        assert (apart.loc[code, "count"], apart.loc[code, "first_year"], apart.loc[code, "last_year"]) == (
+            len(rows), rows["year"].min(), rows["year"].max()), code
+    assert apart["in_post"].to_dict() == records.loc[in_post, "reason"].value_counts().reindex(
+        apart.index, fill_value=0).to_dict()
+    assert apart["count"].sum() == len(kept) and apart["in_post"].sum() == inp.in_post
     inside = inp.in_window()
     from_records = inside.loc[inside["category"] == "unmapped", "reason"].value_counts()
     got = unmapped_codes(inp.counts, inp.window)

@@ -170,6 +170,39 @@ def code_counts(counts: pd.DataFrame) -> pd.DataFrame:
                                                    "last_year": np.int64})
 
 
+def without_in_post(counts: pd.DataFrame, in_post: pd.DataFrame | None) -> pd.DataFrame:
+    """``year``, ``reason``, ``category``, ``departures`` of ``counts`` less the rows still in post (``in_post``:
+    ``AnalysisInput.in_post_rows``, same columns): summed per key, what is left are departures. A cell may go
+    negative (the rows are taken off as rows of their own); only sums per key are meant to be read."""
+    key = ["year", "reason", "category", "departures"]
+    if in_post is None or in_post.empty:
+        return counts[key]
+    return pd.concat([counts[key], in_post[key].assign(departures=-in_post["departures"])], ignore_index=True)
+
+
+def code_counts_apart(counts: pd.DataFrame, in_post: pd.DataFrame | None) -> pd.DataFrame:
+    """Per reason code: ``code``, ``count`` (its departures, every year), ``in_post`` (its rows still in post,
+    which are no departure of any year), ``first_year`` and ``last_year`` (of its departures; of its rows still
+    in post when it has none); most departures first, then most rows in post, then by code.
+
+    Without rows still in post it is ``code_counts`` with an ``in_post`` column of zeros.
+    """
+    total = counts.groupby(["reason", "year"])["departures"].sum()
+    held = (pd.Series(0, index=total.index, dtype=np.int64) if in_post is None or in_post.empty
+            else in_post.groupby(["reason", "year"])["departures"].sum().reindex(total.index, fill_value=0))
+    per = pd.DataFrame({"departures": total - held, "in_post": held}).reset_index()
+    every = per.groupby("reason")["year"].agg(["min", "max"])
+    dated = per.loc[per["departures"] > 0].groupby("reason")["year"].agg(["min", "max"])
+    years = dated.reindex(every.index).fillna(every)
+    sums = per.groupby("reason")[["departures", "in_post"]].sum()
+    out = pd.DataFrame({"code": every.index.to_numpy(), "count": sums["departures"].to_numpy(),
+                        "in_post": sums["in_post"].to_numpy(), "first_year": years["min"].to_numpy(),
+                        "last_year": years["max"].to_numpy()})
+    out = out.sort_values(["count", "in_post", "code"], ascending=[False, False, True], kind="stable")
+    return out.reset_index(drop=True).astype({"count": np.int64, "in_post": np.int64, "first_year": np.int64,
+                                              "last_year": np.int64})
+
+
 def window_code_counts(counts: pd.DataFrame, window: tuple[int, int], *, category: str | None = None) -> pd.Series:
     """Departures per reason code inside ``window`` (only codes of ``category`` when given), most first."""
     inside = in_window(counts, window)

@@ -23,6 +23,7 @@ from app.analysis.cellstore import (
     memoised,
     roster_fingerprint,
     unmapped_codes,
+    without_in_post,
 )
 from app.analysis.overrides import ResolvedOverride, apply_overrides, not_applied, resolve_overrides
 from app.analysis.quick_fit import parse_mapping_ref, warning_notes
@@ -103,11 +104,7 @@ class AnalysisInput:
         """Codes without a category that occur inside the window, with their counts, most common first."""
         if not self.in_post:
             return unmapped_codes(self.counts, self.window)
-        rows = self.in_post_rows
-        assert rows is not None
-        less = rows.assign(departures=-rows["departures"])[["year", "reason", "category", "departures"]]
-        return unmapped_codes(pd.concat([self.counts[["year", "reason", "category", "departures"]], less]),
-                              self.window)
+        return unmapped_codes(without_in_post(self.counts, self.in_post_rows), self.window)
 
     def group_cells(self, *, by_sector: bool = False) -> Cells:
         """The group counts of the window, without the firm matrix: for fits and fingerprints (memoised)."""

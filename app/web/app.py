@@ -23,6 +23,7 @@ from app.web import (
     import_worker,
     overrides,
     profiles,
+    reason_mappings,
     reason_rules,
     reasons,
     resampling,
@@ -115,8 +116,9 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
         # async: answered on the event loop without waiting for a worker thread (a one-row read)
         return {"status": "ok", "version": __version__, "schema": store.schema_version()}
 
-    for module in (auth, accounts, rosters, roster_upload, roster_versions, reasons, reason_rules, coverage,
-                   departures, trend, resampling, run_files, sectors, briefing, universe, profiles, overrides):
+    for module in (auth, accounts, rosters, roster_upload, roster_versions, reasons, reason_mappings, reason_rules,
+                   coverage, departures, trend, resampling, run_files, sectors, briefing, universe, profiles,
+                   overrides):
         app.include_router(module.router)
 
     @app.exception_handler(NotFound)

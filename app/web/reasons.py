@@ -9,12 +9,17 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
 
-from app.analysis.cellstore import code_counts, memoised, roster_fingerprint, window_code_counts
+from app.analysis.cellstore import (
+    code_counts_apart,
+    memoised,
+    roster_fingerprint,
+    window_code_counts,
+    without_in_post,
+)
 from app.analysis.inputs import load_input
-from app.analysis.mapping_files import export_mapping_csv, import_mapping_file
 from app.analysis.overrides import overrides_to_list, resolve_overrides
 from app.intake.codes import code_key
-from app.intake.reasons import MappingDiff, MappingFileError, diff_mappings, suggest_categories
+from app.intake.reasons import MappingDiff, diff_mappings, suggest_categories
 from app.store import MAX_ID, MappingConflict, MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES, Category
 from app.web.deps import BadRequest, NotFound, app_store
@@ -22,10 +27,7 @@ from app.web.forms import Upload, read_form
 from app.web.reason_rules import rules_view
 from app.web.rendering import as_json, render
 from app.web.route_docs import (
-    FILE,
-    GUARDS,
     api_errors,
-    download,
     form_body,
     merged,
     page_errors,
@@ -39,11 +41,12 @@ router = APIRouter()
 
 @dataclass(frozen=True)
 class CodeRow:
-    """One reason code as the analyst sees it."""
+    """One reason code as the analyst sees it: its departures, and apart from them its rows still in post."""
 
     code: str
     count: int
     count_in_window: int
+    in_post: int
     first_year: int
     last_year: int
     category: str | None
@@ -57,7 +60,17 @@ class CodeRow:
 
 CodeRowOut = define(CodeRow, fields={"category": Category | None, "suggested": Category | None},
                     descriptions={"variants": "[spelling, rows] per spelling in the file (two or more), "
-                                              "most frequent first; empty when written one way"})
+                                              "most frequent first; empty when written one way",
+                                  "count": "the code's departures in every year (rows still in post left out)",
+                                  "count_in_window": "the code's departures inside the window",
+                                  "in_post": "the code's rows still in post (no departure date, a code saying "
+                                             "the executive has not left, not counted as forced or voluntary): "
+                                             "no departure of any year; listed by the record browser with "
+                                             "reason=CODE&in_post=only",
+                                  "first_year": "first year of the code's departures (of its rows still in "
+                                                "post when it has none)",
+                                  "last_year": "last year of the code's departures (of its rows still in post "
+                                               "when it has none)"})
 
 
 @dataclass(frozen=True)
@@ -72,6 +85,8 @@ class ReasonsPage:
     window: tuple[int, int] | None
     unmapped_codes: int
     unmapped_departures: int
+    #: rows still in post of the unmapped codes (not among ``unmapped_departures``)
+    unmapped_in_post: int
     using_suggestion: bool
     compare: tuple[int, int] | None
     diff: MappingDiff | None
@@ -120,11 +135,13 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
     settings = store.settings(roster.id)
     mapping = store.get_mapping(settings.mapping_name) if settings.mapping_name else None
     inp = load_input(store, roster.id, require_mapping=False)
-    # all three depend on the roster's counts (and the window) only, not on the mapping: memoised
+    # which rows are still in post depends on the mapping version (a code or an override counting one as forced
+    # or voluntary makes it a departure), so the counts are memoised per mapping version; suggestions and
+    # spellings depend on the roster only
     roster_key = (roster.id, roster_fingerprint(roster))
-    counts = memoised(store, ("code_counts", *roster_key), lambda: code_counts(inp.counts))
-    window_counts = memoised(store, ("window_code_counts", *roster_key, inp.window),
-                             lambda: window_code_counts(inp.counts, inp.window))
+    counts = memoised(store, ("code_counts_apart", *inp.key[:3]), lambda: code_counts_apart(inp.counts, inp.in_post_rows))
+    window_counts = memoised(store, ("window_code_counts_apart", *inp.key),
+                             lambda: window_code_counts(without_in_post(inp.counts, inp.in_post_rows), inp.window))
     suggestions = memoised(store, ("suggestions", *roster_key),
                            lambda: suggest_categories(counts["code"].astype(str).tolist()))
     variants = memoised(store, ("spellings", *roster_key), lambda: _variants(store, roster))
@@ -138,6 +155,7 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
         category = (mapping.categories[named] if named is not None else None) if mapping else sug.category
         rows.append(CodeRow(
             code=code, count=int(rec["count"]), count_in_window=int(window_counts.get(code, 0)),
+            in_post=int(rec["in_post"]),
             first_year=int(rec["first_year"]), last_year=int(rec["last_year"]),
             category=category, label=(mapping.labels.get(named, "") if mapping and named is not None else ""),
             suggested=sug.category, suggestion_note=sug.why, ambiguous=sug.ambiguous,
@@ -157,7 +175,8 @@ def reasons_data(store: Store, roster_id: int, *, compare: tuple[int, int] | Non
         roster=roster, mapping=mapping, mapping_names=store.list_mappings(),
         history=store.mapping_history(mapping.name) if mapping else [], codes=rows,
         window=inp.window, unmapped_codes=len(unmapped),
-        unmapped_departures=sum(r.count for r in unmapped), using_suggestion=mapping is None,
+        unmapped_departures=sum(r.count for r in unmapped), unmapped_in_post=sum(r.in_post for r in unmapped),
+        using_suggestion=mapping is None,
         compare=compare if diff else None, diff=diff, message=message, error=error,
         **rules_view(store, roster, mapping, [r.code for r in rows]),
         overrides=overrides_to_list(resolve_overrides(store, roster, mapping), mapping),
@@ -309,73 +328,3 @@ def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload
     store.update_settings(page.roster.id, mapping_name=name)
     url = request.url_for("reasons_page", roster_id=page.roster.id).include_query_params(saved=1)
     return RedirectResponse(url, status_code=303)
-
-
-@router.post("/rosters/{roster_id}/mapping/select", name="mapping_select", status_code=303,
-             response_class=RedirectResponse, responses=redirect("the Reason codes page", page_errors(400, 404)),
-             openapi_extra=form_body({"mapping_name": {"type": "string"}}, required=("mapping_name",)))
-async def mapping_select(request: Request, roster_id: int) -> RedirectResponse:
-    form = await read_form(request)
-    return await run_in_threadpool(_mapping_select, request, roster_id, form)
-
-
-def _mapping_select(request: Request, roster_id: int, form: dict[str, str | Upload]) -> RedirectResponse:
-    store = app_store(request)
-    page = reasons_data(store, roster_id)
-    name = str(form.get("mapping_name") or "")
-    try:
-        store.get_mapping(name)
-    except StoreError as exc:
-        raise NotFound(str(exc)) from exc
-    store.update_settings(page.roster.id, mapping_name=name)
-    return RedirectResponse(request.url_for("reasons_page", roster_id=page.roster.id), status_code=303)
-
-
-@router.post("/rosters/{roster_id}/mapping/import", name="mapping_import", response_model=None,
-             response_class=HTMLResponse, responses={**page_errors(400, 404), **GUARDS},
-             openapi_extra=form_body({"file": FILE, "mapping_name": {"type": "string"}},
-                                     required=("file", "mapping_name"), multipart=True))
-async def mapping_import(request: Request, roster_id: int) -> Response:
-    form = await read_form(request)
-    return await run_in_threadpool(_mapping_import, request, roster_id, form)
-
-
-def _mapping_import(request: Request, roster_id: int, form: dict[str, str | Upload]) -> Response:
-    store = app_store(request)
-    page = reasons_data(store, roster_id)
-    upload = form.get("file")
-    name = str(form.get("mapping_name") or "").strip()
-    if not isinstance(upload, Upload) or not name:
-        raise BadRequest("Choose a mapping CSV (code,category[,label]) and give the mapping a name.")
-    try:
-        outcome = import_mapping_file(store, upload.data, roster=page.roster.id, name=name)
-    except (MappingFileError, StoreError) as exc:
-        refreshed = reasons_data(store, roster_id, error=str(exc))
-        return render(request, "reasons.html", refreshed, roster=refreshed.roster, active="reasons", status=400)
-    store.update_settings(page.roster.id, mapping_name=name)
-    note = f"Imported {outcome['codes']} codes as {name} v{outcome['version']}."
-    if outcome["not_in_roster"]:
-        note += f" {len(outcome['not_in_roster'])} code(s) do not occur in this roster and were kept for others."
-    refreshed = reasons_data(store, roster_id, message=note)
-    return render(request, "reasons.html", refreshed, roster=refreshed.roster, active="reasons")
-
-
-@router.get("/mappings/{name:path}.csv", name="mapping_csv", response_class=Response,
-            responses={**download("The mapping version as code,category,label", "text/csv"),
-                       **page_errors(400, 404)},
-            openapi_extra=query(("version", {"type": "integer", "minimum": 1}, "default: the latest")))
-def mapping_csv(request: Request, name: str) -> Response:
-    """A mapping version as CSV; ``name`` may hold any character, slashes included."""
-    raw = request.query_params.get("version")
-    if raw and not (raw.isdecimal() and int(raw) >= 1):  # refused, not read as "the latest" (live fuzzing found it)
-        raise BadRequest(f"version must be a mapping version number (1 or more); got {raw!r}.")
-    version = int(raw) if raw else None
-    if version is not None and version > MAX_ID:  # SQLite cannot even look such a number up
-        raise NotFound(f"No version {version} of mapping {name!r} is stored.")
-    try:
-        text = export_mapping_csv(app_store(request), name=name, version=version)
-    except StoreError as exc:
-        raise NotFound(str(exc)) from exc
-    safe_name = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)[:60] or "mapping"
-    return Response(text, media_type="text/csv; charset=utf-8",
-                    headers={"content-disposition": f'attachment; filename="{safe_name}.csv"'})
