@@ -64,10 +64,26 @@ def test_every_page_fits_phone_and_desktop_widths(demo_db: Path, live_server: An
                     page.goto(server.base_url + "/rosters/1/reasons")
                     for field in ("#note", "#rules-note"):
                         assert page.locator(field).bounding_box()["width"] > 250, field
+                    # each code is a card a thumb can scroll past (a long suggestion note made a row 290-450 px
+                    # tall, a few words a line): the note is behind "why", one tap away
+                    rows = page.locator("table.reason-codes tbody tr")
+                    assert max(r.bounding_box()["height"] for r in rows.all()) < 220
+                    merger = rows.filter(has_text="Merger - role eliminated")
+                    assert not merger.locator(".note-wide").is_visible()
+                    merger.locator("details.note-narrow summary").click()
+                    assert "Common practice" in merger.locator("details.note-narrow").inner_text()
+                    for choice in ("select", "input[type=text]"):  # category and label fit the screen
+                        box = merger.locator(choice).bounding_box()
+                        assert box["x"] >= 0 and box["x"] + box["width"] <= width, choice
                     page.goto(server.base_url + "/rosters/1/trend")
                     page.wait_for_selector("#fig-trend[data-state='drawn']")
                     legend = page.evaluate("document.getElementById('fig-trend').layout.legend.orientation")
                     assert legend == "h"
+                else:  # at desktop width the note shows in full beside its code
+                    page.goto(server.base_url + "/rosters/1/reasons")
+                    merger = page.locator("table.reason-codes tbody tr", has_text="Merger - role eliminated")
+                    assert "Common practice" in merger.locator(".note-wide").inner_text()
+                    assert not merger.locator("details.note-narrow").is_visible()
                 context.close()
             # a coverage bar is a link too: clicking the forced bar of a year opens that year's forced list
             context = browser.new_context(viewport={"width": 1440, "height": 900})
