@@ -93,7 +93,8 @@ class ReasonsPage:
     categories: tuple[str, ...] = CATEGORIES
     message: str | None = None
     error: str | None = None
-    #: the mapping version's classification rules in order, each with ``matched``, ``moved``, ``missing``
+    #: the mapping version's classification rules in order, each with ``matched``, ``moved``, ``missing`` (departures
+    #: only) and ``in_post_matched``, ``in_post_missing`` (rows still in post, counted apart)
     rules: list[dict[str, Any]] = field(default_factory=list)
     #: the academic preset's rules this version does not have yet (empty: nothing to add)
     preset: list[str] = field(default_factory=list)
