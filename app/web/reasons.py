@@ -232,7 +232,8 @@ def _form_entries(form: Any) -> tuple[dict[str, str], dict[str, str]]:
             raise BadRequest(f"Category for {code!r} must be one of {', '.join(CATEGORIES)}; got {category!r}.")
         if category:
             categories[code] = category
-        label = str(form.get(f"label-{idx}") or "").strip()
+        # a label is one line: a line break typed into its (wrapping) box becomes a space
+        label = " ".join(str(form.get(f"label-{idx}") or "").split())
         if label:
             labels[code] = label
     return categories, labels
