@@ -16,7 +16,7 @@ pytestmark = pytest.mark.browser
 
 PAGES = ("/rosters", "/rosters/1", "/rosters/1/reasons", "/rosters/1/coverage", "/rosters/1/departures",
          "/rosters/1/departures?year=2010&category=forced", "/rosters/1/trend", "/rosters/1/resampling",
-         "/rosters/1/sectors", "/rosters/1/robustness", "/rosters/1/briefing", "/profiles")
+         "/rosters/1/sectors", "/rosters/1/robustness", "/rosters/1/briefing", "/profiles", "/rosters/1/versions")
 
 #: boxes in the page that scroll or clip sideways and hold more than they show (the Reason codes rules table
 #: cut its "Remove" header at 1440 px before its code choice was given a width)
@@ -72,9 +72,20 @@ def test_every_page_fits_phone_and_desktop_widths(demo_db: Path, live_server: An
                     assert not merger.locator(".note-wide").is_visible()
                     merger.locator("details.note-narrow summary").click()
                     assert "Common practice" in merger.locator("details.note-narrow").inner_text()
-                    for choice in ("select", "input[type=text]"):  # category and label fit the screen
+                    for choice in ("select", "textarea"):  # category and label fit the screen
                         box = merger.locator(choice).bounding_box()
                         assert box["x"] >= 0 and box["x"] + box["width"] <= width, choice
+                    # each mapping version is a card: its CSV link on the screen (it was past the right edge) and
+                    # its note a line of its own (it was squeezed to a few words a line)
+                    version = page.locator("table.row-cards tbody tr").first
+                    link = version.get_by_role("link", name="as CSV").bounding_box()
+                    assert link["x"] >= 0 and link["x"] + link["width"] <= width
+                    assert version.locator("td[data-label=Note]").bounding_box()["width"] > 250
+                    # the roster's versions too: every field of a version on the screen, none scrolled out of view
+                    page.goto(server.base_url + "/rosters/1/versions")
+                    for cell in page.locator("table.versions tbody td").all():
+                        box = cell.bounding_box()
+                        assert box is None or (box["x"] >= 0 and box["x"] + box["width"] <= width), cell.inner_text()
                     page.goto(server.base_url + "/rosters/1/trend")
                     page.wait_for_selector("#fig-trend[data-state='drawn']")
                     legend = page.evaluate("document.getElementById('fig-trend').layout.legend.orientation")
@@ -84,6 +95,13 @@ def test_every_page_fits_phone_and_desktop_widths(demo_db: Path, live_server: An
                     merger = page.locator("table.reason-codes tbody tr", has_text="Merger - role eliminated")
                     assert "Common practice" in merger.locator(".note-wide").inner_text()
                     assert not merger.locator("details.note-narrow").is_visible()
+                    # its label reads in full (demo_data/mapping-standard.csv), wrapped inside its column, not cut
+                    # to "Role ended by merger (judge" in a one-line box
+                    label = merger.locator("textarea")
+                    assert label.input_value() == "Role ended by merger (judgement call)"
+                    assert label.evaluate("e => e.scrollHeight <= e.clientHeight + 1 && e.scrollWidth <= e.clientWidth")
+                    box, cell = label.bounding_box(), label.locator("xpath=..").bounding_box()
+                    assert cell["x"] <= box["x"] and box["x"] + box["width"] <= cell["x"] + cell["width"]
                 context.close()
             # a coverage bar is a link too: clicking the forced bar of a year opens that year's forced list
             context = browser.new_context(viewport={"width": 1440, "height": 900})

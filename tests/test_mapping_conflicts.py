@@ -29,7 +29,7 @@ def form_of(html: str) -> dict[str, str]:
     for name, body in re.findall(r'<select name="(cat-\d+)"[^>]*>(.*?)</select>', html, re.S):
         chosen = re.search(r'<option value="([^"]*)" selected', body)
         form[name] = chosen.group(1) if chosen else ""
-    form.update(re.findall(r'<input type="text" name="(label-\d+)" value="([^"]*)"', html))
+    form.update(re.findall(r'<textarea class="label" name="(label-\d+)"[^>]*>([^<]*)</textarea>', html))
     return form
 
 

@@ -99,10 +99,17 @@ def test_the_page_links_each_figure_to_its_rows_and_words_the_notice(empty_clien
     assert "The same codes also hold 3 row(s) still in post, which are no departures" in html
     assert '/rosters/1/departures?in_post=only&amp;reason=Incumbent" title="List these 2 rows still in post"' \
         in html
-    assert '/rosters/1/departures?in_post=none&amp;reason=Still+in+post" title="List these 1 departures"' \
+    # one row is named in the singular (hand count: C1 is the one departure of "Still in post", E2 the one row
+    # of "Still serving" still in post), more than one in the plural
+    assert '/rosters/1/departures?in_post=none&amp;reason=Still+in+post" title="List this 1 departure"' in html
+    assert '/rosters/1/departures?in_post=only&amp;reason=Still+serving" title="List this 1 row still in post"' \
         in html
+    assert "List these 1 " not in html
     assert '/rosters/1/departures?reason=Retired" title="List these 5 departures"' in html  # none in post
     assert '/rosters/1/departures?in_post=only" title="List these 6 rows still in post"' in html
+    # Coverage names its rows still in post as rows, not departures
+    coverage = empty_client.get(f"/rosters/{roster_id}/coverage").text
+    assert 'title="List these 6 rows still in post"' in coverage and "List these 1 " not in coverage
     # with only the codes of rows still in post unmapped, the notice says they hold no departure
     store.save_mapping_version("plain", {**MAPPING, "Still serving": "voluntary"}, author="test")
     html = empty_client.get(f"/rosters/{roster_id}/reasons").text

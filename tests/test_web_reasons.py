@@ -71,6 +71,22 @@ def test_saving_creates_versions_and_compare_shows_the_moved_code(client: Any, d
     assert api["diff"]["moved"] == [["Retired", "voluntary", "excluded"]]
 
 
+def test_a_label_typed_over_two_lines_is_saved_as_one(client: Any, demo_store: Store) -> None:
+    # the label box wraps (a long label reads in full), so Enter can put a line break in it; a label is one line
+    # (the mapping CSV holds one a row): the break and the spaces around it become one space
+    standard = read_mapping("mapping-standard.csv")
+    page = client.get(f"/rosters/{ROSTER}/reasons").context["page"]
+    data = form_for(page, standard)
+    merger = next(k for k, v in data.items() if k.startswith("code-") and v == "Merger - role eliminated")
+    data["label-" + merger.removeprefix("code-")] = "Role ended by merger \r\n (judgement call)\n"
+    assert client.post(f"/rosters/{ROSTER}/reasons", data=data | {"note": "labels"},
+                       follow_redirects=False).status_code == 303
+    assert demo_store.get_mapping("demo standard").labels["Merger - role eliminated"] == \
+        "Role ended by merger (judgement call)"
+    html = client.get(f"/rosters/{ROSTER}/reasons").text
+    assert ">Role ended by merger (judgement call)</textarea>" in html
+
+
 def test_unknown_category_in_the_form_is_refused(client: Any, demo_store: Store) -> None:
     page = client.get(f"/rosters/{ROSTER}/reasons").context["page"]
     before = demo_store.counts()

@@ -9,7 +9,13 @@ from __future__ import annotations
 from collections.abc import Iterable, Sequence
 from typing import Any
 
-from app.analysis.cellstore import rule_effects
+import pandas as pd
+
+from app.analysis.browse import departure_filter, in_post_codes, stored_codes
+from app.analysis.cellstore import categorise, mapping_key, memoised, roster_fingerprint, rule_effects
+from app.analysis.overrides import resolve_overrides
+from app.stats.codekeys import code_key
+from app.stats.rules import RuleEffect
 from app.store import MappingVersion, Roster, Store
 from app.types import ClassificationRule
 
@@ -88,12 +94,41 @@ def save_rules(store: Store, mapping: MappingVersion, rules: Sequence[Classifica
 
 
 def rules_to_list(store: Store, roster: Roster, mapping: MappingVersion | None) -> list[dict[str, Any]]:
-    """Each rule with what it did to this roster (all years): ``matched`` departures it decided, ``moved``
-    (of those, how many changed category), ``missing`` (reached the rule without the field: kept)."""
+    """Each rule with what it did to this roster's departures (all years): ``matched`` departures it decided,
+    ``moved`` (of those, how many changed category), ``missing`` (reached the rule without the field: kept).
+    Rows still in post are no departure, so they are left out of those three and counted apart:
+    ``in_post_matched`` (rows still in post the rule decided) and ``in_post_missing`` (reached it without the
+    field)."""
+    effects = rule_effects(store, roster, mapping)
+    held = in_post_effects(store, roster, mapping)
     return [{"position": i, "code": e.rule.code, "field": e.rule.field, "comparison": e.rule.comparison,
              "value": e.rule.value, "category": e.rule.category, "text": e.rule.describe(),
-             "matched": e.matched, "moved": e.moved, "missing": e.missing}
-            for i, e in enumerate(rule_effects(store, roster, mapping), start=1)]
+             "matched": e.matched - h.matched, "moved": e.moved - h.moved, "missing": e.missing - h.missing,
+             "in_post_matched": h.matched, "in_post_missing": h.missing}
+            for i, (e, h) in enumerate(zip(effects, held, strict=True), start=1)]
+
+
+def in_post_effects(store: Store, roster: Roster, mapping: MappingVersion | None) -> list[RuleEffect]:
+    """What each rule of ``mapping`` did to this roster's rows still in post (``app.analysis.browse``: no departure
+    date, a code saying the executive has not left, not counted as forced or voluntary in the end), which
+    ``rule_effects`` counts with the departures. Only a rule naming a still-in-post code can reach them; when
+    none does, nothing is read. Rows still in post are few (one sitting chief a firm), so they are read as rows."""
+    rules = mapping.rules if mapping else ()
+    held = {code_key(c) for c in in_post_codes(stored_codes(store, roster))}
+    if mapping is None or not any(code_key(r.code) in held for r in rules):
+        return [RuleEffect(r, 0, 0, 0) for r in rules]
+
+    def compute() -> list[RuleEffect]:
+        flt = departure_filter(store, roster, mapping, resolve_overrides(store, roster, mapping),
+                               version=roster.version, in_post="only")
+        # notice_days is left out: it needs an exit date, which a row still in post has not (the rules read NaN)
+        fields = ["reason", "age", "tenure", "interim"]
+        rows = pd.DataFrame([[row[f] for f in fields] for row in store.iter_departures(roster.id, flt)],
+                            columns=fields)
+        if rows.empty:
+            return [RuleEffect(r, 0, 0, 0) for r in rules]
+        return categorise(rows, mapping)[1]
+    return memoised(store, ("rule_in_post", roster.id, roster_fingerprint(roster), mapping_key(mapping)), compute)
 
 
 def rules_label(mapping: MappingVersion | None) -> str:

@@ -93,7 +93,8 @@ class ReasonsPage:
     categories: tuple[str, ...] = CATEGORIES
     message: str | None = None
     error: str | None = None
-    #: the mapping version's classification rules in order, each with ``matched``, ``moved``, ``missing``
+    #: the mapping version's classification rules in order, each with ``matched``, ``moved``, ``missing`` (departures
+    #: only) and ``in_post_matched``, ``in_post_missing`` (rows still in post, counted apart)
     rules: list[dict[str, Any]] = field(default_factory=list)
     #: the academic preset's rules this version does not have yet (empty: nothing to add)
     preset: list[str] = field(default_factory=list)
@@ -231,7 +232,8 @@ def _form_entries(form: Any) -> tuple[dict[str, str], dict[str, str]]:
             raise BadRequest(f"Category for {code!r} must be one of {', '.join(CATEGORIES)}; got {category!r}.")
         if category:
             categories[code] = category
-        label = str(form.get(f"label-{idx}") or "").strip()
+        # a label is one line: a line break typed into its (wrapping) box becomes a space
+        label = " ".join(str(form.get(f"label-{idx}") or "").split())
         if label:
             labels[code] = label
     return categories, labels
