@@ -206,12 +206,14 @@ def _execute_claimed(store: Store, run_id: int, worker: str, stopping: Callable[
 def extend_run(store: Store, run_id: int, extra: int) -> None:
     """Ask for ``extra`` more resamples; the first ones are kept, the stream continues where it stopped."""
     run = store.get_run(run_id)
+    if run.status in ("queued", "running"):
+        raise StoreError(f"Run {run_id} is still going; wait for it to end before extending it.")
     params = dict(run.params)
     # the options bootstrap_params checks; what the run filled in at creation (its universe) stays as it is
     options = {k: v for k, v in params.items() if k not in ("universe_id", "universe_fingerprint")}
     params["resamples"] = bootstrap_params(**{**options, "resamples": int(params["resamples"]) + int(extra)}
                                            )["resamples"]
-    store.update_run_params(run_id, params, status="queued")
+    store.update_run_params(run_id, params, status="queued", was=run)
 
 
 class JobRunner:
