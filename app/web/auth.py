@@ -36,6 +36,7 @@ from app.store import Account, AuditEvent, Store
 from app.store.accounts import FAILED_LOGIN_WINDOW, MAX_FAILED_LOGINS
 from app.store.audit import reset_actor, set_actor
 from app.types import AccountRole
+from app.web.forms import read_form
 from app.web.rendering import as_json, render
 
 Scope = MutableMapping[str, Any]
@@ -240,7 +241,7 @@ def login_page(request: Request, next: str = "/") -> HTMLResponse:
 
 @router.post("/login", name="login_submit", include_in_schema=False)
 async def login_submit(request: Request) -> Response:
-    form = await request.form()
+    form = await read_form(request)
     fields = {k: str(form.get(k, "")) for k in ("username", "password", "next")}
     # checking a password is deliberately slow (argon2id): off the event loop
     return await run_in_threadpool(_login_submit, request, fields)

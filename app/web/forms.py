@@ -27,8 +27,11 @@ async def read_form(request: Request) -> dict[str, str | Upload]:
             for key, value in form.multi_items():
                 if isinstance(value, UploadFile):
                     if value.filename:
+                        refuse_nul(value.filename, f"the file name of form field {key!r}")
                         fields[key] = Upload(value.filename, await value.read())
                 else:
+                    refuse_nul(key, "a form field's name")
+                    refuse_nul(value, f"form field {key!r}")
                     fields[key] = value
     except HTTPException as exc:
         if exc.status_code != 400:
@@ -52,3 +55,19 @@ def _unreadable(exc: HTTPException) -> BadRequest:
     else:
         hint = "the multipart body is not well-formed (cut off, or a part without its headers); send it again"
     return BadRequest(f"The form could not be read ({detail}): {hint}. Nothing was stored.")
+
+
+def refuse_nul(text: str, where: str) -> None:
+    """Refuse a NUL character in anything a request names: no field has a use for it, and PostgreSQL text
+    cannot hold one (the query would fail with a DataError, a 500, on the team desk's store)."""
+    if "\x00" in text:
+        raise BadRequest(f"A NUL character (U+0000) is in {where}, at character {text.index(chr(0)) + 1}; "
+                         "nothing was read or stored. Remove it and try again.")
+
+
+def refuse_nul_in_address(request: Request) -> None:
+    """The app's dependency for every route: no NUL in the path or a query parameter (see ``refuse_nul``)."""
+    refuse_nul(request.url.path, "the address")
+    for key, value in request.query_params.multi_items():
+        refuse_nul(key, "a query parameter's name")
+        refuse_nul(value, f"query parameter {key!r}")
