@@ -67,3 +67,31 @@ def test_the_same_requests_without_the_nul_are_answered(client: Any) -> None:
     assert r.status_code == 200 and r.json()["total"] == 0
     assert client.get("/api/rosters/1/departures", params={"q": "Retired"}).json()["total"] > 0
     assert client.post("/rosters/1/rules", data={"note": "no rules"}, follow_redirects=False).status_code == 303
+
+
+# -- NUL bytes inside the small CSV files of the Reason codes and Universe pages ---------------------------
+# (a roster file's rows with NUL are rejected and listed by the intake; these three readers stored them, and
+# PostgreSQL refused the insert: a 500)
+@pytest.mark.parametrize(("path", "name", "body", "line"), [
+    ("/rosters/1/mapping/import", "m.csv", b"code,category,label\nRet\x00ired,voluntary,x\n", 2),
+    ("/rosters/1/mapping/import", "m.csv", b"code,category,label\nRetired,voluntary,x\nDismissed,forced,a\x00b\n", 3),
+    ("/rosters/1/rules/import", "r.csv", b"code,field,comparison,value,category\nRet\x00ired,age,below,60,forced\n", 2),
+])
+def test_a_nul_in_a_mapping_or_rules_file_is_refused_with_its_line(client: Any, demo_store: Store, path: str,
+                                                                     name: str, body: bytes, line: int) -> None:
+    before = (demo_store.counts(), demo_store.list_mappings())
+    r = client.post(path, data={"mapping_name": "with nul"}, files={"file": (name, body)}, follow_redirects=False)
+    assert r.status_code == 400, (r.status_code, r.text[:300])
+    assert f"NUL character (U+0000) on line {line}" in html.unescape(r.text)
+    assert (demo_store.counts(), demo_store.list_mappings()) == before
+
+
+def test_a_universe_row_with_a_nul_is_rejected_and_the_rest_stored(client: Any, demo_store: Store) -> None:
+    body = b"firm_id,year\nHX\x001250,2000\nHX1250,2001\n"
+    r = client.post("/rosters/1/universe", files={"file": ("u.csv", body)}, follow_redirects=False)
+    assert r.status_code == 303, (r.status_code, r.text[:300])
+    [universe] = demo_store.list_universes(1)
+    rejected = client.get("/rosters/1/universe/rejected.csv").text
+    assert "line 2" in rejected.lower() or rejected.splitlines()[1].startswith("2,"), rejected[:300]
+    assert "NUL byte in column 'firm_id'" in rejected
+    assert universe.rows_total == 2
