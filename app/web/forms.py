@@ -50,6 +50,8 @@ def _unreadable(exc: HTTPException) -> BadRequest:
                 "characters")
     elif "boundary" in detail.lower():
         hint = "the multipart boundary is missing; send the form as multipart/form-data with its boundary"
+    elif detail.startswith("Too many"):
+        hint = "a form carries at most 1,000 fields and 1,000 files; send the fields its page has"
     elif "maximum size" in detail:
         hint = "a text field is over 1 MB; only the file may be that large"
     else:
