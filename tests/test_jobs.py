@@ -247,3 +247,17 @@ def test_a_queued_or_running_run_is_not_extended(demo_store: Store) -> None:
         extend_run(demo_store, run_id, 100)
     run = demo_store.get_run(run_id)
     assert (run.status, run.params["resamples"]) == ("running", 500)
+
+
+def test_an_extension_past_the_limit_names_extra_and_what_is_left(demo_store: Store) -> None:
+    # probe (session 7): extra=10**20 was refused as "resamples must be between 100 and 200000; got
+    # 100000000000000000300", a number the analyst never typed
+    from app.analysis.run_params import MAX_RESAMPLES
+
+    inp, _, _ = engine_inputs(demo_store)
+    run_id = run_bootstrap_now(demo_store, inp, unit="firm", resamples=300, seed=8)["run"]
+    left = MAX_RESAMPLES - 300
+    for extra in (10**20, left + 1, -1):
+        with pytest.raises(ValueError, match=f"extra can add 0 to {left:,} resamples to this run"):
+            extend_run(demo_store, run_id, extra)
+    assert demo_store.get_run(run_id).status == "done"
