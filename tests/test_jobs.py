@@ -22,7 +22,7 @@ from app.analysis.jobs import (
 )
 from app.stats.bootstrap import bootstrap_trend, draw_replicates
 from app.stats.design import design_matrix, window_centre
-from app.store import RunClaimLost, Store
+from app.store import RunClaimLost, Store, StoreError
 
 ROSTER = 1
 
@@ -219,3 +219,45 @@ def test_a_run_keeps_the_sampler_it_was_started_with(demo_store: Store, monkeypa
     assert "sampler" not in demo_store.get_run(old).params
     assert execute_bootstrap(demo_store, old)["sampler"] == 1
     np.testing.assert_array_equal(demo_store.replicates(old), by[1])
+
+
+def test_two_extensions_from_one_reading_do_not_lose_one(demo_store: Store) -> None:
+    # probe (session 7): two servers extending one ended run at once both read "done, 300 resamples" and both
+    # wrote "queued, 300 + extra": the later write replaced the earlier one (one analyst's resamples silently
+    # lost) and could re-queue a run another worker had already claimed. The write now holds only while the
+    # run is as it was read; the second analyst is told to reload.
+    inp, _, _ = engine_inputs(demo_store)
+    run_id = run_bootstrap_now(demo_store, inp, unit="firm", resamples=300, seed=5)["run"]
+    seen = demo_store.get_run(run_id)  # what the second process read, before the first one wrote
+    extend_run(demo_store, run_id, 200)
+    with pytest.raises(StoreError, match="changed while you were extending it"):
+        demo_store.update_run_params(run_id, {**seen.params, "resamples": 300 + 100}, status="queued", was=seen)
+    run = demo_store.get_run(run_id)
+    assert (run.status, run.params["resamples"], run.progress_total) == ("queued", 500, 500)
+
+
+def test_a_queued_or_running_run_is_not_extended(demo_store: Store) -> None:
+    inp, _, _ = engine_inputs(demo_store)
+    run_id = run_bootstrap_now(demo_store, inp, unit="firm", resamples=300, seed=6)["run"]
+    extend_run(demo_store, run_id, 200)  # queued now
+    with pytest.raises(StoreError, match="still going"):
+        extend_run(demo_store, run_id, 100)
+    assert demo_store.claim_run("worker-a", run_id) == run_id  # running now
+    with pytest.raises(StoreError, match="still going"):
+        extend_run(demo_store, run_id, 100)
+    run = demo_store.get_run(run_id)
+    assert (run.status, run.params["resamples"]) == ("running", 500)
+
+
+def test_an_extension_past_the_limit_names_extra_and_what_is_left(demo_store: Store) -> None:
+    # probe (session 7): extra=10**20 was refused as "resamples must be between 100 and 200000; got
+    # 100000000000000000300", a number the analyst never typed
+    from app.analysis.run_params import MAX_RESAMPLES
+
+    inp, _, _ = engine_inputs(demo_store)
+    run_id = run_bootstrap_now(demo_store, inp, unit="firm", resamples=300, seed=8)["run"]
+    left = MAX_RESAMPLES - 300
+    for extra in (10**20, left + 1, -1):
+        with pytest.raises(ValueError, match=f"extra can add 0 to {left:,} resamples to this run"):
+            extend_run(demo_store, run_id, extra)
+    assert demo_store.get_run(run_id).status == "done"

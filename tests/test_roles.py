@@ -8,6 +8,7 @@ allowed).
 
 from __future__ import annotations
 
+import html
 import re
 from collections.abc import Iterator
 from typing import Any
@@ -16,7 +17,7 @@ import pytest
 from fastapi.testclient import TestClient
 
 from app.config import Settings
-from app.store import Store
+from app.store import Store, StoreError
 from app.web.app import create_app
 from app.web.auth import COOKIE, required_role
 
@@ -175,6 +176,39 @@ def test_wrong_passwords_are_refused_and_then_rate_limited(team: tuple[TestClien
     assert sign_in(client, "nobody", "whatever at all").status_code == 401
     failed = store.audit_events(action="login_failed")
     assert len(failed) == 6 and {e.user for e in failed} == {"analyst1", "nobody"}
+
+
+def test_a_sign_in_name_no_account_can_have_is_recorded_shortened(
+        team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    # probe (session 7): anyone could write a 1 MB name into the audit trail, once per attempt, by signing in
+    # with it; account names are 1 to 64 printable characters (app/store/accounts.py), so a longer or unprintable
+    # name is recorded as its first 64 printable characters and its length, and still counts for the rate limit
+    client, store, _ = team
+    long_name = "u" * 200_000
+    for _ in range(5):
+        assert sign_in(client, long_name, "wrong password!").status_code == 401
+    assert sign_in(client, long_name, "wrong password!").status_code == 429
+    odd = sign_in(client, "bo\u202ess\tx", "wrong password!")
+    assert odd.status_code == 401
+    failed = store.audit_events(action="login_failed")
+    assert {e.user for e in failed} == {"u" * 64 + "… (200,000 characters)", "bo?ss?x"}
+    assert all(len(e.target) < 120 for e in failed)
+
+
+def test_an_audit_filter_that_is_not_a_time_is_refused(team: tuple[TestClient, Store, dict[str, str]]) -> None:
+    # probe (session 7): since=yesterday was compared as text ('y' sorts after every ISO time) and answered
+    # "No events", as if nothing had happened
+    client, store, _ = team
+    assert sign_in(client, "admin1").status_code == 303
+    for bad in ("yesterday", "2026-13-01", "9" * 400):
+        for path in ("/audit", "/api/audit"):
+            r = client.get(path, params={"since": bad})
+            assert r.status_code == 400, (path, bad, r.status_code)
+            assert "since must be an ISO date or time such as 2026-12-01" in html.unescape(r.text)
+    with pytest.raises(StoreError, match="since must be"):
+        store.audit_events(since="last week")
+    events = client.get("/api/audit", params={"since": "2000-01-01"}).json()["events"]
+    assert events and events == client.get("/api/audit").json()["events"]
 
 
 def test_expired_and_revoked_sessions(team: tuple[TestClient, Store, dict[str, str]],

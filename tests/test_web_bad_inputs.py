@@ -8,6 +8,7 @@ line) are in test_ingest_bad_inputs.py; here the point is what the HTTP layer ma
 from __future__ import annotations
 
 import gc
+import html
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -106,3 +107,29 @@ def test_pages_of_a_fresh_roster_without_a_mapping(store: Store) -> None:
         for page in ("", "/reasons", "/coverage", "/trend", "/resampling", "/sectors", "/robustness", "/briefing"):
             answer = client.get(f"/rosters/{rid}{page}")
             assert answer.status_code == 200, (page, answer.status_code)
+
+
+@pytest.mark.parametrize(("filename", "body", "content_type", "message"), [
+    # python-multipart refuses a part header line over 4,224 bytes (DEFAULT_MAX_HEADER_SIZE, 4096 + 128, in
+    # python_multipart/multipart.py): a file name that long; the answer was "Invalid multipart data."
+    ("a" * 5000 + ".csv", None, None, "a part's header (such as its file name) is too long"),
+    (None, b"--zzz\r\nnot a header line\r\n", "multipart/form-data; boundary=zzz", "not well-formed"),
+    (None, b"x" * 10, "multipart/form-data", "boundary"),
+    # Starlette's limit of 1,000 fields per form (starlette/formparsers.py, max_fields): the hint was "not
+    # well-formed" until this case was added
+    (None, "&".join(f"f{i}=1" for i in range(1001)).encode(), "application/x-www-form-urlencoded",
+     "a form carries at most 1,000 fields"),
+])
+def test_a_form_that_cannot_be_read_says_why(web: tuple[TestClient, Store], filename: str | None,
+                                             body: bytes | None, content_type: str | None, message: str) -> None:
+    client, store = web
+    before = store.counts()
+    for path in ("/api/rosters", "/rosters/upload"):
+        if filename is not None:
+            r = client.post(path, headers=SAME, files={"file": (filename, b"Firm ID,Reason,Year\nF1,Retired,2019\n")})
+        else:
+            r = client.post(path, headers={**SAME, "content-type": str(content_type)}, content=body)
+        assert r.status_code == 400, (path, r.status_code, r.text[:300])
+        said = r.json()["error"] if path.startswith("/api/") else html.unescape(r.text)
+        assert "The form could not be read" in said and message in said, said[:400]
+    assert store.counts() == before

@@ -97,6 +97,10 @@ def test_pages_concatenate_to_the_sorted_list(client: Any, demo_clean: pd.DataFr
     ({"per_page": "100000"}, "per_page must be between"),
     ({"mapping": "no such mapping"}, "No mapping 'no such mapping'"),
     ({"mapping": "demo standard:99"}, "No version 99"),
+    # probe (session 7): a 100,000-character q reached SQLite's LIKE, whose pattern limit (50,000 bytes,
+    # SQLITE_MAX_LIKE_PATTERN_LENGTH in sqlite.org/limits.html) made it a 500; '_' and '%' double when escaped
+    ({"q": "a" * 60_000}, "q (the text searched for) has 60,000 characters"),
+    ({"q": "_" * 26_000}, "q (the text searched for) has 26,000 characters"),
 ])
 def test_bad_filters_say_what_and_where(client: Any, params: dict[str, str], message: str) -> None:
     for path in (f"/api/rosters/{ROSTER}/departures", f"/rosters/{ROSTER}/departures.csv"):

@@ -104,7 +104,7 @@ def test_extend_through_the_page_keeps_the_first_replicates(client: Any, demo_st
     assert len(after) == 500 and demo_store.get_run(run_id).status == "done"
     np.testing.assert_array_equal(after[:300], first)
     refused = client.post(f"/runs/{run_id}/extend", data={"extra": "99999999"})
-    assert refused.status_code == 400 and "resamples must be between" in refused.context["page"]["message"]
+    assert refused.status_code == 400 and "extra can add 0 to 199,500 resamples" in refused.context["page"]["message"]
 
 
 def test_unknown_and_non_bootstrap_runs_are_404(client: Any, demo_store: Store) -> None:

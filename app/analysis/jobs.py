@@ -30,6 +30,7 @@ import numpy as np
 
 from app.analysis.inputs import AnalysisInput, input_for_run
 from app.analysis.run_params import (
+    MAX_RESAMPLES,
     _resolve,
     bootstrap_params,
     cells_for,
@@ -206,12 +207,18 @@ def _execute_claimed(store: Store, run_id: int, worker: str, stopping: Callable[
 def extend_run(store: Store, run_id: int, extra: int) -> None:
     """Ask for ``extra`` more resamples; the first ones are kept, the stream continues where it stopped."""
     run = store.get_run(run_id)
+    if run.status in ("queued", "running"):
+        raise StoreError(f"Run {run_id} is still going; wait for it to end before extending it.")
     params = dict(run.params)
+    left = MAX_RESAMPLES - int(params["resamples"])
+    if not 0 <= extra <= left:
+        raise ValueError(f"extra can add 0 to {left:,} resamples to this run (it has {int(params['resamples']):,} of "
+                         f"at most {MAX_RESAMPLES:,}); got {extra:,}.")
     # the options bootstrap_params checks; what the run filled in at creation (its universe) stays as it is
     options = {k: v for k, v in params.items() if k not in ("universe_id", "universe_fingerprint")}
     params["resamples"] = bootstrap_params(**{**options, "resamples": int(params["resamples"]) + int(extra)}
                                            )["resamples"]
-    store.update_run_params(run_id, params, status="queued")
+    store.update_run_params(run_id, params, status="queued", was=run)
 
 
 class JobRunner:

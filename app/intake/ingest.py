@@ -34,6 +34,7 @@ from app.intake.validation import (
     validate,
 )
 from app.store import RejectedRow, Roster, Store, StoreError
+from app.store.records import check_name
 from app.types import check_choice
 
 __all__ = [
@@ -364,6 +365,11 @@ def import_roster(
                               "nothing was added.")
     if existing is not None and not allow_same_file:
         raise DuplicateRosterError(existing)
+    if target is None and name:
+        try:
+            check_name(name, "roster name")
+        except StoreError as exc:
+            raise RosterFileError(str(exc)) from None
     if target is None and name is not None and store.roster_name_taken(name):
         raise RosterFileError(f"A roster named {name!r} already exists; choose another name.")
     p = _prepare(data, filename, roles=roles, encoding=encoding, sheet=sheet, header_row=header_row,

@@ -151,6 +151,14 @@ def _restore(cell: str) -> str:
     return cell
 
 
+def refuse_nul_line(text: str, what: str) -> None:
+    """A NUL character has no place in a code, category, label or rule (and PostgreSQL text cannot hold one)."""
+    if "\x00" in text:
+        line = text.count("\n", 0, text.index("\x00")) + 1
+        raise MappingFileError(f"The {what} file has a NUL character (U+0000) on line {line}; "
+                               "save it again as CSV UTF-8 and try again. Nothing was saved.", line)
+
+
 def parse_mapping_csv(data: bytes) -> ParsedMapping:
     """Read ``code,category[,label]`` rows; the whole file is rejected at the first bad line.
 
@@ -165,6 +173,7 @@ def parse_mapping_csv(data: bytes) -> ParsedMapping:
     except UnicodeDecodeError as exc:
         raise MappingFileError(f"The mapping file is not UTF-8 text (byte {exc.start}); "
                                "save it as CSV UTF-8 and try again.") from exc
+    refuse_nul_line(text, "mapping")
     categories: dict[str, Category] = {}
     labels: dict[str, str] = {}
     lines: dict[str, int] = {}

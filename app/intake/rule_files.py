@@ -9,7 +9,7 @@ import csv
 import io
 from collections.abc import Sequence
 
-from app.intake.reasons import MappingFileError
+from app.intake.reasons import MappingFileError, refuse_nul_line
 from app.intake.spreadsheet_safety import FORMULA_TRIGGERS, safe_csv
 from app.stats.rules import RuleError, make_rule
 from app.types import ClassificationRule
@@ -31,6 +31,7 @@ def parse_rules_csv(data: bytes) -> tuple[ClassificationRule, ...]:
     except UnicodeDecodeError as exc:
         raise MappingFileError(f"The rules file is not UTF-8 text (byte {exc.start}); save it as CSV UTF-8 "
                                "and try again.") from exc
+    refuse_nul_line(text, "rules")
     reader = csv.reader(io.StringIO(text, newline=""))
     rules: list[ClassificationRule] = []
     header_seen = False

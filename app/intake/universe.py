@@ -154,6 +154,8 @@ def import_universe(
     for i, f in enumerate(firm):
         if f == "":
             reasons[i].append(f"missing firm id (column {resolved['firm_id']!r} is empty)")
+        elif "\x00" in f:  # kept out of the store: PostgreSQL text cannot hold NUL
+            reasons[i].append(f"NUL byte in column {resolved['firm_id']!r}")
     messages = list(table.messages)
     if shape == "firm_years":
         year, why = _years(column("year"), "year", max_year)

@@ -52,6 +52,14 @@ def _check_password(password: str) -> None:
         raise StoreError(f"A password needs at least {MIN_PASSWORD} characters.")
 
 
+def _signed_in_as(name: str) -> str:
+    """The sign-in name as the audit trail records a failed attempt: as typed when it is short and printable;
+    otherwise unprintable characters as '?' and the first 64 characters with the length (anyone can type a
+    name, and no account name is longer than 64 characters)."""
+    shown = "".join(ch if ch.isprintable() else "?" for ch in name)
+    return shown if len(shown) <= 64 else f"{shown[:64]}… ({len(shown):,} characters)"
+
+
 class AccountQueries(Gateway):
     """Accounts, API tokens, sign-in checks and the session secret."""
 
@@ -144,7 +152,8 @@ class AccountQueries(Gateway):
                 _hasher().verify(_dummy_hash(), password)
         if not ok:
             with self._tx() as conn:
-                record_event(conn, "login_failed", f"account:{name}", {}, actor=name or "(blank)")
+                shown = _signed_in_as(name)
+                record_event(conn, "login_failed", f"account:{shown}", {}, actor=shown or "(blank)")
             return None
         return _account(row)
 
@@ -153,7 +162,7 @@ class AccountQueries(Gateway):
         since = ((now or datetime.now(UTC)) - FAILED_LOGIN_WINDOW).replace(microsecond=0).isoformat()
         with self.engine.connect() as conn:
             rows = conn.execute(select(audit_events.c.at).where(
-                audit_events.c.action == "login_failed", audit_events.c.target == f"account:{name}",
+                audit_events.c.action == "login_failed", audit_events.c.target == f"account:{_signed_in_as(name)}",
                 audit_events.c.at >= since).order_by(audit_events.c.at)).fetchall()
         return len(rows), (rows[0].at if rows else None)
 

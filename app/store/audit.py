@@ -12,12 +12,13 @@ import json
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass
+from datetime import datetime
 from typing import Any
 
 from sqlalchemy import Connection, insert, select
 
 from app.store.engine import Gateway
-from app.store.records import now_iso
+from app.store.records import StoreError, now_iso
 from app.store.tables import audit_events
 
 LOCAL_ACTOR = "local analyst"
@@ -73,6 +74,12 @@ class AuditQueries(Gateway):
         """Events newest first, optionally since an ISO time, by one user or of one action."""
         query = select(audit_events).order_by(audit_events.c.id.desc()).limit(limit)
         if since:
+            # events store UTC ISO times and are compared as text: anything else would match nothing, silently
+            try:
+                datetime.fromisoformat(since)
+            except ValueError:
+                raise StoreError(f"since must be an ISO date or time such as 2026-12-01 or 2026-12-01T09:30; "
+                                 f"got {since[:40]!r}.") from None
             query = query.where(audit_events.c.at >= since)
         if user:
             query = query.where(audit_events.c.actor == user)

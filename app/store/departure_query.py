@@ -54,6 +54,10 @@ InPost = Literal["only", "none"]
 #: the still-in-post filter: ``only`` those rows, ``none`` of them (a year filter implies ``none``)
 IN_POST_FILTERS: tuple[InPost, ...] = get_args(InPost)
 
+#: the longest ``q``: SQLite refuses a LIKE pattern over 50,000 bytes (sqlite.org/limits.html), and escaping
+#: doubles '%' and '_'; a phrase typed into the search box is far shorter
+MAX_SEARCH = 1_000
+
 #: what case overrides read of a departure: its identity and its cell key
 IDENTITY_FIELDS: tuple[str, ...] = (
     "line", "firm_id", "executive", "year", "sector", "reason", "age", "tenure", "interim",
@@ -100,6 +104,9 @@ class DepartureFilter:
             value = getattr(self, name)
             if value is not None and not 0 <= value <= 9999:
                 raise StoreError(f"{name.replace('_', ' ')} must be a fiscal year such as 1998; got {value}.")
+        if self.q is not None and len(self.q) > MAX_SEARCH:
+            raise StoreError(f"q (the text searched for) has {len(self.q):,} characters; at most {MAX_SEARCH:,} "
+                             "are searched.")
 
 
 @dataclass(frozen=True)

@@ -14,7 +14,7 @@ from sqlalchemy import delete, insert, select, update
 
 from app.store.audit import record_event
 from app.store.engine import Gateway
-from app.store.records import StoreError, now_iso
+from app.store.records import MAX_ID, StoreError, now_iso
 from app.store.tables import intake_profiles
 
 #: the longest profile name accepted (it is shown in a select box and a command line)
@@ -108,8 +108,10 @@ class ProfileQueries(Gateway):
 
     def profile_by_id(self, profile_id: int) -> IntakeProfile:
         """The profile with this id; ``StoreError`` when there is none (ids are never reused)."""
-        with self.engine.connect() as conn:
-            row = conn.execute(select(intake_profiles).where(intake_profiles.c.id == int(profile_id))).first()
+        row = None
+        if 0 < int(profile_id) <= MAX_ID:  # a larger id cannot exist, and the driver refuses it (a 500)
+            with self.engine.connect() as conn:
+                row = conn.execute(select(intake_profiles).where(intake_profiles.c.id == int(profile_id))).first()
         if row is None:
             raise StoreError(f"No intake profile number {profile_id} is saved; it may have been deleted.")
         return _profile(row)

@@ -18,6 +18,22 @@ MAX_ID = 2**31 - 1  # the INTEGER id columns on PostgreSQL are 32-bit: larger id
 # reach the driver (it would refuse them with a DataError); SQLite counters never get near it either
 
 
+#: the longest roster or mapping name: it heads pages, exports and the audit trail
+NAME_MAX = 120
+
+
+def check_name(name: str, what: str) -> None:
+    """Refuse a ``what`` name (a roster name, a mapping name) over ``NAME_MAX`` characters or holding a control or
+    invisible character (NUL, tab, a zero-width space, a right-to-left override that reverses what follows it):
+    names are shown on every page and in every export, where such characters hide or scramble text."""
+    if len(name) > NAME_MAX:
+        raise StoreError(f"A {what} is at most {NAME_MAX} characters; this one has {len(name):,} characters.")
+    odd = next((ch for ch in name if not (ch == " " or ch.isprintable())), None)
+    if odd is not None:
+        raise StoreError(f"A {what} cannot hold a control or invisible character U+{ord(odd):04X} (at character "
+                         f"{name.index(odd) + 1}); type it again without it.")
+
+
 def now_iso() -> str:
     return datetime.now(UTC).replace(microsecond=0).isoformat()
 

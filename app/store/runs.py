@@ -224,13 +224,24 @@ class RunQueries(Gateway):
             )).rowcount and worker is not None:
                 raise RunClaimLost(f"Run {run_id} is no longer held by {worker}.")
 
-    def update_run_params(self, run_id: int, params: Mapping[str, Any], *, status: RunStatus) -> None:
-        """Change a run's parameters (extending B) and its status, keeping its stored replicates."""
+    def update_run_params(self, run_id: int, params: Mapping[str, Any], *, status: RunStatus,
+                          was: Run | None = None) -> None:
+        """Change a run's parameters (extending B) and its status, keeping its stored replicates.
+
+        With ``was`` (the run as read before the change) the change is made only while the run still has that
+        status and resample count: two processes extending one run from the same reading would otherwise both
+        write, the later replacing the earlier (StoreError for the later one instead)."""
+        where = [runs.c.id == run_id]
+        if was is not None:
+            where += [runs.c.status == was.status, runs.c.progress_total == was.progress_total]
         with self._tx() as conn:
-            conn.execute(update(runs).where(runs.c.id == run_id).values(
+            changed = conn.execute(update(runs).where(*where).values(
                 params=json.dumps(dict(params)), status=status, cancel_requested=False, error=None,
                 progress_total=int(params.get("resamples", 0)), finished_at=None,
-            ))
+            )).rowcount
+            if was is not None and not changed:
+                raise StoreError(f"Run {run_id} changed while you were extending it (another page or server "
+                                 "extended or finished it); reload its page and extend it again if needed.")
             record_event(conn, "run_extend", f"run:{run_id}", {"resamples": params.get("resamples")})
 
     def request_cancel(self, run_id: int) -> None:

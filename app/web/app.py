@@ -6,7 +6,7 @@ from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from pathlib import Path
 
-from fastapi import FastAPI, Request
+from fastapi import Depends, FastAPI, Request
 from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, RedirectResponse, Response
 from fastapi.staticfiles import StaticFiles
 from starlette.exceptions import HTTPException
@@ -36,6 +36,7 @@ from app.web import (
     universe,
 )
 from app.web.deps import BadRequest, NotFound
+from app.web.forms import refuse_nul_in_address
 from app.web.rendering import STATIC_DIR, render, templates
 from app.web.schemas import HealthBody
 from app.web.security import SecurityMiddleware
@@ -82,6 +83,7 @@ def create_app(settings: Settings, store: Store | None = None, *, start_jobs: bo
 
     app = FastAPI(
         title="Helmshift", version=__version__, lifespan=lifespan,
+        dependencies=[Depends(refuse_nul_in_address)],
         description="Local dashboard for forced chief-executive turnover: rosters, mappings, "
                     "coverage, trend models and bootstrap runs. Every page has a JSON twin under /api.",
     )

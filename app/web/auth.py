@@ -32,10 +32,12 @@ from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Resp
 from itsdangerous import BadSignature, URLSafeTimedSerializer
 from starlette.concurrency import run_in_threadpool
 
-from app.store import Account, AuditEvent, Store
+from app.store import Account, AuditEvent, Store, StoreError
 from app.store.accounts import FAILED_LOGIN_WINDOW, MAX_FAILED_LOGINS
 from app.store.audit import reset_actor, set_actor
 from app.types import AccountRole
+from app.web.deps import BadRequest
+from app.web.forms import read_form
 from app.web.rendering import as_json, render
 
 Scope = MutableMapping[str, Any]
@@ -240,7 +242,7 @@ def login_page(request: Request, next: str = "/") -> HTMLResponse:
 
 @router.post("/login", name="login_submit", include_in_schema=False)
 async def login_submit(request: Request) -> Response:
-    form = await request.form()
+    form = await read_form(request)
     fields = {k: str(form.get(k, "")) for k in ("username", "password", "next")}
     # checking a password is deliberately slow (argon2id): off the event loop
     return await run_in_threadpool(_login_submit, request, fields)
@@ -276,8 +278,11 @@ def logout(request: Request) -> Response:
 
 
 def audit_data(store: Store, *, user: str | None, action: str | None, since: str | None) -> AuditPage:
-    return AuditPage(store.audit_events(user=user or None, action=action or None, since=since or None, limit=500),
-                     user or None, action or None, since or None)
+    try:
+        events = store.audit_events(user=user or None, action=action or None, since=since or None, limit=500)
+    except StoreError as exc:
+        raise BadRequest(str(exc)) from exc
+    return AuditPage(events, user or None, action or None, since or None)
 
 
 @router.get("/audit", name="audit_page", response_class=HTMLResponse, include_in_schema=False)
