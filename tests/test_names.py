@@ -83,3 +83,42 @@ def test_a_bad_mapping_name_is_a_400_on_the_reason_codes_page(client: Any, demo_
     assert r.status_code == 400
     assert "mapping name" in r.text and message in r.text
     assert (demo_store.counts(), demo_store.settings(1)) == before
+
+
+@pytest.mark.parametrize(("name", "message"), BAD_NAMES)
+def test_a_bad_new_mapping_name_is_refused_by_the_store_itself(demo_store: Store, name: str, message: str) -> None:
+    """save_mapping_version is the one door every mapping save goes through (page, rules table, CLI)."""
+    before = demo_store.counts()
+    with pytest.raises(StoreError, match="mapping name") as caught:
+        demo_store.save_mapping_version(name, {"Retired": "voluntary"})
+    assert message in str(caught.value)
+    assert demo_store.counts() == before
+
+
+@pytest.mark.parametrize(("name", "message"), WEB_BAD_NAMES[1:3])
+def test_a_bad_mapping_name_typed_on_the_save_form_is_a_400(client: Any, demo_store: Store, name: str,
+                                                            message: str) -> None:
+    before = (demo_store.counts(), demo_store.settings(1))
+    r = client.post("/rosters/1/reasons", data={"mapping_name": name, "code-0": "Retired",
+                                                "cat-0": "voluntary"})
+    assert r.status_code == 400
+    assert "mapping name" in r.text and message in r.text and "Nothing was saved" in r.text
+    assert (demo_store.counts(), demo_store.settings(1)) == before
+
+
+def test_a_save_without_any_code_is_refused(client: Any, demo_store: Store) -> None:
+    """A bare POST (no code-N field) would have saved a version that unmaps every code of the roster (found by
+    probing a served instance, session 7); the page's form always sends every code."""
+    before = (demo_store.counts(), demo_store.settings(1))
+    r = client.post("/rosters/1/reasons", data={"note": "nothing else"})
+    assert r.status_code == 400
+    assert "no reason codes" in r.text
+    assert (demo_store.counts(), demo_store.settings(1)) == before
+
+
+def test_an_existing_mapping_keeps_saving_under_its_name(demo_store: Store) -> None:
+    """The rule binds new names: a mapping already stored stays editable (its next version saves)."""
+    latest = demo_store.get_mapping("demo standard")
+    assert latest is not None
+    saved = demo_store.save_mapping_version("demo standard", dict(latest.categories), note="again")
+    assert saved.version == latest.version + 1

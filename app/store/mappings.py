@@ -22,6 +22,7 @@ from app.store.records import (
     CaseOverride,
     MappingVersion,
     StoreError,
+    check_name,
     now_iso,
 )
 from app.store.tables import (
@@ -92,6 +93,9 @@ class MappingQueries(Gateway):
         if current_actor() != LOCAL_ACTOR:
             author = current_actor()  # in team mode the signed-in account is the author, not a typed name
         with self._tx() as conn:
+            if conn.execute(select(mappings.c.id).where(mappings.c.name == name)).first() is None:
+                # a new name is shown on every page and export (an existing one stays editable as it is)
+                check_name(name, "mapping name")
             mapping_id = _lock_mapping(conn, name)
             last = conn.execute(
                 select(func.max(mapping_versions.c.version)).where(mapping_versions.c.mapping_id == mapping_id)

@@ -305,6 +305,10 @@ def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload
     store = app_store(request)
     page = reasons_data(store, roster_id)
     categories, labels = _form_entries(form)
+    if page.codes and not any(str(key).startswith("code-") for key in form):
+        # the page's form sends every code; a save without any would unmap this roster's codes
+        raise BadRequest("The form sent no reason codes (code-N fields); nothing was saved. Save from the "
+                         "Reason codes page, or import a mapping CSV.")
     name = str(form.get("mapping_name") or "").strip() or (
         page.mapping.name if page.mapping else f"{page.roster.name} mapping")
     if page.mapping and name == page.mapping.name:
@@ -327,6 +331,8 @@ def _reasons_save(request: Request, roster_id: int, form: dict[str, str | Upload
                                    based_on=based_on)
     except MappingConflict as exc:
         return _conflict(request, store, page.roster.id, exc, categories, labels)
+    except StoreError as exc:  # a new mapping name that is too long or holds an invisible character
+        raise BadRequest(f"{exc} Nothing was saved.") from exc
     store.update_settings(page.roster.id, mapping_name=name)
     url = request.url_for("reasons_page", roster_id=page.roster.id).include_query_params(saved=1)
     return RedirectResponse(url, status_code=303)
