@@ -2,14 +2,15 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from typing import TYPE_CHECKING
 
 from fastapi import Request
+from fastapi.responses import Response
 
 from app.config import Settings
 from app.stats.adjusted import AdjustedError, parse_adjust
-from app.store import Store
+from app.store import MAX_ID, Store, StoreError
 from app.web.uploads import UploadStash
 
 if TYPE_CHECKING:
@@ -72,3 +73,22 @@ def adjust_arg(request: Request, switch: str) -> tuple[str, ...] | None:
     except AdjustedError as exc:
         raise BadRequest(str(exc)) from None
     return parsed if on else None
+
+
+def version_csv(request: Request, name: str, what: str, export: Callable[..., str], suffix: str = "") -> Response:
+    """A mapping version's ``export`` (its codes, or its rules: ``what``) as a CSV download; ``?version=N`` or
+    the latest. A version that is not a whole number of at least 1 is refused, not read as "the latest" (live
+    fuzzing found that); one past the store's ids is a 404 without a lookup (SQLite cannot even compare it)."""
+    raw = request.query_params.get("version")
+    if raw and not (raw.isdecimal() and int(raw) >= 1):
+        raise BadRequest(f"version must be a {what} version number (1 or more); got {raw!r}.")
+    version = int(raw) if raw else None
+    if version is not None and version > MAX_ID:
+        raise NotFound(f"No version {version} of mapping {name!r} is stored.")
+    try:
+        text = export(app_store(request), name=name, version=version)
+    except StoreError as exc:
+        raise NotFound(str(exc)) from exc
+    safe_name = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)[:60] or "mapping"
+    return Response(text, media_type="text/csv; charset=utf-8",
+                    headers={"content-disposition": f'attachment; filename="{safe_name}{suffix}.csv"'})

@@ -9,8 +9,8 @@ from starlette.concurrency import run_in_threadpool
 
 from app.analysis.mapping_files import export_mapping_csv, import_mapping_file
 from app.intake.reasons import MappingFileError
-from app.store import MAX_ID, StoreError
-from app.web.deps import BadRequest, NotFound, app_store
+from app.store import StoreError
+from app.web.deps import BadRequest, NotFound, app_store, version_csv
 from app.web.forms import Upload, read_form
 from app.web.reasons import reasons_data
 from app.web.rendering import render
@@ -74,16 +74,4 @@ def _mapping_import(request: Request, roster_id: int, form: dict[str, str | Uplo
             openapi_extra=query(("version", {"type": "integer", "minimum": 1}, "default: the latest")))
 def mapping_csv(request: Request, name: str) -> Response:
     """A mapping version as CSV; ``name`` may hold any character, slashes included."""
-    raw = request.query_params.get("version")
-    if raw and not (raw.isdecimal() and int(raw) >= 1):  # refused, not read as "the latest" (live fuzzing found it)
-        raise BadRequest(f"version must be a mapping version number (1 or more); got {raw!r}.")
-    version = int(raw) if raw else None
-    if version is not None and version > MAX_ID:  # SQLite cannot even look such a number up
-        raise NotFound(f"No version {version} of mapping {name!r} is stored.")
-    try:
-        text = export_mapping_csv(app_store(request), name=name, version=version)
-    except StoreError as exc:
-        raise NotFound(str(exc)) from exc
-    safe_name = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)[:60] or "mapping"
-    return Response(text, media_type="text/csv; charset=utf-8",
-                    headers={"content-disposition": f'attachment; filename="{safe_name}.csv"'})
+    return version_csv(request, name, "mapping", export_mapping_csv)

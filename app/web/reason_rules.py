@@ -28,9 +28,9 @@ from app.analysis.rules import (
 from app.intake.reasons import MappingFileError
 from app.intake.rule_files import parse_rules_csv
 from app.stats.rules import RuleError, make_rule
-from app.store import MAX_ID, MappingVersion, Roster, Store, StoreError
+from app.store import MappingVersion, Roster, Store, StoreError
 from app.types import CATEGORIES, ClassificationRule
-from app.web.deps import BadRequest, NotFound, app_store
+from app.web.deps import BadRequest, NotFound, app_store, version_csv
 from app.web.forms import Upload, read_form
 from app.web.route_docs import FILE, GUARDS, download, form_body, page_errors, query, redirect
 
@@ -195,16 +195,4 @@ def _rules_import(request: Request, roster_id: int, form: Any) -> RedirectRespon
                        **page_errors(400, 404)},
             openapi_extra=query(("version", {"type": "integer", "minimum": 1}, "default: the latest")))
 def rules_csv(request: Request, name: str) -> Response:
-    raw = request.query_params.get("version")
-    if raw and not (raw.isdecimal() and int(raw) >= 1):  # refused, not read as "the latest"
-        raise BadRequest(f"version must be a rules version number (1 or more); got {raw!r}.")
-    version = int(raw) if raw else None
-    if version is not None and version > MAX_ID:
-        raise NotFound(f"No version {version} of mapping {name!r} is stored.")
-    try:
-        text = export_rules_csv(app_store(request), name=name, version=version)
-    except StoreError as exc:
-        raise NotFound(str(exc)) from exc
-    safe_name = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)[:60] or "mapping"
-    return Response(text, media_type="text/csv; charset=utf-8",
-                    headers={"content-disposition": f'attachment; filename="{safe_name}-rules.csv"'})
+    return version_csv(request, name, "rules", export_rules_csv, "-rules")
