@@ -136,7 +136,7 @@ def test_import_api_keys_and_duplicate_conflict(empty_client: Any, demo_frame: p
     assert created.status_code == 201
     body = created.json()
     assert set(body) == {"roster", "id", "rows", "accepted", "rejected", "duplicates", "version", "added",
-                         "removed", "changed", "header_row", "columns"}
+                         "removed", "changed", "header_row", "columns", "messages"}
     counts = expected_counts(demo_frame, demo_clean)
     assert (body["roster"], body["rows"], body["accepted"], body["rejected"], body["duplicates"]) == (
         "Demo via API", counts["rows_total"], counts["accepted"], counts["rejected"], counts["duplicates"])
@@ -144,6 +144,18 @@ def test_import_api_keys_and_duplicate_conflict(empty_client: Any, demo_frame: p
     assert again.status_code == 409 and "already imported" in again.json()["error"]
     listed = empty_client.get("/api/rosters").json()
     assert [r["name"] for r in listed["rosters"]] == ["Demo via API"]
+
+
+def test_import_api_says_how_an_ambiguous_date_column_was_read(empty_client: Any) -> None:
+    """01/02/2019 and 03/04/2020 read either way (no part over 12): the CLI printed that the column was read
+    day/month/year, the API said nothing (found probing a served instance, session 7). Both day-first readings
+    are counted by hand: 1 February 2019 and 3 April 2020."""
+    data = b"Firm ID,Reason,Departure date\nF1,Retired,01/02/2019\nF2,Dismissed,03/04/2020\n"
+    result = empty_client.post("/api/rosters", files={"file": ("amb.csv", data, "text/csv")})
+    assert result.status_code == 201
+    assert any("day/month/year" in m for m in result.json()["messages"]), result.json()["messages"]
+    listed = empty_client.get(f"/api/rosters/{result.json()['id']}/departures").json()["departures"]
+    assert [(d["firm_id"], d["date"]) for d in listed] == [("F1", "2019-02-01"), ("F2", "2020-04-03")]
 
 
 def test_delete_roster(client: Any, demo_store: Store) -> None:

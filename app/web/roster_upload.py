@@ -387,5 +387,5 @@ def _rosters_import_api(request: Request, form: dict[str, str | Upload]) -> JSON
         "roster": report.roster.name, "id": report.roster.id, "rows": report.rows,
         "accepted": report.accepted, "rejected": report.rejected, "duplicates": report.duplicates,
         "version": report.version, "added": report.added, "removed": report.removed, "changed": report.changed,
-        "header_row": report.header_row, "columns": report.roles,
+        "header_row": report.header_row, "columns": report.roles, "messages": list(report.messages),
     }, status_code=201)

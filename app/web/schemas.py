@@ -98,6 +98,8 @@ class RosterImportBody(_Exact):
     changed: int = Field(description="records with the same identity whose other fields differ")
     header_row: int = Field(description="1-based line (or sheet row) read as the header")
     columns: dict[str, str] = Field(description="the column holding each role")
+    messages: list[str] = Field(description="how the file was read where a reader should know (an ambiguous "
+                                            "day/month order, a guessed header, an encoding), as the CLI prints")
 
 
 # -- no dataclass: rows built in place ---------------------------------------------------------------
