@@ -181,6 +181,11 @@ def test_explicit_role_errors(store: Store) -> None:
         import_roster(store, data, "r.csv", roles={"firm_id": "Ticker"})
     with pytest.raises(RosterFileError, match="Unknown role 'boss'; roles are: firm_id"):
         import_roster(store, data, "r.csv", roles={"boss": "Executive"})
+    # a typed column name is echoed cut to 80 characters with its length (a probe sent 100,000 characters)
+    with pytest.raises(RosterFileError, match=r"No column 'xxxxxxxxxx[x]{70}'\.\.\. \(100,000 characters\) "
+                                              r"\(asked for the firm id\)") as caught:
+        import_roster(store, data, "r.csv", roles={"firm_id": "x" * 100_000})
+    assert len(str(caught.value)) < 500
     assert store.counts()["rosters"] == 0
 
 

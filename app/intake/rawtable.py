@@ -23,6 +23,12 @@ class RosterFileError(ValueError):
     """The uploaded file as a whole cannot be imported; the message says what and where."""
 
 
+def shown(text: str, most: int = 80) -> str:
+    """``text`` quoted for a message, cut to ``most`` characters with its full length said: an error that echoes a
+    100,000-character column name back whole buries what it says (found probing a served instance)."""
+    return repr(text) if len(text) <= most else f"{text[:most]!r}... ({len(text):,} characters)"
+
+
 @dataclass(frozen=True)
 class ReadLimits:
     """Bounds that keep a hostile upload from exhausting memory or time."""

@@ -17,7 +17,7 @@ from typing import Literal
 import pandas as pd
 
 from app.intake.dates import parse_dates
-from app.intake.rawtable import RosterFileError, looks_like_data
+from app.intake.rawtable import RosterFileError, looks_like_data, shown
 from app.intake.reasons import suggest_category
 from app.types import REQUIRED_ROLES, ROLES
 
@@ -268,7 +268,7 @@ def resolve_roles(
         actual = header if header in headers else by_norm.get(norm(header))
         if actual is None:
             raise RosterFileError(
-                f"No column {header!r} (asked for the {ROLE_LABELS[role]}); the headers are: {', '.join(headers)}."
+                f"No column {shown(header)} (asked for the {ROLE_LABELS[role]}); the headers are: {', '.join(headers)}."
             )
         for other, used in list(roles.items()):
             if used == actual and other != role:

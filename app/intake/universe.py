@@ -21,6 +21,7 @@ import numpy as np
 import pandas as pd
 
 from app.intake.ingest import NoValidRowsError, file_fingerprint
+from app.intake.rawtable import shown
 from app.intake.readers import DEFAULT_LIMITS, ReadLimits, RosterFileError, read_table
 from app.stats.rates import expand_spans, universe_fingerprint
 from app.store import RejectedRow, Store, Universe
@@ -87,7 +88,7 @@ def detect_universe_roles(headers: list[str], explicit: dict[str, str] | None = 
             continue
         actual = header if header in headers else by_norm.get(_norm(header))
         if actual is None:
-            raise RosterFileError(f"No column {header!r} (asked for the {ROLE_LABELS[role]}); the headers are: "
+            raise RosterFileError(f"No column {shown(header)} (asked for the {ROLE_LABELS[role]}); the headers are: "
                                   f"{', '.join(headers)}.")
         roles = {r: h for r, h in roles.items() if h != actual}
         roles[role] = actual
