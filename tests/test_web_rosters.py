@@ -158,6 +158,17 @@ def test_import_api_says_how_an_ambiguous_date_column_was_read(empty_client: Any
     assert [(d["firm_id"], d["date"]) for d in listed] == [("F1", "2019-02-01"), ("F2", "2020-04-03")]
 
 
+def test_allow_same_file_takes_yes_or_nothing(empty_client: Any) -> None:
+    """The schema's enum is ["yes"]; "1" was read as no and answered 409 (found probing, session 7)."""
+    files = {"file": ("roster.csv", DEMO_CSV.read_bytes(), "text/csv")}
+    assert empty_client.post("/api/rosters", files=files).status_code == 201
+    odd = empty_client.post("/api/rosters", files=files, data={"allow_same_file": "1"})
+    assert odd.status_code == 400 and "allow_same_file" in odd.json()["error"]
+    again = empty_client.post("/api/rosters", files=files, data={"allow_same_file": "yes", "name": "Second"})
+    assert again.status_code == 201
+    assert len(empty_client.get("/api/rosters").json()["rosters"]) == 2
+
+
 def test_delete_roster(client: Any, demo_store: Store) -> None:
     response = client.post("/rosters/1/delete", data={"confirm": "yes"}, follow_redirects=False)
     assert response.status_code == 303 and response.headers["location"].endswith("/rosters")

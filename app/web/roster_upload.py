@@ -33,7 +33,7 @@ from app.intake.profiles import (
 )
 from app.store import RejectedRow, Roster, Store, StoreError
 from app.types import ROLES
-from app.web.deps import app_settings, app_store, app_uploads
+from app.web.deps import BadRequest, app_settings, app_store, app_uploads
 from app.web.forms import Upload, read_form
 from app.web.import_worker import WorkerLost, import_roster_apart, review_roster_apart
 from app.web.rendering import render
@@ -294,7 +294,7 @@ def _roster_confirm(request: Request, form: dict[str, str | Upload]) -> Response
         save_as = check_profile_name(typed) if typed.strip() else None
         report = import_roster_apart(
             store, pending.data, pending.filename, name=None if into else name, roles=roles, encoding=encoding,
-            sheet=sheet, allow_same_file=form.get("allow_same_file") == "yes", header_row=header_row,
+            sheet=sheet, allow_same_file=_allow_same_file(form), header_row=header_row,
             date_order=order, fy_end=fy_end, into=into,
         )
     except (RosterFileError, DuplicateRosterError, StoreError, WorkerLost) as exc:
@@ -360,6 +360,15 @@ def _api_choices(store: Store, form: dict[str, str | Upload]) -> dict[str, Any]:
                            else None, fy_end=fy_end if given["fy_end"] else None)
 
 
+def _allow_same_file(form: dict[str, str | Upload]) -> bool:
+    """``allow_same_file=yes`` imports a file already stored once more; any other value than "yes" or nothing is
+    refused rather than read as no (a probe's ``allow_same_file=1`` silently answered 409)."""
+    value = str(form.get("allow_same_file") or "")
+    if value not in ("", "yes"):
+        raise BadRequest(f"allow_same_file takes \"yes\" (or leave it out); got {value[:40]!r}.")
+    return value == "yes"
+
+
 def _rosters_import_api(request: Request, form: dict[str, str | Upload]) -> JSONResponse:
     store = app_store(request)
     try:
@@ -374,7 +383,7 @@ def _rosters_import_api(request: Request, form: dict[str, str | Upload]) -> JSON
                                               "as its next version."}, status_code=404)
         report = import_roster_apart(
             store, data, filename, name=str(form.get("name") or "").strip() or None, encoding=encoding,
-            sheet=sheet, into=into, allow_same_file=form.get("allow_same_file") == "yes",
+            sheet=sheet, into=into, allow_same_file=_allow_same_file(form),
             **_api_choices(store, form),
         )
     except DuplicateRosterError as exc:
