@@ -93,9 +93,13 @@ class MappingQueries(Gateway):
         if current_actor() != LOCAL_ACTOR:
             author = current_actor()  # in team mode the signed-in account is the author, not a typed name
         with self._tx() as conn:
-            if conn.execute(select(mappings.c.id).where(mappings.c.name == name)).first() is None:
-                # a new name is shown on every page and export (an existing one stays editable as it is)
+            try:
                 check_name(name, "mapping name")
+            except StoreError:
+                # a new name is shown on every page and export; one stored before the check stays editable
+                # (never one with a NUL: PostgreSQL cannot even compare it)
+                if "\x00" in name or conn.execute(select(mappings.c.id).where(mappings.c.name == name)).first() is None:
+                    raise
             mapping_id = _lock_mapping(conn, name)
             last = conn.execute(
                 select(func.max(mapping_versions.c.version)).where(mapping_versions.c.mapping_id == mapping_id)
