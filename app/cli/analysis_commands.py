@@ -118,6 +118,14 @@ def cmd_run_export(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_run_check(args: argparse.Namespace) -> int:
+    from app.analysis.run_check import SUMMARY_TOLERANCE, check_run
+
+    check = check_run(_store(args), args.run_id)
+    _emit(args, check.as_dict(), lambda p: str(p["sentence"]))
+    return 0 if check.differing == 0 and check.largest_summary_difference <= SUMMARY_TOLERANCE else 1
+
+
 def cmd_bootstrap(args: argparse.Namespace) -> int:
     from app.analysis.inputs import load_input
     from app.analysis.jobs import run_bootstrap_now

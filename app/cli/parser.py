@@ -14,6 +14,7 @@ from app.cli.analysis_commands import (
     cmd_export,
     cmd_fit,
     cmd_robustness,
+    cmd_run_check,
     cmd_run_export,
     quick_fit,
 )
@@ -191,7 +192,7 @@ def build_parser() -> argparse.ArgumentParser:
     common(p)
     p.set_defaults(func=cmd_bootstrap)
 
-    p = sub.add_parser("run", help="stored runs: export a replication pack")
+    p = sub.add_parser("run", help="stored runs: export a replication pack, or redraw a run and compare")
     rsub = p.add_subparsers(dest="run_command", required=True)
     q = rsub.add_parser("export", help="write a run's replication pack (zip) for recomputing it without Helmshift")
     q.add_argument("run_id", type=int, metavar="RUN_ID", help="the run's id, as in its page's address /runs/ID")
@@ -200,6 +201,11 @@ def build_parser() -> argparse.ArgumentParser:
                    help="include records.csv, the departures behind the counts (personal data: keep it local)")
     common(q)
     q.set_defaults(func=cmd_run_export)
+    q = rsub.add_parser("check", help="redraw a finished bootstrap run with this installation and compare it with "
+                                      "what it stored (exit status 1 when a replicate differs)")
+    q.add_argument("run_id", type=int, metavar="RUN_ID", help="the run's id, as in its page's address /runs/ID")
+    common(q)
+    q.set_defaults(func=cmd_run_check)
 
     p = sub.add_parser("robustness", help="the trend under several mappings and variants")
     p.add_argument("--roster", required=True, help="roster id or name (required)")
