@@ -21,6 +21,7 @@ from app.analysis.inputs import load_input
 from app.analysis.jobs import create_bootstrap_run, execute_bootstrap, extend_run, run_bootstrap_now
 from app.analysis.run_check import SUMMARY_TOLERANCE, check_run
 from app.analysis.run_params import bootstrap_params
+from app.analysis.runs import run_trend
 from app.cli import main
 from app.store import Store, StoreError
 from app.store.tables import run_replicates, runs
@@ -105,3 +106,19 @@ def test_only_a_finished_bootstrap_run_is_checked(demo_store: Store, capsys: pyt
         check_run(demo_store, queued)
     code, _, err = _cli(capsys, "run", "check", "999999", "--db", _url(demo_store))
     assert code != 0 and "999999" in err
+
+
+def test_the_run_page_links_a_redraw_and_its_page_and_json_agree(client: Any, demo_store: Store) -> None:
+    inp = load_input(demo_store, 1)
+    run_id = run_bootstrap_now(demo_store, inp, unit="firm", resamples=200, seed=9)["run"]
+    page = client.get(f"/runs/{run_id}")
+    assert f"/runs/{run_id}/check" in page.text
+    shown = client.get(f"/runs/{run_id}/check")
+    assert shown.status_code == 200 and "bit for bit" in shown.text and "200" in shown.text
+    body = client.get(f"/api/runs/{run_id}/check").json()
+    assert body["identical"] is True and body["resamples"] == 200 and body["differing"] == 0
+    assert body == check_run(demo_store, run_id).as_dict()
+    fit = run_trend(demo_store, inp).run_id  # a fit run: nothing was drawn (a queued run may be taken up meanwhile)
+    refused = client.get(f"/api/runs/{fit}/check")
+    assert refused.status_code == 400 and "only a finished bootstrap run" in refused.json()["error"]
+    assert client.get("/api/runs/999999/check").status_code == 404
