@@ -85,6 +85,17 @@ def test_unknown_chart_or_format_is_404(client: Any) -> None:
     assert client.get(f"/rosters/{ROSTER}/charts/trend.gif").status_code == 404
 
 
+@pytest.mark.parametrize("window", ["to=-1", "from=1998", "from=2022&to=1998", "from=abc&to=2010"])
+def test_a_malformed_window_is_refused_by_every_briefing_download(client: Any, no_browser: None, window: str) -> None:
+    """Live fuzzing (session 7) found brief-pack.zip?to=-1 answered 200 with the default window's numbers: a
+    board pack must never quietly be of other years than asked for. The demo's default window is 1998-2022."""
+    for path in ("briefing/brief-pack.zip", "briefing/deck.pptx", "briefing/brief.pdf",
+                 "charts/coverage.png", "trend"):
+        r = client.get(f"/rosters/{ROSTER}/{path}?{window}")
+        assert r.status_code == 400 and "first and a last fiscal year" in r.text, (path, window, r.status_code)
+    assert client.get(f"/rosters/{ROSTER}/briefing/brief-pack.zip?from=2000&to=2010").status_code == 200
+
+
 def test_findings_refuse_unknown_charts_and_missing_runs(demo_store: Store) -> None:
     inp = load_input(demo_store, ROSTER)
     with pytest.raises(ValueError, match="chart must be one of coverage, trend"):

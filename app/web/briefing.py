@@ -25,7 +25,7 @@ from app.briefing.signature import (
 )
 from app.stats.trend import TrendError
 from app.store import BriefingSettings, Roster, Run, Store, StoreError
-from app.web.deps import BadRequest, NotFound, app_store
+from app.web.deps import BadRequest, NotFound, app_store, window_query
 from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.forms import Upload, read_form
 from app.web.rendering import as_json, render
@@ -168,10 +168,8 @@ def briefing_api(request: Request, roster_id: int) -> JSONResponse:
 
 def _input(store: Store, roster_id: int, request: Request) -> AnalysisInput:
     roster = _roster(store, roster_id)
-    lo, hi = request.query_params.get("from"), request.query_params.get("to")
-    window = (int(lo), int(hi)) if lo and hi and lo.isdecimal() and hi.isdecimal() else None
     try:
-        return load_input(store, roster.id, window=window)
+        return load_input(store, roster.id, window=window_query(request))
     except StoreError as exc:
         raise BadRequest(str(exc)) from exc
 

@@ -92,3 +92,15 @@ def version_csv(request: Request, name: str, what: str, export: Callable[..., st
     safe_name = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in name)[:60] or "mapping"
     return Response(text, media_type="text/csv; charset=utf-8",
                     headers={"content-disposition": f'attachment; filename="{safe_name}{suffix}.csv"'})
+
+
+def window_query(request: Request) -> tuple[int, int] | None:
+    """The ``from`` and ``to`` fiscal years of a page's or export's address, or None when neither is given; a
+    window with one end, a non-number or the first year after the last is refused, not replaced by the default
+    window (live fuzzing found an export answering ``to=-1`` with the default window's numbers)."""
+    lo, hi = request.query_params.get("from"), request.query_params.get("to")
+    if not lo and not hi:
+        return None
+    if not (lo and hi and lo.isdecimal() and hi.isdecimal()) or int(lo) > int(hi):
+        raise BadRequest("The window needs a first and a last fiscal year, first before last (e.g. 1998 and 2022).")
+    return int(lo), int(hi)

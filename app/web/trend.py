@@ -21,7 +21,7 @@ from app.stats.trend import SPLINE_DFS, TREND_KINDS, TrendError, TrendFit
 from app.stats.trend_report import fit_to_dict
 from app.store import Roster, Run, Store, StoreError
 from app.web.departures import mapping_ref
-from app.web.deps import BadRequest, NotFound, adjust_arg, app_store, flag_arg
+from app.web.deps import BadRequest, NotFound, adjust_arg, app_store, flag_arg, window_query
 from app.web.figures import FigureSpec, figure_spec, page_memo
 from app.web.rendering import as_json, context_line, render
 from app.web.route_docs import WINDOW_QUERY, api_errors, json_or_validation_error, page_errors, query
@@ -75,15 +75,6 @@ TrendBody = define(TrendPage, "TrendBody", fields={"fit": TrendFitSummary | None
                    doc="200: the fit. The same page, ``fit`` null and ``error`` set, comes with status 422.")
 TrendUnfitBody = variant(TrendPage, "TrendUnfitBody", fields={"fit": None, "sentence": None, "error": str},
                          doc="No trend could be fitted: ``error`` says why.")
-
-
-def _years(request: Request) -> tuple[int, int] | None:
-    lo, hi = request.query_params.get("from"), request.query_params.get("to")
-    if not lo and not hi:
-        return None
-    if not (lo and hi and lo.isdecimal() and hi.isdecimal()) or int(lo) > int(hi):
-        raise BadRequest("The window needs a first and a last fiscal year, first before last (e.g. 1998 and 2022).")
-    return int(lo), int(hi)
 
 
 def _odds_table(fit: TrendFit) -> list[dict[str, Any]]:
@@ -195,7 +186,7 @@ def _request_args(request: Request) -> dict[str, Any]:
     quasi = flag_arg(request, "quasi")
     adjust = adjust_arg(request, "adjusted")
     return {"model": request.query_params.get("model", "linear"),
-            "spline_df": int(df) if df.isdecimal() else -1, "window": _years(request), "quasi": quasi,
+            "spline_df": int(df) if df.isdecimal() else -1, "window": window_query(request), "quasi": quasi,
             "periods": _period_args(request), "adjust": adjust}
 
 
