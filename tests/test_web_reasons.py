@@ -212,3 +212,22 @@ def test_a_mapping_in_other_spellings_covers_the_codes_and_saving_keeps_one_entr
     assert latest.version == 2
     # one entry per code: the page's spelling replaced the file's, none carried over beside it
     assert latest.categories == {"Retired": "excluded", "Dismissed by board": "forced", "Health": "voluntary"}
+
+
+def test_a_roster_with_hundreds_of_codes_saves_from_the_page(empty_client: Any) -> None:
+    """Three fields per code (code, category, label): the form framework's default of 1,000 fields refused a
+    save of more than ~330 codes with "Too many fields" (free-text reasons give rosters hundreds of codes)."""
+    codes = [f"Reason {i:03d}" for i in range(450)]
+    data = ("Firm ID,Fiscal Year,Reason\n" + "".join(f"F{i},{2000 + i % 20},{c}\n" for i, c in enumerate(codes))
+            ).encode()
+    created = empty_client.post("/api/rosters", files={"file": ("many.csv", data, "text/csv")}, data={"name": "many"})
+    assert created.status_code == 201
+    roster_id = created.json()["id"]
+    form = {"mapping_name": "many codes", "based_on": "0"}
+    for i, code in enumerate(codes):
+        form |= {f"code-{i}": code, f"cat-{i}": "forced" if i % 2 else "voluntary", f"label-{i}": f"label {i}"}
+    assert len(form) > 1_000
+    saved = empty_client.post(f"/rosters/{roster_id}/reasons", data=form, follow_redirects=False)
+    assert saved.status_code == 303, saved.text[saved.text.find("<main"):][:1500]
+    listed = empty_client.get("/mappings/many codes.csv").text.splitlines()
+    assert len(listed) == 1 + 450  # header + one line per code (counted above)

@@ -19,11 +19,19 @@ class Upload:
     data: bytes
 
 
+#: fields one form may carry: the Reason codes form sends three per code (code, category, label), so the
+#: framework's default of 1,000 refused a roster of more than ~330 codes; the body stays under the upload limit
+#: (app/web/security.py), which bounds what so many fields can cost
+MAX_FIELDS = 150_000
+#: files one form may carry (every page's form sends one at most)
+MAX_FILES = 10
+
+
 async def read_form(request: Request) -> dict[str, str | Upload]:
     """The form's fields as text and its files as bytes (last value wins for repeated fields)."""
     fields: dict[str, str | Upload] = {}
     try:
-        async with request.form() as form:
+        async with request.form(max_files=MAX_FILES, max_fields=MAX_FIELDS) as form:
             for key, value in form.multi_items():
                 if isinstance(value, UploadFile):
                     if value.filename:
@@ -51,7 +59,8 @@ def _unreadable(exc: HTTPException) -> BadRequest:
     elif "boundary" in detail.lower():
         hint = "the multipart boundary is missing; send the form as multipart/form-data with its boundary"
     elif detail.startswith("Too many"):
-        hint = "a form carries at most 1,000 fields and 1,000 files; send the fields its page has"
+        hint = (f"a form carries at most {MAX_FIELDS:,} fields and {MAX_FILES} files; send the fields its page "
+                "has")
     elif "maximum size" in detail:
         hint = "a text field is over 1 MB; only the file may be that large"
     else:
