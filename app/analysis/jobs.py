@@ -22,6 +22,7 @@ import time
 import uuid
 from collections.abc import Callable, Collection
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
 from typing import Any
@@ -38,7 +39,9 @@ from app.analysis.run_params import (
     strata_for,
 )
 from app.stats.bootstrap import BLOCK_SIZE, Replicates, bootstrap_to_dict, draw_statistic, summarise_statistic
-from app.store import INTERRUPTED, RunClaimLost, Store, StoreError
+from app.stats.cells import Cells
+from app.stats.statistics import Statistic
+from app.store import INTERRUPTED, Run, RunClaimLost, Store, StoreError
 
 #: resamples per stored chunk; progress and cancel are checked this often
 CHUNK = 4 * BLOCK_SIZE
@@ -165,18 +168,49 @@ def execute_bootstrap(store: Store, run_id: int, *, worker: str | None = None,
     return _execute_claimed(store, run_id, worker, stopping)
 
 
+@dataclass(frozen=True)
+class RunDraw:
+    """What a stored bootstrap run draws from and how: its cells (as its fingerprint says), statistic, strata
+    and parameters. The job and ``app.analysis.run_check`` draw and summarise through it, so a redraw is the
+    job's draw."""
+
+    cells: Cells
+    statistic: Statistic
+    strata: np.ndarray | None
+    params: dict[str, Any]
+
+    @classmethod
+    def of(cls, store: Store, run: Run) -> RunDraw:
+        params = run.params
+        inp = input_for_run(store, run)
+        cells = cells_for(inp, params)
+        if cells.fingerprint() != run.fingerprint:
+            raise ValueError("The roster's counts no longer match this run's fingerprint; start a new run.")
+        statistic = statistic_for(params, cells)
+        return cls(cells, statistic, strata_for(inp, params, cells), params)
+
+    @property
+    def sampler(self) -> int:
+        return int(self.params.get("sampler", 1))  # runs stored before samplers were recorded drew with sampler 1
+
+    def chunk(self, start: int) -> Replicates:
+        """The stored chunk of resamples that begins at ``start`` (a stream's draws depend on where it begins)."""
+        return draw_statistic(self.cells, self.statistic.evaluate, unit=self.params["unit"],
+                              resamples=min(CHUNK, int(self.params["resamples"]) - start), seed=self.params["seed"],
+                              start=start, strata=self.strata, sampler=self.sampler)
+
+    def summary(self, replicates: Replicates) -> dict[str, Any]:
+        """The run's result (intervals, Monte Carlo errors, jackknife) from its replicates."""
+        return bootstrap_to_dict(summarise_statistic(
+            self.cells, self.statistic, replicates, unit=self.params["unit"], seed=self.params["seed"],
+            stratified=self.strata is not None, sampler=self.sampler))
+
+
 def _execute_claimed(store: Store, run_id: int, worker: str, stopping: Callable[[], bool] | None) -> dict[str, Any]:
     run = store.get_run(run_id)
-    params = run.params
-    inp = input_for_run(store, run)
-    cells = cells_for(inp, params)
-    if cells.fingerprint() != run.fingerprint:
-        raise ValueError("The roster's counts no longer match this run's fingerprint; start a new run.")
-    statistic = statistic_for(params, cells)
-    statistic.original(cells)  # fails fast, before anything is drawn
-    strata = strata_for(inp, params, cells)
-    target = int(params["resamples"])
-    sampler = int(params.get("sampler", 1))  # runs stored before samplers were recorded drew with sampler 1
+    draw = RunDraw.of(store, run)
+    draw.statistic.original(draw.cells)  # fails fast, before anything is drawn
+    target = int(draw.params["resamples"])
     done = len(store.replicates(run_id))
     store.set_run_progress(run_id, done, target)
     spent = float(run.seconds or 0.0)
@@ -185,8 +219,7 @@ def _execute_claimed(store: Store, run_id: int, worker: str, stopping: Callable[
             raise RunCancelled()
         if stopping is not None and stopping():
             raise RunStopped()
-        block = draw_statistic(cells, statistic.evaluate, unit=params["unit"], resamples=min(CHUNK, target - done),
-                               seed=params["seed"], start=done, strata=strata, sampler=sampler)
+        block = draw.chunk(done)
         spent += block.seconds
         # written only while this worker still holds the run, with the progress, in one transaction
         store.append_replicates(run_id, block.estimates, block.failure.tolist(), block.standard_errors,
@@ -194,11 +227,8 @@ def _execute_claimed(store: Store, run_id: int, worker: str, stopping: Callable[
         done += len(block.estimates)
     estimates, failures = store.replicates_with_failures(run_id)
     started = time.perf_counter()
-    stored = Replicates(0, estimates, failures, spent, store.replicate_standard_errors(run_id))
-    summary = summarise_statistic(cells, statistic, stored, unit=params["unit"], seed=params["seed"],
-                                  stratified=strata is not None, sampler=sampler)
+    result = draw.summary(Replicates(0, estimates, failures, spent, store.replicate_standard_errors(run_id)))
     spent += time.perf_counter() - started
-    result = bootstrap_to_dict(summary)
     result["seconds"] = spent
     store.finish_run(run_id, result, seconds=spent, worker=worker)
     return result

@@ -16,10 +16,8 @@ from typing import Any
 
 import numpy as np
 
-from app.analysis.inputs import input_for_run
-from app.analysis.jobs import CHUNK
-from app.analysis.run_params import cells_for, statistic_for, strata_for
-from app.stats.bootstrap import Replicates, bootstrap_to_dict, draw_statistic, summarise_statistic
+from app.analysis.jobs import CHUNK, RunDraw
+from app.stats.bootstrap import Replicates
 from app.store import Store, StoreError
 
 #: what may differ between two computations of one run's summary without meaning anything: its timing
@@ -52,6 +50,11 @@ class RunCheck:
     def identical(self) -> bool:
         return self.differing == 0 and self.largest_summary_difference == 0.0
 
+    @property
+    def passed(self) -> bool:
+        """Every replicate the same, and the summary within ``SUMMARY_TOLERANCE`` of the stored one."""
+        return self.differing == 0 and self.largest_summary_difference <= SUMMARY_TOLERANCE
+
     def sentence(self) -> str:
         head = f"Run {self.run_id}: {self.resamples:,} resamples redrawn with sampler {self.sampler}"
         if self.differing:
@@ -79,23 +82,15 @@ def check_run(store: Store, run_id: int) -> RunCheck:
         raise StoreError(f"Run {run_id} is a {run.status} {run.kind} run; only a finished bootstrap run can be "
                          "redrawn and compared.")
     stored, reasons = store.replicates_with_failures(run_id)
-    params = run.params
-    target = int(params["resamples"])
+    target = int(run.params["resamples"])
     if len(stored) != target:
         raise StoreError(f"Run {run_id} stored {len(stored):,} replicates of its {target:,} (a firm bootstrap of an "
                          "adjusted fit stores none): there is nothing to compare.")
-    inp = input_for_run(store, run)
-    cells = cells_for(inp, params)
-    if cells.fingerprint() != run.fingerprint:
-        raise StoreError(f"The counts of run {run_id}'s roster version, mapping version and window no longer give "
-                         "its fingerprint; it cannot be redrawn.")
-    statistic = statistic_for(params, cells)
-    strata = strata_for(inp, params, cells)
-    sampler = int(params.get("sampler", 1))  # as the job: runs stored before samplers were recorded used 1
-    blocks = []
-    for start in range(0, target, CHUNK):  # the job's chunks: a stream's draws depend on where a chunk starts
-        blocks.append(draw_statistic(cells, statistic.evaluate, unit=params["unit"], resamples=min(CHUNK, target - start),
-                                     seed=params["seed"], start=start, strata=strata, sampler=sampler))
+    try:
+        draw = RunDraw.of(store, run)
+    except ValueError as exc:
+        raise StoreError(f"Run {run_id} cannot be redrawn: {exc}") from exc
+    blocks = [draw.chunk(start) for start in range(0, target, CHUNK)]  # the job's chunks
     estimates = np.concatenate([b.estimates for b in blocks])
     failures = [str(r) for b in blocks for r in b.failure.tolist()]
     errors = (None if any(b.standard_errors is None for b in blocks)
@@ -110,13 +105,10 @@ def check_run(store: Store, run_id: int) -> RunCheck:
     both = np.isfinite(stored) & np.isfinite(estimates)
     largest = float(np.max(np.abs(stored[both] - estimates[both]), initial=0.0))
 
-    redrawn = Replicates(0, estimates, np.asarray(failures, dtype=object), 0.0, errors)
-    summary = bootstrap_to_dict(summarise_statistic(cells, statistic, redrawn, unit=params["unit"],
-                                                    seed=params["seed"], stratified=strata is not None,
-                                                    sampler=sampler))
+    summary = draw.summary(Replicates(0, estimates, np.asarray(failures, dtype=object), 0.0, errors))
     gap, where = _largest_gap(run.result or {}, summary, "")
     indices = np.flatnonzero(differs)
-    return RunCheck(run_id=run_id, resamples=target, sampler=sampler, differing=int(indices.size),
+    return RunCheck(run_id=run_id, resamples=target, sampler=draw.sampler, differing=int(indices.size),
                     first_difference=int(indices[0]) if indices.size else None, largest_estimate_difference=largest,
                     largest_summary_difference=gap, summary_key=where)
 
