@@ -8,7 +8,6 @@ from app.intake.reasons import parse_mapping_csv, unknown_codes
 from app.intake.rule_files import parse_rules_csv, rules_csv
 from app.intake.spreadsheet_safety import safe_csv
 from app.store import Store
-from app.store.records import check_name
 
 
 def import_mapping_file(store: Store, data: bytes, *, roster: int | str, name: str,
@@ -20,7 +19,6 @@ def import_mapping_file(store: Store, data: bytes, *, roster: int | str, name: s
     saved). Codes that do not occur in this roster (matched by code key) are kept (they serve other rosters)
     and reported; so are rules whose code the mapping does not list.
     """
-    check_name(name, "mapping name")
     target = store.get_roster(roster)
     parsed = parse_mapping_csv(data)
     parsed_rules = parse_rules_csv(rules) if rules is not None else ()

@@ -1,5 +1,4 @@
-"""A finished run as data: its replication pack, every resample's estimate and the jackknife values, and the
-run redrawn and compared with what it stored.
+"""A finished run as data: its replication pack, every resample's estimate and the jackknife values.
 
 Split from :mod:`app.web.resampling` (the page that starts and shows runs): these routes only hand out what a
 stored run already holds, built by :mod:`app.analysis.replication`.
@@ -10,16 +9,14 @@ from __future__ import annotations
 from typing import Any
 
 from fastapi import APIRouter, Request
-from fastapi.responses import HTMLResponse, JSONResponse, Response
+from fastapi.responses import JSONResponse, Response
 
 from app.analysis.replication import build_pack, jackknife_csv, replicates_csv, replicates_payload
-from app.analysis.run_check import SUMMARY_TOLERANCE, check_run
 from app.store import Store, StoreError
 from app.web.deps import BadRequest, NotFound, app_store
-from app.web.rendering import as_json, render
+from app.web.rendering import as_json
 from app.web.route_docs import api_errors, download, page_errors, query
-from app.web.run_numbers import bootstrap_number
-from app.web.schemas import ReplicatesBody, RunCheckBody
+from app.web.schemas import ReplicatesBody
 
 router = APIRouter()
 
@@ -33,7 +30,7 @@ def _run_output(store: Store, run_id: int, make: Any) -> Any:
         raise NotFound(str(exc)) from exc
     try:
         return make()
-    except (ValueError, StoreError) as exc:
+    except ValueError as exc:
         raise BadRequest(str(exc)) from exc
 
 
@@ -84,26 +81,3 @@ def run_jackknife_csv(request: Request, run_id: int) -> Response:
     store = app_store(request)
     text = _run_output(store, run_id, lambda: jackknife_csv(store, run_id))
     return _attachment(text, "text/csv; charset=utf-8", f"helmshift-run-{run_id}-jackknife.csv")
-
-
-@router.get("/runs/{run_id}/check", response_class=HTMLResponse, name="run_check_page",
-            responses=page_errors(400, 404))
-def run_check_page(request: Request, run_id: int) -> HTMLResponse:
-    """The run redrawn with this installation and compared with what it stored (seconds for 10,000 resamples)."""
-    store = app_store(request)
-    check = _run_output(store, run_id, lambda: check_run(store, run_id))
-    run = store.get_run(run_id)
-    try:
-        roster = store.get_roster(run.roster_id)
-    except StoreError:
-        roster = None
-    return render(request, "run_check.html", check, roster=roster, run=run, active="resampling_page",
-                  tolerance=SUMMARY_TOLERANCE, number=bootstrap_number(store, run))
-
-
-@router.get("/api/runs/{run_id}/check", name="run_check_api", response_model=None,
-            responses={200: {"model": RunCheckBody, "description": "The run redrawn and compared with what it "
-                                                                   "stored"}, **api_errors(400, 404)})
-def run_check_api(request: Request, run_id: int) -> JSONResponse:
-    store = app_store(request)
-    return JSONResponse(_run_output(store, run_id, lambda: check_run(store, run_id)).as_dict())

@@ -282,21 +282,6 @@ class JackknifeOut(_Exact):
     category: Literal["forced", "voluntary"] | None = None
 
 
-class RunCheckBody(_Exact):
-    """A finished bootstrap run redrawn with this installation and compared with what it stored."""
-
-    run: int
-    resamples: int
-    sampler: int = Field(description="the firm-draw scheme the run recorded (1 for runs stored before schemes were)")
-    identical: bool = Field(description="every replicate and every number of the summary the same, bit for bit")
-    differing: int = Field(description="resamples whose estimate, failure reason or standard error differs")
-    first_difference: int | None = Field(description="the first such resample, 0-based; null when none differs")
-    largest_estimate_difference: float = Field(description="largest absolute difference of a fitted estimate")
-    largest_summary_difference: float = Field(description="largest relative difference of a summary number")
-    summary_key: str | None = Field(description="where that difference is (e.g. conf_int.bca.0)")
-    sentence: str
-
-
 class ReplicatesBody(_Exact):
     run: int
     unit: Literal["departure", "firm"]
